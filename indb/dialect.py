@@ -1,0 +1,186 @@
+"""Engine dialects: the one place where generated syntax trees become SQL text.
+
+Each engine gets a subclass that translates indb's custom nodes (``LogGamma``, ``IsFinite``,
+``PreciseSum``) and engine-specific constructs (file scans, type names). A custom node
+without a translation raises :class:`~indb.errors.UnsupportedError` instead of being passed
+through as generic SQL.
+"""
+
+from __future__ import annotations
+
+import re
+
+from sqlglot import exp
+
+from indb import sqlexpr as S
+from indb.errors import SpecError, UnsupportedError
+
+_NUMERIC_TYPES = re.compile(
+    r"^(TINYINT|SMALLINT|INTEGER|INT|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|"
+    r"UHUGEINT|FLOAT|REAL|DOUBLE|DOUBLE PRECISION|DECIMAL(\(.*\))?|NUMERIC(\(.*\))?|INT[248]|"
+    r"FLOAT[48]|SMALLINT|LONG|SHORT|BYTE)$",
+    re.IGNORECASE,
+)
+_TEXT_TYPES = re.compile(
+    r"^(VARCHAR(\(.*\))?|TEXT|STRING|CHAR(\(.*\))?|BPCHAR|CHARACTER VARYING(\(.*\))?|"
+    r"BOOLEAN|BOOL|ENUM\(.*\)|UUID)$",
+    re.IGNORECASE | re.DOTALL,
+)
+_BOOL_TYPES = re.compile(r"^(BOOLEAN|BOOL)$", re.IGNORECASE)
+
+
+class Dialect:
+    """Base dialect: rendering through sqlglot plus overridable translations."""
+
+    name = "generic"
+    sqlglot_name = ""
+
+    def render(self, tree: exp.Expression) -> str:
+        """Translate custom nodes, then render SQL text for this engine."""
+        tree = tree.copy()
+        # children before parents, so a translated node keeps translated arguments
+        for node in reversed(list(tree.walk(bfs=False))):
+            if isinstance(node, S.CUSTOM_NODES):
+                new = self._translate(node)
+                if node is tree:
+                    tree = new
+                else:
+                    node.replace(new)
+        for node in tree.walk():
+            if isinstance(node, S.CUSTOM_NODES):
+                raise UnsupportedError(
+                    f"engine {self.name!r} has no translation for {type(node).__name__}")
+        return tree.sql(dialect=self.sqlglot_name)
+
+    def _translate(self, node: exp.Expression) -> exp.Expression:
+        if isinstance(node, S.LogGamma):
+            return self.log_gamma(node.this)
+        if isinstance(node, S.IsFinite):
+            return self.is_finite(node.this)
+        if isinstance(node, S.PreciseSum):
+            return self.precise_sum(node.this)
+        return node
+
+    # -- translations (override per engine) --------------------------------------------------
+    def log_gamma(self, x: exp.Expression) -> exp.Expression:
+        raise UnsupportedError(f"engine {self.name!r} has no log-gamma function")
+
+    def is_finite(self, x: exp.Expression) -> exp.Expression:
+        raise UnsupportedError(f"engine {self.name!r} cannot test doubles for NaN/Inf")
+
+    def precise_sum(self, x: exp.Expression) -> exp.Expression:
+        return exp.Sum(this=x)
+
+    def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
+        raise UnsupportedError(f"engine {self.name!r} has no quantile aggregate")
+
+    def file_scan(self, path: str) -> exp.Expression:
+        raise UnsupportedError(f"engine {self.name!r} cannot read files directly: {path}")
+
+    # -- types ----------------------------------------------------------------------------
+    def type_kind(self, type_name: str) -> str:
+        """Classify an engine type name as 'numeric', 'boolean', 'text' or 'other'."""
+        t = type_name.strip()
+        if _BOOL_TYPES.match(t):
+            return "boolean"
+        if _NUMERIC_TYPES.match(t):
+            return "numeric"
+        if _TEXT_TYPES.match(t):
+            return "text"
+        return "other"
+
+    # -- relations -------------------------------------------------------------------------
+    def table(self, name: str) -> exp.Expression:
+        """A table reference from a user-given (possibly dotted, possibly quoted) name."""
+        parts = _split_qualified(name)
+        if not parts or len(parts) > 3:
+            raise SpecError(f"cannot read {name!r} as a table name (use catalog.schema.table)")
+        ids = [S.ident(p) for p in parts]
+        kwargs: dict[str, exp.Expression] = {"this": ids[-1]}
+        if len(ids) >= 2:
+            kwargs["db"] = ids[-2]
+        if len(ids) == 3:
+            kwargs["catalog"] = ids[-3]
+        return exp.Table(**kwargs)
+
+    def query(self, sql: str) -> exp.Expression:
+        """Parse a user's SELECT query in this dialect (it runs as written)."""
+        import sqlglot
+        from sqlglot.errors import ParseError
+
+        try:
+            tree = sqlglot.parse_one(sql, read=self.sqlglot_name)
+        except ParseError as err:
+            first = str(err).splitlines()[0]
+            raise SpecError(
+                f"cannot parse the source query for {self.name}: {first}; "
+                "create a view with it and pass the view name instead") from None
+        if not isinstance(tree, exp.Query):
+            raise SpecError("the source query must be a single SELECT (or WITH ... SELECT)")
+        return exp.Subquery(this=tree)
+
+
+class DuckDBDialect(Dialect):
+    """DuckDB: lgamma, isfinite, read_parquet/read_csv_auto; IEEE doubles (1/0 = inf)."""
+
+    name = "duckdb"
+    sqlglot_name = "duckdb"
+
+    def log_gamma(self, x):
+        return exp.Anonymous(this="LGAMMA", expressions=[x])
+
+    def is_finite(self, x):
+        return exp.Anonymous(this="ISFINITE", expressions=[x])
+
+    def quantile(self, x, q):
+        return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
+
+    def file_scan(self, path: str) -> exp.Expression:
+        low = path.lower()
+        if low.endswith((".parquet", ".pq")) or ".parquet" in low:
+            fn = "read_parquet"
+        elif low.endswith((".json", ".ndjson")):
+            fn = "read_json_auto"
+        else:
+            fn = "read_csv_auto"
+        return exp.Table(this=exp.Anonymous(this=fn, expressions=[S.text(path)]))
+
+
+def _split_qualified(name: str) -> list[str]:
+    """Split ``a.b."c d"`` into parts, honouring double quotes ("" escapes a quote)."""
+    parts: list[str] = []
+    buf: list[str] = []
+    i, n = 0, len(name)
+    quoted_part = False
+    while i < n:
+        ch = name[i]
+        if ch == '"':
+            quoted_part = True
+            i += 1
+            while i < n:
+                if name[i] == '"':
+                    if i + 1 < n and name[i + 1] == '"':
+                        buf.append('"')
+                        i += 2
+                        continue
+                    break
+                buf.append(name[i])
+                i += 1
+            else:
+                raise SpecError(f"unbalanced double quote in name {name!r}")
+            i += 1
+            continue
+        if ch == ".":
+            parts.append("".join(buf) if quoted_part else "".join(buf).strip())
+            buf, quoted_part = [], False
+            i += 1
+            continue
+        buf.append(ch)
+        i += 1
+    parts.append("".join(buf) if quoted_part else "".join(buf).strip())
+    if any(p == "" for p in parts):
+        raise SpecError(f"empty part in name {name!r}")
+    return parts
+
+
+DIALECTS: dict[str, type[Dialect]] = {"duckdb": DuckDBDialect}

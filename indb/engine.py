@@ -1,0 +1,155 @@
+"""Engine adapters: connect, run SQL text, describe columns, fetch small results.
+
+Adapters know nothing about models. They translate driver errors into
+:class:`~indb.errors.EngineError` (keeping the SQL that failed) and run write-back
+statements in one transaction.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import time
+from collections.abc import Iterator
+from typing import Any
+
+import numpy as np
+
+from indb.dialect import Dialect, DuckDBDialect
+from indb.errors import EngineError, SpecError
+
+
+class Engine:
+    """Interface every engine adapter implements."""
+
+    dialect: Dialect
+
+    def execute(self, sql: str) -> list[tuple[Any, ...]]:
+        raise NotImplementedError
+
+    def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
+        """Run a query and return its columns as numpy arrays (small results only)."""
+        raise NotImplementedError
+
+    def describe(self, sql: str) -> list[tuple[str, str]]:
+        """(column name, type name) pairs of a query's result, without running it."""
+        raise NotImplementedError
+
+    @contextlib.contextmanager
+    def transaction(self) -> Iterator[None]:
+        raise NotImplementedError
+        yield
+
+    def close(self) -> None:
+        pass
+
+    #: seconds spent in the last execute/fetch (for iteration timing)
+    last_seconds: float = 0.0
+
+
+class DuckDBEngine(Engine):
+    """DuckDB adapter (embedded; a file, ``:memory:``, or an existing connection).
+
+    Parameters
+    ----------
+    database:
+        ``None`` or ``":memory:"`` for an in-memory database, a file path, or an open
+        ``duckdb.DuckDBPyConnection`` (which is used as is and not closed).
+    memory_limit, temp_directory, threads:
+        Passed to DuckDB's settings of the same names (out-of-core work spills to
+        ``temp_directory`` when ``memory_limit`` is reached).
+    """
+
+    def __init__(
+        self,
+        database: Any = None,
+        *,
+        read_only: bool = False,
+        memory_limit: str | None = None,
+        temp_directory: str | None = None,
+        threads: int | None = None,
+    ) -> None:
+        import duckdb
+
+        self._duckdb = duckdb
+        self.dialect = DuckDBDialect()
+        if isinstance(database, duckdb.DuckDBPyConnection):
+            self.con = database
+            self._owned = False
+        else:
+            path = ":memory:" if database in (None, "", ":memory:") else str(database)
+            try:
+                self.con = duckdb.connect(path, read_only=read_only)
+            except duckdb.Error as err:
+                raise EngineError(f"cannot open DuckDB database {path!r}: {err}") from err
+            self._owned = True
+        settings = {"memory_limit": memory_limit, "temp_directory": temp_directory,
+                    "threads": threads}
+        for key, val in settings.items():
+            if val is not None:
+                self._set(key, val)
+
+    def _set(self, key: str, value: Any) -> None:
+        # SET takes a literal; values are validated types (str/int), quoted as literals.
+        lit = str(int(value)) if isinstance(value, int) else "'" + str(value).replace("'", "''") + "'"
+        self.execute(f"SET {key} = {lit}")
+
+    def execute(self, sql: str) -> list[tuple[Any, ...]]:
+        t0 = time.perf_counter()
+        try:
+            rows = self.con.execute(sql).fetchall()
+        except self._duckdb.Error as err:
+            raise _wrap(err, sql) from err
+        self.last_seconds = time.perf_counter() - t0
+        return rows
+
+    def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
+        t0 = time.perf_counter()
+        try:
+            rel = self.con.sql(sql)
+            # DuckDB 2 renamed a relation's arrow() to to_arrow_table()
+            fetch = getattr(rel, "to_arrow_table", None) or rel.arrow
+            table = fetch()
+        except self._duckdb.Error as err:
+            raise _wrap(err, sql) from err
+        self.last_seconds = time.perf_counter() - t0
+        out: dict[str, np.ndarray] = {}
+        for name, column in zip(table.column_names, table.columns, strict=True):
+            out[name] = column.to_numpy(zero_copy_only=False)
+        return out
+
+    def describe(self, sql: str) -> list[tuple[str, str]]:
+        try:
+            rel = self.con.sql(sql)
+            return [(str(n), str(t)) for n, t in zip(rel.columns, rel.types, strict=True)]
+        except self._duckdb.Error as err:
+            raise _wrap(err, sql) from err
+
+    @contextlib.contextmanager
+    def transaction(self) -> Iterator[None]:
+        self.execute("BEGIN TRANSACTION")
+        try:
+            yield
+        except BaseException:
+            with contextlib.suppress(Exception):
+                self.con.execute("ROLLBACK")
+            raise
+        self.execute("COMMIT")
+
+    def close(self) -> None:
+        if self._owned:
+            self.con.close()
+
+
+def _wrap(err: Exception, sql: str) -> EngineError:
+    msg = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+    return EngineError(f"DuckDB failed: {msg}", sql=sql)
+
+
+def connect(db: Any = None, **settings: Any) -> Engine:
+    """Open an engine from ``db``: None/path/DuckDB connection, or an :class:`Engine`."""
+    if isinstance(db, Engine):
+        return db
+    if isinstance(db, str) and "://" in db:
+        raise SpecError(f"database URL {db!r} names an engine this version does not support; "
+                        "give a DuckDB file path or omit --db for an in-memory database")
+    return DuckDBEngine(db, **settings)

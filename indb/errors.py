@@ -1,0 +1,57 @@
+"""Error and warning hierarchy of indb.
+
+Only the CLI turns these into exit codes and one-line messages; library code raises them
+with messages that name the option or column, the value seen and what is allowed.
+"""
+
+from __future__ import annotations
+
+
+class IndbError(Exception):
+    """Root of every error raised by indb."""
+
+
+class SpecError(IndbError, ValueError):
+    """The model declaration or the input data is not acceptable (fix the input, then rerun)."""
+
+
+class EngineError(IndbError):
+    """The database engine failed while running generated SQL.
+
+    Attributes
+    ----------
+    sql:
+        The statement that failed, as sent to the engine.
+    """
+
+    def __init__(self, message: str, sql: str | None = None) -> None:
+        super().__init__(message)
+        self.sql = sql
+
+
+class UnsupportedError(IndbError):
+    """The chosen engine cannot express something the model needs."""
+
+
+class NonConvergenceError(IndbError):
+    """IRLS did not converge and strict mode was requested."""
+
+
+class RegistryError(IndbError):
+    """The in-database model registry is missing, inconsistent or in conflict."""
+
+
+class IndbWarning(UserWarning):
+    """Root of indb's warnings."""
+
+
+class ConvergenceWarning(IndbWarning):
+    """IRLS stopped at the iteration cap before the deviance settled."""
+
+
+class SeparationWarning(IndbWarning):
+    """Binomial fit shows (quasi-)separation: estimates drift and fitted probabilities reach 0 or 1."""
+
+
+class AliasingWarning(IndbWarning):
+    """Some design columns are linear combinations of others and were set aside."""

@@ -1,0 +1,522 @@
+"""The fitting procedure: pre-fit scans, the IRLS loop, theta estimation, final statistics.
+
+This module wires the layers: it asks :mod:`indb.plan` for syntax trees, has the engine's
+dialect render them, runs them through the engine adapter and hands the small results to
+:mod:`indb.solver`. Each IRLS iteration is exactly one aggregate query.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import time
+import warnings
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+
+from indb import plan as P
+from indb import solver
+from indb.design import (
+    INTERCEPT, Design, DesignColumn, Factor, Inputs, Value, build_design, factor_sets,
+    plan_values, resolve_inputs,
+)
+from indb.engine import Engine
+from indb.errors import (
+    AliasingWarning, ConvergenceWarning, NonConvergenceError, SeparationWarning, SpecError,
+)
+from indb.families import NegativeBinomial, Poisson
+from indb.results import Coefficient, FitResult, IterationRecord
+from indb.spec import ModelSpec
+from indb.sqlexpr import Expr
+
+MAX_HALVINGS = 30
+EDGE = 1e-10  # fitted probabilities this close to 0 or 1 signal separation
+
+Progress = Callable[[IterationRecord], None] | None
+
+
+@dataclass
+class _Run:
+    """Mutable bookkeeping for one fit."""
+
+    engine: Engine
+    progress: Progress
+    log: list[IterationRecord]
+
+    def query(self, tree) -> dict[str, np.ndarray]:
+        return self.engine.fetch_columns(self.engine.dialect.render(tree))
+
+    def one_row(self, tree) -> dict[str, object]:
+        cols = self.query(tree)
+        return {k: (v[0] if len(v) else None) for k, v in cols.items()}
+
+    def record(self, dev: float, change: float, halvings: int, seconds: float) -> None:
+        rec = IterationRecord(iteration=len(self.log) + 1, deviance=dev,
+                              relative_change=change, step_halvings=halvings, seconds=seconds)
+        self.log.append(rec)
+        if self.progress is not None:
+            self.progress(rec)
+
+
+@dataclass(frozen=True)
+class _IrlsState:
+    beta: np.ndarray
+    sums: solver.Sums
+    solution: solver.Solution
+    converged: bool
+    iterations: int
+
+
+# -- pre-fit ---------------------------------------------------------------------------------
+
+
+def _describe(spec: ModelSpec, engine: Engine) -> Inputs:
+    d = engine.dialect
+    probe = P.PlanContext(spec, _empty_inputs(spec), d)
+    columns = engine.describe(d.render(P.describe_query(probe)))
+    return resolve_inputs(spec, columns, d.type_kind, d.sqlglot_name)
+
+
+def _empty_inputs(spec: ModelSpec) -> Inputs:
+    return Inputs(response=spec.response, response_kind="numeric", columns=(), factors=(),
+                  numerics=(), terms=(), offset=None, weight=None, frequency_weight=None,
+                  trials=None, model_columns=())
+
+
+def _count_nulls(ctx: P.PlanContext, run: _Run) -> tuple[int, int, dict[str, int]]:
+    row = run.one_row(P.null_count_query(ctx))
+    n_total = int(row["n_total"] or 0)
+    n_kept = int(row["n_kept"] or 0)
+    by_col: dict[str, int] = {}
+    for i, (label, _) in enumerate(ctx.null_items()):
+        k = int(row[f"null_{i}"] or 0)
+        if k:
+            by_col[label] = k
+    if n_total == 0:
+        raise SpecError(f"the source {ctx.spec.source.label()!r} has no rows")
+    for label, k in by_col.items():
+        if k == n_total:
+            raise SpecError(f"{_what(label)} is NULL in all {n_total} rows; leave it out "
+                            f"(exclude=[{label!r}], CLI --exclude) or fill it in the query")
+    if n_kept == 0:
+        raise SpecError(f"no rows left: every one of the {n_total} rows has a NULL in some model "
+                        f"column (NULL counts: {by_col})")
+    if ctx.spec.on_null == "error" and n_kept < n_total:
+        raise SpecError(f"{n_total - n_kept} rows have NULLs in model columns (counts by column: "
+                        f"{by_col}); clean them in the query or allow exclusion (on_null='exclude')")
+    return n_total, n_kept, by_col
+
+
+def _what(label: str) -> str:
+    return label if label.endswith("expression") else f"column {label!r}"
+
+
+def _knots(ctx: P.PlanContext, run: _Run) -> dict[str, tuple[float, ...]]:
+    if not ctx.inputs.spline_columns:
+        return {}
+    row = run.one_row(P.knots_query(ctx))
+    out: dict[str, tuple[float, ...]] = {}
+    for c, k in ctx.inputs.spline_columns:
+        ks = tuple(float(row[f"k_{c}_{i}"]) for i in range(len(P.knot_quantiles(k))))
+        if len(set(ks)) < len(ks):
+            raise SpecError(f"spline column {c!r} has too few distinct values for {k} knots "
+                            f"(quantile knots {ks}); use fewer knots")
+        out[c] = ks
+    return out
+
+
+@dataclass(frozen=True)
+class _Summary:
+    n: int
+    sum_f: float
+    sum_fpw: float
+    ybar: float
+    n_df: float
+    n_zero_weight: int
+    values: tuple[Value, ...]
+    level_counts: tuple[int, ...]
+
+
+def _summarize(ctx: P.PlanContext, run: _Run, values: tuple[Value, ...],
+               knots: dict[str, tuple[float, ...]]) -> _Summary:
+    row = run.one_row(P.summary_query(ctx, values, knots))
+    n = int(row["n"])
+    for i, (stem, _) in enumerate(P.domain_checks(ctx)):
+        bad = int(row[f"chk_{i}"] or 0)
+        if bad:
+            detail = ""
+            if "response" in stem and "NaN" not in stem:
+                detail = f" (min {row['y_min']!r}, max {row['y_max']!r})"
+            raise SpecError(f"{stem} in {bad} of {n} rows{detail}; filter or fix those rows in "
+                            "the source query")
+    sum_fpw = float(row["sum_fpw"] or 0.0)
+    if not sum_fpw > 0:
+        raise SpecError("every row has zero weight (prior weight x frequency weight): "
+                        "nothing to fit")
+    ybar = float(row["sum_fpwy"]) / sum_fpw
+    fam = ctx.spec.family
+    if fam.positive_mean and not ybar > 0:
+        raise SpecError(f"family {fam.name!r} needs a positive mean response; column "
+                        f"{ctx.inputs.response!r} is 0 in every row used")
+    if fam.unit_mean and not 0 < ybar < 1 and ctx.spec.intercept:
+        raise SpecError(f"column {ctx.inputs.response!r} is {int(round(ybar))} in every row "
+                        "used: a binomial model needs both outcomes")
+    out_values = [values[0]]
+    for v in values[1:]:
+        mean = float(row[f"{v.alias}_mean"])
+        sd = float(row[f"{v.alias}_sd"] or 0.0)
+        rms = math.sqrt(max(float(row[f"{v.alias}_ms"]), 0.0))
+        if v.centered:
+            if not sd > 0 or sd < 1e-13 * max(abs(mean), 1e-300):
+                raise SpecError(
+                    f"predictor {v.label!r} is constant ({mean:g}) over the {n} rows used, so it "
+                    f"cannot be told apart from the intercept; leave it out (exclude=[...], "
+                    f"CLI --exclude)")
+            out_values.append(dataclasses.replace(v, center=mean, scale=sd))
+        else:
+            if not rms > 0:
+                raise SpecError(f"predictor {v.label!r} is 0 in every row used; leave it out")
+            out_values.append(dataclasses.replace(v, scale=rms))
+    counts = tuple(int(row[f"levels_{i}"]) for i in range(len(ctx.inputs.factors)))
+    for c, k in zip(ctx.inputs.factors, counts, strict=True):
+        if k > ctx.spec.max_levels:
+            raise SpecError(
+                f"categorical column {c!r} has {k} levels, over the limit of "
+                f"{ctx.spec.max_levels}; group rare levels in the query, treat it as numeric, "
+                f"or raise max_levels (CLI --max-levels)")
+    return _Summary(n=n, sum_f=float(row["sum_f"]), sum_fpw=sum_fpw, ybar=ybar,
+                    n_df=float(row["sum_f_pos"]), n_zero_weight=int(row["n_zero_weight"]),
+                    values=tuple(out_values), level_counts=counts)
+
+
+def _factors(ctx: P.PlanContext, run: _Run) -> tuple[Factor, ...]:
+    if not ctx.inputs.factors:
+        return ()
+    cols = run.query(P.levels_query(ctx))
+    ref = dict(ctx.spec.reference)
+    out: list[Factor] = []
+    for i, c in enumerate(ctx.inputs.factors):
+        sel = cols["factor"] == i
+        levels = [str(x) for x in cols["level"][sel]]
+        counts = [int(x) for x in cols["n"][sel]]
+        order = sorted(range(len(levels)), key=lambda k: levels[k])
+        levels = [levels[k] for k in order]
+        counts = [counts[k] for k in order]
+        if c in ref:
+            if ref[c] not in levels:
+                raise SpecError(f"reference level {ref[c]!r} of column {c!r} does not occur in "
+                                f"the rows used; levels are {levels[:20]}")
+            reference = ref[c]
+        else:
+            top = max(counts)
+            reference = next(lv for lv, k in zip(levels, counts, strict=True) if k == top)
+        is_main = any(t.factors == (c,) and not t.numerics for t in ctx.inputs.terms)
+        if len(levels) < 2 and is_main and ctx.spec.intercept:
+            raise SpecError(f"categorical column {c!r} has a single level ({levels[0]!r}) in "
+                            "the rows used; leave it out (exclude=[...], CLI --exclude)")
+        out.append(Factor(column=c, alias=f"f{i}", levels=tuple(levels), reference=reference,
+                          counts=tuple(counts)))
+    return tuple(out)
+
+
+def _combos(ctx: P.PlanContext, run: _Run, factors: tuple[Factor, ...]
+            ) -> dict[tuple[str, ...], set[tuple[str, ...]]]:
+    out: dict[tuple[str, ...], set[tuple[str, ...]]] = {}
+    for fs in factor_sets(ctx.inputs.terms, [f.column for f in factors]):
+        cols = run.query(P.combos_query(ctx, fs))
+        out[fs] = {tuple(str(cols[f"l{i}"][r]) for i in range(len(fs)))
+                   for r in range(len(cols["n"]))}
+    return out
+
+
+# -- IRLS ------------------------------------------------------------------------------------
+
+
+def _fallback_beta(ctx: P.PlanContext, design: Design, ybar: float) -> np.ndarray:
+    """Intercept-only coefficients g(ybar): where a failing first step halves toward."""
+    beta = np.zeros(design.p)
+    if design.intercept:
+        link = ctx.spec.link
+        mu = min(max(ybar, 1e-6), 1 - 1e-6) if ctx.spec.family.unit_mean else ybar
+        with np.errstate(all="ignore"):
+            g = float(link.link(np.array([mu]))[0])
+        beta[0] = g if math.isfinite(g) else 0.0
+    return beta
+
+
+def _irls(ctx: P.PlanContext, design: Design, run: _Run, ybar: float, *,
+          start: np.ndarray | None = None, null_mu: Expr | None = None,
+          ) -> tuple[_IrlsState, float | None]:
+    """Iterate scans until the relative deviance change drops below ``spec.tol``.
+
+    Returns the state at the last scanned coefficients and, when ``null_mu`` is given, the
+    null deviance computed in the first scan.
+    """
+    spec = ctx.spec
+    extra = ("nulldev",) if null_mu is not None else ()
+    edge = ("edge",) if spec.family.unit_mean else ()
+
+    def scan(beta: np.ndarray | None, with_null: bool) -> solver.Sums:
+        tree = P.gram_query(ctx, design, beta, ybar=ybar,
+                            null_mu=null_mu if with_null else None)
+        return solver.assemble(design, run.query(tree), extra if with_null else ())
+
+    t0 = time.perf_counter()
+    null_dev: float | None = None
+    if start is None:
+        sums = scan(None, True)
+        if null_mu is not None:
+            null_dev = sums.extras["nulldev"]
+        if sums.bad:
+            raise SpecError(
+                f"cannot find valid starting values for family {spec.family.name!r} with link "
+                f"{spec.link.describe()!r} ({sums.bad} rows give an invalid mean); "
+                "try another link or starting values")
+        dev_old = math.inf
+        beta_prev = _fallback_beta(ctx, design, ybar)
+        run.record(sums.deviance, math.nan, 0, time.perf_counter() - t0)
+        sol = solver.solve(sums.xtwx, sums.xtwz)
+        beta = sol.beta
+    else:
+        beta = np.asarray(start, float)
+        beta_prev = beta.copy()
+        dev_old = math.inf
+        sol = None
+    converged = False
+    iterations = 0
+    need_null = start is not None and null_mu is not None
+    for _ in range(spec.max_iter):
+        iterations += 1
+        halvings = 0
+        t0 = time.perf_counter()
+        while True:
+            sums = scan(beta, need_null)
+            if need_null:
+                null_dev = sums.extras["nulldev"]
+                need_null = False
+            rises = sums.deviance > dev_old * (1 + 1e-9) + 1e-12 if math.isfinite(dev_old) else False
+            if sums.bad == 0 and math.isfinite(sums.deviance) and not rises:
+                break
+            if halvings >= MAX_HALVINGS:
+                raise SpecError(
+                    f"IRLS step-halving failed after {MAX_HALVINGS} halvings (deviance "
+                    f"{sums.deviance:g}, {sums.bad} rows with invalid means); the model may be "
+                    "unsuitable for the data (check the link and family)")
+            beta = 0.5 * (beta + beta_prev)
+            halvings += 1
+        change = solver.relative_change(sums.deviance, dev_old) if math.isfinite(dev_old) else math.inf
+        run.record(sums.deviance, change, halvings, time.perf_counter() - t0)
+        sol = solver.solve(sums.xtwx, sums.xtwz)
+        if change < spec.tol:
+            converged = True
+            break
+        dev_old = sums.deviance
+        beta_prev = beta
+        beta = sol.beta
+    assert sol is not None
+    return _IrlsState(beta=beta, sums=sums, solution=sol, converged=converged,
+                      iterations=iterations), null_dev
+
+
+def _null_deviance(ctx: P.PlanContext, design: Design, run: _Run, ybar: float
+                   ) -> tuple[Expr | None, bool]:
+    """How to get the null deviance: a per-row null mean for the first scan, or a refit."""
+    spec = ctx.spec
+    if spec.intercept and spec.offset is not None:
+        return None, True  # intercept-only model with the offset must be refitted
+    if spec.intercept:
+        from indb import sqlexpr as S
+
+        return S.num(min(max(ybar, 1e-300), 1 - 2.2e-16) if spec.family.unit_mean else ybar), False
+    return P.offset_null_mu(ctx), False
+
+
+def _intercept_only(design: Design) -> Design:
+    return Design(intercept=True, factors=(), values=(design.values[0],),
+                  columns=(DesignColumn(term=INTERCEPT, factors=(), levels=(), value=0,
+                                        source_columns=()),))
+
+
+def _estimate_theta(ctx: P.PlanContext, design: Design, run: _Run, summary: _Summary
+                    ) -> tuple[float, np.ndarray]:
+    """Alternate IRLS at fixed theta and Newton steps on theta at fixed means."""
+    poisson_ctx = dataclasses.replace(
+        ctx, spec=dataclasses.replace(ctx.spec, family=Poisson()))
+    state, _ = _irls(poisson_ctx, design, run, summary.ybar)
+    beta = state.beta
+    hist = run.query(P.response_histogram_query(ctx, design))
+    hy, hc = np.asarray(hist["y"], float), np.asarray(hist["c"], float)
+    total = float(hc.sum())
+    row = run.one_row(P.theta_query(ctx, design, beta, 1.0))
+    mom = float(row["mom"])
+    theta = total / mom if mom > 0 else 1e3
+    theta = min(max(theta, 1e-4), 1e6)
+    for _ in range(50):
+        theta_outer = theta
+        for _ in range(25):
+            row = run.one_row(P.theta_query(ctx, design, beta, theta))
+            new = solver.theta_step(theta, hy, hc, total, float(row["a"]), float(row["b"]))
+            done = abs(math.log(new / theta)) < 1e-10
+            theta = new
+            if done:
+                break
+        nb_ctx = dataclasses.replace(
+            ctx, spec=dataclasses.replace(ctx.spec, family=NegativeBinomial(theta=theta)))
+        state, _ = _irls(nb_ctx, design, run, summary.ybar, start=beta)
+        beta = state.beta
+        if abs(theta - theta_outer) / theta < 1e-9:
+            break
+        if theta > 1e8:
+            warnings.warn("negative binomial theta runs off to infinity: the data show no "
+                          "overdispersion; a Poisson model fits as well", ConvergenceWarning,
+                          stacklevel=3)
+            break
+    return theta, beta
+
+
+# -- the whole fit -----------------------------------------------------------------------------
+
+
+def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitResult:
+    """Fit ``spec`` on ``engine``; see :func:`indb.fit` for the user-facing description."""
+    t_start = time.perf_counter()
+    run = _Run(engine=engine, progress=progress, log=[])
+    inputs = _describe(spec, engine)
+    ctx = P.PlanContext(spec, inputs, engine.dialect)
+    n_total, n_kept, by_col = _count_nulls(ctx, run)
+    knots = _knots(ctx, run)
+    summary = _summarize(ctx, run, plan_values(inputs, spec.intercept), knots)
+    factors = _factors(ctx, run)
+    combos = _combos(ctx, run, factors)
+    design = build_design(inputs, spec.intercept, summary.values, factors, combos,
+                          tuple(knots.items()))
+    if design.p == 0:
+        raise SpecError("the model has no coefficients to estimate")
+
+    warn_msgs: list[str] = []
+    if spec.estimate_theta:
+        theta, beta0 = _estimate_theta(ctx, design, run, summary)
+        spec = dataclasses.replace(spec, family=NegativeBinomial(theta=theta))
+        ctx = dataclasses.replace(ctx, spec=spec)
+        start = beta0
+    else:
+        start = _start_from(spec, design, summary)
+    null_mu, refit_null = _null_deviance(ctx, design, run, summary.ybar)
+    state, null_dev = _irls(ctx, design, run, summary.ybar, start=start, null_mu=null_mu)
+    if refit_null:
+        null_state, _ = _irls(ctx, _intercept_only(design), run, summary.ybar)
+        null_dev = null_state.sums.deviance
+    if not state.converged:
+        msg = (f"IRLS did not converge in {spec.max_iter} iterations (last relative deviance "
+               f"change {run.log[-1].relative_change:.3g}, tolerance {spec.tol:g})")
+        if spec.strict:
+            raise NonConvergenceError(msg)
+        warnings.warn(msg, ConvergenceWarning, stacklevel=2)
+        warn_msgs.append(msg)
+    return _result(ctx, design, run, state, summary, n_total, n_kept, by_col,
+                   float(null_dev) if null_dev is not None else math.nan, warn_msgs, t_start)
+
+
+def _start_from(spec: ModelSpec, design: Design, summary: _Summary) -> np.ndarray | None:
+    """Warm-start coefficients given on the original scale (by term name), standardized."""
+    if not spec.start:
+        return None
+    given = dict(spec.start)
+    unknown = sorted(set(given) - set(design.terms))
+    if unknown:
+        raise SpecError(f"start values name unknown terms {unknown[:5]}")
+    orig = np.array([given.get(t, 0.0) for t in design.terms])
+    t = solver.back_transform(design)
+    return np.linalg.solve(t, orig)
+
+
+def _result(ctx, design, run, state, summary, n_total, n_kept, by_col, null_dev, warn_msgs,
+            t_start) -> FitResult:
+    spec = ctx.spec
+    fam = spec.family
+    sol = state.solution
+    sums = state.sums
+    rank = int((~sol.aliased).sum())
+    df_resid = summary.n_df - rank
+    if fam.dispersion_fixed:
+        dispersion = 1.0
+    else:
+        dispersion = sums.pearson / df_resid if df_resid > 0 else math.nan
+    t = solver.back_transform(design)
+    beta_std = np.where(sol.aliased, 0.0, state.beta)
+    est = t @ beta_std
+    cov = dispersion * (t @ sol.inv_info @ t.T)
+    inf = solver.wald(est, cov, sol.aliased, None if fam.dispersion_fixed else df_resid,
+                      spec.confidence)
+    coefs = tuple(
+        Coefficient(term=c.term, columns=tuple(c.source_columns),
+                    levels=tuple(_levels_for(design, c)), estimate=float(inf.estimate[j]),
+                    std_error=float(inf.std_error[j]), statistic=float(inf.statistic[j]),
+                    p_value=float(inf.p_value[j]), ci_low=float(inf.ci_low[j]),
+                    ci_high=float(inf.ci_high[j]), aliased=bool(sol.aliased[j]))
+        for j, c in enumerate(design.columns))
+    aliased_terms = tuple(c.term for c, a in zip(design.columns, sol.aliased, strict=True) if a)
+    if aliased_terms:
+        msg = (f"{len(aliased_terms)} design column(s) are linear combinations of earlier ones "
+               f"and were set aside: {list(aliased_terms)[:10]}")
+        warnings.warn(msg, AliasingWarning, stacklevel=3)
+        warn_msgs.append(msg)
+    if fam.unit_mean:
+        edge = _edge_rows(ctx, design, run, state.beta)
+        if edge:
+            msg = (f"{edge} rows have fitted probabilities within {EDGE:g} of 0 or 1: the data "
+                   "are (quasi-)separated, so some estimates and standard errors are unreliable "
+                   "(estimates drift to infinity); consider merging levels or dropping the "
+                   "separating predictor")
+            warnings.warn(msg, SeparationWarning, stacklevel=3)
+            warn_msgs.append(msg)
+    ll = _log_likelihood(ctx, design, run, state.beta, sums, summary, dispersion)
+    k = rank + (0 if fam.dispersion_fixed else 1)
+    aic = -2.0 * ll + 2.0 * k
+    bic = -2.0 * ll + math.log(summary.n_df) * k if summary.n_df > 0 else math.nan
+    return FitResult(
+        family=fam.name, link=spec.link.describe(), response=spec.response,
+        source=spec.source.label(), coefficients=coefs, covariance=inf.covariance,
+        deviance=sums.deviance, null_deviance=null_dev, pearson_chi2=sums.pearson,
+        dispersion=dispersion, dispersion_estimated=not fam.dispersion_fixed,
+        log_likelihood=ll, aic=aic, bic=bic, df_model=rank - (1 if design.intercept else 0),
+        df_resid=df_resid, n_used=n_kept, n_excluded=n_total - n_kept,
+        n_weighted=summary.sum_f, iterations=len(run.log), converged=state.converged,
+        iteration_log=tuple(run.log), test="z" if fam.dispersion_fixed else "t",
+        path=f"grouped scan ({sums.cells} cells)" if design.factors else "single-group scan",
+        seconds=time.perf_counter() - t_start, family_params=fam.params(),
+        excluded_by_column=by_col, aliased_terms=aliased_terms,
+        condition_number=sol.condition_number, warnings=tuple(warn_msgs),
+        confidence=spec.confidence, spec=spec.to_dict(), design=design.to_dict(),
+    )
+
+
+def _levels_for(design: Design, c: DesignColumn) -> list[str | None]:
+    by_col = {design.factors[i].column: lv for i, lv in zip(c.factors, c.levels, strict=True)}
+    return [by_col.get(col) for col in c.source_columns]
+
+
+def _edge_rows(ctx, design, run, beta) -> int:
+    from indb import sqlexpr as S
+
+    mean = P._mean_stage(ctx, design, P._eta_from_beta(ctx, design, beta))
+    mu = S.col("mu")
+    cond = S.and_(S.gt(S.col("pw"), S.num(0.0)),
+                  S.or_(S.le(mu, S.num(EDGE)), S.ge(mu, S.num(1 - EDGE))))
+    row = run.one_row(S.select([S.alias(S.sum_(S.flag(cond)), "edge")], S.subquery(mean, "m")))
+    return int(row["edge"] or 0)
+
+
+def _log_likelihood(ctx, design, run, beta, sums, summary, dispersion) -> float:
+    fam = ctx.spec.family
+    phi = dispersion
+    if fam.name == "gaussian":
+        phi = sums.deviance / summary.n_df  # maximum-likelihood dispersion
+    if not (math.isfinite(phi) and phi > 0):
+        return math.nan
+    tree = P.loglik_query(ctx, design, beta, phi)
+    if tree is None:
+        return math.nan
+    return float(run.one_row(tree)["ll"])

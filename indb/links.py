@@ -1,0 +1,365 @@
+"""Link functions: eta = g(mu), in SQL (syntax trees) and in numpy.
+
+Each link states its formula, the inverse ``mu = g^-1(eta)`` and ``dmu/deta``. The SQL forms
+clamp arguments of ``exp`` so no engine overflows (PostgreSQL raises on overflow where
+DuckDB and Spark return infinity); rows whose eta leaves the link's valid domain are flagged
+by :meth:`Link.eta_ok` so IRLS can halve its step instead of producing NaN.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import special, stats
+
+from indb import sqlexpr as S
+from indb.sqlexpr import Expr
+
+EXP_CAP = 700.0  # exp(700) ~ 1e304 is still finite in double precision
+UNIT_ETA_CAP = 37.0  # |eta| beyond which logistic-type means round to 0 or 1
+
+
+def _normal_cdf_sql(x: Expr) -> Expr:
+    """Standard normal CDF as a portable expression.
+
+    Hart's (1968) rational approximation as published by G. West, "Better approximations
+    to cumulative normal functions" (Wilmott, 2005); absolute error ~1e-16 (checked against
+    scipy.special.ndtr in tests).
+    """
+    xa = S.abs_(x)
+    e = S.exp_(S.div(S.neg(S.mul(xa, xa)), S.num(2.0)))
+    num_c = [3.52624965998911e-02, 0.700383064443688, 6.37396220353165, 33.912866078383,
+             112.079291497871, 221.213596169931, 220.206867912376]
+    den_c = [8.83883476483184e-02, 1.75566716318264, 16.064177579207, 86.7807322029461,
+             296.564248779674, 637.333633378831, 793.826512519948, 440.413735824752]
+
+    def horner(coefs: list[float]) -> Expr:
+        acc: Expr = S.num(coefs[0])
+        for c in coefs[1:]:
+            acc = S.add(S.mul(acc, xa), S.num(c))
+        return acc
+
+    small = S.div(S.mul(e, horner(num_c)), horner(den_c))
+    b: Expr = S.add(xa, S.num(0.65))
+    for k in (4.0, 3.0, 2.0, 1.0):
+        b = S.add(xa, S.div(S.num(k), b))
+    big = S.div(S.div(e, b), S.num(2.506628274631))
+    tail = S.case([(S.gt(xa, S.num(37.0)), S.num(0.0)),
+                   (S.lt(xa, S.num(7.07106781186547)), small)], big)
+    return S.case([(S.gt(x, S.num(0.0)), S.sub(S.num(1.0), tail))], tail)
+
+
+@dataclass(frozen=True)
+class Link:
+    """Base class: a monotone link g with inverse and derivative.
+
+    Class attributes declare the domain: ``unit_mean`` links map every real eta into (0, 1);
+    ``positive_mean`` links map every valid eta to a positive mean.
+    """
+
+    name: str = "link"
+    unit_mean: bool = False
+    positive_mean: bool = False
+
+    # SQL forms ---------------------------------------------------------------------------
+    def link_sql(self, mu: Expr) -> Expr:
+        raise NotImplementedError
+
+    def inverse_sql(self, eta: Expr) -> Expr:
+        raise NotImplementedError
+
+    def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
+        """dmu/deta at eta (``mu`` is the already computed inverse)."""
+        raise NotImplementedError
+
+    def eta_ok(self, eta: Expr) -> Expr | None:
+        """Condition for a valid eta (None: every finite eta is valid)."""
+        return None
+
+    safe_eta: float = 1.0  # substituted where eta is invalid, so formulas stay finite
+
+    # numpy forms -------------------------------------------------------------------------
+    def link(self, mu: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
+
+    def inverse(self, eta: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
+
+    def mu_eta(self, eta: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
+
+    def describe(self) -> str:
+        return self.name
+
+
+@dataclass(frozen=True)
+class IdentityLink(Link):
+    """g(mu) = mu; valid everywhere."""
+
+    name: str = "identity"
+
+    def link_sql(self, mu: Expr) -> Expr:
+        return mu
+
+    def inverse_sql(self, eta: Expr) -> Expr:
+        return eta
+
+    def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
+        return S.num(1.0)
+
+    def link(self, mu):
+        return np.asarray(mu, float)
+
+    def inverse(self, eta):
+        return np.asarray(eta, float)
+
+    def mu_eta(self, eta):
+        return np.ones_like(np.asarray(eta, float))
+
+
+@dataclass(frozen=True)
+class LogLink(Link):
+    """g(mu) = ln(mu); mu = exp(eta) > 0. eta above 700 is flagged (exp would overflow)."""
+
+    name: str = "log"
+    positive_mean: bool = True
+
+    def link_sql(self, mu: Expr) -> Expr:
+        return S.ln(mu)
+
+    def inverse_sql(self, eta: Expr) -> Expr:
+        return S.exp_(S.least(eta, S.num(EXP_CAP)))
+
+    def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
+        return mu
+
+    def eta_ok(self, eta: Expr) -> Expr | None:
+        return S.le(eta, S.num(EXP_CAP))
+
+    def link(self, mu):
+        return np.log(mu)
+
+    def inverse(self, eta):
+        return np.exp(eta)
+
+    def mu_eta(self, eta):
+        return np.exp(eta)
+
+
+@dataclass(frozen=True)
+class LogitLink(Link):
+    """g(mu) = ln(mu / (1 - mu)); mu = 1 / (1 + exp(-eta)) in (0, 1)."""
+
+    name: str = "logit"
+    unit_mean: bool = True
+
+    def link_sql(self, mu: Expr) -> Expr:
+        return S.ln(S.div(mu, S.sub(S.num(1.0), mu)))
+
+    def inverse_sql(self, eta: Expr) -> Expr:
+        e = S.clamp(eta, -EXP_CAP, EXP_CAP)
+        return S.div(S.num(1.0), S.add(S.num(1.0), S.exp_(S.neg(e))))
+
+    def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
+        return S.mul(mu, S.sub(S.num(1.0), mu))
+
+    def link(self, mu):
+        return special.logit(mu)
+
+    def inverse(self, eta):
+        return special.expit(eta)
+
+    def mu_eta(self, eta):
+        m = special.expit(eta)
+        return m * (1 - m)
+
+
+@dataclass(frozen=True)
+class ProbitLink(Link):
+    """g(mu) = Phi^-1(mu), the standard normal quantile; mu = Phi(eta)."""
+
+    name: str = "probit"
+    unit_mean: bool = True
+
+    def link_sql(self, mu: Expr) -> Expr:
+        # Only used for starting values, where an approximation is enough: the logistic
+        # quantile scaled by sqrt(pi/8) stays within 0.1 of Phi^-1 on [0.01, 0.99].
+        return S.mul(S.num(math.sqrt(math.pi / 8.0)), LogitLink().link_sql(mu))
+
+    def inverse_sql(self, eta: Expr) -> Expr:
+        return _normal_cdf_sql(eta)
+
+    def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
+        e = S.clamp(eta, -UNIT_ETA_CAP, UNIT_ETA_CAP)
+        return S.div(S.exp_(S.div(S.neg(S.mul(e, e)), S.num(2.0))),
+                     S.num(math.sqrt(2.0 * math.pi)))
+
+    def link(self, mu):
+        return special.ndtri(mu)
+
+    def inverse(self, eta):
+        return special.ndtr(eta)
+
+    def mu_eta(self, eta):
+        return stats.norm.pdf(eta)
+
+
+@dataclass(frozen=True)
+class CLogLogLink(Link):
+    """g(mu) = ln(-ln(1 - mu)); mu = 1 - exp(-exp(eta))."""
+
+    name: str = "cloglog"
+    unit_mean: bool = True
+
+    def link_sql(self, mu: Expr) -> Expr:
+        return S.ln(S.neg(S.ln(S.sub(S.num(1.0), mu))))
+
+    def inverse_sql(self, eta: Expr) -> Expr:
+        e = S.clamp(eta, -EXP_CAP, UNIT_ETA_CAP)
+        return S.sub(S.num(1.0), S.exp_(S.neg(S.exp_(e))))
+
+    def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
+        e = S.clamp(eta, -EXP_CAP, UNIT_ETA_CAP)
+        return S.exp_(S.sub(e, S.exp_(e)))
+
+    def link(self, mu):
+        return np.log(-np.log1p(-np.asarray(mu, float)))
+
+    def inverse(self, eta):
+        return -np.expm1(-np.exp(eta))
+
+    def mu_eta(self, eta):
+        return np.exp(eta - np.exp(eta))
+
+
+@dataclass(frozen=True)
+class CauchitLink(Link):
+    """g(mu) = tan(pi (mu - 1/2)); mu = 1/2 + atan(eta) / pi."""
+
+    name: str = "cauchit"
+    unit_mean: bool = True
+
+    def link_sql(self, mu: Expr) -> Expr:
+        return S.fn("tan", S.mul(S.num(math.pi), S.sub(mu, S.num(0.5))))
+
+    def inverse_sql(self, eta: Expr) -> Expr:
+        return S.add(S.num(0.5), S.div(S.fn("atan", eta), S.num(math.pi)))
+
+    def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
+        return S.div(S.num(1.0), S.mul(S.num(math.pi), S.add(S.num(1.0), S.mul(eta, eta))))
+
+    def link(self, mu):
+        return np.tan(np.pi * (np.asarray(mu, float) - 0.5))
+
+    def inverse(self, eta):
+        return 0.5 + np.arctan(eta) / np.pi
+
+    def mu_eta(self, eta):
+        return 1.0 / (np.pi * (1.0 + np.asarray(eta, float) ** 2))
+
+
+@dataclass(frozen=True)
+class PowerLink(Link):
+    """g(mu) = mu ** exponent (exponent != 0; exponent 0 means the log link).
+
+    The inverse eta ** (1 / exponent) needs eta > 0, which is the valid domain.
+    ``inverse`` (exponent -1), ``inverse_squared`` (-2) and ``sqrt`` (1/2) are named cases.
+    """
+
+    name: str = "power"
+    exponent: float = 1.0
+    positive_mean: bool = True
+
+    def link_sql(self, mu: Expr) -> Expr:
+        if self.exponent == -1.0:
+            return S.div(S.num(1.0), mu)
+        if self.exponent == 0.5:
+            return S.sqrt(mu)
+        return S.power(mu, S.num(self.exponent))
+
+    def inverse_sql(self, eta: Expr) -> Expr:
+        if self.exponent == -1.0:
+            return S.div(S.num(1.0), eta)
+        if self.exponent == 0.5:
+            return S.mul(eta, eta)
+        return S.power(eta, S.num(1.0 / self.exponent))
+
+    def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
+        if self.exponent == -1.0:
+            return S.neg(S.div(S.num(1.0), S.mul(eta, eta)))
+        if self.exponent == 0.5:
+            return S.mul(S.num(2.0), eta)
+        q = 1.0 / self.exponent
+        return S.mul(S.num(q), S.power(eta, S.num(q - 1.0)))
+
+    def eta_ok(self, eta: Expr) -> Expr | None:
+        return S.gt(eta, S.num(0.0))
+
+    def link(self, mu):
+        return np.power(np.asarray(mu, float), self.exponent)
+
+    def inverse(self, eta):
+        return np.power(np.asarray(eta, float), 1.0 / self.exponent)
+
+    def mu_eta(self, eta):
+        q = 1.0 / self.exponent
+        return q * np.power(np.asarray(eta, float), q - 1.0)
+
+    def describe(self) -> str:
+        named = {-1.0: "inverse", -2.0: "inverse_squared", 0.5: "sqrt"}
+        return named.get(self.exponent, f"power({self.exponent:g})")
+
+
+@dataclass(frozen=True)
+class InverseLink(PowerLink):
+    """g(mu) = 1 / mu. With a positive-mean family eta must be > 0; otherwise eta != 0."""
+
+    name: str = "inverse"
+    exponent: float = -1.0
+    positive_mean: bool = False
+
+    def eta_ok(self, eta: Expr) -> Expr | None:
+        return S.ne(eta, S.num(0.0))
+
+
+def make_link(name: str, exponent: float | None = None) -> Link:
+    """Resolve a link by name (``power`` needs ``exponent``)."""
+    from indb.errors import SpecError
+
+    key = name.strip().lower()
+    if key == "power":
+        if exponent is None:
+            raise SpecError("link 'power' needs an exponent: pass link_power= (CLI --link-power)")
+        if not math.isfinite(exponent):
+            raise SpecError(f"link_power must be a finite number; got {exponent!r}")
+        if exponent == 0:
+            return LogLink()
+        if exponent == 1:
+            return IdentityLink()
+        if exponent == -1:
+            return InverseLink()
+        named = {-2.0: "inverse_squared", 0.5: "sqrt"}
+        return PowerLink(name=named.get(float(exponent), "power"), exponent=float(exponent))
+    simple: dict[str, Link] = {
+        "identity": IdentityLink(),
+        "log": LogLink(),
+        "logit": LogitLink(),
+        "probit": ProbitLink(),
+        "cloglog": CLogLogLink(),
+        "cauchit": CauchitLink(),
+        "inverse": InverseLink(),
+        "inverse_squared": PowerLink(name="inverse_squared", exponent=-2.0),
+        "sqrt": PowerLink(name="sqrt", exponent=0.5),
+    }
+    if key not in simple:
+        allowed = ", ".join(sorted([*simple, "power"]))
+        raise SpecError(f"unknown link {name!r}; allowed: {allowed}")
+    if exponent is not None:
+        raise SpecError(f"link_power is only used with link 'power', not with link {name!r}")
+    return simple[key]
+
+
+LINK_NAMES = ("identity", "log", "logit", "probit", "cloglog", "cauchit", "inverse",
+              "inverse_squared", "sqrt", "power")

@@ -1,0 +1,497 @@
+"""SQL plans: pure functions from a spec, its resolved design and coefficients to syntax trees.
+
+Nothing here touches a connection. The iteration query computes, in one aggregate scan and
+grouped by the factor cells, every sum the solver needs:
+
+* ``s_a_b`` = sum(f w v_a v_b) for value pairs a <= b (v_0 = 1),
+* ``t_a``   = sum(f w z v_a),
+* ``dev``, ``pear`` (deviance and Pearson chi-squared contributions), ``bad`` (rows whose
+  eta left the valid domain), ``n`` (rows) and ``nw`` (frequency-weighted rows),
+
+where f is the frequency weight, w the working weight and z the working response. Dummy
+columns are never multiplied out per row: factor blocks of X'WX come from the GROUP BY.
+Stable aliases keep the generated text reproducible for snapshot tests.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from sqlglot import exp
+
+from indb import sqlexpr as S
+from indb.design import Design, Inputs, Value
+from indb.dialect import Dialect
+from indb.spec import ModelSpec
+from indb.sqlexpr import Expr
+
+SRC = "indb_src"
+ROWS = "r"
+
+# Harrell's default knot quantiles for restricted cubic splines (common practice).
+KNOT_QUANTILES = {
+    3: (0.10, 0.50, 0.90),
+    4: (0.05, 0.35, 0.65, 0.95),
+    5: (0.05, 0.275, 0.50, 0.725, 0.95),
+    6: (0.05, 0.23, 0.41, 0.59, 0.77, 0.95),
+    7: (0.025, 0.1833, 0.3417, 0.50, 0.6583, 0.8167, 0.975),
+}
+
+
+def knot_quantiles(k: int) -> tuple[float, ...]:
+    if k in KNOT_QUANTILES:
+        return KNOT_QUANTILES[k]
+    return tuple(float(q) for q in np.linspace(0.05, 0.95, k))
+
+
+@dataclass(frozen=True)
+class PlanContext:
+    """What every query builder needs: the spec, its checked inputs and the dialect."""
+
+    spec: ModelSpec
+    inputs: Inputs
+    dialect: Dialect
+
+    # -- the source ------------------------------------------------------------------------
+    def source(self) -> Expr:
+        src = self.spec.source
+        if src.kind == "table":
+            rel = self.dialect.table(src.text)
+        elif src.kind == "file":
+            rel = self.dialect.file_scan(src.text)
+        else:
+            rel = self.dialect.query(src.text)
+        rel = rel.copy()
+        rel.set("alias", exp.TableAlias(this=S.ident(SRC)))
+        return rel
+
+    # -- raw per-row inputs ----------------------------------------------------------------
+    def raw_response(self) -> Expr:
+        y = S.col(self.inputs.response)
+        if self.inputs.response_kind == "boolean":
+            return S.case([(y, S.num(1.0))], S.num(0.0))
+        return S.as_double(y)
+
+    def raw_trials(self) -> Expr | None:
+        return S.as_double(self.inputs.trials.copy()) if self.inputs.trials is not None else None
+
+    def raw_weight(self) -> Expr | None:
+        w = self.inputs.weight
+        return S.as_double(w.copy()) if w is not None else None
+
+    def raw_freq(self) -> Expr | None:
+        f = self.inputs.frequency_weight
+        return S.as_double(f.copy()) if f is not None else None
+
+    def raw_offset(self) -> Expr | None:
+        o = self.inputs.offset
+        return S.as_double(o.copy()) if o is not None else None
+
+    def kept(self) -> Expr:
+        """Rows with no NULL in any model column or model expression."""
+        conds = [S.not_(S.is_null(S.col(c))) for c in self.inputs.model_columns]
+        for e in (self.inputs.offset, self.inputs.weight, self.inputs.frequency_weight,
+                  self.inputs.trials):
+            if e is not None:
+                conds.append(S.not_(S.is_null(e.copy())))
+        return S.and_(*conds)
+
+    def null_items(self) -> list[tuple[str, Expr]]:
+        """(label, expression) for every input whose NULLs exclude a row."""
+        items: list[tuple[str, Expr]] = [(c, S.col(c)) for c in self.inputs.model_columns]
+        for label, e in (("offset", self.inputs.offset), ("weight", self.inputs.weight),
+                         ("frequency_weight", self.inputs.frequency_weight),
+                         ("trials", self.inputs.trials)):
+            if e is not None:
+                items.append((f"{label} expression", e.copy()))
+        return items
+
+    # -- derived per-row quantities --------------------------------------------------------
+    def response(self) -> Expr:
+        """y: the response, as a proportion for grouped binomial data."""
+        y = self.raw_response()
+        t = self.raw_trials()
+        if t is None:
+            return y
+        return S.case([(S.gt(t, S.num(0.0)), S.div(y, t))], S.num(0.0))
+
+    def prior_weight(self) -> Expr:
+        parts = [e for e in (self.raw_trials(), self.raw_weight()) if e is not None]
+        return S.mul(*parts) if parts else S.num(1.0)
+
+    def value_sql(self, v: Value, knots: dict[str, tuple[float, ...]] | None = None,
+                  standardized: bool = True) -> Expr:
+        """The per-row value v (a product of numeric columns or a spline basis function)."""
+        if v.basis is None:
+            raw = S.mul(*(S.as_double(S.col(c)) for c in v.numerics))
+        else:
+            raw = spline_basis_sql(S.as_double(S.col(v.numerics[0])),
+                                   (knots or {})[v.numerics[0]], v.basis)
+        if not standardized:
+            return raw
+        if v.centered:
+            raw = S.sub(raw, S.num(v.center))
+        return S.div(raw, S.num(v.scale)) if v.scale != 1.0 else raw
+
+
+def spline_basis_sql(x: Expr, knots: Sequence[float], j: int) -> Expr:
+    """Restricted cubic spline basis function j (1 <= j <= k-2), linear beyond the outer knots.
+
+    Truncated-power form (Stone & Koo 1985; Harrell, *Regression Modeling Strategies*, 2.4.5),
+    divided by (t_k - t_1)^2 so the basis has the scale of x.
+    """
+    t = list(knots)
+    k = len(t)
+    tj, tk1, tk = t[j - 1], t[k - 2], t[k - 1]
+
+    def cube_plus(c: float) -> Expr:
+        d = S.greatest(S.sub(x, S.num(c)), S.num(0.0))
+        return S.mul(d, d, d)
+
+    a = cube_plus(tj)
+    b = S.mul(cube_plus(tk1), S.num((tk - tj) / (tk - tk1)))
+    c = S.mul(cube_plus(tk), S.num((tk1 - tj) / (tk - tk1)))
+    return S.div(S.add(S.sub(a, b), c), S.num((tk - t[0]) ** 2))
+
+
+# -- pre-fit scans ---------------------------------------------------------------------------
+
+
+def describe_query(ctx: PlanContext) -> exp.Select:
+    """SELECT * over the source (engines describe it without running it)."""
+    return S.select([exp.Star()], ctx.source())
+
+
+def null_count_query(ctx: PlanContext) -> exp.Select:
+    """Total rows, kept rows and per-input NULL counts over the whole source."""
+    cols = [S.alias(S.count_star(), "n_total"),
+            S.alias(S.sum_(S.flag(ctx.kept())), "n_kept")]
+    for i, (_, e) in enumerate(ctx.null_items()):
+        cols.append(S.alias(S.sum_(S.flag(S.is_null(e))), f"null_{i}"))
+    return S.select(cols, ctx.source())
+
+
+def knots_query(ctx: PlanContext) -> exp.Select:
+    """Quantiles of each spline column over kept rows (knot positions)."""
+    cols = []
+    for c, k in ctx.inputs.spline_columns:
+        for i, q in enumerate(knot_quantiles(k)):
+            cols.append(S.alias(ctx.dialect.quantile(S.as_double(S.col(c)), q), f"k_{c}_{i}"))
+    return S.select(cols, ctx.source(), where=ctx.kept())
+
+
+def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
+    """(message stem, violation condition) pairs checked over kept rows."""
+    spec = ctx.spec
+    fam = spec.family
+    y = ctx.raw_response()
+    name = ctx.inputs.response
+    checks: list[tuple[str, Expr]] = []
+    checks.append((f"response column {name!r} is NaN or infinite", S.not_(S.is_finite(y))))
+    t = ctx.raw_trials()
+    if fam.name == "binomial" and t is not None:
+        checks.append((f"trials expression {spec.trials!r} is negative",
+                       S.lt(t, S.num(0.0))))
+        checks.append((f"family 'binomial' needs successes >= 0; column {name!r} is negative",
+                       S.lt(y, S.num(0.0))))
+        checks.append((f"family 'binomial' needs successes <= trials; column {name!r} exceeds "
+                       f"trials expression {spec.trials!r}", S.gt(y, t)))
+    else:
+        if fam.y_min is not None:
+            op = S.le if fam.y_min_strict else S.lt
+            rel = ">" if fam.y_min_strict else ">="
+            checks.append((f"family {fam.name!r} needs a response {rel} {fam.y_min:g}; "
+                           f"column {name!r} has values outside", op(y, S.num(fam.y_min))))
+        if fam.y_max is not None:
+            checks.append((f"family {fam.name!r} needs a response <= {fam.y_max:g}; "
+                           f"column {name!r} has values outside", S.gt(y, S.num(fam.y_max))))
+    for label, e in (("offset", ctx.raw_offset()), ("weight", ctx.raw_weight()),
+                     ("frequency_weight", ctx.raw_freq()), ("trials", t)):
+        if e is not None:
+            checks.append((f"{label} expression is NaN or infinite", S.not_(S.is_finite(e))))
+    if ctx.raw_weight() is not None:
+        checks.append((f"weight expression {spec.weight!r} is negative",
+                       S.lt(ctx.raw_weight(), S.num(0.0))))
+    if ctx.raw_freq() is not None:
+        checks.append((f"frequency_weight expression {spec.frequency_weight!r} is negative",
+                       S.lt(ctx.raw_freq(), S.num(0.0))))
+    for c in ctx.inputs.numerics:
+        checks.append((f"predictor column {c!r} is NaN or infinite",
+                       S.not_(S.is_finite(S.as_double(S.col(c))))))
+    return checks
+
+
+def summary_query(ctx: PlanContext, values: Sequence[Value],
+                  knots: dict[str, tuple[float, ...]]) -> exp.Select:
+    """One scan over kept rows: domain checks, weighted response mean, value moments."""
+    y = ctx.response()
+    pw = ctx.prior_weight()
+    fw = ctx.raw_freq() or S.num(1.0)
+    cols: list[Expr] = [
+        S.alias(S.count_star(), "n"),
+        S.alias(S.psum(fw), "sum_f"),
+        S.alias(S.psum(S.mul(fw, pw)), "sum_fpw"),
+        S.alias(S.psum(S.mul(fw, pw, y)), "sum_fpwy"),
+        S.alias(S.psum(S.case([(S.gt(pw, S.num(0.0)), fw)], S.num(0.0))), "sum_f_pos"),
+        S.alias(S.sum_(S.flag(S.le(pw, S.num(0.0)))), "n_zero_weight"),
+        S.alias(S.min_(y), "y_min"),
+        S.alias(S.max_(y), "y_max"),
+        S.alias(S.min_(pw), "pw_min"),
+        S.alias(S.max_(pw), "pw_max"),
+    ]
+    for i, (_, cond) in enumerate(domain_checks(ctx)):
+        cols.append(S.alias(S.sum_(S.flag(cond)), f"chk_{i}"))
+    for v in values[1:]:
+        raw = ctx.value_sql(v, knots, standardized=False)
+        cols += [S.alias(S.avg(raw), f"{v.alias}_mean"),
+                 S.alias(S.stddev_pop(raw), f"{v.alias}_sd"),
+                 S.alias(S.avg(S.mul(raw, raw)), f"{v.alias}_ms"),
+                 S.alias(S.min_(raw), f"{v.alias}_min"),
+                 S.alias(S.max_(raw), f"{v.alias}_max")]
+    for i, c in enumerate(ctx.inputs.factors):
+        cols.append(S.alias(exp.Count(this=exp.Distinct(expressions=[S.as_text(S.col(c))])),
+                            f"levels_{i}"))
+    return S.select(cols, ctx.source(), where=ctx.kept())
+
+
+def levels_query(ctx: PlanContext) -> exp.Expression:
+    """Level counts of every factor (UNION ALL of one GROUP BY per factor)."""
+    parts: list[exp.Select] = []
+    for i, c in enumerate(ctx.inputs.factors):
+        lv = S.as_text(S.col(c))
+        parts.append(S.select(
+            [S.alias(exp.Literal.number(i), "factor"), S.alias(lv, "level"),
+             S.alias(S.count_star(), "n")],
+            ctx.source(), where=ctx.kept(), group_by=[lv]))
+    out: exp.Expression = parts[0]
+    for p in parts[1:]:
+        out = exp.Union(this=out, expression=p, distinct=False)
+    return out
+
+
+def combos_query(ctx: PlanContext, factor_columns: Sequence[str]) -> exp.Select:
+    """Observed level combinations of a set of factors."""
+    lv = [S.as_text(S.col(c)) for c in factor_columns]
+    return S.select([S.alias(e, f"l{i}") for i, e in enumerate(lv)] +
+                    [S.alias(S.count_star(), "n")], ctx.source(), where=ctx.kept(), group_by=lv)
+
+
+# -- the per-row stages of the IRLS scan -------------------------------------------------------
+
+
+def rows_select(ctx: PlanContext, design: Design) -> exp.Select:
+    """Stage r: factor levels as text, standardized values, y, pw, fw, off (kept rows)."""
+    knots = dict(design.knots)
+    cols: list[Expr] = [S.alias(S.as_text(S.col(f.column)), f.alias) for f in design.factors]
+    cols += [S.alias(ctx.value_sql(v, knots), v.alias) for v in design.values[1:]]
+    cols += [S.alias(ctx.response(), "y"), S.alias(ctx.prior_weight(), "pw"),
+             S.alias(ctx.raw_freq() or S.num(1.0), "fw"),
+             S.alias(ctx.raw_offset() or S.num(0.0), "off")]
+    t = ctx.raw_trials()
+    if t is not None:
+        cols.append(S.alias(t, "nt"))
+    return S.select(cols, ctx.source(), where=ctx.kept())
+
+
+def _passthrough(design: Design, extra: Sequence[str] = ()) -> list[Expr]:
+    names = [f.alias for f in design.factors] + [v.alias for v in design.values[1:]]
+    names += ["y", "pw", "fw", "off", *extra]
+    return [S.col(n) for n in names]
+
+
+def _eta_from_beta(ctx: PlanContext, design: Design, beta: np.ndarray) -> exp.Select:
+    """Stage e: eta = off + X beta, factor parts joined from small VALUES tables."""
+    r = ROWS
+    terms: list[Expr] = [S.col("off", r)]
+    groups: dict[tuple[int, ...], list[int]] = {}
+    for j, c in enumerate(design.columns):
+        b = float(beta[j])
+        if c.factors:
+            groups.setdefault(c.factors, []).append(j)
+            continue
+        if b == 0.0:
+            continue
+        v = S.num(b) if c.value == 0 else S.mul(S.num(b), S.col(design.values[c.value].alias, r))
+        terms.append(v)
+    joins: list[tuple[Expr, Expr]] = []
+    for g, (fset, idx) in enumerate(groups.items()):
+        vals = sorted({design.columns[j].value for j in idx})
+        table: dict[tuple[str, ...], dict[int, float]] = {}
+        for j in idx:
+            c = design.columns[j]
+            table.setdefault(c.levels, {})[c.value] = float(beta[j])
+        kname = f"k{g}"
+        rows = [exp.Tuple(expressions=[*(S.text(lv) for lv in lvls),
+                                       *(S.num(coefs.get(v, 0.0)) for v in vals)])
+                for lvls, coefs in sorted(table.items())]
+        colnames = [f"l{i}" for i in range(len(fset))] + [f"c{v}" for v in vals]
+        values = exp.Values(expressions=rows, alias=exp.TableAlias(
+            this=S.ident(kname), columns=[S.ident(n) for n in colnames]))
+        on = S.and_(*(S.eq(S.col(design.factors[fi].alias, r), S.col(f"l{i}", kname))
+                      for i, fi in enumerate(fset)))
+        joins.append((values, on))
+        for v in vals:
+            coef = exp.Coalesce(this=S.col(f"c{v}", kname), expressions=[S.num(0.0)])
+            terms.append(coef if v == 0 else S.mul(coef, S.col(design.values[v].alias, r)))
+    q = S.select([*(S.col(c.name, r) for c in _passthrough(design, _extra_row_cols(ctx))),
+                  S.alias(S.add(*terms), "eta")],
+                 S.subquery(rows_select(ctx, design), r))
+    for values, on in joins:
+        q = q.join(values, on=on, join_type="left", copy=False)
+    return q
+
+
+def _extra_row_cols(ctx: PlanContext) -> list[str]:
+    return ["nt"] if ctx.raw_trials() is not None else []
+
+
+def _eta_start(ctx: PlanContext, design: Design, ybar: float) -> exp.Select:
+    """Stage e for the first scan: eta = g(mu0) from the family's standard start."""
+    fam, link = ctx.spec.family, ctx.spec.link
+    y, pw = S.col("y"), S.col("pw")
+    mu0 = fam.start_sql(y, pw, ybar)
+    needs_positive = (link.positive_mean or link.eta_ok(S.col("eta")) is not None
+                      or fam.positive_mean) and not fam.unit_mean
+    if needs_positive:
+        fallback = ybar if ybar > 0 else 1.0
+        mu0 = S.case([(S.gt(mu0, S.num(0.0)), mu0)], S.num(fallback))
+    if fam.unit_mean:
+        mu0 = S.clamp(mu0, 1e-6, 1 - 1e-6)
+    eta0 = link.link_sql(mu0)
+    return S.select([*_passthrough(design, _extra_row_cols(ctx)), S.alias(eta0, "eta")],
+                    S.subquery(rows_select(ctx, design), ROWS))
+
+
+def _mean_stage(ctx: PlanContext, design: Design, eta_stage: exp.Select) -> exp.Select:
+    """Stage m: safe eta, raw and clamped mean, and the 'bad row' flag."""
+    fam, link = ctx.spec.family, ctx.spec.link
+    eta = S.col("eta")
+    ok_eta = link.eta_ok(eta)
+    safe = S.case([(ok_eta, eta)], S.num(link.safe_eta)) if ok_eta is not None else eta
+    inner = S.select([*_passthrough(design, [*_extra_row_cols(ctx), "eta"]),
+                      S.alias(safe, "seta"),
+                      S.alias(S.flag(S.not_(ok_eta)) if ok_eta is not None else
+                              exp.Literal.number(0), "eta_bad")],
+                     S.subquery(eta_stage, "e"))
+    mid = S.select([*_passthrough(design, [*_extra_row_cols(ctx), "eta", "seta", "eta_bad"]),
+                    S.alias(link.inverse_sql(S.col("seta")), "mu_raw")],
+                   S.subquery(inner, "e1"))
+    mu_raw = S.col("mu_raw")
+    mu_ok = fam.mu_ok(mu_raw, link)
+    bad_conds = [S.gt(S.col("eta_bad"), exp.Literal.number(0)), S.not_(S.is_finite(mu_raw))]
+    if mu_ok is not None:
+        bad_conds.append(S.not_(mu_ok))
+    bad = S.flag(S.or_(*bad_conds))
+    safe_mu = S.case([(S.is_finite(mu_raw), mu_raw)], S.num(1.0 if not fam.unit_mean else 0.5))
+    return S.select([*_passthrough(design, [*_extra_row_cols(ctx), "eta", "seta"]),
+                     S.alias(bad, "bad"), S.alias(fam.clamp_mu_sql(safe_mu), "mu")],
+                    S.subquery(mid, "m0"))
+
+
+def _work_stage(ctx: PlanContext, design: Design, mean_stage: exp.Select,
+                extra: Sequence[tuple[str, Expr]] = ()) -> exp.Select:
+    """Stage w: working weight and response, deviance and Pearson contributions."""
+    fam, link = ctx.spec.family, ctx.spec.link
+    y, mu, pw, fw = S.col("y"), S.col("mu"), S.col("pw"), S.col("fw")
+    dmu = link.mu_eta_sql(S.col("seta"), mu)
+    inner = S.select([*_passthrough(design, [*_extra_row_cols(ctx), "eta", "bad", "mu"]),
+                      S.alias(dmu, "dmu"), S.alias(fam.variance_sql(mu), "var")],
+                     S.subquery(mean_stage, "m"))
+    dmu_c, var = S.col("dmu"), S.col("var")
+    w = S.div(S.mul(pw, dmu_c, dmu_c), var)
+    step = S.case([(S.ne(dmu_c, S.num(0.0)), S.div(S.sub(y, mu), dmu_c))], S.num(0.0))
+    z = S.add(S.sub(S.col("eta"), S.col("off")), step)
+    resid = S.sub(y, mu)
+    cols = [*(S.col(f.alias) for f in design.factors), *(S.col(v.alias) for v in design.values[1:]),
+            S.alias(S.mul(fw, w), "fww"), S.alias(S.mul(fw, w, z), "fwwz"),
+            S.alias(S.mul(fw, pw, fam.unit_deviance_sql(y, mu)), "fdev"),
+            S.alias(S.div(S.mul(fw, pw, resid, resid), var), "fpear"),
+            S.col("bad"), S.col("fw")]
+    cols += [S.alias(e, name) for name, e in extra]
+    return S.select(cols, S.subquery(inner, "w0"))
+
+
+def gram_query(ctx: PlanContext, design: Design, beta: np.ndarray | None, *,
+               ybar: float, null_mu: Expr | None = None) -> exp.Select:
+    """The IRLS scan: all sums for X'WX, X'Wz, deviance and Pearson, grouped by factor cells.
+
+    ``beta`` are the standardized coefficients (None: the family's starting means).
+    ``null_mu`` adds ``null_dev``, the deviance at a per-row null-model mean.
+    """
+    eta = _eta_start(ctx, design, ybar) if beta is None else _eta_from_beta(ctx, design, beta)
+    mean = _mean_stage(ctx, design, eta)
+    extra: list[tuple[str, Expr]] = []
+    if null_mu is not None:
+        fam = ctx.spec.family
+        extra.append(("fnulldev", S.mul(S.col("fw"), S.col("pw"),
+                                        fam.unit_deviance_sql(S.col("y"), null_mu))))
+    work = _work_stage(ctx, design, mean, extra)
+    vals = [None, *(S.col(v.alias) for v in design.values[1:])]
+    aggs: list[Expr] = []
+    m = len(design.values)
+    for a in range(m):
+        for b in range(a, m):
+            prod = [S.col("fww")] + [vals[i] for i in (a, b) if i]
+            aggs.append(S.alias(S.psum(S.mul(*prod)), f"s_{a}_{b}"))
+    for a in range(m):
+        prod = [S.col("fwwz")] + ([vals[a]] if a else [])
+        aggs.append(S.alias(S.psum(S.mul(*prod)), f"t_{a}"))
+    aggs += [S.alias(S.psum(S.col("fdev")), "dev"), S.alias(S.psum(S.col("fpear")), "pear"),
+             S.alias(S.sum_(S.col("bad")), "bad"), S.alias(S.count_star(), "n"),
+             S.alias(S.psum(S.col("fw")), "nw")]
+    for name, _ in extra:
+        aggs.append(S.alias(S.psum(S.col(name)), name.replace("f", "", 1)))
+    groups = [S.col(f.alias) for f in design.factors]
+    return S.select([*groups, *aggs], S.subquery(work, "w"), group_by=groups)
+
+
+def loglik_query(ctx: PlanContext, design: Design, beta: np.ndarray, dispersion: float
+                 ) -> exp.Select | None:
+    """Sum of per-row log-likelihood at the fitted means (None if the family has none)."""
+    fam = ctx.spec.family
+    mean = _mean_stage(ctx, design, _eta_from_beta(ctx, design, beta))
+    trials = S.col("nt") if ctx.raw_trials() is not None else None
+    ll = fam.log_likelihood_sql(S.col("y"), S.col("mu"), S.col("pw"), dispersion, trials)
+    if ll is None:
+        return None
+    guarded = S.case([(S.gt(S.col("pw"), S.num(0.0)), S.mul(S.col("fw"), ll))], S.num(0.0))
+    return S.select([S.alias(S.psum(guarded), "ll")], S.subquery(mean, "m"))
+
+
+def theta_query(ctx: PlanContext, design: Design, beta: np.ndarray, theta: float) -> exp.Select:
+    """Sums for a Newton step on the negative binomial theta at fixed means.
+
+    ``a`` = sum(c [ln(theta+mu) + (y+theta)/(theta+mu)]), ``b`` = sum(c [1/(theta+mu) +
+    (mu-y)/(theta+mu)^2]) and ``mom`` = sum(c (y/mu - 1)^2), with c = f * pw.
+    """
+    mean = _mean_stage(ctx, design, _eta_from_beta(ctx, design, beta))
+    y, mu = S.col("y"), S.col("mu")
+    c = S.mul(S.col("fw"), S.col("pw"))
+    th = S.num(theta)
+    tm = S.add(th, mu)
+    a = S.mul(c, S.add(S.ln(tm), S.div(S.add(y, th), tm)))
+    b = S.mul(c, S.add(S.div(S.num(1.0), tm), S.div(S.sub(mu, y), S.mul(tm, tm))))
+    r = S.sub(S.div(y, mu), S.num(1.0))
+    mom = S.mul(c, r, r)
+    return S.select([S.alias(S.psum(a), "a"), S.alias(S.psum(b), "b"),
+                     S.alias(S.psum(mom), "mom")], S.subquery(mean, "m"))
+
+
+def response_histogram_query(ctx: PlanContext, design: Design) -> exp.Select:
+    """Distinct response values with their summed weights f * pw."""
+    rows = S.subquery(rows_select(ctx, design), ROWS)
+    return S.select([S.alias(S.col("y"), "y"), S.alias(S.psum(S.mul(S.col("fw"), S.col("pw"))),
+                                                        "c")], rows, group_by=[S.col("y")])
+
+
+def offset_null_mu(ctx: PlanContext) -> Expr:
+    """Per-row null mean without intercept: the inverse link of the offset (clamped)."""
+    fam, link = ctx.spec.family, ctx.spec.link
+    return fam.clamp_mu_sql(link.inverse_sql(S.col("off")))
+
+
+def finite(x: float) -> bool:
+    return math.isfinite(x)

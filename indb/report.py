@@ -1,0 +1,396 @@
+"""Plain-text and JSON renderings of a :class:`~indb.results.FitResult`.
+
+The text layout is indb's own: four titled blocks (model, fit quality, terms, notes) and a
+closing caution. Numbers in a column share their decimals so the decimal points line up;
+missing or non-finite numbers print as ``n/a``. Nothing here touches a database.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import textwrap
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from indb.results import Coefficient, FitResult
+
+__all__ = ["render_report", "render_json", "CAUTION"]
+
+NA = "n/a"
+
+CAUTION = (
+    "A model that drives pricing, credit or any other decision about people needs "
+    "independent validation, a fairness review and a regulatory review before it is used. "
+    "Local regulation and qualified professionals take precedence over anything printed here."
+)
+
+# Label column of the key/value blocks and the field the value is right-aligned in.
+_LABEL_WIDTH = 22
+_VALUE_WIDTH = 18
+_GAP = "  "
+
+
+# -- public ---------------------------------------------------------------------------
+
+
+def render_report(result: FitResult, *, width: int = 100) -> str:
+    """Render a fitted model as a readable plain-text report.
+
+    Parameters
+    ----------
+    result:
+        The fit to describe.
+    width:
+        Target line width in characters. Rules and wrapped prose use it exactly; the term
+        column of the coefficient table is shortened (with ``…``) when the table would
+        otherwise be wider.
+
+    Returns
+    -------
+    str
+        The report, lines separated by ``\\n``, ending with a newline.
+    """
+    width = max(int(width), 60)
+    blocks = [
+        _title(result, width),
+        _model_block(result),
+        _quality_block(result),
+        _terms_block(result, width),
+        _notes_block(result, width),
+        _caution_block(width),
+    ]
+    return "\n\n".join(b.rstrip("\n") for b in blocks) + "\n"
+
+
+def render_json(result: FitResult) -> str:
+    """Render a fit as one JSON object (``result.to_dict()``, indented, strict JSON).
+
+    Non-finite numbers are already ``null`` in ``to_dict()``; ``allow_nan=False`` makes any
+    that slip through fail loudly instead of producing invalid JSON.
+    """
+    return json.dumps(result.to_dict(), indent=2, allow_nan=False, default=_json_default)
+
+
+# -- blocks ---------------------------------------------------------------------------
+
+
+def _title(result: FitResult, width: int) -> str:
+    rule = "=" * width
+    text = f" indb | generalized linear model | {result.family} family, {result.link} link"
+    return f"{rule}\n{text}\n{rule}"
+
+
+def _model_block(result: FitResult) -> str:
+    rows: list[tuple[str, str, str]] = [
+        ("response", str(result.response), ""),
+        ("source", _one_line(str(result.source)), ""),
+    ]
+    for key, label in (
+        ("trials", "trials"),
+        ("offset", "offset"),
+        ("weight", "prior weight"),
+        ("frequency_weight", "frequency weight"),
+    ):
+        value = result.spec.get(key) if isinstance(result.spec, dict) else None
+        if value not in (None, ""):
+            rows.append((label, _one_line(str(value)), ""))
+    rows.append(("rows used", _fmt_count(result.n_used), ""))
+    rows.append(("rows set aside", _fmt_count(result.n_excluded), _exclusion_note(result)))
+    if _finite(result.n_weighted) and result.n_weighted != result.n_used:
+        rows.append(("weighted row total", _fmt_value(result.n_weighted), ""))
+    state = "converged" if result.converged else "NOT converged (stopped at the iteration cap)"
+    rows.append(("IRLS iterations", _fmt_count(result.iterations), state))
+    rows.append(("fit path", str(result.path), ""))
+    timing = ""
+    if _finite(result.seconds_per_iteration):
+        timing = f"{result.seconds_per_iteration:.3f} s per scan"
+    rows.append(("wall time", _fmt_seconds(result.seconds), timing))
+    return _kv_block("MODEL", rows)
+
+
+def _quality_block(result: FitResult) -> str:
+    if result.dispersion_estimated:
+        disp_note = "estimated (Pearson chi-square / residual df)"
+    else:
+        disp_note = "fixed by the family"
+    rows: list[tuple[str, str, str]] = [
+        ("deviance", _fmt_value(result.deviance), f"on {_fmt_df(result.df_resid)} residual df"),
+        (
+            "null deviance",
+            _fmt_value(result.null_deviance),
+            f"on {_fmt_df(_null_df(result))} df",
+        ),
+        ("Pearson chi-square", _fmt_value(result.pearson_chi2), ""),
+        ("dispersion", _fmt_value(result.dispersion), disp_note),
+        ("log-likelihood", _fmt_value(result.log_likelihood), ""),
+        ("AIC", _fmt_value(result.aic), ""),
+        ("BIC", _fmt_value(result.bic), ""),
+        ("model df", _fmt_count(result.df_model), ""),
+    ]
+    for name, value in result.family_params.items():
+        rows.append((f"family: {name}", _fmt_value(value), ""))
+    if _finite(result.condition_number):
+        rows.append(("condition number", _fmt_value(result.condition_number), "of X'WX"))
+    return _kv_block("FIT QUALITY", rows)
+
+
+def _terms_block(result: FitResult, width: int) -> str:
+    test = _test_label(result)
+    level = _level_label(result.confidence)
+    exp_name = _exp_column_name(result.link)
+    if test == "t":
+        test_note = f"Wald t ratios on {_fmt_df(result.df_resid)} residual df"
+    else:
+        test_note = "Wald z ratios"
+    heading = f"TERMS  ({test_note}; {level} confidence intervals"
+    if exp_name is not None:
+        heading += f"; {exp_name} = exp(estimate)"
+    heading += ")"
+    lines = [heading, "-" * min(len(heading), width)]
+    coefs = list(result.coefficients)
+    if not coefs:
+        lines.append("  (the model has no terms)")
+        return "\n".join(lines)
+    lines.extend(_coefficient_table(coefs, test, level, exp_name, width))
+    aliased = [c.term for c in coefs if c.aliased]
+    for term in result.aliased_terms:
+        if term not in aliased:
+            aliased.append(term)
+    if aliased:
+        lines.append("")
+        lines.extend(
+            _wrap(
+                "aliased terms (each is a linear combination of earlier terms, so it was set "
+                "aside and has no estimate): " + ", ".join(aliased),
+                width,
+                indent="  ",
+            )
+        )
+    return "\n".join(lines)
+
+
+def _notes_block(result: FitResult, width: int) -> str:
+    lines = ["NOTES FROM THE FIT", "-" * len("NOTES FROM THE FIT")]
+    if not result.warnings:
+        lines.append("  none")
+    for message in result.warnings:
+        lines.extend(_wrap(str(message), width, indent="  * ", subsequent="    "))
+    return "\n".join(lines)
+
+
+def _caution_block(width: int) -> str:
+    lines = ["CAUTION", "-" * len("CAUTION")]
+    lines.extend(_wrap(CAUTION, width, indent="  "))
+    return "\n".join(lines)
+
+
+# -- coefficient table ----------------------------------------------------------------
+
+
+def _coefficient_table(
+    coefs: Sequence[Coefficient],
+    test: str,
+    level: str,
+    exp_name: str | None,
+    width: int,
+) -> list[str]:
+    live = [c for c in coefs if not c.aliased]
+    numeric: list[tuple[str, list[str]]] = [
+        ("estimate", _fmt_column([c.estimate for c in live])),
+        ("standard error", _fmt_column([c.std_error for c in live])),
+        (f"{test} ratio", [_fmt_fixed(c.statistic, 2) for c in live]),
+        ("p-value", [_fmt_p(c.p_value) for c in live]),
+        (f"{level} low", _fmt_column([c.ci_low for c in live])),
+        (f"{level} high", _fmt_column([c.ci_high for c in live])),
+    ]
+    if exp_name is not None:
+        numeric.append((exp_name, _fmt_column([_safe_exp(c.estimate) for c in live])))
+    widths = [max(len(h), *(len(v) for v in vals)) if vals else len(h) for h, vals in numeric]
+    numbers_width = sum(widths) + len(_GAP) * len(widths)
+    term_width = max(len("term"), *(len(c.term) for c in coefs))
+    room = width - 2 - numbers_width
+    term_width = max(min(term_width, room), 12)
+
+    header = "  " + "term".ljust(term_width)
+    header += "".join(_GAP + h.rjust(w) for (h, _), w in zip(numeric, widths, strict=True))
+    out = [header.rstrip()]
+    live_row = 0
+    for c in coefs:
+        name = _clip(c.term, term_width).ljust(term_width)
+        if c.aliased:
+            out.append(f"  {name}{_GAP}aliased: linear combination of earlier terms, not estimated")
+            continue
+        cells = [vals[live_row].rjust(w) for (_, vals), w in zip(numeric, widths, strict=True)]
+        out.append(("  " + name + "".join(_GAP + cell for cell in cells)).rstrip())
+        live_row += 1
+    return out
+
+
+# -- formatting helpers ---------------------------------------------------------------
+
+
+def _kv_block(title: str, rows: Sequence[tuple[str, str, str]]) -> str:
+    lines = [title, "-" * len(title)]
+    numeric_width = max(
+        [_VALUE_WIDTH, *(len(v) for _, v, _ in rows if _looks_numeric(v))], default=0
+    )
+    for label, value, note in rows:
+        value_cell = value.rjust(numeric_width) if _looks_numeric(value) else value
+        line = f"  {label.ljust(_LABEL_WIDTH)}{value_cell}"
+        if note:
+            line += f"   {note}"
+        lines.append(line.rstrip())
+    return "\n".join(lines)
+
+
+def _looks_numeric(text: str) -> bool:
+    if text == NA:
+        return True
+    try:
+        float(text.replace(",", ""))
+    except ValueError:
+        return False
+    return True
+
+
+def _finite(value: Any) -> bool:
+    try:
+        return math.isfinite(float(value))
+    except (TypeError, ValueError):
+        return False
+
+
+def _fmt_count(value: Any) -> str:
+    if not _finite(value):
+        return NA
+    return f"{int(value):,}"
+
+
+def _fmt_df(value: Any) -> str:
+    if not _finite(value):
+        return NA
+    v = float(value)
+    return f"{int(v):,}" if v.is_integer() else f"{v:,.2f}"
+
+
+def _fmt_seconds(value: Any) -> str:
+    return f"{float(value):.3f} s" if _finite(value) else NA
+
+
+def _decimals_for(magnitude: float, significant: int = 6, cap: int = 8) -> int:
+    if magnitude == 0:
+        return 4
+    return max(0, min(cap, significant - 1 - math.floor(math.log10(magnitude))))
+
+
+def _fmt_value(value: Any) -> str:
+    """One number with about six significant digits, fixed-point when that stays readable."""
+    if not _finite(value):
+        return NA
+    v = float(value)
+    a = abs(v)
+    if a != 0 and (a < 1e-6 or a >= 1e15):
+        return f"{v:.5e}"
+    if v.is_integer():
+        return f"{int(v):,}"
+    return f"{v:,.{_decimals_for(a)}f}"
+
+
+def _fmt_column(values: Sequence[float]) -> list[str]:
+    """Format a column with shared decimals so the decimal points line up."""
+    finite = [abs(float(v)) for v in values if _finite(v)]
+    nonzero = [a for a in finite if a > 0]
+    if not nonzero:
+        return [f"{float(v):.4f}" if _finite(v) else NA for v in values]
+    smallest, largest = min(nonzero), max(nonzero)
+    if largest >= 1e12 or smallest < 1e-6:
+        return [f"{float(v):.4e}" if _finite(v) else NA for v in values]
+    # Five significant digits for the smallest entry; at most eight decimals.
+    decimals = _decimals_for(smallest, significant=5)
+    return [f"{float(v):.{decimals}f}" if _finite(v) else NA for v in values]
+
+
+def _fmt_fixed(value: Any, decimals: int) -> str:
+    return f"{float(value):.{decimals}f}" if _finite(value) else NA
+
+
+def _fmt_p(value: Any) -> str:
+    if not _finite(value):
+        return NA
+    p = float(value)
+    # Below about 1e-16 a double-precision tail probability is mostly rounding noise.
+    if p < 1e-16:
+        return "<1e-16"
+    if p < 1e-4:
+        return f"{p:.1e}"
+    return f"{p:.4f}"
+
+
+def _safe_exp(value: Any) -> float:
+    if not _finite(value):
+        return math.nan
+    v = float(value)
+    return math.exp(v) if v < 709.0 else math.inf
+
+
+def _test_label(result: FitResult) -> str:
+    return "t" if str(result.test).strip().lower().startswith("t") else "z"
+
+
+def _level_label(confidence: float) -> str:
+    return f"{float(confidence) * 100:g}%"
+
+
+def _exp_column_name(link: str) -> str | None:
+    name = str(link).strip().lower()
+    if name == "log":
+        return "relativity"
+    if name == "logit":
+        return "odds factor"
+    return None
+
+
+def _null_df(result: FitResult) -> float:
+    if not _finite(result.df_resid):
+        return math.nan
+    return float(result.df_resid) + float(result.df_model)
+
+
+def _exclusion_note(result: FitResult) -> str:
+    counts = {k: v for k, v in result.excluded_by_column.items() if v}
+    if not counts:
+        return ""
+    parts = ", ".join(f"{col}: {_fmt_count(n)}" for col, n in counts.items())
+    return f"NULL counts by column: {parts}"
+
+
+def _clip(text: str, width: int) -> str:
+    return text if len(text) <= width else text[: max(width - 1, 0)] + "…"
+
+
+def _one_line(text: str) -> str:
+    return " ".join(text.split())
+
+
+def _wrap(text: str, width: int, indent: str = "", subsequent: str | None = None) -> list[str]:
+    return textwrap.wrap(
+        text,
+        width=width,
+        initial_indent=indent,
+        subsequent_indent=indent if subsequent is None else subsequent,
+        break_long_words=False,
+        break_on_hyphens=False,
+    ) or [indent.rstrip()]
+
+
+def _json_default(obj: Any) -> Any:
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, set | frozenset):
+        return sorted(obj, key=str)
+    raise TypeError(f"cannot write a {type(obj).__name__} to JSON: {obj!r}")

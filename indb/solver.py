@@ -1,0 +1,204 @@
+"""Numerical core: assemble X'WX from grouped sums, solve the IRLS update, derive inference.
+
+numpy/scipy only: sufficient statistics in, numbers out. No I/O, no printing.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import linalg, special, stats
+
+from indb.design import Design
+
+ALIAS_TOL = 1e-10  # squared sine below which a (standardized) column counts as aliased
+
+
+@dataclass(frozen=True)
+class Sums:
+    """Totals of one IRLS scan, assembled into matrices."""
+
+    xtwx: np.ndarray
+    xtwz: np.ndarray
+    deviance: float
+    pearson: float
+    bad: int
+    n: int
+    n_weighted: float
+    extras: dict[str, float]
+    cells: int
+
+
+def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...] = ()) -> Sums:
+    """Build X'WX and X'Wz (standardized design) from per-cell sums of the IRLS scan."""
+    rows = len(cells["n"])
+    p = design.p
+    ind = np.ones((rows, p))
+    for f_i, f in enumerate(design.factors):
+        lv = cells[f.alias]
+        for j, c in enumerate(design.columns):
+            if f_i in c.factors:
+                level = c.levels[c.factors.index(f_i)]
+                ind[:, j] *= lv == level
+    by_value: dict[int, list[int]] = {}
+    for j, c in enumerate(design.columns):
+        by_value.setdefault(c.value, []).append(j)
+    xtwx = np.zeros((p, p))
+    xtwz = np.zeros(p)
+    keys = sorted(by_value)
+    for ia, a in enumerate(keys):
+        ca = by_value[a]
+        xtwz[ca] = ind[:, ca].T @ _f(cells[f"t_{a}"])
+        for b in keys[ia:]:
+            cb = by_value[b]
+            s = _f(cells[f"s_{min(a, b)}_{max(a, b)}"])
+            block = (ind[:, ca] * s[:, None]).T @ ind[:, cb]
+            xtwx[np.ix_(ca, cb)] = block
+            xtwx[np.ix_(cb, ca)] = block.T
+    return Sums(
+        xtwx=xtwx,
+        xtwz=xtwz,
+        deviance=float(_f(cells["dev"]).sum()),
+        pearson=float(_f(cells["pear"]).sum()),
+        bad=int(_f(cells["bad"]).sum()),
+        n=int(_f(cells["n"]).sum()),
+        n_weighted=float(_f(cells["nw"]).sum()),
+        extras={k: float(_f(cells[k]).sum()) for k in extra},
+        cells=rows,
+    )
+
+
+def _f(a: np.ndarray) -> np.ndarray:
+    return np.nan_to_num(np.asarray(a, dtype=float), nan=0.0)
+
+
+@dataclass(frozen=True)
+class Solution:
+    """Solved update: coefficients (0 where aliased), aliased mask, inverse information."""
+
+    beta: np.ndarray
+    aliased: np.ndarray
+    inv_info: np.ndarray  # (X'WX)^-1 on kept columns, zeros elsewhere
+    condition_number: float
+
+
+def solve(xtwx: np.ndarray, xtwz: np.ndarray, tol: float = ALIAS_TOL) -> Solution:
+    """Solve X'WX beta = X'Wz, setting aside columns that are (near) linear combinations of
+    earlier ones (sequential pivoting in design order, on the correlation-scaled matrix)."""
+    p = len(xtwz)
+    d = np.sqrt(np.clip(np.diag(xtwx), 0.0, None))
+    aliased = np.zeros(p, dtype=bool)
+    kept: list[int] = []
+    lower = np.zeros((p, p))
+    scale = np.where(d > 0, d, 1.0)
+    corr = xtwx / np.outer(scale, scale)
+    for j in range(p):
+        if d[j] <= 0 or not np.isfinite(d[j]):
+            aliased[j] = True
+            continue
+        if kept:
+            k = len(kept)
+            y = linalg.solve_triangular(lower[:k, :k], corr[kept, j], lower=True)
+            r = corr[j, j] - float(y @ y)
+        else:
+            y = np.zeros(0)
+            r = corr[j, j]
+        if r <= tol:
+            aliased[j] = True
+            continue
+        k = len(kept)
+        lower[k, :k] = y
+        lower[k, k] = math.sqrt(r)
+        kept.append(j)
+    beta = np.zeros(p)
+    inv_info = np.zeros((p, p))
+    cond = math.nan
+    if kept:
+        ck = corr[np.ix_(kept, kept)]
+        cf = linalg.cho_factor(ck, lower=True)
+        rhs = xtwz[kept] / scale[kept]
+        beta[kept] = linalg.cho_solve(cf, rhs) / scale[kept]
+        inv = linalg.cho_solve(cf, np.eye(len(kept)))
+        inv_info[np.ix_(kept, kept)] = inv / np.outer(scale[kept], scale[kept])
+        ev = np.linalg.eigvalsh(ck)
+        cond = float(ev[-1] / ev[0]) if ev[0] > 0 else math.inf
+    return Solution(beta=beta, aliased=aliased, inv_info=inv_info, condition_number=cond)
+
+
+def back_transform(design: Design) -> np.ndarray:
+    """Matrix T with beta_original = T @ beta_standardized."""
+    p = design.p
+    t = np.eye(p)
+    icpt = 0 if design.intercept else None
+    for j, c in enumerate(design.columns):
+        if c.value == 0:
+            continue
+        v = design.values[c.value]
+        t[j, j] = 1.0 / v.scale
+        if v.centered and icpt is not None:
+            t[icpt, j] = -v.center / v.scale
+    return t
+
+
+def relative_change(new: float, old: float) -> float:
+    """|new - old| / (|new| + 0.1): the usual deviance convergence measure."""
+    return abs(new - old) / (abs(new) + 0.1)
+
+
+@dataclass(frozen=True)
+class Inference:
+    estimate: np.ndarray
+    std_error: np.ndarray
+    statistic: np.ndarray
+    p_value: np.ndarray
+    ci_low: np.ndarray
+    ci_high: np.ndarray
+    covariance: np.ndarray
+
+
+def wald(beta: np.ndarray, cov: np.ndarray, aliased: np.ndarray, df: float | None,
+         confidence: float) -> Inference:
+    """Wald statistics: z (df None) or t with ``df`` degrees of freedom."""
+    se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    est = beta.astype(float).copy()
+    est[aliased] = np.nan
+    se = se.copy()
+    se[aliased] = np.nan
+    with np.errstate(divide="ignore", invalid="ignore"):
+        stat = est / se
+    if df is None:
+        pv = 2.0 * stats.norm.sf(np.abs(stat))
+        q = stats.norm.ppf(0.5 + confidence / 2.0)
+    else:
+        dfp = max(df, 1e-12)
+        pv = 2.0 * stats.t.sf(np.abs(stat), dfp)
+        q = stats.t.ppf(0.5 + confidence / 2.0, dfp)
+    cov = cov.copy()
+    cov[aliased, :] = np.nan
+    cov[:, aliased] = np.nan
+    return Inference(est, se, stat, pv, est - q * se, est + q * se, cov)
+
+
+def theta_step(theta: float, hist_y: np.ndarray, hist_c: np.ndarray, total_c: float,
+               a: float, b: float) -> float:
+    """One safeguarded Newton step for the negative binomial theta at fixed means.
+
+    Score: sum_y c_y [psi(y+theta) - psi(theta)] + C (ln theta + 1) - a; its derivative
+    sum_y c_y [psi'(y+theta) - psi'(theta)] + C / theta - b. Steps are taken on log(theta)
+    so theta stays positive.
+    """
+    score = float(hist_c @ (special.digamma(hist_y + theta) - special.digamma(theta)))
+    score += total_c * (math.log(theta) + 1.0) - a
+    hess = float(hist_c @ (special.polygamma(1, hist_y + theta) - special.polygamma(1, theta)))
+    hess += total_c / theta - b
+    # d/d(log theta): g = theta * score; H = theta^2 * hess + theta * score
+    g = theta * score
+    h = theta * theta * hess + g
+    if not (math.isfinite(g) and math.isfinite(h)) or h >= 0:
+        step = 0.5 if g > 0 else -0.5  # not concave here: move by a fixed factor
+    else:
+        step = -g / h
+    step = max(min(step, 2.0), -2.0)
+    return theta * math.exp(step)

@@ -1,0 +1,218 @@
+"""Model declarations as plain, validated, frozen data.
+
+A :class:`ModelSpec` says what to fit; it holds names and user SQL expressions as text and
+knows nothing about engines. Family and link objects are resolved from names here, once.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from indb.errors import SpecError
+from indb.families import Family, NegativeBinomial, canonical_link, make_family
+from indb.links import Link, make_link
+
+_FILE_SUFFIXES = (".parquet", ".pq", ".csv", ".tsv", ".csv.gz", ".tsv.gz", ".json", ".ndjson")
+_QUERY_START = re.compile(r"^\s*(\(|select\b|with\b|from\b|values\b|table\b)", re.IGNORECASE)
+
+
+@dataclass(frozen=True)
+class Source:
+    """Where the rows come from: a query, a table/view name or a file path (glob allowed)."""
+
+    kind: str  # "query" | "table" | "file"
+    text: str
+
+    @staticmethod
+    def parse(text: str) -> Source:
+        """Classify ``text`` as a query, a file path or a (possibly qualified) table name."""
+        if not isinstance(text, str) or not text.strip():
+            raise SpecError("source is empty: give a SELECT query, a table name or a file path")
+        t = text.strip()
+        if _QUERY_START.match(t):
+            return Source("query", t.rstrip().rstrip(";"))
+        low = t.lower()
+        if low.endswith(_FILE_SUFFIXES) or any(ch in t for ch in "*?") or os.sep in t:
+            return Source("file", t)
+        return Source("table", t)
+
+    def label(self) -> str:
+        return self.text if len(self.text) <= 80 else self.text[:77] + "..."
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """A GLM declaration.
+
+    Parameters
+    ----------
+    source:
+        The rows (see :class:`Source`).
+    response:
+        Response column name. For grouped binomial data it holds successes and ``trials``
+        the number of trials.
+    family, link:
+        Resolved family and link objects (use :meth:`build` to resolve names).
+    offset, weight, frequency_weight, trials:
+        SQL expressions over the source's columns, or None.
+    """
+
+    source: Source
+    response: str
+    family: Family
+    link: Link
+    offset: str | None = None
+    weight: str | None = None
+    frequency_weight: str | None = None
+    trials: str | None = None
+    intercept: bool = True
+    predictors: tuple[str, ...] | None = None
+    exclude: tuple[str, ...] = ()
+    categorical: tuple[str, ...] = ()
+    reference: tuple[tuple[str, str], ...] = ()
+    interactions: tuple[tuple[str, ...], ...] = ()
+    splines: tuple[tuple[str, int], ...] = ()
+    estimate_theta: bool = False
+    on_null: str = "exclude"
+    tol: float = 1e-8
+    max_iter: int = 50
+    strict: bool = False
+    max_levels: int = 10_000
+    confidence: float = 0.95
+    start: tuple[tuple[str, float], ...] = field(default=())
+
+    @staticmethod
+    def build(
+        source: str,
+        response: str,
+        family: str | Family = "gaussian",
+        link: str | Link | None = None,
+        *,
+        trials: str | None = None,
+        offset: str | None = None,
+        weight: str | None = None,
+        frequency_weight: str | None = None,
+        power: float | None = None,
+        theta: float | None = None,
+        link_power: float | None = None,
+        intercept: bool = True,
+        predictors: Sequence[str] | None = None,
+        exclude: Sequence[str] = (),
+        categorical: Sequence[str] = (),
+        reference: Mapping[str, str] | None = None,
+        interactions: Sequence[Sequence[str]] = (),
+        splines: Mapping[str, int] | None = None,
+        on_null: str = "exclude",
+        tol: float = 1e-8,
+        max_iter: int = 50,
+        strict: bool = False,
+        max_levels: int = 10_000,
+        confidence: float = 0.95,
+        start: Mapping[str, float] | None = None,
+    ) -> ModelSpec:
+        """Validate user options and resolve family/link names into a spec."""
+        if not isinstance(response, str) or not response:
+            raise SpecError("response must name a column of the source")
+        fam = family if isinstance(family, Family) else make_family(
+            str(family), power=power, theta=theta)
+        estimate_theta = isinstance(fam, NegativeBinomial) and theta is None and not isinstance(
+            family, Family)
+        if link is None:
+            if link_power is not None:
+                lk = make_link("power", link_power)
+            else:
+                lk = canonical_link(fam)
+        elif isinstance(link, Link):
+            lk = link
+        else:
+            lk = make_link(str(link), link_power)
+        fam.check_link(lk)
+        if trials is not None and fam.name != "binomial":
+            raise SpecError(f"trials is for grouped binomial data; family is {fam.name!r}")
+        if on_null not in ("exclude", "error"):
+            raise SpecError(f"on_null must be 'exclude' or 'error'; got {on_null!r}")
+        if not (isinstance(tol, int | float) and 0 < tol < 1):
+            raise SpecError(f"tol must be a number in (0, 1); got {tol!r}")
+        if not (isinstance(max_iter, int) and max_iter >= 1):
+            raise SpecError(f"max_iter must be a positive integer; got {max_iter!r}")
+        if not (isinstance(max_levels, int) and max_levels >= 2):
+            raise SpecError(f"max_levels must be an integer >= 2; got {max_levels!r}")
+        if not (0 < confidence < 1):
+            raise SpecError(f"confidence must be in (0, 1); got {confidence!r}")
+        for name, expr in (("offset", offset), ("weight", weight),
+                           ("frequency_weight", frequency_weight), ("trials", trials)):
+            if expr is not None and (not isinstance(expr, str) or not expr.strip()):
+                raise SpecError(f"{name} must be a non-empty SQL expression; got {expr!r}")
+        inter: list[tuple[str, ...]] = []
+        for group in interactions:
+            cols = tuple(group.split(",")) if isinstance(group, str) else tuple(group)
+            cols = tuple(c.strip() for c in cols)
+            if len(cols) < 2 or any(not c for c in cols):
+                raise SpecError(f"an interaction needs two or more column names; got {group!r}")
+            if len(set(cols)) != len(cols):
+                raise SpecError(f"interaction {cols!r} repeats a column")
+            inter.append(cols)
+        spl: list[tuple[str, int]] = []
+        for colname, k in (splines or {}).items():
+            if not (isinstance(k, int) and 3 <= k <= 10):
+                raise SpecError(
+                    f"spline on column {colname!r} needs 3 to 10 knots; got {k!r}")
+            spl.append((colname, k))
+        st = tuple((str(k), float(v)) for k, v in (start or {}).items())
+        if any(not math.isfinite(v) for _, v in st):
+            raise SpecError("start values must be finite numbers")
+        return ModelSpec(
+            source=Source.parse(source),
+            response=response,
+            family=fam,
+            link=lk,
+            offset=offset,
+            weight=weight,
+            frequency_weight=frequency_weight,
+            trials=trials,
+            intercept=bool(intercept),
+            predictors=tuple(predictors) if predictors is not None else None,
+            exclude=tuple(exclude),
+            categorical=tuple(categorical),
+            reference=tuple((str(k), str(v)) for k, v in (reference or {}).items()),
+            interactions=tuple(inter),
+            splines=tuple(spl),
+            estimate_theta=estimate_theta,
+            on_null=on_null,
+            tol=float(tol),
+            max_iter=int(max_iter),
+            strict=bool(strict),
+            max_levels=int(max_levels),
+            confidence=float(confidence),
+            start=st,
+        )
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-data form (for reports, the registry and spec files)."""
+        return {
+            "source": {"kind": self.source.kind, "text": self.source.text},
+            "response": self.response,
+            "family": self.family.name,
+            "family_params": self.family.params(),
+            "estimate_theta": self.estimate_theta,
+            "link": self.link.describe(),
+            "offset": self.offset,
+            "weight": self.weight,
+            "frequency_weight": self.frequency_weight,
+            "trials": self.trials,
+            "intercept": self.intercept,
+            "predictors": list(self.predictors) if self.predictors is not None else None,
+            "exclude": list(self.exclude),
+            "categorical": list(self.categorical),
+            "reference": dict(self.reference),
+            "interactions": [list(i) for i in self.interactions],
+            "splines": dict(self.splines),
+            "on_null": self.on_null,
+            "tol": self.tol,
+            "max_iter": self.max_iter,
+        }

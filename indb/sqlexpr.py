@@ -1,0 +1,334 @@
+"""Small builders for SQL syntax trees (sqlglot expressions).
+
+Every identifier and literal that reaches generated SQL goes through :func:`ident`,
+:func:`col`, :func:`text` or :func:`num`; nothing is pasted into SQL as a string.
+Custom nodes (:class:`LogGamma`, :class:`IsFinite`, :class:`PreciseSum`) stand for
+functions whose spelling differs by engine; the dialect layer translates them.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Sequence
+
+from sqlglot import exp
+
+Expr = exp.Expression
+
+# -- custom nodes the dialect layer must translate ------------------------------------------
+
+
+# sqlglot >= 30 splits the node base (Expression) from the role mixins (Func, AggFunc);
+# older releases derive Func from Expression. Pick bases that work with both.
+_FUNC = (exp.Func,) if issubclass(exp.Func, exp.Expression) else (exp.Expression, exp.Func)
+_AGG = (exp.AggFunc,) if issubclass(exp.AggFunc, exp.Expression) else (exp.Expression,
+                                                                        exp.AggFunc)
+
+
+class LogGamma(*_FUNC):
+    """ln(Gamma(x)) for x > 0."""
+
+    arg_types = {"this": True}
+
+
+class IsFinite(*_FUNC):
+    """TRUE when a double is neither NaN nor +/-Inf."""
+
+    arg_types = {"this": True}
+
+
+class PreciseSum(*_AGG):
+    """A sum aggregate; engines with a compensated (Kahan/Neumaier) sum use it."""
+
+    arg_types = {"this": True}
+
+
+CUSTOM_NODES: tuple[type[exp.Expression], ...] = (LogGamma, IsFinite, PreciseSum)
+
+
+# -- leaves ----------------------------------------------------------------------------------
+
+
+def ident(name: str) -> exp.Identifier:
+    """A quoted identifier (any characters allowed; quoting is done by the renderer)."""
+    return exp.to_identifier(name, quoted=True)
+
+
+def col(name: str, table: str | None = None) -> exp.Column:
+    """A quoted column reference, optionally qualified by a quoted table alias."""
+    return exp.Column(this=ident(name), table=ident(table) if table else None)
+
+
+def num(value: float) -> Expr:
+    """A double-precision literal that round-trips exactly.
+
+    Rendered in scientific notation (``1.5e0``) because DuckDB and Spark read plain
+    decimals such as ``1.5`` as DECIMAL, which would change the arithmetic.
+    """
+    value = float(value)
+    if not math.isfinite(value):
+        raise ValueError(f"cannot write non-finite number {value!r} into SQL")
+    r = repr(abs(value))
+    if "e" not in r:
+        r += "e0"
+    lit = exp.Literal.number(r)
+    return exp.Neg(this=lit) if value < 0 or (value == 0 and math.copysign(1, value) < 0) else lit
+
+
+def integer(value: int) -> Expr:
+    """An integer literal."""
+    return exp.Literal.number(int(value)) if value >= 0 else exp.Neg(this=exp.Literal.number(-value))
+
+
+def text(value: str) -> exp.Literal:
+    """A string literal; escaping is done by each dialect's renderer."""
+    return exp.Literal.string(value)
+
+
+def null() -> exp.Null:
+    return exp.Null()
+
+
+def true() -> exp.Boolean:
+    return exp.true()
+
+
+# -- operators -------------------------------------------------------------------------------
+
+
+def paren(e: Expr) -> Expr:
+    return e if isinstance(e, exp.Paren | exp.Column | exp.Literal | exp.Func) else exp.Paren(this=e)
+
+
+def add(*terms: Expr) -> Expr:
+    """Sum of terms (``0`` for none)."""
+    terms = tuple(terms)
+    if not terms:
+        return num(0.0)
+    out = terms[0]
+    for t in terms[1:]:
+        out = exp.Add(this=paren(out), expression=paren(t))
+    return out
+
+
+def sub(a: Expr, b: Expr) -> Expr:
+    return exp.Sub(this=paren(a), expression=paren(b))
+
+
+def mul(*factors: Expr) -> Expr:
+    """Product of factors (``1`` for none)."""
+    factors = tuple(factors)
+    if not factors:
+        return num(1.0)
+    out = factors[0]
+    for f in factors[1:]:
+        out = exp.Mul(this=paren(out), expression=paren(f))
+    return out
+
+
+def div(a: Expr, b: Expr) -> Expr:
+    return exp.Div(this=paren(a), expression=paren(b))
+
+
+def neg(a: Expr) -> Expr:
+    return exp.Neg(this=paren(a))
+
+
+def ln(a: Expr) -> Expr:
+    return exp.Ln(this=a)
+
+
+def exp_(a: Expr) -> Expr:
+    return exp.Exp(this=a)
+
+
+def sqrt(a: Expr) -> Expr:
+    return exp.Sqrt(this=a)
+
+
+def power(a: Expr, b: Expr) -> Expr:
+    return exp.Pow(this=a, expression=b)
+
+
+def abs_(a: Expr) -> Expr:
+    return exp.Abs(this=a)
+
+
+def fn(name: str, *args: Expr) -> Expr:
+    """A plain function call by (engine-neutral) name, e.g. ``tan``, ``atan``."""
+    return exp.Anonymous(this=name.upper(), expressions=list(args))
+
+
+def greatest(*args: Expr) -> Expr:
+    return exp.Greatest(this=args[0], expressions=list(args[1:]))
+
+
+def least(*args: Expr) -> Expr:
+    return exp.Least(this=args[0], expressions=list(args[1:]))
+
+
+def clamp(a: Expr, lo: float | None, hi: float | None) -> Expr:
+    """Clamp into [lo, hi] with GREATEST/LEAST (either bound may be omitted)."""
+    out = a
+    if lo is not None:
+        out = greatest(out, num(lo))
+    if hi is not None:
+        out = least(out, num(hi))
+    return out
+
+
+def case(whens: Sequence[tuple[Expr, Expr]], default: Expr | None = None) -> Expr:
+    node = exp.Case(ifs=[exp.If(this=c, true=v) for c, v in whens])
+    if default is not None:
+        node.set("default", default)
+    return node
+
+
+def gt(a: Expr, b: Expr) -> Expr:
+    return exp.GT(this=paren(a), expression=paren(b))
+
+
+def ge(a: Expr, b: Expr) -> Expr:
+    return exp.GTE(this=paren(a), expression=paren(b))
+
+
+def lt(a: Expr, b: Expr) -> Expr:
+    return exp.LT(this=paren(a), expression=paren(b))
+
+
+def le(a: Expr, b: Expr) -> Expr:
+    return exp.LTE(this=paren(a), expression=paren(b))
+
+
+def eq(a: Expr, b: Expr) -> Expr:
+    return exp.EQ(this=paren(a), expression=paren(b))
+
+
+def ne(a: Expr, b: Expr) -> Expr:
+    return exp.NEQ(this=paren(a), expression=paren(b))
+
+
+def and_(*conds: Expr) -> Expr:
+    conds = tuple(c for c in conds if c is not None)
+    if not conds:
+        return exp.true()
+    out = conds[0]
+    for c in conds[1:]:
+        out = exp.And(this=paren(out), expression=paren(c))
+    return out
+
+
+def or_(*conds: Expr) -> Expr:
+    conds = tuple(c for c in conds if c is not None)
+    if not conds:
+        return exp.false()
+    out = conds[0]
+    for c in conds[1:]:
+        out = exp.Or(this=paren(out), expression=paren(c))
+    return out
+
+
+def not_(c: Expr) -> Expr:
+    return exp.Not(this=paren(c))
+
+
+def is_null(a: Expr) -> Expr:
+    return exp.Is(this=paren(a), expression=exp.Null())
+
+
+def cast(a: Expr, to: str) -> Expr:
+    return exp.Cast(this=a, to=exp.DataType.build(to))
+
+
+def as_double(a: Expr) -> Expr:
+    return cast(a, "DOUBLE")
+
+
+def as_text(a: Expr) -> Expr:
+    return cast(a, "VARCHAR")
+
+
+def flag(cond: Expr) -> Expr:
+    """1 where ``cond`` holds, else 0 (an integer indicator)."""
+    return case([(cond, exp.Literal.number(1))], exp.Literal.number(0))
+
+
+def alias(e: Expr, name: str) -> exp.Alias:
+    return exp.Alias(this=e, alias=ident(name))
+
+
+def sum_(e: Expr) -> Expr:
+    return exp.Sum(this=e)
+
+
+def psum(e: Expr) -> Expr:
+    """Sum that the dialect may render as a compensated sum."""
+    return PreciseSum(this=e)
+
+
+def count_star() -> Expr:
+    return exp.Count(this=exp.Star())
+
+
+def min_(e: Expr) -> Expr:
+    return exp.Min(this=e)
+
+
+def max_(e: Expr) -> Expr:
+    return exp.Max(this=e)
+
+
+def avg(e: Expr) -> Expr:
+    return exp.Avg(this=e)
+
+
+def stddev_pop(e: Expr) -> Expr:
+    return exp.StddevPop(this=e)
+
+
+def log_gamma(e: Expr) -> Expr:
+    return LogGamma(this=e)
+
+
+def is_finite(e: Expr) -> Expr:
+    return IsFinite(this=e)
+
+
+def select(
+    columns: Iterable[Expr], source: Expr, *, where: Expr | None = None,
+    group_by: Sequence[Expr] = (),
+) -> exp.Select:
+    """SELECT columns FROM source [WHERE ...] [GROUP BY ...]."""
+    q = exp.Select(expressions=list(columns)).from_(source, copy=False)
+    if where is not None:
+        q = q.where(where, copy=False)
+    if group_by:
+        q = q.group_by(*group_by, copy=False)
+    return q
+
+
+def subquery(q: exp.Query, name: str) -> exp.Subquery:
+    return exp.Subquery(this=q, alias=exp.TableAlias(this=ident(name)))
+
+
+def parse_expression(sql: str, dialect: str) -> Expr:
+    """Parse one scalar SQL expression written by the user (raises ``ValueError`` on bad SQL)."""
+    import sqlglot
+    from sqlglot.errors import ParseError
+
+    try:
+        tree = sqlglot.parse_one(sql, read=dialect)
+    except ParseError as err:
+        raise ValueError(str(err).splitlines()[0]) from None
+    if tree is None:
+        raise ValueError("empty expression")
+    return tree
+
+
+def referenced_columns(e: Expr) -> list[str]:
+    """Names of the columns an expression reads, in order of first appearance."""
+    seen: list[str] = []
+    for c in e.find_all(exp.Column):
+        if c.name not in seen:
+            seen.append(c.name)
+    return seen
