@@ -52,9 +52,12 @@ class _Run:
         cols = self.query(tree)
         return {k: (v[0] if len(v) else None) for k, v in cols.items()}
 
+    phase: str = "fit"
+
     def record(self, dev: float, change: float, halvings: int, seconds: float) -> None:
         rec = IterationRecord(iteration=len(self.log) + 1, deviance=dev,
-                              relative_change=change, step_halvings=halvings, seconds=seconds)
+                              relative_change=change, step_halvings=halvings, seconds=seconds,
+                              phase=self.phase)
         self.log.append(rec)
         if self.progress is not None:
             self.progress(rec)
@@ -342,6 +345,7 @@ def _intercept_only(design: Design) -> Design:
 def _estimate_theta(ctx: P.PlanContext, design: Design, run: _Run, summary: _Summary
                     ) -> tuple[float, np.ndarray]:
     """Alternate IRLS at fixed theta and Newton steps on theta at fixed means."""
+    run.phase = "theta"
     poisson_ctx = dataclasses.replace(
         ctx, spec=dataclasses.replace(ctx.spec, family=Poisson()))
     state, _ = _irls(poisson_ctx, design, run, summary.ybar)
@@ -404,8 +408,10 @@ def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitR
     else:
         start = _start_from(spec, design, summary)
     null_mu, refit_null = _null_deviance(ctx, design, run, summary.ybar)
+    run.phase = "fit"
     state, null_dev = _irls(ctx, design, run, summary.ybar, start=start, null_mu=null_mu)
     if refit_null:
+        run.phase = "null"
         null_state, _ = _irls(ctx, _intercept_only(design), run, summary.ybar)
         null_dev = null_state.sums.deviance
     if not state.converged:
@@ -483,7 +489,8 @@ def _result(ctx, design, run, state, summary, n_total, n_kept, by_col, null_dev,
         dispersion=dispersion, dispersion_estimated=not fam.dispersion_fixed,
         log_likelihood=ll, aic=aic, bic=bic, df_model=rank - (1 if design.intercept else 0),
         df_resid=df_resid, n_used=n_kept, n_excluded=n_total - n_kept,
-        n_weighted=summary.sum_f, iterations=len(run.log), converged=state.converged,
+        n_weighted=summary.sum_f,
+        iterations=sum(1 for r in run.log if r.phase == "fit"), converged=state.converged,
         iteration_log=tuple(run.log), test="z" if fam.dispersion_fixed else "t",
         path=f"grouped scan ({sums.cells} cells)" if design.factors else "single-group scan",
         seconds=time.perf_counter() - t_start, family_params=fam.params(),

@@ -45,6 +45,7 @@ class IterationRecord:
     relative_change: float
     step_halvings: int
     seconds: float
+    phase: str = "fit"  # fit | theta | null (intercept-only refit for the null deviance)
 
 
 @dataclass(frozen=True)
