@@ -162,10 +162,16 @@ def _fmt_number(value: float, spec: str) -> str:
     return format(value, spec) if math.isfinite(value) else "n/a"
 
 
+# Scans that are not steps of the main IRLS fit (see IterationRecord.phase).
+_PHASE_LABELS = {"theta": "theta-estimation", "null": "null-model"}
+
+
 def format_iteration(record: IterationRecord) -> str:
     """One progress line for one IRLS iteration (written to stderr by ``indb fit``)."""
+    phase = getattr(record, "phase", "fit")
+    label = "iteration" if phase == "fit" else f"{_PHASE_LABELS.get(phase, phase)} iteration"
     return (
-        f"indb: iteration {record.iteration:>3}"
+        f"indb: {label} {record.iteration:>3}"
         f"  deviance {_fmt_number(record.deviance, '.10g')}"
         f"  relative change {_fmt_number(record.relative_change, '.3e')}"
         f"  step halvings {record.step_halvings}"
@@ -422,8 +428,10 @@ def demo_command(rows: int | None, out_dir: str, quick: bool, quiet: bool) -> No
     from indb import demo  # imported here: the demo pulls in more than `indb fit` needs
 
     kwargs: dict[str, Any] = {"quick": quick, "out_dir": out_dir}
+    accepted = inspect.signature(demo.run).parameters
+    if "echo" in accepted:
+        kwargs["echo"] = click.echo
     if rows is not None:
-        accepted = inspect.signature(demo.run).parameters
         if "rows" not in accepted:
             raise CommandFailure(
                 "--rows is not supported by this demo (it has a fixed size); "

@@ -82,6 +82,8 @@ class DuckDBEngine(Engine):
             except duckdb.Error as err:
                 raise EngineError(f"cannot open DuckDB database {path!r}: {err}") from err
             self._owned = True
+        # the progress bar would write to the terminal from inside library calls
+        self.con.execute("SET enable_progress_bar = false")
         settings = {"memory_limit": memory_limit, "temp_directory": temp_directory,
                     "threads": threads}
         for key, val in settings.items():

@@ -32,7 +32,7 @@ from indb.spec import ModelSpec
 from indb.sqlexpr import Expr
 
 MAX_HALVINGS = 30
-EDGE = 1e-10  # fitted probabilities this close to 0 or 1 signal separation
+EDGE = 10 * 2.220446049250313e-16  # fitted probabilities numerically 0 or 1 (common practice)
 
 Progress = Callable[[IterationRecord], None] | None
 
@@ -325,15 +325,18 @@ def _irls(ctx: P.PlanContext, design: Design, run: _Run, ybar: float, *,
 
 def _null_deviance(ctx: P.PlanContext, design: Design, run: _Run, ybar: float
                    ) -> tuple[Expr | None, bool]:
-    """How to get the null deviance: a per-row null mean for the first scan, or a refit."""
-    spec = ctx.spec
-    if spec.intercept and spec.offset is not None:
-        return None, True  # intercept-only model with the offset must be refitted
-    if spec.intercept:
-        from indb import sqlexpr as S
+    """How to get the null deviance (intercept-only model, offset and weights honoured).
 
-        return S.num(min(max(ybar, 1e-300), 1 - 2.2e-16) if spec.family.unit_mean else ybar), False
-    return P.offset_null_mu(ctx), False
+    Without an offset its mean is the weighted response mean, whose deviance the first scan
+    adds up; with an offset the intercept-only model is refitted by IRLS. The null model has
+    an intercept even when the fitted model has none (statsmodels' convention).
+    """
+    from indb import sqlexpr as S
+
+    if ctx.spec.offset is not None:
+        return None, True
+    mu = min(max(ybar, 1e-300), 1 - 2.2e-16) if ctx.spec.family.unit_mean else ybar
+    return S.num(mu), False
 
 
 def _intercept_only(design: Design) -> Design:
@@ -472,14 +475,17 @@ def _result(ctx, design, run, state, summary, n_total, n_kept, by_col, null_dev,
     if fam.unit_mean:
         edge = _edge_rows(ctx, design, run, state.beta)
         if edge:
-            msg = (f"{edge} rows have fitted probabilities within {EDGE:g} of 0 or 1: the data "
-                   "are (quasi-)separated, so some estimates and standard errors are unreliable "
-                   "(estimates drift to infinity); consider merging levels or dropping the "
-                   "separating predictor")
+            msg = (f"{edge} rows have fitted probabilities numerically 0 or 1 (within {EDGE:.1e})"
+                   "; with large estimates and very large standard errors this means "
+                   "(quasi-)separation: those estimates drift to infinity and are unreliable "
+                   "(merge levels or drop the separating predictor)")
+            if not state.converged:
+                msg = "separation: " + msg
             warnings.warn(msg, SeparationWarning, stacklevel=3)
             warn_msgs.append(msg)
     ll = _log_likelihood(ctx, design, run, state.beta, sums, summary, dispersion)
-    k = rank + (0 if fam.dispersion_fixed else 1)
+    # parameters counted by AIC/BIC: the coefficients, plus an estimated dispersion or theta
+    k = rank + (0 if fam.dispersion_fixed else 1) + (1 if spec.estimate_theta else 0)
     aic = -2.0 * ll + 2.0 * k
     bic = -2.0 * ll + math.log(summary.n_df) * k if summary.n_df > 0 else math.nan
     return FitResult(

@@ -31,6 +31,8 @@ CAUTION = (
 _LABEL_WIDTH = 22
 _VALUE_WIDTH = 18
 _GAP = "  "
+# The term column never shrinks below this; a table with little room runs past ``width``.
+_MIN_TERM_WIDTH = 16
 
 
 # -- public ---------------------------------------------------------------------------
@@ -56,8 +58,8 @@ def render_report(result: FitResult, *, width: int = 100) -> str:
     width = max(int(width), 60)
     blocks = [
         _title(result, width),
-        _model_block(result),
-        _quality_block(result),
+        _model_block(result, width),
+        _quality_block(result, width),
         _terms_block(result, width),
         _notes_block(result, width),
         _caution_block(width),
@@ -83,7 +85,7 @@ def _title(result: FitResult, width: int) -> str:
     return f"{rule}\n{text}\n{rule}"
 
 
-def _model_block(result: FitResult) -> str:
+def _model_block(result: FitResult, width: int) -> str:
     rows: list[tuple[str, str, str]] = [
         ("response", str(result.response), ""),
         ("source", _one_line(str(result.source)), ""),
@@ -108,10 +110,10 @@ def _model_block(result: FitResult) -> str:
     if _finite(result.seconds_per_iteration):
         timing = f"{result.seconds_per_iteration:.3f} s per scan"
     rows.append(("wall time", _fmt_seconds(result.seconds), timing))
-    return _kv_block("MODEL", rows)
+    return _kv_block("MODEL", rows, width)
 
 
-def _quality_block(result: FitResult) -> str:
+def _quality_block(result: FitResult, width: int) -> str:
     if result.dispersion_estimated:
         disp_note = "estimated (Pearson chi-square / residual df)"
     else:
@@ -131,10 +133,11 @@ def _quality_block(result: FitResult) -> str:
         ("model df", _fmt_count(result.df_model), ""),
     ]
     for name, value in result.family_params.items():
-        rows.append((f"family: {name}", _fmt_value(value), ""))
+        text = f"{float(value):.6g}" if _finite(value) else NA
+        rows.append((f"family: {name}", text, ""))
     if _finite(result.condition_number):
         rows.append(("condition number", _fmt_value(result.condition_number), "of X'WX"))
-    return _kv_block("FIT QUALITY", rows)
+    return _kv_block("FIT QUALITY", rows, width)
 
 
 def _terms_block(result: FitResult, width: int) -> str:
@@ -145,11 +148,10 @@ def _terms_block(result: FitResult, width: int) -> str:
         test_note = f"Wald t ratios on {_fmt_df(result.df_resid)} residual df"
     else:
         test_note = "Wald z ratios"
-    heading = f"TERMS  ({test_note}; {level} confidence intervals"
+    legend = f"s.e. = standard error; {test_note}; {level} confidence intervals"
     if exp_name is not None:
-        heading += f"; {exp_name} = exp(estimate)"
-    heading += ")"
-    lines = [heading, "-" * min(len(heading), width)]
+        legend += f"; {exp_name} = exp(estimate)"
+    lines = ["TERMS", "-" * len("TERMS"), *_wrap(legend + ".", width, indent="  "), ""]
     coefs = list(result.coefficients)
     if not coefs:
         lines.append("  (the model has no terms)")
@@ -200,7 +202,7 @@ def _coefficient_table(
     live = [c for c in coefs if not c.aliased]
     numeric: list[tuple[str, list[str]]] = [
         ("estimate", _fmt_column([c.estimate for c in live])),
-        ("standard error", _fmt_column([c.std_error for c in live])),
+        ("s.e.", _fmt_column([c.std_error for c in live])),
         (f"{test} ratio", [_fmt_fixed(c.statistic, 2) for c in live]),
         ("p-value", [_fmt_p(c.p_value) for c in live]),
         (f"{level} low", _fmt_column([c.ci_low for c in live])),
@@ -210,16 +212,22 @@ def _coefficient_table(
         numeric.append((exp_name, _fmt_column([_safe_exp(c.estimate) for c in live])))
     widths = [max(len(h), *(len(v) for v in vals)) if vals else len(h) for h, vals in numeric]
     numbers_width = sum(widths) + len(_GAP) * len(widths)
-    term_width = max(len("term"), *(len(c.term) for c in coefs))
+    # A term longer than the room left by the numbers gets a line of its own, with its
+    # numbers on the next line: names are never cut, as clipped level names can collide.
+    longest = max(len("term"), *(len(c.term) for c in coefs))
     room = width - 2 - numbers_width
-    term_width = max(min(term_width, room), 12)
+    term_width = min(longest, max(room, _MIN_TERM_WIDTH))
 
     header = "  " + "term".ljust(term_width)
     header += "".join(_GAP + h.rjust(w) for (h, _), w in zip(numeric, widths, strict=True))
     out = [header.rstrip()]
     live_row = 0
     for c in coefs:
-        name = _clip(c.term, term_width).ljust(term_width)
+        if len(c.term) > term_width:
+            out.append(f"  {c.term}")
+            name = " " * term_width
+        else:
+            name = c.term.ljust(term_width)
         if c.aliased:
             out.append(f"  {name}{_GAP}aliased: linear combination of earlier terms, not estimated")
             continue
@@ -232,8 +240,9 @@ def _coefficient_table(
 # -- formatting helpers ---------------------------------------------------------------
 
 
-def _kv_block(title: str, rows: Sequence[tuple[str, str, str]]) -> str:
+def _kv_block(title: str, rows: Sequence[tuple[str, str, str]], width: int) -> str:
     lines = [title, "-" * len(title)]
+    value_indent = " " * (2 + _LABEL_WIDTH)
     numeric_width = max(
         [_VALUE_WIDTH, *(len(v) for _, v, _ in rows if _looks_numeric(v))], default=0
     )
@@ -242,7 +251,19 @@ def _kv_block(title: str, rows: Sequence[tuple[str, str, str]]) -> str:
         line = f"  {label.ljust(_LABEL_WIDTH)}{value_cell}"
         if note:
             line += f"   {note}"
-        lines.append(line.rstrip())
+        if len(line) <= width:
+            lines.append(line.rstrip())
+            continue
+        # Long text (an inline query as the source, say) wraps under the value column.
+        lines.extend(
+            textwrap.wrap(
+                line.strip()[len(label) :].strip(),
+                width=width,
+                initial_indent=f"  {label.ljust(_LABEL_WIDTH)}",
+                subsequent_indent=value_indent,
+                break_on_hyphens=False,
+            )
+        )
     return "\n".join(lines)
 
 
@@ -299,18 +320,30 @@ def _fmt_value(value: Any) -> str:
     return f"{v:,.{_decimals_for(a)}f}"
 
 
+def _fmt_sig(value: Any, significant: int = 5) -> str:
+    """About five significant digits: fixed-point for everyday sizes, scientific otherwise."""
+    if not _finite(value):
+        return NA
+    v = float(value)
+    a = abs(v)
+    if a == 0:
+        return "0"
+    if a < 1e-4 or a >= 1e9:
+        return f"{v:.{significant - 1}e}"
+    return f"{v:.{_decimals_for(a, significant=significant)}f}"
+
+
 def _fmt_column(values: Sequence[float]) -> list[str]:
-    """Format a column with shared decimals so the decimal points line up."""
-    finite = [abs(float(v)) for v in values if _finite(v)]
-    nonzero = [a for a in finite if a > 0]
-    if not nonzero:
-        return [f"{float(v):.4f}" if _finite(v) else NA for v in values]
-    smallest, largest = min(nonzero), max(nonzero)
-    if largest >= 1e12 or smallest < 1e-6:
-        return [f"{float(v):.4e}" if _finite(v) else NA for v in values]
-    # Five significant digits for the smallest entry; at most eight decimals.
-    decimals = _decimals_for(smallest, significant=5)
-    return [f"{float(v):.{decimals}f}" if _finite(v) else NA for v in values]
+    """Format a column so that the decimal points (or mantissa points) line up."""
+    cells = [_fmt_sig(v) for v in values]
+    heads, tails = [], []
+    for cell in cells:
+        head, dot, tail = cell.partition(".")
+        heads.append(head)
+        tails.append(dot + tail)
+    head_width = max((len(h) for h in heads), default=0)
+    tail_width = max((len(t) for t in tails), default=0)
+    return [h.rjust(head_width) + t.ljust(tail_width) for h, t in zip(heads, tails, strict=True)]
 
 
 def _fmt_fixed(value: Any, decimals: int) -> str:
@@ -365,10 +398,6 @@ def _exclusion_note(result: FitResult) -> str:
         return ""
     parts = ", ".join(f"{col}: {_fmt_count(n)}" for col, n in counts.items())
     return f"NULL counts by column: {parts}"
-
-
-def _clip(text: str, width: int) -> str:
-    return text if len(text) <= width else text[: max(width - 1, 0)] + "…"
 
 
 def _one_line(text: str) -> str:

@@ -160,11 +160,13 @@ def fn(name: str, *args: Expr) -> Expr:
 
 
 def greatest(*args: Expr) -> Expr:
-    return exp.Greatest(this=args[0], expressions=list(args[1:]))
+    # ignore_nulls: our arguments are never NULL, and without it sqlglot wraps every call in
+    # a NULL-propagating CASE, which bloats the SQL and slows DuckDB's planner badly.
+    return exp.Greatest(this=args[0], expressions=list(args[1:]), ignore_nulls=True)
 
 
 def least(*args: Expr) -> Expr:
-    return exp.Least(this=args[0], expressions=list(args[1:]))
+    return exp.Least(this=args[0], expressions=list(args[1:]), ignore_nulls=True)
 
 
 def clamp(a: Expr, lo: float | None, hi: float | None) -> Expr:
