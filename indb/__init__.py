@@ -5,8 +5,14 @@ from __future__ import annotations
 from indb.api import fit
 from indb.engine import DuckDBEngine, Engine, connect
 from indb.errors import (
-    AliasingWarning, ConvergenceWarning, EngineError, IndbError, NonConvergenceError,
-    SeparationWarning, SpecError, UnsupportedError,
+    AliasingWarning,
+    ConvergenceWarning,
+    EngineError,
+    IndbError,
+    NonConvergenceError,
+    SeparationWarning,
+    SpecError,
+    UnsupportedError,
 )
 from indb.results import Coefficient, FitResult, IterationRecord
 from indb.spec import ModelSpec
@@ -14,8 +20,21 @@ from indb.spec import ModelSpec
 __version__ = "0.1.0"
 
 __all__ = [
-    "AliasingWarning", "Coefficient", "ConvergenceWarning", "DuckDBEngine", "Engine",
-    "EngineError", "FitResult", "IndbError", "IterationRecord", "ModelSpec",
-    "NonConvergenceError", "SeparationWarning", "SpecError", "UnsupportedError", "connect",
-    "fit", "__version__",
+    "AliasingWarning",
+    "Coefficient",
+    "ConvergenceWarning",
+    "DuckDBEngine",
+    "Engine",
+    "EngineError",
+    "FitResult",
+    "IndbError",
+    "IterationRecord",
+    "ModelSpec",
+    "NonConvergenceError",
+    "SeparationWarning",
+    "SpecError",
+    "UnsupportedError",
+    "connect",
+    "fit",
+    "__version__",
 ]

@@ -52,11 +52,30 @@ def fit(
         iteration log.
     """
     spec = ModelSpec.build(
-        source, response, family, link, trials=trials, offset=offset, weight=weight,
-        frequency_weight=frequency_weight, power=power, theta=theta, link_power=link_power,
-        intercept=intercept, predictors=predictors, exclude=exclude, categorical=categorical,
-        reference=reference, interactions=interactions, splines=splines, on_null=on_null,
-        tol=tol, max_iter=max_iter, strict=strict, max_levels=max_levels, confidence=confidence,
+        source,
+        response,
+        family,
+        link,
+        trials=trials,
+        offset=offset,
+        weight=weight,
+        frequency_weight=frequency_weight,
+        power=power,
+        theta=theta,
+        link_power=link_power,
+        intercept=intercept,
+        predictors=predictors,
+        exclude=exclude,
+        categorical=categorical,
+        reference=reference,
+        interactions=interactions,
+        splines=splines,
+        on_null=on_null,
+        tol=tol,
+        max_iter=max_iter,
+        strict=strict,
+        max_levels=max_levels,
+        confidence=confidence,
     )
     engine = connect(db)
     try:

@@ -43,38 +43,49 @@ def demo_models(parquet: str) -> list[DemoModel]:
     cols = ", ".join(NUMERIC + FACTORS)
     return [
         DemoModel(
-            "frequency", "Claim frequency: Poisson, log link, offset ln(exposure)",
+            "frequency",
+            "Claim frequency: Poisson, log link, offset ln(exposure)",
             f"SELECT {cols}, claim_count, exposure FROM read_parquet({lit})",
-            {"response": "claim_count", "family": "poisson", "offset": "ln(exposure)"}),
+            {"response": "claim_count", "family": "poisson", "offset": "ln(exposure)"},
+        ),
         DemoModel(
-            "severity", "Claim severity: gamma, log link, weight = claim count",
+            "severity",
+            "Claim severity: gamma, log link, weight = claim count",
             f"SELECT {cols}, claim_cost / claim_count AS average_cost, claim_count "
             f"FROM read_parquet({lit}) WHERE claim_count > 0",
-            {"response": "average_cost", "family": "gamma", "link": "log",
-             "weight": "claim_count"}),
+            {"response": "average_cost", "family": "gamma", "link": "log", "weight": "claim_count"},
+        ),
         DemoModel(
-            "pure_premium", "Pure premium: Tweedie (power 1.5), log link, weight = exposure",
-            f"SELECT {cols}, claim_cost / exposure AS loss_cost, exposure "
-            f"FROM read_parquet({lit})",
-            {"response": "loss_cost", "family": "tweedie", "power": 1.5,
-             "weight": "exposure"}),
+            "pure_premium",
+            "Pure premium: Tweedie (power 1.5), log link, weight = exposure",
+            f"SELECT {cols}, claim_cost / exposure AS loss_cost, exposure FROM read_parquet({lit})",
+            {"response": "loss_cost", "family": "tweedie", "power": 1.5, "weight": "exposure"},
+        ),
         DemoModel(
-            "lapse", "Lapse at renewal: binomial, logit link",
+            "lapse",
+            "Lapse at renewal: binomial, logit link",
             f"SELECT {cols}, claim_count, lapsed FROM read_parquet({lit})",
-            {"response": "lapsed", "family": "binomial"}),
+            {"response": "lapsed", "family": "binomial"},
+        ),
     ]
 
 
-def run(quick: bool = False, out_dir: str = "demo_out", rows: int | None = None,
-        echo: Callable[[str], None] = print) -> dict[str, FitResult]:
+def run(
+    quick: bool = False,
+    out_dir: str = "demo_out",
+    rows: int | None = None,
+    echo: Callable[[str], None] = print,
+) -> dict[str, FitResult]:
     """Generate the invented data, fit the four models, print and save the reports."""
     n = rows if rows is not None else (100_000 if quick else 1_000_000)
     os.makedirs(out_dir, exist_ok=True)
     parquet = os.path.join(out_dir, "policies.parquet")
     t0 = time.perf_counter()
     demo_data.write_policies(parquet, n)
-    echo(f"indb demo: wrote {n:,} invented policies of {demo_data.INSURER} to {parquet} "
-         f"({time.perf_counter() - t0:.1f} s)")
+    echo(
+        f"indb demo: wrote {n:,} invented policies of {demo_data.INSURER} to {parquet} "
+        f"({time.perf_counter() - t0:.1f} s)"
+    )
     echo("All data are invented; see indb/demo_data.py for the scenario and its true effects.\n")
     engine = DuckDBEngine(os.path.join(out_dir, "demo.duckdb"))
     results: dict[str, FitResult] = {}
@@ -94,8 +105,13 @@ def run(quick: bool = False, out_dir: str = "demo_out", rows: int | None = None,
                 fh.write(render_report(res))
             results[m.name] = res
         echo("=" * 100)
-        echo(truth_table(results["frequency"], demo_data.FREQUENCY_TRUTH,
-                         "Claim frequency: fitted vs the invented truth"))
+        echo(
+            truth_table(
+                results["frequency"],
+                demo_data.FREQUENCY_TRUTH,
+                "Claim frequency: fitted vs the invented truth",
+            )
+        )
     finally:
         engine.close()
     echo(f"\nindb demo: done in {time.perf_counter() - t0:.1f} s; reports in {out_dir}/")

@@ -123,10 +123,25 @@ class Design:
     def to_dict(self) -> dict:
         return {
             "intercept": self.intercept,
-            "factors": [{"column": f.column, "levels": list(f.levels), "reference": f.reference,
-                         "counts": list(f.counts)} for f in self.factors],
-            "values": [{"label": v.label, "numerics": list(v.numerics), "basis": v.basis,
-                        "center": v.center, "scale": v.scale} for v in self.values[1:]],
+            "factors": [
+                {
+                    "column": f.column,
+                    "levels": list(f.levels),
+                    "reference": f.reference,
+                    "counts": list(f.counts),
+                }
+                for f in self.factors
+            ],
+            "values": [
+                {
+                    "label": v.label,
+                    "numerics": list(v.numerics),
+                    "basis": v.basis,
+                    "center": v.center,
+                    "scale": v.scale,
+                }
+                for v in self.values[1:]
+            ],
             "knots": {c: list(k) for c, k in self.knots},
         }
 
@@ -134,8 +149,9 @@ class Design:
 # -- step 1: names and types ------------------------------------------------------------------
 
 
-def resolve_inputs(spec: ModelSpec, columns: Sequence[tuple[str, str]], type_kind, dialect_name: str
-                   ) -> Inputs:
+def resolve_inputs(
+    spec: ModelSpec, columns: Sequence[tuple[str, str]], type_kind, dialect_name: str
+) -> Inputs:
     """Check the spec's names against the source columns and decide predictor kinds.
 
     ``type_kind`` maps an engine type name to 'numeric', 'boolean', 'text' or 'other'.
@@ -149,21 +165,24 @@ def resolve_inputs(spec: ModelSpec, columns: Sequence[tuple[str, str]], type_kin
     def need(col: str, role: str) -> None:
         if col not in types:
             raise SpecError(
-                f"{role} column {col!r} is not in the source; columns are {_short(names)}")
+                f"{role} column {col!r} is not in the source; columns are {_short(names)}"
+            )
 
     need(spec.response, "response")
     rkind = type_kind(types[spec.response])
     if rkind == "boolean":
         if spec.family.name != "binomial":
             raise SpecError(
-                f"response column {spec.response!r} is BOOLEAN; only family 'binomial' takes it")
+                f"response column {spec.response!r} is BOOLEAN; only family 'binomial' takes it"
+            )
         response_kind = "boolean"
     elif rkind == "numeric":
         response_kind = "numeric"
     else:
         raise SpecError(
             f"response column {spec.response!r} has type {types[spec.response]}; it must be "
-            "numeric (or BOOLEAN for binomial): cast it in the source query")
+            "numeric (or BOOLEAN for binomial): cast it in the source query"
+        )
 
     used_by_exprs: list[str] = [spec.response]
 
@@ -177,8 +196,10 @@ def resolve_inputs(spec: ModelSpec, columns: Sequence[tuple[str, str]], type_kin
         from sqlglot import exp
 
         if tree.find(exp.Query) is not None or tree.find(exp.AggFunc) is not None:
-            raise SpecError(f"{role} expression {expr_text!r} must be a plain per-row expression "
-                            "(no subqueries or aggregates)")
+            raise SpecError(
+                f"{role} expression {expr_text!r} must be a plain per-row expression "
+                "(no subqueries or aggregates)"
+            )
         if isinstance(tree, exp.Query | exp.Command | exp.DDL | exp.DML):
             raise SpecError(f"{role} expression {expr_text!r} is not an expression")
         refs = S.referenced_columns(tree)
@@ -205,8 +226,10 @@ def resolve_inputs(spec: ModelSpec, columns: Sequence[tuple[str, str]], type_kin
         for c in spec.predictors:
             need(c, "predictor")
             if c in used_by_exprs:
-                raise SpecError(f"column {c!r} is used by the response/offset/weight/trials; "
-                                "it cannot also be a predictor")
+                raise SpecError(
+                    f"column {c!r} is used by the response/offset/weight/trials; "
+                    "it cannot also be a predictor"
+                )
         main = [c for c in names if c in set(spec.predictors) and c not in excluded]
     else:
         main = [c for c in names if c not in excluded]
@@ -217,8 +240,10 @@ def resolve_inputs(spec: ModelSpec, columns: Sequence[tuple[str, str]], type_kin
         if c not in involved:
             continue
         if c in used_by_exprs:
-            raise SpecError(f"column {c!r} is used by the response/offset/weight/trials; "
-                            "it cannot also be a predictor")
+            raise SpecError(
+                f"column {c!r} is used by the response/offset/weight/trials; "
+                "it cannot also be a predictor"
+            )
         k = type_kind(types[c])
         if c in spec.categorical:
             if k == "other":
@@ -231,13 +256,16 @@ def resolve_inputs(spec: ModelSpec, columns: Sequence[tuple[str, str]], type_kin
         else:
             raise SpecError(
                 f"column {c!r} has type {types[c]}, which is neither numeric nor categorical; "
-                f"leave it out with exclude=[{c!r}] (CLI --exclude) or cast it in the query")
+                f"leave it out with exclude=[{c!r}] (CLI --exclude) or cast it in the query"
+            )
     for c, _ in spec.splines:
         if kind[c] != "numeric":
             raise SpecError(f"spline column {c!r} must be numeric; it is {types[c]}")
     for c, _ in spec.reference:
         if kind.get(c) != "categorical":
-            raise SpecError(f"reference level given for {c!r}, which is not a categorical predictor")
+            raise SpecError(
+                f"reference level given for {c!r}, which is not a categorical predictor"
+            )
 
     terms: list[TermSpec] = []
     spline_cols = {c for c, _ in spec.splines}
@@ -311,8 +339,15 @@ def plan_values(inputs: Inputs, intercept: bool) -> tuple[Value, ...]:
             continue
         keys[key] = len(out)
         label = TERM_JOIN.join(t.numerics) if t.basis is None else f"{t.numerics[0]}#{t.basis}"
-        out.append(Value(alias=f"v{len(out)}", label=label, numerics=t.numerics, basis=t.basis,
-                         centered=centered))
+        out.append(
+            Value(
+                alias=f"v{len(out)}",
+                label=label,
+                numerics=t.numerics,
+                basis=t.basis,
+                centered=centered,
+            )
+        )
     return tuple(out)
 
 
@@ -343,14 +378,20 @@ def build_design(
     fidx = {f.column: i for i, f in enumerate(factors)}
     cols: list[DesignColumn] = []
     if intercept:
-        cols.append(DesignColumn(term=INTERCEPT, factors=(), levels=(), value=0,
-                                 source_columns=()))
+        cols.append(DesignColumn(term=INTERCEPT, factors=(), levels=(), value=0, source_columns=()))
     full_levels_used = intercept  # with an intercept no factor keeps its reference level
     for t in inputs.terms:
         vi = value_index(values, t, intercept)
         if not t.factors:
-            cols.append(DesignColumn(term=values[vi].label, factors=(), levels=(), value=vi,
-                                     source_columns=t.numerics))
+            cols.append(
+                DesignColumn(
+                    term=values[vi].label,
+                    factors=(),
+                    levels=(),
+                    value=vi,
+                    source_columns=t.numerics,
+                )
+            )
             continue
         fi = tuple(sorted(fidx[c] for c in t.factors))
         if len(fi) == 1:
@@ -359,25 +400,40 @@ def build_design(
             if keep_ref:
                 full_levels_used = True
             level_sets: list[tuple[str, ...]] = [
-                (lv,) for lv in f.levels if keep_ref or lv != f.reference]
+                (lv,) for lv in f.levels if keep_ref or lv != f.reference
+            ]
         else:
             key = tuple(factors[i].column for i in fi)
             seen = combos.get(key, set())
             level_sets = sorted(
-                lv for lv in seen
-                if all(lv[j] != factors[i].reference for j, i in enumerate(fi)))
+                lv for lv in seen if all(lv[j] != factors[i].reference for j, i in enumerate(fi))
+            )
         for lv in level_sets:
             by_col = {factors[i].column: lv[j] for j, i in enumerate(fi)}
             parts = [f"{c}={by_col[c]}" if c in by_col else c for c in t.order]
-            cols.append(DesignColumn(term=TERM_JOIN.join(parts), factors=fi, levels=lv, value=vi,
-                                     source_columns=t.order))
+            cols.append(
+                DesignColumn(
+                    term=TERM_JOIN.join(parts),
+                    factors=fi,
+                    levels=lv,
+                    value=vi,
+                    source_columns=t.order,
+                )
+            )
     names = [c.term for c in cols]
     if len(set(names)) != len(names):
         dup = sorted({n for n in names if names.count(n) > 1})
-        raise SpecError(f"two design columns would share the name(s) {dup}; rename a column or "
-                        "level so term names are unique")
-    return Design(intercept=intercept, factors=tuple(factors), values=tuple(values),
-                  columns=tuple(cols), knots=tuple(knots))
+        raise SpecError(
+            f"two design columns would share the name(s) {dup}; rename a column or "
+            "level so term names are unique"
+        )
+    return Design(
+        intercept=intercept,
+        factors=tuple(factors),
+        values=tuple(values),
+        columns=tuple(cols),
+        knots=tuple(knots),
+    )
 
 
 def factor_sets(design_terms: Sequence[TermSpec], factors: Sequence[str]) -> list[tuple[str, ...]]:

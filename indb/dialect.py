@@ -49,7 +49,8 @@ class Dialect:
         for node in tree.walk():
             if isinstance(node, S.CUSTOM_NODES):
                 raise UnsupportedError(
-                    f"engine {self.name!r} has no translation for {type(node).__name__}")
+                    f"engine {self.name!r} has no translation for {type(node).__name__}"
+                )
         return tree.sql(dialect=self.sqlglot_name)
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
@@ -114,7 +115,8 @@ class Dialect:
             first = str(err).splitlines()[0]
             raise SpecError(
                 f"cannot parse the source query for {self.name}: {first}; "
-                "create a view with it and pass the view name instead") from None
+                "create a view with it and pass the view name instead"
+            ) from None
         if not isinstance(tree, exp.Query):
             raise SpecError("the source query must be a single SELECT (or WITH ... SELECT)")
         return exp.Subquery(this=tree)

@@ -84,15 +84,20 @@ class DuckDBEngine(Engine):
             self._owned = True
         # the progress bar would write to the terminal from inside library calls
         self.con.execute("SET enable_progress_bar = false")
-        settings = {"memory_limit": memory_limit, "temp_directory": temp_directory,
-                    "threads": threads}
+        settings = {
+            "memory_limit": memory_limit,
+            "temp_directory": temp_directory,
+            "threads": threads,
+        }
         for key, val in settings.items():
             if val is not None:
                 self._set(key, val)
 
     def _set(self, key: str, value: Any) -> None:
         # SET takes a literal; values are validated types (str/int), quoted as literals.
-        lit = str(int(value)) if isinstance(value, int) else "'" + str(value).replace("'", "''") + "'"
+        lit = (
+            str(int(value)) if isinstance(value, int) else "'" + str(value).replace("'", "''") + "'"
+        )
         self.execute(f"SET {key} = {lit}")
 
     def execute(self, sql: str) -> list[tuple[Any, ...]]:
@@ -152,6 +157,8 @@ def connect(db: Any = None, **settings: Any) -> Engine:
     if isinstance(db, Engine):
         return db
     if isinstance(db, str) and "://" in db:
-        raise SpecError(f"database URL {db!r} names an engine this version does not support; "
-                        "give a DuckDB file path or omit --db for an in-memory database")
+        raise SpecError(
+            f"database URL {db!r} names an engine this version does not support; "
+            "give a DuckDB file path or omit --db for an in-memory database"
+        )
     return DuckDBEngine(db, **settings)

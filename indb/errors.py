@@ -50,7 +50,7 @@ class ConvergenceWarning(IndbWarning):
 
 
 class SeparationWarning(IndbWarning):
-    """Binomial fit shows (quasi-)separation: estimates drift and fitted probabilities reach 0 or 1."""
+    """Binomial fit with fitted probabilities at 0 or 1: a sign of (quasi-)separation."""
 
 
 class AliasingWarning(IndbWarning):

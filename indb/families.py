@@ -115,9 +115,13 @@ class Gaussian(Family):
     def log_likelihood_sql(self, y, mu, pw, dispersion, trials):
         # -1/2 [ pw (y - mu)^2 / phi + ln(2 pi phi / pw) ]
         r = S.sub(y, mu)
-        return S.mul(S.num(-0.5), S.add(
-            S.div(S.mul(pw, r, r), S.num(dispersion)),
-            S.ln(S.div(S.num(2.0 * math.pi * dispersion), pw))))
+        return S.mul(
+            S.num(-0.5),
+            S.add(
+                S.div(S.mul(pw, r, r), S.num(dispersion)),
+                S.ln(S.div(S.num(2.0 * math.pi * dispersion), pw)),
+            ),
+        )
 
 
 @dataclass(frozen=True)
@@ -141,8 +145,9 @@ class Binomial(Family):
 
     def unit_deviance_sql(self, y, mu):
         one = S.num(1.0)
-        return S.mul(S.num(2.0), S.add(
-            _xlogy_ratio(y, mu), _xlogy_ratio(S.sub(one, y), S.sub(one, mu))))
+        return S.mul(
+            S.num(2.0), S.add(_xlogy_ratio(y, mu), _xlogy_ratio(S.sub(one, y), S.sub(one, mu)))
+        )
 
     def start_sql(self, y, pw, ybar):
         return S.div(S.add(S.mul(pw, y), S.num(0.5)), S.add(pw, S.num(1.0)))
@@ -156,8 +161,10 @@ class Binomial(Family):
         n = trials
         k = S.mul(y, n)
         user_w = S.div(pw, n)
-        comb = S.sub(S.sub(S.log_gamma(S.add(n, one)), S.log_gamma(S.add(k, one))),
-                     S.log_gamma(S.add(S.sub(n, k), one)))
+        comb = S.sub(
+            S.sub(S.log_gamma(S.add(n, one)), S.log_gamma(S.add(k, one))),
+            S.log_gamma(S.add(S.sub(n, k), one)),
+        )
         return S.mul(user_w, S.add(comb, _xlog(k, mu), _xlog(S.sub(n, k), S.sub(one, mu))))
 
 
@@ -203,8 +210,10 @@ class Gamma(Family):
         # nu = pw / phi: nu ln(nu y / mu) - nu y / mu - lgamma(nu) - ln y
         nu = S.div(pw, S.num(dispersion))
         ratio = S.div(y, mu)
-        return S.sub(S.sub(S.sub(S.mul(nu, S.ln(S.mul(nu, ratio))), S.mul(nu, ratio)),
-                           S.log_gamma(nu)), S.ln(y))
+        return S.sub(
+            S.sub(S.sub(S.mul(nu, S.ln(S.mul(nu, ratio))), S.mul(nu, ratio)), S.log_gamma(nu)),
+            S.ln(y),
+        )
 
 
 @dataclass(frozen=True)
@@ -228,9 +237,13 @@ class InverseGaussian(Family):
     def log_likelihood_sql(self, y, mu, pw, dispersion, trials):
         r = S.sub(y, mu)
         phi = S.num(dispersion)
-        return S.mul(S.num(-0.5), S.add(
-            S.div(S.mul(pw, r, r), S.mul(phi, y, mu, mu)),
-            S.ln(S.div(S.mul(S.num(2.0 * math.pi * dispersion), y, y, y), pw))))
+        return S.mul(
+            S.num(-0.5),
+            S.add(
+                S.div(S.mul(pw, r, r), S.mul(phi, y, mu, mu)),
+                S.ln(S.div(S.mul(S.num(2.0 * math.pi * dispersion), y, y, y), pw)),
+            ),
+        )
 
 
 @dataclass(frozen=True)
@@ -253,7 +266,8 @@ class Tweedie(Family):
         p = self.var_power
         if not math.isfinite(p) or (0 < p < 1) or p < 0:
             raise SpecError(
-                f"tweedie power must be 0 or >= 1 (1 < p < 2 for compound Poisson-gamma); got {p}")
+                f"tweedie power must be 0 or >= 1 (1 < p < 2 for compound Poisson-gamma); got {p}"
+            )
         if p >= 2:
             object.__setattr__(self, "y_min_strict", True)
 
@@ -304,17 +318,23 @@ class NegativeBinomial(Family):
 
     def unit_deviance_sql(self, y, mu):
         th = S.num(self.theta)
-        return S.mul(S.num(2.0), S.sub(
-            _xlogy_ratio(y, mu),
-            S.mul(S.add(y, th), S.ln(S.div(S.add(y, th), S.add(mu, th))))))
+        return S.mul(
+            S.num(2.0),
+            S.sub(
+                _xlogy_ratio(y, mu), S.mul(S.add(y, th), S.ln(S.div(S.add(y, th), S.add(mu, th))))
+            ),
+        )
 
     def log_likelihood_sql(self, y, mu, pw, dispersion, trials):
         th = S.num(self.theta)
         one = S.num(1.0)
-        const = S.sub(S.sub(S.log_gamma(S.add(y, th)), S.log_gamma(S.add(y, one))),
-                      S.num(math.lgamma(self.theta)))
-        core = S.sub(S.add(S.mul(th, S.ln(th)), _xlog(y, mu)),
-                     S.mul(S.add(y, th), S.ln(S.add(mu, th))))
+        const = S.sub(
+            S.sub(S.log_gamma(S.add(y, th)), S.log_gamma(S.add(y, one))),
+            S.num(math.lgamma(self.theta)),
+        )
+        core = S.sub(
+            S.add(S.mul(th, S.ln(th)), _xlog(y, mu)), S.mul(S.add(y, th), S.ln(S.add(mu, th)))
+        )
         return S.mul(pw, S.add(const, core))
 
     def params(self):
@@ -324,15 +344,26 @@ class NegativeBinomial(Family):
         return f"negative_binomial(theta={self.theta:.6g})"
 
 
-FAMILY_NAMES = ("gaussian", "binomial", "poisson", "gamma", "inverse_gaussian", "tweedie",
-                "negative_binomial")
+FAMILY_NAMES = (
+    "gaussian",
+    "binomial",
+    "poisson",
+    "gamma",
+    "inverse_gaussian",
+    "tweedie",
+    "negative_binomial",
+)
 
 
 def make_family(name: str, *, power: float | None = None, theta: float | None = None) -> Family:
     """Resolve a family by name; ``power`` is Tweedie's, ``theta`` the negative binomial's."""
     key = name.strip().lower().replace("-", "_")
-    aliases = {"normal": "gaussian", "inverse.gaussian": "inverse_gaussian",
-               "negbin": "negative_binomial", "nb": "negative_binomial"}
+    aliases = {
+        "normal": "gaussian",
+        "inverse.gaussian": "inverse_gaussian",
+        "negbin": "negative_binomial",
+        "nb": "negative_binomial",
+    }
     key = aliases.get(key, key)
     if key not in FAMILY_NAMES:
         raise SpecError(f"unknown family {name!r}; allowed: {', '.join(FAMILY_NAMES)}")
@@ -346,13 +377,21 @@ def make_family(name: str, *, power: float | None = None, theta: float | None = 
         return Tweedie(var_power=float(power))
     if key == "negative_binomial":
         return NegativeBinomial(theta=float(theta) if theta is not None else 1.0)
-    return {"gaussian": Gaussian, "binomial": Binomial, "poisson": Poisson, "gamma": Gamma,
-            "inverse_gaussian": InverseGaussian}[key]()
+    return {
+        "gaussian": Gaussian,
+        "binomial": Binomial,
+        "poisson": Poisson,
+        "gamma": Gamma,
+        "inverse_gaussian": InverseGaussian,
+    }[key]()
 
 
 def canonical_link(family: Family) -> Link:
     """The family's canonical link (log for Tweedie and negative binomial, by convention)."""
     return {
-        "identity": IdentityLink(), "logit": LogitLink(), "log": LogLink(),
-        "inverse": InverseLink(), "inverse_squared": PowerLink(name="inverse_squared", exponent=-2.0),
+        "identity": IdentityLink(),
+        "logit": LogitLink(),
+        "log": LogLink(),
+        "inverse": InverseLink(),
+        "inverse_squared": PowerLink(name="inverse_squared", exponent=-2.0),
     }[family.canonical]

@@ -19,12 +19,24 @@ import numpy as np
 from indb import plan as P
 from indb import solver
 from indb.design import (
-    INTERCEPT, Design, DesignColumn, Factor, Inputs, Value, build_design, factor_sets,
-    plan_values, resolve_inputs,
+    INTERCEPT,
+    Design,
+    DesignColumn,
+    Factor,
+    Inputs,
+    Value,
+    build_design,
+    factor_sets,
+    plan_values,
+    resolve_inputs,
 )
 from indb.engine import Engine
 from indb.errors import (
-    AliasingWarning, ConvergenceWarning, NonConvergenceError, SeparationWarning, SpecError,
+    AliasingWarning,
+    ConvergenceWarning,
+    NonConvergenceError,
+    SeparationWarning,
+    SpecError,
 )
 from indb.families import NegativeBinomial, Poisson
 from indb.results import Coefficient, FitResult, IterationRecord
@@ -55,9 +67,14 @@ class _Run:
     phase: str = "fit"
 
     def record(self, dev: float, change: float, halvings: int, seconds: float) -> None:
-        rec = IterationRecord(iteration=len(self.log) + 1, deviance=dev,
-                              relative_change=change, step_halvings=halvings, seconds=seconds,
-                              phase=self.phase)
+        rec = IterationRecord(
+            iteration=len(self.log) + 1,
+            deviance=dev,
+            relative_change=change,
+            step_halvings=halvings,
+            seconds=seconds,
+            phase=self.phase,
+        )
         self.log.append(rec)
         if self.progress is not None:
             self.progress(rec)
@@ -83,9 +100,19 @@ def _describe(spec: ModelSpec, engine: Engine) -> Inputs:
 
 
 def _empty_inputs(spec: ModelSpec) -> Inputs:
-    return Inputs(response=spec.response, response_kind="numeric", columns=(), factors=(),
-                  numerics=(), terms=(), offset=None, weight=None, frequency_weight=None,
-                  trials=None, model_columns=())
+    return Inputs(
+        response=spec.response,
+        response_kind="numeric",
+        columns=(),
+        factors=(),
+        numerics=(),
+        terms=(),
+        offset=None,
+        weight=None,
+        frequency_weight=None,
+        trials=None,
+        model_columns=(),
+    )
 
 
 def _count_nulls(ctx: P.PlanContext, run: _Run) -> tuple[int, int, dict[str, int]]:
@@ -101,14 +128,20 @@ def _count_nulls(ctx: P.PlanContext, run: _Run) -> tuple[int, int, dict[str, int
         raise SpecError(f"the source {ctx.spec.source.label()!r} has no rows")
     for label, k in by_col.items():
         if k == n_total:
-            raise SpecError(f"{_what(label)} is NULL in all {n_total} rows; leave it out "
-                            f"(exclude=[{label!r}], CLI --exclude) or fill it in the query")
+            raise SpecError(
+                f"{_what(label)} is NULL in all {n_total} rows; leave it out "
+                f"(exclude=[{label!r}], CLI --exclude) or fill it in the query"
+            )
     if n_kept == 0:
-        raise SpecError(f"no rows left: every one of the {n_total} rows has a NULL in some model "
-                        f"column (NULL counts: {by_col})")
+        raise SpecError(
+            f"no rows left: every one of the {n_total} rows has a NULL in some model "
+            f"column (NULL counts: {by_col})"
+        )
     if ctx.spec.on_null == "error" and n_kept < n_total:
-        raise SpecError(f"{n_total - n_kept} rows have NULLs in model columns (counts by column: "
-                        f"{by_col}); clean them in the query or allow exclusion (on_null='exclude')")
+        raise SpecError(
+            f"{n_total - n_kept} rows have NULLs in model columns (counts by column: "
+            f"{by_col}); clean them in the query or allow exclusion (on_null='exclude')"
+        )
     return n_total, n_kept, by_col
 
 
@@ -124,8 +157,10 @@ def _knots(ctx: P.PlanContext, run: _Run) -> dict[str, tuple[float, ...]]:
     for c, k in ctx.inputs.spline_columns:
         ks = tuple(float(row[f"k_{c}_{i}"]) for i in range(len(P.knot_quantiles(k))))
         if len(set(ks)) < len(ks):
-            raise SpecError(f"spline column {c!r} has too few distinct values for {k} knots "
-                            f"(quantile knots {ks}); use fewer knots")
+            raise SpecError(
+                f"spline column {c!r} has too few distinct values for {k} knots "
+                f"(quantile knots {ks}); use fewer knots"
+            )
         out[c] = ks
     return out
 
@@ -142,8 +177,9 @@ class _Summary:
     level_counts: tuple[int, ...]
 
 
-def _summarize(ctx: P.PlanContext, run: _Run, values: tuple[Value, ...],
-               knots: dict[str, tuple[float, ...]]) -> _Summary:
+def _summarize(
+    ctx: P.PlanContext, run: _Run, values: tuple[Value, ...], knots: dict[str, tuple[float, ...]]
+) -> _Summary:
     row = run.one_row(P.summary_query(ctx, values, knots))
     n = int(row["n"])
     for i, (stem, _) in enumerate(P.domain_checks(ctx)):
@@ -152,20 +188,26 @@ def _summarize(ctx: P.PlanContext, run: _Run, values: tuple[Value, ...],
             detail = ""
             if "response" in stem and "NaN" not in stem:
                 detail = f" (min {row['y_min']!r}, max {row['y_max']!r})"
-            raise SpecError(f"{stem} in {bad} of {n} rows{detail}; filter or fix those rows in "
-                            "the source query")
+            raise SpecError(
+                f"{stem} in {bad} of {n} rows{detail}; filter or fix those rows in the source query"
+            )
     sum_fpw = float(row["sum_fpw"] or 0.0)
     if not sum_fpw > 0:
-        raise SpecError("every row has zero weight (prior weight x frequency weight): "
-                        "nothing to fit")
+        raise SpecError(
+            "every row has zero weight (prior weight x frequency weight): nothing to fit"
+        )
     ybar = float(row["sum_fpwy"]) / sum_fpw
     fam = ctx.spec.family
     if fam.positive_mean and not ybar > 0:
-        raise SpecError(f"family {fam.name!r} needs a positive mean response; column "
-                        f"{ctx.inputs.response!r} is 0 in every row used")
+        raise SpecError(
+            f"family {fam.name!r} needs a positive mean response; column "
+            f"{ctx.inputs.response!r} is 0 in every row used"
+        )
     if fam.unit_mean and not 0 < ybar < 1 and ctx.spec.intercept:
-        raise SpecError(f"column {ctx.inputs.response!r} is {int(round(ybar))} in every row "
-                        "used: a binomial model needs both outcomes")
+        raise SpecError(
+            f"column {ctx.inputs.response!r} is {int(round(ybar))} in every row "
+            "used: a binomial model needs both outcomes"
+        )
     out_values = [values[0]]
     for v in values[1:]:
         mean = float(row[f"{v.alias}_mean"])
@@ -176,7 +218,8 @@ def _summarize(ctx: P.PlanContext, run: _Run, values: tuple[Value, ...],
                 raise SpecError(
                     f"predictor {v.label!r} is constant ({mean:g}) over the {n} rows used, so it "
                     f"cannot be told apart from the intercept; leave it out (exclude=[...], "
-                    f"CLI --exclude)")
+                    f"CLI --exclude)"
+                )
             out_values.append(dataclasses.replace(v, center=mean, scale=sd))
         else:
             if not rms > 0:
@@ -188,10 +231,18 @@ def _summarize(ctx: P.PlanContext, run: _Run, values: tuple[Value, ...],
             raise SpecError(
                 f"categorical column {c!r} has {k} levels, over the limit of "
                 f"{ctx.spec.max_levels}; group rare levels in the query, treat it as numeric, "
-                f"or raise max_levels (CLI --max-levels)")
-    return _Summary(n=n, sum_f=float(row["sum_f"]), sum_fpw=sum_fpw, ybar=ybar,
-                    n_df=float(row["sum_f_pos"]), n_zero_weight=int(row["n_zero_weight"]),
-                    values=tuple(out_values), level_counts=counts)
+                f"or raise max_levels (CLI --max-levels)"
+            )
+    return _Summary(
+        n=n,
+        sum_f=float(row["sum_f"]),
+        sum_fpw=sum_fpw,
+        ybar=ybar,
+        n_df=float(row["sum_f_pos"]),
+        n_zero_weight=int(row["n_zero_weight"]),
+        values=tuple(out_values),
+        level_counts=counts,
+    )
 
 
 def _factors(ctx: P.PlanContext, run: _Run) -> tuple[Factor, ...]:
@@ -209,28 +260,41 @@ def _factors(ctx: P.PlanContext, run: _Run) -> tuple[Factor, ...]:
         counts = [counts[k] for k in order]
         if c in ref:
             if ref[c] not in levels:
-                raise SpecError(f"reference level {ref[c]!r} of column {c!r} does not occur in "
-                                f"the rows used; levels are {levels[:20]}")
+                raise SpecError(
+                    f"reference level {ref[c]!r} of column {c!r} does not occur in "
+                    f"the rows used; levels are {levels[:20]}"
+                )
             reference = ref[c]
         else:
             top = max(counts)
             reference = next(lv for lv, k in zip(levels, counts, strict=True) if k == top)
         is_main = any(t.factors == (c,) and not t.numerics for t in ctx.inputs.terms)
         if len(levels) < 2 and is_main and ctx.spec.intercept:
-            raise SpecError(f"categorical column {c!r} has a single level ({levels[0]!r}) in "
-                            "the rows used; leave it out (exclude=[...], CLI --exclude)")
-        out.append(Factor(column=c, alias=f"f{i}", levels=tuple(levels), reference=reference,
-                          counts=tuple(counts)))
+            raise SpecError(
+                f"categorical column {c!r} has a single level ({levels[0]!r}) in "
+                "the rows used; leave it out (exclude=[...], CLI --exclude)"
+            )
+        out.append(
+            Factor(
+                column=c,
+                alias=f"f{i}",
+                levels=tuple(levels),
+                reference=reference,
+                counts=tuple(counts),
+            )
+        )
     return tuple(out)
 
 
-def _combos(ctx: P.PlanContext, run: _Run, factors: tuple[Factor, ...]
-            ) -> dict[tuple[str, ...], set[tuple[str, ...]]]:
+def _combos(
+    ctx: P.PlanContext, run: _Run, factors: tuple[Factor, ...]
+) -> dict[tuple[str, ...], set[tuple[str, ...]]]:
     out: dict[tuple[str, ...], set[tuple[str, ...]]] = {}
     for fs in factor_sets(ctx.inputs.terms, [f.column for f in factors]):
         cols = run.query(P.combos_query(ctx, fs))
-        out[fs] = {tuple(str(cols[f"l{i}"][r]) for i in range(len(fs)))
-                   for r in range(len(cols["n"]))}
+        out[fs] = {
+            tuple(str(cols[f"l{i}"][r]) for i in range(len(fs))) for r in range(len(cols["n"]))
+        }
     return out
 
 
@@ -249,9 +313,15 @@ def _fallback_beta(ctx: P.PlanContext, design: Design, ybar: float) -> np.ndarra
     return beta
 
 
-def _irls(ctx: P.PlanContext, design: Design, run: _Run, ybar: float, *,
-          start: np.ndarray | None = None, null_mu: Expr | None = None,
-          ) -> tuple[_IrlsState, float | None]:
+def _irls(
+    ctx: P.PlanContext,
+    design: Design,
+    run: _Run,
+    ybar: float,
+    *,
+    start: np.ndarray | None = None,
+    null_mu: Expr | None = None,
+) -> tuple[_IrlsState, float | None]:
     """Iterate scans until the relative deviance change drops below ``spec.tol``.
 
     Returns the state at the last scanned coefficients and, when ``null_mu`` is given, the
@@ -259,11 +329,9 @@ def _irls(ctx: P.PlanContext, design: Design, run: _Run, ybar: float, *,
     """
     spec = ctx.spec
     extra = ("nulldev",) if null_mu is not None else ()
-    edge = ("edge",) if spec.family.unit_mean else ()
 
     def scan(beta: np.ndarray | None, with_null: bool) -> solver.Sums:
-        tree = P.gram_query(ctx, design, beta, ybar=ybar,
-                            null_mu=null_mu if with_null else None)
+        tree = P.gram_query(ctx, design, beta, ybar=ybar, null_mu=null_mu if with_null else None)
         return solver.assemble(design, run.query(tree), extra if with_null else ())
 
     t0 = time.perf_counter()
@@ -276,7 +344,8 @@ def _irls(ctx: P.PlanContext, design: Design, run: _Run, ybar: float, *,
             raise SpecError(
                 f"cannot find valid starting values for family {spec.family.name!r} with link "
                 f"{spec.link.describe()!r} ({sums.bad} rows give an invalid mean); "
-                "try another link or starting values")
+                "try another link or starting values"
+            )
         dev_old = math.inf
         beta_prev = _fallback_beta(ctx, design, ybar)
         run.record(sums.deviance, math.nan, 0, time.perf_counter() - t0)
@@ -299,17 +368,22 @@ def _irls(ctx: P.PlanContext, design: Design, run: _Run, ybar: float, *,
             if need_null:
                 null_dev = sums.extras["nulldev"]
                 need_null = False
-            rises = sums.deviance > dev_old * (1 + 1e-9) + 1e-12 if math.isfinite(dev_old) else False
+            rises = (
+                sums.deviance > dev_old * (1 + 1e-9) + 1e-12 if math.isfinite(dev_old) else False
+            )
             if sums.bad == 0 and math.isfinite(sums.deviance) and not rises:
                 break
             if halvings >= MAX_HALVINGS:
                 raise SpecError(
                     f"IRLS step-halving failed after {MAX_HALVINGS} halvings (deviance "
                     f"{sums.deviance:g}, {sums.bad} rows with invalid means); the model may be "
-                    "unsuitable for the data (check the link and family)")
+                    "unsuitable for the data (check the link and family)"
+                )
             beta = 0.5 * (beta + beta_prev)
             halvings += 1
-        change = solver.relative_change(sums.deviance, dev_old) if math.isfinite(dev_old) else math.inf
+        change = (
+            solver.relative_change(sums.deviance, dev_old) if math.isfinite(dev_old) else math.inf
+        )
         run.record(sums.deviance, change, halvings, time.perf_counter() - t0)
         sol = solver.solve(sums.xtwx, sums.xtwz)
         if change < spec.tol:
@@ -319,12 +393,14 @@ def _irls(ctx: P.PlanContext, design: Design, run: _Run, ybar: float, *,
         beta_prev = beta
         beta = sol.beta
     assert sol is not None
-    return _IrlsState(beta=beta, sums=sums, solution=sol, converged=converged,
-                      iterations=iterations), null_dev
+    return _IrlsState(
+        beta=beta, sums=sums, solution=sol, converged=converged, iterations=iterations
+    ), null_dev
 
 
-def _null_deviance(ctx: P.PlanContext, design: Design, run: _Run, ybar: float
-                   ) -> tuple[Expr | None, bool]:
+def _null_deviance(
+    ctx: P.PlanContext, design: Design, run: _Run, ybar: float
+) -> tuple[Expr | None, bool]:
     """How to get the null deviance (intercept-only model, offset and weights honoured).
 
     Without an offset its mean is the weighted response mean, whose deviance the first scan
@@ -340,17 +416,20 @@ def _null_deviance(ctx: P.PlanContext, design: Design, run: _Run, ybar: float
 
 
 def _intercept_only(design: Design) -> Design:
-    return Design(intercept=True, factors=(), values=(design.values[0],),
-                  columns=(DesignColumn(term=INTERCEPT, factors=(), levels=(), value=0,
-                                        source_columns=()),))
+    return Design(
+        intercept=True,
+        factors=(),
+        values=(design.values[0],),
+        columns=(DesignColumn(term=INTERCEPT, factors=(), levels=(), value=0, source_columns=()),),
+    )
 
 
-def _estimate_theta(ctx: P.PlanContext, design: Design, run: _Run, summary: _Summary
-                    ) -> tuple[float, np.ndarray]:
+def _estimate_theta(
+    ctx: P.PlanContext, design: Design, run: _Run, summary: _Summary
+) -> tuple[float, np.ndarray]:
     """Alternate IRLS at fixed theta and Newton steps on theta at fixed means."""
     run.phase = "theta"
-    poisson_ctx = dataclasses.replace(
-        ctx, spec=dataclasses.replace(ctx.spec, family=Poisson()))
+    poisson_ctx = dataclasses.replace(ctx, spec=dataclasses.replace(ctx.spec, family=Poisson()))
     state, _ = _irls(poisson_ctx, design, run, summary.ybar)
     beta = state.beta
     hist = run.query(P.response_histogram_query(ctx, design))
@@ -370,15 +449,19 @@ def _estimate_theta(ctx: P.PlanContext, design: Design, run: _Run, summary: _Sum
             if done:
                 break
         nb_ctx = dataclasses.replace(
-            ctx, spec=dataclasses.replace(ctx.spec, family=NegativeBinomial(theta=theta)))
+            ctx, spec=dataclasses.replace(ctx.spec, family=NegativeBinomial(theta=theta))
+        )
         state, _ = _irls(nb_ctx, design, run, summary.ybar, start=beta)
         beta = state.beta
         if abs(theta - theta_outer) / theta < 1e-9:
             break
         if theta > 1e8:
-            warnings.warn("negative binomial theta runs off to infinity: the data show no "
-                          "overdispersion; a Poisson model fits as well", ConvergenceWarning,
-                          stacklevel=3)
+            warnings.warn(
+                "negative binomial theta runs off to infinity: the data show no "
+                "overdispersion; a Poisson model fits as well",
+                ConvergenceWarning,
+                stacklevel=3,
+            )
             break
     return theta, beta
 
@@ -397,8 +480,9 @@ def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitR
     summary = _summarize(ctx, run, plan_values(inputs, spec.intercept), knots)
     factors = _factors(ctx, run)
     combos = _combos(ctx, run, factors)
-    design = build_design(inputs, spec.intercept, summary.values, factors, combos,
-                          tuple(knots.items()))
+    design = build_design(
+        inputs, spec.intercept, summary.values, factors, combos, tuple(knots.items())
+    )
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
 
@@ -418,14 +502,27 @@ def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitR
         null_state, _ = _irls(ctx, _intercept_only(design), run, summary.ybar)
         null_dev = null_state.sums.deviance
     if not state.converged:
-        msg = (f"IRLS did not converge in {spec.max_iter} iterations (last relative deviance "
-               f"change {run.log[-1].relative_change:.3g}, tolerance {spec.tol:g})")
+        msg = (
+            f"IRLS did not converge in {spec.max_iter} iterations (last relative deviance "
+            f"change {run.log[-1].relative_change:.3g}, tolerance {spec.tol:g})"
+        )
         if spec.strict:
             raise NonConvergenceError(msg)
         warnings.warn(msg, ConvergenceWarning, stacklevel=2)
         warn_msgs.append(msg)
-    return _result(ctx, design, run, state, summary, n_total, n_kept, by_col,
-                   float(null_dev) if null_dev is not None else math.nan, warn_msgs, t_start)
+    return _result(
+        ctx,
+        design,
+        run,
+        state,
+        summary,
+        n_total,
+        n_kept,
+        by_col,
+        float(null_dev) if null_dev is not None else math.nan,
+        warn_msgs,
+        t_start,
+    )
 
 
 def _start_from(spec: ModelSpec, design: Design, summary: _Summary) -> np.ndarray | None:
@@ -441,8 +538,9 @@ def _start_from(spec: ModelSpec, design: Design, summary: _Summary) -> np.ndarra
     return np.linalg.solve(t, orig)
 
 
-def _result(ctx, design, run, state, summary, n_total, n_kept, by_col, null_dev, warn_msgs,
-            t_start) -> FitResult:
+def _result(
+    ctx, design, run, state, summary, n_total, n_kept, by_col, null_dev, warn_msgs, t_start
+) -> FitResult:
     spec = ctx.spec
     fam = spec.family
     sol = state.solution
@@ -457,28 +555,41 @@ def _result(ctx, design, run, state, summary, n_total, n_kept, by_col, null_dev,
     beta_std = np.where(sol.aliased, 0.0, state.beta)
     est = t @ beta_std
     cov = dispersion * (t @ sol.inv_info @ t.T)
-    inf = solver.wald(est, cov, sol.aliased, None if fam.dispersion_fixed else df_resid,
-                      spec.confidence)
+    inf = solver.wald(
+        est, cov, sol.aliased, None if fam.dispersion_fixed else df_resid, spec.confidence
+    )
     coefs = tuple(
-        Coefficient(term=c.term, columns=tuple(c.source_columns),
-                    levels=tuple(_levels_for(design, c)), estimate=float(inf.estimate[j]),
-                    std_error=float(inf.std_error[j]), statistic=float(inf.statistic[j]),
-                    p_value=float(inf.p_value[j]), ci_low=float(inf.ci_low[j]),
-                    ci_high=float(inf.ci_high[j]), aliased=bool(sol.aliased[j]))
-        for j, c in enumerate(design.columns))
+        Coefficient(
+            term=c.term,
+            columns=tuple(c.source_columns),
+            levels=tuple(_levels_for(design, c)),
+            estimate=float(inf.estimate[j]),
+            std_error=float(inf.std_error[j]),
+            statistic=float(inf.statistic[j]),
+            p_value=float(inf.p_value[j]),
+            ci_low=float(inf.ci_low[j]),
+            ci_high=float(inf.ci_high[j]),
+            aliased=bool(sol.aliased[j]),
+        )
+        for j, c in enumerate(design.columns)
+    )
     aliased_terms = tuple(c.term for c, a in zip(design.columns, sol.aliased, strict=True) if a)
     if aliased_terms:
-        msg = (f"{len(aliased_terms)} design column(s) are linear combinations of earlier ones "
-               f"and were set aside: {list(aliased_terms)[:10]}")
+        msg = (
+            f"{len(aliased_terms)} design column(s) are linear combinations of earlier ones "
+            f"and were set aside: {list(aliased_terms)[:10]}"
+        )
         warnings.warn(msg, AliasingWarning, stacklevel=3)
         warn_msgs.append(msg)
     if fam.unit_mean:
         edge = _edge_rows(ctx, design, run, state.beta)
         if edge:
-            msg = (f"{edge} rows have fitted probabilities numerically 0 or 1 (within {EDGE:.1e})"
-                   "; with large estimates and very large standard errors this means "
-                   "(quasi-)separation: those estimates drift to infinity and are unreliable "
-                   "(merge levels or drop the separating predictor)")
+            msg = (
+                f"{edge} rows have fitted probabilities numerically 0 or 1 (within {EDGE:.1e})"
+                "; with large estimates and very large standard errors this means "
+                "(quasi-)separation: those estimates drift to infinity and are unreliable "
+                "(merge levels or drop the separating predictor)"
+            )
             if not state.converged:
                 msg = "separation: " + msg
             warnings.warn(msg, SeparationWarning, stacklevel=3)
@@ -489,20 +600,39 @@ def _result(ctx, design, run, state, summary, n_total, n_kept, by_col, null_dev,
     aic = -2.0 * ll + 2.0 * k
     bic = -2.0 * ll + math.log(summary.n_df) * k if summary.n_df > 0 else math.nan
     return FitResult(
-        family=fam.name, link=spec.link.describe(), response=spec.response,
-        source=spec.source.label(), coefficients=coefs, covariance=inf.covariance,
-        deviance=sums.deviance, null_deviance=null_dev, pearson_chi2=sums.pearson,
-        dispersion=dispersion, dispersion_estimated=not fam.dispersion_fixed,
-        log_likelihood=ll, aic=aic, bic=bic, df_model=rank - (1 if design.intercept else 0),
-        df_resid=df_resid, n_used=n_kept, n_excluded=n_total - n_kept,
+        family=fam.name,
+        link=spec.link.describe(),
+        response=spec.response,
+        source=spec.source.label(),
+        coefficients=coefs,
+        covariance=inf.covariance,
+        deviance=sums.deviance,
+        null_deviance=null_dev,
+        pearson_chi2=sums.pearson,
+        dispersion=dispersion,
+        dispersion_estimated=not fam.dispersion_fixed,
+        log_likelihood=ll,
+        aic=aic,
+        bic=bic,
+        df_model=rank - (1 if design.intercept else 0),
+        df_resid=df_resid,
+        n_used=n_kept,
+        n_excluded=n_total - n_kept,
         n_weighted=summary.sum_f,
-        iterations=sum(1 for r in run.log if r.phase == "fit"), converged=state.converged,
-        iteration_log=tuple(run.log), test="z" if fam.dispersion_fixed else "t",
+        iterations=sum(1 for r in run.log if r.phase == "fit"),
+        converged=state.converged,
+        iteration_log=tuple(run.log),
+        test="z" if fam.dispersion_fixed else "t",
         path=f"grouped scan ({sums.cells} cells)" if design.factors else "single-group scan",
-        seconds=time.perf_counter() - t_start, family_params=fam.params(),
-        excluded_by_column=by_col, aliased_terms=aliased_terms,
-        condition_number=sol.condition_number, warnings=tuple(warn_msgs),
-        confidence=spec.confidence, spec=spec.to_dict(), design=design.to_dict(),
+        seconds=time.perf_counter() - t_start,
+        family_params=fam.params(),
+        excluded_by_column=by_col,
+        aliased_terms=aliased_terms,
+        condition_number=sol.condition_number,
+        warnings=tuple(warn_msgs),
+        confidence=spec.confidence,
+        spec=spec.to_dict(),
+        design=design.to_dict(),
     )
 
 
@@ -516,8 +646,9 @@ def _edge_rows(ctx, design, run, beta) -> int:
 
     mean = P._mean_stage(ctx, design, P._eta_from_beta(ctx, design, beta))
     mu = S.col("mu")
-    cond = S.and_(S.gt(S.col("pw"), S.num(0.0)),
-                  S.or_(S.le(mu, S.num(EDGE)), S.ge(mu, S.num(1 - EDGE))))
+    cond = S.and_(
+        S.gt(S.col("pw"), S.num(0.0)), S.or_(S.le(mu, S.num(EDGE)), S.ge(mu, S.num(1 - EDGE)))
+    )
     row = run.one_row(S.select([S.alias(S.sum_(S.flag(cond)), "edge")], S.subquery(mean, "m")))
     return int(row["edge"] or 0)
 

@@ -30,10 +30,25 @@ def _normal_cdf_sql(x: Expr) -> Expr:
     """
     xa = S.abs_(x)
     e = S.exp_(S.div(S.neg(S.mul(xa, xa)), S.num(2.0)))
-    num_c = [3.52624965998911e-02, 0.700383064443688, 6.37396220353165, 33.912866078383,
-             112.079291497871, 221.213596169931, 220.206867912376]
-    den_c = [8.83883476483184e-02, 1.75566716318264, 16.064177579207, 86.7807322029461,
-             296.564248779674, 637.333633378831, 793.826512519948, 440.413735824752]
+    num_c = [
+        3.52624965998911e-02,
+        0.700383064443688,
+        6.37396220353165,
+        33.912866078383,
+        112.079291497871,
+        221.213596169931,
+        220.206867912376,
+    ]
+    den_c = [
+        8.83883476483184e-02,
+        1.75566716318264,
+        16.064177579207,
+        86.7807322029461,
+        296.564248779674,
+        637.333633378831,
+        793.826512519948,
+        440.413735824752,
+    ]
 
     def horner(coefs: list[float]) -> Expr:
         acc: Expr = S.num(coefs[0])
@@ -46,8 +61,9 @@ def _normal_cdf_sql(x: Expr) -> Expr:
     for k in (4.0, 3.0, 2.0, 1.0):
         b = S.add(xa, S.div(S.num(k), b))
     big = S.div(S.div(e, b), S.num(2.506628274631))
-    tail = S.case([(S.gt(xa, S.num(37.0)), S.num(0.0)),
-                   (S.lt(xa, S.num(7.07106781186547)), small)], big)
+    tail = S.case(
+        [(S.gt(xa, S.num(37.0)), S.num(0.0)), (S.lt(xa, S.num(7.07106781186547)), small)], big
+    )
     return S.case([(S.gt(x, S.num(0.0)), S.sub(S.num(1.0), tail))], tail)
 
 
@@ -193,8 +209,7 @@ class ProbitLink(Link):
 
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
         e = S.clamp(eta, -UNIT_ETA_CAP, UNIT_ETA_CAP)
-        return S.div(S.exp_(S.div(S.neg(S.mul(e, e)), S.num(2.0))),
-                     S.num(math.sqrt(2.0 * math.pi)))
+        return S.div(S.exp_(S.div(S.neg(S.mul(e, e)), S.num(2.0))), S.num(math.sqrt(2.0 * math.pi)))
 
     def link(self, mu):
         return special.ndtri(mu)
@@ -361,5 +376,15 @@ def make_link(name: str, exponent: float | None = None) -> Link:
     return simple[key]
 
 
-LINK_NAMES = ("identity", "log", "logit", "probit", "cloglog", "cauchit", "inverse",
-              "inverse_squared", "sqrt", "power")
+LINK_NAMES = (
+    "identity",
+    "log",
+    "logit",
+    "probit",
+    "cloglog",
+    "cauchit",
+    "inverse",
+    "inverse_squared",
+    "sqrt",
+    "power",
+)

@@ -93,8 +93,12 @@ class PlanContext:
     def kept(self) -> Expr:
         """Rows with no NULL in any model column or model expression."""
         conds = [S.not_(S.is_null(S.col(c))) for c in self.inputs.model_columns]
-        for e in (self.inputs.offset, self.inputs.weight, self.inputs.frequency_weight,
-                  self.inputs.trials):
+        for e in (
+            self.inputs.offset,
+            self.inputs.weight,
+            self.inputs.frequency_weight,
+            self.inputs.trials,
+        ):
             if e is not None:
                 conds.append(S.not_(S.is_null(e.copy())))
         return S.and_(*conds)
@@ -102,9 +106,12 @@ class PlanContext:
     def null_items(self) -> list[tuple[str, Expr]]:
         """(label, expression) for every input whose NULLs exclude a row."""
         items: list[tuple[str, Expr]] = [(c, S.col(c)) for c in self.inputs.model_columns]
-        for label, e in (("offset", self.inputs.offset), ("weight", self.inputs.weight),
-                         ("frequency_weight", self.inputs.frequency_weight),
-                         ("trials", self.inputs.trials)):
+        for label, e in (
+            ("offset", self.inputs.offset),
+            ("weight", self.inputs.weight),
+            ("frequency_weight", self.inputs.frequency_weight),
+            ("trials", self.inputs.trials),
+        ):
             if e is not None:
                 items.append((f"{label} expression", e.copy()))
         return items
@@ -122,14 +129,16 @@ class PlanContext:
         parts = [e for e in (self.raw_trials(), self.raw_weight()) if e is not None]
         return S.mul(*parts) if parts else S.num(1.0)
 
-    def value_sql(self, v: Value, knots: dict[str, tuple[float, ...]] | None = None,
-                  standardized: bool = True) -> Expr:
+    def value_sql(
+        self, v: Value, knots: dict[str, tuple[float, ...]] | None = None, standardized: bool = True
+    ) -> Expr:
         """The per-row value v (a product of numeric columns or a spline basis function)."""
         if v.basis is None:
             raw = S.mul(*(S.as_double(S.col(c)) for c in v.numerics))
         else:
-            raw = spline_basis_sql(S.as_double(S.col(v.numerics[0])),
-                                   (knots or {})[v.numerics[0]], v.basis)
+            raw = spline_basis_sql(
+                S.as_double(S.col(v.numerics[0])), (knots or {})[v.numerics[0]], v.basis
+            )
         if not standardized:
             return raw
         if v.centered:
@@ -167,8 +176,7 @@ def describe_query(ctx: PlanContext) -> exp.Select:
 
 def null_count_query(ctx: PlanContext) -> exp.Select:
     """Total rows, kept rows and per-input NULL counts over the whole source."""
-    cols = [S.alias(S.count_star(), "n_total"),
-            S.alias(S.sum_(S.flag(ctx.kept())), "n_kept")]
+    cols = [S.alias(S.count_star(), "n_total"), S.alias(S.sum_(S.flag(ctx.kept())), "n_kept")]
     for i, (_, e) in enumerate(ctx.null_items()):
         cols.append(S.alias(S.sum_(S.flag(S.is_null(e))), f"null_{i}"))
     return S.select(cols, ctx.source())
@@ -193,39 +201,71 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
     checks.append((f"response column {name!r} is NaN or infinite", S.not_(S.is_finite(y))))
     t = ctx.raw_trials()
     if fam.name == "binomial" and t is not None:
-        checks.append((f"trials expression {spec.trials!r} is negative",
-                       S.lt(t, S.num(0.0))))
-        checks.append((f"family 'binomial' needs successes >= 0; column {name!r} is negative",
-                       S.lt(y, S.num(0.0))))
-        checks.append((f"family 'binomial' needs successes <= trials; column {name!r} exceeds "
-                       f"trials expression {spec.trials!r}", S.gt(y, t)))
+        checks.append((f"trials expression {spec.trials!r} is negative", S.lt(t, S.num(0.0))))
+        checks.append(
+            (
+                f"family 'binomial' needs successes >= 0; column {name!r} is negative",
+                S.lt(y, S.num(0.0)),
+            )
+        )
+        checks.append(
+            (
+                f"family 'binomial' needs successes <= trials; column {name!r} exceeds "
+                f"trials expression {spec.trials!r}",
+                S.gt(y, t),
+            )
+        )
     else:
         if fam.y_min is not None:
             op = S.le if fam.y_min_strict else S.lt
             rel = ">" if fam.y_min_strict else ">="
-            checks.append((f"family {fam.name!r} needs a response {rel} {fam.y_min:g}; "
-                           f"column {name!r} has values outside", op(y, S.num(fam.y_min))))
+            checks.append(
+                (
+                    f"family {fam.name!r} needs a response {rel} {fam.y_min:g}; "
+                    f"column {name!r} has values outside",
+                    op(y, S.num(fam.y_min)),
+                )
+            )
         if fam.y_max is not None:
-            checks.append((f"family {fam.name!r} needs a response <= {fam.y_max:g}; "
-                           f"column {name!r} has values outside", S.gt(y, S.num(fam.y_max))))
-    for label, e in (("offset", ctx.raw_offset()), ("weight", ctx.raw_weight()),
-                     ("frequency_weight", ctx.raw_freq()), ("trials", t)):
+            checks.append(
+                (
+                    f"family {fam.name!r} needs a response <= {fam.y_max:g}; "
+                    f"column {name!r} has values outside",
+                    S.gt(y, S.num(fam.y_max)),
+                )
+            )
+    for label, e in (
+        ("offset", ctx.raw_offset()),
+        ("weight", ctx.raw_weight()),
+        ("frequency_weight", ctx.raw_freq()),
+        ("trials", t),
+    ):
         if e is not None:
             checks.append((f"{label} expression is NaN or infinite", S.not_(S.is_finite(e))))
     if ctx.raw_weight() is not None:
-        checks.append((f"weight expression {spec.weight!r} is negative",
-                       S.lt(ctx.raw_weight(), S.num(0.0))))
+        checks.append(
+            (f"weight expression {spec.weight!r} is negative", S.lt(ctx.raw_weight(), S.num(0.0)))
+        )
     if ctx.raw_freq() is not None:
-        checks.append((f"frequency_weight expression {spec.frequency_weight!r} is negative",
-                       S.lt(ctx.raw_freq(), S.num(0.0))))
+        checks.append(
+            (
+                f"frequency_weight expression {spec.frequency_weight!r} is negative",
+                S.lt(ctx.raw_freq(), S.num(0.0)),
+            )
+        )
     for c in ctx.inputs.numerics:
-        checks.append((f"predictor column {c!r} is NaN or infinite",
-                       S.not_(S.is_finite(S.as_double(S.col(c))))))
+        checks.append(
+            (
+                f"predictor column {c!r} is NaN or infinite",
+                S.not_(S.is_finite(S.as_double(S.col(c)))),
+            )
+        )
     return checks
 
 
-def summary_query(ctx: PlanContext, values: Sequence[Value],
-                  knots: dict[str, tuple[float, ...]]) -> exp.Select:
+def summary_query(
+    ctx: PlanContext, values: Sequence[Value], knots: dict[str, tuple[float, ...]]
+) -> exp.Select:
     """One scan over kept rows: domain checks, weighted response mean, value moments."""
     y = ctx.response()
     pw = ctx.prior_weight()
@@ -246,14 +286,17 @@ def summary_query(ctx: PlanContext, values: Sequence[Value],
         cols.append(S.alias(S.sum_(S.flag(cond)), f"chk_{i}"))
     for v in values[1:]:
         raw = ctx.value_sql(v, knots, standardized=False)
-        cols += [S.alias(S.avg(raw), f"{v.alias}_mean"),
-                 S.alias(S.stddev_pop(raw), f"{v.alias}_sd"),
-                 S.alias(S.avg(S.mul(raw, raw)), f"{v.alias}_ms"),
-                 S.alias(S.min_(raw), f"{v.alias}_min"),
-                 S.alias(S.max_(raw), f"{v.alias}_max")]
+        cols += [
+            S.alias(S.avg(raw), f"{v.alias}_mean"),
+            S.alias(S.stddev_pop(raw), f"{v.alias}_sd"),
+            S.alias(S.avg(S.mul(raw, raw)), f"{v.alias}_ms"),
+            S.alias(S.min_(raw), f"{v.alias}_min"),
+            S.alias(S.max_(raw), f"{v.alias}_max"),
+        ]
     for i, c in enumerate(ctx.inputs.factors):
-        cols.append(S.alias(exp.Count(this=exp.Distinct(expressions=[S.as_text(S.col(c))])),
-                            f"levels_{i}"))
+        cols.append(
+            S.alias(exp.Count(this=exp.Distinct(expressions=[S.as_text(S.col(c))])), f"levels_{i}")
+        )
     return S.select(cols, ctx.source(), where=ctx.kept())
 
 
@@ -262,10 +305,18 @@ def levels_query(ctx: PlanContext) -> exp.Expression:
     parts: list[exp.Select] = []
     for i, c in enumerate(ctx.inputs.factors):
         lv = S.as_text(S.col(c))
-        parts.append(S.select(
-            [S.alias(exp.Literal.number(i), "factor"), S.alias(lv, "level"),
-             S.alias(S.count_star(), "n")],
-            ctx.source(), where=ctx.kept(), group_by=[lv]))
+        parts.append(
+            S.select(
+                [
+                    S.alias(exp.Literal.number(i), "factor"),
+                    S.alias(lv, "level"),
+                    S.alias(S.count_star(), "n"),
+                ],
+                ctx.source(),
+                where=ctx.kept(),
+                group_by=[lv],
+            )
+        )
     out: exp.Expression = parts[0]
     for p in parts[1:]:
         out = exp.Union(this=out, expression=p, distinct=False)
@@ -275,8 +326,12 @@ def levels_query(ctx: PlanContext) -> exp.Expression:
 def combos_query(ctx: PlanContext, factor_columns: Sequence[str]) -> exp.Select:
     """Observed level combinations of a set of factors."""
     lv = [S.as_text(S.col(c)) for c in factor_columns]
-    return S.select([S.alias(e, f"l{i}") for i, e in enumerate(lv)] +
-                    [S.alias(S.count_star(), "n")], ctx.source(), where=ctx.kept(), group_by=lv)
+    return S.select(
+        [S.alias(e, f"l{i}") for i, e in enumerate(lv)] + [S.alias(S.count_star(), "n")],
+        ctx.source(),
+        where=ctx.kept(),
+        group_by=lv,
+    )
 
 
 # -- the per-row stages of the IRLS scan -------------------------------------------------------
@@ -287,9 +342,12 @@ def rows_select(ctx: PlanContext, design: Design) -> exp.Select:
     knots = dict(design.knots)
     cols: list[Expr] = [S.alias(S.as_text(S.col(f.column)), f.alias) for f in design.factors]
     cols += [S.alias(ctx.value_sql(v, knots), v.alias) for v in design.values[1:]]
-    cols += [S.alias(ctx.response(), "y"), S.alias(ctx.prior_weight(), "pw"),
-             S.alias(ctx.raw_freq() or S.num(1.0), "fw"),
-             S.alias(ctx.raw_offset() or S.num(0.0), "off")]
+    cols += [
+        S.alias(ctx.response(), "y"),
+        S.alias(ctx.prior_weight(), "pw"),
+        S.alias(ctx.raw_freq() or S.num(1.0), "fw"),
+        S.alias(ctx.raw_offset() or S.num(0.0), "off"),
+    ]
     t = ctx.raw_trials()
     if t is not None:
         cols.append(S.alias(t, "nt"))
@@ -324,21 +382,37 @@ def _eta_from_beta(ctx: PlanContext, design: Design, beta: np.ndarray) -> exp.Se
             c = design.columns[j]
             table.setdefault(c.levels, {})[c.value] = float(beta[j])
         kname = f"k{g}"
-        rows = [exp.Tuple(expressions=[*(S.text(lv) for lv in lvls),
-                                       *(S.num(coefs.get(v, 0.0)) for v in vals)])
-                for lvls, coefs in sorted(table.items())]
+        rows = [
+            exp.Tuple(
+                expressions=[
+                    *(S.text(lv) for lv in lvls),
+                    *(S.num(coefs.get(v, 0.0)) for v in vals),
+                ]
+            )
+            for lvls, coefs in sorted(table.items())
+        ]
         colnames = [f"l{i}" for i in range(len(fset))] + [f"c{v}" for v in vals]
-        values = exp.Values(expressions=rows, alias=exp.TableAlias(
-            this=S.ident(kname), columns=[S.ident(n) for n in colnames]))
-        on = S.and_(*(S.eq(S.col(design.factors[fi].alias, r), S.col(f"l{i}", kname))
-                      for i, fi in enumerate(fset)))
+        values = exp.Values(
+            expressions=rows,
+            alias=exp.TableAlias(this=S.ident(kname), columns=[S.ident(n) for n in colnames]),
+        )
+        on = S.and_(
+            *(
+                S.eq(S.col(design.factors[fi].alias, r), S.col(f"l{i}", kname))
+                for i, fi in enumerate(fset)
+            )
+        )
         joins.append((values, on))
         for v in vals:
             coef = exp.Coalesce(this=S.col(f"c{v}", kname), expressions=[S.num(0.0)])
             terms.append(coef if v == 0 else S.mul(coef, S.col(design.values[v].alias, r)))
-    q = S.select([*(S.col(c.name, r) for c in _passthrough(design, _extra_row_cols(ctx))),
-                  S.alias(S.add(*terms), "eta")],
-                 S.subquery(rows_select(ctx, design), r))
+    q = S.select(
+        [
+            *(S.col(c.name, r) for c in _passthrough(design, _extra_row_cols(ctx))),
+            S.alias(S.add(*terms), "eta"),
+        ],
+        S.subquery(rows_select(ctx, design), r),
+    )
     for values, on in joins:
         q = q.join(values, on=on, join_type="left", copy=False)
     return q
@@ -353,16 +427,19 @@ def _eta_start(ctx: PlanContext, design: Design, ybar: float) -> exp.Select:
     fam, link = ctx.spec.family, ctx.spec.link
     y, pw = S.col("y"), S.col("pw")
     mu0 = fam.start_sql(y, pw, ybar)
-    needs_positive = (link.positive_mean or link.eta_ok(S.col("eta")) is not None
-                      or fam.positive_mean) and not fam.unit_mean
+    needs_positive = (
+        link.positive_mean or link.eta_ok(S.col("eta")) is not None or fam.positive_mean
+    ) and not fam.unit_mean
     if needs_positive:
         fallback = ybar if ybar > 0 else 1.0
         mu0 = S.case([(S.gt(mu0, S.num(0.0)), mu0)], S.num(fallback))
     if fam.unit_mean:
         mu0 = S.clamp(mu0, 1e-6, 1 - 1e-6)
     eta0 = link.link_sql(mu0)
-    return S.select([*_passthrough(design, _extra_row_cols(ctx)), S.alias(eta0, "eta")],
-                    S.subquery(rows_select(ctx, design), ROWS))
+    return S.select(
+        [*_passthrough(design, _extra_row_cols(ctx)), S.alias(eta0, "eta")],
+        S.subquery(rows_select(ctx, design), ROWS),
+    )
 
 
 def _mean_stage(ctx: PlanContext, design: Design, eta_stage: exp.Select) -> exp.Select:
@@ -371,14 +448,23 @@ def _mean_stage(ctx: PlanContext, design: Design, eta_stage: exp.Select) -> exp.
     eta = S.col("eta")
     ok_eta = link.eta_ok(eta)
     safe = S.case([(ok_eta, eta)], S.num(link.safe_eta)) if ok_eta is not None else eta
-    inner = S.select([*_passthrough(design, [*_extra_row_cols(ctx), "eta"]),
-                      S.alias(safe, "seta"),
-                      S.alias(S.flag(S.not_(ok_eta)) if ok_eta is not None else
-                              exp.Literal.number(0), "eta_bad")],
-                     S.subquery(eta_stage, "e"))
-    mid = S.select([*_passthrough(design, [*_extra_row_cols(ctx), "eta", "seta", "eta_bad"]),
-                    S.alias(link.inverse_sql(S.col("seta")), "mu_raw")],
-                   S.subquery(inner, "e1"))
+    inner = S.select(
+        [
+            *_passthrough(design, [*_extra_row_cols(ctx), "eta"]),
+            S.alias(safe, "seta"),
+            S.alias(
+                S.flag(S.not_(ok_eta)) if ok_eta is not None else exp.Literal.number(0), "eta_bad"
+            ),
+        ],
+        S.subquery(eta_stage, "e"),
+    )
+    mid = S.select(
+        [
+            *_passthrough(design, [*_extra_row_cols(ctx), "eta", "seta", "eta_bad"]),
+            S.alias(link.inverse_sql(S.col("seta")), "mu_raw"),
+        ],
+        S.subquery(inner, "e1"),
+    )
     mu_raw = S.col("mu_raw")
     mu_ok = fam.mu_ok(mu_raw, link)
     bad_conds = [S.gt(S.col("eta_bad"), exp.Literal.number(0)), S.not_(S.is_finite(mu_raw))]
@@ -386,36 +472,58 @@ def _mean_stage(ctx: PlanContext, design: Design, eta_stage: exp.Select) -> exp.
         bad_conds.append(S.not_(mu_ok))
     bad = S.flag(S.or_(*bad_conds))
     safe_mu = S.case([(S.is_finite(mu_raw), mu_raw)], S.num(1.0 if not fam.unit_mean else 0.5))
-    return S.select([*_passthrough(design, [*_extra_row_cols(ctx), "eta", "seta"]),
-                     S.alias(bad, "bad"), S.alias(fam.clamp_mu_sql(safe_mu), "mu")],
-                    S.subquery(mid, "m0"))
+    return S.select(
+        [
+            *_passthrough(design, [*_extra_row_cols(ctx), "eta", "seta"]),
+            S.alias(bad, "bad"),
+            S.alias(fam.clamp_mu_sql(safe_mu), "mu"),
+        ],
+        S.subquery(mid, "m0"),
+    )
 
 
-def _work_stage(ctx: PlanContext, design: Design, mean_stage: exp.Select,
-                extra: Sequence[tuple[str, Expr]] = ()) -> exp.Select:
+def _work_stage(
+    ctx: PlanContext, design: Design, mean_stage: exp.Select, extra: Sequence[tuple[str, Expr]] = ()
+) -> exp.Select:
     """Stage w: working weight and response, deviance and Pearson contributions."""
     fam, link = ctx.spec.family, ctx.spec.link
     y, mu, pw, fw = S.col("y"), S.col("mu"), S.col("pw"), S.col("fw")
     dmu = link.mu_eta_sql(S.col("seta"), mu)
-    inner = S.select([*_passthrough(design, [*_extra_row_cols(ctx), "eta", "bad", "mu"]),
-                      S.alias(dmu, "dmu"), S.alias(fam.variance_sql(mu), "var")],
-                     S.subquery(mean_stage, "m"))
+    inner = S.select(
+        [
+            *_passthrough(design, [*_extra_row_cols(ctx), "eta", "bad", "mu"]),
+            S.alias(dmu, "dmu"),
+            S.alias(fam.variance_sql(mu), "var"),
+        ],
+        S.subquery(mean_stage, "m"),
+    )
     dmu_c, var = S.col("dmu"), S.col("var")
     w = S.div(S.mul(pw, dmu_c, dmu_c), var)
     step = S.case([(S.ne(dmu_c, S.num(0.0)), S.div(S.sub(y, mu), dmu_c))], S.num(0.0))
     z = S.add(S.sub(S.col("eta"), S.col("off")), step)
     resid = S.sub(y, mu)
-    cols = [*(S.col(f.alias) for f in design.factors), *(S.col(v.alias) for v in design.values[1:]),
-            S.alias(S.mul(fw, w), "fww"), S.alias(S.mul(fw, w, z), "fwwz"),
-            S.alias(S.mul(fw, pw, fam.unit_deviance_sql(y, mu)), "fdev"),
-            S.alias(S.div(S.mul(fw, pw, resid, resid), var), "fpear"),
-            S.col("bad"), S.col("fw")]
+    cols = [
+        *(S.col(f.alias) for f in design.factors),
+        *(S.col(v.alias) for v in design.values[1:]),
+        S.alias(S.mul(fw, w), "fww"),
+        S.alias(S.mul(fw, w, z), "fwwz"),
+        S.alias(S.mul(fw, pw, fam.unit_deviance_sql(y, mu)), "fdev"),
+        S.alias(S.div(S.mul(fw, pw, resid, resid), var), "fpear"),
+        S.col("bad"),
+        S.col("fw"),
+    ]
     cols += [S.alias(e, name) for name, e in extra]
     return S.select(cols, S.subquery(inner, "w0"))
 
 
-def gram_query(ctx: PlanContext, design: Design, beta: np.ndarray | None, *,
-               ybar: float, null_mu: Expr | None = None) -> exp.Select:
+def gram_query(
+    ctx: PlanContext,
+    design: Design,
+    beta: np.ndarray | None,
+    *,
+    ybar: float,
+    null_mu: Expr | None = None,
+) -> exp.Select:
     """The IRLS scan: all sums for X'WX, X'Wz, deviance and Pearson, grouped by factor cells.
 
     ``beta`` are the standardized coefficients (None: the family's starting means).
@@ -426,8 +534,12 @@ def gram_query(ctx: PlanContext, design: Design, beta: np.ndarray | None, *,
     extra: list[tuple[str, Expr]] = []
     if null_mu is not None:
         fam = ctx.spec.family
-        extra.append(("fnulldev", S.mul(S.col("fw"), S.col("pw"),
-                                        fam.unit_deviance_sql(S.col("y"), null_mu))))
+        extra.append(
+            (
+                "fnulldev",
+                S.mul(S.col("fw"), S.col("pw"), fam.unit_deviance_sql(S.col("y"), null_mu)),
+            )
+        )
     work = _work_stage(ctx, design, mean, extra)
     vals = [None, *(S.col(v.alias) for v in design.values[1:])]
     aggs: list[Expr] = []
@@ -439,17 +551,22 @@ def gram_query(ctx: PlanContext, design: Design, beta: np.ndarray | None, *,
     for a in range(m):
         prod = [S.col("fwwz")] + ([vals[a]] if a else [])
         aggs.append(S.alias(S.psum(S.mul(*prod)), f"t_{a}"))
-    aggs += [S.alias(S.psum(S.col("fdev")), "dev"), S.alias(S.psum(S.col("fpear")), "pear"),
-             S.alias(S.sum_(S.col("bad")), "bad"), S.alias(S.count_star(), "n"),
-             S.alias(S.psum(S.col("fw")), "nw")]
+    aggs += [
+        S.alias(S.psum(S.col("fdev")), "dev"),
+        S.alias(S.psum(S.col("fpear")), "pear"),
+        S.alias(S.sum_(S.col("bad")), "bad"),
+        S.alias(S.count_star(), "n"),
+        S.alias(S.psum(S.col("fw")), "nw"),
+    ]
     for name, _ in extra:
         aggs.append(S.alias(S.psum(S.col(name)), name.replace("f", "", 1)))
     groups = [S.col(f.alias) for f in design.factors]
     return S.select([*groups, *aggs], S.subquery(work, "w"), group_by=groups)
 
 
-def loglik_query(ctx: PlanContext, design: Design, beta: np.ndarray, dispersion: float
-                 ) -> exp.Select | None:
+def loglik_query(
+    ctx: PlanContext, design: Design, beta: np.ndarray, dispersion: float
+) -> exp.Select | None:
     """Sum of per-row log-likelihood at the fitted means (None if the family has none)."""
     fam = ctx.spec.family
     mean = _mean_stage(ctx, design, _eta_from_beta(ctx, design, beta))
@@ -476,15 +593,20 @@ def theta_query(ctx: PlanContext, design: Design, beta: np.ndarray, theta: float
     b = S.mul(c, S.add(S.div(S.num(1.0), tm), S.div(S.sub(mu, y), S.mul(tm, tm))))
     r = S.sub(S.div(y, mu), S.num(1.0))
     mom = S.mul(c, r, r)
-    return S.select([S.alias(S.psum(a), "a"), S.alias(S.psum(b), "b"),
-                     S.alias(S.psum(mom), "mom")], S.subquery(mean, "m"))
+    return S.select(
+        [S.alias(S.psum(a), "a"), S.alias(S.psum(b), "b"), S.alias(S.psum(mom), "mom")],
+        S.subquery(mean, "m"),
+    )
 
 
 def response_histogram_query(ctx: PlanContext, design: Design) -> exp.Select:
     """Distinct response values with their summed weights f * pw."""
     rows = S.subquery(rows_select(ctx, design), ROWS)
-    return S.select([S.alias(S.col("y"), "y"), S.alias(S.psum(S.mul(S.col("fw"), S.col("pw"))),
-                                                        "c")], rows, group_by=[S.col("y")])
+    return S.select(
+        [S.alias(S.col("y"), "y"), S.alias(S.psum(S.mul(S.col("fw"), S.col("pw"))), "c")],
+        rows,
+        group_by=[S.col("y")],
+    )
 
 
 def offset_null_mu(ctx: PlanContext) -> Expr:

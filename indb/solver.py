@@ -158,8 +158,9 @@ class Inference:
     covariance: np.ndarray
 
 
-def wald(beta: np.ndarray, cov: np.ndarray, aliased: np.ndarray, df: float | None,
-         confidence: float) -> Inference:
+def wald(
+    beta: np.ndarray, cov: np.ndarray, aliased: np.ndarray, df: float | None, confidence: float
+) -> Inference:
     """Wald statistics: z (df None) or t with ``df`` degrees of freedom."""
     se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
     est = beta.astype(float).copy()
@@ -181,8 +182,9 @@ def wald(beta: np.ndarray, cov: np.ndarray, aliased: np.ndarray, df: float | Non
     return Inference(est, se, stat, pv, est - q * se, est + q * se, cov)
 
 
-def theta_step(theta: float, hist_y: np.ndarray, hist_c: np.ndarray, total_c: float,
-               a: float, b: float) -> float:
+def theta_step(
+    theta: float, hist_y: np.ndarray, hist_c: np.ndarray, total_c: float, a: float, b: float
+) -> float:
     """One safeguarded Newton step for the negative binomial theta at fixed means.
 
     Score: sum_y c_y [psi(y+theta) - psi(theta)] + C (ln theta + 1) - a; its derivative

@@ -118,15 +118,16 @@ class ModelSpec:
         """Validate user options and resolve family/link names into a spec."""
         if not isinstance(response, str) or not response:
             raise SpecError("response must name a column of the source")
-        fam = family if isinstance(family, Family) else make_family(
-            str(family), power=power, theta=theta)
-        estimate_theta = isinstance(fam, NegativeBinomial) and theta is None and not isinstance(
-            family, Family)
+        fam = (
+            family
+            if isinstance(family, Family)
+            else make_family(str(family), power=power, theta=theta)
+        )
+        estimate_theta = (
+            isinstance(fam, NegativeBinomial) and theta is None and not isinstance(family, Family)
+        )
         if link is None:
-            if link_power is not None:
-                lk = make_link("power", link_power)
-            else:
-                lk = canonical_link(fam)
+            lk = make_link("power", link_power) if link_power is not None else canonical_link(fam)
         elif isinstance(link, Link):
             lk = link
         else:
@@ -144,8 +145,12 @@ class ModelSpec:
             raise SpecError(f"max_levels must be an integer >= 2; got {max_levels!r}")
         if not (0 < confidence < 1):
             raise SpecError(f"confidence must be in (0, 1); got {confidence!r}")
-        for name, expr in (("offset", offset), ("weight", weight),
-                           ("frequency_weight", frequency_weight), ("trials", trials)):
+        for name, expr in (
+            ("offset", offset),
+            ("weight", weight),
+            ("frequency_weight", frequency_weight),
+            ("trials", trials),
+        ):
             if expr is not None and (not isinstance(expr, str) or not expr.strip()):
                 raise SpecError(f"{name} must be a non-empty SQL expression; got {expr!r}")
         inter: list[tuple[str, ...]] = []
@@ -160,8 +165,7 @@ class ModelSpec:
         spl: list[tuple[str, int]] = []
         for colname, k in (splines or {}).items():
             if not (isinstance(k, int) and 3 <= k <= 10):
-                raise SpecError(
-                    f"spline on column {colname!r} needs 3 to 10 knots; got {k!r}")
+                raise SpecError(f"spline on column {colname!r} needs 3 to 10 knots; got {k!r}")
             spl.append((colname, k))
         st = tuple((str(k), float(v)) for k, v in (start or {}).items())
         if any(not math.isfinite(v) for _, v in st):

@@ -21,8 +21,7 @@ Expr = exp.Expression
 # sqlglot >= 30 splits the node base (Expression) from the role mixins (Func, AggFunc);
 # older releases derive Func from Expression. Pick bases that work with both.
 _FUNC = (exp.Func,) if issubclass(exp.Func, exp.Expression) else (exp.Expression, exp.Func)
-_AGG = (exp.AggFunc,) if issubclass(exp.AggFunc, exp.Expression) else (exp.Expression,
-                                                                        exp.AggFunc)
+_AGG = (exp.AggFunc,) if issubclass(exp.AggFunc, exp.Expression) else (exp.Expression, exp.AggFunc)
 
 
 class LogGamma(*_FUNC):
@@ -77,7 +76,9 @@ def num(value: float) -> Expr:
 
 def integer(value: int) -> Expr:
     """An integer literal."""
-    return exp.Literal.number(int(value)) if value >= 0 else exp.Neg(this=exp.Literal.number(-value))
+    return (
+        exp.Literal.number(int(value)) if value >= 0 else exp.Neg(this=exp.Literal.number(-value))
+    )
 
 
 def text(value: str) -> exp.Literal:
@@ -97,7 +98,9 @@ def true() -> exp.Boolean:
 
 
 def paren(e: Expr) -> Expr:
-    return e if isinstance(e, exp.Paren | exp.Column | exp.Literal | exp.Func) else exp.Paren(this=e)
+    return (
+        e if isinstance(e, exp.Paren | exp.Column | exp.Literal | exp.Func) else exp.Paren(this=e)
+    )
 
 
 def add(*terms: Expr) -> Expr:
@@ -297,7 +300,10 @@ def is_finite(e: Expr) -> Expr:
 
 
 def select(
-    columns: Iterable[Expr], source: Expr, *, where: Expr | None = None,
+    columns: Iterable[Expr],
+    source: Expr,
+    *,
+    where: Expr | None = None,
     group_by: Sequence[Expr] = (),
 ) -> exp.Select:
     """SELECT columns FROM source [WHERE ...] [GROUP BY ...]."""

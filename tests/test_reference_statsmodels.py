@@ -32,7 +32,8 @@ from reference_cases import CASES, CASES_BY_ID, ReferenceCase
 import indb
 
 # Tolerances (indb runs with tol=1e-13 because non-canonical links converge linearly and a
-# deviance change of 1e-10 still leaves coefficients ~1e-6 from the optimum; the oracles are converged to ~1e-13, see
+# deviance change of 1e-10 still leaves coefficients ~1e-6 from the optimum; the oracles are
+# converged to ~1e-13, see
 # reference_cases.fit_check). The deviance is stationary at the optimum, so it is compared
 # more tightly than the coefficients; the llf depends on the Pearson dispersion, which moves
 # to first order with the coefficients, hence 1e-7 rather than 1e-8.
