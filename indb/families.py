@@ -17,7 +17,7 @@ from indb.links import IdentityLink, InverseLink, Link, LogitLink, LogLink, Powe
 from indb.sqlexpr import Expr
 
 BINOMIAL_EPS = 2.220446049250313e-16  # clamp for binomial means (machine epsilon)
-POSITIVE_FLOOR = 1e-300  # smallest mean used in formulas of positive families
+POSITIVE_FLOOR = 1e-100  # smallest mean used in formulas; mu^3 stays a normal double
 
 
 def _xlogy_ratio(y: Expr, mu: Expr) -> Expr:

@@ -19,6 +19,7 @@ from indb.sqlexpr import Expr
 
 EXP_CAP = 700.0  # exp(700) ~ 1e304 is still finite in double precision
 UNIT_ETA_CAP = 37.0  # |eta| beyond which logistic-type means round to 0 or 1
+CLOGLOG_CAP = math.log(EXP_CAP)  # exp(-exp(eta)) stays a normal double below this
 
 
 def _normal_cdf_sql(x: Expr) -> Expr:
@@ -146,7 +147,8 @@ class LogLink(Link):
         return S.ln(mu)
 
     def inverse_sql(self, eta: Expr) -> Expr:
-        return S.exp_(S.least(eta, S.num(EXP_CAP)))
+        # clamped on both sides: PostgreSQL raises on overflow *and* underflow of exp()
+        return S.exp_(S.clamp(eta, -EXP_CAP, EXP_CAP))
 
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
         return mu
@@ -232,11 +234,11 @@ class CLogLogLink(Link):
         return S.ln(S.neg(S.ln(S.sub(S.num(1.0), mu))))
 
     def inverse_sql(self, eta: Expr) -> Expr:
-        e = S.clamp(eta, -EXP_CAP, UNIT_ETA_CAP)
+        e = S.clamp(eta, -EXP_CAP, CLOGLOG_CAP)
         return S.sub(S.num(1.0), S.exp_(S.neg(S.exp_(e))))
 
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
-        e = S.clamp(eta, -EXP_CAP, UNIT_ETA_CAP)
+        e = S.clamp(eta, -EXP_CAP, CLOGLOG_CAP)
         return S.exp_(S.sub(e, S.exp_(e)))
 
     def link(self, mu):
