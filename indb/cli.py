@@ -13,6 +13,7 @@ import math
 import warnings
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
+from pathlib import Path
 from typing import Any, TypeVar
 
 import click
@@ -325,6 +326,16 @@ output_options = _apply(
 )
 
 
+def _check_database_path(db: str | None) -> None:
+    # DuckDB creates a missing database file on connect; for `fit` that only turns a typo in
+    # --db into an empty database and a confusing "table does not exist" later.
+    if db is not None and db != ":memory:" and not Path(db).exists():
+        raise SpecError(
+            f"--db {db!r}: no such database file; check the path, or leave --db out to read "
+            "Parquet/CSV files in an in-memory database"
+        )
+
+
 def _fit_arguments(options: dict[str, Any]) -> dict[str, Any]:
     """Map parsed CLI options onto ``indb.api.fit`` keywords, passing only what was given."""
     kwargs: dict[str, Any] = {"family": options["family"]}
@@ -388,6 +399,7 @@ def fit_command(source: str, as_json: bool, quiet: bool, **options: Any) -> None
     SOURCE is a table or view name, a SELECT query, or a Parquet/CSV path (globs allowed).
     """
     with _library_errors(quiet) as caught:
+        _check_database_path(options["db"])
         kwargs = _fit_arguments(options)
         if not (quiet or as_json):
             kwargs["progress"] = _echo_iteration

@@ -143,6 +143,16 @@ class Design:
                 for v in self.values[1:]
             ],
             "knots": {c: list(k) for c, k in self.knots},
+            "columns": [
+                {
+                    "term": c.term,
+                    "factors": [self.factors[i].column for i in c.factors],
+                    "levels": list(c.levels),
+                    "numerics": list(self.values[c.value].numerics),
+                    "basis": self.values[c.value].basis,
+                }
+                for c in self.columns
+            ],
         }
 
 

@@ -78,6 +78,22 @@ class Dialect:
     def file_scan(self, path: str) -> exp.Expression:
         raise UnsupportedError(f"engine {self.name!r} cannot read files directly: {path}")
 
+    # -- write-back ---------------------------------------------------------------------------
+    supports_macros = False
+
+    def create_macro(
+        self, schema: str | None, name: str, params: list[str], body: exp.Expression
+    ) -> str:
+        """DDL for a reusable scalar scoring function (engines that have one)."""
+        raise UnsupportedError(f"engine {self.name!r} has no scoring macros in indb yet")
+
+    def drop_macro(self, schema: str | None, name: str) -> str:
+        raise UnsupportedError(f"engine {self.name!r} has no scoring macros in indb yet")
+
+    def quote(self, name: str) -> str:
+        """A quoted identifier as text (through the renderer, never by hand)."""
+        return S.ident(name).sql(dialect=self.sqlglot_name)
+
     # -- types ----------------------------------------------------------------------------
     def type_kind(self, type_name: str) -> str:
         """Classify an engine type name as 'numeric', 'boolean', 'text' or 'other'."""
@@ -136,6 +152,23 @@ class DuckDBDialect(Dialect):
 
     def quantile(self, x, q):
         return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
+
+    supports_macros = True
+
+    def _qualified(self, schema: str | None, name: str) -> str:
+        return (self.quote(schema) + "." if schema else "") + self.quote(name)
+
+    def create_macro(self, schema, name, params, body):
+        # DuckDB scalar macro; parameters are the model's input columns, so column
+        # references in the body bind to them (https://duckdb.org/docs/sql/statements/create_macro)
+        args = ", ".join(self.quote(p) for p in params)
+        return (
+            f"CREATE OR REPLACE MACRO {self._qualified(schema, name)}({args}) AS "
+            f"{self.render(body)}"
+        )
+
+    def drop_macro(self, schema, name):
+        return f"DROP MACRO IF EXISTS {self._qualified(schema, name)}"
 
     def file_scan(self, path: str) -> exp.Expression:
         low = path.lower()

@@ -175,6 +175,8 @@ class _Summary:
     n_zero_weight: int
     values: tuple[Value, ...]
     level_counts: tuple[int, ...]
+    column_sums: dict[str, float]
+    sum_fpwy: float
 
 
 def _summarize(
@@ -233,7 +235,10 @@ def _summarize(
                 f"{ctx.spec.max_levels}; group rare levels in the query, treat it as numeric, "
                 f"or raise max_levels (CLI --max-levels)"
             )
+    column_sums = {v.label: float(row[f"{v.alias}_mean"]) * n for v in values[1:]}
     return _Summary(
+        column_sums=column_sums,
+        sum_fpwy=float(row["sum_fpwy"]),
         n=n,
         sum_f=float(row["sum_f"]),
         sum_fpw=sum_fpw,
@@ -633,6 +638,16 @@ def _result(
         confidence=spec.confidence,
         spec=spec.to_dict(),
         design=design.to_dict(),
+        fingerprint={
+            "rows": n_total,
+            "rows_used": n_kept,
+            "sum_weights": summary.sum_fpw,
+            "sum_weighted_response": summary.sum_fpwy,
+            "column_sums": summary.column_sums,
+            "level_counts": {
+                f.column: dict(zip(f.levels, f.counts, strict=True)) for f in design.factors
+            },
+        },
     )
 
 

@@ -90,6 +90,7 @@ class FitResult:
     confidence: float = 0.95
     spec: dict[str, Any] = field(default_factory=dict)
     design: dict[str, Any] = field(default_factory=dict)
+    fingerprint: dict[str, Any] = field(default_factory=dict)
 
     # -- convenience views ---------------------------------------------------------------
     @property
@@ -158,8 +159,80 @@ class FitResult:
             "confidence": self.confidence,
             "spec": self.spec,
             "design": self.design,
+            "fingerprint": self.fingerprint,
         }
         return out
+
+    @staticmethod
+    def from_dict(d: dict[str, Any]) -> FitResult:
+        """Rebuild a result from :meth:`to_dict` output (``None`` numbers become NaN)."""
+
+        def f(v: Any) -> float:
+            return math.nan if v is None else float(v)
+
+        coefs = tuple(
+            Coefficient(
+                term=c["term"],
+                columns=tuple(c["columns"]),
+                levels=tuple(c["levels"]),
+                estimate=f(c["estimate"]),
+                std_error=f(c["std_error"]),
+                statistic=f(c["statistic"]),
+                p_value=f(c["p_value"]),
+                ci_low=f(c["ci_low"]),
+                ci_high=f(c["ci_high"]),
+                aliased=bool(c.get("aliased", False)),
+            )
+            for c in d["coefficients"]
+        )
+        log = tuple(
+            IterationRecord(
+                iteration=int(r["iteration"]),
+                deviance=f(r["deviance"]),
+                relative_change=f(r["relative_change"]),
+                step_halvings=int(r["step_halvings"]),
+                seconds=f(r["seconds"]),
+                phase=r.get("phase", "fit"),
+            )
+            for r in d.get("iteration_log", [])
+        )
+        cov = np.array([[f(v) for v in row] for row in d.get("covariance", [])], dtype=float)
+        return FitResult(
+            family=d["family"],
+            link=d["link"],
+            response=d["response"],
+            source=d["source"],
+            coefficients=coefs,
+            covariance=cov.reshape(len(coefs), len(coefs)),
+            deviance=f(d["deviance"]),
+            null_deviance=f(d["null_deviance"]),
+            pearson_chi2=f(d["pearson_chi2"]),
+            dispersion=f(d["dispersion"]),
+            dispersion_estimated=bool(d["dispersion_estimated"]),
+            log_likelihood=f(d["log_likelihood"]),
+            aic=f(d["aic"]),
+            bic=f(d["bic"]),
+            df_model=int(d["df_model"]),
+            df_resid=f(d["df_resid"]),
+            n_used=int(d["n_used"]),
+            n_excluded=int(d["n_excluded"]),
+            n_weighted=f(d["n_weighted"]),
+            iterations=int(d["iterations"]),
+            converged=bool(d["converged"]),
+            iteration_log=log,
+            test=d["test"],
+            path=d["path"],
+            seconds=f(d["seconds"]),
+            family_params={k: f(v) for k, v in d.get("family_params", {}).items()},
+            excluded_by_column=dict(d.get("excluded_by_column", {})),
+            aliased_terms=tuple(d.get("aliased_terms", [])),
+            condition_number=f(d.get("condition_number")),
+            warnings=tuple(d.get("warnings", [])),
+            confidence=float(d.get("confidence", 0.95)),
+            spec=d.get("spec", {}),
+            design=d.get("design", {}),
+            fingerprint=d.get("fingerprint", {}),
+        )
 
 
 def _num(v: Any) -> Any:

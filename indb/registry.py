@@ -1,0 +1,527 @@
+"""The model registry inside the database, and deployment of scoring views and macros.
+
+Every change (a new version, a promotion, a drop) runs in one transaction together with the
+view and macro it implies, so a failure or an interrupted process leaves the registry and
+the views exactly as they were.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import math
+from dataclasses import dataclass
+from typing import Any
+
+from indb import sqlexpr as S
+from indb import writeback as W
+from indb.engine import Engine
+from indb.errors import EngineError, RegistryError, SpecError
+from indb.results import FitResult
+from indb.spec import Source
+
+DEFAULT_SCHEMA = "indb_registry"
+
+
+def _now() -> str:
+    return _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%d %H:%M:%S.%f")
+
+
+def spec_hash(spec: dict[str, Any]) -> str:
+    """Stable hash of a spec's plain-data form (what was asked, not what was estimated)."""
+    keep = {k: v for k, v in spec.items() if k not in ("family_params",)}
+    if spec.get("estimate_theta"):
+        keep["family_params"] = {}
+    else:
+        keep["family_params"] = spec.get("family_params", {})
+    text = json.dumps(keep, sort_keys=True, separators=(",", ":"), default=str)
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+@dataclass(frozen=True)
+class SaveOutcome:
+    """What :meth:`Registry.save` did."""
+
+    model: str
+    version: int
+    created: bool  # False when an identical live version was kept
+    promoted: bool
+    scoring_view: str
+    mean_column: str
+    macro: str | None
+
+
+class Registry:
+    """Registry operations on one engine (schema ``indb_registry`` unless told otherwise)."""
+
+    def __init__(self, engine: Engine, schema: str = DEFAULT_SCHEMA) -> None:
+        self.engine = engine
+        self.schema = W.check_name(schema, "registry schema")
+        self.d = engine.dialect
+
+    # -- low level -------------------------------------------------------------------------
+    def _run(self, tree) -> None:
+        self.engine.execute(self.d.render(tree))
+
+    def _rows(self, tree) -> list[dict[str, Any]]:
+        cols = self.engine.fetch_columns(self.d.render(tree))
+        names = list(cols)
+        n = len(cols[names[0]]) if names else 0
+        return [{k: _py(cols[k][i]) for k in names} for i in range(n)]
+
+    def exists(self) -> bool:
+        try:
+            self._rows(S.select([S.alias(S.count_star(), "n")], W.table_ref(self.schema, "model")))
+            return True
+        except EngineError:
+            return False
+
+    def ensure(self) -> None:
+        """Create the registry schema and tables if missing."""
+        for stmt in W.registry_ddl(self.schema):
+            self._run(stmt)
+
+    # -- reading ---------------------------------------------------------------------------
+    def models(self) -> list[dict[str, Any]]:
+        if not self.exists():
+            return []
+        return self._rows(W.select_rows(self.schema, "model", order=["model_name"]))
+
+    def model(self, name: str) -> dict[str, Any]:
+        rows = (
+            self._rows(W.select_rows(self.schema, "model", W.where_model(name)))
+            if self.exists()
+            else []
+        )
+        if not rows:
+            known = [m["model_name"] for m in self.models()]
+            raise RegistryError(f"no model named {name!r} in the registry; models: {known}")
+        return rows[0]
+
+    def versions(self, name: str) -> list[dict[str, Any]]:
+        self.model(name)
+        rows = self._rows(
+            W.select_rows(self.schema, "model_version", W.where_model(name), order=["version"])
+        )
+        for r in rows:
+            for big in ("result_json", "spec_json", "fingerprint_json"):
+                r.pop(big, None)
+        return rows
+
+    def _version_row(self, name: str, version: int | None) -> dict[str, Any]:
+        if version is None:
+            version = self.model(name)["live_version"]
+            if version is None:
+                raise RegistryError(f"model {name!r} has no live version")
+        rows = self._rows(
+            W.select_rows(self.schema, "model_version", W.where_model(name, int(version)))
+        )
+        if not rows:
+            raise RegistryError(f"model {name!r} has no version {version}")
+        return rows[0]
+
+    def load(self, name: str, version: int | None = None) -> FitResult:
+        """The stored result of one version (the live one by default)."""
+        return FitResult.from_dict(json.loads(self._version_row(name, version)["result_json"]))
+
+    def events(self, name: str) -> list[dict[str, Any]]:
+        return self._rows(
+            W.select_rows(self.schema, "registry_event", W.where_model(name), order=["at"])
+        )
+
+    # -- writing ---------------------------------------------------------------------------
+    def save(
+        self,
+        name: str,
+        result: FitResult,
+        *,
+        promote: bool = True,
+        force_new: bool = False,
+        view_schema: str | None = None,
+        score_source: str | None = None,
+        intervals: bool | None = None,
+        note: str | None = None,
+        parent_version: int | None = None,
+    ) -> SaveOutcome:
+        """Record ``result`` as the next version of ``name`` and (by default) make it live.
+
+        An identical spec on unchanged data (same spec hash and data fingerprint as the live
+        version) keeps the live version unless ``force_new``.
+        """
+        W.check_name(name, "model name")
+        if view_schema is not None:
+            W.check_name(view_schema, "view schema")
+        self.ensure()
+        h = spec_hash(result.spec)
+        existing = self.models()
+        current = next((m for m in existing if m["model_name"] == name), None)
+        if current is not None and current["live_version"] is not None and not force_new:
+            live = self._version_row(name, current["live_version"])
+            same = live["spec_hash"] == h and json.loads(live["fingerprint_json"]) == _jsonable(
+                result.fingerprint
+            )
+            if same:
+                return SaveOutcome(
+                    name,
+                    int(live["version"]),
+                    False,
+                    False,
+                    self._view_label(current),
+                    "score_mean",
+                    current["macro_name"],
+                )
+        rows = self._rows(
+            S.select(
+                [S.alias(exp_max("version"), "v")],
+                W.table_ref(self.schema, "model_version"),
+                where=W.where_model(name),
+            )
+        )
+        version = int(rows[0]["v"] or 0) + 1 if rows else 1
+        now = _now()
+        source_text = score_source or result.spec.get("source", {}).get("text")
+        model_row = {
+            "model_name": name,
+            "created_at": now,
+            "live_version": None,
+            "view_schema": view_schema,
+            "view_name": name,
+            "macro_name": f"{name}_score",
+            "score_source": source_text,
+            "intervals": bool(intervals) if intervals is not None else False,
+        }
+        if current is not None:
+            model_row.update(
+                {
+                    k: current[k]
+                    for k in (
+                        "created_at",
+                        "live_version",
+                        "view_schema",
+                        "view_name",
+                        "macro_name",
+                        "score_source",
+                        "intervals",
+                    )
+                }
+            )
+            if view_schema is not None:
+                model_row["view_schema"] = view_schema
+            if score_source is not None:
+                model_row["score_source"] = score_source
+            if intervals is not None:
+                model_row["intervals"] = bool(intervals)
+        status = "live" if promote else "held"
+        from indb import __version__
+
+        vrow = {
+            "model_name": name,
+            "version": version,
+            "created_at": now,
+            "status": status,
+            "family": result.family,
+            "link": result.link,
+            "response": result.response,
+            "source": result.spec.get("source", {}).get("text"),
+            "deviance": result.deviance,
+            "null_deviance": result.null_deviance,
+            "pearson_chi2": result.pearson_chi2,
+            "dispersion": result.dispersion,
+            "log_likelihood": result.log_likelihood,
+            "aic": result.aic,
+            "bic": result.bic,
+            "df_resid": result.df_resid,
+            "n_used": result.n_used,
+            "n_excluded": result.n_excluded,
+            "iterations": result.iterations,
+            "converged": result.converged,
+            "seconds": result.seconds,
+            "spec_hash": h,
+            "spec_json": json.dumps(result.spec, sort_keys=True),
+            "fingerprint_json": json.dumps(_jsonable(result.fingerprint), sort_keys=True),
+            "result_json": json.dumps(result.to_dict(), allow_nan=False),
+            "package_version": __version__,
+            "parent_version": parent_version,
+            "note": note,
+        }
+        terms = [
+            {
+                "model_name": name,
+                "version": version,
+                "position": i,
+                "term": c.term,
+                "estimate": c.estimate,
+                "std_error": c.std_error,
+                "statistic": c.statistic,
+                "p_value": c.p_value,
+                "aliased": c.aliased,
+            }
+            for i, c in enumerate(result.coefficients)
+        ]
+        iters = [
+            {
+                "model_name": name,
+                "version": version,
+                "iteration": r.iteration,
+                "phase": r.phase,
+                "deviance": r.deviance,
+                "relative_change": r.relative_change,
+                "step_halvings": r.step_halvings,
+                "seconds": r.seconds,
+            }
+            for r in result.iteration_log
+        ]
+        # Build every statement before opening the transaction: a bad source or name fails
+        # here, with nothing written.
+        deploy = self._deploy_statements(name, result, model_row) if promote else []
+        with self.engine.transaction():
+            if current is None:
+                self._run(W.insert_rows(self.schema, "model", [model_row]))
+            self._run(W.insert_rows(self.schema, "model_version", [vrow]))
+            self._run(W.insert_rows(self.schema, "version_term", terms))
+            if iters:
+                self._run(W.insert_rows(self.schema, "version_iteration", iters))
+            self._event(
+                name,
+                version,
+                "fit",
+                f"status {status}; {result.n_used} rows; deviance {result.deviance:.10g}",
+                now,
+            )
+            if promote:
+                self._make_live(name, version, model_row, deploy, now)
+            elif current is not None:
+                self._run(
+                    W.update_rows(
+                        self.schema, "model", _model_updates(model_row), W.where_model(name)
+                    )
+                )
+        return SaveOutcome(
+            name,
+            version,
+            True,
+            promote,
+            self._view_label(model_row),
+            "score_mean",
+            model_row["macro_name"] if self.d.supports_macros else None,
+        )
+
+    def promote(self, name: str, version: int) -> None:
+        """Point the stable view (and macro) at ``version``; the previous live version retires."""
+        model_row = self.model(name)
+        row = self._version_row(name, version)
+        if row["status"] == "dropped":
+            raise RegistryError(f"version {version} of {name!r} was dropped")
+        result = FitResult.from_dict(json.loads(row["result_json"]))
+        deploy = self._deploy_statements(name, result, model_row)
+        now = _now()
+        with self.engine.transaction():
+            self._make_live(name, int(version), model_row, deploy, now)
+
+    def drop(self, name: str, version: int) -> None:
+        """Mark a version dropped (its rows stay for audit); the live version cannot be dropped."""
+        model_row = self.model(name)
+        row = self._version_row(name, version)
+        if model_row["live_version"] == int(version):
+            raise RegistryError(
+                f"version {version} of {name!r} is live; promote another version first"
+            )
+        if row["status"] == "dropped":
+            return
+        now = _now()
+        with self.engine.transaction():
+            self._run(
+                W.update_rows(
+                    self.schema,
+                    "model_version",
+                    {"status": "dropped"},
+                    W.where_model(name, int(version)),
+                )
+            )
+            self._event(name, int(version), "drop", "", now)
+
+    def compare(self, name: str, a: int, b: int) -> dict[str, Any]:
+        """Coefficient changes between two versions, in standard errors of version ``a``."""
+        ra, rb = self.load(name, a), self.load(name, b)
+        terms = []
+        tb = {c.term: c for c in rb.coefficients}
+        for c in ra.coefficients:
+            other = tb.get(c.term)
+            change = other.estimate - c.estimate if other else math.nan
+            terms.append(
+                {
+                    "term": c.term,
+                    "estimate_a": c.estimate,
+                    "estimate_b": other.estimate if other else math.nan,
+                    "change": change,
+                    "change_in_se": change / c.std_error
+                    if c.std_error and c.std_error > 0
+                    else math.nan,
+                    "relative_change": change / abs(c.estimate) if c.estimate else math.nan,
+                }
+            )
+        only_b = [
+            c.term for c in rb.coefficients if c.term not in {x.term for x in ra.coefficients}
+        ]
+        return {
+            "model": name,
+            "a": a,
+            "b": b,
+            "terms": terms,
+            "terms_only_in_b": only_b,
+            "deviance": [ra.deviance, rb.deviance],
+            "deviance_per_row": [ra.deviance / max(ra.n_used, 1), rb.deviance / max(rb.n_used, 1)],
+            "rows": [ra.n_used, rb.n_used],
+            "aic": [ra.aic, rb.aic],
+            "converged": [ra.converged, rb.converged],
+        }
+
+    # -- internals ---------------------------------------------------------------------------
+    def _view_label(self, model_row: dict[str, Any]) -> str:
+        schema = model_row.get("view_schema")
+        return f"{schema}.{model_row['view_name']}" if schema else model_row["view_name"]
+
+    def _deploy_statements(
+        self, name: str, result: FitResult, model_row: dict[str, Any]
+    ) -> list[str]:
+        src_text = model_row.get("score_source")
+        if not src_text:
+            raise SpecError(f"model {name!r} has no scoring source; give score_source=")
+        source = Source.parse(src_text)
+        rel = _relation(self.d, source)
+        cols = [
+            c
+            for c, _ in self.engine.describe(
+                self.d.render(S.select([S.col("*") if False else _star()], _aliased(rel)))
+            )
+        ]
+        missing = [c for c in W.model_inputs(result, self.d) if c not in cols]
+        if missing:
+            raise SpecError(
+                f"the scoring source {source.label()!r} lacks model input column(s) {missing}"
+            )
+        query = W.scoring_query(
+            result, self.d, rel, intervals=bool(model_row.get("intervals")), source_columns=cols
+        )
+        stmts = []
+        if model_row.get("view_schema"):
+            stmts.append(self.d.render(_create_schema(model_row["view_schema"])))
+        stmts.append(
+            self.d.render(
+                W.create_view(model_row.get("view_schema"), model_row["view_name"], query)
+            )
+        )
+        if self.d.supports_macros:
+            params = W.model_inputs(result, self.d)
+            stmts.append(
+                self.d.create_macro(
+                    model_row.get("view_schema"),
+                    model_row["macro_name"],
+                    params,
+                    W.mean_expression(result, self.d),
+                )
+            )
+        return stmts
+
+    def _make_live(
+        self, name: str, version: int, model_row: dict[str, Any], deploy: list[str], now: str
+    ) -> None:
+        for stmt in deploy:
+            self.engine.execute(stmt)
+        self._run(
+            W.update_rows(
+                self.schema,
+                "model_version",
+                {"status": "retired"},
+                S.and_(W.where_model(name), S.eq(S.col("status"), S.text("live"))),
+            )
+        )
+        self._run(
+            W.update_rows(
+                self.schema, "model_version", {"status": "live"}, W.where_model(name, version)
+            )
+        )
+        row = dict(model_row)
+        row["live_version"] = version
+        self._run(W.update_rows(self.schema, "model", _model_updates(row), W.where_model(name)))
+        self._event(name, version, "promote", f"view {self._view_label(model_row)}", now)
+
+    def _event(self, name: str, version: int, action: str, detail: str, now: str) -> None:
+        self._run(
+            W.insert_rows(
+                self.schema,
+                "registry_event",
+                [
+                    {
+                        "model_name": name,
+                        "version": version,
+                        "at": now,
+                        "action": action,
+                        "detail": detail,
+                    }
+                ],
+            )
+        )
+
+
+def _model_updates(row: dict[str, Any]) -> dict[str, Any]:
+    return {
+        k: row[k]
+        for k in (
+            "live_version",
+            "view_schema",
+            "view_name",
+            "macro_name",
+            "score_source",
+            "intervals",
+        )
+    }
+
+
+def exp_max(column: str):
+    from sqlglot import exp
+
+    return exp.Max(this=S.col(column))
+
+
+def _star():
+    from sqlglot import exp
+
+    return exp.Star()
+
+
+def _aliased(rel):
+    from sqlglot import exp
+
+    r = rel.copy()
+    r.set("alias", exp.TableAlias(this=S.ident(W.SRC)))
+    return r
+
+
+def _create_schema(schema: str):
+    from sqlglot import exp
+
+    return exp.Create(kind="SCHEMA", this=exp.Table(db=S.ident(schema)), exists=True)
+
+
+def _relation(dialect, source: Source):
+    if source.kind == "table":
+        return dialect.table(source.text)
+    if source.kind == "file":
+        return dialect.file_scan(source.text)
+    return dialect.query(source.text)
+
+
+def _jsonable(obj: Any) -> Any:
+    return json.loads(json.dumps(obj, sort_keys=True, default=str))
+
+
+def _py(v: Any) -> Any:
+    import numpy as np
+
+    if isinstance(v, np.generic):
+        v = v.item()
+    if isinstance(v, float) and math.isnan(v):
+        return None
+    return v

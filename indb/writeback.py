@@ -1,0 +1,426 @@
+"""Write-back SQL: scoring expressions, scoring views, the scoring macro and the registry DDL.
+
+Pure functions from a fitted result (plain data) to syntax trees; the dialect renders them
+and the registry module runs them in one transaction. Coefficients enter the SQL as exact
+double literals; categorical levels become CASE branches on text literals escaped by the
+renderer, so no level value can change the meaning of the generated SQL.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from sqlglot import exp
+
+from indb import sqlexpr as S
+from indb.dialect import Dialect
+from indb.errors import SpecError
+from indb.links import Link, make_link
+from indb.plan import spline_basis_sql
+from indb.results import FitResult
+from indb.sqlexpr import Expr
+
+SRC = "indb_src"
+MAX_SE_TERMS = 150  # the standard-error quadratic form has p^2 terms; beyond this it is refused
+NAME_RE = re.compile(r"^[A-Za-z][A-Za-z0-9_]{0,62}$")
+
+
+def check_name(value: str, what: str) -> str:
+    """Validate a model, view or schema name (letters, digits, underscore; <= 63 chars)."""
+    if not isinstance(value, str) or not NAME_RE.match(value):
+        raise SpecError(
+            f"{what} {value!r} is not allowed: use 1-63 letters, digits or underscores, "
+            "starting with a letter"
+        )
+    return value
+
+
+def link_from_name(name: str) -> Link:
+    """Rebuild a link from its display name (``log``, ``power(0.3)``, ``sqrt``...)."""
+    m = re.fullmatch(r"power\((.+)\)", name)
+    if m:
+        return make_link("power", float(m.group(1)))
+    return make_link(name)
+
+
+@dataclass(frozen=True)
+class ScoreColumns:
+    """Names of the columns a scoring view adds."""
+
+    eta: str = "score_eta"
+    mean: str = "score_mean"
+    se: str = "score_se_eta"
+    low: str = "score_mean_low"
+    high: str = "score_mean_high"
+    unseen: str = "score_unseen"
+
+
+@dataclass(frozen=True)
+class _Col:
+    term: str
+    factors: tuple[str, ...]
+    levels: tuple[str, ...]
+    numerics: tuple[str, ...]
+    basis: int | None
+    estimate: float
+
+
+def _columns(res: FitResult) -> list[_Col]:
+    cols = res.design.get("columns")
+    if not cols or len(cols) != len(res.coefficients):
+        raise SpecError("this result carries no design description; refit it with this version")
+    out = []
+    for c, coef in zip(cols, res.coefficients, strict=True):
+        est = 0.0 if coef.aliased or not math.isfinite(coef.estimate) else coef.estimate
+        out.append(
+            _Col(
+                c["term"],
+                tuple(c["factors"]),
+                tuple(c["levels"]),
+                tuple(c["numerics"]),
+                c["basis"],
+                est,
+            )
+        )
+    return out
+
+
+def _text(column: str) -> Expr:
+    return S.as_text(S.col(column))
+
+
+def _value(c: _Col, knots: dict[str, list[float]]) -> Expr | None:
+    if not c.numerics:
+        return None
+    if c.basis is not None:
+        return spline_basis_sql(S.as_double(S.col(c.numerics[0])), knots[c.numerics[0]], c.basis)
+    return S.mul(*(S.as_double(S.col(n)) for n in c.numerics))
+
+
+def _indicator(c: _Col) -> Expr | None:
+    if not c.factors:
+        return None
+    return S.and_(*(S.eq(_text(f), S.text(lv)) for f, lv in zip(c.factors, c.levels, strict=True)))
+
+
+def _design_terms(res: FitResult) -> list[tuple[_Col, Expr | None, Expr | None]]:
+    knots = res.design.get("knots", {})
+    return [(c, _indicator(c), _value(c, knots)) for c in _columns(res)]
+
+
+def eta_sql(res: FitResult, dialect: Dialect, *, include_offset: bool = True) -> Expr:
+    """The linear predictor on the original columns, coefficients as literals.
+
+    Categorical parts are one CASE per factor set and multiplier, so a row evaluates one
+    branch per factor; a level not seen in training falls to ``ELSE 0``, the reference level's
+    contribution (flagged by :func:`unseen_sql`).
+    """
+    terms: list[Expr] = []
+    offset = res.spec.get("offset")
+    if include_offset and offset:
+        terms.append(S.as_double(S.parse_expression(offset, dialect.sqlglot_name)))
+    groups: dict[tuple[tuple[str, ...], tuple[str, ...], int | None], list[_Col]] = {}
+    for c, ind, val in _design_terms(res):
+        if c.estimate == 0.0:
+            continue
+        if ind is None:
+            terms.append(S.num(c.estimate) if val is None else S.mul(S.num(c.estimate), val))
+        else:
+            groups.setdefault((c.factors, c.numerics, c.basis), []).append(c)
+    knots = res.design.get("knots", {})
+    for (factors, _nums, _basis), cols in groups.items():
+        if len(factors) == 1:
+            node = exp.Case(
+                this=_text(factors[0]),
+                ifs=[exp.If(this=S.text(c.levels[0]), true=S.num(c.estimate)) for c in cols],
+            )
+            node.set("default", S.num(0.0))
+        else:
+            node = S.case([(_indicator(c), S.num(c.estimate)) for c in cols], S.num(0.0))
+        val = _value(cols[0], knots)
+        terms.append(node if val is None else S.mul(node, val))
+    return S.add(*terms) if terms else S.num(0.0)
+
+
+def unseen_sql(res: FitResult) -> Expr:
+    """Number of categorical inputs whose value (or NULL) was not a training level."""
+    flags: list[Expr] = []
+    for f in res.design.get("factors", []):
+        levels = [S.text(lv) for lv in f["levels"]]
+        flags.append(
+            S.case(
+                [(exp.In(this=_text(f["column"]), expressions=levels), exp.Literal.number(0))],
+                exp.Literal.number(1),
+            )
+        )
+    return S.add(*flags) if flags else exp.Literal.number(0)
+
+
+def se_eta_sql(res: FitResult) -> Expr:
+    """Standard error of the linear predictor: sqrt(x' V x) as a SQL quadratic form."""
+    terms = _design_terms(res)
+    p = len(terms)
+    if p > MAX_SE_TERMS:
+        raise SpecError(
+            f"standard errors in SQL are limited to {MAX_SE_TERMS} coefficients; this model has {p}"
+        )
+    cov = np.nan_to_num(np.asarray(res.covariance, dtype=float), nan=0.0)
+    xs: list[Expr] = []
+    for c, ind, val in terms:
+        base = val if val is not None else S.num(1.0)
+        xs.append(base if ind is None else S.case([(ind, base)], S.num(0.0)))
+    quad: list[Expr] = []
+    for j in range(p):
+        if cov[j, j] == 0.0:
+            continue
+        inner = [S.mul(S.num(cov[j, k]), xs[k]) for k in range(p) if cov[j, k] != 0.0]
+        quad.append(S.mul(xs[j], S.add(*inner)))
+    return S.sqrt(S.greatest(S.add(*quad), S.num(0.0)))
+
+
+def scoring_query(
+    res: FitResult,
+    dialect: Dialect,
+    source: Expr,
+    *,
+    intervals: bool = False,
+    names: ScoreColumns | None = None,
+    include_offset: bool = True,
+    source_columns: Sequence[str] = (),
+) -> exp.Select:
+    """SELECT the source's columns plus eta, the predicted mean, the unseen-level flag and,
+    with ``intervals``, the standard error of eta and a confidence interval for the mean."""
+    names = names or ScoreColumns()
+    clash = {names.eta, names.mean, names.unseen} & set(source_columns)
+    if intervals:
+        clash |= {names.se, names.low, names.high} & set(source_columns)
+    if clash:
+        raise SpecError(
+            f"the scoring source already has column(s) {sorted(clash)}; rename them "
+            "or choose other output names"
+        )
+    link = link_from_name(res.link)
+    eta = eta_sql(res, dialect, include_offset=include_offset)
+    cols: list[Expr] = [
+        exp.Column(this=exp.Star(), table=S.ident(SRC)),
+        S.alias(eta, names.eta),
+        S.alias(link.inverse_sql(eta.copy()), names.mean),
+    ]
+    if intervals:
+        from scipy import stats
+
+        q = (
+            stats.norm.ppf(0.5 + res.confidence / 2)
+            if res.test == "z"
+            else stats.t.ppf(0.5 + res.confidence / 2, max(res.df_resid, 1e-12))
+        )
+        se = se_eta_sql(res)
+        lo = link.inverse_sql(S.sub(eta.copy(), S.mul(S.num(q), se.copy())))
+        hi = link.inverse_sql(S.add(eta.copy(), S.mul(S.num(q), se.copy())))
+        cols += [
+            S.alias(se, names.se),
+            S.alias(S.least(lo.copy(), hi.copy()), names.low),
+            S.alias(S.greatest(lo, hi), names.high),
+        ]
+    cols.append(S.alias(unseen_sql(res), names.unseen))
+    src = source.copy()
+    src.set("alias", exp.TableAlias(this=S.ident(SRC)))
+    return S.select(cols, src)
+
+
+def model_inputs(res: FitResult, dialect: Dialect, include_offset: bool = True) -> list[str]:
+    """Source columns a scoring expression reads (predictors, then offset columns)."""
+    out: list[str] = []
+    for c in _columns(res):
+        for name in (*c.factors, *c.numerics):
+            if name not in out:
+                out.append(name)
+    offset = res.spec.get("offset")
+    if include_offset and offset:
+        for name in S.referenced_columns(S.parse_expression(offset, dialect.sqlglot_name)):
+            if name not in out:
+                out.append(name)
+    return out
+
+
+def mean_expression(res: FitResult, dialect: Dialect) -> Expr:
+    """The predicted mean as one expression over the model's input columns (for macros)."""
+    link = link_from_name(res.link)
+    return link.inverse_sql(eta_sql(res, dialect))
+
+
+# -- registry ---------------------------------------------------------------------------------
+
+REGISTRY_TABLES: dict[str, list[tuple[str, str]]] = {
+    "model": [
+        ("model_name", "TEXT"),
+        ("created_at", "TIMESTAMP"),
+        ("live_version", "INT"),
+        ("view_schema", "TEXT"),
+        ("view_name", "TEXT"),
+        ("macro_name", "TEXT"),
+        ("score_source", "TEXT"),
+        ("intervals", "BOOLEAN"),
+    ],
+    "model_version": [
+        ("model_name", "TEXT"),
+        ("version", "INT"),
+        ("created_at", "TIMESTAMP"),
+        ("status", "TEXT"),
+        ("family", "TEXT"),
+        ("link", "TEXT"),
+        ("response", "TEXT"),
+        ("source", "TEXT"),
+        ("deviance", "DOUBLE"),
+        ("null_deviance", "DOUBLE"),
+        ("pearson_chi2", "DOUBLE"),
+        ("dispersion", "DOUBLE"),
+        ("log_likelihood", "DOUBLE"),
+        ("aic", "DOUBLE"),
+        ("bic", "DOUBLE"),
+        ("df_resid", "DOUBLE"),
+        ("n_used", "BIGINT"),
+        ("n_excluded", "BIGINT"),
+        ("iterations", "INT"),
+        ("converged", "BOOLEAN"),
+        ("seconds", "DOUBLE"),
+        ("spec_hash", "TEXT"),
+        ("spec_json", "TEXT"),
+        ("fingerprint_json", "TEXT"),
+        ("result_json", "TEXT"),
+        ("package_version", "TEXT"),
+        ("parent_version", "INT"),
+        ("note", "TEXT"),
+    ],
+    "version_term": [
+        ("model_name", "TEXT"),
+        ("version", "INT"),
+        ("position", "INT"),
+        ("term", "TEXT"),
+        ("estimate", "DOUBLE"),
+        ("std_error", "DOUBLE"),
+        ("statistic", "DOUBLE"),
+        ("p_value", "DOUBLE"),
+        ("aliased", "BOOLEAN"),
+    ],
+    "version_iteration": [
+        ("model_name", "TEXT"),
+        ("version", "INT"),
+        ("iteration", "INT"),
+        ("phase", "TEXT"),
+        ("deviance", "DOUBLE"),
+        ("relative_change", "DOUBLE"),
+        ("step_halvings", "INT"),
+        ("seconds", "DOUBLE"),
+    ],
+    "registry_event": [
+        ("model_name", "TEXT"),
+        ("version", "INT"),
+        ("at", "TIMESTAMP"),
+        ("action", "TEXT"),
+        ("detail", "TEXT"),
+    ],
+}
+PRIMARY_KEYS = {
+    "model": ("model_name",),
+    "model_version": ("model_name", "version"),
+    "version_term": ("model_name", "version", "position"),
+    "version_iteration": ("model_name", "version", "iteration"),
+}
+
+
+def table_ref(schema: str, table: str) -> exp.Table:
+    return exp.Table(this=S.ident(table), db=S.ident(schema))
+
+
+def registry_ddl(schema: str) -> list[exp.Expression]:
+    """CREATE SCHEMA / CREATE TABLE IF NOT EXISTS statements for the registry."""
+    out: list[exp.Expression] = [
+        exp.Create(kind="SCHEMA", this=exp.Table(db=S.ident(schema)), exists=True)
+    ]
+    for table, cols in REGISTRY_TABLES.items():
+        defs: list[exp.Expression] = [
+            exp.ColumnDef(this=S.ident(c), kind=exp.DataType.build(t)) for c, t in cols
+        ]
+        if table in PRIMARY_KEYS:
+            defs.append(exp.PrimaryKey(expressions=[S.ident(c) for c in PRIMARY_KEYS[table]]))
+        out.append(
+            exp.Create(
+                kind="TABLE",
+                exists=True,
+                this=exp.Schema(this=table_ref(schema, table), expressions=defs),
+            )
+        )
+    return out
+
+
+def literal(value: Any) -> Expr:
+    """A typed literal for registry rows (None -> NULL; NaN/inf -> NULL)."""
+    if value is None:
+        return exp.Null()
+    if isinstance(value, bool):
+        return exp.true() if value else exp.false()
+    if isinstance(value, int | np.integer):
+        return S.integer(int(value))
+    if isinstance(value, float | np.floating):
+        return S.num(float(value)) if math.isfinite(value) else exp.Null()
+    return S.text(str(value))
+
+
+def insert_rows(schema: str, table: str, rows: Sequence[dict[str, Any]]) -> exp.Insert:
+    """INSERT INTO schema.table (cols) VALUES (...), (...)."""
+    cols = [c for c, _ in REGISTRY_TABLES[table]]
+    types = dict(REGISTRY_TABLES[table])
+    tuples = []
+    for r in rows:
+        vals = []
+        for c in cols:
+            v = literal(r.get(c))
+            if types[c] == "TIMESTAMP" and not isinstance(v, exp.Null):
+                v = S.cast(v, "TIMESTAMP")
+            vals.append(v)
+        tuples.append(exp.Tuple(expressions=vals))
+    return exp.Insert(
+        this=exp.Schema(this=table_ref(schema, table), expressions=[S.ident(c) for c in cols]),
+        expression=exp.Values(expressions=tuples),
+    )
+
+
+def where_model(name: str, version: int | None = None) -> Expr:
+    cond = S.eq(S.col("model_name"), S.text(name))
+    if version is not None:
+        cond = S.and_(cond, S.eq(S.col("version"), S.integer(version)))
+    return cond
+
+
+def select_rows(
+    schema: str, table: str, where: Expr | None = None, order: Sequence[str] = ()
+) -> exp.Select:
+    q = S.select([exp.Star()], table_ref(schema, table), where=where)
+    if order:
+        q = q.order_by(*(S.col(o) for o in order), copy=False)
+    return q
+
+
+def update_rows(schema: str, table: str, values: dict[str, Any], where: Expr) -> exp.Update:
+    sets = [exp.EQ(this=S.col(k), expression=literal(v)) for k, v in values.items()]
+    return exp.Update(this=table_ref(schema, table), expressions=sets, where=exp.Where(this=where))
+
+
+def delete_rows(schema: str, table: str, where: Expr) -> exp.Delete:
+    return exp.Delete(this=table_ref(schema, table), where=exp.Where(this=where))
+
+
+def create_view(schema: str | None, name: str, query: exp.Select) -> exp.Create:
+    target = exp.Table(this=S.ident(name), db=S.ident(schema) if schema else None)
+    return exp.Create(kind="VIEW", this=target, expression=query, replace=True)
+
+
+def drop_view(schema: str | None, name: str) -> exp.Drop:
+    target = exp.Table(this=S.ident(name), db=S.ident(schema) if schema else None)
+    return exp.Drop(kind="VIEW", this=target, exists=True)
