@@ -1,14 +1,41 @@
-"""Public entry points: wire spec -> plan -> engine -> solver -> result."""
+"""Public entry points: wire spec -> plan -> engine -> solver -> result -> write-back."""
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from indb.engine import connect
-from indb.fitter import fit_spec
+from indb.engine import Engine, connect
+from indb.fitter import fit_spec, plan_spec
+from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
 from indb.results import FitResult
 from indb.spec import ModelSpec
+
+SPEC_OPTIONS = (
+    "trials",
+    "offset",
+    "weight",
+    "frequency_weight",
+    "power",
+    "theta",
+    "link_power",
+    "intercept",
+    "predictors",
+    "exclude",
+    "categorical",
+    "reference",
+    "interactions",
+    "splines",
+    "on_null",
+    "tol",
+    "max_iter",
+    "strict",
+    "max_levels",
+    "confidence",
+    "start",
+)
+ENGINE_OPTIONS = ("memory_limit", "temp_directory", "threads")
 
 
 def fit(
@@ -38,12 +65,25 @@ def fit(
     strict: bool = False,
     max_levels: int = 10_000,
     confidence: float = 0.95,
+    start: Mapping[str, float] | None = None,
     progress: Any = None,
+    name: str | None = None,
+    promote: bool = True,
+    new_version: bool = False,
+    view_schema: str | None = None,
+    score_source: str | None = None,
+    intervals: bool | None = None,
+    registry_schema: str = DEFAULT_SCHEMA,
+    memory_limit: str | None = None,
+    temp_directory: str | None = None,
+    threads: int | None = None,
 ) -> FitResult:
     """Fit a generalized linear model on ``source`` inside the database.
 
     Each IRLS iteration is one generated aggregate query; only sums (X'WX, X'Wz, deviance)
-    leave the database. See the README for the option semantics and conventions.
+    leave the database. With ``name`` the fitted model is written back: a new registry
+    version and, when promoted, a scoring view ``name`` (and a ``name_score`` macro on
+    DuckDB); ``result.deployment`` then says where. See the README for every option.
 
     Returns
     -------
@@ -76,10 +116,100 @@ def fit(
         strict=strict,
         max_levels=max_levels,
         confidence=confidence,
+        start=start,
     )
-    engine = connect(db)
+    engine = connect(db, memory_limit=memory_limit, temp_directory=temp_directory, threads=threads)
     try:
-        return fit_spec(spec, engine, progress)
+        result = fit_spec(spec, engine, progress)
+        if name is not None:
+            outcome = Registry(engine, registry_schema).save(
+                name,
+                result,
+                promote=promote,
+                force_new=new_version,
+                view_schema=view_schema,
+                score_source=score_source,
+                intervals=intervals,
+            )
+            result = with_deployment(result, outcome)
+        return result
     finally:
         if engine is not db:
             engine.close()
+
+
+def with_deployment(result: FitResult, outcome: SaveOutcome) -> FitResult:
+    """Attach where a saved result lives (registry version, scoring view, mean column)."""
+    return dataclasses.replace(
+        result,
+        deployment={
+            "model": outcome.model,
+            "version": outcome.version,
+            "created": outcome.created,
+            "promoted": outcome.promoted,
+            "scoring_view": outcome.scoring_view,
+            "mean_column": outcome.mean_column,
+            "macro": outcome.macro,
+        },
+    )
+
+
+def deploy(
+    result: FitResult,
+    name: str,
+    *,
+    db: Any = None,
+    promote: bool = True,
+    new_version: bool = False,
+    view_schema: str | None = None,
+    score_source: str | None = None,
+    intervals: bool | None = None,
+    registry_schema: str = DEFAULT_SCHEMA,
+) -> FitResult:
+    """Write an already fitted result to the registry (and its scoring view) of ``db``."""
+    engine = connect(db)
+    try:
+        outcome = Registry(engine, registry_schema).save(
+            name,
+            result,
+            promote=promote,
+            force_new=new_version,
+            view_schema=view_schema,
+            score_source=score_source,
+            intervals=intervals,
+        )
+        return with_deployment(result, outcome)
+    finally:
+        if engine is not db:
+            engine.close()
+
+
+def dry_run(
+    source: str,
+    response: str,
+    family: str = "gaussian",
+    link: str | None = None,
+    *,
+    db: Any = None,
+    **options: Any,
+) -> list[tuple[str, str]]:
+    """The SQL a fit would send: pre-fit scans (run, read only) and the first IRLS scan."""
+    spec_kw = {k: v for k, v in options.items() if k in SPEC_OPTIONS}
+    unknown = sorted(set(options) - set(SPEC_OPTIONS) - set(ENGINE_OPTIONS))
+    if unknown:
+        from indb.errors import SpecError
+
+        raise SpecError(f"unknown option(s) {unknown}")
+    spec = ModelSpec.build(source, response, family, link, **spec_kw)
+    engine = connect(db, **{k: v for k, v in options.items() if k in ENGINE_OPTIONS})
+    try:
+        return plan_spec(spec, engine)
+    finally:
+        if engine is not db:
+            engine.close()
+
+
+def registry(db: Any = None, schema: str = DEFAULT_SCHEMA) -> Registry:
+    """A registry handle on ``db`` (the caller closes ``registry.engine`` when done)."""
+    engine = db if isinstance(db, Engine) else connect(db)
+    return Registry(engine, schema)

@@ -431,29 +431,16 @@ def fit_command(source: str, as_json: bool, quiet: bool, **options: Any) -> None
     default="demo_out",
     show_default=True,
     metavar="DIR",
-    help="Directory the demo writes its database, reports and charts to.",
+    help="Directory the demo writes its data, database and reports to.",
 )
 @click.option("--quick", is_flag=True, help="Small, fast version of the demo.")
-@click.option("-q", "--quiet", is_flag=True, help="No warnings on stderr.")
-def demo_command(rows: int | None, out_dir: str, quick: bool, quiet: bool) -> None:
+def demo_command(rows: int | None, out_dir: str, quick: bool) -> None:
     """Run the worked example on invented data and write its outputs to DIR."""
     from indb import demo  # imported here: the demo pulls in more than `indb fit` needs
 
-    kwargs: dict[str, Any] = {"quick": quick, "out_dir": out_dir}
-    accepted = inspect.signature(demo.run).parameters
-    if "echo" in accepted:
-        kwargs["echo"] = click.echo
-    if rows is not None:
-        if "rows" not in accepted:
-            raise CommandFailure(
-                "--rows is not supported by this demo (it has a fixed size); "
-                "leave --rows out, or use --quick for the small version",
-                2,
-            )
-        kwargs["rows"] = rows
-    with _library_errors(quiet) as caught:
-        demo.run(**kwargs)
-    _echo_warnings(caught, quiet=quiet, already_shown=())
+    with _library_errors(quiet=False) as caught:
+        demo.run(quick=quick, out_dir=out_dir, rows=rows, echo=click.echo)
+    _echo_warnings(caught, quiet=False, already_shown=())
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -474,10 +474,8 @@ def _estimate_theta(
 # -- the whole fit -----------------------------------------------------------------------------
 
 
-def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitResult:
-    """Fit ``spec`` on ``engine``; see :func:`indb.fit` for the user-facing description."""
-    t_start = time.perf_counter()
-    run = _Run(engine=engine, progress=progress, log=[])
+def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
+    """Pre-fit scans (read only): columns, NULL counts, knots, summary, levels, combinations."""
     inputs = _describe(spec, engine)
     ctx = P.PlanContext(spec, inputs, engine.dialect)
     n_total, n_kept, by_col = _count_nulls(ctx, run)
@@ -490,6 +488,51 @@ def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitR
     )
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
+    return ctx, design, summary, n_total, n_kept, by_col
+
+
+def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
+    """The SQL a fit would send, for a dry run: (purpose, SQL text) pairs.
+
+    The pre-fit scans run (they only read); the first IRLS scan is returned, not run. Later
+    scans differ only in the coefficient literals.
+    """
+    sent: list[tuple[str, str]] = []
+    recorder = _RecordingEngine(engine, sent)
+    run = _Run(engine=recorder, progress=None, log=[])
+    ctx, design, summary, *_ = _prepare(spec, recorder, run)
+    start = _start_from(spec, design, summary)
+    tree = P.gram_query(ctx, design, start, ybar=summary.ybar)
+    sent.append(("IRLS scan (one per iteration; coefficients change)", engine.dialect.render(tree)))
+    return sent
+
+
+class _RecordingEngine(Engine):
+    """Passes calls to a real engine and records the SQL text with a purpose label."""
+
+    def __init__(self, inner: Engine, sent: list[tuple[str, str]]) -> None:
+        self.inner = inner
+        self.dialect = inner.dialect
+        self.sent = sent
+
+    def execute(self, sql: str):
+        self.sent.append(("pre-fit scan", sql))
+        return self.inner.execute(sql)
+
+    def fetch_columns(self, sql: str):
+        self.sent.append(("pre-fit scan", sql))
+        return self.inner.fetch_columns(sql)
+
+    def describe(self, sql: str):
+        self.sent.append(("describe source", sql))
+        return self.inner.describe(sql)
+
+
+def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitResult:
+    """Fit ``spec`` on ``engine``; see :func:`indb.fit` for the user-facing description."""
+    t_start = time.perf_counter()
+    run = _Run(engine=engine, progress=progress, log=[])
+    ctx, design, summary, n_total, n_kept, by_col = _prepare(spec, engine, run)
 
     warn_msgs: list[str] = []
     if spec.estimate_theta:
@@ -534,10 +577,9 @@ def _start_from(spec: ModelSpec, design: Design, summary: _Summary) -> np.ndarra
     """Warm-start coefficients given on the original scale (by term name), standardized."""
     if not spec.start:
         return None
+    # Terms the design no longer has (a level that vanished, a dropped column) are ignored:
+    # start values only steer the first step, never the answer.
     given = dict(spec.start)
-    unknown = sorted(set(given) - set(design.terms))
-    if unknown:
-        raise SpecError(f"start values name unknown terms {unknown[:5]}")
     orig = np.array([given.get(t, 0.0) for t in design.terms])
     t = solver.back_transform(design)
     return np.linalg.solve(t, orig)

@@ -91,6 +91,7 @@ class FitResult:
     spec: dict[str, Any] = field(default_factory=dict)
     design: dict[str, Any] = field(default_factory=dict)
     fingerprint: dict[str, Any] = field(default_factory=dict)
+    deployment: dict[str, Any] = field(default_factory=dict)
 
     # -- convenience views ---------------------------------------------------------------
     @property
@@ -161,6 +162,10 @@ class FitResult:
             "design": self.design,
             "fingerprint": self.fingerprint,
         }
+        if self.deployment:
+            out["deployment"] = dict(self.deployment)
+            out["scoring_view"] = self.deployment.get("scoring_view")
+            out["mean_column"] = self.deployment.get("mean_column")
         return out
 
     @staticmethod
