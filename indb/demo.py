@@ -87,7 +87,11 @@ def run(
         f"({time.perf_counter() - t0:.1f} s)"
     )
     echo("All data are invented; see indb/demo_data.py for the scenario and its true effects.\n")
-    engine = DuckDBEngine(os.path.join(out_dir, "demo.duckdb"))
+    db_path = os.path.join(out_dir, "demo.duckdb")
+    for stale in (db_path, db_path + ".wal"):
+        if os.path.exists(stale):
+            os.remove(stale)  # each demo run starts a fresh database
+    engine = DuckDBEngine(db_path)
     results: dict[str, FitResult] = {}
     try:
         for m in demo_models(parquet):
@@ -95,7 +99,9 @@ def run(
             echo(m.title)
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
-                res = fit(m.source, db=engine, **m.options)
+                res = fit(
+                    m.source, db=engine, name=m.name, intervals=m.name == "frequency", **m.options
+                )
             for w in caught:
                 echo(f"warning: {w.message}")
             echo(render_report(res))
@@ -112,10 +118,45 @@ def run(
                 "Claim frequency: fitted vs the invented truth",
             )
         )
+        echo("")
+        echo(scoring_tour(engine, results))
     finally:
         engine.close()
     echo(f"\nindb demo: done in {time.perf_counter() - t0:.1f} s; reports in {out_dir}/")
     return results
+
+
+def scoring_tour(engine: DuckDBEngine, results: dict[str, FitResult]) -> str:
+    """Show the models living in the database: registry rows, a view, a macro."""
+    con = engine.con
+    lines = ["The fitted models now live in the database file as SQL:"]
+    for name, res in results.items():
+        dep = res.deployment
+        lines.append(
+            f"  {name:<13} registry version {dep['version']}, scoring view "
+            f"{dep['scoring_view']} (column {dep['mean_column']}), macro {dep['macro']}"
+        )
+    rows = con.execute(
+        "SELECT region, fuel, round(sum(score_mean) / sum(exposure), 5) AS predicted, "
+        "round(sum(claim_count) / sum(exposure), 5) AS observed, count(*) AS policies "
+        "FROM frequency GROUP BY ALL ORDER BY region, fuel LIMIT 6"
+    ).fetchall()
+    lines.append(
+        "\nClaims per policy-year from the scoring view (first rows):\n"
+        "SELECT region, fuel, sum(score_mean) / sum(exposure), ... "
+        "FROM frequency GROUP BY ALL"
+    )
+    lines.append(f"  {'region':<10}{'fuel':<8}{'predicted':>11}{'observed':>10}{'policies':>10}")
+    for r in rows:
+        lines.append(f"  {r[0]:<10}{r[1]:<8}{r[2]:>11}{r[3]:>10}{r[4]:>10}")
+    one = con.execute(
+        "SELECT frequency_score(30, 7, 2, 60.0, 1.5, 'Southbay', 'G09', 'diesel', 1.0)"
+    ).fetchone()[0]
+    lines.append(
+        "\nSELECT frequency_score(30, 7, 2, 60.0, 1.5, 'Southbay', 'G09', 'diesel', 1.0)"
+        f"\n  -> {one:.5f} expected claims in a policy-year"
+    )
+    return "\n".join(lines)
 
 
 def truth_table(res: FitResult, truth: dict[str, float], title: str) -> str:

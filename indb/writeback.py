@@ -171,7 +171,7 @@ def se_eta_sql(res: FitResult) -> Expr:
         )
     cov = np.nan_to_num(np.asarray(res.covariance, dtype=float), nan=0.0)
     xs: list[Expr] = []
-    for c, ind, val in terms:
+    for _c, ind, val in terms:
         base = val if val is not None else S.num(1.0)
         xs.append(base if ind is None else S.case([(ind, base)], S.num(0.0)))
     quad: list[Expr] = []
