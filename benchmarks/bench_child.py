@@ -14,15 +14,16 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import resource
 import sys
+import tempfile
 import time
 import traceback
 from typing import Any
 
-import numpy as np
-
 import bench_data
+import numpy as np
 
 MARK = "BENCH_JSON "
 
@@ -111,9 +112,45 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
         out["gram_sql_chars"] = len(sql)
         out["explain_seconds"] = _best(lambda: con.execute("EXPLAIN " + sql).fetchall())
         out["execute_seconds"] = _best(lambda: con.execute(sql).fetchall())
+        out["profile"] = _profile(con, sql)
         con.close()
     engine.close()
     return out
+
+
+def _profile(con: Any, sql: str) -> dict[str, Any]:
+    """DuckDB's detailed profile of one run: planner/optimizer time, time by operator type."""
+    with tempfile.TemporaryDirectory() as tmp:
+        target = os.path.join(tmp, "profile.json")
+        con.execute("SET enable_profiling = 'json'")
+        con.execute("SET profiling_mode = 'detailed'")
+        con.execute("SET profiling_output = '" + target.replace("'", "''") + "'")
+        con.execute(sql).fetchall()
+        con.execute("PRAGMA disable_profiling")
+        with open(target) as fh:
+            prof = json.load(fh)
+    by_type: dict[str, float] = {}
+
+    def walk(node: dict[str, Any]) -> None:
+        kind = str(node.get("type") or node.get("name") or "?")
+        by_type[kind] = by_type.get(kind, 0.0) + float(node.get("timing") or 0.0)
+        for child in node.get("children") or ():
+            walk(child)
+
+    for node in prof.get("operator") or ():
+        walk(node)
+    opt = {k: float(v) for k, v in (prof.get("optimizer") or {}).items() if k != "total_time"}
+    top = max(opt.items(), key=lambda kv: kv[1]) if opt else ("", 0.0)
+    query = prof.get("query") or {}
+    return {
+        "planner": float((prof.get("planner") or {}).get("total_time") or 0.0),
+        "optimizer": float((prof.get("optimizer") or {}).get("total_time") or 0.0),
+        "optimizer_top": [top[0], top[1]],
+        "physical_planner": float((prof.get("physical_planner") or {}).get("total_time") or 0.0),
+        "latency": float(query.get("total_time") or 0.0),
+        "cpu_time": float(query.get("cpu_time") or 0.0),
+        "operators": by_type,
+    }
 
 
 def _best(call, repeats: int = 3) -> float:
@@ -201,7 +238,9 @@ def run_reference(job: dict[str, Any]) -> dict[str, Any]:
                 solver = "PoissonRegressor newton-cholesky"
             else:
                 # C=inf is the unpenalized fit (penalty=None is deprecated in this version)
-                est = LogisticRegression(C=math.inf, solver="newton-cholesky", tol=1e-8, max_iter=100)
+                est = LogisticRegression(
+                    C=math.inf, solver="newton-cholesky", tol=1e-8, max_iter=100
+                )
                 est.fit(xs, y)
                 solver = "LogisticRegression newton-cholesky, C=inf"
             params = np.concatenate([[float(np.ravel(est.intercept_)[0])], np.ravel(est.coef_)])

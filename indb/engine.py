@@ -153,12 +153,48 @@ def _wrap(err: Exception, sql: str) -> EngineError:
 
 
 def connect(db: Any = None, **settings: Any) -> Engine:
-    """Open an engine from ``db``: None/path/DuckDB connection, or an :class:`Engine`."""
+    """Open an engine from ``db``.
+
+    ``db`` is None (in-memory DuckDB), a DuckDB file path or connection, an :class:`Engine`,
+    a ``postgresql://`` / ``postgres://`` URL or open ``psycopg`` connection (PostgreSQL),
+    ``spark:MASTER`` such as ``spark:local[2]`` (an in-process Spark driver), ``sc://host:port``
+    (a Spark Connect server) or an open ``SparkSession``. ``settings`` (memory_limit,
+    temp_directory, threads) apply to DuckDB only.
+    """
     if isinstance(db, Engine):
         return db
+    module = type(db).__module__
+    low = db.strip().lower() if isinstance(db, str) else ""
+    is_pg = low.startswith(("postgresql://", "postgres://")) or module.startswith("psycopg")
+    is_spark = low.startswith(("spark:", "sc://")) or (
+        module.startswith("pyspark") and type(db).__name__ == "SparkSession"
+    )
+    if is_pg or is_spark:
+        given = sorted(k for k, v in settings.items() if v is not None)
+        if given:
+            raise SpecError(
+                f"engine settings {given} apply to DuckDB only; configure "
+                f"{'PostgreSQL' if is_pg else 'Spark'} on the server or session instead"
+            )
+    if is_pg:
+        from indb.postgres import PostgresEngine
+
+        return PostgresEngine(db)
+    if is_spark:
+        from indb.spark import SparkEngine
+
+        if not isinstance(db, str):
+            return SparkEngine(db)
+        if low.startswith("sc://"):
+            return SparkEngine(remote=db.strip())
+        master = db.strip()[len("spark:") :]
+        if not master:
+            raise SpecError(f"database URL {db!r} needs a Spark master, e.g. spark:local[2]")
+        return SparkEngine(master=master)
     if isinstance(db, str) and "://" in db:
         raise SpecError(
-            f"database URL {db!r} names an engine this version does not support; "
-            "give a DuckDB file path or omit --db for an in-memory database"
+            f"database URL {db!r} names an engine indb does not support; use "
+            "postgresql://..., spark:local[N], sc://host:port, a DuckDB file path, or omit "
+            "--db for an in-memory DuckDB database"
         )
     return DuckDBEngine(db, **settings)

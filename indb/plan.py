@@ -360,8 +360,51 @@ def _passthrough(design: Design, extra: Sequence[str] = ()) -> list[Expr]:
     return [S.col(n) for n in names]
 
 
-def _eta_from_beta(ctx: PlanContext, design: Design, beta: np.ndarray) -> exp.Select:
-    """Stage e: eta = off + X beta, factor parts joined from small VALUES tables."""
+MAX_CELL_JOIN = 50_000  # above this many observed cells, join one table per factor set
+
+
+def _cell_table(
+    design: Design, beta: np.ndarray, cells: Sequence[tuple[str, ...]]
+) -> tuple[list[int], list[tuple[tuple[str, ...], list[float]]]]:
+    """Per observed cell (one level of every factor) the summed factor coefficients, one
+    column per value they multiply; cells whose coefficients are all 0 are left out."""
+    arr = np.array(cells, dtype=object).reshape(len(cells), len(design.factors))
+    fcols = [j for j, c in enumerate(design.columns) if c.factors]
+    vals = sorted({design.columns[j].value for j in fcols})
+    vpos = {v: i for i, v in enumerate(vals)}
+    coef = np.zeros((len(cells), len(vals)))
+    for j in fcols:
+        c = design.columns[j]
+        mask = np.ones(len(cells), dtype=bool)
+        for fi, lv in zip(c.factors, c.levels, strict=True):
+            mask &= arr[:, fi] == lv
+        coef[mask, vpos[c.value]] += float(beta[j])
+    rows = [
+        (tuple(str(x) for x in arr[i]), coef[i].tolist())
+        for i in range(len(cells))
+        if np.any(coef[i] != 0.0)
+    ]
+    return vals, rows
+
+
+def _values_table(name: str, colnames: list[str], rows: list[exp.Tuple]) -> exp.Values:
+    return exp.Values(
+        expressions=rows,
+        alias=exp.TableAlias(this=S.ident(name), columns=[S.ident(n) for n in colnames]),
+    )
+
+
+def _eta_from_beta(
+    ctx: PlanContext,
+    design: Design,
+    beta: np.ndarray,
+    cells: Sequence[tuple[str, ...]] | None = None,
+) -> exp.Select:
+    """Stage e: eta = off + X beta; factor parts come from small VALUES tables.
+
+    With the observed ``cells`` known (after the first scan), one table keyed by the whole
+    cell is joined; otherwise one table per factor set.
+    """
     r = ROWS
     terms: list[Expr] = [S.col("off", r)]
     groups: dict[tuple[int, ...], list[int]] = {}
@@ -375,6 +418,26 @@ def _eta_from_beta(ctx: PlanContext, design: Design, beta: np.ndarray) -> exp.Se
         v = S.num(b) if c.value == 0 else S.mul(S.num(b), S.col(design.values[c.value].alias, r))
         terms.append(v)
     joins: list[tuple[Expr, Expr]] = []
+    if groups and cells is not None and 0 < len(cells) <= MAX_CELL_JOIN:
+        vals, table_rows = _cell_table(design, beta, cells)
+        if table_rows:
+            nf = len(design.factors)
+            rows = [
+                exp.Tuple(expressions=[*(S.text(lv) for lv in lv_t), *(S.num(x) for x in co)])
+                for lv_t, co in table_rows
+            ]
+            colnames = [f"l{i}" for i in range(nf)] + [f"c{v}" for v in vals]
+            on = S.and_(
+                *(
+                    S.eq(S.col(f.alias, r), S.col(f"l{i}", "k"))
+                    for i, f in enumerate(design.factors)
+                )
+            )
+            joins.append((_values_table("k", colnames, rows), on))
+            for v in vals:
+                coef = exp.Coalesce(this=S.col(f"c{v}", "k"), expressions=[S.num(0.0)])
+                terms.append(coef if v == 0 else S.mul(coef, S.col(design.values[v].alias, r)))
+        groups = {}
     for g, (fset, idx) in enumerate(groups.items()):
         vals = sorted({design.columns[j].value for j in idx})
         table: dict[tuple[str, ...], dict[int, float]] = {}
@@ -523,13 +586,16 @@ def gram_query(
     *,
     ybar: float,
     null_mu: Expr | None = None,
+    cells: Sequence[tuple[str, ...]] | None = None,
 ) -> exp.Select:
     """The IRLS scan: all sums for X'WX, X'Wz, deviance and Pearson, grouped by factor cells.
 
     ``beta`` are the standardized coefficients (None: the family's starting means).
     ``null_mu`` adds ``null_dev``, the deviance at a per-row null-model mean.
     """
-    eta = _eta_start(ctx, design, ybar) if beta is None else _eta_from_beta(ctx, design, beta)
+    eta = (
+        _eta_start(ctx, design, ybar) if beta is None else _eta_from_beta(ctx, design, beta, cells)
+    )
     mean = _mean_stage(ctx, design, eta)
     extra: list[tuple[str, Expr]] = []
     if null_mu is not None:

@@ -29,6 +29,7 @@ class Sums:
     n_weighted: float
     extras: dict[str, float]
     cells: int
+    cell_keys: list[tuple[str, ...]] | None = None
 
 
 def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...] = ()) -> Sums:
@@ -67,6 +68,11 @@ def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...
         n_weighted=float(_f(cells["nw"]).sum()),
         extras={k: float(_f(cells[k]).sum()) for k in extra},
         cells=rows,
+        cell_keys=(
+            list(zip(*(cells[f.alias].tolist() for f in design.factors), strict=True))
+            if design.factors
+            else None
+        ),
     )
 
 
@@ -140,6 +146,15 @@ def back_transform(design: Design) -> np.ndarray:
         if v.centered and icpt is not None:
             t[icpt, j] = -v.center / v.scale
     return t
+
+
+def step_in_se(old: np.ndarray, new: np.ndarray, inv_info: np.ndarray, dispersion: float) -> float:
+    """Largest coefficient change in units of its standard error (aliased columns skipped)."""
+    var = np.diag(inv_info) * dispersion
+    ok = var > 0
+    if not ok.any():
+        return 0.0
+    return float(np.max(np.abs(new[ok] - old[ok]) / np.sqrt(var[ok])))
 
 
 def relative_change(new: float, old: float) -> float:

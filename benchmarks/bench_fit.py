@@ -1,0 +1,300 @@
+"""Side-by-side benchmark: indb against a plain DuckDB scan and in-memory GLM libraries.
+
+Run from the repository root::
+
+    .venv/bin/python benchmarks/bench_fit.py --rows 1e6,1e7 [--with-1e8] \
+        [--out benchmarks/RESULTS.md]
+
+For each size the invented table (``bench_data``) is written once to ``benchmarks/data/``
+(git-ignored) and reused afterwards. For each size and model it measures
+
+* the floor: one plain aggregate scan (a SUM per used column) of the same columns in
+  DuckDB, best of 3, in this process;
+* indb: one fit in a fresh process (total time, iterations, seconds per IRLS scan, path,
+  peak RSS), plus planning versus execution of one IRLS query;
+* statsmodels GLM and scikit-learn (PoissonRegressor / LogisticRegression) on the data loaded
+  into memory, each in a fresh process with its address space capped (``RLIMIT_AS``) and a
+  time limit; the time includes reading the Parquet file and building the dense design.
+
+It prints one side-by-side table and writes a Markdown report (``--out``); see
+``benchmarks/README.md`` for what each column means.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import json
+import os
+import shlex
+import subprocess
+import sys
+import tempfile
+import time
+from typing import Any
+
+import bench_data
+import bench_report
+import duckdb
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+CHILD = os.path.join(HERE, "bench_child.py")
+GIB = 1024**3
+
+
+def parse_rows(text: str) -> list[int]:
+    """``"1e6,1e7"`` -> ``[1000000, 10000000]`` (also ``10^6`` and ``1_000_000``)."""
+    out: list[int] = []
+    for part in text.split(","):
+        t = part.strip().replace("_", "")
+        if not t:
+            continue
+        try:
+            value = float(t.split("^")[0]) ** float(t.split("^")[1]) if "^" in t else float(t)
+        except ValueError:
+            raise argparse.ArgumentTypeError(
+                f"--rows: {part!r} is not a row count; write e.g. 1e6,1e7"
+            ) from None
+        if value != int(value) or value < 1000:
+            raise argparse.ArgumentTypeError(
+                f"--rows: {part!r} must be a whole number of at least 1000 rows"
+            )
+        out.append(int(value))
+    if not out:
+        raise argparse.ArgumentTypeError("--rows: give at least one size, e.g. 1e6,1e7")
+    return out
+
+
+def mem_total_bytes() -> int:
+    with open("/proc/meminfo") as fh:
+        for line in fh:
+            if line.startswith("MemTotal:"):
+                return int(line.split()[1]) * 1024
+    raise RuntimeError("no MemTotal in /proc/meminfo")
+
+
+# -- the floor -------------------------------------------------------------------------------
+
+
+def quote_ident(name: str) -> str:
+    return '"' + name.replace('"', '""') + '"'
+
+
+def quote_text(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+def floor_sql(path: str, model: bench_data.Model) -> str:
+    """A SUM per used column (string length for the categorical ones) in one scan."""
+    items = ["count(*)"]
+    for c in model.columns:
+        q = quote_ident(c)
+        items.append(f"sum(strlen({q}))" if c in model.factors else f"sum({q})")
+    return f"SELECT {', '.join(items)} FROM read_parquet({quote_text(path)})"
+
+
+def measure_floor(con: duckdb.DuckDBPyConnection, path: str, model: bench_data.Model) -> float:
+    sql = floor_sql(path, model)
+    best = float("inf")
+    for _ in range(3):
+        t0 = time.perf_counter()
+        con.execute(sql).fetchall()
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def distinct_design_rows(con: duckdb.DuckDBPyConnection, path: str, cols: tuple[str, ...]) -> int:
+    sel = ", ".join(quote_ident(c) for c in cols)
+    sql = f"SELECT count(*) FROM (SELECT DISTINCT {sel} FROM read_parquet({quote_text(path)}))"
+    return int(con.execute(sql).fetchone()[0])
+
+
+# -- children ----------------------------------------------------------------------------------
+
+
+def run_child(job: dict[str, Any], timeout: float) -> dict[str, Any]:
+    """Run one measured fit in a fresh process; peak RSS comes from the kernel (wait4)."""
+    with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
+        proc = subprocess.Popen(
+            [sys.executable, CHILD, json.dumps(job)],
+            stdout=out,
+            stderr=err,
+            cwd=HERE,
+        )
+        t0 = time.monotonic()
+        timed_out = False
+        while True:
+            pid, status, usage = os.wait4(proc.pid, os.WNOHANG)
+            if pid:
+                break
+            if time.monotonic() - t0 > timeout:
+                proc.kill()  # our own child, by its pid
+                _, status, usage = os.wait4(proc.pid, 0)
+                timed_out = True
+                break
+            time.sleep(0.05)
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        wall = time.monotonic() - t0
+        out.seek(0)
+        err.seek(0)
+        stdout = out.read().decode(errors="replace")
+        stderr = err.read().decode(errors="replace")
+    result: dict[str, Any] = {}
+    for line in stdout.splitlines():
+        if line.startswith("BENCH_JSON "):
+            result = json.loads(line[len("BENCH_JSON ") :])
+    result["kernel_peak_kib"] = usage.ru_maxrss  # KiB on Linux
+    result["process_seconds"] = wall
+    if timed_out:
+        result["status"] = f"timeout (>{timeout:.0f} s)"
+        result["seconds"] = None
+    elif not result:
+        code = proc.returncode
+        last = stderr.strip().splitlines()[-1:] or [""]
+        if code < 0:
+            result["status"] = f"killed by signal {-code} (out of memory?)"
+        else:
+            result["status"] = f"crashed (exit {code}): {last[0][:120]}"
+    if result.get("status", "").startswith("error") or (
+        result.get("status") != "ok" and stderr.strip()
+    ):
+        result["stderr_tail"] = stderr.strip()[-600:]
+    return result
+
+
+# -- the run -----------------------------------------------------------------------------------
+
+
+def log(msg: str) -> None:
+    stamp = dt.datetime.now().strftime("%H:%M:%S")
+    print(f"[{stamp}] {msg}", file=sys.stderr, flush=True)
+
+
+def bench_size(
+    rows: int, args: argparse.Namespace, models: list[bench_data.Model], cap: int
+) -> tuple[list[dict[str, Any]], dict[str, Any]]:
+    t0 = time.perf_counter()
+    path, written = bench_data.ensure_data(args.data_dir, rows)
+    data_info = {
+        "rows": rows,
+        "path": os.path.relpath(path),
+        "bytes": os.path.getsize(path),
+        "written_now": written,
+        "seconds": time.perf_counter() - t0,
+    }
+    log(f"{rows:.0e} rows: data {'written' if written else 'cached'} ({path})")
+    results: list[dict[str, Any]] = []
+    con = duckdb.connect()
+    con.execute("SET enable_progress_bar = false")
+    for model in models:
+        con.execute(floor_sql(path, model)).fetchall()  # warm the file cache first
+        floor = measure_floor(con, path, model)
+        distinct = distinct_design_rows(con, path, model.factors) if model.compresses else None
+        base = {"rows": rows, "model": model.key}
+        results.append({**base, "tool": "floor", "status": "ok", "seconds": floor})
+        if distinct is not None:
+            results[-1]["distinct_design_rows"] = distinct
+        log(f"  {model.key}: floor {floor:.3f} s")
+        job = {"tool": "indb", "model": model.key, "path": path}
+        r = run_child(job, args.indb_timeout)
+        results.append({**base, "tool": "indb", **r})
+        log(f"  {model.key}: indb {r.get('status')} {_secs(r)}")
+        for tool in args.refs:
+            need = rows * model.p * 8
+            if need > cap:
+                results.append(
+                    {
+                        **base,
+                        "tool": tool,
+                        "status": f"skipped: the dense design alone needs {need / GIB:.0f} GiB "
+                        f"> cap {cap / GIB:.0f} GiB",
+                    }
+                )
+                log(f"  {model.key}: {tool} skipped (design {need / GIB:.0f} GiB)")
+                continue
+            job = {"tool": tool, "model": model.key, "path": path, "mem_cap_bytes": cap}
+            r = run_child(job, args.timeout)
+            results.append({**base, "tool": tool, **r})
+            log(f"  {model.key}: {tool} {r.get('status')} {_secs(r)}")
+    con.close()
+    return results, data_info
+
+
+def _secs(r: dict[str, Any]) -> str:
+    s = r.get("seconds")
+    return f"{s:.2f} s" if isinstance(s, int | float) else ""
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--rows", type=parse_rows, default=[10**6, 10**7], help="e.g. 1e6,1e7")
+    ap.add_argument("--with-1e8", action="store_true", help="also run 1e8 rows")
+    ap.add_argument("--out", default=os.path.join(HERE, "RESULTS.md"), help="Markdown report")
+    ap.add_argument("--data-dir", default=os.path.join(HERE, "data"), help="cached data files")
+    ap.add_argument(
+        "--models",
+        default=",".join(m.key for m in bench_data.MODELS),
+        help="comma-separated model keys: " + ", ".join(m.key for m in bench_data.MODELS),
+    )
+    ap.add_argument(
+        "--refs", default="statsmodels,sklearn", help="references to run (comma-separated)"
+    )
+    ap.add_argument("--timeout", type=float, default=600.0, help="seconds per reference fit")
+    ap.add_argument("--indb-timeout", type=float, default=1800.0, help="seconds per indb fit")
+    ap.add_argument(
+        "--mem-cap-gib",
+        type=float,
+        default=None,
+        help="address-space cap of reference fits (default min(20, 0.85 x RAM) GiB)",
+    )
+    args = ap.parse_args(argv)
+    sizes = sorted(set(args.rows + ([10**8] if args.with_1e8 else [])))
+    known = {m.key: m for m in bench_data.MODELS}
+    wanted = [k.strip() for k in args.models.split(",") if k.strip()]
+    bad = [k for k in wanted if k not in known]
+    if bad:
+        ap.error(f"--models: unknown model(s) {bad}; choose from {sorted(known)}")
+    models = [known[k] for k in wanted]
+    args.refs = [r.strip() for r in args.refs.split(",") if r.strip()]
+    bad = [r for r in args.refs if r not in ("statsmodels", "sklearn")]
+    if bad:
+        ap.error(f"--refs: unknown reference(s) {bad}; choose from statsmodels, sklearn")
+    cap_gib = args.mem_cap_gib or min(20.0, 0.85 * mem_total_bytes() / GIB)
+    cap = int(cap_gib * GIB)
+
+    started = time.perf_counter()
+    results: list[dict[str, Any]] = []
+    data_info: list[dict[str, Any]] = []
+    for rows in sizes:
+        res, info = bench_size(rows, args, models, cap)
+        results += res
+        data_info.append(info)
+    elapsed = time.perf_counter() - started
+
+    exe = sys.executable
+    rel = os.path.relpath(exe)
+    command = shlex.join([rel if not rel.startswith("..") else exe, *sys.argv])
+    run = {
+        "command": command,
+        "elapsed_seconds": elapsed,
+        "mem_cap_bytes": cap,
+        "timeout": args.timeout,
+        "data": data_info,
+        "models": [m.key for m in models],
+        "sizes": sizes,
+    }
+    report = bench_report.Report(results, run, models)
+    print(report.text_table())
+    for line in report.sanity_lines():
+        print(line)
+    with open(args.out, "w") as fh:
+        fh.write(report.markdown())
+    raw = os.path.join(args.data_dir, "results_last_run.json")
+    with open(raw, "w") as fh:
+        json.dump({"run": run, "results": results}, fh, indent=1, default=str)
+    log(f"wrote {args.out} and {raw} ({elapsed / 60:.1f} min)")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

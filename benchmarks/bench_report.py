@@ -1,0 +1,528 @@
+"""Tables, target checks and the Markdown report of ``bench_fit.py``.
+
+Everything here is computed from the measured results handed in; nothing is assumed.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import importlib.metadata as md
+import math
+import os
+import platform
+import subprocess
+from collections.abc import Sequence
+from typing import Any
+
+import bench_data
+import numpy as np
+
+TOOLS = ("floor", "indb", "statsmodels", "sklearn")
+TOOL_LABEL = {
+    "floor": "floor (DuckDB SUM scan)",
+    "indb": "indb",
+    "statsmodels": "statsmodels GLM",
+    "sklearn": "scikit-learn",
+}
+SANITY_RTOL = 1e-6  # indb vs statsmodels coefficients on the 1e6 Poisson case (brief)
+HEADERS = (
+    "rows",
+    "model",
+    "tool",
+    "status",
+    "time s",
+    "iters",
+    "s/scan",
+    "queries",
+    "peak MiB",
+    "Mrows/s",
+    "scan/floor",
+    "time/floor",
+    "time/indb",
+    "coef rel.diff",
+    "path / solver",
+)
+
+
+def fmt(x: Any, digits: int = 3) -> str:
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return ""
+    if isinstance(x, int):
+        return str(x)
+    if isinstance(x, float):
+        if x == 0:
+            return "0"
+        if abs(x) >= 100:
+            return f"{x:.0f}"
+        if abs(x) >= 1e-3:
+            return f"{x:.{digits}g}"
+        return f"{x:.1e}"
+    return str(x)
+
+
+def rows_label(n: int) -> str:
+    e = math.log10(n)
+    return f"1e{int(e)}" if e == int(e) else f"{n:,}"
+
+
+class Report:
+    """Derived numbers and their renderings for one benchmark run."""
+
+    def __init__(
+        self, results: list[dict[str, Any]], run: dict[str, Any], models: Sequence[Any]
+    ) -> None:
+        self.results = results
+        self.run = run
+        self.models = list(models)
+        self.sizes: list[int] = sorted({r["rows"] for r in results})
+        self.by = {(r["rows"], r["model"], r["tool"]): r for r in results}
+
+    # -- lookups ---------------------------------------------------------------------------
+    def get(self, rows: int, model: str, tool: str) -> dict[str, Any] | None:
+        return self.by.get((rows, model, tool))
+
+    def ok(self, rows: int, model: str, tool: str) -> dict[str, Any] | None:
+        r = self.get(rows, model, tool)
+        return r if r is not None and r.get("status") == "ok" else None
+
+    def floor(self, rows: int, model: str) -> float:
+        r = self.ok(rows, model, "floor")
+        return float(r["seconds"]) if r else math.nan
+
+    @staticmethod
+    def per_scan(r: dict[str, Any] | None) -> float:
+        if not r or not r.get("scan_seconds"):
+            return math.nan
+        return float(np.mean(r["scan_seconds"]))
+
+    @staticmethod
+    def peak_mib(r: dict[str, Any]) -> float:
+        kib = r.get("peak_kib") or r.get("kernel_peak_kib")
+        return kib / 1024 if kib else math.nan
+
+    def coef_diff(self, rows: int, model: str, tool: str) -> float:
+        """Largest |b_ref - b_indb| / |b_indb| over the terms both report."""
+        a, b = self.ok(rows, model, "indb"), self.ok(rows, model, tool)
+        if not a or not b or "terms" not in b:
+            return math.nan
+        ours = dict(zip(a["terms"], a["params"], strict=True))
+        theirs = dict(zip(b["terms"], b["params"], strict=True))
+        if set(ours) != set(theirs):
+            return math.nan
+        return max(abs(theirs[t] - ours[t]) / max(abs(ours[t]), 1e-300) for t in ours)
+
+    def compression(self, rows: int, model: str) -> float:
+        r = self.get(rows, model, "floor") or {}
+        d = r.get("distinct_design_rows")
+        return rows / d if d else math.nan
+
+    # -- the side-by-side table --------------------------------------------------------------
+    def table_rows(self) -> list[list[str]]:
+        out: list[list[str]] = []
+        for n in self.sizes:
+            for m in self.models:
+                floor = self.floor(n, m.key)
+                indb = self.ok(n, m.key, "indb")
+                indb_t = float(indb["seconds"]) if indb else math.nan
+                for tool in TOOLS:
+                    r = self.get(n, m.key, tool)
+                    if r is None:
+                        continue
+                    ok = r.get("status") == "ok"
+                    t = float(r["seconds"]) if ok else math.nan
+                    scan = self.per_scan(r) if tool == "indb" else math.nan
+                    row = [
+                        rows_label(n),
+                        m.key,
+                        TOOL_LABEL[tool],
+                        r.get("status", "?"),
+                        fmt(t),
+                        fmt(r.get("iterations")) if ok else "",
+                        fmt(scan),
+                        fmt(r.get("queries")) if tool == "indb" else "",
+                        "" if tool == "floor" else fmt(self.peak_mib(r), 4),
+                        fmt(n / t / 1e6) if ok else "",
+                        fmt(scan / floor) if tool == "indb" else "",
+                        fmt(t / floor) if tool != "floor" else "1",
+                        fmt(t / indb_t) if tool in ("statsmodels", "sklearn") else "",
+                        fmt(self.coef_diff(n, m.key, tool), 2)
+                        if tool in ("statsmodels", "sklearn")
+                        else "",
+                        str(r.get("path", "")) if ok else "",
+                    ]
+                    out.append(row)
+        return out
+
+    def text_table(self) -> str:
+        rows = self.table_rows()
+        widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(HEADERS)]
+        line = "  ".join(h.ljust(w) for h, w in zip(HEADERS, widths, strict=True))
+        out = [line, "-" * len(line)]
+        out += ["  ".join(c.ljust(w) for c, w in zip(r, widths, strict=True)) for r in rows]
+        return "\n".join(out)
+
+    # -- growth with rows --------------------------------------------------------------------
+    def growth_rows(self) -> list[list[str]]:
+        out: list[list[str]] = []
+        for small, big in zip(self.sizes, self.sizes[1:], strict=False):
+            k = big / small
+            for m in self.models:
+                series = [
+                    ("floor", self.floor(small, m.key), self.floor(big, m.key)),
+                    ("indb total", *(self._t(n, m.key, "indb") for n in (small, big))),
+                    (
+                        "indb s/scan",
+                        *(self.per_scan(self.ok(n, m.key, "indb")) for n in (small, big)),
+                    ),
+                    ("statsmodels GLM", *(self._t(n, m.key, "statsmodels") for n in (small, big))),
+                    ("scikit-learn", *(self._t(n, m.key, "sklearn") for n in (small, big))),
+                ]
+                for what, a, b in series:
+                    if not (math.isfinite(a) or math.isfinite(b)):
+                        continue
+                    ratio = b / a
+                    out.append(
+                        [
+                            f"{rows_label(small)} -> {rows_label(big)}",
+                            m.key,
+                            what,
+                            fmt(a),
+                            fmt(b),
+                            fmt(ratio),
+                            fmt(ratio / k),
+                        ]
+                    )
+        return out
+
+    def _t(self, n: int, model: str, tool: str) -> float:
+        r = self.ok(n, model, tool)
+        return float(r["seconds"]) if r else math.nan
+
+    # -- where indb's time goes ------------------------------------------------------------
+    def breakdown_rows(self) -> list[list[str]]:
+        out: list[list[str]] = []
+        for n in self.sizes:
+            for m in self.models:
+                r = self.ok(n, m.key, "indb")
+                if not r:
+                    continue
+                total = float(r["seconds"])
+                scans = r.get("scan_seconds") or []
+                nulls = r.get("null_scan_seconds") or []
+                py = total - float(r.get("engine_seconds", math.nan))
+                gram_engine = float(np.mean(r["gram_engine_seconds"] or [math.nan]))
+                prof = r.get("profile") or {}
+                ops = prof.get("operators") or {}
+                op_total = sum(ops.values()) or math.nan
+                shares = ", ".join(
+                    f"{k.lower().replace('_', ' ')} {100 * v / op_total:.0f}%"
+                    for k, v in sorted(ops.items(), key=lambda kv: -kv[1])
+                    if v / op_total >= 0.05
+                )
+                top = prof.get("optimizer_top") or ["", math.nan]
+                out.append(
+                    [
+                        rows_label(n),
+                        m.key,
+                        fmt(total),
+                        f"{r.get('other_queries', '')} / {fmt(r.get('other_query_seconds'))}",
+                        f"{len(scans)} / {fmt(float(sum(scans)))}",
+                        f"{len(nulls)} / {fmt(float(sum(nulls)))}" if nulls else "0",
+                        fmt(py),
+                        fmt(self.per_scan(r)),
+                        fmt(gram_engine),
+                        fmt(r.get("explain_seconds")),
+                        fmt(r.get("execute_seconds")),
+                        f"{top[0]} {fmt(top[1])}",
+                        shares,
+                        fmt(r.get("gram_sql_chars")),
+                    ]
+                )
+        return out
+
+    # -- targets -----------------------------------------------------------------------------
+    def target_lines(self) -> list[str]:
+        lines: list[str] = []
+        # 1. per-iteration time <= 2x the floor scan
+        checks = []
+        for n in self.sizes:
+            for m in self.models:
+                r = self.ok(n, m.key, "indb")
+                if r:
+                    checks.append((n, m.key, self.per_scan(r) / self.floor(n, m.key)))
+        lines.append(
+            self._verdict(
+                "Per IRLS scan <= 2x the floor scan (numeric-only and with categoricals)",
+                [(f"{rows_label(n)} {k}", v, v <= 2.0) for n, k, v in checks],
+                "x",
+            )
+        )
+        # 2. whole fit <= 3x one floor scan when the design compresses >= 10x
+        checks2 = []
+        for n in self.sizes:
+            for m in self.models:
+                c = self.compression(n, m.key)
+                r = self.ok(n, m.key, "indb")
+                if r and math.isfinite(c) and c >= 10:
+                    v = float(r["seconds"]) / self.floor(n, m.key)
+                    checks2.append((f"{rows_label(n)} {m.key} ({c:,.0f}x)", v, v <= 3.0))
+        lines.append(
+            self._verdict(
+                "Whole fit <= 3x one floor scan when the design compresses >= 10x", checks2, "x"
+            )
+        )
+        # 3. total fit at the largest size >= 10x faster than the fastest in-memory reference
+        big = 10**7 if 10**7 in self.sizes else self.sizes[-1]
+        checks3 = []
+        notes = []
+        for m in self.models:
+            r = self.ok(big, m.key, "indb")
+            refs = [(t, self.ok(big, m.key, t)) for t in ("statsmodels", "sklearn")]
+            done = [(t, float(x["seconds"])) for t, x in refs if x]
+            if r and done:
+                t, best = min(done, key=lambda kv: kv[1])
+                v = best / float(r["seconds"])
+                checks3.append((f"{m.key} (vs {TOOL_LABEL[t]})", v, v >= 10.0))
+            elif r:
+                failed = [
+                    f"{TOOL_LABEL[t]}: {(self.get(big, m.key, t) or {}).get('status', 'not run')}"
+                    for t, _ in refs
+                ]
+                notes.append(f"{m.key}: no reference finished ({'; '.join(failed)})")
+        head = f"Total fit at {rows_label(big)} >= 10x faster than the fastest in-memory reference"
+        lines.append(self._verdict(head, checks3, "x faster", notes))
+        # 4. indb peak memory < 1 GiB at every size
+        checks4 = [
+            (f"{rows_label(n)} {m.key}", self.peak_mib(r), self.peak_mib(r) < 1024)
+            for n in self.sizes
+            for m in self.models
+            if (r := self.ok(n, m.key, "indb"))
+        ]
+        lines.append(self._verdict("indb peak RSS < 1 GiB at every size", checks4, " MiB"))
+        # 5. time linear in rows within 20%
+        checks5 = []
+        for small, big2 in zip(self.sizes, self.sizes[1:], strict=False):
+            k = big2 / small
+            for m in self.models:
+                a, b = self._t(small, m.key, "indb"), self._t(big2, m.key, "indb")
+                if math.isfinite(a) and math.isfinite(b):
+                    v = (b / a) / k
+                    label = f"{m.key} {rows_label(small)}->{rows_label(big2)}"
+                    checks5.append((label, v, 0.8 <= v <= 1.2))
+        lines.append(
+            self._verdict(
+                "indb total time linear in rows within 20% (time ratio / rows ratio in 0.8-1.2)",
+                checks5,
+                "",
+            )
+        )
+        return lines
+
+    @staticmethod
+    def _verdict(
+        title: str,
+        checks: list[tuple[str, float, bool]],
+        unit: str,
+        notes: Sequence[str] = (),
+    ) -> str:
+        if not checks and not notes:
+            return f"- **{title}**: not measured in this run."
+        if not checks:
+            state = "not measured"
+        else:
+            met = sum(1 for *_, ok in checks if ok)
+            state = (
+                "met"
+                if met == len(checks)
+                else ("not met" if met == 0 else f"met in {met} of {len(checks)}")
+            )
+        parts = [f"{label}: {fmt(v)}{unit} ({'ok' if ok else 'no'})" for label, v, ok in checks]
+        text = f"- **{title}**: {state}." + (" " + "; ".join(parts) + "." if parts else "")
+        if notes:
+            text += " " + "; ".join(notes) + "."
+        return text
+
+    def sanity_lines(self) -> list[str]:
+        n = 10**6 if 10**6 in self.sizes else self.sizes[0]
+        d = self.coef_diff(n, "poisson", "statsmodels")
+        if not math.isfinite(d):
+            r = self.get(n, "poisson", "statsmodels") or {}
+            return [
+                f"sanity: indb vs statsmodels on the {rows_label(n)} Poisson case: not "
+                f"compared (statsmodels: {r.get('status', 'not run')})"
+            ]
+        verdict = "PASS" if d <= SANITY_RTOL else "FAIL"
+        return [
+            f"sanity: indb vs statsmodels coefficients, Poisson with offset, {rows_label(n)} "
+            f"rows: max relative difference {d:.1e} (rtol {SANITY_RTOL:g}): {verdict}"
+        ]
+
+    # -- the reading -------------------------------------------------------------------------
+    def reading_lines(self) -> list[str]:
+        out: list[str] = []
+        for n in self.sizes:
+            parts = []
+            for m in self.models:
+                r = self.ok(n, m.key, "indb")
+                if not r:
+                    continue
+                scan = self.per_scan(r)
+                floor = self.floor(n, m.key)
+                plan = float(r.get("explain_seconds") or math.nan)
+                parts.append(
+                    f"{m.key}: {fmt(scan)} s per scan = {fmt(scan / floor)}x the floor "
+                    f"({fmt(floor)} s); planning (EXPLAIN) {fmt(plan)} s = "
+                    f"{fmt(100 * plan / scan, 2)}% of a scan; "
+                    f"{r.get('queries')} queries in all, total = {fmt(r['seconds'] / floor)}x floor"
+                )
+            if parts:
+                out.append(f"- {rows_label(n)} rows. " + "; ".join(parts) + ".")
+        return out
+
+    # -- Markdown ----------------------------------------------------------------------------
+    def markdown(self) -> str:
+        run = self.run
+        md_lines = [
+            "# indb fit benchmark: results",
+            "",
+            f"Measured {dt.datetime.now().strftime('%Y-%m-%d %H:%M')} by "
+            "`benchmarks/bench_fit.py` (see `benchmarks/README.md` for the columns). "
+            "Regenerate with the command below; this file is overwritten by each run.",
+            "",
+            "## Command",
+            "",
+            "```bash",
+            run["command"],
+            "```",
+            "",
+            f"Whole run: {run['elapsed_seconds'] / 60:.1f} min. Reference fits capped at "
+            f"{run['mem_cap_bytes'] / 1024**3:.1f} GiB of address space (RLIMIT_AS) and "
+            f"{run['timeout']:.0f} s each.",
+            "",
+            "## Machine",
+            "",
+            *machine_lines(),
+            "",
+            "## Data and models",
+            "",
+            "Invented data (`benchmarks/bench_data.py`, seed "
+            f"{bench_data.SEED}): 10 numeric predictors x1..x10, categorical c6 (6 levels) and "
+            "c40 (40 levels), exposure in (0.05, 1], a Poisson claim count with offset "
+            "ln(exposure) and a 0/1 flag from a logistic model.",
+            "",
+            *[
+                f"- `{d['path']}`: {d['rows']:,} rows, {d['bytes'] / 1024**2:.0f} MiB"
+                + (f" (written in {d['seconds']:.0f} s)" if d["written_now"] else " (cached)")
+                for d in run["data"]
+            ],
+            "",
+            "| model | family | predictors | p | columns read |",
+            "|---|---|---|---|---|",
+            *[
+                f"| {m.key} | {m.family}{' + offset ' + m.offset if m.offset else ''} | "
+                f"{', '.join(m.predictors)} | {m.p} | {len(m.columns)} |"
+                for m in self.models
+            ],
+            "",
+            "## Side by side",
+            "",
+            *markdown_table(HEADERS, self.table_rows()),
+            "",
+            *[f"{line}" for line in self.sanity_lines()],
+            "",
+            "## Growth with rows",
+            "",
+            *markdown_table(
+                ("rows", "model", "what", "time small s", "time big s", "ratio", "ratio / rows"),
+                self.growth_rows(),
+            ),
+            "",
+            "## Where indb's time goes",
+            "",
+            "Pre-fit = the describe, NULL-count, summary and level scans plus the final "
+            "log-likelihood (and edge-probability) queries; IRLS and null-refit scans come from "
+            "the iteration log; Python = wall time minus time inside DuckDB (building and "
+            "rendering the SQL trees, solving, converting results). For one IRLS query (the last "
+            "fit-phase scan, run again alone): planning = `EXPLAIN` (parse, bind, optimize, "
+            "physical plan, no execution), best of 3; execution = the query, best of 3 "
+            "(includes its planning); the busiest optimizer pass and the operator shares come "
+            "from DuckDB's detailed profile of one run.",
+            "",
+            *markdown_table(
+                (
+                    "rows",
+                    "model",
+                    "total s",
+                    "pre-fit n / s",
+                    "IRLS n / s",
+                    "null refit n / s",
+                    "Python s",
+                    "s/scan",
+                    "in DuckDB s/scan",
+                    "planning s",
+                    "query s",
+                    "top optimizer pass s",
+                    "operator shares",
+                    "SQL chars",
+                ),
+                self.breakdown_rows(),
+            ),
+            "",
+            "## Targets (measured, not assumed)",
+            "",
+            *self.target_lines(),
+            "",
+            "## Reading",
+            "",
+            *self.reading_lines(),
+            "",
+        ]
+        return "\n".join(md_lines)
+
+
+def markdown_table(headers: Sequence[str], rows: Sequence[Sequence[str]]) -> list[str]:
+    def esc(s: str) -> str:
+        return s.replace("|", "\\|")
+
+    out = ["| " + " | ".join(headers) + " |", "|" + "---|" * len(headers)]
+    out += ["| " + " | ".join(esc(c) for c in r) + " |" for r in rows]
+    return out
+
+
+def machine_lines() -> list[str]:
+    cpu = "?"
+    with open("/proc/cpuinfo") as fh:
+        for line in fh:
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    mem = "?"
+    with open("/proc/meminfo") as fh:
+        for line in fh:
+            if line.startswith("MemTotal:"):
+                mem = f"{int(line.split()[1]) / 1024**2:.1f} GiB"
+                break
+    nproc = len(os.sched_getaffinity(0))
+    versions = []
+    for pkg in ("duckdb", "numpy", "scipy", "pyarrow", "sqlglot", "statsmodels", "scikit-learn"):
+        try:
+            versions.append(f"{pkg} {md.version(pkg)}")
+        except md.PackageNotFoundError:
+            versions.append(f"{pkg} (not installed)")
+    commit = "?"
+    try:
+        here = os.path.dirname(os.path.abspath(__file__))
+        commit = subprocess.run(
+            ["git", "-C", here, "rev-parse", "--short", "HEAD"],
+            capture_output=True,
+            text=True,
+            check=True,
+        ).stdout.strip()
+    except (OSError, subprocess.CalledProcessError):
+        pass
+    return [
+        f"- CPU: {cpu}; nproc: {nproc}; memory: {mem}",
+        f"- OS: {platform.platform()}; Python {platform.python_version()}",
+        f"- {', '.join(versions)}",
+        f"- indb at commit {commit} (plus uncommitted changes in the working tree, if any)",
+    ]

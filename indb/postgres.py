@@ -1,0 +1,321 @@
+"""PostgreSQL: dialect (translations of indb's custom nodes) and engine adapter (psycopg 3).
+
+Engine differences handled here rather than in the shared plan:
+
+* Float literals such as ``1.5e0`` are NUMERIC in PostgreSQL (arbitrary precision, slower,
+  and NUMERIC arithmetic differs from double arithmetic); every literal in scientific
+  notation, which is how :func:`indb.sqlexpr.num` writes doubles, is cast to DOUBLE PRECISION.
+* No ``lgamma`` before PostgreSQL 18: :func:`log_gamma_series` builds a portable expression
+  (Stirling's series after shifting small arguments), accurate to ~1e-15 for x > 0.
+* No ``isfinite`` for doubles: ``abs(x) < 'Infinity'`` is false for +/-Infinity and for NaN
+  (PostgreSQL sorts NaN above every number, so NaN < Infinity is false; NaN = NaN is true).
+* Quantiles: the ordered-set aggregate ``percentile_cont(q) WITHIN GROUP (ORDER BY x)``.
+* PostgreSQL raises on float overflow/underflow, ln(0) and division by zero where DuckDB
+  returns inf/NULL; the shared plan clamps exp arguments and guards ln and division with CASE.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import re
+import time
+from collections.abc import Iterator, Sequence
+from decimal import Decimal
+from typing import Any
+
+import numpy as np
+from sqlglot import exp
+
+from indb import sqlexpr as S
+from indb.dialect import Dialect
+from indb.engine import Engine
+from indb.errors import EngineError, UnsupportedError
+
+# -- log-gamma as a portable expression -------------------------------------------------------
+
+# Stirling's series (Abramowitz & Stegun 6.1.40):
+#   ln Gamma(z) = (z - 1/2) ln z - z + ln(2 pi)/2 + sum_k B_2k / (2k (2k-1) z^(2k-1)).
+# With z >= 6 the first omitted term (k = 11) is below 1e-15.
+_STIRLING = (
+    1.0 / 12.0,
+    -1.0 / 360.0,
+    1.0 / 1260.0,
+    -1.0 / 1680.0,
+    1.0 / 1188.0,
+    -691.0 / 360360.0,
+    1.0 / 156.0,
+    -3617.0 / 122400.0,
+    43867.0 / 244188.0,
+    -174611.0 / 125400.0,
+)
+_HALF_LN_2PI = 0.5 * math.log(2.0 * math.pi)
+LOG_GAMMA_SHIFT = 6.0
+
+
+def log_gamma_series(x: S.Expr) -> S.Expr:
+    """ln(Gamma(x)) for x > 0 from +, *, /, ln only (for engines without ``lgamma``).
+
+    Arguments below 6 are shifted by the recurrence ln Gamma(x) = ln Gamma(x + 6) -
+    ln(x (x+1) ... (x+5)); Stirling's series with ten terms is then used at z >= 6 (first
+    omitted term < 1e-15). Large arguments are not shifted, so the product never overflows.
+    Checked against ``scipy.special.gammaln`` in ``tests/engines``.
+    """
+    small = S.lt(x, S.num(LOG_GAMMA_SHIFT))
+    z = S.case([(small, S.add(x, S.num(LOG_GAMMA_SHIFT)))], x)
+    z2 = S.mul(z, z)
+    series: S.Expr = S.num(_STIRLING[-1])
+    for c in reversed(_STIRLING[:-1]):
+        series = S.add(S.num(c), S.div(series, z2))
+    core = S.add(
+        S.sub(S.mul(S.sub(z, S.num(0.5)), S.ln(z)), z),
+        S.num(_HALF_LN_2PI),
+        S.div(series, z),
+    )
+    prod = S.mul(x, *(S.add(x, S.num(float(k))) for k in range(1, int(LOG_GAMMA_SHIFT))))
+    return S.sub(core, S.case([(small, S.ln(prod))], S.num(0.0)))
+
+
+# -- the dialect ------------------------------------------------------------------------------
+
+_PG_NUMERIC = {
+    "int2",
+    "int4",
+    "int8",
+    "float4",
+    "float8",
+    "numeric",
+    "smallint",
+    "integer",
+    "bigint",
+    "real",
+    "double precision",
+    "decimal",
+}
+_PG_TEXT = {"text", "varchar", "bpchar", "char", "name", "citext", "character varying", "uuid"}
+_PG_BOOL = {"bool", "boolean"}
+# pg_type.typcategory: N numeric, S string, E enum, B boolean
+# (https://www.postgresql.org/docs/current/catalog-pg-type.html#CATALOG-TYPCATEGORY-TABLE)
+_PG_CATEGORY_KIND = {"N": "numeric", "S": "text", "E": "text", "B": "boolean"}
+
+
+def _is_float_literal(node: exp.Expression) -> bool:
+    return (
+        isinstance(node, exp.Literal)
+        and not node.is_string
+        and ("e" in node.this or "E" in node.this)
+    )
+
+
+def cast_float_literals(tree: exp.Expression, to: str) -> exp.Expression:
+    """Cast every numeric literal written in scientific notation to ``to`` (in place)."""
+    for node in list(tree.walk()):
+        if _is_float_literal(node) and not isinstance(node.parent, exp.Cast):
+            cast = exp.Cast(this=node.copy(), to=exp.DataType.build(to))
+            if node is tree:
+                return cast
+            node.replace(cast)
+    return tree
+
+
+class PostgresDialect(Dialect):
+    """PostgreSQL (tested with 15): double literals, log-gamma series, ordered-set quantiles.
+
+    Parameters
+    ----------
+    server_version:
+        ``server_version_num`` of the server (e.g. 150004); from 180000 on the native
+        ``lgamma`` is used.
+    """
+
+    name = "postgres"
+    sqlglot_name = "postgres"
+
+    def __init__(self, server_version: int = 150000) -> None:
+        self.server_version = server_version
+        #: pg_type.typcategory of type names seen by :meth:`PostgresEngine.describe`
+        self.type_categories: dict[str, str] = {}
+
+    def render(self, tree: exp.Expression) -> str:
+        return super().render(cast_float_literals(tree.copy(), "DOUBLE"))
+
+    def _translate(self, node: exp.Expression) -> exp.Expression:
+        return cast_float_literals(super()._translate(node), "DOUBLE")
+
+    def log_gamma(self, x: exp.Expression) -> exp.Expression:
+        if self.server_version >= 180000:
+            return exp.Anonymous(this="LGAMMA", expressions=[x])
+        return log_gamma_series(x)
+
+    def is_finite(self, x: exp.Expression) -> exp.Expression:
+        inf = exp.Cast(this=S.text("Infinity"), to=exp.DataType.build("DOUBLE"))
+        return S.lt(S.abs_(x), inf)
+
+    def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
+        return exp.WithinGroup(
+            this=exp.PercentileCont(this=S.num(q)),
+            expression=exp.Order(expressions=[exp.Ordered(this=x)]),
+        )
+
+    def file_scan(self, path: str) -> exp.Expression:
+        raise UnsupportedError(
+            f"PostgreSQL cannot read the file {path!r} from a query; load it into a table "
+            "(e.g. with COPY or psql's \\copy) and pass the table name"
+        )
+
+    def type_kind(self, type_name: str) -> str:
+        t = type_name.strip().lower()
+        t = re.sub(r"\(.*\)$", "", t).strip()
+        if t in _PG_BOOL:
+            return "boolean"
+        if t in _PG_NUMERIC:
+            return "numeric"
+        if t in _PG_TEXT:
+            return "text"
+        if t in self.type_categories:
+            return _PG_CATEGORY_KIND.get(self.type_categories[t], "other")
+        return super().type_kind(type_name)
+
+
+# -- the engine adapter -----------------------------------------------------------------------
+
+
+def rows_to_columns(names: Sequence[str], rows: Sequence[Sequence[Any]]) -> dict[str, np.ndarray]:
+    """Column arrays from driver rows, typed like DuckDB's Arrow results.
+
+    Integers become int64 (float64 with NaN when NULLs occur), floats and decimals float64
+    with NaN for NULL, booleans bool, anything else an object array.
+    """
+    out: dict[str, np.ndarray] = {}
+    for i, name in enumerate(names):
+        values = [r[i] for r in rows]
+        kinds = {type(v) for v in values if v is not None}
+        has_null = any(v is None for v in values)
+        if kinds and kinds <= {bool} and not has_null:
+            out[name] = np.array(values, dtype=bool)
+        elif kinds and kinds <= {int} and not has_null:
+            out[name] = np.array(values, dtype=np.int64)
+        elif kinds <= {int, float, Decimal} and not (kinds & {bool}):
+            out[name] = np.array(
+                [math.nan if v is None else float(v) for v in values], dtype=np.float64
+            )
+        else:
+            out[name] = np.array(values, dtype=object)
+    return out
+
+
+def redact(url: str) -> str:
+    """A connection URL without its password (for error messages)."""
+    return re.sub(r"(://[^:/@]*:)[^@]*@", r"\1***@", url)
+
+
+class PostgresEngine(Engine):
+    """PostgreSQL adapter through psycopg 3 (``pip install 'indb[postgres]'``).
+
+    Parameters
+    ----------
+    conninfo:
+        A ``postgresql://`` URL, a libpq key/value DSN, or an open ``psycopg.Connection``
+        (used as is, not closed; its autocommit setting is left alone).
+
+    Queries run in autocommit mode; :meth:`transaction` wraps write-back statements in one
+    real transaction (all or nothing).
+    """
+
+    def __init__(self, conninfo: Any) -> None:
+        try:
+            import psycopg
+        except ImportError as err:  # pragma: no cover - depends on the installation
+            raise UnsupportedError(
+                "PostgreSQL needs psycopg 3: pip install 'indb[postgres]'"
+            ) from err
+        self._psycopg = psycopg
+        if isinstance(conninfo, psycopg.Connection):
+            self.con = conninfo
+            self._owned = False
+        else:
+            try:
+                self.con = psycopg.connect(str(conninfo), autocommit=True)
+            except psycopg.Error as err:
+                first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+                raise EngineError(
+                    f"cannot connect to PostgreSQL at {redact(str(conninfo))!r}: {first}"
+                ) from err
+            self._owned = True
+        self.dialect = PostgresDialect(int(self.con.info.server_version))
+        self._types: dict[int, tuple[str, str]] = {}
+        # Exact doubles in text results (the default since PostgreSQL 12, set for older
+        # servers) and backslashes in string literals taken literally, as sqlglot writes them.
+        self.execute("SET extra_float_digits = 3")
+        self.execute("SET standard_conforming_strings = on")
+
+    def _run(self, sql: str) -> tuple[list[str], list[tuple[Any, ...]]]:
+        t0 = time.perf_counter()
+        try:
+            with self.con.cursor() as cur:
+                cur.execute(sql)
+                if cur.description is None:
+                    names, rows = [], []
+                else:
+                    names = [d.name for d in cur.description]
+                    rows = cur.fetchall()
+        except self._psycopg.Error as err:
+            raise _wrap(err, sql) from err
+        self.last_seconds = time.perf_counter() - t0
+        return names, rows
+
+    def execute(self, sql: str) -> list[tuple[Any, ...]]:
+        return self._run(sql)[1]
+
+    def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
+        names, rows = self._run(sql)
+        return rows_to_columns(names, rows)
+
+    def describe(self, sql: str) -> list[tuple[str, str]]:
+        """Column names and pg_type names of a query, from a ``LIMIT 0`` run."""
+        probe = f"SELECT * FROM ({sql}) AS indb_describe LIMIT 0"
+        try:
+            with self.con.cursor() as cur:
+                cur.execute(probe)
+                desc = [(d.name, int(d.type_code)) for d in cur.description or ()]
+        except self._psycopg.Error as err:
+            raise _wrap(err, sql) from err
+        self._learn_types([oid for _, oid in desc])
+        return [(name, self._types.get(oid, (f"oid {oid}", "X"))[0]) for name, oid in desc]
+
+    def _learn_types(self, oids: list[int]) -> None:
+        missing = sorted({o for o in oids if o not in self._types})
+        if not missing:
+            return
+        try:
+            with self.con.cursor() as cur:
+                cur.execute(
+                    "SELECT oid::int8, typname, typcategory FROM pg_catalog.pg_type "
+                    "WHERE oid = ANY(%s::oid[])",
+                    (missing,),
+                )
+                found = cur.fetchall()
+        except self._psycopg.Error as err:
+            raise _wrap(err, "SELECT ... FROM pg_catalog.pg_type") from err
+        for oid, name, category in found:
+            self._types[int(oid)] = (str(name), str(category))
+            self.dialect.type_categories[str(name).lower()] = str(category)
+
+    @contextlib.contextmanager
+    def transaction(self) -> Iterator[None]:
+        """Run the statements inside as one PostgreSQL transaction (rolled back on error)."""
+        try:
+            with self.con.transaction():
+                yield
+        except self._psycopg.Error as err:
+            raise _wrap(err, None) from err
+
+    def close(self) -> None:
+        if self._owned:
+            self.con.close()
+
+
+def _wrap(err: Exception, sql: str | None) -> EngineError:
+    text = str(err).strip()
+    msg = text.splitlines()[0] if text else type(err).__name__
+    return EngineError(f"PostgreSQL failed: {msg}", sql=sql)

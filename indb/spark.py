@@ -1,0 +1,214 @@
+"""Apache Spark SQL: dialect and engine adapter (pyspark; in-process or Spark Connect).
+
+Engine differences handled here rather than in the shared plan:
+
+* No ``lgamma`` SQL function: the portable :func:`indb.postgres.log_gamma_series` is used.
+* No ``isfinite``: ``NOT isnan(x) AND abs(x) <> Infinity`` (Spark treats NaN = NaN as true
+  and NaN as larger than every number, https://spark.apache.org/docs/latest/sql-ref-datatypes.html#nan-semantics).
+* Quantiles: the exact ``percentile(x, q)`` (linear interpolation, like DuckDB's
+  ``quantile_cont``), not the approximate ``percentile_approx``.
+* Files: ``parquet.`path``` (also orc, json); CSV needs options, so it goes through a view.
+* String literals: backslash is an escape character; sqlglot's Spark renderer escapes it.
+* ANSI mode (the default since Spark 4) raises on division by zero; the shared plan guards
+  every division whose divisor can be zero with CASE, and ln(0) (NULL in Spark) likewise.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import time
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from sqlglot import exp
+
+from indb import sqlexpr as S
+from indb.dialect import Dialect
+from indb.engine import Engine
+from indb.errors import EngineError, SpecError, UnsupportedError
+from indb.postgres import log_gamma_series, rows_to_columns
+
+_SPARK_NUMERIC = {"tinyint", "smallint", "int", "integer", "bigint", "float", "double", "decimal"}
+_SPARK_NUMERIC |= {"byte", "short", "long", "real"}
+_SPARK_TEXT = {"string", "varchar", "char"}
+_SPARK_BOOL = {"boolean"}
+_FILE_FORMATS = {".parquet": "parquet", ".pq": "parquet", ".orc": "orc", ".json": "json"}
+
+
+class SparkDialect(Dialect):
+    """Spark SQL (tested with Spark 4): log-gamma series, isnan-based finiteness, percentile."""
+
+    name = "spark"
+    sqlglot_name = "spark"
+
+    def log_gamma(self, x: exp.Expression) -> exp.Expression:
+        return log_gamma_series(x)
+
+    def is_finite(self, x: exp.Expression) -> exp.Expression:
+        inf = exp.Cast(this=S.text("Infinity"), to=exp.DataType.build("DOUBLE"))
+        not_nan = S.not_(exp.Anonymous(this="ISNAN", expressions=[x]))
+        return S.and_(not_nan, S.ne(S.abs_(x.copy()), inf))
+
+    def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
+        return exp.Anonymous(this="PERCENTILE", expressions=[x, S.num(q)])
+
+    def file_scan(self, path: str) -> exp.Expression:
+        low = path.lower().rstrip("/")
+        fmt = next((f for suffix, f in _FILE_FORMATS.items() if low.endswith(suffix)), None)
+        if fmt is None and (".parquet" in low or Path(path).is_dir()):
+            fmt = "parquet"  # a partitioned Parquet directory or glob
+        if fmt is None:
+            raise UnsupportedError(
+                f"Spark reads {path!r} only through a view with reader options: run "
+                "CREATE TEMPORARY VIEW v USING csv OPTIONS (path '...', header 'true', "
+                "inferSchema 'true') and pass the view name v"
+            )
+        # Spark's "run SQL on files directly": format.`path`
+        return exp.Table(this=S.ident(path), db=S.ident(fmt))
+
+    def type_kind(self, type_name: str) -> str:
+        t = type_name.strip().lower()
+        base = t.split("(", 1)[0].strip()
+        if base in _SPARK_BOOL:
+            return "boolean"
+        if base in _SPARK_NUMERIC:
+            return "numeric"
+        if base in _SPARK_TEXT:
+            return "text"
+        return super().type_kind(type_name)
+
+
+def find_java_home() -> str | None:
+    """JAVA_HOME derived from the ``java`` on PATH (``<home>/bin/java``), if any."""
+    java = shutil.which("java")
+    if java is None:
+        return None
+    return str(Path(os.path.realpath(java)).parent.parent)
+
+
+class SparkEngine(Engine):
+    """Spark SQL adapter (``pip install 'indb[spark]'``).
+
+    Parameters
+    ----------
+    session:
+        An existing ``SparkSession`` (classic or Spark Connect), used as is and not stopped.
+    master:
+        A master URL for an in-process driver: ``local[2]``, ``spark://host:7077``, ...
+    remote:
+        A Spark Connect URL ``sc://host:port``.
+    conf:
+        Extra Spark settings for a session this engine creates.
+
+    Spark has no transactions: :meth:`transaction` runs the statements inside one by one
+    and cannot undo the earlier ones when a later one fails.
+    """
+
+    def __init__(
+        self,
+        session: Any = None,
+        *,
+        master: str | None = None,
+        remote: str | None = None,
+        conf: dict[str, str] | None = None,
+    ) -> None:
+        if sum(x is not None for x in (session, master, remote)) != 1:
+            raise SpecError("SparkEngine needs exactly one of session=, master= or remote=")
+        try:
+            from pyspark.errors import PySparkException
+            from pyspark.sql import SparkSession
+        except ImportError as err:  # pragma: no cover - depends on the installation
+            raise UnsupportedError("Spark needs pyspark: pip install 'indb[spark]'") from err
+        errors: list[type[BaseException]] = [PySparkException]
+        with contextlib.suppress(ImportError):
+            from py4j.protocol import Py4JError
+
+            errors.append(Py4JError)
+        self._errors = tuple(errors)
+        self.dialect = SparkDialect()
+        if session is not None:
+            self.session = session
+            self._owned = False
+            return
+        settings = {"spark.sql.shuffle.partitions": "4", "spark.ui.enabled": "false"}
+        settings.update(conf or {})
+        try:
+            if remote is not None:
+                builder = SparkSession.builder.remote(remote)
+                settings = dict(conf or {})  # server-side settings belong to the server
+            else:
+                if "JAVA_HOME" not in os.environ and (home := find_java_home()):
+                    os.environ["JAVA_HOME"] = home
+                builder = SparkSession.builder.master(master).appName("indb")
+            for key, val in settings.items():
+                builder = builder.config(key, val)
+            existing = SparkSession.getActiveSession() if remote is None else None
+            self.session = builder.getOrCreate()
+        except self._errors as err:
+            where = remote if remote is not None else master
+            raise EngineError(f"cannot start a Spark session for {where!r}: {_first(err)}") from err
+        self._owned = existing is None
+
+    def _df(self, sql: str) -> Any:
+        try:
+            return self.session.sql(sql)
+        except self._errors as err:
+            raise _wrap(err, sql) from err
+
+    def execute(self, sql: str) -> list[tuple[Any, ...]]:
+        t0 = time.perf_counter()
+        df = self._df(sql)
+        try:
+            rows = [tuple(r) for r in df.collect()]
+        except self._errors as err:
+            raise _wrap(err, sql) from err
+        self.last_seconds = time.perf_counter() - t0
+        return rows
+
+    def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
+        t0 = time.perf_counter()
+        df = self._df(sql)
+        try:
+            if hasattr(df, "toArrow"):  # pyspark >= 4
+                table = df.toArrow()
+                out = {
+                    name: col.to_numpy(zero_copy_only=False)
+                    for name, col in zip(table.column_names, table.columns, strict=True)
+                }
+            else:
+                out = rows_to_columns(df.columns, [tuple(r) for r in df.collect()])
+        except self._errors as err:
+            raise _wrap(err, sql) from err
+        self.last_seconds = time.perf_counter() - t0
+        return out
+
+    def describe(self, sql: str) -> list[tuple[str, str]]:
+        """Column names and Spark type names from the analysed plan (nothing is run)."""
+        df = self._df(sql)
+        try:
+            fields = df.schema.fields
+        except self._errors as err:
+            raise _wrap(err, sql) from err
+        return [(f.name, f.dataType.simpleString()) for f in fields]
+
+    @contextlib.contextmanager
+    def transaction(self) -> Iterator[None]:
+        """No transaction: Spark SQL runs each statement on its own (no rollback)."""
+        yield
+
+    def close(self) -> None:
+        if self._owned:
+            self.session.stop()
+
+
+def _first(err: BaseException) -> str:
+    text = str(err).strip()
+    return text.splitlines()[0] if text else type(err).__name__
+
+
+def _wrap(err: BaseException, sql: str) -> EngineError:
+    return EngineError(f"Spark failed: {_first(err)}", sql=sql)
