@@ -37,6 +37,12 @@ def vm_kib(field: str) -> int:
     return -1
 
 
+def cpu_seconds() -> float:
+    """User + system CPU time of this process so far (all its threads)."""
+    ru = resource.getrusage(resource.RUSAGE_SELF)
+    return ru.ru_utime + ru.ru_stime
+
+
 def model_by_key(key: str) -> bench_data.Model:
     return next(m for m in bench_data.MODELS if m.key == key)
 
@@ -65,6 +71,7 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
     model = model_by_key(job["model"])
     rss_before = vm_kib("VmRSS")
     engine = RecordingEngine()
+    cpu0 = cpu_seconds()
     t0 = time.perf_counter()
     res = indb.fit(
         job["path"],
@@ -75,6 +82,7 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
         predictors=list(model.predictors),
     )
     wall = time.perf_counter() - t0
+    cpu = cpu_seconds() - cpu0
     peak = vm_kib("VmHWM")  # read before the planning probes below
 
     fit_recs = [r for r in res.iteration_log if r.phase == "fit"]
@@ -86,7 +94,9 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
     out: dict[str, Any] = {
         "status": "ok",
         "seconds": wall,
+        "cpu_seconds": cpu,
         "fit_seconds": res.seconds,
+        "indb_file": indb.__file__,
         "iterations": res.iterations,
         "converged": res.converged,
         "path": res.path,
@@ -216,6 +226,7 @@ def run_reference(job: dict[str, Any]) -> dict[str, Any]:
     else:
         from sklearn.linear_model import LogisticRegression, PoissonRegressor
     start_kib = vm_kib("VmRSS")
+    cpu0 = cpu_seconds()
     t0 = time.perf_counter()
     try:
         x, y, exposure, names = load_design(job["path"], model)
@@ -246,17 +257,20 @@ def run_reference(job: dict[str, Any]) -> dict[str, Any]:
             params = np.concatenate([[float(np.ravel(est.intercept_)[0])], np.ravel(est.coef_)])
             iters = int(np.max(est.n_iter_))
         seconds = time.perf_counter() - t0
+        cpu = cpu_seconds() - cpu0
     except MemoryError as err:
         return {
             "status": "out of memory",
             "detail": f"{type(err).__name__}: {str(err)[:160]}",
             "seconds": time.perf_counter() - t0,
+            "cpu_seconds": cpu_seconds() - cpu0,
             "peak_kib": vm_kib("VmHWM"),
             "start_kib": start_kib,
         }
     return {
         "status": "ok",
         "seconds": seconds,
+        "cpu_seconds": cpu,
         "load_seconds": t_load,
         "iterations": iters,
         "path": solver,

@@ -24,9 +24,12 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
+import hashlib
 import json
 import os
+import resource
 import shlex
+import shutil
 import subprocess
 import sys
 import tempfile
@@ -93,14 +96,25 @@ def floor_sql(path: str, model: bench_data.Model) -> str:
     return f"SELECT {', '.join(items)} FROM read_parquet({quote_text(path)})"
 
 
-def measure_floor(con: duckdb.DuckDBPyConnection, path: str, model: bench_data.Model) -> float:
+def measure_floor(
+    con: duckdb.DuckDBPyConnection, path: str, model: bench_data.Model
+) -> tuple[float, float]:
+    """Best of 3 wall seconds of the floor scan, and the CPU seconds of that run."""
     sql = floor_sql(path, model)
-    best = float("inf")
+    best, best_cpu = float("inf"), float("nan")
     for _ in range(3):
+        c0 = cpu_seconds()
         t0 = time.perf_counter()
         con.execute(sql).fetchall()
-        best = min(best, time.perf_counter() - t0)
-    return best
+        t = time.perf_counter() - t0
+        if t < best:
+            best, best_cpu = t, cpu_seconds() - c0
+    return best, best_cpu
+
+
+def cpu_seconds() -> float:
+    ru = resource.getrusage(resource.RUSAGE_SELF)
+    return ru.ru_utime + ru.ru_stime
 
 
 def distinct_design_rows(con: duckdb.DuckDBPyConnection, path: str, cols: tuple[str, ...]) -> int:
@@ -112,14 +126,33 @@ def distinct_design_rows(con: duckdb.DuckDBPyConnection, path: str, cols: tuple[
 # -- children ----------------------------------------------------------------------------------
 
 
-def run_child(job: dict[str, Any], timeout: float) -> dict[str, Any]:
+def snapshot_indb(data_dir: str) -> tuple[str, str]:
+    """Copy the indb package to ``data_dir/indb_snapshot`` so every fit of a run uses the
+    same code even while the working tree is being edited; returns the folder to put on
+    PYTHONPATH and a short hash of the copied sources."""
+    src = os.path.join(os.path.dirname(HERE), "indb")
+    root = os.path.join(data_dir, "indb_snapshot")
+    if os.path.exists(root):
+        shutil.rmtree(root)
+    shutil.copytree(src, os.path.join(root, "indb"), ignore=shutil.ignore_patterns("__pycache__"))
+    digest = hashlib.sha256()
+    for name in sorted(os.listdir(os.path.join(root, "indb"))):
+        with open(os.path.join(root, "indb", name), "rb") as fh:
+            digest.update(name.encode() + b"\0" + fh.read())
+    return root, digest.hexdigest()[:12]
+
+
+def run_child(job: dict[str, Any], timeout: float, pythonpath: str) -> dict[str, Any]:
     """Run one measured fit in a fresh process; peak RSS comes from the kernel (wait4)."""
+    env = dict(os.environ, PYTHONPATH=pythonpath)
+    load = os.getloadavg()[0]
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err:
         proc = subprocess.Popen(
             [sys.executable, CHILD, json.dumps(job)],
             stdout=out,
             stderr=err,
             cwd=HERE,
+            env=env,
         )
         t0 = time.monotonic()
         timed_out = False
@@ -144,6 +177,8 @@ def run_child(job: dict[str, Any], timeout: float) -> dict[str, Any]:
         if line.startswith("BENCH_JSON "):
             result = json.loads(line[len("BENCH_JSON ") :])
     result["kernel_peak_kib"] = usage.ru_maxrss  # KiB on Linux
+    result["process_cpu_seconds"] = usage.ru_utime + usage.ru_stime
+    result["load1"] = load
     result["process_seconds"] = wall
     if timed_out:
         result["status"] = f"timeout (>{timeout:.0f} s)"
@@ -188,15 +223,25 @@ def bench_size(
     con.execute("SET enable_progress_bar = false")
     for model in models:
         con.execute(floor_sql(path, model)).fetchall()  # warm the file cache first
-        floor = measure_floor(con, path, model)
+        load = os.getloadavg()[0]
+        floor, floor_cpu = measure_floor(con, path, model)
         distinct = distinct_design_rows(con, path, model.factors) if model.compresses else None
         base = {"rows": rows, "model": model.key}
-        results.append({**base, "tool": "floor", "status": "ok", "seconds": floor})
+        results.append(
+            {
+                **base,
+                "tool": "floor",
+                "status": "ok",
+                "seconds": floor,
+                "cpu_seconds": floor_cpu,
+                "load1": load,
+            }
+        )
         if distinct is not None:
             results[-1]["distinct_design_rows"] = distinct
         log(f"  {model.key}: floor {floor:.3f} s")
         job = {"tool": "indb", "model": model.key, "path": path}
-        r = run_child(job, args.indb_timeout)
+        r = run_child(job, args.indb_timeout, args.pythonpath)
         results.append({**base, "tool": "indb", **r})
         log(f"  {model.key}: indb {r.get('status')} {_secs(r)}")
         for tool in args.refs:
@@ -213,7 +258,7 @@ def bench_size(
                 log(f"  {model.key}: {tool} skipped (design {need / GIB:.0f} GiB)")
                 continue
             job = {"tool": tool, "model": model.key, "path": path, "mem_cap_bytes": cap}
-            r = run_child(job, args.timeout)
+            r = run_child(job, args.timeout, args.pythonpath)
             results.append({**base, "tool": tool, **r})
             log(f"  {model.key}: {tool} {r.get('status')} {_secs(r)}")
     con.close()
@@ -262,7 +307,10 @@ def main(argv: list[str] | None = None) -> int:
     cap_gib = args.mem_cap_gib or min(20.0, 0.85 * mem_total_bytes() / GIB)
     cap = int(cap_gib * GIB)
 
+    os.makedirs(args.data_dir, exist_ok=True)
+    args.pythonpath, code_hash = snapshot_indb(args.data_dir)
     started = time.perf_counter()
+    load_start = os.getloadavg()
     results: list[dict[str, Any]] = []
     data_info: list[dict[str, Any]] = []
     for rows in sizes:
@@ -282,6 +330,9 @@ def main(argv: list[str] | None = None) -> int:
         "data": data_info,
         "models": [m.key for m in models],
         "sizes": sizes,
+        "indb_source_hash": code_hash,
+        "load_start": load_start,
+        "load_end": os.getloadavg(),
     }
     report = bench_report.Report(results, run, models)
     print(report.text_table())

@@ -31,6 +31,7 @@ HEADERS = (
     "tool",
     "status",
     "time s",
+    "CPU s",
     "iters",
     "s/scan",
     "queries",
@@ -41,6 +42,7 @@ HEADERS = (
     "time/indb",
     "coef rel.diff",
     "path / solver",
+    "load",
 )
 
 
@@ -137,6 +139,7 @@ class Report:
                         TOOL_LABEL[tool],
                         r.get("status", "?"),
                         fmt(t),
+                        fmt(r.get("cpu_seconds")),
                         fmt(r.get("iterations")) if ok else "",
                         fmt(scan),
                         fmt(r.get("queries")) if tool == "indb" else "",
@@ -149,6 +152,7 @@ class Report:
                         if tool in ("statsmodels", "sklearn")
                         else "",
                         str(r.get("path", "")) if ok else "",
+                        fmt(r.get("load1"), 2),
                     ]
                     out.append(row)
         return out
@@ -397,11 +401,17 @@ class Report:
             "",
             f"Whole run: {run['elapsed_seconds'] / 60:.1f} min. Reference fits capped at "
             f"{run['mem_cap_bytes'] / 1024**3:.1f} GiB of address space (RLIMIT_AS) and "
-            f"{run['timeout']:.0f} s each.",
+            f"{run['timeout']:.0f} s each. Load average (1 min) at start "
+            f"{run['load_start'][0]:.2f}, at end {run['load_end'][0]:.2f}; the `load` column "
+            "is the 1-minute load average just before each measurement. On a shared machine a "
+            "load above the core count means other work competed for the CPUs, which inflates "
+            "wall times (CPU seconds are less affected).",
             "",
             "## Machine",
             "",
             *machine_lines(),
+            f"- indb sources measured (snapshot taken at the start of the run): sha256 "
+            f"{run['indb_source_hash']} of `indb/*`",
             "",
             "## Data and models",
             "",
@@ -509,20 +519,25 @@ def machine_lines() -> list[str]:
             versions.append(f"{pkg} {md.version(pkg)}")
         except md.PackageNotFoundError:
             versions.append(f"{pkg} (not installed)")
-    commit = "?"
+    here = os.path.dirname(os.path.abspath(__file__))
+    commit, dirty = "?", ""
     try:
-        here = os.path.dirname(os.path.abspath(__file__))
         commit = subprocess.run(
             ["git", "-C", here, "rev-parse", "--short", "HEAD"],
             capture_output=True,
             text=True,
             check=True,
         ).stdout.strip()
+        changed = subprocess.run(
+            ["git", "-C", here, "diff", "--quiet", "HEAD", "--", "../indb"],
+            capture_output=True,
+        ).returncode
+        dirty = " with uncommitted changes under indb/" if changed else " (indb/ unchanged)"
     except (OSError, subprocess.CalledProcessError):
         pass
     return [
         f"- CPU: {cpu}; nproc: {nproc}; memory: {mem}",
         f"- OS: {platform.platform()}; Python {platform.python_version()}",
         f"- {', '.join(versions)}",
-        f"- indb at commit {commit} (plus uncommitted changes in the working tree, if any)",
+        f"- repository at commit {commit}{dirty}",
     ]

@@ -123,8 +123,8 @@ def _empty_inputs(spec: ModelSpec) -> Inputs:
     )
 
 
-def _count_nulls(ctx: P.PlanContext, run: _Run) -> tuple[int, int, dict[str, int]]:
-    row = run.one_row(P.null_count_query(ctx))
+def _check_nulls(ctx: P.PlanContext, row: dict) -> tuple[int, int, dict[str, int]]:
+    """Row counts and NULL exclusions from the profile row; errors for unusable inputs."""
     n_total = int(row["n_total"] or 0)
     n_kept = int(row["n_kept"] or 0)
     by_col: dict[str, int] = {}
@@ -189,13 +189,11 @@ class _Summary:
     level_counts: tuple[int, ...]
     column_sums: dict[str, float]
     sum_fpwy: float
+    off_mean: float = 0.0
 
 
-def _summarize(
-    ctx: P.PlanContext, run: _Run, values: tuple[Value, ...], knots: dict[str, tuple[float, ...]]
-) -> _Summary:
-    row = run.one_row(P.summary_query(ctx, values, knots))
-    n = int(row["n"])
+def _summarize(ctx: P.PlanContext, row: dict, values: tuple[Value, ...]) -> _Summary:
+    n = int(row["n_kept"])
     for i, (stem, _) in enumerate(P.domain_checks(ctx)):
         bad = int(row[f"chk_{i}"] or 0)
         if bad:
@@ -239,16 +237,9 @@ def _summarize(
             if not rms > 0:
                 raise SpecError(f"predictor {v.label!r} is 0 in every row used; leave it out")
             out_values.append(dataclasses.replace(v, scale=rms))
-    counts = tuple(int(row[f"levels_{i}"]) for i in range(len(ctx.inputs.factors)))
-    for c, k in zip(ctx.inputs.factors, counts, strict=True):
-        if k > ctx.spec.max_levels:
-            raise SpecError(
-                f"categorical column {c!r} has {k} levels, over the limit of "
-                f"{ctx.spec.max_levels}; group rare levels in the query, treat it as numeric, "
-                f"or raise max_levels (CLI --max-levels)"
-            )
     column_sums = {v.label: float(row[f"{v.alias}_mean"]) * n for v in values[1:]}
     return _Summary(
+        off_mean=float(row["off_mean"] or 0.0),
         column_sums=column_sums,
         sum_fpwy=float(row["sum_fpwy"]),
         n=n,
@@ -258,23 +249,39 @@ def _summarize(
         n_df=float(row["sum_f_pos"]),
         n_zero_weight=int(row["n_zero_weight"]),
         values=tuple(out_values),
-        level_counts=counts,
+        level_counts=(),
     )
 
 
-def _factors(ctx: P.PlanContext, run: _Run) -> tuple[Factor, ...]:
-    if not ctx.inputs.factors:
-        return ()
-    cols = run.query(P.levels_query(ctx))
+def _factors(
+    ctx: P.PlanContext, run: _Run
+) -> tuple[tuple[Factor, ...], dict[tuple[str, ...], set[tuple[str, ...]]]]:
+    """Levels of every factor and observed combinations of interacting factors (one scan)."""
+    names = list(ctx.inputs.factors)
+    if not names:
+        return (), {}
+    sets = factor_sets(ctx.inputs.terms, names)
+    cap = ctx.spec.max_levels
+    cols = run.query(P.levels_query(ctx, sets, cap))
+    nf = len(names)
+
+    def rows_of(st: tuple[str, ...]) -> list[int]:
+        g = sum(1 << (nf - 1 - j) for j, c in enumerate(names) if c not in st)
+        return [r for r in range(len(cols["g"])) if int(cols["g"][r]) == g]
+
     ref = dict(ctx.spec.reference)
     out: list[Factor] = []
-    for i, c in enumerate(ctx.inputs.factors):
-        sel = cols["factor"] == i
-        levels = [str(x) for x in cols["level"][sel]]
-        counts = [int(x) for x in cols["n"][sel]]
-        order = sorted(range(len(levels)), key=lambda k: levels[k])
-        levels = [levels[k] for k in order]
-        counts = [counts[k] for k in order]
+    for i, c in enumerate(names):
+        rows = rows_of((c,))
+        if len(rows) > cap:
+            raise SpecError(
+                f"categorical column {c!r} has more than {cap} levels (the limit); group rare "
+                "levels in the query, treat it as numeric, or raise max_levels "
+                "(CLI --max-levels)"
+            )
+        pairs = sorted((str(cols[f"f{i}"][r]), int(cols["n"][r])) for r in rows)
+        levels = [lv for lv, _ in pairs]
+        counts = [k for _, k in pairs]
         if c in ref:
             if ref[c] not in levels:
                 raise SpecError(
@@ -300,19 +307,17 @@ def _factors(ctx: P.PlanContext, run: _Run) -> tuple[Factor, ...]:
                 counts=tuple(counts),
             )
         )
-    return tuple(out)
-
-
-def _combos(
-    ctx: P.PlanContext, run: _Run, factors: tuple[Factor, ...]
-) -> dict[tuple[str, ...], set[tuple[str, ...]]]:
-    out: dict[tuple[str, ...], set[tuple[str, ...]]] = {}
-    for fs in factor_sets(ctx.inputs.terms, [f.column for f in factors]):
-        cols = run.query(P.combos_query(ctx, fs))
-        out[fs] = {
-            tuple(str(cols[f"l{i}"][r]) for i in range(len(fs))) for r in range(len(cols["n"]))
-        }
-    return out
+    combos: dict[tuple[str, ...], set[tuple[str, ...]]] = {}
+    for st in sets:
+        rows = rows_of(st)
+        if len(rows) > cap:
+            raise SpecError(
+                f"the interaction of {list(st)} has more than {cap} observed level "
+                "combinations (the limit); raise max_levels (CLI --max-levels)"
+            )
+        idx = [names.index(c) for c in st]
+        combos[st] = {tuple(str(cols[f"f{i}"][r]) for i in idx) for r in rows}
+    return tuple(out), combos
 
 
 # -- IRLS ------------------------------------------------------------------------------------
@@ -330,6 +335,37 @@ def _fallback_beta(ctx: P.PlanContext, design: Design, ybar: float) -> np.ndarra
     return beta
 
 
+class _NullTrack:
+    """IRLS of the intercept-only model with the offset, carried along in the main scans.
+
+    One parameter: each scan returns sum(w) and sum(w z) at the current intercept ``b0``, so
+    the next intercept is their ratio. Halves its step when its deviance rises.
+    """
+
+    def __init__(self, b0: float, tol: float) -> None:
+        self.b0 = b0
+        self.prev = b0
+        self.tol = tol
+        self.dev_old = math.inf
+        self.deviance = math.nan
+        self.done = False
+
+    def update(self, extras: dict[str, float]) -> None:
+        dev = extras["nulldev"]
+        if math.isfinite(self.dev_old) and not (dev <= self.dev_old * (1 + 1e-9) + 1e-12):
+            self.b0 = 0.5 * (self.b0 + self.prev)  # rose (or NaN): halve and rescan
+            return
+        w, wz = extras["nullw"], extras["nullwz"]
+        new = wz / w if w > 0 else self.b0
+        change = solver.relative_change(dev, self.dev_old) if math.isfinite(self.dev_old) else 1.0
+        self.deviance = dev
+        step = abs(new - self.b0) * math.sqrt(max(w, 0.0))
+        if change < self.tol and step < max(math.sqrt(self.tol), 1e-7):
+            self.done = True
+            return
+        self.dev_old, self.prev, self.b0 = dev, self.b0, new
+
+
 def _irls(
     ctx: P.PlanContext,
     design: Design,
@@ -338,24 +374,38 @@ def _irls(
     *,
     start: np.ndarray | None = None,
     null_mu: Expr | None = None,
+    null_track: _NullTrack | None = None,
 ) -> tuple[_IrlsState, float | None]:
-    """Iterate scans until the relative deviance change drops below ``spec.tol``.
+    """Iterate scans until the deviance settles and the next step is negligible.
 
-    Returns the state at the last scanned coefficients and, when ``null_mu`` is given, the
-    null deviance computed in the first scan.
+    Returns the state at the last scanned coefficients and the null deviance: from the
+    first scan when ``null_mu`` (a per-row null mean) is given, or from ``null_track`` (the
+    intercept-only model with the offset, iterated in the same scans) when it converged.
     """
     spec = ctx.spec
-    extra = ("nulldev",) if null_mu is not None else ()
-
     cells: list[tuple[str, ...]] | None = None
+    null_dev: float | None = None
 
-    def scan(beta: np.ndarray | None, with_null: bool) -> solver.Sums:
-        nonlocal cells
+    def scan(beta: np.ndarray | None) -> solver.Sums:
+        nonlocal cells, null_dev
+        with_mu = null_mu is not None and null_dev is None
+        track = null_track is not None and not null_track.done
         tree = P.gram_query(
-            ctx, design, beta, ybar=ybar, null_mu=null_mu if with_null else None, cells=cells
+            ctx,
+            design,
+            beta,
+            ybar=ybar,
+            null_mu=null_mu if with_mu else None,
+            cells=cells,
+            null_intercept=null_track.b0 if track else None,
         )
-        out = solver.assemble(design, run.query(tree), extra if with_null else ())
+        extra = ("nullw", "nullwz", "nulldev") if track else ("nulldev",) if with_mu else ()
+        out = solver.assemble(design, run.query(tree), extra)
         cells = out.cell_keys
+        if with_mu:
+            null_dev = out.extras["nulldev"]
+        if track:
+            null_track.update(out.extras)
         return out
 
     # Converged when the deviance settles AND the next Newton step is statistically
@@ -364,11 +414,8 @@ def _irls(
     step_tol = max(math.sqrt(spec.tol), 1e-7)
 
     t0 = time.perf_counter()
-    null_dev: float | None = None
     if start is None:
-        sums = scan(None, True)
-        if null_mu is not None:
-            null_dev = sums.extras["nulldev"]
+        sums = scan(None)
         if sums.bad:
             raise SpecError(
                 f"cannot find valid starting values for family {spec.family.name!r} with link "
@@ -389,16 +436,12 @@ def _irls(
         budget = spec.max_iter
     converged = False
     iterations = 0
-    need_null = start is not None and null_mu is not None
     for _ in range(max(budget, 0)):
         iterations += 1
         halvings = 0
         t0 = time.perf_counter()
         while True:
-            sums = scan(beta, need_null)
-            if need_null:
-                null_dev = sums.extras["nulldev"]
-                need_null = False
+            sums = scan(beta)
             rises = (
                 sums.deviance > dev_old * (1 + 1e-9) + 1e-12 if math.isfinite(dev_old) else False
             )
@@ -428,6 +471,8 @@ def _irls(
         beta_prev = beta
         beta = sol.beta
     assert sol is not None
+    if null_track is not None and null_track.done:
+        null_dev = null_track.deviance
     return _IrlsState(
         beta=beta, sums=sums, solution=sol, converged=converged, iterations=iterations
     ), null_dev
@@ -448,6 +493,15 @@ def _null_deviance(
         return None, True
     mu = min(max(ybar, 1e-300), 1 - 2.2e-16) if ctx.spec.family.unit_mean else ybar
     return S.num(mu), False
+
+
+def _null_start(ctx: P.PlanContext, summary: _Summary) -> float:
+    """Starting intercept of the null model with an offset: g(mean y) - mean offset."""
+    fam, link = ctx.spec.family, ctx.spec.link
+    mu = min(max(summary.ybar, 1e-6), 1 - 1e-6) if fam.unit_mean else summary.ybar
+    with np.errstate(all="ignore"):
+        g = float(link.link(np.array([mu]))[0])
+    return (g if math.isfinite(g) else 0.0) - summary.off_mean
 
 
 def _intercept_only(design: Design) -> Design:
@@ -508,11 +562,12 @@ def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
     """Pre-fit scans (read only): columns, NULL counts, knots, summary, levels, combinations."""
     inputs = _describe(spec, engine)
     ctx = P.PlanContext(spec, inputs, engine.dialect)
-    n_total, n_kept, by_col = _count_nulls(ctx, run)
     knots = _knots(ctx, run)
-    summary = _summarize(ctx, run, plan_values(inputs, spec.intercept), knots)
-    factors = _factors(ctx, run)
-    combos = _combos(ctx, run, factors)
+    values = plan_values(inputs, spec.intercept)
+    row = run.one_row(P.profile_query(ctx, values, knots))
+    n_total, n_kept, by_col = _check_nulls(ctx, row)
+    summary = _summarize(ctx, row, values)
+    factors, combos = _factors(ctx, run)
     design = build_design(
         inputs, spec.intercept, summary.values, factors, combos, tuple(knots.items())
     )
@@ -574,10 +629,16 @@ def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitR
         start = _start_from(spec, design, summary)
     null_mu, refit_null = _null_deviance(ctx, design, run, summary.ybar)
     run.phase = "fit"
-    state, null_dev = _irls(ctx, design, run, summary.ybar, start=start, null_mu=null_mu)
-    if refit_null:
+    track = _NullTrack(_null_start(ctx, summary), spec.tol) if refit_null else None
+    state, null_dev = _irls(
+        ctx, design, run, summary.ybar, start=start, null_mu=null_mu, null_track=track
+    )
+    if track is not None and null_dev is None:
+        # the fitted model settled first: finish the intercept-only model on its own
         run.phase = "null"
-        null_state, _ = _irls(ctx, _intercept_only(design), run, summary.ybar)
+        null_state, _ = _irls(
+            ctx, _intercept_only(design), run, summary.ybar, start=np.array([track.b0])
+        )
         null_dev = null_state.sums.deviance
     if not state.converged:
         msg = (

@@ -174,14 +174,6 @@ def describe_query(ctx: PlanContext) -> exp.Select:
     return S.select([exp.Star()], ctx.source())
 
 
-def null_count_query(ctx: PlanContext) -> exp.Select:
-    """Total rows, kept rows and per-input NULL counts over the whole source."""
-    cols = [S.alias(S.count_star(), "n_total"), S.alias(S.sum_(S.flag(ctx.kept())), "n_kept")]
-    for i, (_, e) in enumerate(ctx.null_items()):
-        cols.append(S.alias(S.sum_(S.flag(S.is_null(e))), f"null_{i}"))
-    return S.select(cols, ctx.source())
-
-
 def knots_query(ctx: PlanContext) -> exp.Select:
     """Quantiles of each spline column over kept rows (knot positions)."""
     cols = []
@@ -263,74 +255,102 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
     return checks
 
 
-def summary_query(
+KEPT = "indb_kept"
+
+
+def profile_query(
     ctx: PlanContext, values: Sequence[Value], knots: dict[str, tuple[float, ...]]
 ) -> exp.Select:
-    """One scan over kept rows: domain checks, weighted response mean, value moments."""
+    """The pre-fit profile in one scan of the source.
+
+    Over all rows: total rows, rows kept and NULL counts per model input. Over kept rows
+    (every aggregate argument is NULL elsewhere, and aggregates skip NULLs): domain-check
+    violation counts, the weighted response mean and the moments used to standardize values.
+    No COUNT(DISTINCT ...): DuckDB plans each one as its own pass over the source.
+    """
+    kept = S.col(KEPT)
+
+    def k(e: Expr) -> Expr:
+        return S.case([(kept, e)])
+
+    def kflag(cond: Expr) -> Expr:
+        return S.sum_(S.case([(S.and_(kept, cond), exp.Literal.number(1))], exp.Literal.number(0)))
+
     y = ctx.response()
     pw = ctx.prior_weight()
     fw = ctx.raw_freq() or S.num(1.0)
     cols: list[Expr] = [
-        S.alias(S.count_star(), "n"),
-        S.alias(S.psum(fw), "sum_f"),
-        S.alias(S.psum(S.mul(fw, pw)), "sum_fpw"),
-        S.alias(S.psum(S.mul(fw, pw, y)), "sum_fpwy"),
-        S.alias(S.psum(S.case([(S.gt(pw, S.num(0.0)), fw)], S.num(0.0))), "sum_f_pos"),
-        S.alias(S.sum_(S.flag(S.le(pw, S.num(0.0)))), "n_zero_weight"),
-        S.alias(S.min_(y), "y_min"),
-        S.alias(S.max_(y), "y_max"),
-        S.alias(S.min_(pw), "pw_min"),
-        S.alias(S.max_(pw), "pw_max"),
+        S.alias(S.count_star(), "n_total"),
+        S.alias(S.sum_(S.flag(kept)), "n_kept"),
+    ]
+    for i, (_, e) in enumerate(ctx.null_items()):
+        cols.append(S.alias(S.sum_(S.flag(S.is_null(e))), f"null_{i}"))
+    cols += [
+        S.alias(S.psum(k(fw)), "sum_f"),
+        S.alias(S.psum(k(S.mul(fw, pw))), "sum_fpw"),
+        S.alias(S.psum(k(S.mul(fw, pw, y))), "sum_fpwy"),
+        S.alias(S.psum(k(S.case([(S.gt(pw, S.num(0.0)), fw)], S.num(0.0)))), "sum_f_pos"),
+        S.alias(kflag(S.le(pw, S.num(0.0))), "n_zero_weight"),
+        S.alias(S.min_(k(y)), "y_min"),
+        S.alias(S.max_(k(y)), "y_max"),
+        S.alias(S.min_(k(pw)), "pw_min"),
+        S.alias(S.max_(k(pw)), "pw_max"),
+        S.alias(S.avg(k(ctx.raw_offset() or S.num(0.0))), "off_mean"),
     ]
     for i, (_, cond) in enumerate(domain_checks(ctx)):
-        cols.append(S.alias(S.sum_(S.flag(cond)), f"chk_{i}"))
+        cols.append(S.alias(kflag(cond), f"chk_{i}"))
     for v in values[1:]:
         raw = ctx.value_sql(v, knots, standardized=False)
         cols += [
-            S.alias(S.avg(raw), f"{v.alias}_mean"),
-            S.alias(S.stddev_pop(raw), f"{v.alias}_sd"),
-            S.alias(S.avg(S.mul(raw, raw)), f"{v.alias}_ms"),
-            S.alias(S.min_(raw), f"{v.alias}_min"),
-            S.alias(S.max_(raw), f"{v.alias}_max"),
+            S.alias(S.avg(k(raw)), f"{v.alias}_mean"),
+            S.alias(S.stddev_pop(k(raw)), f"{v.alias}_sd"),
+            S.alias(S.avg(k(S.mul(raw, raw.copy()))), f"{v.alias}_ms"),
+            S.alias(S.min_(k(raw)), f"{v.alias}_min"),
+            S.alias(S.max_(k(raw)), f"{v.alias}_max"),
         ]
-    for i, c in enumerate(ctx.inputs.factors):
-        cols.append(
-            S.alias(exp.Count(this=exp.Distinct(expressions=[S.as_text(S.col(c))])), f"levels_{i}")
-        )
-    return S.select(cols, ctx.source(), where=ctx.kept())
+    inner = S.select([exp.Star(), S.alias(ctx.kept(), KEPT)], ctx.source())
+    return S.select(cols, S.subquery(inner, "p"))
 
 
-def levels_query(ctx: PlanContext) -> exp.Expression:
-    """Level counts of every factor (UNION ALL of one GROUP BY per factor)."""
-    parts: list[exp.Select] = []
-    for i, c in enumerate(ctx.inputs.factors):
-        lv = S.as_text(S.col(c))
-        parts.append(
-            S.select(
-                [
-                    S.alias(exp.Literal.number(i), "factor"),
-                    S.alias(lv, "level"),
-                    S.alias(S.count_star(), "n"),
-                ],
-                ctx.source(),
-                where=ctx.kept(),
-                group_by=[lv],
-            )
-        )
-    out: exp.Expression = parts[0]
-    for p in parts[1:]:
-        out = exp.Union(this=out, expression=p, distinct=False)
-    return out
+def levels_query(ctx: PlanContext, sets: Sequence[tuple[str, ...]], cap: int) -> exp.Select:
+    """Level counts of every factor and observed combinations of factor sets, in one scan.
 
-
-def combos_query(ctx: PlanContext, factor_columns: Sequence[str]) -> exp.Select:
-    """Observed level combinations of a set of factors."""
-    lv = [S.as_text(S.col(c)) for c in factor_columns]
+    GROUP BY GROUPING SETS over the factors (as text); ``g`` (the GROUPING bitmask) tells the
+    sets apart. At most ``cap + 1`` rows per set come back, most frequent first, so a
+    column with too many levels is detected without fetching them all.
+    """
+    factors = list(ctx.inputs.factors)
+    alias = {c: f"f{i}" for i, c in enumerate(factors)}
+    inner = S.select(
+        [S.alias(S.as_text(S.col(c)), alias[c]) for c in factors], ctx.source(), where=ctx.kept()
+    )
+    all_sets = [(c,) for c in factors] + [tuple(s) for s in sets]
+    gsets = exp.GroupingSets(
+        expressions=[exp.Tuple(expressions=[S.col(alias[c]) for c in st]) for st in all_sets]
+    )
+    fcols = [S.col(alias[c]) for c in factors]
+    grouping = exp.Anonymous(this="GROUPING", expressions=[c.copy() for c in fcols])
+    counted = exp.Select(
+        expressions=[
+            S.alias(grouping, "g"),
+            *(c.copy() for c in fcols),
+            S.alias(S.count_star(), "n"),
+        ]
+    )
+    counted = counted.from_(S.subquery(inner, "lv"), copy=False)
+    counted.set("group", exp.Group(grouping_sets=[gsets]))
+    order = exp.Order(
+        expressions=[
+            exp.Ordered(this=S.col("n"), desc=True),
+            *(exp.Ordered(this=c.copy()) for c in fcols),
+        ]
+    )
+    rank = exp.Window(this=exp.RowNumber(), partition_by=[S.col("g")], order=order)
+    ranked = S.select([exp.Star(), S.alias(rank, "rk")], S.subquery(counted, "c"))
     return S.select(
-        [S.alias(e, f"l{i}") for i, e in enumerate(lv)] + [S.alias(S.count_star(), "n")],
-        ctx.source(),
-        where=ctx.kept(),
-        group_by=lv,
+        [exp.Star()],
+        S.subquery(ranked, "rk0"),
+        where=S.le(S.col("rk"), exp.Literal.number(cap + 1)),
     )
 
 
@@ -545,8 +565,50 @@ def _mean_stage(ctx: PlanContext, design: Design, eta_stage: exp.Select) -> exp.
     )
 
 
+def _null_stage(ctx: PlanContext, design: Design, mean_stage: exp.Select, b0: float) -> exp.Select:
+    """Add the intercept-only model's mean (eta = offset + b0) next to the fitted model's,
+    so the null model with an offset is fitted in the same scans."""
+    fam, link = ctx.spec.family, ctx.spec.link
+    e0 = S.add(S.col("off"), S.num(b0))
+    mu0 = fam.clamp_mu_sql(link.inverse_sql(e0))
+    keep = _passthrough(design, [*_extra_row_cols(ctx), "eta", "seta", "bad", "mu"])
+    inner = S.select([*keep, S.alias(mu0, "n_mu")], S.subquery(mean_stage, "nm"))
+    keep = _passthrough(design, [*_extra_row_cols(ctx), "eta", "seta", "bad", "mu", "n_mu"])
+    n_mu = S.col("n_mu")
+    return S.select(
+        [
+            *keep,
+            S.alias(link.mu_eta_sql(S.add(S.col("off"), S.num(b0)), n_mu), "n_dmu"),
+            S.alias(fam.variance_sql(n_mu), "n_var"),
+        ],
+        S.subquery(inner, "nm1"),
+    )
+
+
+def _null_extras(ctx: PlanContext, b0: float) -> list[tuple[str, Expr]]:
+    """Per-row sums of the intercept-only IRLS step and its deviance."""
+    fam = ctx.spec.family
+    y, pw, fw = S.col("y"), S.col("pw"), S.col("fw")
+    n_mu, n_dmu, n_var = S.col("n_mu"), S.col("n_dmu"), S.col("n_var")
+    w0 = S.div(S.mul(pw, n_dmu, n_dmu), n_var)
+    step = S.case([(S.ne(n_dmu, S.num(0.0)), S.div(S.sub(y, n_mu), n_dmu))], S.num(0.0))
+    z0 = S.add(S.num(b0), step)
+    return [
+        ("fnullw", S.mul(fw, w0)),
+        ("fnullwz", S.mul(fw, w0.copy(), z0)),
+        ("fnulldev", S.mul(fw, pw, fam.unit_deviance_sql(y, n_mu))),
+    ]
+
+
+NULL_COLUMNS = ("n_mu", "n_dmu", "n_var")
+
+
 def _work_stage(
-    ctx: PlanContext, design: Design, mean_stage: exp.Select, extra: Sequence[tuple[str, Expr]] = ()
+    ctx: PlanContext,
+    design: Design,
+    mean_stage: exp.Select,
+    extra: Sequence[tuple[str, Expr]] = (),
+    keep: Sequence[str] = (),
 ) -> exp.Select:
     """Stage w: working weight and response, deviance and Pearson contributions."""
     fam, link = ctx.spec.family, ctx.spec.link
@@ -554,7 +616,7 @@ def _work_stage(
     dmu = link.mu_eta_sql(S.col("seta"), mu)
     inner = S.select(
         [
-            *_passthrough(design, [*_extra_row_cols(ctx), "eta", "bad", "mu"]),
+            *_passthrough(design, [*_extra_row_cols(ctx), "eta", "bad", "mu", *keep]),
             S.alias(dmu, "dmu"),
             S.alias(fam.variance_sql(mu), "var"),
         ],
@@ -587,18 +649,26 @@ def gram_query(
     ybar: float,
     null_mu: Expr | None = None,
     cells: Sequence[tuple[str, ...]] | None = None,
+    null_intercept: float | None = None,
 ) -> exp.Select:
     """The IRLS scan: all sums for X'WX, X'Wz, deviance and Pearson, grouped by factor cells.
 
     ``beta`` are the standardized coefficients (None: the family's starting means).
-    ``null_mu`` adds ``null_dev``, the deviance at a per-row null-model mean.
+    ``null_mu`` adds ``nulldev``, the deviance at a per-row null-model mean;
+    ``null_intercept`` adds ``nullw``, ``nullwz`` and ``nulldev``: one IRLS step of the
+    intercept-only model with the offset, at that intercept.
     """
     eta = (
         _eta_start(ctx, design, ybar) if beta is None else _eta_from_beta(ctx, design, beta, cells)
     )
     mean = _mean_stage(ctx, design, eta)
     extra: list[tuple[str, Expr]] = []
-    if null_mu is not None:
+    keep: tuple[str, ...] = ()
+    if null_intercept is not None:
+        mean = _null_stage(ctx, design, mean, null_intercept)
+        extra += _null_extras(ctx, null_intercept)
+        keep = NULL_COLUMNS
+    elif null_mu is not None:
         fam = ctx.spec.family
         extra.append(
             (
@@ -606,7 +676,7 @@ def gram_query(
                 S.mul(S.col("fw"), S.col("pw"), fam.unit_deviance_sql(S.col("y"), null_mu)),
             )
         )
-    work = _work_stage(ctx, design, mean, extra)
+    work = _work_stage(ctx, design, mean, extra, keep)
     vals = [None, *(S.col(v.alias) for v in design.values[1:])]
     aggs: list[Expr] = []
     m = len(design.values)
