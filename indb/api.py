@@ -34,6 +34,7 @@ SPEC_OPTIONS = (
     "max_levels",
     "confidence",
     "start",
+    "compress",
 )
 ENGINE_OPTIONS = ("memory_limit", "temp_directory", "threads")
 
@@ -66,6 +67,7 @@ def fit(
     max_levels: int = 10_000,
     confidence: float = 0.95,
     start: Mapping[str, float] | None = None,
+    compress: str = "auto",
     progress: Any = None,
     name: str | None = None,
     promote: bool = True,
@@ -117,6 +119,7 @@ def fit(
         max_levels=max_levels,
         confidence=confidence,
         start=start,
+        compress=compress,
     )
     engine = connect(db, memory_limit=memory_limit, temp_directory=temp_directory, threads=threads)
     try:

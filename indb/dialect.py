@@ -90,6 +90,13 @@ class Dialect:
     def drop_macro(self, schema: str | None, name: str) -> str:
         raise UnsupportedError(f"engine {self.name!r} has no scoring macros in indb yet")
 
+    def materialize(self, name: str, query: exp.Expression) -> list[str]:
+        """Statements that store ``query`` as a session-private table ``name``."""
+        raise UnsupportedError(f"engine {self.name!r} cannot hold a temporary table in indb yet")
+
+    def drop_materialized(self, name: str) -> str:
+        return f"DROP TABLE IF EXISTS {self.quote(name)}"
+
     def quote(self, name: str) -> str:
         """A quoted identifier as text (through the renderer, never by hand)."""
         return S.ident(name).sql(dialect=self.sqlglot_name)
@@ -154,6 +161,9 @@ class DuckDBDialect(Dialect):
         return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
 
     supports_macros = True
+
+    def materialize(self, name, query):
+        return [f"CREATE OR REPLACE TEMP TABLE {self.quote(name)} AS {self.render(query)}"]
 
     def _qualified(self, schema: str | None, name: str) -> str:
         return (self.quote(schema) + "." if schema else "") + self.quote(name)

@@ -7,9 +7,11 @@ dialect render them, runs them through the engine adapter and hands the small re
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 import math
 import time
+import uuid
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -18,6 +20,7 @@ import numpy as np
 
 from indb import plan as P
 from indb import solver
+from indb import sqlexpr as S
 from indb.design import (
     INTERCEPT,
     Design,
@@ -38,10 +41,11 @@ from indb.errors import (
     NonConvergenceError,
     SeparationWarning,
     SpecError,
+    UnsupportedError,
 )
 from indb.families import NegativeBinomial, Poisson
 from indb.results import Coefficient, FitResult, IterationRecord
-from indb.spec import ModelSpec
+from indb.spec import ModelSpec, Source
 from indb.sqlexpr import Expr
 
 MAX_HALVINGS = 30
@@ -66,6 +70,14 @@ class _Run:
         return {k: (v[0] if len(v) else None) for k, v in cols.items()}
 
     phase: str = "fit"
+    temp_tables: list[str] = dataclasses.field(default_factory=list)
+    compressed: tuple[int, int, float] | None = None
+
+    def drop_temp(self) -> None:
+        for name in self.temp_tables:
+            with contextlib.suppress(Exception):
+                self.engine.execute(self.engine.dialect.drop_materialized(name))
+        self.temp_tables.clear()
 
     def record(self, dev: float, change: float, halvings: int, seconds: float) -> None:
         rec = IterationRecord(
@@ -567,6 +579,7 @@ def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
     row = run.one_row(P.profile_query(ctx, values, knots))
     n_total, n_kept, by_col = _check_nulls(ctx, row)
     summary = _summarize(ctx, row, values)
+    ctx = _maybe_compress(ctx, run, n_kept)
     factors, combos = _factors(ctx, run)
     design = build_design(
         inputs, spec.intercept, summary.values, factors, combos, tuple(knots.items())
@@ -574,6 +587,49 @@ def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
     return ctx, design, summary, n_total, n_kept, by_col
+
+
+AUTO_COMPRESS_MIN_ROWS = 50_000
+COMPRESS_RATIO = 10  # compress when the sample shows >= 10 rows per distinct design row
+
+
+def _maybe_compress(ctx: P.PlanContext, run: _Run, n_kept: int) -> P.PlanContext:
+    """Fold the source to its distinct design rows when that pays (or when asked).
+
+    The folded table keeps every column that determines a row's contribution (response,
+    predictors, offset/weight/trials columns), so deviance, Pearson chi-squared and the
+    log-likelihood stay exact; frequency weights are summed. ``auto`` decides from the
+    distinct design rows among the first kept rows.
+    """
+    mode = ctx.spec.compress
+    if mode == "never" or (mode == "auto" and n_kept < AUTO_COMPRESS_MIN_ROWS):
+        return ctx
+    name = f"indb_fold_{uuid.uuid4().hex[:12]}"
+    try:
+        stmts = ctx.dialect.materialize(name, P.compress_query(ctx))
+    except UnsupportedError:
+        if mode == "always":
+            raise
+        return ctx
+    if mode == "auto":
+        row = run.one_row(P.sample_distinct_query(ctx))
+        d, s = int(row["d"] or 0), int(row["s"] or 0)
+        if s == 0 or d * COMPRESS_RATIO > s:
+            return ctx
+    t0 = time.perf_counter()
+    for stmt in stmts:
+        run.engine.execute(stmt)
+    run.temp_tables.append(name)
+    groups = int(
+        run.one_row(S.select([S.alias(S.count_star(), "n")], ctx.dialect.table(name)))["n"]
+    )
+    keys = P.key_columns(ctx)
+    inputs = dataclasses.replace(
+        ctx.inputs, frequency_weight=S.col(P.FREQ), model_columns=(*keys, P.FREQ)
+    )
+    spec = dataclasses.replace(ctx.spec, source=Source("table", name))
+    run.compressed = (n_kept, groups, time.perf_counter() - t0)
+    return P.PlanContext(spec, inputs, ctx.dialect, row_count=P.ROWCOUNT)
 
 
 def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
@@ -617,12 +673,22 @@ def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitR
     """Fit ``spec`` on ``engine``; see :func:`indb.fit` for the user-facing description."""
     t_start = time.perf_counter()
     run = _Run(engine=engine, progress=progress, log=[])
-    ctx, design, summary, n_total, n_kept, by_col = _prepare(spec, engine, run)
+    try:
+        return _fit(spec, run, t_start)
+    finally:
+        run.drop_temp()
+
+
+def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
+    report_spec = spec
+    ctx, design, summary, n_total, n_kept, by_col = _prepare(spec, run.engine, run)
+    spec = ctx.spec
 
     warn_msgs: list[str] = []
     if spec.estimate_theta:
         theta, beta0 = _estimate_theta(ctx, design, run, summary)
         spec = dataclasses.replace(spec, family=NegativeBinomial(theta=theta))
+        report_spec = dataclasses.replace(report_spec, family=spec.family)
         ctx = dataclasses.replace(ctx, spec=spec)
         start = beta0
     else:
@@ -661,6 +727,7 @@ def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitR
         float(null_dev) if null_dev is not None else math.nan,
         warn_msgs,
         t_start,
+        report_spec,
     )
 
 
@@ -677,9 +744,20 @@ def _start_from(spec: ModelSpec, design: Design, summary: _Summary) -> np.ndarra
 
 
 def _result(
-    ctx, design, run, state, summary, n_total, n_kept, by_col, null_dev, warn_msgs, t_start
+    ctx,
+    design,
+    run,
+    state,
+    summary,
+    n_total,
+    n_kept,
+    by_col,
+    null_dev,
+    warn_msgs,
+    t_start,
+    report_spec,
 ) -> FitResult:
-    spec = ctx.spec
+    spec = report_spec
     fam = spec.family
     sol = state.solution
     sums = state.sums
@@ -761,7 +839,7 @@ def _result(
         converged=state.converged,
         iteration_log=tuple(run.log),
         test="z" if fam.dispersion_fixed else "t",
-        path=f"grouped scan ({sums.cells} cells)" if design.factors else "single-group scan",
+        path=_path_label(run, design, sums),
         seconds=time.perf_counter() - t_start,
         family_params=fam.params(),
         excluded_by_column=by_col,
@@ -789,6 +867,17 @@ def _levels_for(design: Design, c: DesignColumn) -> list[str | None]:
     return [by_col.get(col) for col in c.source_columns]
 
 
+def _path_label(run: _Run, design: Design, sums: solver.Sums) -> str:
+    scan = f"grouped scan ({sums.cells} cells)" if design.factors else "single-group scan"
+    if run.compressed is None:
+        return scan
+    rows, groups, secs = run.compressed
+    return (
+        f"compressed: {rows:,} rows folded to {groups:,} distinct design rows "
+        f"({rows / max(groups, 1):.0f}x, {secs:.2f} s), then {scan}"
+    )
+
+
 def _edge_rows(ctx, design, run, beta) -> int:
     from indb import sqlexpr as S
 
@@ -797,8 +886,9 @@ def _edge_rows(ctx, design, run, beta) -> int:
     cond = S.and_(
         S.gt(S.col("pw"), S.num(0.0)), S.or_(S.le(mu, S.num(EDGE)), S.ge(mu, S.num(1 - EDGE)))
     )
-    row = run.one_row(S.select([S.alias(S.sum_(S.flag(cond)), "edge")], S.subquery(mean, "m")))
-    return int(row["edge"] or 0)
+    weighted = S.case([(cond, S.col("fw"))], S.num(0.0))  # frequency-weighted rows
+    row = run.one_row(S.select([S.alias(S.sum_(weighted), "edge")], S.subquery(mean, "m")))
+    return int(round(float(row["edge"] or 0)))
 
 
 def _log_likelihood(ctx, design, run, beta, sums, summary, dispersion) -> float:

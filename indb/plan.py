@@ -54,6 +54,12 @@ class PlanContext:
     spec: ModelSpec
     inputs: Inputs
     dialect: Dialect
+    #: on a compressed table: the column holding how many source rows each row stands for
+    row_count: str | None = None
+
+    def count_rows(self) -> Expr:
+        """COUNT(*) of source rows (SUM of the row-count column on a compressed table)."""
+        return S.sum_(S.col(self.row_count)) if self.row_count else S.count_star()
 
     # -- the source ------------------------------------------------------------------------
     def source(self) -> Expr:
@@ -256,6 +262,52 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
 
 
 KEPT = "indb_kept"
+FREQ = "indb_freq"
+ROWCOUNT = "indb_rows"
+SAMPLE_ROWS = 100_000
+
+
+def key_columns(ctx: PlanContext) -> list[str]:
+    """Source columns that determine every per-row model quantity except the frequency
+    weight: response, predictors and the columns of the offset, weight and trials."""
+    inputs = ctx.inputs
+    out = [inputs.response, *inputs.factors, *inputs.numerics]
+    for e in (inputs.offset, inputs.weight, inputs.trials):
+        if e is not None:
+            out += S.referenced_columns(e)
+    seen: list[str] = []
+    for c in out:
+        if c not in seen:
+            seen.append(c)
+    return seen
+
+
+def sample_distinct_query(ctx: PlanContext) -> exp.Select:
+    """Distinct design rows among the first kept rows: ``d`` distinct of ``s`` sampled."""
+    keys = [S.col(c) for c in key_columns(ctx)]
+    sample = S.select([k.copy() for k in keys], ctx.source(), where=ctx.kept())
+    sample = sample.limit(SAMPLE_ROWS, copy=False)
+    grouped = S.select(
+        [*(k.copy() for k in keys), S.alias(S.count_star(), "c")],
+        S.subquery(sample, "smp"),
+        group_by=[k.copy() for k in keys],
+    )
+    return S.select(
+        [S.alias(S.count_star(), "d"), S.alias(S.sum_(S.col("c")), "s")], S.subquery(grouped, "grp")
+    )
+
+
+def compress_query(ctx: PlanContext) -> exp.Select:
+    """The source folded to its distinct design rows: every key column, the summed
+    frequency weight and the number of source rows each distinct row stands for."""
+    keys = [S.col(c) for c in key_columns(ctx)]
+    fw = ctx.raw_freq() or S.num(1.0)
+    return S.select(
+        [*(k.copy() for k in keys), S.alias(S.psum(fw), FREQ), S.alias(S.count_star(), ROWCOUNT)],
+        ctx.source(),
+        where=ctx.kept(),
+        group_by=[k.copy() for k in keys],
+    )
 
 
 def profile_query(
@@ -321,8 +373,11 @@ def levels_query(ctx: PlanContext, sets: Sequence[tuple[str, ...]], cap: int) ->
     """
     factors = list(ctx.inputs.factors)
     alias = {c: f"f{i}" for i, c in enumerate(factors)}
+    weight = [S.alias(S.col(ctx.row_count), "rc")] if ctx.row_count else []
     inner = S.select(
-        [S.alias(S.as_text(S.col(c)), alias[c]) for c in factors], ctx.source(), where=ctx.kept()
+        [*(S.alias(S.as_text(S.col(c)), alias[c]) for c in factors), *weight],
+        ctx.source(),
+        where=ctx.kept(),
     )
     all_sets = [(c,) for c in factors] + [tuple(s) for s in sets]
     gsets = exp.GroupingSets(
@@ -334,7 +389,7 @@ def levels_query(ctx: PlanContext, sets: Sequence[tuple[str, ...]], cap: int) ->
         expressions=[
             S.alias(grouping, "g"),
             *(c.copy() for c in fcols),
-            S.alias(S.count_star(), "n"),
+            S.alias(S.sum_(S.col("rc")) if ctx.row_count else S.count_star(), "n"),
         ]
     )
     counted = counted.from_(S.subquery(inner, "lv"), copy=False)

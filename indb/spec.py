@@ -85,6 +85,7 @@ class ModelSpec:
     max_levels: int = 10_000
     confidence: float = 0.95
     start: tuple[tuple[str, float], ...] = field(default=())
+    compress: str = "auto"
 
     @staticmethod
     def build(
@@ -114,6 +115,7 @@ class ModelSpec:
         max_levels: int = 10_000,
         confidence: float = 0.95,
         start: Mapping[str, float] | None = None,
+        compress: str = "auto",
     ) -> ModelSpec:
         """Validate user options and resolve family/link names into a spec."""
         if not isinstance(response, str) or not response:
@@ -135,6 +137,8 @@ class ModelSpec:
         fam.check_link(lk)
         if trials is not None and fam.name != "binomial":
             raise SpecError(f"trials is for grouped binomial data; family is {fam.name!r}")
+        if compress not in ("auto", "always", "never"):
+            raise SpecError(f"compress must be 'auto', 'always' or 'never'; got {compress!r}")
         if on_null not in ("exclude", "error"):
             raise SpecError(f"on_null must be 'exclude' or 'error'; got {on_null!r}")
         if not (isinstance(tol, int | float) and 0 < tol < 1):
@@ -194,6 +198,7 @@ class ModelSpec:
             max_levels=int(max_levels),
             confidence=float(confidence),
             start=st,
+            compress=compress,
         )
 
     def to_dict(self) -> dict[str, Any]:

@@ -328,7 +328,7 @@ def test_boolean_and_enum_predictors_are_categorical(con: duckdb.DuckDBPyConnect
     res = indb.fit("fair", "had_affair", "binomial", db=con, tol=TOL)
     # contract: levels as text (booleans 'true'/'false'), ascending string order, reference
     # the most frequent level
-    X = design_matrix(frame, ["has_children", "religion", "age"])
+    X = design_matrix(frame, ["has_children", "religion", "age"], categorical=["has_children"])
     ref = sm_fit(frame["had_affair"], X, F.Binomial())
     assert res.terms == list(X.columns)
     assert "has_children=false" in res.terms  # 'true' (children > 0) is the most frequent
@@ -350,7 +350,9 @@ def test_integer_column_forced_categorical(
         reference=reference,
         tol=TOL,
     )
-    X = design_matrix(frame, ["rate_marriage", "age"], categorical=["rate_marriage"], reference=reference)
+    X = design_matrix(
+        frame, ["rate_marriage", "age"], categorical=["rate_marriage"], reference=reference
+    )
     ref = sm_fit(frame["had_affair"], X, F.Binomial())
     assert res.terms == list(X.columns)
     # default reference: the most frequent rating (5); overridden: 1
@@ -515,7 +517,10 @@ def test_frequency_weights_equal_expanded_rows(con: duckdb.DuckDBPyConnection) -
 
     # oracle: statsmodels on the 6366 expanded rows
     X = design_matrix(
-        rows, ["rate_marriage", "religious"], categorical=options["categorical"], reference=reference
+        rows,
+        ["rate_marriage", "religious"],
+        categorical=options["categorical"],
+        reference=reference,
     )
     ref = sm_fit(rows["had_affair"], X, F.Binomial())
     for r in (res, expanded):
@@ -562,11 +567,13 @@ def test_complete_separation_warns(con: duckdb.DuckDBPyConnection) -> None:
     # sklearn.datasets.load_iris: setosa (target 0) and versicolor (target 1) are completely
     # separated by petal length (setosa below 2 cm, versicolor above 3 cm).
     iris = load_iris(as_frame=True).frame
-    frame = pd.DataFrame(
-        {"versicolor": iris["target"], "petal_length": iris["petal length (cm)"]}
-    )[iris["target"] < 2]
-    assert frame.groupby("versicolor")["petal_length"].agg(["min", "max"]).pipe(
-        lambda t: t.loc[0, "max"] < t.loc[1, "min"]
+    frame = pd.DataFrame({"versicolor": iris["target"], "petal_length": iris["petal length (cm)"]})[
+        iris["target"] < 2
+    ]
+    assert (
+        frame.groupby("versicolor")["petal_length"]
+        .agg(["min", "max"])
+        .pipe(lambda t: t.loc[0, "max"] < t.loc[1, "min"])
     )
     load(con, "iris", frame)
     with pytest.warns(indb.SeparationWarning, match="separation"):
@@ -611,9 +618,7 @@ def test_quasi_separated_estimate_is_flagged_by_its_standard_error(
     top = res.coef("top_gpa=true")
     assert top.estimate > 10 and top.std_error > 100 * top.estimate
     # the other coefficients are finite and agree with statsmodels (they converge normally)
-    X = design_matrix(
-        frame.assign(top_gpa=frame["GPA"] >= 3.9), ["PSI", "TUCE", "top_gpa"]
-    )
+    X = design_matrix(frame.assign(top_gpa=frame["GPA"] >= 3.9), ["PSI", "TUCE", "top_gpa"])
     ref = sm_fit(frame["GRADE"], X, F.Binomial())
     for term in ("intercept", "PSI", "TUCE"):
         assert_allclose(res.coef(term).estimate, ref.params[term], rtol=1e-5, err_msg=term)
