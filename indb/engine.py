@@ -54,6 +54,9 @@ class DuckDBEngine(Engine):
     database:
         ``None`` or ``":memory:"`` for an in-memory database, a file path, or an open
         ``duckdb.DuckDBPyConnection`` (which is used as is and not closed).
+    compensated_sums:
+        Render indb's sums as DuckDB's compensated ``KAHAN_SUM`` (slower, for tables of
+        ~10^10 rows or extreme magnitudes).
     memory_limit, temp_directory, threads:
         Passed to DuckDB's settings of the same names (out-of-core work spills to
         ``temp_directory`` when ``memory_limit`` is reached).
@@ -67,11 +70,12 @@ class DuckDBEngine(Engine):
         memory_limit: str | None = None,
         temp_directory: str | None = None,
         threads: int | None = None,
+        compensated_sums: bool = False,
     ) -> None:
         import duckdb
 
         self._duckdb = duckdb
-        self.dialect = DuckDBDialect()
+        self.dialect = DuckDBDialect(compensated_sums=compensated_sums)
         if isinstance(database, duckdb.DuckDBPyConnection):
             self.con = database
             self._owned = False

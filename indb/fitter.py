@@ -235,10 +235,14 @@ def _summarize(ctx: P.PlanContext, row: dict, values: tuple[Value, ...]) -> _Sum
     out_values = [values[0]]
     for v in values[1:]:
         mean = float(row[f"{v.alias}_mean"])
-        sd = float(row[f"{v.alias}_sd"] or 0.0)
-        rms = math.sqrt(max(float(row[f"{v.alias}_ms"]), 0.0))
+        ms = float(row[f"{v.alias}_ms"])
+        lo, hi = float(row[f"{v.alias}_min"]), float(row[f"{v.alias}_max"])
+        rms = math.sqrt(max(ms, 0.0))
+        sd = math.sqrt(max(ms - mean * mean, 0.0))
+        if not sd > 1e-6 * (hi - lo):
+            sd = hi - lo  # moments lost to cancellation: the range still conditions well
         if v.centered:
-            if not sd > 0 or sd < 1e-13 * max(abs(mean), 1e-300):
+            if lo == hi:
                 raise SpecError(
                     f"predictor {v.label!r} is constant ({mean:g}) over the {n} rows used, so it "
                     f"cannot be told apart from the intercept; leave it out (exclude=[...], "
