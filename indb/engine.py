@@ -84,7 +84,10 @@ class DuckDBEngine(Engine):
             try:
                 self.con = duckdb.connect(path, read_only=read_only)
             except duckdb.Error as err:
-                raise EngineError(f"cannot open DuckDB database {path!r}: {err}") from err
+                hint = ""
+                if "lock" in str(err).lower():
+                    hint = " (another process, perhaps another indb job, has it open for writing)"
+                raise EngineError(f"cannot open DuckDB database {path!r}{hint}: {err}") from err
             self._owned = True
         # the progress bar would write to the terminal from inside library calls
         self.con.execute("SET enable_progress_bar = false")

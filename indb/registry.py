@@ -275,28 +275,31 @@ class Registry:
         # Build every statement before opening the transaction: a bad source or name fails
         # here, with nothing written.
         deploy = self._deploy_statements(name, result, model_row) if promote else []
-        with self.engine.transaction():
-            if current is None:
-                self._run(W.insert_rows(self.schema, "model", [model_row]))
-            self._run(W.insert_rows(self.schema, "model_version", [vrow]))
-            self._run(W.insert_rows(self.schema, "version_term", terms))
-            if iters:
-                self._run(W.insert_rows(self.schema, "version_iteration", iters))
-            self._event(
-                name,
-                version,
-                "fit",
-                f"status {status}; {result.n_used} rows; deviance {result.deviance:.10g}",
-                now,
-            )
-            if promote:
-                self._make_live(name, version, model_row, deploy, now)
-            elif current is not None:
-                self._run(
-                    W.update_rows(
-                        self.schema, "model", _model_updates(model_row), W.where_model(name)
-                    )
+        try:
+            with self.engine.transaction():
+                if current is None:
+                    self._run(W.insert_rows(self.schema, "model", [model_row]))
+                self._run(W.insert_rows(self.schema, "model_version", [vrow]))
+                self._run(W.insert_rows(self.schema, "version_term", terms))
+                if iters:
+                    self._run(W.insert_rows(self.schema, "version_iteration", iters))
+                self._event(
+                    name,
+                    version,
+                    "fit",
+                    f"status {status}; {result.n_used} rows; deviance {result.deviance:.10g}",
+                    now,
                 )
+                if promote:
+                    self._make_live(name, version, model_row, deploy, now)
+                elif current is not None:
+                    self._run(
+                        W.update_rows(
+                            self.schema, "model", _model_updates(model_row), W.where_model(name)
+                        )
+                    )
+        except EngineError as err:
+            raise _conflict(err, name, version) from err
         return SaveOutcome(
             name,
             version,
@@ -463,6 +466,28 @@ class Registry:
                 ],
             )
         )
+
+
+_CONFLICT_WORDS = (
+    "primary key",
+    "duplicate key",
+    "constraint",
+    "conflict",
+    "could not set lock",
+    "serializ",
+    "unique",
+)
+
+
+def _conflict(err: EngineError, name: str, version: int) -> Exception:
+    """A write that lost a race to another writer becomes a clear registry conflict."""
+    text = str(err).lower()
+    if any(w in text for w in _CONFLICT_WORDS):
+        return RegistryError(
+            f"another job wrote to model {name!r} at the same time (version {version} is taken "
+            f"or the database is locked); nothing was written by this run — rerun it: {err}"
+        )
+    return err
 
 
 def _model_updates(row: dict[str, Any]) -> dict[str, Any]:
