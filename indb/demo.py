@@ -151,7 +151,7 @@ def scoring_tour(engine: DuckDBEngine, results: dict[str, FitResult]) -> str:
         lines.append(f"  {r[0]:<10}{r[1]:<8}{r[2]:>11}{r[3]:>10}{r[4]:>10}")
     one = con.execute(
         "SELECT frequency_score(30, 7, 2, 60.0, 1.5, 'Southbay', 'G09', 'diesel', 1.0)"
-    ).fetchone()[0]
+    ).fetchall()[0][0]
     lines.append(
         "\nSELECT frequency_score(30, 7, 2, 60.0, 1.5, 'Southbay', 'G09', 'diesel', 1.0)"
         f"\n  -> {one:.5f} expected claims in a policy-year"

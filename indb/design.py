@@ -223,8 +223,12 @@ def resolve_inputs(
     freq = parse(spec.frequency_weight, "frequency_weight")
     trials = parse(spec.trials, "trials")
 
-    for c in (*spec.exclude, *spec.categorical, *(k for k, _ in spec.reference)):
-        need(c, "named")
+    for c in spec.exclude:
+        need(c, "exclude option's")
+    for c in spec.categorical:
+        need(c, "categorical option's")
+    for c, _ in spec.reference:
+        need(c, "reference option's")
     for group in spec.interactions:
         for c in group:
             need(c, "interaction")

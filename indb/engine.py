@@ -91,6 +91,7 @@ class DuckDBEngine(Engine):
             self._owned = True
         # the progress bar would write to the terminal from inside library calls
         self.con.execute("SET enable_progress_bar = false")
+        self._tune_optimizer()
         settings = {
             "memory_limit": memory_limit,
             "temp_directory": temp_directory,
@@ -99,6 +100,31 @@ class DuckDBEngine(Engine):
         for key, val in settings.items():
             if val is not None:
                 self._set(key, val)
+
+    def _tune_optimizer(self) -> None:
+        """Turn off DuckDB's partial aggregate pushdown for this connection.
+
+        With the IRLS scan's aggregate over a join to the small coefficient table, that
+        rule (new in DuckDB 2.0) spends 0.3-1 s per query in planning, more than the scan
+        itself on 10^6 rows; without it planning takes ~20 ms. Other disabled rules the
+        connection already had are kept.
+        """
+        try:
+            names = {
+                r[0] for r in self.con.execute("SELECT name FROM duckdb_optimizers()").fetchall()
+            }
+            if "partial_aggregate_pushdown" not in names:
+                return
+            current = (
+                self.con.execute("SELECT current_setting('disabled_optimizers')").fetchall()[0][0]
+                or ""
+            )
+            parts = [p.strip() for p in str(current).split(",") if p.strip()]
+            if "partial_aggregate_pushdown" not in parts:
+                parts.append("partial_aggregate_pushdown")
+                self._set("disabled_optimizers", ",".join(parts))
+        except self._duckdb.Error:
+            pass  # an older DuckDB without these settings plans the query fine
 
     def _set(self, key: str, value: Any) -> None:
         # SET takes a literal; values are validated types (str/int), quoted as literals.

@@ -50,6 +50,8 @@ from indb.sqlexpr import Expr
 
 MAX_HALVINGS = 30
 EDGE = 10 * 2.220446049250313e-16  # fitted probabilities numerically 0 or 1 (common practice)
+NEAR_EDGE = 1e-8  # with huge standard errors, this close to 0 or 1 also signals separation
+SEPARATION_STD_SE = 100.0
 
 Progress = Callable[[IterationRecord], None] | None
 
@@ -147,6 +149,11 @@ def _check_nulls(ctx: P.PlanContext, row: dict) -> tuple[int, int, dict[str, int
     if n_total == 0:
         raise SpecError(f"the source {ctx.spec.source.label()!r} has no rows")
     for label, k in by_col.items():
+        if k == n_total and label == ctx.inputs.response:
+            raise SpecError(
+                f"response column {label!r} is NULL in all {n_total} rows: there is nothing to "
+                "fit; check the source query"
+            )
         if k == n_total:
             raise SpecError(
                 f"{_what(label)} is NULL in all {n_total} rows; leave it out "
@@ -295,7 +302,7 @@ def _factors(
                 "levels in the query, treat it as numeric, or raise max_levels "
                 "(CLI --max-levels)"
             )
-        pairs = sorted((str(cols[f"f{i}"][r]), int(cols["n"][r])) for r in rows)
+        pairs = sorted((str(cols[f"f{i}"][r]), float(cols["n"][r])) for r in rows)
         levels = [lv for lv, _ in pairs]
         counts = [k for _, k in pairs]
         if c in ref:
@@ -802,16 +809,23 @@ def _result(
         warnings.warn(msg, AliasingWarning, stacklevel=3)
         warn_msgs.append(msg)
     if fam.unit_mean:
-        edge = _edge_rows(ctx, design, run, state.beta)
-        if edge:
+        exact, near = _edge_rows(ctx, design, run, state.beta)
+        # standard errors on the standardized design: ordinary fits have them well below 1
+        # per unit; a coefficient drifting to infinity under separation has them in the
+        # hundreds or thousands (common practice: flag huge standard errors, not estimates)
+        std_se = np.sqrt(np.clip(np.diag(sol.inv_info), 0.0, None))
+        drifting = near > 0 and float(std_se.max(initial=0.0)) > SEPARATION_STD_SE
+        if exact or drifting or (near and not state.converged):
+            count = exact or near
+            limit = EDGE if exact else NEAR_EDGE
             msg = (
-                f"{edge} rows have fitted probabilities numerically 0 or 1 (within {EDGE:.1e})"
-                "; with large estimates and very large standard errors this means "
-                "(quasi-)separation: those estimates drift to infinity and are unreliable "
-                "(merge levels or drop the separating predictor)"
+                f"separation: {count} rows have fitted probabilities within {limit:.0e} of 0 "
+                "or 1"
+                + (" and some standard errors are huge" if drifting else "")
+                + "; the data are (quasi-)separated or the fit sits on the boundary, so those "
+                "estimates drift to infinity and their standard errors are unreliable (merge "
+                "levels or drop the separating predictor)"
             )
-            if not state.converged:
-                msg = "separation: " + msg
             warnings.warn(msg, SeparationWarning, stacklevel=3)
             warn_msgs.append(msg)
     ll = _log_likelihood(ctx, design, run, state.beta, sums, summary, dispersion)
@@ -882,17 +896,24 @@ def _path_label(run: _Run, design: Design, sums: solver.Sums) -> str:
     )
 
 
-def _edge_rows(ctx, design, run, beta) -> int:
-    from indb import sqlexpr as S
-
+def _edge_rows(ctx, design, run, beta) -> tuple[int, int]:
+    """Frequency-weighted rows with fitted probabilities numerically at 0 or 1 (``EDGE``)
+    and near them (``NEAR_EDGE``)."""
     mean = P._mean_stage(ctx, design, P._eta_from_beta(ctx, design, beta))
     mu = S.col("mu")
-    cond = S.and_(
-        S.gt(S.col("pw"), S.num(0.0)), S.or_(S.le(mu, S.num(EDGE)), S.ge(mu, S.num(1 - EDGE)))
+
+    def count(limit: float) -> Expr:
+        cond = S.and_(
+            S.gt(S.col("pw"), S.num(0.0)), S.or_(S.le(mu, S.num(limit)), S.ge(mu, S.num(1 - limit)))
+        )
+        return S.sum_(S.case([(cond, S.col("fw"))], S.num(0.0)))
+
+    row = run.one_row(
+        S.select(
+            [S.alias(count(EDGE), "edge"), S.alias(count(NEAR_EDGE), "near")], S.subquery(mean, "m")
+        )
     )
-    weighted = S.case([(cond, S.col("fw"))], S.num(0.0))  # frequency-weighted rows
-    row = run.one_row(S.select([S.alias(S.sum_(weighted), "edge")], S.subquery(mean, "m")))
-    return int(round(float(row["edge"] or 0)))
+    return int(round(float(row["edge"] or 0))), int(round(float(row["near"] or 0)))
 
 
 def _log_likelihood(ctx, design, run, beta, sums, summary, dispersion) -> float:

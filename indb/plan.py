@@ -374,7 +374,9 @@ def levels_query(ctx: PlanContext, sets: Sequence[tuple[str, ...]], cap: int) ->
     """
     factors = list(ctx.inputs.factors)
     alias = {c: f"f{i}" for i, c in enumerate(factors)}
-    weight = [S.alias(S.col(ctx.row_count), "rc")] if ctx.row_count else []
+    # the most frequent level is the default reference: count frequency-weighted rows
+    freq = ctx.raw_freq()
+    weight = [S.alias(freq, "rc")] if freq is not None else []
     inner = S.select(
         [*(S.alias(S.as_text(S.col(c)), alias[c]) for c in factors), *weight],
         ctx.source(),
@@ -390,7 +392,7 @@ def levels_query(ctx: PlanContext, sets: Sequence[tuple[str, ...]], cap: int) ->
         expressions=[
             S.alias(grouping, "g"),
             *(c.copy() for c in fcols),
-            S.alias(S.sum_(S.col("rc")) if ctx.row_count else S.count_star(), "n"),
+            S.alias(S.sum_(S.col("rc")) if freq is not None else S.count_star(), "n"),
         ]
     )
     counted = counted.from_(S.subquery(inner, "lv"), copy=False)

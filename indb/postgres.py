@@ -118,6 +118,27 @@ def cast_float_literals(tree: exp.Expression, to: str) -> exp.Expression:
     return tree
 
 
+def fence_subqueries(tree: exp.Expression) -> exp.Expression:
+    """Add ``OFFSET 0`` to every derived table so the planner keeps it as its own scan.
+
+    The IRLS plan stacks derived tables (eta, mean, working weights), each column reading
+    several of the stage below. PostgreSQL pulls simple subqueries up into the parent and
+    substitutes column references by their expressions, with no common-subexpression
+    elimination, so the expression size grows geometrically with the stage count (a gram
+    query ran for minutes instead of milliseconds). A subquery with OFFSET is never pulled up
+    (https://www.postgresql.org/docs/current/queries-with.html, "optimization fence").
+    """
+    for node in tree.find_all(exp.Subquery):
+        inner = node.this
+        if (
+            isinstance(inner, exp.Select)
+            and not inner.args.get("offset")
+            and not inner.args.get("limit")
+        ):
+            inner.offset(0, copy=False)
+    return tree
+
+
 class PostgresDialect(Dialect):
     """PostgreSQL (tested with 15): double literals, log-gamma series, ordered-set quantiles.
 
@@ -137,7 +158,8 @@ class PostgresDialect(Dialect):
         self.type_categories: dict[str, str] = {}
 
     def render(self, tree: exp.Expression) -> str:
-        return super().render(cast_float_literals(tree.copy(), "DOUBLE"))
+        tree = cast_float_literals(tree.copy(), "DOUBLE")
+        return super().render(fence_subqueries(tree))
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
         return cast_float_literals(super()._translate(node), "DOUBLE")

@@ -325,11 +325,19 @@ def parse_expression(sql: str, dialect: str) -> Expr:
     from sqlglot.errors import ParseError
 
     try:
-        tree = sqlglot.parse_one(sql, read=dialect)
+        trees = [t for t in sqlglot.parse(sql, read=dialect) if t is not None]
     except ParseError as err:
         raise ValueError(str(err).splitlines()[0]) from None
-    if tree is None:
+    if not trees:
         raise ValueError("empty expression")
+    if len(trees) > 1:
+        raise ValueError("it is not a single expression (it holds more than one statement)")
+    tree = trees[0]
+    banned = (exp.Block, exp.Command, exp.DDL, exp.DML, exp.Query)
+    if isinstance(tree, banned) or any(isinstance(n, banned) for n in tree.walk()):
+        raise ValueError(
+            "it is not a per-row expression (statements and subqueries are not allowed)"
+        )
     return tree
 
 

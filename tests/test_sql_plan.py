@@ -452,14 +452,6 @@ def test_probit_sql(con: duckdb.DuckDBPyConnection) -> None:
     assert np.max(np.abs(approx - special.ndtri(mu))) < 0.1
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "probit link_sql is sqrt(pi/8) * logit(mu); its comment claims 0.1 accuracy on "
-        "[0.01, 0.99] but the error reaches 0.55 at 0.01 and 0.99 (within 0.1 only on about "
-        "[0.097, 0.903]); 4.91 * (mu^0.14 - (1 - mu)^0.14) stays within 0.004"
-    ),
-)
 def test_probit_start_approximation_on_wide_range(con: duckdb.DuckDBPyConnection) -> None:
     link = make_link("probit")
     mu = np.linspace(0.01, 0.99, 99)
@@ -503,14 +495,6 @@ def test_unit_links_absolute_accuracy_in_tails(con: duckdb.DuckDBPyConnection, n
     assert np.max(np.abs(got["dmu"] - dmu(eta))) < 1e-15
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "cloglog inverse_sql is 1 - exp(-exp(eta)), which cancels for eta << 0: relative "
-        "error ~2e-8 at eta = -20 and ~2e-4 at eta = -30 (DuckDB has no expm1; a series "
-        "for small exp(eta) fixes it)"
-    ),
-)
 def test_cloglog_inverse_relative_accuracy_lower_tail(con: duckdb.DuckDBPyConnection) -> None:
     # R's binomial(link = "cloglog") computes -expm1(-exp(eta)) (recalled from memory), which
     # keeps full relative precision of small fitted probabilities.
