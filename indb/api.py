@@ -6,7 +6,9 @@ import dataclasses
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from indb import writeback as W
 from indb.engine import Engine, connect
+from indb.errors import SpecError
 from indb.fitter import fit_spec, plan_spec
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
 from indb.results import FitResult
@@ -121,6 +123,8 @@ def fit(
         start=start,
         compress=compress,
     )
+    if name is not None:
+        check_deploy_names(name, view_schema, registry_schema, spec, db)
     engine = connect(db, memory_limit=memory_limit, temp_directory=temp_directory, threads=threads)
     try:
         result = fit_spec(spec, engine, progress)
@@ -136,6 +140,72 @@ def fit(
             )
             result = with_deployment(result, outcome)
         return result
+    finally:
+        if engine is not db:
+            engine.close()
+
+
+def check_deploy_names(
+    name: str,
+    view_schema: str | None,
+    registry_schema: str,
+    spec: ModelSpec | None = None,
+    db: Any = None,
+) -> None:
+    """Refuse bad write-back names before any scan, not after a long fit."""
+    W.check_name(name, "model name")
+    if view_schema is not None:
+        W.check_name(view_schema, "view schema")
+    W.check_name(registry_schema, "registry schema")
+    if db is None or (isinstance(db, str) and db.strip() in ("", ":memory:")):
+        raise SpecError(
+            "name= writes the model to a database that outlives this call; give "
+            "db= a database file (an in-memory database would lose it)"
+        )
+    if spec is not None and spec.source.kind == "table":
+        last = spec.source.text.split(".")[-1].strip('"').lower()
+        if last == name.lower() and view_schema is None:
+            raise SpecError(
+                f"model name {name!r} is the name of the source table; the scoring "
+                "view would replace it: choose another name or a view schema"
+            )
+
+
+def scoring_sql(
+    name: str,
+    *,
+    db: Any,
+    version: int | None = None,
+    source: str | None = None,
+    intervals: bool | None = None,
+    dialect: str = "duckdb",
+    view_name: str | None = None,
+    registry_schema: str = DEFAULT_SCHEMA,
+) -> str:
+    """CREATE VIEW text that scores a stored model version, rendered for ``dialect``.
+
+    ``source`` defaults to the model's scoring source; ``view_name`` to the model name.
+    """
+    from indb.dialect import DIALECTS
+    from indb.registry import _relation
+    from indb.spec import Source
+
+    if dialect not in DIALECTS:
+        raise SpecError(
+            f"dialect {dialect!r} is not supported for scoring SQL; supported: "
+            f"{', '.join(sorted(DIALECTS))}"
+        )
+    engine = connect(db)
+    try:
+        reg = Registry(engine, registry_schema)
+        model = reg.model(name)
+        result = reg.load(name, version)
+        target = DIALECTS[dialect]()
+        src = Source.parse(source or model["score_source"])
+        rel = _relation(target, src)
+        use_intervals = bool(model.get("intervals")) if intervals is None else intervals
+        query = W.scoring_query(result, target, rel, intervals=use_intervals)
+        return target.render(W.create_view(None, view_name or name, query)) + ";"
     finally:
         if engine is not db:
             engine.close()

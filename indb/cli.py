@@ -576,6 +576,12 @@ def _deploy_arguments(options: dict[str, Any]) -> dict[str, Any]:
             f"--name {options['name']!r} writes the model into a database, but no --db was "
             "given; add --db PATH (a DuckDB file, created if the source is a Parquet/CSV file)"
         )
+    # Names are checked before the fit: the library checks them only when writing back,
+    # after a fit that may have taken minutes.
+    writeback.check_name(options["name"], "model name (--name)")
+    for key, what in (("view_schema", "--view-schema"), ("registry_schema", "--registry-schema")):
+        if options[key] is not None:
+            writeback.check_name(options[key], what)
     kwargs: dict[str, Any] = {"name": options["name"]}
     if options["hold"]:
         kwargs["promote"] = False
@@ -658,8 +664,9 @@ def _print_sql(statements: Sequence[tuple[str, str]], as_json: bool, note: str =
 def _deployment_text(deployment: dict[str, Any], db: str | None) -> str:
     name, version = deployment["model"], deployment["version"]
     if not deployment["created"]:
+        state = "live" if deployment["promoted"] else "held"
         return (
-            f"Model {name}: same spec and data as live version {version}; nothing new "
+            f"Model {name}: same spec and data as version {version} ({state}); nothing new "
             "recorded (--new-version records one anyway)."
         )
     if not deployment["promoted"]:
@@ -694,7 +701,7 @@ def _shown_warnings(result: FitResult, as_json: bool) -> tuple[str, ...]:
 
 def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
     spec = load_spec_file(path)
-    spec.name  # noqa: B018 - raises the spec file's "needs a model name" error early
+    _ = spec.name  # raises the spec file's "needs a model name" error before any work
     db = spec.engine.get("db")
     if dry_run:
         # A dry run writes nothing, not even a new empty database file: without the file
@@ -875,8 +882,12 @@ def fit_command(
     """
     with _library_errors(quiet) as caught:
         deploy = _deploy_arguments(options)
-        creates = bool(deploy) and not dry_run and Source.parse(source).kind == "file"
-        _check_database_path(options["db"], may_create=creates)
+        if deploy:
+            creates = not dry_run and Source.parse(source).kind == "file"
+            hint = "or give a Parquet/CSV path as SOURCE to create it (without --dry-run)"
+            _check_database_path(options["db"], may_create=creates, hint=hint)
+        else:
+            _check_database_path(options["db"])
         kwargs = _fit_arguments(options)
         if dry_run:
             statements = dry_run_model(source, options["response"], **kwargs)

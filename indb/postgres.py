@@ -162,7 +162,8 @@ class PostgresDialect(Dialect):
         return super().render(fence_subqueries(tree))
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
-        return cast_float_literals(super()._translate(node), "DOUBLE")
+        # The custom node stood as one operand; its translation may be an operator tree.
+        return cast_float_literals(S.paren(super()._translate(node)), "DOUBLE")
 
     def log_gamma(self, x: exp.Expression) -> exp.Expression:
         if self.server_version >= 180000:

@@ -152,33 +152,37 @@ class Registry:
         W.check_name(name, "model name")
         if view_schema is not None:
             W.check_name(view_schema, "view schema")
-        self.ensure()
+        fresh = not self.exists()
         h = spec_hash(result.spec)
         existing = self.models()
         current = next((m for m in existing if m["model_name"] == name), None)
-        if current is not None and current["live_version"] is not None and not force_new:
-            live = self._version_row(name, current["live_version"])
-            same = live["spec_hash"] == h and json.loads(live["fingerprint_json"]) == _jsonable(
+        latest = self._latest_version(name) if current is not None else None
+        if latest is not None and not force_new:
+            # the same spec on unchanged data adds no version (live or held alike), so a
+            # scheduled job that keeps failing a gate does not pile up identical versions
+            same = latest["spec_hash"] == h and json.loads(latest["fingerprint_json"]) == _jsonable(
                 result.fingerprint
             )
             if same:
                 return SaveOutcome(
                     name,
-                    int(live["version"]),
+                    int(latest["version"]),
                     False,
-                    False,
+                    latest["status"] == "live",
                     self._view_label(current),
                     "score_mean",
                     current["macro_name"],
                 )
-        rows = self._rows(
-            S.select(
-                [S.alias(exp_max("version"), "v")],
-                W.table_ref(self.schema, "model_version"),
-                where=W.where_model(name),
+        version = 1
+        if current is not None:  # numbers are never reused, dropped versions included
+            rows = self._rows(
+                S.select(
+                    [S.alias(exp_max("version"), "v")],
+                    W.table_ref(self.schema, "model_version"),
+                    where=W.where_model(name),
+                )
             )
-        )
-        version = int(rows[0]["v"] or 0) + 1 if rows else 1
+            version = int(rows[0]["v"] or 0) + 1 if rows else 1
         now = _now()
         source_text = score_source or result.spec.get("source", {}).get("text")
         model_row = {
@@ -277,6 +281,8 @@ class Registry:
         deploy = self._deploy_statements(name, result, model_row) if promote else []
         try:
             with self.engine.transaction():
+                if fresh:  # registry tables are created in the same transaction
+                    self.ensure()
                 if current is None:
                     self._run(W.insert_rows(self.schema, "model", [model_row]))
                 self._run(W.insert_rows(self.schema, "model_version", [vrow]))
@@ -309,6 +315,18 @@ class Registry:
             "score_mean",
             model_row["macro_name"] if self.d.supports_macros else None,
         )
+
+    def _latest_version(self, name: str) -> dict[str, Any] | None:
+        """The newest version that was not dropped (None if there is none)."""
+        rows = self._rows(
+            W.select_rows(
+                self.schema,
+                "model_version",
+                S.and_(W.where_model(name), S.ne(S.col("status"), S.text("dropped"))),
+                order=["version"],
+            )
+        )
+        return rows[-1] if rows else None
 
     def promote(self, name: str, version: int) -> None:
         """Point the stable view (and macro) at ``version``; the previous live version retires."""

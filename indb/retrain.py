@@ -60,6 +60,7 @@ class RetrainOutcome:
                 for c in self.checks
             ],
             "exit_code": self.exit_code,
+            "comparison": self.comparison,
             "scoring_view": (
                 self.result.deployment.get("scoring_view") if self.result is not None else None
             ),
@@ -192,8 +193,16 @@ def retrain(
             parent_version=live_version,
         )
         result = with_deployment(result, outcome)
-        if not outcome.created:
+        if not outcome.created and outcome.promoted:
             status = "unchanged"
+        elif not outcome.created:
+            # same spec and data as a held version: promote it if the gates now pass (they
+            # may have been loosened), otherwise it stays held and the exit code says so
+            if passed:
+                reg.promote(name, outcome.version)
+                status = "promoted"
+            else:
+                status = "held"
         elif live is None:
             status = "first" if passed else "held"
         else:

@@ -45,6 +45,10 @@ class SparkDialect(Dialect):
     name = "spark"
     sqlglot_name = "spark"
 
+    def _translate(self, node: exp.Expression) -> exp.Expression:
+        # The custom node stood as one operand; its translation may be an operator tree.
+        return S.paren(super()._translate(node))
+
     def log_gamma(self, x: exp.Expression) -> exp.Expression:
         return log_gamma_series(x)
 

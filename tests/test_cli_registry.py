@@ -165,8 +165,9 @@ def test_fit_with_name_writes_back_text_and_json(tmp_path: Path):
     expected = oracle.predict(exog, offset=np.log(ships["service"]))
     assert_allclose(view["score_mean"].to_numpy(), expected.to_numpy(), rtol=COEF_RTOL)
 
+    # the same spec on unchanged data matches the newest version (the held version 2)
     same = _ok(_run(*FIT, "--db", path, "--name", "ship_damage", "-q", "ships"))
-    assert "same spec and data as live version 1" in same.stdout
+    assert "same spec and data as version 2 (held)" in same.stdout
 
 
 def test_fit_progress_json_lines(tmp_path: Path):

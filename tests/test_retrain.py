@@ -343,6 +343,6 @@ def test_run_fits_and_deploys_a_spec_file(tmp_path: Path):
 
     # A second run on unchanged data records nothing new; --new-version forces one.
     text = _run("run", "-q", str(spec_path))
-    assert text.exit_code == 0 and "same spec and data as live version 1" in text.stdout
+    assert text.exit_code == 0 and "same spec and data as version 1 (live)" in text.stdout
     forced = _run("run", "-q", "--new-version", str(spec_path))
     assert forced.exit_code == 0 and "version 2 is live" in forced.stdout
