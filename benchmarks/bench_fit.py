@@ -348,7 +348,15 @@ def main(argv: list[str] | None = None) -> int:
         default=None,
         help="address-space cap of reference fits (default min(20, 0.85 x RAM) GiB)",
     )
+    ap.add_argument(
+        "--report-only",
+        metavar="JSON",
+        default=None,
+        help="only rewrite --out from saved raw measurements (results_last_run.json)",
+    )
     args = ap.parse_args(argv)
+    if args.report_only:
+        return report_only(args.report_only, args.out)
     sizes = sorted(set(args.rows + ([10**8] if args.with_1e8 else [])))
     known = {m.key: m for m in bench_data.MODELS}
     wanted = [k.strip() for k in args.models.split(",") if k.strip()]
@@ -389,17 +397,37 @@ def main(argv: list[str] | None = None) -> int:
         "indb_source_hash": code_hash,
         "load_start": load_start,
         "load_end": os.getloadavg(),
+        "finished": dt.datetime.now().strftime("%Y-%m-%d %H:%M"),
+        "machine": bench_report.machine_lines(),
     }
+    raw = os.path.join(args.data_dir, "results_last_run.json")
+    with open(raw, "w") as fh:
+        json.dump({"run": run, "results": results}, fh, indent=1, default=str)
+    write_report(results, run, models, args.out)
+    log(f"wrote {args.out} and {raw} ({elapsed / 60:.1f} min)")
+    return 0
+
+
+def write_report(
+    results: list[dict[str, Any]], run: dict[str, Any], models: list[bench_data.Model], out: str
+) -> None:
     report = bench_report.Report(results, run, models)
     print(report.text_table())
     for line in report.sanity_lines():
         print(line)
-    with open(args.out, "w") as fh:
+    with open(out, "w") as fh:
         fh.write(report.markdown())
-    raw = os.path.join(args.data_dir, "results_last_run.json")
-    with open(raw, "w") as fh:
-        json.dump({"run": run, "results": results}, fh, indent=1, default=str)
-    log(f"wrote {args.out} and {raw} ({elapsed / 60:.1f} min)")
+
+
+def report_only(raw: str, out: str) -> int:
+    """Rewrite the report from a saved ``results_last_run.json`` without measuring again."""
+    with open(raw) as fh:
+        saved = json.load(fh)
+    known = {m.key: m for m in bench_data.MODELS}
+    run = saved["run"]
+    run["regenerated_from"] = os.path.relpath(raw)
+    write_report(saved["results"], run, [known[k] for k in run["models"]], out)
+    log(f"wrote {out} from {raw}")
     return 0
 
 

@@ -137,11 +137,14 @@ class Report:
                     vs_indb = fmt(t / indb_t)
                     if limit:  # a timeout bounds the time from below
                         vs_indb = f"> {fmt(limit / indb_t)}" if math.isfinite(indb_t) else ""
+                    status = str(r.get("status", "?"))
+                    if not ok and not limit and isinstance(r.get("seconds"), int | float):
+                        status += f" after {fmt(float(r['seconds']))} s"
                     row = [
                         rows_label(n),
                         m.key,
                         TOOL_LABEL[tool],
-                        r.get("status", "?"),
+                        status,
                         f"> {fmt(float(limit))}" if limit else fmt(t),
                         fmt(r.get("cpu_seconds")),
                         fmt(r.get("iterations")) if ok else "",
@@ -331,12 +334,23 @@ class Report:
                 if math.isfinite(a) and math.isfinite(b):
                     v = (b / a) / k
                     label = f"{m.key} {rows_label(small)}->{rows_label(big2)}"
+                    if v < 0.8:
+                        label += " (sub-linear)"
                     checks5.append((label, v, 0.8 <= v <= 1.2))
+        sub = (
+            [
+                "sub-linear growth means fixed per-query costs (planning, Python) weigh more at "
+                "the smaller size"
+            ]
+            if any(v < 0.8 for _, v, _ in checks5)
+            else []
+        )
         lines.append(
             self._verdict(
                 "indb total time linear in rows within 20% (time ratio / rows ratio in 0.8-1.2)",
                 checks5,
                 "",
+                sub,
             )
         )
         return lines
@@ -447,9 +461,15 @@ class Report:
         md_lines = [
             "# indb fit benchmark: results",
             "",
-            f"Measured {dt.datetime.now().strftime('%Y-%m-%d %H:%M')} by "
-            "`benchmarks/bench_fit.py` (see `benchmarks/README.md` for the columns). "
-            "Regenerate with the command below; this file is overwritten by each run.",
+            f"Measured {run.get('finished') or dt.datetime.now().strftime('%Y-%m-%d %H:%M')}"
+            " by `benchmarks/bench_fit.py` (see `benchmarks/README.md` for the columns). "
+            "Regenerate with the command below; this file is overwritten by each run."
+            + (
+                f" This text was rewritten from the saved measurements "
+                f"(`{run['regenerated_from']}`, `--report-only`); the numbers are that run's."
+                if run.get("regenerated_from")
+                else ""
+            ),
             "",
             "## Command",
             "",
@@ -467,7 +487,7 @@ class Report:
             "",
             "## Machine",
             "",
-            *machine_lines(),
+            *(run.get("machine") or machine_lines()),
             f"- indb sources measured (snapshot taken at the start of the run): sha256 "
             f"{run['indb_source_hash']} of `indb/*`",
             "",
