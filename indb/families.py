@@ -48,6 +48,16 @@ class Family:
     unit_mean: bool = False  # mean lives in (0, 1)
     positive_mean: bool = False  # mean lives in (0, inf)
 
+    #: p in V(mu) = mu^p for the power-variance families (None for binomial and NB)
+    @property
+    def variance_power(self) -> float | None:
+        return None
+
+    def deviance_h_sql(self, y: Expr) -> Expr:
+        """h(y) with d(y, mu) = h(y) + a(mu) y + b(mu): the part of the unit deviance that
+        does not involve mu (what lets rows with one design row be folded exactly)."""
+        raise NotImplementedError
+
     def variance_sql(self, mu: Expr) -> Expr:
         raise NotImplementedError
 
@@ -82,6 +92,28 @@ class Family:
     def params(self) -> dict[str, float]:
         return {}
 
+    def saturated_sql(self, y: Expr, pw: Expr, trials: Expr | None) -> dict[str, Expr]:
+        """Per-row data-only terms whose sums give the log-likelihood from the deviance.
+
+        Every family here satisfies loglik = loglik_saturated - D / (2 phi); the saturated
+        part depends on the data (and phi) only, so its sums are taken once in the profile
+        scan and no pass over the data is needed after the fit. Keys: ``sat`` (the
+        saturated log-likelihood at phi = 1, for fixed-dispersion families), ``lny``
+        (ln y) and ``lpw`` (ln pw). Rows with pw = 0 are left out by the caller.
+        """
+        return {}
+
+    def log_likelihood(
+        self,
+        deviance: float,
+        phi: float,
+        sums: dict[str, float],
+        n: float,
+        constant_weight: float | None,
+    ) -> float | None:
+        """Log-likelihood from the deviance and the profile sums (None: needs a pass)."""
+        return None
+
     def describe(self) -> str:
         return self.name
 
@@ -111,6 +143,20 @@ class Gaussian(Family):
 
     def start_sql(self, y, pw, ybar):
         return y
+
+    @property
+    def variance_power(self):
+        return 0.0
+
+    def deviance_h_sql(self, y):
+        return S.mul(y, y)
+
+    def saturated_sql(self, y, pw, trials):
+        return {"lpw": S.ln(pw)}
+
+    def log_likelihood(self, deviance, phi, sums, n, constant_weight):
+        # -1/2 [ D / phi + n ln(2 pi phi) - sum ln pw ]
+        return -0.5 * (deviance / phi + n * math.log(2 * math.pi * phi) - sums["lpw"])
 
     def log_likelihood_sql(self, y, mu, pw, dispersion, trials):
         # -1/2 [ pw (y - mu)^2 / phi + ln(2 pi phi / pw) ]
@@ -152,6 +198,26 @@ class Binomial(Family):
     def start_sql(self, y, pw, ybar):
         return S.div(S.add(S.mul(pw, y), S.num(0.5)), S.add(pw, S.num(1.0)))
 
+    def deviance_h_sql(self, y):
+        one = S.num(1.0)
+        return S.mul(S.num(2.0), S.add(_xlog(y, y), _xlog(S.sub(one, y), S.sub(one, y))))
+
+    def saturated_sql(self, y, pw, trials):
+        one = S.num(1.0)
+        if trials is None:
+            return {"sat": S.mul(pw, S.add(_xlog(y, y), _xlog(S.sub(one, y), S.sub(one, y))))}
+        n, k = trials, S.mul(y, trials)
+        comb = S.sub(
+            S.sub(S.log_gamma(S.add(n, one)), S.log_gamma(S.add(k, one))),
+            S.log_gamma(S.add(S.sub(n, k), one)),
+        )
+        return {
+            "sat": S.mul(S.div(pw, n), S.add(comb, _xlog(k, y), _xlog(S.sub(n, k), S.sub(one, y))))
+        }
+
+    def log_likelihood(self, deviance, phi, sums, n, constant_weight):
+        return sums["sat"] - deviance / 2.0
+
     def log_likelihood_sql(self, y, mu, pw, dispersion, trials):
         one = S.num(1.0)
         if trials is None:
@@ -185,6 +251,19 @@ class Poisson(Family):
     def unit_deviance_sql(self, y, mu):
         return S.mul(S.num(2.0), S.sub(_xlogy_ratio(y, mu), S.sub(y, mu)))
 
+    @property
+    def variance_power(self):
+        return 1.0
+
+    def deviance_h_sql(self, y):
+        return S.mul(S.num(2.0), S.sub(_xlog(y, y), y))
+
+    def saturated_sql(self, y, pw, trials):
+        return {"sat": S.mul(pw, S.sub(S.sub(_xlog(y, y), y), S.log_gamma(S.add(y, S.num(1.0)))))}
+
+    def log_likelihood(self, deviance, phi, sums, n, constant_weight):
+        return sums["sat"] - deviance / 2.0
+
     def log_likelihood_sql(self, y, mu, pw, dispersion, trials):
         return S.mul(pw, S.sub(S.sub(_xlog(y, mu), mu), S.log_gamma(S.add(y, S.num(1.0)))))
 
@@ -205,6 +284,22 @@ class Gamma(Family):
 
     def unit_deviance_sql(self, y, mu):
         return S.mul(S.num(2.0), S.add(S.neg(S.ln(S.div(y, mu))), S.div(S.sub(y, mu), mu)))
+
+    @property
+    def variance_power(self):
+        return 2.0
+
+    def deviance_h_sql(self, y):
+        return S.sub(S.mul(S.num(-2.0), S.ln(y)), S.num(2.0))
+
+    def saturated_sql(self, y, pw, trials):
+        return {"lny": S.ln(y)}
+
+    def log_likelihood(self, deviance, phi, sums, n, constant_weight):
+        if constant_weight is None:
+            return None  # ln Gamma(pw / phi) with varying pw needs the rows
+        nu = constant_weight / phi
+        return -deviance / (2 * phi) + n * (nu * math.log(nu) - nu - math.lgamma(nu)) - sums["lny"]
 
     def log_likelihood_sql(self, y, mu, pw, dispersion, trials):
         # nu = pw / phi: nu ln(nu y / mu) - nu y / mu - lgamma(nu) - ln y
@@ -233,6 +328,22 @@ class InverseGaussian(Family):
     def unit_deviance_sql(self, y, mu):
         r = S.sub(y, mu)
         return S.div(S.mul(r, r), S.mul(y, mu, mu))
+
+    @property
+    def variance_power(self):
+        return 3.0
+
+    def deviance_h_sql(self, y):
+        return S.div(S.num(1.0), y)
+
+    def saturated_sql(self, y, pw, trials):
+        return {"lny": S.ln(y), "lpw": S.ln(pw)}
+
+    def log_likelihood(self, deviance, phi, sums, n, constant_weight):
+        # -1/2 [ D / phi + n ln(2 pi phi) + 3 sum ln y - sum ln pw ]
+        return -0.5 * (
+            deviance / phi + n * math.log(2 * math.pi * phi) + 3.0 * sums["lny"] - sums["lpw"]
+        )
 
     def log_likelihood_sql(self, y, mu, pw, dispersion, trials):
         r = S.sub(y, mu)
@@ -290,6 +401,20 @@ class Tweedie(Family):
     def params(self):
         return {"power": self.var_power}
 
+    @property
+    def variance_power(self):
+        return self.var_power
+
+    def deviance_h_sql(self, y):
+        p = self.var_power
+        if p == 1:
+            return Poisson().deviance_h_sql(y)
+        if p == 2:
+            return Gamma().deviance_h_sql(y)
+        if p == 0:
+            return Gaussian().deviance_h_sql(y)
+        return S.div(S.mul(S.num(2.0), S.power(y, S.num(2 - p))), S.num((1 - p) * (2 - p)))
+
     def describe(self) -> str:
         return f"tweedie(power={self.var_power:g})"
 
@@ -339,6 +464,25 @@ class NegativeBinomial(Family):
 
     def params(self):
         return {"theta": self.theta}
+
+    def deviance_h_sql(self, y):
+        th = S.num(self.theta)
+        return S.mul(S.num(2.0), S.sub(_xlog(y, y), S.mul(S.add(y, th), S.ln(S.add(y, th)))))
+
+    def saturated_sql(self, y, pw, trials):
+        th = S.num(self.theta)
+        one = S.num(1.0)
+        row = S.add(
+            S.sub(
+                S.sub(S.log_gamma(S.add(y, th)), S.log_gamma(S.add(y, one))),
+                S.num(math.lgamma(self.theta) - self.theta * math.log(self.theta)),
+            ),
+            S.sub(_xlog(y, y), S.mul(S.add(y, th), S.ln(S.add(y, th)))),
+        )
+        return {"sat": S.mul(pw, row)}
+
+    def log_likelihood(self, deviance, phi, sums, n, constant_weight):
+        return sums["sat"] - deviance / 2.0
 
     def describe(self) -> str:
         return f"negative_binomial(theta={self.theta:.6g})"

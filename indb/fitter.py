@@ -74,6 +74,8 @@ class _Run:
     phase: str = "fit"
     temp_tables: list[str] = dataclasses.field(default_factory=list)
     compressed: tuple[int, int, float] | None = None
+    original_ctx: P.PlanContext | None = None  # the uncompressed source, for the log-lik
+    fit_ybar: float | None = None  # weighted mean response of the folded problem
 
     def drop_temp(self) -> None:
         for name in self.temp_tables:
@@ -209,6 +211,8 @@ class _Summary:
     column_sums: dict[str, float]
     sum_fpwy: float
     off_mean: float = 0.0
+    ll_sums: dict[str, float] = dataclasses.field(default_factory=dict)
+    constant_weight: float | None = None
 
 
 def _summarize(ctx: P.PlanContext, row: dict, values: tuple[Value, ...]) -> _Summary:
@@ -261,7 +265,10 @@ def _summarize(ctx: P.PlanContext, row: dict, values: tuple[Value, ...]) -> _Sum
                 raise SpecError(f"predictor {v.label!r} is 0 in every row used; leave it out")
             out_values.append(dataclasses.replace(v, scale=rms))
     column_sums = {v.label: float(row[f"{v.alias}_mean"]) * n for v in values[1:]}
+    pw_min, pw_max = row["pw_min"], row["pw_max"]
     return _Summary(
+        ll_sums={k[3:]: float(v) for k, v in row.items() if k.startswith("ll_") and v is not None},
+        constant_weight=float(pw_min) if pw_min is not None and pw_min == pw_max else None,
         off_mean=float(row["off_mean"] or 0.0),
         column_sums=column_sums,
         sum_fpwy=float(row["sum_fpwy"]),
@@ -607,13 +614,18 @@ COMPRESS_RATIO = 10  # compress when the sample shows >= 10 rows per distinct de
 def _maybe_compress(ctx: P.PlanContext, run: _Run, n_kept: int) -> P.PlanContext:
     """Fold the source to its distinct design rows when that pays (or when asked).
 
-    The folded table keeps every column that determines a row's contribution (response,
-    predictors, offset/weight/trials columns), so deviance, Pearson chi-squared and the
-    log-likelihood stay exact; frequency weights are summed. ``auto`` decides from the
-    distinct design rows among the first kept rows.
+    Rows sharing a design row are merged with summed weights, the weighted mean response and
+    the constants that keep deviance and Pearson chi-squared exact (``plan.compress_query``);
+    a log-link offset folds into response and weight. The log-likelihood is summed over the
+    original rows after the fit. ``auto`` decides from the distinct design rows among the
+    first kept rows. Not used when the negative binomial theta is estimated (its deviance
+    constants move with theta).
     """
-    mode = ctx.spec.compress
-    if mode == "never" or (mode == "auto" and n_kept < AUTO_COMPRESS_MIN_ROWS):
+    spec = ctx.spec
+    mode = spec.compress
+    if mode == "never" or spec.estimate_theta:
+        return ctx
+    if mode == "auto" and n_kept < AUTO_COMPRESS_MIN_ROWS:
         return ctx
     name = f"indb_fold_{uuid.uuid4().hex[:12]}"
     try:
@@ -623,24 +635,55 @@ def _maybe_compress(ctx: P.PlanContext, run: _Run, n_kept: int) -> P.PlanContext
             raise
         return ctx
     if mode == "auto":
-        row = run.one_row(P.sample_distinct_query(ctx))
-        d, s = int(row["d"] or 0), int(row["s"] or 0)
-        if s == 0 or d * COMPRESS_RATIO > s:
-            return ctx
+        if not P.key_columns(ctx):
+            pass  # intercept-only design: one row, always worth it
+        else:
+            row = run.one_row(P.sample_distinct_query(ctx))
+            d, s = int(row["d"] or 0), int(row["s"] or 0)
+            if s == 0 or d * COMPRESS_RATIO > s:
+                return ctx
     t0 = time.perf_counter()
     for stmt in stmts:
         run.engine.execute(stmt)
     run.temp_tables.append(name)
-    groups = int(
-        run.one_row(S.select([S.alias(S.count_star(), "n")], ctx.dialect.table(name)))["n"]
+    table = ctx.dialect.table(name)
+    sums = run.one_row(
+        S.select(
+            [
+                S.alias(S.count_star(), "n"),
+                S.alias(S.sum_(S.mul(S.col(P.FOLD_F), S.col(P.FOLD_PW), S.col(P.FOLD_Y))), "sy"),
+                S.alias(S.sum_(S.mul(S.col(P.FOLD_F), S.col(P.FOLD_PW))), "sw"),
+            ],
+            table,
+        )
     )
+    groups = int(sums["n"])
+    sw = float(sums["sw"] or 0.0)
+    run.fit_ybar = float(sums["sy"]) / sw if sw > 0 else None
+    folded_offset = P.folds_offset(ctx)
     keys = P.key_columns(ctx)
     inputs = dataclasses.replace(
-        ctx.inputs, frequency_weight=S.col(P.FREQ), model_columns=(*keys, P.FREQ)
+        ctx.inputs,
+        response=P.FOLD_Y,
+        response_kind="numeric",
+        offset=None if folded_offset else ctx.inputs.offset,
+        weight=S.col(P.FOLD_PW),
+        frequency_weight=S.col(P.FOLD_F),
+        trials=None,
+        model_columns=(*keys, P.FOLD_Y, P.FOLD_PW, P.FOLD_F),
     )
-    spec = dataclasses.replace(ctx.spec, source=Source("table", name))
+    new_spec = dataclasses.replace(
+        spec,
+        source=Source("table", name),
+        response=P.FOLD_Y,
+        offset=None if folded_offset else spec.offset,
+        weight=None,
+        frequency_weight=None,
+        trials=None,
+    )
+    run.original_ctx = ctx
     run.compressed = (n_kept, groups, time.perf_counter() - t0)
-    return P.PlanContext(spec, inputs, ctx.dialect, row_count=P.ROWCOUNT)
+    return P.PlanContext(new_spec, inputs, ctx.dialect, row_count=P.ROWCOUNT, folded=True)
 
 
 def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
@@ -694,6 +737,9 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
     report_spec = spec
     ctx, design, summary, n_total, n_kept, by_col = _prepare(spec, run.engine, run)
     spec = ctx.spec
+    report_summary = summary
+    if run.fit_ybar is not None:  # folded rows: the response mean of the folded problem
+        summary = dataclasses.replace(summary, ybar=run.fit_ybar)
 
     warn_msgs: list[str] = []
     if spec.estimate_theta:
@@ -731,7 +777,7 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
         design,
         run,
         state,
-        summary,
+        report_summary,
         n_total,
         n_kept,
         by_col,
@@ -923,6 +969,19 @@ def _log_likelihood(ctx, design, run, beta, sums, summary, dispersion) -> float:
         phi = sums.deviance / summary.n_df  # maximum-likelihood dispersion
     if not (math.isfinite(phi) and phi > 0):
         return math.nan
+    if summary.ll_sums or not fam.saturated_sql(S.col("y"), S.col("pw"), None):
+        # loglik = saturated loglik - D / (2 phi): from the profile sums, no extra scan
+        ll = fam.log_likelihood(
+            sums.deviance, phi, summary.ll_sums, summary.n_df, summary.constant_weight
+        )
+        if ll is not None:
+            return float(ll)
+    if run.original_ctx is not None:
+        # folded rows carry no per-row terms such as ln Gamma(y + 1): sum over the source
+        ctx = dataclasses.replace(
+            run.original_ctx,
+            spec=dataclasses.replace(run.original_ctx.spec, family=ctx.spec.family),
+        )
     tree = P.loglik_query(ctx, design, beta, phi)
     if tree is None:
         return math.nan

@@ -56,6 +56,8 @@ class PlanContext:
     dialect: Dialect
     #: on a compressed table: the column holding how many source rows each row stands for
     row_count: str | None = None
+    #: rows are folded design rows carrying deviance and Pearson constants (compress_query)
+    folded: bool = False
 
     def count_rows(self) -> Expr:
         """COUNT(*) of source rows (SUM of the row-count column on a compressed table)."""
@@ -267,14 +269,28 @@ ROWCOUNT = "indb_rows"
 SAMPLE_ROWS = 100_000
 
 
+FOLD_Y, FOLD_PW, FOLD_F = "indb_y", "indb_pw", "indb_f"
+FOLD_DCONST, FOLD_Q = "indb_dconst", "indb_q"
+
+
+def folds_offset(ctx: PlanContext) -> bool:
+    """With a log link and V(mu) = mu^p, an offset folds into the response and weight:
+    d(y, e mu) = e^(2-p) d(y/e, mu) (and the same for the score and information), so rows
+    with different offsets but one design row can be merged."""
+    return (
+        ctx.inputs.offset is not None
+        and ctx.spec.link.name == "log"
+        and ctx.spec.family.variance_power is not None
+    )
+
+
 def key_columns(ctx: PlanContext) -> list[str]:
-    """Source columns that determine every per-row model quantity except the frequency
-    weight: response, predictors and the columns of the offset, weight and trials."""
+    """Columns that define a distinct design row: the predictors, plus the offset's
+    columns when the offset cannot be folded into the weights."""
     inputs = ctx.inputs
-    out = [inputs.response, *inputs.factors, *inputs.numerics]
-    for e in (inputs.offset, inputs.weight, inputs.trials):
-        if e is not None:
-            out += S.referenced_columns(e)
+    out = [*inputs.factors, *inputs.numerics]
+    if inputs.offset is not None and not folds_offset(ctx):
+        out += S.referenced_columns(inputs.offset)
     seen: list[str] = []
     for c in out:
         if c not in seen:
@@ -298,15 +314,81 @@ def sample_distinct_query(ctx: PlanContext) -> exp.Select:
 
 
 def compress_query(ctx: PlanContext) -> exp.Select:
-    """The source folded to its distinct design rows: every key column, the summed
-    frequency weight and the number of source rows each distinct row stands for."""
+    """The source folded to its distinct design rows, exactly.
+
+    Per design row: F = sum(f), W = sum(f pw), Y = sum(f pw y), and the constants that keep
+    the deviance and Pearson chi-squared exact: d(y, mu) = h(y) + a(mu) y + b(mu), so the
+    rows' deviance is W d(Y/W, mu) + [sum(f pw h(y)) - W h(Y/W)], and their Pearson sum is
+    W (Y/W - mu)^2 / V + [sum(f pw y^2) - Y^2 / W] / V. A foldable offset e = exp(offset)
+    becomes y/e and pw e^(2-p) first.
+    """
+    fam = ctx.spec.family
     keys = [S.col(c) for c in key_columns(ctx)]
-    fw = ctx.raw_freq() or S.num(1.0)
-    return S.select(
-        [*(k.copy() for k in keys), S.alias(S.psum(fw), FREQ), S.alias(S.count_star(), ROWCOUNT)],
+    f = ctx.raw_freq() or S.num(1.0)
+    y, pw = ctx.response(), ctx.prior_weight()
+    if folds_offset(ctx):
+        off = ctx.raw_offset()
+        assert off is not None
+        y = S.div(y, S.exp_(off.copy()))
+        p = fam.variance_power
+        if p != 2.0:
+            pw = S.mul(pw, S.exp_(S.mul(S.num(2.0 - p), off.copy())))
+    inner = S.select(
+        [*(k.copy() for k in keys), S.alias(f, "f"), S.alias(pw, "pw"), S.alias(y, "y")],
         ctx.source(),
         where=ctx.kept(),
+    )
+    fpw = S.mul(S.col("f"), S.col("pw"))
+    fpwy = S.mul(fpw.copy(), S.col("y"))
+    grouped = S.select(
+        [
+            *(k.copy() for k in keys),
+            S.alias(S.psum(S.col("f")), "sf"),
+            S.alias(S.psum(fpw), "sw"),
+            S.alias(S.psum(fpwy), "sy"),
+            S.alias(S.psum(S.mul(fpwy.copy(), S.col("y"))), "sy2"),
+            S.alias(S.psum(S.mul(fpw.copy(), fam.deviance_h_sql(S.col("y")))), "sh"),
+            S.alias(S.count_star(), ROWCOUNT),
+        ],
+        S.subquery(inner, "fold_in"),
         group_by=[k.copy() for k in keys],
+    )
+    sw, sy = S.col("sw"), S.col("sy")
+    ybar = S.case([(S.gt(sw, S.num(0.0)), S.div(sy, sw))], S.num(0.0))
+    pos = S.gt(sw.copy(), S.num(0.0))
+    return S.select(
+        [
+            *(k.copy() for k in keys),
+            S.alias(S.col("sf"), FOLD_F),
+            S.alias(
+                S.case(
+                    [(S.gt(S.col("sf"), S.num(0.0)), S.div(sw.copy(), S.col("sf")))], S.num(0.0)
+                ),
+                FOLD_PW,
+            ),
+            S.alias(ybar, FOLD_Y),
+            S.alias(
+                S.case(
+                    [(pos, S.sub(S.col("sh"), S.mul(sw.copy(), fam.deviance_h_sql(ybar.copy()))))],
+                    S.num(0.0),
+                ),
+                FOLD_DCONST,
+            ),
+            S.alias(
+                S.case(
+                    [
+                        (
+                            pos.copy(),
+                            S.sub(S.col("sy2"), S.div(S.mul(sy.copy(), sy.copy()), sw.copy())),
+                        )
+                    ],
+                    S.num(0.0),
+                ),
+                FOLD_Q,
+            ),
+            S.col(ROWCOUNT),
+        ],
+        S.subquery(grouped, "fold"),
     )
 
 
@@ -351,6 +433,9 @@ def profile_query(
     ]
     for i, (_, cond) in enumerate(domain_checks(ctx)):
         cols.append(S.alias(kflag(cond), f"chk_{i}"))
+    for key, term in saturated_terms(ctx).items():
+        positive = S.case([(S.gt(pw.copy(), S.num(0.0)), S.mul(fw.copy(), term))])
+        cols.append(S.alias(S.psum(k(positive)), f"ll_{key}"))
     for v in values[1:]:
         raw = ctx.value_sql(v, knots, standardized=False)
         cols += [
@@ -363,6 +448,19 @@ def profile_query(
         ]
     inner = S.select([exp.Star(), S.alias(ctx.kept(), KEPT)], ctx.source())
     return S.select(cols, S.subquery(inner, "p"))
+
+
+def saturated_terms(ctx: PlanContext) -> dict[str, Expr]:
+    """Data-only per-row terms for the log-likelihood (see Family.saturated_sql); none when
+    theta is still to be estimated. Logarithms are guarded: out-of-domain rows are reported
+    by the domain checks of the same scan, and their terms are never used."""
+    if ctx.spec.estimate_theta:
+        return {}
+    y = ctx.response()
+    yg = S.greatest(y, S.num(1e-300))
+    return ctx.spec.family.saturated_sql(
+        yg, S.greatest(ctx.prior_weight(), S.num(1e-300)), ctx.raw_trials()
+    )
 
 
 def levels_query(ctx: PlanContext, sets: Sequence[tuple[str, ...]], cap: int) -> exp.Select:
@@ -429,6 +527,8 @@ def rows_select(ctx: PlanContext, design: Design) -> exp.Select:
     t = ctx.raw_trials()
     if t is not None:
         cols.append(S.alias(t, "nt"))
+    if ctx.folded:
+        cols += [S.alias(S.col(FOLD_DCONST), "dconst"), S.alias(S.col(FOLD_Q), "q")]
     return S.select(cols, ctx.source(), where=ctx.kept())
 
 
@@ -560,7 +660,13 @@ def _eta_from_beta(
 
 
 def _extra_row_cols(ctx: PlanContext) -> list[str]:
-    return ["nt"] if ctx.raw_trials() is not None else []
+    out = ["nt"] if ctx.raw_trials() is not None else []
+    return out + (["dconst", "q"] if ctx.folded else [])
+
+
+def _folded_dev(ctx: PlanContext, dev: Expr) -> Expr:
+    """Add a folded row's deviance constant (0 on ordinary rows)."""
+    return S.add(dev, S.col("dconst")) if ctx.folded else dev
 
 
 def _eta_start(ctx: PlanContext, design: Design, ybar: float) -> exp.Select:
@@ -654,7 +760,7 @@ def _null_extras(ctx: PlanContext, b0: float) -> list[tuple[str, Expr]]:
     return [
         ("fnullw", S.mul(fw, w0)),
         ("fnullwz", S.mul(fw, w0.copy(), z0)),
-        ("fnulldev", S.mul(fw, pw, fam.unit_deviance_sql(y, n_mu))),
+        ("fnulldev", _folded_dev(ctx, S.mul(fw, pw, fam.unit_deviance_sql(y, n_mu)))),
     ]
 
 
@@ -690,8 +796,16 @@ def _work_stage(
         *(S.col(v.alias) for v in design.values[1:]),
         S.alias(S.mul(fw, w), "fww"),
         S.alias(S.mul(fw, w, z), "fwwz"),
-        S.alias(S.mul(fw, pw, fam.unit_deviance_sql(y, mu)), "fdev"),
-        S.alias(S.div(S.mul(fw, pw, resid, resid), var), "fpear"),
+        S.alias(_folded_dev(ctx, S.mul(fw, pw, fam.unit_deviance_sql(y, mu))), "fdev"),
+        S.alias(
+            S.div(
+                S.add(S.mul(fw, pw, resid, resid), S.col("q"))
+                if ctx.folded
+                else S.mul(fw, pw, resid, resid),
+                var,
+            ),
+            "fpear",
+        ),
         S.col("bad"),
         S.col("fw"),
     ]
@@ -731,7 +845,9 @@ def gram_query(
         extra.append(
             (
                 "fnulldev",
-                S.mul(S.col("fw"), S.col("pw"), fam.unit_deviance_sql(S.col("y"), null_mu)),
+                _folded_dev(
+                    ctx, S.mul(S.col("fw"), S.col("pw"), fam.unit_deviance_sql(S.col("y"), null_mu))
+                ),
             )
         )
     work = _work_stage(ctx, design, mean, extra, keep)

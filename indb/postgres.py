@@ -165,6 +165,10 @@ class PostgresDialect(Dialect):
         # The custom node stood as one operand; its translation may be an operator tree.
         return cast_float_literals(S.paren(super()._translate(node)), "DOUBLE")
 
+    def materialize(self, name: str, query: exp.Expression) -> list[str]:
+        # a temporary table lives in the session's own schema and disappears with it
+        return [f"CREATE TEMPORARY TABLE {self.quote(name)} AS {self.render(query)}"]
+
     def log_gamma(self, x: exp.Expression) -> exp.Expression:
         if self.server_version >= 180000:
             return exp.Anonymous(this="LGAMMA", expressions=[x])

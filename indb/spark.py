@@ -16,8 +16,6 @@ Engine differences handled here rather than in the shared plan:
 from __future__ import annotations
 
 import contextlib
-import os
-import shutil
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -44,6 +42,23 @@ class SparkDialect(Dialect):
 
     name = "spark"
     sqlglot_name = "spark"
+
+    def render(self, tree: exp.Expression) -> str:
+        tree = tree.copy()
+        for node in list(tree.find_all(exp.Anonymous)):
+            # GROUPING(a, b, ...) -- the bitmask over several grouping columns, as in
+            # DuckDB and PostgreSQL -- is GROUPING_ID(a, b, ...) in Spark, whose GROUPING
+            # takes one column (same bit order: the first column is the most significant).
+            if str(node.this).upper() == "GROUPING":
+                node.set("this", "GROUPING_ID")
+        return super().render(tree)
+
+    def materialize(self, name: str, query: exp.Expression) -> list[str]:
+        # a session-private temporary view, computed once and kept in executor memory
+        return [f"CACHE TABLE {self.quote(name)} AS {self.render(query)}"]
+
+    def drop_materialized(self, name: str) -> str:
+        return f"DROP VIEW IF EXISTS {self.quote(name)}"  # uncaches it too
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
         # The custom node stood as one operand; its translation may be an operator tree.
@@ -84,14 +99,6 @@ class SparkDialect(Dialect):
         if base in _SPARK_TEXT:
             return "text"
         return super().type_kind(type_name)
-
-
-def find_java_home() -> str | None:
-    """JAVA_HOME derived from the ``java`` on PATH (``<home>/bin/java``), if any."""
-    java = shutil.which("java")
-    if java is None:
-        return None
-    return str(Path(os.path.realpath(java)).parent.parent)
 
 
 class SparkEngine(Engine):
@@ -138,24 +145,33 @@ class SparkEngine(Engine):
             self.session = session
             self._owned = False
             return
-        settings = {"spark.sql.shuffle.partitions": "4", "spark.ui.enabled": "false"}
+        # a driver inside a library call: no web UI, no progress bar on the terminal
+        settings = {
+            "spark.ui.enabled": "false",
+            "spark.ui.showConsoleProgress": "false",
+        }
         settings.update(conf or {})
         try:
             if remote is not None:
                 builder = SparkSession.builder.remote(remote)
                 settings = dict(conf or {})  # server-side settings belong to the server
             else:
-                if "JAVA_HOME" not in os.environ and (home := find_java_home()):
-                    os.environ["JAVA_HOME"] = home
+                # spark-class finds `java` on PATH when JAVA_HOME is unset
                 builder = SparkSession.builder.master(master).appName("indb")
             for key, val in settings.items():
                 builder = builder.config(key, val)
-            existing = SparkSession.getActiveSession() if remote is None else None
-            self.session = builder.getOrCreate()
+            if remote is not None:
+                # a new server-side session of our own (getOrCreate could hand back the
+                # caller's default session, which close() must not stop)
+                self.session = builder.create()
+                self._owned = True
+            else:
+                existing = SparkSession.getActiveSession()
+                self.session = builder.getOrCreate()
+                self._owned = existing is None
         except self._errors as err:
             where = remote if remote is not None else master
             raise EngineError(f"cannot start a Spark session for {where!r}: {_first(err)}") from err
-        self._owned = existing is None
 
     def _df(self, sql: str) -> Any:
         try:
