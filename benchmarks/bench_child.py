@@ -60,7 +60,10 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
         """The stock DuckDB adapter, noting each query's text and engine time."""
 
         def __init__(self) -> None:
-            super().__init__(None)
+            # DuckDB's own memory cap: the table (up to 8 GB of Parquet at 1e8 rows) never
+            # has to fit; spill files go to the temp directory
+            super().__init__(None, memory_limit=job.get("memory_limit"),
+                             temp_directory=job.get("temp_directory"))
             self.calls: list[tuple[str, float]] = []
 
         def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
@@ -117,10 +120,11 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
     # EXPLAIN parses, binds, optimizes and builds the physical plan without running it; the
     # full run's time is already in gram_engine_seconds, so the query runs only once more,
     # under DuckDB's profiler.
-    if fit_gram:
+    # (not on the compressed route: its folded table lived only during the fit)
+    if fit_gram and "indb_fold_" not in fit_gram[-1][0]:
         sql = fit_gram[-1][0]
         con = duckdb.connect()
-        con.execute("SET enable_progress_bar = false")
+        DuckDBEngine(con)  # the session settings indb uses (optimizer rules, progress bar)
         out["gram_sql_chars"] = len(sql)
         out["explain_seconds"] = _best(lambda: con.execute("EXPLAIN " + sql).fetchall())
         out["profile"] = _profile(con, sql)

@@ -42,6 +42,8 @@ import duckdb
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 CHILD = os.path.join(HERE, "bench_child.py")
+MEMORY_LIMIT = "512MB"  # DuckDB memory_limit for every indb fit, far below the data at 1e8
+SPILL_DIR = os.path.join(HERE, "data", "spill")
 GIB = 1024**3
 # the model whose references always run, even when predicted to fail, to record the outcome
 HEADLINE = "poisson"
@@ -284,7 +286,8 @@ def bench_size(
         if distinct is not None:
             results[-1]["distinct_design_rows"] = distinct
         log(f"  {model.key}: floor {floor:.3f} s")
-        job = {"tool": "indb", "model": model.key, "path": path}
+        job = {"tool": "indb", "model": model.key, "path": path,
+               "memory_limit": MEMORY_LIMIT, "temp_directory": SPILL_DIR}
         r = run_child(job, args.indb_timeout, args.pythonpath)
         results.append({**base, "tool": "indb", **r})
         log(f"  {model.key}: indb {r.get('status')} {_secs(r)}")

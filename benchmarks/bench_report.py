@@ -231,6 +231,7 @@ class Report:
                     if v / op_total >= 0.05
                 )
                 top = prof.get("optimizer_top") or ["", math.nan]
+                floor_cpu = float((self.ok(n, m.key, "floor") or {}).get("cpu_seconds", math.nan))
                 out.append(
                     [
                         rows_label(n),
@@ -244,6 +245,8 @@ class Report:
                         fmt(gram_engine),
                         fmt(r.get("explain_seconds")),
                         f"{top[0]} {fmt(top[1])}",
+                        fmt(prof.get("cpu_time")),
+                        fmt(float(prof.get("cpu_time") or math.nan) / floor_cpu),
                         shares,
                         fmt(r.get("gram_sql_chars")),
                     ]
@@ -414,11 +417,15 @@ class Report:
                 in_db = float(np.mean(r.get("gram_engine_seconds") or [math.nan]))
                 plan = float(r.get("explain_seconds") or math.nan)
                 exec_only = max(in_db - plan, 0.0)  # both are noisy; never below zero
+                prof = r.get("profile") or {}
+                floor_cpu = float((self.ok(n, m.key, "floor") or {}).get("cpu_seconds", math.nan))
+                cpu_ratio = float(prof.get("cpu_time") or math.nan) / floor_cpu
                 parts.append(
                     f"`{m.key}` {fmt(scan)} s/scan = {fmt(scan / floor)}x floor: planning "
                     f"{fmt(plan)} s ({fmt(100 * plan / scan, 2)}%), execution about "
                     f"{fmt(exec_only)} s ({fmt(exec_only / floor)}x floor), Python "
-                    f"{fmt(scan - in_db)} s; {r.get('queries')} queries, whole fit "
+                    f"{fmt(scan - in_db)} s; CPU of one IRLS query {fmt(cpu_ratio)}x the "
+                    f"floor's; {r.get('queries')} queries, whole fit "
                     f"{fmt(float(r['seconds']) / floor)}x floor"
                 )
             if parts:
@@ -534,8 +541,11 @@ class Report:
             "fit-phase scan, run again alone): planning = `EXPLAIN` (parse, bind, optimize, "
             'physical plan, no execution), best of 3, to set against "in DuckDB s/scan" '
             "(the mean time of the IRLS queries inside the fit, planning included); the "
-            "busiest optimizer pass and the operator shares come from DuckDB's detailed "
-            "profile of one more run of that query.",
+            "busiest optimizer pass, the CPU seconds of the query's operators (all threads) and "
+            "the operator shares come from DuckDB's detailed profile of one more run of that "
+            "query (profiling adds some overhead of its own); CPU / floor CPU sets those CPU "
+            "seconds against the floor scan's (CPU time suffers less than wall time from other "
+            "load on the machine).",
             "",
             *markdown_table(
                 (
@@ -550,6 +560,8 @@ class Report:
                     "in DuckDB s/scan",
                     "planning s",
                     "top optimizer pass s",
+                    "query CPU s",
+                    "CPU / floor CPU",
                     "operator shares",
                     "SQL chars",
                 ),
