@@ -234,14 +234,16 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
                     S.gt(y, S.num(fam.y_max)),
                 )
             )
-    for label, e in (
-        ("offset", ctx.raw_offset()),
-        ("weight", ctx.raw_weight()),
-        ("frequency_weight", ctx.raw_freq()),
-        ("trials", t),
+    for label, text, e in (
+        ("offset", spec.offset, ctx.raw_offset()),
+        ("weight", spec.weight, ctx.raw_weight()),
+        ("frequency_weight", spec.frequency_weight, ctx.raw_freq()),
+        ("trials", spec.trials, t),
     ):
         if e is not None:
-            checks.append((f"{label} expression is NaN or infinite", S.not_(S.is_finite(e))))
+            checks.append(
+                (f"{label} expression {text!r} is NaN or infinite", S.not_(S.is_finite(e)))
+            )
     if ctx.raw_weight() is not None:
         checks.append(
             (f"weight expression {spec.weight!r} is negative", S.lt(ctx.raw_weight(), S.num(0.0)))

@@ -51,6 +51,7 @@ _STIRLING = (
 )
 _HALF_LN_2PI = 0.5 * math.log(2.0 * math.pi)
 LOG_GAMMA_SHIFT = 6.0
+_SERIES_CAP = 1e8
 
 
 def log_gamma_series(x: S.Expr) -> S.Expr:
@@ -58,22 +59,28 @@ def log_gamma_series(x: S.Expr) -> S.Expr:
 
     Arguments below 6 are shifted by the recurrence ln Gamma(x) = ln Gamma(x + 6) -
     ln(x (x+1) ... (x+5)); Stirling's series with ten terms is then used at z >= 6 (first
-    omitted term < 1e-15). Large arguments are not shifted, so the product never overflows.
+    omitted term < 1e-15). Large arguments are not shifted, so the product never overflows;
+    the result overflows (an error in PostgreSQL) only where ln Gamma itself exceeds 1.8e308.
     Checked against ``scipy.special.gammaln`` in ``tests/engines``.
     """
     small = S.lt(x, S.num(LOG_GAMMA_SHIFT))
     z = S.case([(small, S.add(x, S.num(LOG_GAMMA_SHIFT)))], x)
-    z2 = S.mul(z, z)
+    # The series is a correction of order 1/(12 z): beyond z = 1e8 it is below 1e-18 of the
+    # result, so it is evaluated at min(z, 1e8), where z^2 cannot overflow (PostgreSQL raises
+    # on float overflow and underflow instead of returning inf or 0).
+    zs = S.least(z.copy(), S.num(_SERIES_CAP))
+    zs2 = S.mul(zs, zs.copy())
     series: S.Expr = S.num(_STIRLING[-1])
     for c in reversed(_STIRLING[:-1]):
-        series = S.add(S.num(c), S.div(series, z2))
+        series = S.add(S.num(c), S.div(series, zs2.copy()))
     core = S.add(
-        S.sub(S.mul(S.sub(z, S.num(0.5)), S.ln(z)), z),
+        S.sub(S.mul(S.sub(z, S.num(0.5)), S.ln(z.copy())), z.copy()),
         S.num(_HALF_LN_2PI),
-        S.div(series, z),
+        S.div(series, zs.copy()),
     )
     prod = S.mul(x, *(S.add(x, S.num(float(k))) for k in range(1, int(LOG_GAMMA_SHIFT))))
-    return S.sub(core, S.case([(small, S.ln(prod))], S.num(0.0)))
+    # x, z and the tests appear several times: copy() gives every occurrence its own node
+    return S.sub(core, S.case([(small, S.ln(prod))], S.num(0.0))).copy()
 
 
 # -- the dialect ------------------------------------------------------------------------------
@@ -118,6 +125,18 @@ def cast_float_literals(tree: exp.Expression, to: str) -> exp.Expression:
     return tree
 
 
+def as_operand(e: exp.Expression) -> exp.Expression:
+    """``e`` in parentheses unless it is a column, literal or plain function call.
+
+    A custom node stood as one operand (``NOT <node>``, ``a - <node>``); its translation may
+    be an operator tree. (``sqlexpr.paren`` is not enough: sqlglot's And/Or derive from Func.)
+    """
+    atom = isinstance(e, exp.Paren | exp.Column | exp.Literal | exp.Cast) or (
+        isinstance(e, exp.Func) and not isinstance(e, exp.Binary | exp.Unary)
+    )
+    return e if atom else exp.Paren(this=e)
+
+
 def fence_subqueries(tree: exp.Expression) -> exp.Expression:
     """Add ``OFFSET 0`` to every derived table so the planner keeps it as its own scan.
 
@@ -125,8 +144,9 @@ def fence_subqueries(tree: exp.Expression) -> exp.Expression:
     several of the stage below. PostgreSQL pulls simple subqueries up into the parent and
     substitutes column references by their expressions, with no common-subexpression
     elimination, so the expression size grows geometrically with the stage count (a gram
-    query ran for minutes instead of milliseconds). A subquery with OFFSET is never pulled up
-    (https://www.postgresql.org/docs/current/queries-with.html, "optimization fence").
+    query ran for minutes instead of milliseconds). A subquery with LIMIT or OFFSET is never
+    pulled up (PostgreSQL source, src/backend/optimizer/prep/prepjointree.c,
+    is_simple_subquery), the classic optimization fence.
     """
     for node in tree.find_all(exp.Subquery):
         inner = node.this
@@ -162,8 +182,7 @@ class PostgresDialect(Dialect):
         return super().render(fence_subqueries(tree))
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
-        # The custom node stood as one operand; its translation may be an operator tree.
-        return cast_float_literals(S.paren(super()._translate(node)), "DOUBLE")
+        return cast_float_literals(as_operand(super()._translate(node)), "DOUBLE")
 
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         # a temporary table lives in the session's own schema and disappears with it

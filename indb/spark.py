@@ -16,6 +16,7 @@ Engine differences handled here rather than in the shared plan:
 from __future__ import annotations
 
 import contextlib
+import os
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -28,7 +29,7 @@ from indb import sqlexpr as S
 from indb.dialect import Dialect
 from indb.engine import Engine
 from indb.errors import EngineError, SpecError, UnsupportedError
-from indb.postgres import log_gamma_series, rows_to_columns
+from indb.postgres import as_operand, log_gamma_series, rows_to_columns
 
 _SPARK_NUMERIC = {"tinyint", "smallint", "int", "integer", "bigint", "float", "double", "decimal"}
 _SPARK_NUMERIC |= {"byte", "short", "long", "real"}
@@ -61,8 +62,7 @@ class SparkDialect(Dialect):
         return f"DROP VIEW IF EXISTS {self.quote(name)}"  # uncaches it too
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
-        # The custom node stood as one operand; its translation may be an operator tree.
-        return S.paren(super()._translate(node))
+        return as_operand(super()._translate(node))
 
     def log_gamma(self, x: exp.Expression) -> exp.Expression:
         return log_gamma_series(x)
@@ -166,9 +166,15 @@ class SparkEngine(Engine):
                 self.session = builder.create()
                 self._owned = True
             else:
-                existing = SparkSession.getActiveSession()
-                self.session = builder.getOrCreate()
-                self._owned = existing is None
+                # SparkSession.getActiveSession() would route to Spark Connect once a Connect
+                # session exists in this process; the classic one is the instantiated session.
+                running = SparkSession._instantiatedSession
+                if running is not None and running._sc._jsc is not None:
+                    self.session, self._owned = running, False
+                else:
+                    with _classic_mode():
+                        self.session = builder.getOrCreate()
+                    self._owned = True
         except self._errors as err:
             where = remote if remote is not None else master
             raise EngineError(f"cannot start a Spark session for {where!r}: {_first(err)}") from err
@@ -223,6 +229,22 @@ class SparkEngine(Engine):
     def close(self) -> None:
         if self._owned:
             self.session.stop()
+
+
+@contextlib.contextmanager
+def _classic_mode() -> Iterator[None]:
+    """Let pyspark start a classic driver although a Connect session exists in this process.
+
+    pyspark marks the process as Connect-only (``SPARK_CONNECT_MODE_ENABLED``) when a Connect
+    session is created, and then refuses classic sessions (SESSION_ALREADY_EXIST); the two
+    kinds work side by side, so the mark is lifted while the classic driver starts.
+    """
+    mark = os.environ.pop("SPARK_CONNECT_MODE_ENABLED", None)
+    try:
+        yield
+    finally:
+        if mark is not None:
+            os.environ["SPARK_CONNECT_MODE_ENABLED"] = mark
 
 
 def _first(err: BaseException) -> str:

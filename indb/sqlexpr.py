@@ -338,6 +338,17 @@ def parse_expression(sql: str, dialect: str) -> Expr:
         raise ValueError(
             "it is not a per-row expression (statements and subqueries are not allowed)"
         )
+    # every name must be visible to the column check: no aliases, stars, COLUMNS(...),
+    # positional references or bind parameters
+    hidden = {"Alias", "Star", "Placeholder", "Parameter", "Columns", "PositionalColumn"}
+    for n in tree.walk():
+        if type(n).__name__ in hidden or (
+            isinstance(n, exp.Anonymous) and str(n.this).upper() == "COLUMNS"
+        ):
+            raise ValueError(
+                "only column names, literals, operators and functions are allowed "
+                f"(found {n.sql(dialect)!r})"
+            )
     return tree
 
 
