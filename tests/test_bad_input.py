@@ -339,7 +339,7 @@ CASES: list[Case] = [
         "nan-offset",
         "SELECT TUCE, GPA, CASE WHEN PSI = 1 THEN 'nan'::DOUBLE ELSE 1.0 END AS t FROM spector",
         {"response": "TUCE", "family": "poisson", "offset": "t"},
-        q("offset expression is NaN or infinite in 14 of 32 rows"),
+        q("offset expression 't' is NaN or infinite in 14 of 32 rows"),
     ),
     Case(
         "offset-log-of-zero",
@@ -351,7 +351,7 @@ CASES: list[Case] = [
         "inf-weight",
         "SELECT GPA, TUCE, CASE WHEN PSI = 1 THEN 'inf'::DOUBLE ELSE 1.0 END AS w FROM spector",
         {"response": "GPA", "weight": "w"},
-        q("weight expression is NaN or infinite in 14 of 32 rows"),
+        q("weight expression 'w' is NaN or infinite in 14 of 32 rows"),
     ),
     # -- user expressions ----------------------------------------------------------------------
     Case(
