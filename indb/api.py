@@ -186,21 +186,16 @@ def scoring_sql(
 
     ``source`` defaults to the model's scoring source; ``view_name`` to the model name.
     """
-    from indb.dialect import DIALECTS
+    from indb.dialect import dialect_for
     from indb.registry import _relation
     from indb.spec import Source
 
-    if dialect not in DIALECTS:
-        raise SpecError(
-            f"dialect {dialect!r} is not supported for scoring SQL; supported: "
-            f"{', '.join(sorted(DIALECTS))}"
-        )
+    target = dialect_for(dialect)
     engine = connect(db)
     try:
         reg = Registry(engine, registry_schema)
         model = reg.model(name)
         result = reg.load(name, version)
-        target = DIALECTS[dialect]()
         src = Source.parse(source or model["score_source"])
         rel = _relation(target, src)
         use_intervals = bool(model.get("intervals")) if intervals is None else intervals

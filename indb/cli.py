@@ -30,7 +30,7 @@ from indb import writeback
 from indb.api import dry_run as dry_run_model
 from indb.api import fit as fit_model
 from indb.api import registry as open_registry
-from indb.dialect import DIALECTS, Dialect
+from indb.dialect import SCORING_DIALECTS, Dialect, dialect_for
 from indb.errors import (
     EngineError,
     IndbError,
@@ -744,13 +744,12 @@ def _relation(dialect: Dialect, text: str) -> Any:
 
 
 def _dialect(name: str) -> Dialect:
-    cls = DIALECTS.get(name.strip().lower())
-    if cls is None:
+    if name.strip().lower() not in (*SCORING_DIALECTS, "postgresql"):
         raise SpecError(
             f"--dialect {name!r} is not supported for scoring SQL; supported: "
-            f"{', '.join(sorted(DIALECTS))}"
+            f"{', '.join(SCORING_DIALECTS)}"
         )
-    return cls()
+    return dialect_for(name)
 
 
 def _scoring_sql(
@@ -1217,7 +1216,7 @@ def drop_command(
     default="duckdb",
     show_default=True,
     metavar="D",
-    help=f"SQL dialect to write: {', '.join(sorted(DIALECTS))}.",
+    help=f"SQL dialect to write: {', '.join(SCORING_DIALECTS)}.",
 )
 @output_options
 @click.argument("name")

@@ -239,3 +239,21 @@ def _split_qualified(name: str) -> list[str]:
 
 
 DIALECTS: dict[str, type[Dialect]] = {"duckdb": DuckDBDialect}
+SCORING_DIALECTS = ("duckdb", "postgres", "spark")
+
+
+def dialect_for(name: str) -> Dialect:
+    """A dialect by name, for printing scoring SQL (engine modules load on demand)."""
+    key = name.strip().lower()
+    if key == "duckdb":
+        return DuckDBDialect()
+    if key in ("postgres", "postgresql"):
+        from indb.postgres import PostgresDialect
+
+        return PostgresDialect()
+    if key == "spark":
+        from indb.spark import SparkDialect
+
+        return SparkDialect()
+    raise SpecError(f"dialect {name!r} is not supported for scoring SQL; supported: "
+                    f"{', '.join(SCORING_DIALECTS)}")
