@@ -17,37 +17,14 @@ import tomllib
 from dataclasses import dataclass, field
 from typing import Any
 
+from indb.api import ENGINE_OPTIONS, SPEC_OPTIONS
 from indb.errors import SpecError
 from indb.spec import Source
 
-MODEL_KEYS = {
-    "source",
-    "response",
-    "family",
-    "link",
-    "trials",
-    "offset",
-    "weight",
-    "frequency_weight",
-    "power",
-    "theta",
-    "link_power",
-    "intercept",
-    "predictors",
-    "exclude",
-    "categorical",
-    "reference",
-    "interactions",
-    "splines",
-    "on_null",
-    "tol",
-    "max_iter",
-    "strict",
-    "max_levels",
-    "confidence",
-}
+# the fit options of indb.fit, less start values (a retrain takes them from the live version)
+MODEL_KEYS = {"source", "response", "family", "link", *SPEC_OPTIONS} - {"start"}
 DEPLOY_KEYS = {"name", "view_schema", "score_source", "intervals", "registry_schema"}
-ENGINE_KEYS = {"db", "memory_limit", "temp_directory", "threads"}
+ENGINE_KEYS = {"db", *ENGINE_OPTIONS}
 GATE_KEYS = {
     "require_converged",
     "max_relative_change",
