@@ -255,5 +255,7 @@ def dialect_for(name: str) -> Dialect:
         from indb.spark import SparkDialect
 
         return SparkDialect()
-    raise SpecError(f"dialect {name!r} is not supported for scoring SQL; supported: "
-                    f"{', '.join(SCORING_DIALECTS)}")
+    raise SpecError(
+        f"dialect {name!r} is not supported for scoring SQL; supported: "
+        f"{', '.join(SCORING_DIALECTS)}"
+    )

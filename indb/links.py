@@ -214,7 +214,9 @@ class ProbitLink(Link):
         return _normal_cdf_sql(eta)
 
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
-        e = S.clamp(eta, -UNIT_ETA_CAP, UNIT_ETA_CAP)
+        # |eta| <= 26 keeps the density (~1e-147) and its square in the working weight normal
+        # doubles: PostgreSQL raises on underflow; beyond 26 the weight is 0 in effect
+        e = S.clamp(eta, -26.0, 26.0)
         return S.div(S.exp_(S.div(S.neg(S.mul(e, e)), S.num(2.0))), S.num(math.sqrt(2.0 * math.pi)))
 
     def link(self, mu):
@@ -251,7 +253,9 @@ class CLogLogLink(Link):
         )
 
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
-        e = S.clamp(eta, -EXP_CAP, CLOGLOG_CAP)
+        # [-340, 5.8] keeps dmu/deta (>= ~1e-148) and its square normal doubles (PostgreSQL
+        # raises on underflow); outside, the working weight is 0 in effect
+        e = S.clamp(eta, -340.0, 5.8)
         return S.exp_(S.sub(e, S.exp_(e)))
 
     def link(self, mu):

@@ -98,9 +98,12 @@ def true() -> exp.Boolean:
 
 
 def paren(e: Expr) -> Expr:
-    return (
-        e if isinstance(e, exp.Paren | exp.Column | exp.Literal | exp.Func) else exp.Paren(this=e)
+    """Wrap ``e`` in parentheses unless it is atomic. In sqlglot >= 30 the connectives
+    (AND, OR) are also ``Func`` subclasses, so operators are excluded explicitly."""
+    atomic = isinstance(e, exp.Paren | exp.Column | exp.Literal) or (
+        isinstance(e, exp.Func) and not isinstance(e, exp.Binary | exp.Unary | exp.Connector)
     )
+    return e if atomic else exp.Paren(this=e)
 
 
 def add(*terms: Expr) -> Expr:

@@ -171,28 +171,35 @@ FROM (
               FROM "claims_table" AS "indb_src"
               WHERE
                 (
-                  NOT (
-                    "claims" IS NULL
+                  (
+                    (
+                      (
+                        (
+                          NOT (
+                            "claims" IS NULL
+                          )
+                        ) AND (
+                          NOT (
+                            "age" IS NULL
+                          )
+                        )
+                      )
+                      AND (
+                        NOT (
+                          "power" IS NULL
+                        )
+                      )
+                    )
+                    AND (
+                      NOT (
+                        "region" IS NULL
+                      )
+                    )
                   )
-                )
-                AND (
-                  NOT (
-                    "age" IS NULL
-                  )
-                )
-                AND (
-                  NOT (
-                    "power" IS NULL
-                  )
-                )
-                AND (
-                  NOT (
-                    "region" IS NULL
-                  )
-                )
-                AND (
-                  NOT (
-                    "exposure" IS NULL
+                  AND (
+                    NOT (
+                      "exposure" IS NULL
+                    )
                   )
                 )
                 AND (
