@@ -426,7 +426,9 @@ def test_constant_huge_offset_gives_the_shifted_fit(
 
 def test_offset_that_overflows_to_infinity_is_rejected(con: duckdb.DuckDBPyConnection) -> None:
     # 1e308 * GPA is +inf in DOUBLE for every GPA > 1.8 (all 32 students)
-    with pytest.raises(SpecError, match=q("offset expression '1e308 * GPA' is NaN or infinite in 32 of 32")):
+    with pytest.raises(
+        SpecError, match=q("offset expression '1e308 * GPA' is NaN or infinite in 32 of 32")
+    ):
         indb.fit("spector", "TUCE", "poisson", db=con, offset="1e308 * GPA")
 
 
@@ -580,6 +582,32 @@ def test_poisson_level_with_only_zero_counts_shows_in_its_standard_error(
     ref = R.sm_fit(y, X, "poisson")
     assert_allclose(res.coef("intercept").estimate, ref.params["intercept"], rtol=RTOL)
     assert ref.bse["band=low"] > 100 * abs(ref.params["band=low"])
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="once the deviance is ~5e-9 each iteration's full step raises it, 12 "
+    "step-halvings bring the rise under the 1e-12 absolute slack of the rise test, the "
+    "slightly worse step is accepted, and the loop repeats to max_iter: 60 extra scans at "
+    "max_iter=25, 360 scans and ~9 s for these 4 rows at the default max_iter=50",
+)
+def test_poisson_fit_stalled_on_the_boundary_stops_early(con: duckdb.DuckDBPyConnection) -> None:
+    # spector rows 9-12 with GRADE as a count (1, 0, 0, 0) and GPA, TUCE as predictors: the
+    # three zeros are fitted exactly only in the limit (fitted means -> 0), so the MLE is
+    # at infinity. A fit that can no longer lower the deviance should stop, not spin.
+    src = "SELECT GRADE, GPA, TUCE FROM spector WHERE rowid BETWEEN 9 AND 12"
+    assert con.execute(f"SELECT list(GRADE ORDER BY rowid) FROM ({src})").fetchone()[0] == [
+        1.0,
+        0.0,
+        0.0,
+        0.0,
+    ]
+    res, _ = fit_quiet(src, "GRADE", "poisson", db=con, max_iter=25)
+    halvings = sum(r.step_halvings for r in res.iteration_log)
+    assert halvings <= 30, [(r.iteration, r.step_halvings) for r in res.iteration_log]
+    devs = [r.deviance for r in res.iteration_log if r.phase == "fit"]
+    # accepted steps never raise the deviance beyond rounding (relative 1e-9)
+    assert all(b <= a * (1 + 1e-9) for a, b in zip(devs[1:], devs[2:], strict=False))
 
 
 def test_exact_collinearity_through_a_categorical_alias(con: duckdb.DuckDBPyConnection) -> None:
@@ -991,7 +1019,8 @@ def check_property(frame: pd.DataFrame, family: str) -> None:
         try:
             with Guard(60), warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
-                res = indb.fit("random", "y", family, db=con, tol=TOL, max_iter=100)
+                # max_iter bounds the worst case (see the boundary stall test above)
+                res = indb.fit("random", "y", family, db=con, tol=1e-10, max_iter=30)
         except SpecError as err:
             assert str(err).strip()
             OUTCOMES["spec_error"] = OUTCOMES.get("spec_error", 0) + 1
@@ -1010,12 +1039,14 @@ def check_property(frame: pd.DataFrame, family: str) -> None:
     # the oracle fits columns scaled to max |x| = 1 (its least-squares steps lose accuracy
     # with columns at 1e-6 and 1e6 in one design) and scales the coefficients back
     scale = X.abs().max().where(lambda v: v > 0, 1.0)
-    if family == "gaussian":
-        # OLS is the gaussian/identity GLM, and unlike GLM's IRLS it starts on one row
-        fitted = R.sm.OLS(used["y"].to_numpy(float), X / scale).fit()
-    else:
-        fitted = R.sm_fit(used["y"], X / scale, family)
-    ref = Oracle(params=fitted.params / scale, bse=fitted.bse / scale)
+    with warnings.catch_warnings():  # no residual df: statsmodels divides by 0 for the SEs
+        warnings.simplefilter("ignore", RuntimeWarning)
+        if family == "gaussian":
+            # OLS is the gaussian/identity GLM, and unlike GLM's IRLS it starts on one row
+            fitted = R.sm.OLS(used["y"].to_numpy(float), X / scale).fit()
+        else:
+            fitted = R.sm_fit(used["y"], X / scale, family)
+        ref = Oracle(params=fitted.params / scale, bse=fitted.bse / scale)
     # agreement is limited by conditioning: kappa * 1e-13 relative (common practice); a
     # coefficient whose difference moves no fitted value by 1e-9 of the largest |y| is
     # equal (exact fits have standard errors ~0, so the SE-based atol alone is too strict)
@@ -1027,7 +1058,7 @@ def check_property(frame: pd.DataFrame, family: str) -> None:
 
 
 PROPERTY = settings(
-    max_examples=30,
+    max_examples=40,
     deadline=None,
     derandomize=True,  # the same examples on every CI run
     suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large],
