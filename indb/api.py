@@ -187,7 +187,6 @@ def scoring_sql(
     ``source`` defaults to the model's scoring source; ``view_name`` to the model name.
     """
     from indb.dialect import dialect_for
-    from indb.registry import _relation
     from indb.spec import Source
 
     target = dialect_for(dialect)
@@ -197,7 +196,7 @@ def scoring_sql(
         model = reg.model(name)
         result = reg.load(name, version)
         src = Source.parse(source or model["score_source"])
-        rel = _relation(target, src)
+        rel = target.relation(src)
         use_intervals = bool(model.get("intervals")) if intervals is None else intervals
         query = W.scoring_query(result, target, rel, intervals=use_intervals)
         return target.render(W.create_view(None, view_name or name, query)) + ";"

@@ -735,12 +735,7 @@ def _view_label(model_row: dict[str, Any]) -> str:
 
 
 def _relation(dialect: Dialect, text: str) -> Any:
-    source = Source.parse(text)
-    if source.kind == "table":
-        return dialect.table(source.text)
-    if source.kind == "file":
-        return dialect.file_scan(source.text)
-    return dialect.query(source.text)
+    return dialect.relation(Source.parse(text))
 
 
 def _dialect(name: str) -> Dialect:

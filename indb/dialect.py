@@ -9,6 +9,7 @@ through as generic SQL.
 from __future__ import annotations
 
 import re
+from typing import Any
 
 from sqlglot import exp
 
@@ -126,6 +127,14 @@ class Dialect:
         if len(ids) == 3:
             kwargs["catalog"] = ids[-3]
         return exp.Table(**kwargs)
+
+    def relation(self, source: Any) -> exp.Expression:
+        """The FROM item for a :class:`indb.spec.Source` (table, file path or query)."""
+        if source.kind == "table":
+            return self.table(source.text)
+        if source.kind == "file":
+            return self.file_scan(source.text)
+        return self.query(source.text)
 
     def query(self, sql: str) -> exp.Expression:
         """Parse a user's SELECT query in this dialect (it runs as written)."""

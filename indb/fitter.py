@@ -908,7 +908,7 @@ def _result(
         family_params=fam.params(),
         excluded_by_column=by_col,
         aliased_terms=aliased_terms,
-        condition_number=sol.condition_number,
+        condition_number=solver.condition_number(sums.xtwx, sol.aliased),
         warnings=tuple(warn_msgs),
         confidence=spec.confidence,
         spec=spec.to_dict(),

@@ -65,14 +65,7 @@ class PlanContext:
 
     # -- the source ------------------------------------------------------------------------
     def source(self) -> Expr:
-        src = self.spec.source
-        if src.kind == "table":
-            rel = self.dialect.table(src.text)
-        elif src.kind == "file":
-            rel = self.dialect.file_scan(src.text)
-        else:
-            rel = self.dialect.query(src.text)
-        rel = rel.copy()
+        rel = self.dialect.relation(self.spec.source).copy()
         rel.set("alias", exp.TableAlias(this=S.ident(SRC)))
         return rel
 

@@ -410,12 +410,9 @@ class Registry:
         if not src_text:
             raise SpecError(f"model {name!r} has no scoring source; give score_source=")
         source = Source.parse(src_text)
-        rel = _relation(self.d, source)
+        rel = self.d.relation(source)
         cols = [
-            c
-            for c, _ in self.engine.describe(
-                self.d.render(S.select([S.col("*") if False else _star()], _aliased(rel)))
-            )
+            c for c, _ in self.engine.describe(self.d.render(S.select([_star()], _aliased(rel))))
         ]
         missing = [c for c in W.model_inputs(result, self.d) if c not in cols]
         if missing:
@@ -546,14 +543,6 @@ def _create_schema(schema: str):
     from sqlglot import exp
 
     return exp.Create(kind="SCHEMA", this=exp.Table(db=S.ident(schema)), exists=True)
-
-
-def _relation(dialect, source: Source):
-    if source.kind == "table":
-        return dialect.table(source.text)
-    if source.kind == "file":
-        return dialect.file_scan(source.text)
-    return dialect.query(source.text)
 
 
 def _jsonable(obj: Any) -> Any:
