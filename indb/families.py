@@ -259,7 +259,13 @@ class Poisson(Family):
         return S.mul(S.num(2.0), S.sub(_xlog(y, y), y))
 
     def saturated_sql(self, y, pw, trials):
-        return {"sat": S.mul(pw, S.sub(S.sub(_xlog(y, y), y), S.log_gamma(S.add(y, S.num(1.0)))))}
+        # y ln y - y - ln Gamma(y + 1) is 0 at y = 0 and -1 at y = 1: most counts, and no
+        # ln Gamma call for them (y arrives floored at 1e-300 by the caller)
+        full = S.sub(S.sub(_xlog(y, y), y), S.log_gamma(S.add(y, S.num(1.0))))
+        term = S.case(
+            [(S.le(y, S.num(1e-300)), S.num(0.0)), (S.eq(y.copy(), S.num(1.0)), S.num(-1.0))], full
+        )
+        return {"sat": S.mul(pw, term)}
 
     def log_likelihood(self, deviance, phi, sums, n, constant_weight):
         return sums["sat"] - deviance / 2.0

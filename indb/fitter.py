@@ -76,6 +76,7 @@ class _Run:
     compressed: tuple[int, int, float] | None = None
     original_ctx: P.PlanContext | None = None  # the uncompressed source, for the log-lik
     fit_ybar: float | None = None  # weighted mean response of the folded problem
+    fold_seconds: float = 0.0
 
     def drop_temp(self) -> None:
         for name in self.temp_tables:
@@ -141,11 +142,11 @@ def _empty_inputs(spec: ModelSpec) -> Inputs:
 
 def _check_nulls(ctx: P.PlanContext, row: dict) -> tuple[int, int, dict[str, int]]:
     """Row counts and NULL exclusions from the profile row; errors for unusable inputs."""
-    n_total = int(row["n_total"] or 0)
-    n_kept = int(row["n_kept"] or 0)
+    n_total = _count(row["n_total"])
+    n_kept = _count(row["n_kept"])
     by_col: dict[str, int] = {}
     for i, (label, _) in enumerate(ctx.null_items()):
-        k = int(row[f"null_{i}"] or 0)
+        k = _count(row[f"null_{i}"])
         if k:
             by_col[label] = k
     if n_total == 0:
@@ -589,15 +590,19 @@ def _estimate_theta(
 
 
 def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
-    """Pre-fit scans (read only): columns, NULL counts, knots, summary, levels, combinations."""
+    """Pre-fit scans (read only): columns, knots, the profile (on the compressed route, the
+    fold and its profile in one scan), levels and combinations."""
     inputs = _describe(spec, engine)
     ctx = P.PlanContext(spec, inputs, engine.dialect)
     knots = _knots(ctx, run)
     values = plan_values(inputs, spec.intercept)
-    row = run.one_row(P.profile_query(ctx, values, knots))
+    items = P.profile_items(ctx, values, knots)
+    folded = _fold(ctx, run, items) if _should_fold(ctx, run) else None
+    row = folded[0] if folded else run.one_row(P.profile_query(ctx, items))
     n_total, n_kept, by_col = _check_nulls(ctx, row)
     summary = _summarize(ctx, row, values)
-    ctx = _maybe_compress(ctx, run, n_kept)
+    if folded:
+        ctx = _folded_context(ctx, run, folded[1], n_kept)
     factors, combos = _factors(ctx, run)
     design = build_design(
         inputs, spec.intercept, summary.values, factors, combos, tuple(knots.items())
@@ -611,41 +616,67 @@ AUTO_COMPRESS_MIN_ROWS = 50_000
 COMPRESS_RATIO = 10  # compress when the sample shows >= 10 rows per distinct design row
 
 
-def _maybe_compress(ctx: P.PlanContext, run: _Run, n_kept: int) -> P.PlanContext:
-    """Fold the source to its distinct design rows when that pays (or when asked).
-
-    Rows sharing a design row are merged with summed weights, the weighted mean response and
-    the constants that keep deviance and Pearson chi-squared exact (``plan.compress_query``);
-    a log-link offset folds into response and weight. The log-likelihood is summed over the
-    original rows after the fit. ``auto`` decides from the distinct design rows among the
-    first kept rows. Not used when the negative binomial theta is estimated (its deviance
-    constants move with theta).
-    """
+def _should_fold(ctx: P.PlanContext, run: _Run) -> bool:
+    """Whether to take the compressed route (``compress`` option; ``auto`` decides from the
+    distinct design rows among the first kept rows). Never when the negative binomial theta
+    is estimated (its deviance constants move with theta) or the engine cannot hold a
+    temporary table (unless ``always``, which then raises)."""
     spec = ctx.spec
-    mode = spec.compress
-    if mode == "never" or spec.estimate_theta:
-        return ctx
-    if mode == "auto" and n_kept < AUTO_COMPRESS_MIN_ROWS:
-        return ctx
-    name = f"indb_fold_{uuid.uuid4().hex[:12]}"
+    if spec.compress == "never" or spec.estimate_theta:
+        return False
     try:
-        stmts = ctx.dialect.materialize(name, P.compress_query(ctx))
+        ctx.dialect.materialize("indb_probe", S.select([S.num(1.0)], ctx.source()))
     except UnsupportedError:
-        if mode == "always":
+        if spec.compress == "always":
             raise
-        return ctx
-    if mode == "auto":
-        if not P.key_columns(ctx):
-            pass  # intercept-only design: one row, always worth it
-        else:
-            row = run.one_row(P.sample_distinct_query(ctx))
-            d, s = int(row["d"] or 0), int(row["s"] or 0)
-            if s == 0 or d * COMPRESS_RATIO > s:
-                return ctx
+        return False
+    if spec.compress == "always":
+        return True
+    row = run.one_row(P.sample_distinct_query(ctx))
+    d, s = int(row["d"] or 0), int(row["s"] or 0)
+    # the sample holds every kept row when it is smaller than SAMPLE_ROWS
+    return s >= AUTO_COMPRESS_MIN_ROWS and d * COMPRESS_RATIO <= s
+
+
+def _count(v: object) -> int:
+    """A count from a fetched aggregate: a SUM over no rows is NULL (None, or NaN after a
+    driver's float conversion)."""
+    return 0 if v is None or (isinstance(v, float) and math.isnan(v)) else int(v)
+
+
+def _fold(
+    ctx: P.PlanContext, run: _Run, items: list[P.ProfileItem]
+) -> tuple[dict[str, object], str]:
+    """The compressed route's one scan of the source: group it by design-row keys (with the
+    profile's partial aggregates), then profile the groups. Returns the profile row and the
+    name of the temporary table of groups."""
     t0 = time.perf_counter()
+    groups = f"indb_fold_{uuid.uuid4().hex[:12]}"
+    stmts = ctx.dialect.materialize(groups, P.fold_query(ctx, items))
+    run.temp_tables.append(groups)
     for stmt in stmts:
         run.engine.execute(stmt)
+    row = run.one_row(P.folded_profile_query(ctx, items, ctx.dialect.table(groups)))
+    bad, nk_null = (_count(row.pop(k)) for k in (P.FOLD_BAD, "indb_nk_null"))
+    if bad or nk_null:
+        # a domain error to explain or NULL exclusions to count: one more, ungrouped scan
+        row.update(run.one_row(P.profile_query(ctx, P.detail_items(ctx, items))))
+    run.fold_seconds = time.perf_counter() - t0
+    return row, groups
+
+
+def _folded_context(ctx: P.PlanContext, run: _Run, groups: str, n_kept: int) -> P.PlanContext:
+    """The fit's context on the folded rows (:func:`plan.folded_rows_query`): summed
+    weights, the weighted mean response and the constants that keep deviance and Pearson
+    chi-squared exact; a log-link offset folded into response and weight. The
+    log-likelihood still comes from the profile's sums over the original rows."""
+    t0 = time.perf_counter()
+    spec = ctx.spec
+    name = f"indb_rows_{uuid.uuid4().hex[:12]}"
+    stmts = ctx.dialect.materialize(name, P.folded_rows_query(ctx, ctx.dialect.table(groups)))
     run.temp_tables.append(name)
+    for stmt in stmts:
+        run.engine.execute(stmt)
     table = ctx.dialect.table(name)
     sums = run.one_row(
         S.select(
@@ -657,7 +688,7 @@ def _maybe_compress(ctx: P.PlanContext, run: _Run, n_kept: int) -> P.PlanContext
             table,
         )
     )
-    groups = int(sums["n"])
+    n_groups = int(sums["n"])
     sw = float(sums["sw"] or 0.0)
     run.fit_ybar = float(sums["sy"]) / sw if sw > 0 else None
     folded_offset = P.folds_offset(ctx)
@@ -682,7 +713,7 @@ def _maybe_compress(ctx: P.PlanContext, run: _Run, n_kept: int) -> P.PlanContext
         trials=None,
     )
     run.original_ctx = ctx
-    run.compressed = (n_kept, groups, time.perf_counter() - t0)
+    run.compressed = (n_kept, n_groups, run.fold_seconds + time.perf_counter() - t0)
     return P.PlanContext(new_spec, inputs, ctx.dialect, row_count=P.ROWCOUNT, folded=True)
 
 

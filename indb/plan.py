@@ -16,7 +16,7 @@ Stable aliases keep the generated text reproducible for snapshot tests.
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -91,8 +91,8 @@ class PlanContext:
         o = self.inputs.offset
         return S.as_double(o.copy()) if o is not None else None
 
-    def kept(self) -> Expr:
-        """Rows with no NULL in any model column or model expression."""
+    def kept_conditions(self) -> list[Expr]:
+        """One NOT NULL condition per model column and model expression."""
         conds = [S.not_(S.is_null(S.col(c))) for c in self.inputs.model_columns]
         for e in (
             self.inputs.offset,
@@ -102,7 +102,19 @@ class PlanContext:
         ):
             if e is not None:
                 conds.append(S.not_(S.is_null(e.copy())))
-        return S.and_(*conds)
+        return conds
+
+    def kept(self) -> Expr:
+        """Rows with no NULL in any model column or model expression."""
+        return S.and_(*self.kept_conditions())
+
+    def kept_parts(self, keys: Sequence[str]) -> tuple[Expr, Expr]:
+        """:meth:`kept` split in two: the conditions on ``keys`` alone, and the rest."""
+        on_keys: list[Expr] = []
+        rest: list[Expr] = []
+        for c in self.kept_conditions():
+            (on_keys if set(S.referenced_columns(c)) <= set(keys) else rest).append(c)
+        return S.and_(*on_keys), S.and_(*rest)
 
     def null_items(self) -> list[tuple[str, Expr]]:
         """(label, expression) for every input whose NULLs exclude a row."""
@@ -296,153 +308,317 @@ def key_columns(ctx: PlanContext) -> list[str]:
 def sample_distinct_query(ctx: PlanContext) -> exp.Select:
     """Distinct design rows among the first kept rows: ``d`` distinct of ``s`` sampled."""
     keys = [S.col(c) for c in key_columns(ctx)]
-    sample = S.select([k.copy() for k in keys], ctx.source(), where=ctx.kept())
+    picked = [k.copy() for k in keys] or [S.alias(exp.Literal.number(1), "indb_one")]
+    sample = S.select(picked, ctx.source(), where=ctx.kept())
     sample = sample.limit(SAMPLE_ROWS, copy=False)
     grouped = S.select(
-        [*(k.copy() for k in keys), S.alias(S.count_star(), "c")],
+        [*(k.copy() for k in keys), S.alias(S.count_star(), "indb_c")],
         S.subquery(sample, "smp"),
         group_by=[k.copy() for k in keys],
     )
     return S.select(
-        [S.alias(S.count_star(), "d"), S.alias(S.sum_(S.col("c")), "s")], S.subquery(grouped, "grp")
+        [S.alias(S.count_star(), "d"), S.alias(S.sum_(S.col("indb_c")), "s")],
+        S.subquery(grouped, "grp"),
     )
 
 
-def compress_query(ctx: PlanContext) -> exp.Select:
-    """The source folded to its distinct design rows, exactly.
+# -- the profile: one list of aggregates, run over the source or over its fold -------------
+
+
+@dataclass(frozen=True)
+class ProfileItem:
+    """One profile aggregate: ``agg`` of the per-row ``arg``, over kept rows when ``kept``.
+
+    ``agg`` is ``count`` (rows; ``arg`` unused), ``sum`` (integer flags), ``psum`` (a sum the
+    dialect may compensate), ``min``, ``max`` or ``mean``. Every one decomposes over groups,
+    so the same items run in one scan of the source (:func:`profile_query`) or, on the
+    compressed route, as partial aggregates inside the fold (:func:`fold_query`) combined
+    over the folded table (:func:`folded_profile_query`).
+    """
+
+    alias: str
+    agg: str
+    arg: Expr
+    kept: bool = True
+    #: needed only to explain an exclusion or an error (the fold skips it when it reads
+    #: more than the keys, and the detail scan fills it in when it matters)
+    detail: bool = False
+
+
+def profile_items(
+    ctx: PlanContext, values: Sequence[Value], knots: dict[str, tuple[float, ...]]
+) -> list[ProfileItem]:
+    """The pre-fit profile: total rows, rows kept and NULL counts per model input (over all
+    rows); over kept rows the domain-check violation counts, weighted response sums, weight
+    range, saturated log-likelihood sums and the moments that standardize values."""
+    one = exp.Literal.number(1)
+    y, pw = ctx.response(), ctx.prior_weight()
+    fw = ctx.raw_freq() or S.num(1.0)
+    items = [ProfileItem("n_total", "count", one, kept=False), ProfileItem("n_kept", "count", one)]
+    for i, (_, e) in enumerate(ctx.null_items()):
+        items.append(ProfileItem(f"null_{i}", "sum", S.flag(S.is_null(e)), kept=False, detail=True))
+    items += [
+        ProfileItem("sum_f", "psum", fw),
+        ProfileItem("sum_fpw", "psum", S.mul(fw.copy(), pw)),
+        ProfileItem("sum_fpwy", "psum", S.mul(fw.copy(), pw.copy(), y)),
+        ProfileItem(
+            "sum_f_pos", "psum", S.case([(S.gt(pw.copy(), S.num(0.0)), fw.copy())], S.num(0.0))
+        ),
+        ProfileItem("n_zero_weight", "sum", S.flag(S.le(pw.copy(), S.num(0.0)))),
+        ProfileItem("y_min", "min", y.copy(), detail=True),
+        ProfileItem("y_max", "max", y.copy(), detail=True),
+        ProfileItem("pw_min", "min", pw.copy()),
+        ProfileItem("pw_max", "max", pw.copy()),
+        ProfileItem("off_mean", "mean", ctx.raw_offset() or S.num(0.0)),
+    ]
+    for i, (_, cond) in enumerate(domain_checks(ctx)):
+        items.append(ProfileItem(f"chk_{i}", "sum", S.flag(cond), detail=True))
+    for key, term in saturated_terms(ctx).items():
+        positive = S.case([(S.gt(pw.copy(), S.num(0.0)), S.mul(fw.copy(), term))])
+        items.append(ProfileItem(f"ll_{key}", "psum", positive))
+    for v in values[1:]:
+        raw = ctx.value_sql(v, knots, standardized=False)
+        # mean and mean square only: the scale just conditions X'WX, so the variance from
+        # moments (with its cancellation) is accurate enough, and cheaper
+        items += [
+            ProfileItem(f"{v.alias}_mean", "mean", raw),
+            ProfileItem(f"{v.alias}_ms", "mean", S.mul(raw.copy(), raw.copy())),
+            ProfileItem(f"{v.alias}_min", "min", raw.copy()),
+            ProfileItem(f"{v.alias}_max", "max", raw.copy()),
+        ]
+    return items
+
+
+_AGGS = {"sum": S.sum_, "psum": S.psum, "min": S.min_, "max": S.max_, "mean": S.avg}
+
+
+def _atoms(ctx: PlanContext) -> tuple[list[Expr], Callable[[Expr], Expr]]:
+    """The user's offset, weight and trials expressions as columns computed once per row
+    (``indb_a_*``), and a function that rewrites an expression to read those columns."""
+    mapping: dict[Expr, str] = {}
+    cols: list[Expr] = []
+    inputs = ctx.inputs
+    for name, e in (
+        ("indb_a_off", inputs.offset),
+        ("indb_a_w", inputs.weight),
+        ("indb_a_fw", inputs.frequency_weight),
+        ("indb_a_t", inputs.trials),
+    ):
+        if e is not None and not isinstance(e, exp.Column) and e not in mapping:
+            mapping[e] = name
+            cols.append(S.alias(e.copy(), name))
+
+    def rewrite(x: Expr) -> Expr:
+        if not mapping:
+            return x.copy()
+        return x.transform(lambda n: S.col(mapping[n]) if n in mapping else n)
+
+    return cols, rewrite
+
+
+def profile_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
+    """The profile in one scan of the source (every kept-row aggregate argument is NULL on
+    other rows, and aggregates skip NULLs). No COUNT(DISTINCT ...): DuckDB plans each one
+    as its own pass over the source."""
+    atoms, rewrite = _atoms(ctx)
+    kept = S.col(KEPT)
+    cols: list[Expr] = []
+    for it in items:
+        if it.agg == "count":
+            agg = S.sum_(S.flag(kept.copy())) if it.kept else S.count_star()
+        else:
+            arg = rewrite(it.arg)
+            agg = _AGGS[it.agg](S.case([(kept.copy(), arg)]) if it.kept else arg)
+        cols.append(S.alias(agg, it.alias))
+    with_atoms = S.select([exp.Star(), *atoms], ctx.source())
+    inner = S.select([exp.Star(), S.alias(rewrite(ctx.kept()), KEPT)], S.subquery(with_atoms, "pa"))
+    return S.select(cols, S.subquery(inner, "p"))
+
+
+# -- the compressed route: fold first, profile the fold ----------------------------------------
+
+FOLD_ROWS, FOLD_OK, FOLD_BAD = "indb_nrows", "indb_ok", "indb_bad"
+
+
+def _key_only(e: Expr, keys: Sequence[str]) -> bool:
+    return set(S.referenced_columns(e)) <= set(keys)
+
+
+def fold_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
+    """Stage 1 of the compressed route: the source grouped by its design-row keys, all rows.
+
+    One scan, grouped by the keys and two row flags: ``indb_kept`` (no NULL outside the
+    keys) and ``indb_ok`` (kept and inside every domain check). Per group: rows
+    (``indb_nrows``), the folding sums of :func:`folded_rows_query`, and a partial aggregate
+    of every profile item that reads more than the keys; items that read only keys are
+    computed from the groups afterwards, and detail items only when they are needed
+    (:func:`detail_items`). NULL and NaN keys form groups of their own, so nothing is lost
+    before the profile has looked at it. Grouping by the flags keeps CASE out of the
+    aggregates, and per-row quantities are computed once in stacked projections (engines
+    do not share subexpressions across aggregates); both matter for speed.
+    """
+    fam = ctx.spec.family
+    keys = key_columns(ctx)
+    _, row_cond = ctx.kept_parts(keys)
+    atoms, rewrite = _atoms(ctx)
+    domain_ok = S.and_(row_cond.copy(), *(S.not_(c) for _, c in domain_checks(ctx)))
+    ok = S.col(FOLD_OK)
+    f = ctx.raw_freq()
+    y, pw = ctx.response(), ctx.prior_weight()
+    extra: list[Expr] = []
+    if folds_offset(ctx):
+        off = ctx.raw_offset()
+        assert off is not None
+        # e = exp(offset) only on rows inside the domain checks: no engine sees the
+        # overflow of an offset that the profile is about to reject
+        extra.append(S.alias(S.case([(ok.copy(), rewrite(S.exp_(off.copy())))]), "indb_e"))
+        e = S.col("indb_e")
+        y = S.div(y, e)
+        p = fam.variance_power
+        if p == 1.0:
+            pw = S.mul(pw, e.copy())
+        elif p != 2.0:
+            pw = S.mul(pw, S.exp_(S.mul(S.num(2.0 - p), off.copy())))
+    stage = S.select([exp.Star(), *atoms], ctx.source())
+    stage = S.select(
+        [exp.Star(), S.alias(rewrite(row_cond), KEPT), S.alias(rewrite(domain_ok), FOLD_OK)],
+        S.subquery(stage, "fold_a"),
+    )
+    if extra:
+        stage = S.select([exp.Star(), *extra], S.subquery(stage, "fold_b"))
+    fw_row = S.mul(f, pw) if f is not None else pw
+    stage = S.select(
+        [
+            exp.Star(),
+            S.alias(rewrite(fw_row), "indb_fw"),
+            S.alias(rewrite(y), "indb_fy"),
+            # y for h(y) only where the row is inside the domain (ln of y <= 0 is an error)
+            S.alias(S.case([(ok.copy(), rewrite(y))]), "indb_hy"),
+        ],
+        S.subquery(stage, "fold_c"),
+    )
+    w, yf = S.col("indb_fw"), S.col("indb_fy")
+    h = fam.deviance_h_sql(S.col("indb_hy"))
+    cols: list[Expr] = [
+        *(S.col(k) for k in (*keys, KEPT, FOLD_OK)),
+        S.alias(S.count_star(), FOLD_ROWS),
+        S.alias(S.psum(rewrite(f)) if f is not None else S.count_star(), "indb_sf"),
+        S.alias(S.psum(w), "indb_sw"),
+        S.alias(S.psum(S.mul(w.copy(), yf)), "indb_sy"),
+        S.alias(S.psum(S.mul(w.copy(), yf.copy(), yf.copy())), "indb_sy2"),
+        S.alias(S.psum(S.mul(w.copy(), h)), "indb_sh"),
+    ]
+    for i, it in enumerate(items):
+        if it.agg == "count" or it.detail or _key_only(it.arg, keys):
+            continue
+        arg = rewrite(it.arg)
+        if it.agg == "mean":
+            cols.append(S.alias(S.psum(arg), f"indb_p{i}"))
+            cols.append(S.alias(exp.Count(this=arg.copy()), f"indb_c{i}"))
+        else:
+            cols.append(S.alias(_AGGS[it.agg](arg), f"indb_p{i}"))
+    return S.select(
+        cols,
+        S.subquery(stage, "fold_d"),
+        group_by=[S.col(k) for k in (*keys, KEPT, FOLD_OK)],
+    )
+
+
+def folded_profile_query(ctx: PlanContext, items: Sequence[ProfileItem], table: Expr) -> exp.Select:
+    """Stage 2: the profile of the source, combined from the groups of :func:`fold_query`
+    (the same values :func:`profile_query` gives, up to summation order). Kept-row partial
+    aggregates come from the groups inside the domain checks: when any kept row is outside
+    (``indb_bad`` > 0) the fit stops with the detail scan's error, so they are exact
+    whenever they are used."""
+    keys = key_columns(ctx)
+    key_cond, _ = ctx.kept_parts(keys)
+    rows, kept, ok = S.col(FOLD_ROWS), S.col(KEPT), S.col(FOLD_OK)
+    kept_rows = S.case([(S.and_(key_cond, kept), rows)])
+    ok_group = S.and_(key_cond.copy(), ok)
+    cols: list[Expr] = []
+    for i, it in enumerate(items):
+        mult = kept_rows.copy() if it.kept else rows.copy()
+        if it.agg == "count":
+            agg = S.sum_(mult)
+        elif it.detail and not _key_only(it.arg, keys):
+            # 0 unless the detail scan (detail_items) runs and fills it in: it runs
+            # whenever a row is excluded or fails a check outside the keys
+            agg = exp.Literal.number(0) if it.agg == "sum" else exp.Null()
+        elif _key_only(it.arg, keys):
+            some = S.gt(mult.copy(), exp.Literal.number(0))
+            if it.agg in ("min", "max"):
+                agg = _AGGS[it.agg](S.case([(some, it.arg.copy())]))
+            else:
+                weighted = S.case([(some, S.mul(mult.copy(), it.arg.copy()))])
+                agg = (S.sum_ if it.agg == "sum" else S.psum)(weighted)
+                if it.agg == "mean":
+                    agg = _ratio(agg, S.sum_(mult))
+        else:
+            part = S.col(f"indb_p{i}")
+            if it.kept:
+                part = S.case([(ok_group.copy(), part)])
+            if it.agg == "mean":
+                count = S.col(f"indb_c{i}")
+                if it.kept:
+                    count = S.case([(ok_group.copy(), count)])
+                agg = _ratio(S.psum(part), S.sum_(count))
+            else:
+                agg = _AGGS[it.agg](part)
+        cols.append(S.alias(agg, it.alias))
+    cols += [
+        S.alias(S.sum_(S.case([(S.and_(kept.copy(), S.not_(ok.copy())), rows.copy())])), FOLD_BAD),
+        # rows excluded for a NULL outside the keys
+        S.alias(
+            S.sum_(S.case([(S.and_(key_cond.copy(), S.not_(kept.copy())), rows.copy())])),
+            "indb_nk_null",
+        ),
+    ]
+    return S.select(cols, table)
+
+
+def _ratio(num: Expr, den: Expr) -> Expr:
+    """num / den, NULL when den is 0 (an AVG over no rows)."""
+    return S.case([(S.gt(den, exp.Literal.number(0)), S.div(num, den.copy()))])
+
+
+def folded_rows_query(ctx: PlanContext, table: Expr) -> exp.Select:
+    """Stage 3: the groups of :func:`fold_query` inside every check, as the rows the fit
+    runs on.
 
     Per design row: F = sum(f), W = sum(f pw), Y = sum(f pw y), and the constants that keep
     the deviance and Pearson chi-squared exact: d(y, mu) = h(y) + a(mu) y + b(mu), so the
     rows' deviance is W d(Y/W, mu) + [sum(f pw h(y)) - W h(Y/W)], and their Pearson sum is
     W (Y/W - mu)^2 / V + [sum(f pw y^2) - Y^2 / W] / V. A foldable offset e = exp(offset)
-    becomes y/e and pw e^(2-p) first.
+    became y/e and pw e^(2-p) in the fold.
     """
     fam = ctx.spec.family
-    keys = [S.col(c) for c in key_columns(ctx)]
-    f = ctx.raw_freq() or S.num(1.0)
-    y, pw = ctx.response(), ctx.prior_weight()
-    if folds_offset(ctx):
-        off = ctx.raw_offset()
-        assert off is not None
-        y = S.div(y, S.exp_(off.copy()))
-        p = fam.variance_power
-        if p != 2.0:
-            pw = S.mul(pw, S.exp_(S.mul(S.num(2.0 - p), off.copy())))
-    inner = S.select(
-        [*(k.copy() for k in keys), S.alias(f, "f"), S.alias(pw, "pw"), S.alias(y, "y")],
-        ctx.source(),
-        where=ctx.kept(),
-    )
-    fpw = S.mul(S.col("f"), S.col("pw"))
-    fpwy = S.mul(fpw.copy(), S.col("y"))
-    grouped = S.select(
-        [
-            *(k.copy() for k in keys),
-            S.alias(S.psum(S.col("f")), "sf"),
-            S.alias(S.psum(fpw), "sw"),
-            S.alias(S.psum(fpwy), "sy"),
-            S.alias(S.psum(S.mul(fpwy.copy(), S.col("y"))), "sy2"),
-            S.alias(S.psum(S.mul(fpw.copy(), fam.deviance_h_sql(S.col("y")))), "sh"),
-            S.alias(S.count_star(), ROWCOUNT),
-        ],
-        S.subquery(inner, "fold_in"),
-        group_by=[k.copy() for k in keys],
-    )
-    sw, sy = S.col("sw"), S.col("sy")
-    ybar = S.case([(S.gt(sw, S.num(0.0)), S.div(sy, sw))], S.num(0.0))
-    pos = S.gt(sw.copy(), S.num(0.0))
+    keys = key_columns(ctx)
+    key_cond, _ = ctx.kept_parts(keys)
+    sf, sw, sy = S.col("indb_sf"), S.col("indb_sw"), S.col("indb_sy")
+    pos = S.gt(sw, S.num(0.0))
+    ybar = S.case([(pos, S.div(sy, sw.copy()))], S.num(0.0))
+    fold_pw = S.case([(S.gt(sf.copy(), S.num(0.0)), S.div(sw.copy(), sf.copy()))], S.num(0.0))
+    dconst = S.sub(S.col("indb_sh"), S.mul(sw.copy(), fam.deviance_h_sql(ybar.copy())))
+    q = S.sub(S.col("indb_sy2"), S.div(S.mul(sy.copy(), sy.copy()), sw.copy()))
     return S.select(
         [
-            *(k.copy() for k in keys),
-            S.alias(S.col("sf"), FOLD_F),
-            S.alias(
-                S.case(
-                    [(S.gt(S.col("sf"), S.num(0.0)), S.div(sw.copy(), S.col("sf")))], S.num(0.0)
-                ),
-                FOLD_PW,
-            ),
+            *(S.col(k) for k in keys),
+            S.alias(S.as_double(sf.copy()), FOLD_F),
+            S.alias(fold_pw, FOLD_PW),
             S.alias(ybar, FOLD_Y),
-            S.alias(
-                S.case(
-                    [(pos, S.sub(S.col("sh"), S.mul(sw.copy(), fam.deviance_h_sql(ybar.copy()))))],
-                    S.num(0.0),
-                ),
-                FOLD_DCONST,
-            ),
-            S.alias(
-                S.case(
-                    [
-                        (
-                            pos.copy(),
-                            S.sub(S.col("sy2"), S.div(S.mul(sy.copy(), sy.copy()), sw.copy())),
-                        )
-                    ],
-                    S.num(0.0),
-                ),
-                FOLD_Q,
-            ),
-            S.col(ROWCOUNT),
+            S.alias(S.case([(pos.copy(), dconst)], S.num(0.0)), FOLD_DCONST),
+            S.alias(S.case([(pos.copy(), q)], S.num(0.0)), FOLD_Q),
+            S.alias(S.col(FOLD_ROWS), ROWCOUNT),
         ],
-        S.subquery(grouped, "fold"),
+        table,
+        where=S.and_(key_cond, S.col(FOLD_OK)),
     )
 
 
-def profile_query(
-    ctx: PlanContext, values: Sequence[Value], knots: dict[str, tuple[float, ...]]
-) -> exp.Select:
-    """The pre-fit profile in one scan of the source.
-
-    Over all rows: total rows, rows kept and NULL counts per model input. Over kept rows
-    (every aggregate argument is NULL elsewhere, and aggregates skip NULLs): domain-check
-    violation counts, the weighted response mean and the moments used to standardize values.
-    No COUNT(DISTINCT ...): DuckDB plans each one as its own pass over the source.
-    """
-    kept = S.col(KEPT)
-
-    def k(e: Expr) -> Expr:
-        return S.case([(kept, e)])
-
-    def kflag(cond: Expr) -> Expr:
-        return S.sum_(S.case([(S.and_(kept, cond), exp.Literal.number(1))], exp.Literal.number(0)))
-
-    y = ctx.response()
-    pw = ctx.prior_weight()
-    fw = ctx.raw_freq() or S.num(1.0)
-    cols: list[Expr] = [
-        S.alias(S.count_star(), "n_total"),
-        S.alias(S.sum_(S.flag(kept)), "n_kept"),
-    ]
-    for i, (_, e) in enumerate(ctx.null_items()):
-        cols.append(S.alias(S.sum_(S.flag(S.is_null(e))), f"null_{i}"))
-    cols += [
-        S.alias(S.psum(k(fw)), "sum_f"),
-        S.alias(S.psum(k(S.mul(fw, pw))), "sum_fpw"),
-        S.alias(S.psum(k(S.mul(fw, pw, y))), "sum_fpwy"),
-        S.alias(S.psum(k(S.case([(S.gt(pw, S.num(0.0)), fw)], S.num(0.0)))), "sum_f_pos"),
-        S.alias(kflag(S.le(pw, S.num(0.0))), "n_zero_weight"),
-        S.alias(S.min_(k(y)), "y_min"),
-        S.alias(S.max_(k(y)), "y_max"),
-        S.alias(S.min_(k(pw)), "pw_min"),
-        S.alias(S.max_(k(pw)), "pw_max"),
-        S.alias(S.avg(k(ctx.raw_offset() or S.num(0.0))), "off_mean"),
-    ]
-    for i, (_, cond) in enumerate(domain_checks(ctx)):
-        cols.append(S.alias(kflag(cond), f"chk_{i}"))
-    for key, term in saturated_terms(ctx).items():
-        positive = S.case([(S.gt(pw.copy(), S.num(0.0)), S.mul(fw.copy(), term))])
-        cols.append(S.alias(S.psum(k(positive)), f"ll_{key}"))
-    for v in values[1:]:
-        raw = ctx.value_sql(v, knots, standardized=False)
-        cols += [
-            # mean and mean square only: the scale just conditions X'WX, so the variance
-            # from moments (with its cancellation) is accurate enough, and cheaper
-            S.alias(S.avg(k(raw)), f"{v.alias}_mean"),
-            S.alias(S.avg(k(S.mul(raw, raw.copy()))), f"{v.alias}_ms"),
-            S.alias(S.min_(k(raw)), f"{v.alias}_min"),
-            S.alias(S.max_(k(raw)), f"{v.alias}_max"),
-        ]
-    inner = S.select([exp.Star(), S.alias(ctx.kept(), KEPT)], ctx.source())
-    return S.select(cols, S.subquery(inner, "p"))
+def detail_items(ctx: PlanContext, items: Sequence[ProfileItem]) -> list[ProfileItem]:
+    """The detail items the fold left out (those that read more than the keys)."""
+    keys = key_columns(ctx)
+    return [it for it in items if it.detail and not _key_only(it.arg, keys)]
 
 
 def saturated_terms(ctx: PlanContext) -> dict[str, Expr]:

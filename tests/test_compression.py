@@ -119,3 +119,69 @@ def test_compressed_equals_row_by_row_and_statsmodels(fair: pd.DataFrame, name: 
     assert_allclose(folded.std_errors, ref.bse.to_numpy(), rtol=1e-6)
     assert_allclose(folded.deviance, ref.deviance, rtol=1e-8)
     assert_allclose(folded.pearson_chi2, ref.pearson_chi2, rtol=1e-6)
+
+
+# -- the compressed route profiles the fold: the same counts, exclusions and errors ----------
+
+
+def _dirty(fair: pd.DataFrame) -> duckdb.DuckDBPyConnection:
+    """fair with NULLs in a key, in the response and in the offset's column, and a
+    frequency weight column (statsmodels.datasets.fair; the damage is ours)."""
+    frame = fair.copy()
+    frame.loc[frame.index[::97], "rating"] = None
+    frame.loc[frame.index[5::89], "children"] = np.nan
+    frame.loc[frame.index[7::101], "years"] = np.nan
+    frame["copies"] = (np.arange(len(frame)) % 3 + 1).astype(float)
+    con = duckdb.connect()
+    con.register("fair_df", frame)
+    con.execute("CREATE TABLE fair AS SELECT * FROM fair_df")
+    return con
+
+
+def test_folded_profile_counts_exclusions_like_the_row_route(fair: pd.DataFrame) -> None:
+    con = _dirty(fair)
+    source = "SELECT rating, religious, years, children, copies FROM fair"
+    opts = {
+        "family": "poisson",
+        "offset": "ln(years)",
+        "frequency_weight": "copies",
+        "db": con,
+        "tol": TOL,
+    }
+    folded = indb.fit(source, "children", compress="always", **opts)
+    rows = indb.fit(source, "children", compress="never", **opts)
+    assert folded.path.startswith("compressed") and not rows.path.startswith("compressed")
+    assert folded.n_used == rows.n_used and folded.n_excluded == rows.n_excluded > 0
+    assert folded.to_dict()["excluded_by_column"] == rows.to_dict()["excluded_by_column"]
+    for attr in ("deviance", "null_deviance", "log_likelihood", "aic"):
+        assert_allclose(getattr(folded, attr), getattr(rows, attr), rtol=1e-10, err_msg=attr)
+    assert_allclose(folded.params, rows.params, rtol=0, atol=1e-6 * float(rows.std_errors.min()))
+    # pandas drops the same rows (the external count): a row is used when it has no NULL
+    keep = fair.copy()
+    keep.loc[keep.index[::97], "rating"] = None
+    keep.loc[keep.index[5::89], "children"] = np.nan
+    keep.loc[keep.index[7::101], "years"] = np.nan
+    assert folded.n_used == len(keep.dropna(subset=["rating", "children", "years"]))
+
+
+@pytest.mark.parametrize(
+    ("expr", "message"),
+    [
+        ("CASE WHEN religious = '2' THEN -1 ELSE children END", "needs a response >= 0"),
+        ("CASE WHEN religious = '2' THEN 'NaN'::DOUBLE ELSE children END", "NaN or infinite"),
+    ],
+)
+def test_folded_route_reports_domain_errors_like_the_row_route(
+    fair: pd.DataFrame, expr: str, message: str
+) -> None:
+    con = _dirty(fair)
+    source = f"SELECT rating, religious, years, {expr} AS kids FROM fair"
+    errors = []
+    for mode in ("always", "never"):
+        with pytest.raises(indb.SpecError, match=message) as info:
+            indb.fit(source, "kids", family="poisson", db=con, compress=mode)
+        errors.append(str(info.value))
+    assert errors[0] == errors[1]
+    # nothing left behind by the compressed route
+    left = con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name LIKE 'indb_%'")
+    assert left.fetchone()[0] == 0
