@@ -8,8 +8,10 @@ statements in one transaction.
 from __future__ import annotations
 
 import contextlib
+import math
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
+from decimal import Decimal
 from typing import Any
 
 import numpy as np
@@ -178,6 +180,30 @@ class DuckDBEngine(Engine):
     def close(self) -> None:
         if self._owned:
             self.con.close()
+
+
+def rows_to_columns(names: Sequence[str], rows: Sequence[Sequence[Any]]) -> dict[str, np.ndarray]:
+    """Column arrays from driver rows, typed like DuckDB's Arrow results.
+
+    Integers become int64 (float64 with NaN when NULLs occur), floats and decimals float64
+    with NaN for NULL, booleans bool, anything else an object array.
+    """
+    out: dict[str, np.ndarray] = {}
+    for i, name in enumerate(names):
+        values = [r[i] for r in rows]
+        kinds = {type(v) for v in values if v is not None}
+        has_null = any(v is None for v in values)
+        if kinds and kinds <= {bool} and not has_null:
+            out[name] = np.array(values, dtype=bool)
+        elif kinds and kinds <= {int} and not has_null:
+            out[name] = np.array(values, dtype=np.int64)
+        elif kinds <= {int, float, Decimal} and not (kinds & {bool}):
+            out[name] = np.array(
+                [math.nan if v is None else float(v) for v in values], dtype=np.float64
+            )
+        else:
+            out[name] = np.array(values, dtype=object)
+    return out
 
 
 def _wrap(err: Exception, sql: str) -> EngineError:

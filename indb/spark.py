@@ -2,7 +2,7 @@
 
 Engine differences handled here rather than in the shared plan:
 
-* No ``lgamma`` SQL function: the portable :func:`indb.postgres.log_gamma_series` is used.
+* No ``lgamma`` SQL function: the portable :func:`indb.sqlexpr.log_gamma_series` is used.
 * No ``isfinite``: ``NOT isnan(x) AND abs(x) <> Infinity`` (Spark treats NaN = NaN as true
   and NaN as larger than every number, https://spark.apache.org/docs/latest/sql-ref-datatypes.html#nan-semantics).
 * Quantiles: the exact ``percentile(x, q)`` (linear interpolation, like DuckDB's
@@ -27,9 +27,9 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.dialect import Dialect
-from indb.engine import Engine
+from indb.engine import Engine, rows_to_columns
 from indb.errors import EngineError, SpecError, UnsupportedError
-from indb.postgres import as_operand, log_gamma_series, rows_to_columns
+from indb.sqlexpr import as_operand, log_gamma_series
 
 _SPARK_NUMERIC = {"tinyint", "smallint", "int", "integer", "bigint", "float", "double", "decimal"}
 _SPARK_NUMERIC |= {"byte", "short", "long", "real"}
