@@ -218,7 +218,8 @@ def connect(db: Any = None, **settings: Any) -> Engine:
     a ``postgresql://`` / ``postgres://`` URL or open ``psycopg`` connection (PostgreSQL),
     ``spark:MASTER`` such as ``spark:local[2]`` (an in-process Spark driver), ``sc://host:port``
     (a Spark Connect server) or an open ``SparkSession``. ``settings`` (memory_limit,
-    temp_directory, threads) apply to DuckDB only.
+    temp_directory, threads) apply to DuckDB only; ``view_kind`` (temporary | persistent
+    scoring views, see :class:`indb.spark.SparkEngine`) to Spark only.
     """
     if isinstance(db, Engine):
         return db
@@ -228,6 +229,9 @@ def connect(db: Any = None, **settings: Any) -> Engine:
     is_spark = low.startswith(("spark:", "sc://")) or (
         module.startswith("pyspark") and type(db).__name__ == "SparkSession"
     )
+    view_kind = settings.pop("view_kind", None)
+    if view_kind is not None and not is_spark:
+        raise SpecError(f"view_kind={view_kind!r} applies to Spark only")
     if is_pg or is_spark:
         given = sorted(k for k, v in settings.items() if v is not None)
         if given:
@@ -243,13 +247,13 @@ def connect(db: Any = None, **settings: Any) -> Engine:
         from indb.spark import SparkEngine
 
         if not isinstance(db, str):
-            return SparkEngine(db)
+            return SparkEngine(db, view_kind=view_kind)
         if low.startswith("sc://"):
-            return SparkEngine(remote=db.strip())
+            return SparkEngine(remote=db.strip(), view_kind=view_kind)
         master = db.strip()[len("spark:") :]
         if not master:
             raise SpecError(f"database URL {db!r} needs a Spark master, e.g. spark:local[2]")
-        return SparkEngine(master=master)
+        return SparkEngine(master=master, view_kind=view_kind)
     if isinstance(db, str) and "://" in db:
         raise SpecError(
             f"database URL {db!r} names an engine indb does not support; use "

@@ -20,7 +20,7 @@ from __future__ import annotations
 import contextlib
 import re
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from typing import Any
 
 import numpy as np
@@ -120,6 +120,23 @@ class PostgresDialect(Dialect):
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
         return cast_float_literals(as_operand(super()._translate(node)), "DOUBLE")
+
+    def replace_view(
+        self, create: exp.Create, columns: Sequence[str], existing: Sequence[str] | None
+    ) -> list[str]:
+        # CREATE OR REPLACE VIEW may only append columns: the existing ones must keep their
+        # names, order and types (https://www.postgresql.org/docs/current/sql-createview.html).
+        # Otherwise (intervals switched on or off, source columns changed) the view is dropped
+        # and created again; DDL is transactional in PostgreSQL, so inside the registry's
+        # transaction no reader ever sees the view missing. DROP without CASCADE: a view of
+        # the user's that reads this one makes the whole write fail and roll back rather than
+        # being dropped silently.
+        if existing is None or list(columns[: len(existing)]) == list(existing):
+            return [self.render(create)]
+        fresh = create.copy()
+        fresh.set("replace", False)
+        drop = exp.Drop(kind="VIEW", this=create.this.copy(), exists=True)
+        return [self.render(drop), self.render(fresh)]
 
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         # a temporary table lives in the session's own schema and disappears with it
