@@ -135,7 +135,7 @@ class PostgresDialect(Dialect):
             return [self.render(create)]
         fresh = create.copy()
         fresh.set("replace", False)
-        drop = exp.Drop(kind="VIEW", this=create.this.copy(), exists=True)
+        drop = exp.Drop(kind="VIEW", tables=[create.this.copy()], exists=True)
         return [self.render(drop), self.render(fresh)]
 
     def materialize(self, name: str, query: exp.Expression) -> list[str]:

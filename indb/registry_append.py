@@ -41,7 +41,10 @@ from indb.registry import Registry, _now
 MODEL_RECORD = "model_record"
 VERSION_RECORD = "version_record"
 MODEL_RECORD_COLUMNS = [*W.REGISTRY_TABLES["model"], ("recorded_at", "TIMESTAMP")]
-_RECORDS = {"model": (MODEL_RECORD, MODEL_RECORD_COLUMNS), "model_version": (VERSION_RECORD, None)}
+_RECORDS = {
+    "model": (MODEL_RECORD, MODEL_RECORD_COLUMNS),
+    "model_version": (VERSION_RECORD, W.REGISTRY_TABLES["model_version"]),
+}
 _RANK = "indb_rank"
 
 

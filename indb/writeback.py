@@ -449,4 +449,4 @@ def create_view(schema: str | None, name: str, query: exp.Select) -> exp.Create:
 
 def drop_view(schema: str | None, name: str) -> exp.Drop:
     target = exp.Table(this=S.ident(name), db=S.ident(schema) if schema else None)
-    return exp.Drop(kind="VIEW", this=target, exists=True)
+    return exp.Drop(kind="VIEW", tables=[target], exists=True)  # sqlglot 30: tables=, not this=
