@@ -9,6 +9,7 @@ through as generic SQL.
 from __future__ import annotations
 
 import re
+from collections.abc import Sequence
 from typing import Any
 
 from sqlglot import exp
@@ -81,6 +82,25 @@ class Dialect:
 
     # -- write-back ---------------------------------------------------------------------------
     supports_macros = False
+    #: registry tables may declare PRIMARY KEY constraints (a second writer of the same
+    #: version then fails instead of duplicating it)
+    supports_primary_keys = True
+    #: registry rows can be changed with UPDATE; without it the registry is append-only
+    #: (:mod:`indb.registry_append`)
+    supports_update = True
+    #: storage clause of registry tables (``USING <format>``), for engines that need one
+    table_format: str | None = None
+
+    def replace_view(
+        self, create: exp.Create, columns: Sequence[str], existing: Sequence[str] | None
+    ) -> list[str]:
+        """Statements that (re)define a scoring view from its ``CREATE OR REPLACE VIEW`` tree.
+
+        ``columns`` are the new view's output columns and ``existing`` those of the view
+        already there (None when there is none); engines whose ``OR REPLACE`` cannot change
+        a view's columns use them to drop and recreate it instead.
+        """
+        return [self.render(create)]
 
     def create_macro(
         self, schema: str | None, name: str, params: list[str], body: exp.Expression

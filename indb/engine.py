@@ -8,8 +8,10 @@ statements in one transaction.
 from __future__ import annotations
 
 import contextlib
+import math
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
+from decimal import Decimal
 from typing import Any
 
 import numpy as np
@@ -180,6 +182,30 @@ class DuckDBEngine(Engine):
             self.con.close()
 
 
+def rows_to_columns(names: Sequence[str], rows: Sequence[Sequence[Any]]) -> dict[str, np.ndarray]:
+    """Column arrays from driver rows, typed like DuckDB's Arrow results.
+
+    Integers become int64 (float64 with NaN when NULLs occur), floats and decimals float64
+    with NaN for NULL, booleans bool, anything else an object array.
+    """
+    out: dict[str, np.ndarray] = {}
+    for i, name in enumerate(names):
+        values = [r[i] for r in rows]
+        kinds = {type(v) for v in values if v is not None}
+        has_null = any(v is None for v in values)
+        if kinds and kinds <= {bool} and not has_null:
+            out[name] = np.array(values, dtype=bool)
+        elif kinds and kinds <= {int} and not has_null:
+            out[name] = np.array(values, dtype=np.int64)
+        elif kinds <= {int, float, Decimal} and not (kinds & {bool}):
+            out[name] = np.array(
+                [math.nan if v is None else float(v) for v in values], dtype=np.float64
+            )
+        else:
+            out[name] = np.array(values, dtype=object)
+    return out
+
+
 def _wrap(err: Exception, sql: str) -> EngineError:
     msg = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
     return EngineError(f"DuckDB failed: {msg}", sql=sql)
@@ -192,7 +218,8 @@ def connect(db: Any = None, **settings: Any) -> Engine:
     a ``postgresql://`` / ``postgres://`` URL or open ``psycopg`` connection (PostgreSQL),
     ``spark:MASTER`` such as ``spark:local[2]`` (an in-process Spark driver), ``sc://host:port``
     (a Spark Connect server) or an open ``SparkSession``. ``settings`` (memory_limit,
-    temp_directory, threads) apply to DuckDB only.
+    temp_directory, threads) apply to DuckDB only; ``view_kind`` (temporary | persistent
+    scoring views, see :class:`indb.spark.SparkEngine`) to Spark only.
     """
     if isinstance(db, Engine):
         return db
@@ -202,6 +229,9 @@ def connect(db: Any = None, **settings: Any) -> Engine:
     is_spark = low.startswith(("spark:", "sc://")) or (
         module.startswith("pyspark") and type(db).__name__ == "SparkSession"
     )
+    view_kind = settings.pop("view_kind", None)
+    if view_kind is not None and not is_spark:
+        raise SpecError(f"view_kind={view_kind!r} applies to Spark only")
     if is_pg or is_spark:
         given = sorted(k for k, v in settings.items() if v is not None)
         if given:
@@ -217,13 +247,13 @@ def connect(db: Any = None, **settings: Any) -> Engine:
         from indb.spark import SparkEngine
 
         if not isinstance(db, str):
-            return SparkEngine(db)
+            return SparkEngine(db, view_kind=view_kind)
         if low.startswith("sc://"):
-            return SparkEngine(remote=db.strip())
+            return SparkEngine(remote=db.strip(), view_kind=view_kind)
         master = db.strip()[len("spark:") :]
         if not master:
             raise SpecError(f"database URL {db!r} needs a Spark master, e.g. spark:local[2]")
-        return SparkEngine(master=master)
+        return SparkEngine(master=master, view_kind=view_kind)
     if isinstance(db, str) and "://" in db:
         raise SpecError(
             f"database URL {db!r} names an engine indb does not support; use "

@@ -5,8 +5,9 @@ Engine differences handled here rather than in the shared plan:
 * Float literals such as ``1.5e0`` are NUMERIC in PostgreSQL (arbitrary precision, slower,
   and NUMERIC arithmetic differs from double arithmetic); every literal in scientific
   notation, which is how :func:`indb.sqlexpr.num` writes doubles, is cast to DOUBLE PRECISION.
-* No ``lgamma`` before PostgreSQL 18: :func:`log_gamma_series` builds a portable expression
-  (Stirling's series after shifting small arguments), accurate to ~1e-15 for x > 0.
+* No ``lgamma`` before PostgreSQL 18: :func:`indb.sqlexpr.log_gamma_series` builds a
+  portable expression (Stirling's series after shifting small arguments), accurate to
+  ~1e-15 for x > 0.
 * No ``isfinite`` for doubles: ``abs(x) < 'Infinity'`` is false for +/-Infinity and for NaN
   (PostgreSQL sorts NaN above every number, so NaN < Infinity is false; NaN = NaN is true).
 * Quantiles: the ordered-set aggregate ``percentile_cont(q) WITHIN GROUP (ORDER BY x)``.
@@ -17,11 +18,9 @@ Engine differences handled here rather than in the shared plan:
 from __future__ import annotations
 
 import contextlib
-import math
 import re
 import time
 from collections.abc import Iterator, Sequence
-from decimal import Decimal
 from typing import Any
 
 import numpy as np
@@ -29,59 +28,9 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.dialect import Dialect
-from indb.engine import Engine
+from indb.engine import Engine, rows_to_columns
 from indb.errors import EngineError, UnsupportedError
-
-# -- log-gamma as a portable expression -------------------------------------------------------
-
-# Stirling's series (Abramowitz & Stegun 6.1.40):
-#   ln Gamma(z) = (z - 1/2) ln z - z + ln(2 pi)/2 + sum_k B_2k / (2k (2k-1) z^(2k-1)).
-# With z >= 6 the first omitted term (k = 11) is below 1e-15.
-_STIRLING = (
-    1.0 / 12.0,
-    -1.0 / 360.0,
-    1.0 / 1260.0,
-    -1.0 / 1680.0,
-    1.0 / 1188.0,
-    -691.0 / 360360.0,
-    1.0 / 156.0,
-    -3617.0 / 122400.0,
-    43867.0 / 244188.0,
-    -174611.0 / 125400.0,
-)
-_HALF_LN_2PI = 0.5 * math.log(2.0 * math.pi)
-LOG_GAMMA_SHIFT = 6.0
-_SERIES_CAP = 1e8
-
-
-def log_gamma_series(x: S.Expr) -> S.Expr:
-    """ln(Gamma(x)) for x > 0 from +, *, /, ln only (for engines without ``lgamma``).
-
-    Arguments below 6 are shifted by the recurrence ln Gamma(x) = ln Gamma(x + 6) -
-    ln(x (x+1) ... (x+5)); Stirling's series with ten terms is then used at z >= 6 (first
-    omitted term < 1e-15). Large arguments are not shifted, so the product never overflows;
-    the result overflows (an error in PostgreSQL) only where ln Gamma itself exceeds 1.8e308.
-    Checked against ``scipy.special.gammaln`` in ``tests/engines``.
-    """
-    small = S.lt(x, S.num(LOG_GAMMA_SHIFT))
-    z = S.case([(small, S.add(x, S.num(LOG_GAMMA_SHIFT)))], x)
-    # The series is a correction of order 1/(12 z): beyond z = 1e8 it is below 1e-18 of the
-    # result, so it is evaluated at min(z, 1e8), where z^2 cannot overflow (PostgreSQL raises
-    # on float overflow and underflow instead of returning inf or 0).
-    zs = S.least(z.copy(), S.num(_SERIES_CAP))
-    zs2 = S.mul(zs, zs.copy())
-    series: S.Expr = S.num(_STIRLING[-1])
-    for c in reversed(_STIRLING[:-1]):
-        series = S.add(S.num(c), S.div(series, zs2.copy()))
-    core = S.add(
-        S.sub(S.mul(S.sub(z, S.num(0.5)), S.ln(z.copy())), z.copy()),
-        S.num(_HALF_LN_2PI),
-        S.div(series, zs.copy()),
-    )
-    prod = S.mul(x, *(S.add(x, S.num(float(k))) for k in range(1, int(LOG_GAMMA_SHIFT))))
-    # x, z and the tests appear several times: copy() gives every occurrence its own node
-    return S.sub(core, S.case([(small, S.ln(prod))], S.num(0.0))).copy()
-
+from indb.sqlexpr import as_operand, log_gamma_series
 
 # -- the dialect ------------------------------------------------------------------------------
 
@@ -123,18 +72,6 @@ def cast_float_literals(tree: exp.Expression, to: str) -> exp.Expression:
                 return cast
             node.replace(cast)
     return tree
-
-
-def as_operand(e: exp.Expression) -> exp.Expression:
-    """``e`` in parentheses unless it is a column, literal or plain function call.
-
-    A custom node stood as one operand (``NOT <node>``, ``a - <node>``); its translation may
-    be an operator tree. (``sqlexpr.paren`` is not enough: sqlglot's And/Or derive from Func.)
-    """
-    atom = isinstance(e, exp.Paren | exp.Column | exp.Literal | exp.Cast) or (
-        isinstance(e, exp.Func) and not isinstance(e, exp.Binary | exp.Unary)
-    )
-    return e if atom else exp.Paren(this=e)
 
 
 def fence_subqueries(tree: exp.Expression) -> exp.Expression:
@@ -184,6 +121,23 @@ class PostgresDialect(Dialect):
     def _translate(self, node: exp.Expression) -> exp.Expression:
         return cast_float_literals(as_operand(super()._translate(node)), "DOUBLE")
 
+    def replace_view(
+        self, create: exp.Create, columns: Sequence[str], existing: Sequence[str] | None
+    ) -> list[str]:
+        # CREATE OR REPLACE VIEW may only append columns: the existing ones must keep their
+        # names, order and types (https://www.postgresql.org/docs/current/sql-createview.html).
+        # Otherwise (intervals switched on or off, source columns changed) the view is dropped
+        # and created again; DDL is transactional in PostgreSQL, so inside the registry's
+        # transaction no reader ever sees the view missing. DROP without CASCADE: a view of
+        # the user's that reads this one makes the whole write fail and roll back rather than
+        # being dropped silently.
+        if existing is None or list(columns[: len(existing)]) == list(existing):
+            return [self.render(create)]
+        fresh = create.copy()
+        fresh.set("replace", False)
+        drop = exp.Drop(kind="VIEW", tables=[create.this.copy()], exists=True)
+        return [self.render(drop), self.render(fresh)]
+
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         # a temporary table lives in the session's own schema and disappears with it
         return [f"CREATE TEMPORARY TABLE {self.quote(name)} AS {self.render(query)}"]
@@ -224,30 +178,6 @@ class PostgresDialect(Dialect):
 
 
 # -- the engine adapter -----------------------------------------------------------------------
-
-
-def rows_to_columns(names: Sequence[str], rows: Sequence[Sequence[Any]]) -> dict[str, np.ndarray]:
-    """Column arrays from driver rows, typed like DuckDB's Arrow results.
-
-    Integers become int64 (float64 with NaN when NULLs occur), floats and decimals float64
-    with NaN for NULL, booleans bool, anything else an object array.
-    """
-    out: dict[str, np.ndarray] = {}
-    for i, name in enumerate(names):
-        values = [r[i] for r in rows]
-        kinds = {type(v) for v in values if v is not None}
-        has_null = any(v is None for v in values)
-        if kinds and kinds <= {bool} and not has_null:
-            out[name] = np.array(values, dtype=bool)
-        elif kinds and kinds <= {int} and not has_null:
-            out[name] = np.array(values, dtype=np.int64)
-        elif kinds <= {int, float, Decimal} and not (kinds & {bool}):
-            out[name] = np.array(
-                [math.nan if v is None else float(v) for v in values], dtype=np.float64
-            )
-        else:
-            out[name] = np.array(values, dtype=object)
-    return out
 
 
 def redact(url: str) -> str:

@@ -53,7 +53,19 @@ class SaveOutcome:
 
 
 class Registry:
-    """Registry operations on one engine (schema ``indb_registry`` unless told otherwise)."""
+    """Registry operations on one engine (schema ``indb_registry`` unless told otherwise).
+
+    On an engine without UPDATE (Spark's file tables) this returns an
+    :class:`indb.registry_append.AppendOnlyRegistry`, which keeps the same tables readable
+    but only ever appends rows.
+    """
+
+    def __new__(cls, engine: Engine, schema: str = DEFAULT_SCHEMA) -> Registry:
+        if cls is Registry and not engine.dialect.supports_update:
+            from indb.registry_append import AppendOnlyRegistry
+
+            return super().__new__(AppendOnlyRegistry)
+        return super().__new__(cls)
 
     def __init__(self, engine: Engine, schema: str = DEFAULT_SCHEMA) -> None:
         self.engine = engine
@@ -79,7 +91,7 @@ class Registry:
 
     def ensure(self) -> None:
         """Create the registry schema and tables if missing."""
-        for stmt in W.registry_ddl(self.schema):
+        for stmt in W.registry_ddl(self.schema, self.d):
             self._run(stmt)
 
     # -- reading ---------------------------------------------------------------------------
@@ -171,7 +183,7 @@ class Registry:
                     latest["status"] == "live",
                     self._view_label(current),
                     "score_mean",
-                    current["macro_name"],
+                    current["macro_name"] if self.d.supports_macros else None,
                 )
         version = 1
         if current is not None:  # numbers are never reused, dropped versions included
@@ -283,12 +295,14 @@ class Registry:
             with self.engine.transaction():
                 if fresh:  # registry tables are created in the same transaction
                     self.ensure()
-                if current is None:
-                    self._run(W.insert_rows(self.schema, "model", [model_row]))
-                self._run(W.insert_rows(self.schema, "model_version", [vrow]))
-                self._run(W.insert_rows(self.schema, "version_term", terms))
+                # a version's details before its row, and the row before the model's: an
+                # engine without transactions (Spark) then never shows a half-written version
+                self._insert("version_term", terms)
                 if iters:
-                    self._run(W.insert_rows(self.schema, "version_iteration", iters))
+                    self._insert("version_iteration", iters)
+                self._insert("model_version", [vrow])
+                if current is None:
+                    self._insert("model", [model_row])
                 self._event(
                     name,
                     version,
@@ -299,11 +313,7 @@ class Registry:
                 if promote:
                     self._make_live(name, version, model_row, deploy, now)
                 elif current is not None:
-                    self._run(
-                        W.update_rows(
-                            self.schema, "model", _model_updates(model_row), W.where_model(name)
-                        )
-                    )
+                    self._update_model(name, model_row)
         except EngineError as err:
             raise _conflict(err, name, version) from err
         return SaveOutcome(
@@ -352,14 +362,7 @@ class Registry:
             return
         now = _now()
         with self.engine.transaction():
-            self._run(
-                W.update_rows(
-                    self.schema,
-                    "model_version",
-                    {"status": "dropped"},
-                    W.where_model(name, int(version)),
-                )
-            )
+            self._set_status(name, int(version), "dropped")
             self._event(name, int(version), "drop", "", now)
 
     def compare(self, name: str, a: int, b: int) -> dict[str, Any]:
@@ -425,11 +428,13 @@ class Registry:
         stmts = []
         if model_row.get("view_schema"):
             stmts.append(self.d.render(_create_schema(model_row["view_schema"])))
-        stmts.append(
-            self.d.render(
-                W.create_view(model_row.get("view_schema"), model_row["view_name"], query)
-            )
-        )
+        view = W.create_view(model_row.get("view_schema"), model_row["view_name"], query)
+        names = W.ScoreColumns()
+        out_cols = [*cols, names.eta, names.mean]
+        if model_row.get("intervals"):
+            out_cols += [names.se, names.low, names.high]
+        out_cols.append(names.unseen)
+        stmts += self.d.replace_view(view, out_cols, self._columns_of(view.this))
         if self.d.supports_macros:
             params = W.model_inputs(result, self.d)
             stmts.append(
@@ -447,23 +452,37 @@ class Registry:
     ) -> None:
         for stmt in deploy:
             self.engine.execute(stmt)
-        self._run(
-            W.update_rows(
-                self.schema,
-                "model_version",
-                {"status": "retired"},
-                S.and_(W.where_model(name), S.eq(S.col("status"), S.text("live"))),
-            )
-        )
-        self._run(
-            W.update_rows(
-                self.schema, "model_version", {"status": "live"}, W.where_model(name, version)
-            )
-        )
+        self._set_status(name, None, "retired")
+        self._set_status(name, version, "live")
         row = dict(model_row)
         row["live_version"] = version
-        self._run(W.update_rows(self.schema, "model", _model_updates(row), W.where_model(name)))
+        self._update_model(name, row)
         self._event(name, version, "promote", f"view {self._view_label(model_row)}", now)
+
+    # -- row writes (an append-only registry overrides these) -----------------------------------
+    def _insert(self, table: str, rows: list[dict[str, Any]]) -> None:
+        self._run(W.insert_rows(self.schema, table, rows))
+
+    def _set_status(self, name: str, version: int | None, status: str) -> None:
+        """Set a version's status (``version=None``: whichever version is live now)."""
+        where = (
+            S.and_(W.where_model(name), S.eq(S.col("status"), S.text("live")))
+            if version is None
+            else W.where_model(name, version)
+        )
+        self._run(W.update_rows(self.schema, "model_version", {"status": status}, where))
+
+    def _update_model(self, name: str, row: dict[str, Any]) -> None:
+        self._run(W.update_rows(self.schema, "model", _model_updates(row), W.where_model(name)))
+
+    def _columns_of(self, relation: Any) -> list[str] | None:
+        """Column names of a table or view, or None when there is none by that name."""
+        try:
+            return [
+                c for c, _ in self.engine.describe(self.d.render(S.select([_star()], relation)))
+            ]
+        except EngineError:
+            return None
 
     def _event(self, name: str, version: int, action: str, detail: str, now: str) -> None:
         self._run(

@@ -2,7 +2,7 @@
 
 Engine differences handled here rather than in the shared plan:
 
-* No ``lgamma`` SQL function: the portable :func:`indb.postgres.log_gamma_series` is used.
+* No ``lgamma`` SQL function: the portable :func:`indb.sqlexpr.log_gamma_series` is used.
 * No ``isfinite``: ``NOT isnan(x) AND abs(x) <> Infinity`` (Spark treats NaN = NaN as true
   and NaN as larger than every number, https://spark.apache.org/docs/latest/sql-ref-datatypes.html#nan-semantics).
 * Quantiles: the exact ``percentile(x, q)`` (linear interpolation, like DuckDB's
@@ -18,7 +18,7 @@ from __future__ import annotations
 import contextlib
 import os
 import time
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -27,15 +27,22 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.dialect import Dialect
-from indb.engine import Engine
+from indb.engine import Engine, rows_to_columns
 from indb.errors import EngineError, SpecError, UnsupportedError
-from indb.postgres import as_operand, log_gamma_series, rows_to_columns
+from indb.sqlexpr import as_operand, log_gamma_series
 
 _SPARK_NUMERIC = {"tinyint", "smallint", "int", "integer", "bigint", "float", "double", "decimal"}
 _SPARK_NUMERIC |= {"byte", "short", "long", "real"}
 _SPARK_TEXT = {"string", "varchar", "char"}
 _SPARK_BOOL = {"boolean"}
 _FILE_FORMATS = {".parquet": "parquet", ".pq": "parquet", ".orc": "orc", ".json": "json"}
+VIEW_KINDS = ("temporary", "persistent")
+
+
+def check_view_kind(value: str) -> str:
+    if value not in VIEW_KINDS:
+        raise SpecError(f"view_kind {value!r} is not one of {', '.join(VIEW_KINDS)}")
+    return value
 
 
 class SparkDialect(Dialect):
@@ -43,6 +50,31 @@ class SparkDialect(Dialect):
 
     name = "spark"
     sqlglot_name = "spark"
+    # Spark's built-in file tables have no constraints and no UPDATE/DELETE (those need a
+    # table format such as Delta or Iceberg): the registry is kept append-only there.
+    supports_primary_keys = False
+    supports_update = False
+    table_format = "parquet"
+
+    def __init__(self, view_kind: str = "temporary") -> None:
+        #: "temporary": scoring views live in the Spark session; "persistent": in the catalog
+        self.view_kind = check_view_kind(view_kind)
+
+    def replace_view(
+        self, create: exp.Create, columns: Sequence[str], existing: Sequence[str] | None
+    ) -> list[str]:
+        # Spark replaces a view's whole definition, columns included, in one catalog call.
+        if self.view_kind == "persistent":
+            return [self.render(create)]
+        target = create.this
+        if target.args.get("db") is not None:
+            raise SpecError(
+                f"a temporary Spark view cannot be in a schema (view schema "
+                f"{target.db!r}); drop the view schema or use view_kind='persistent'"
+            )
+        temp = create.copy()
+        temp.set("properties", exp.Properties(expressions=[exp.TemporaryProperty()]))
+        return [self.render(temp)]
 
     def render(self, tree: exp.Expression) -> str:
         tree = tree.copy()
@@ -114,6 +146,12 @@ class SparkEngine(Engine):
         A Spark Connect URL ``sc://host:port``.
     conf:
         Extra Spark settings for a session this engine creates.
+    view_kind:
+        Where write-back puts scoring views: ``"temporary"`` (session-scoped, gone when the
+        session ends) or ``"persistent"`` (in the catalog; the scoring source must then be a
+        catalog table or a file, not a temporary view). By default temporary for a session
+        given by the caller, persistent for a session this engine opens (and stops at
+        :meth:`close`, which would take a temporary view with it).
 
     Spark has no transactions: :meth:`transaction` runs the statements inside one by one
     and cannot undo the earlier ones when a later one fails.
@@ -126,7 +164,10 @@ class SparkEngine(Engine):
         master: str | None = None,
         remote: str | None = None,
         conf: dict[str, str] | None = None,
+        view_kind: str | None = None,
     ) -> None:
+        if view_kind is not None:
+            check_view_kind(view_kind)
         if sum(x is not None for x in (session, master, remote)) != 1:
             raise SpecError("SparkEngine needs exactly one of session=, master= or remote=")
         try:
@@ -140,7 +181,7 @@ class SparkEngine(Engine):
 
             errors.append(Py4JError)
         self._errors = tuple(errors)
-        self.dialect = SparkDialect()
+        self.dialect = SparkDialect(view_kind or "temporary")
         if session is not None:
             self.session = session
             self._owned = False
@@ -178,6 +219,8 @@ class SparkEngine(Engine):
         except self._errors as err:
             where = remote if remote is not None else master
             raise EngineError(f"cannot start a Spark session for {where!r}: {_first(err)}") from err
+        if view_kind is None and self._owned:
+            self.dialect.view_kind = "persistent"
 
     def _df(self, sql: str) -> Any:
         try:

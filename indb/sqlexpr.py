@@ -362,3 +362,66 @@ def referenced_columns(e: Expr) -> list[str]:
         if c.name not in seen:
             seen.append(c.name)
     return seen
+
+
+def as_operand(e: exp.Expression) -> exp.Expression:
+    """``e`` in parentheses unless it is a column, literal or plain function call.
+
+    A custom node stood as one operand (``NOT <node>``, ``a - <node>``); its translation may
+    be an operator tree. (``sqlexpr.paren`` is not enough: sqlglot's And/Or derive from Func.)
+    """
+    atom = isinstance(e, exp.Paren | exp.Column | exp.Literal | exp.Cast) or (
+        isinstance(e, exp.Func) and not isinstance(e, exp.Binary | exp.Unary)
+    )
+    return e if atom else exp.Paren(this=e)
+
+
+# -- log-gamma as a portable expression (engines without lgamma) ------------------------------
+
+# Stirling's series (Abramowitz & Stegun 6.1.40):
+#   ln Gamma(z) = (z - 1/2) ln z - z + ln(2 pi)/2 + sum_k B_2k / (2k (2k-1) z^(2k-1)).
+# With z >= 6 the first omitted term (k = 11) is below 1e-15.
+_STIRLING = (
+    1.0 / 12.0,
+    -1.0 / 360.0,
+    1.0 / 1260.0,
+    -1.0 / 1680.0,
+    1.0 / 1188.0,
+    -691.0 / 360360.0,
+    1.0 / 156.0,
+    -3617.0 / 122400.0,
+    43867.0 / 244188.0,
+    -174611.0 / 125400.0,
+)
+_HALF_LN_2PI = 0.5 * math.log(2.0 * math.pi)
+LOG_GAMMA_SHIFT = 6.0
+_SERIES_CAP = 1e8
+
+
+def log_gamma_series(x: Expr) -> Expr:
+    """ln(Gamma(x)) for x > 0 from +, *, /, ln only (for engines without ``lgamma``).
+
+    Arguments below 6 are shifted by the recurrence ln Gamma(x) = ln Gamma(x + 6) -
+    ln(x (x+1) ... (x+5)); Stirling's series with ten terms is then used at z >= 6 (first
+    omitted term < 1e-15). Large arguments are not shifted, so the product never overflows;
+    the result overflows (an error in PostgreSQL) only where ln Gamma itself exceeds 1.8e308.
+    Checked against ``scipy.special.gammaln`` in ``tests/engines``.
+    """
+    small = lt(x, num(LOG_GAMMA_SHIFT))
+    z = case([(small, add(x, num(LOG_GAMMA_SHIFT)))], x)
+    # The series is a correction of order 1/(12 z): beyond z = 1e8 it is below 1e-18 of the
+    # result, so it is evaluated at min(z, 1e8), where z^2 cannot overflow (PostgreSQL raises
+    # on float overflow and underflow instead of returning inf or 0).
+    zs = least(z.copy(), num(_SERIES_CAP))
+    zs2 = mul(zs, zs.copy())
+    series: Expr = num(_STIRLING[-1])
+    for c in reversed(_STIRLING[:-1]):
+        series = add(num(c), div(series, zs2.copy()))
+    core = add(
+        sub(mul(sub(z, num(0.5)), ln(z.copy())), z.copy()),
+        num(_HALF_LN_2PI),
+        div(series, zs.copy()),
+    )
+    prod = mul(x, *(add(x, num(float(k))) for k in range(1, int(LOG_GAMMA_SHIFT))))
+    # x, z and the tests appear several times: copy() gives every occurrence its own node
+    return sub(core, case([(small, ln(prod))], num(0.0))).copy()

@@ -338,25 +338,42 @@ def table_ref(schema: str, table: str) -> exp.Table:
     return exp.Table(this=S.ident(table), db=S.ident(schema))
 
 
-def registry_ddl(schema: str) -> list[exp.Expression]:
-    """CREATE SCHEMA / CREATE TABLE IF NOT EXISTS statements for the registry."""
+def registry_ddl(schema: str, dialect: Dialect | None = None) -> list[exp.Expression]:
+    """CREATE SCHEMA / CREATE TABLE IF NOT EXISTS statements for the registry.
+
+    With a ``dialect`` that has no constraints, the primary keys are left out; its
+    ``table_format`` (Spark: parquet) becomes the tables' storage clause.
+    """
     out: list[exp.Expression] = [
         exp.Create(kind="SCHEMA", this=exp.Table(db=S.ident(schema)), exists=True)
     ]
     for table, cols in REGISTRY_TABLES.items():
-        defs: list[exp.Expression] = [
-            exp.ColumnDef(this=S.ident(c), kind=exp.DataType.build(t)) for c, t in cols
-        ]
-        if table in PRIMARY_KEYS:
-            defs.append(exp.PrimaryKey(expressions=[S.ident(c) for c in PRIMARY_KEYS[table]]))
-        out.append(
-            exp.Create(
-                kind="TABLE",
-                exists=True,
-                this=exp.Schema(this=table_ref(schema, table), expressions=defs),
-            )
-        )
+        out.append(create_table(schema, table, cols, PRIMARY_KEYS.get(table), dialect))
     return out
+
+
+def create_table(
+    schema: str,
+    table: str,
+    cols: Sequence[tuple[str, str]],
+    key: Sequence[str] | None,
+    dialect: Dialect | None = None,
+) -> exp.Create:
+    """CREATE TABLE IF NOT EXISTS schema.table (columns[, PRIMARY KEY]) for ``dialect``."""
+    defs: list[exp.Expression] = [
+        exp.ColumnDef(this=S.ident(c), kind=exp.DataType.build(t)) for c, t in cols
+    ]
+    if key and (dialect is None or dialect.supports_primary_keys):
+        defs.append(exp.PrimaryKey(expressions=[S.ident(c) for c in key]))
+    create = exp.Create(
+        kind="TABLE",
+        exists=True,
+        this=exp.Schema(this=table_ref(schema, table), expressions=defs),
+    )
+    if dialect is not None and dialect.table_format:
+        fmt = exp.FileFormatProperty(this=exp.Var(this=dialect.table_format.upper()))
+        create.set("properties", exp.Properties(expressions=[fmt]))
+    return create
 
 
 def literal(value: Any) -> Expr:
@@ -372,10 +389,19 @@ def literal(value: Any) -> Expr:
     return S.text(str(value))
 
 
-def insert_rows(schema: str, table: str, rows: Sequence[dict[str, Any]]) -> exp.Insert:
-    """INSERT INTO schema.table (cols) VALUES (...), (...)."""
-    cols = [c for c, _ in REGISTRY_TABLES[table]]
-    types = dict(REGISTRY_TABLES[table])
+def insert_rows(
+    schema: str,
+    table: str,
+    rows: Sequence[dict[str, Any]],
+    columns: Sequence[tuple[str, str]] | None = None,
+) -> exp.Insert:
+    """INSERT INTO schema.table (cols) VALUES (...), (...).
+
+    ``columns`` ((name, type) pairs) default to the registry table's of that name.
+    """
+    layout = REGISTRY_TABLES[table] if columns is None else columns
+    cols = [c for c, _ in layout]
+    types = dict(layout)
     tuples = []
     for r in rows:
         vals = []
@@ -423,4 +449,4 @@ def create_view(schema: str | None, name: str, query: exp.Select) -> exp.Create:
 
 def drop_view(schema: str | None, name: str) -> exp.Drop:
     target = exp.Table(this=S.ident(name), db=S.ident(schema) if schema else None)
-    return exp.Drop(kind="VIEW", this=target, exists=True)
+    return exp.Drop(kind="VIEW", tables=[target], exists=True)  # sqlglot 30: tables=, not this=

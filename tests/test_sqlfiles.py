@@ -5,15 +5,19 @@ from __future__ import annotations
 from pathlib import Path
 
 import duckdb
+import pytest
 
-from indb.sqlfiles import registry_sql
+from indb.sqlfiles import REGISTRY_DIALECTS, registry_sql
 
 SQL_DIR = Path(__file__).resolve().parents[1] / "sql"
 
 
-def test_registry_ddl_file_matches_the_code() -> None:
-    # regenerate with: python -m indb.sqlfiles sql/
-    assert (SQL_DIR / "registry_duckdb.sql").read_text(encoding="utf-8") == registry_sql("duckdb")
+@pytest.mark.parametrize("dialect", REGISTRY_DIALECTS)
+def test_registry_ddl_file_matches_the_code(dialect: str) -> None:
+    # regenerate with: python -m indb.sqlfiles sql/ (run on PostgreSQL and Spark in
+    # tests/engines/test_writeback.py)
+    path = SQL_DIR / f"registry_{dialect}.sql"
+    assert path.read_text(encoding="utf-8") == registry_sql(dialect)
 
 
 def test_registry_ddl_runs_twice_on_duckdb() -> None:

@@ -129,7 +129,7 @@ def _quiet_spark_logging() -> None:
 
 
 @pytest.fixture(scope="session")
-def spark_local() -> Iterator[Any]:
+def spark_local(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Any]:
     """The one in-process Spark session of the test run (local[2])."""
     try:
         import pyspark  # noqa: F401
@@ -144,6 +144,8 @@ def spark_local() -> Iterator[Any]:
         "spark.driver.host": "127.0.0.1",
         "spark.driver.bindAddress": "127.0.0.1",
         "spark.driver.extraJavaOptions": TEST_JVM_OPTIONS,
+        # catalog tables (the write-back tests' registries) go here, not into the cwd
+        "spark.sql.warehouse.dir": str(tmp_path_factory.mktemp("spark-warehouse")),
     }
     try:
         engine = SparkEngine(master="local[2]", conf=conf)

@@ -219,6 +219,8 @@ def start_spark_cluster(root: Path) -> tuple[str, Callable[[], None]]:
             "spark.executor.memory": "1g",
             "spark.executor.extraJavaOptions": TEST_JVM_OPTIONS,
             "spark.cores.max": "2",
+            # registry tables written by the write-back tests go here, not into the cwd
+            "spark.sql.warehouse.dir": str(root / "warehouse"),
         }
         cmd = [str(home / "bin" / "spark-submit"), "--master", master_url]
         cmd += ["--class", "org.apache.spark.sql.connect.service.SparkConnectServer"]

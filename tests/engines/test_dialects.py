@@ -21,8 +21,9 @@ from sqlglot import exp
 from indb import sqlexpr as S
 from indb.engine import DuckDBEngine, Engine
 from indb.errors import EngineError, UnsupportedError
-from indb.postgres import PostgresDialect, log_gamma_series
+from indb.postgres import PostgresDialect
 from indb.spark import SparkDialect
+from indb.sqlexpr import log_gamma_series
 
 ENGINES = ["duckdb", "postgres", "spark-local"]
 
