@@ -35,6 +35,7 @@ import logging
 import math
 import os
 import platform
+import resource
 import shutil
 import subprocess
 import sys
@@ -55,6 +56,7 @@ ROOT = os.path.dirname(HERE)
 sys.path.insert(0, ROOT)  # run from a checkout: the indb package next to benchmarks/
 
 import indb  # noqa: E402
+from indb.engine import DuckDBEngine  # noqa: E402
 from indb.spark import SparkEngine  # noqa: E402
 
 MIB = 1024**2
@@ -153,6 +155,7 @@ def used_column_bytes(dataset: Dataset, columns: tuple[str, ...]) -> int:
 class Call:
     kind: str
     seconds: float
+    cpu_seconds: float
     result_rows: int
     result_values: int
     result_bytes: int
@@ -163,7 +166,9 @@ class Recorder:
     calls: list[Call] = field(default_factory=list)
     last_irls_sql: str = ""
 
-    def note(self, sql: str, seconds: float, cols: dict[str, np.ndarray] | None) -> None:
+    def note(
+        self, sql: str, seconds: float, cpu: float, cols: dict[str, np.ndarray] | None
+    ) -> None:
         if "s_0_0" in sql:
             self.last_irls_sql = sql
         rows = values = size = 0
@@ -175,36 +180,89 @@ class Recorder:
                     size += sum(len(str(v).encode()) for v in arr if v is not None)
                 else:
                     size += arr.nbytes
-        self.calls.append(Call(query_kind(sql), seconds, rows, values, size))
+        self.calls.append(Call(query_kind(sql), seconds, cpu, rows, values, size))
+
+
+KINDS = ("profile", "sample", "levels", "irls", "loglik", "edge", "other")
 
 
 def query_kind(sql: str) -> str:
     """Which of indb's queries this is, from the aliases its plan builders use."""
-    if "s_0_0" in sql:
-        return "irls"
-    if "GROUPING" in sql.upper():
-        return "levels"
-    if sql.lstrip().upper().startswith(("CACHE", "DROP", "CREATE")):
-        return "ddl"
+    up = sql.upper().replace('"', "").replace("`", "")  # aliases are quoted per dialect
+    if "S_0_0" in up:
+        return "irls"  # gram_query: X'WX, X'Wz and deviance sums
+    if "N_KEPT" in up:
+        return "profile"  # profile_query: counts, NULL exclusions, domain checks, moments
+    if "GROUPING" in up:
+        return "levels"  # levels_query: level counts by GROUPING SETS
+    if " LIMIT " in up:
+        return "sample"  # sample_distinct_query: distinct design rows among the first rows
+    if " AS LL" in up:
+        return "loglik"  # loglik_query: log-likelihood at the fitted means
+    if " AS EDGE" in up:
+        return "edge"  # binomial: rows with fitted probabilities at or near 0 or 1
     return "other"
+
+
+class RecordingDuckDB(DuckDBEngine):
+    """The stock in-memory DuckDB adapter, recording like :class:`RecordingSpark`."""
+
+    def __init__(self, recorder: Recorder) -> None:
+        super().__init__(None)
+        self.recorder = recorder
+
+    def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
+        c0 = process_cpu()
+        out = super().fetch_columns(sql)
+        self.recorder.note(sql, self.last_seconds, process_cpu() - c0, out)
+        return out
 
 
 class RecordingSpark(SparkEngine):
     """The stock Spark adapter, noting each query's kind, engine time and result size."""
 
-    def __init__(self, session: Any, recorder: Recorder) -> None:
+    def __init__(self, session: Any, recorder: Recorder, cpu: JvmCpu) -> None:
         super().__init__(session)
         self.recorder = recorder
+        self.cpu = cpu
 
     def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
+        c0 = self.cpu()
         out = super().fetch_columns(sql)
-        self.recorder.note(sql, self.last_seconds, out)
+        self.recorder.note(sql, self.last_seconds, self.cpu() - c0, out)
         return out
 
     def execute(self, sql: str) -> list[tuple[Any, ...]]:
+        c0 = self.cpu()
         out = super().execute(sql)
-        self.recorder.note(sql, self.last_seconds, None)
+        self.recorder.note(sql, self.last_seconds, self.cpu() - c0, None)
         return out
+
+
+class JvmCpu:
+    """User + system CPU seconds of the in-process Spark driver JVM (all its threads: in
+    ``local[N]`` the executors are threads of it); NaN for a remote cluster.
+
+    Wall seconds on a shared machine depend on what else runs; CPU seconds much less so.
+    """
+
+    def __init__(self, engine: SparkEngine) -> None:
+        self.stat = None
+        jvm = getattr(engine.session, "_jvm", None)
+        if jvm is not None:
+            try:
+                pid = int(jvm.java.lang.ProcessHandle.current().pid())
+                self.stat = f"/proc/{pid}/stat"
+            except Exception:  # Spark Connect or no py4j gateway: no local JVM to read
+                self.stat = None
+        self.tick = os.sysconf("SC_CLK_TCK")
+
+    def __call__(self) -> float:
+        if self.stat is None:
+            return math.nan
+        with open(self.stat) as fh:
+            fields = fh.read().rsplit(")", 1)[1].split()
+        return (int(fields[11]) + int(fields[12])) / self.tick  # utime, stime
 
 
 def start_spark(master: str, conf: dict[str, str]) -> SparkEngine:
@@ -260,14 +318,25 @@ def spark_floor_sql(source: str, model: bench_data.Model) -> str:
     return f"SELECT {', '.join(items)} FROM parquet.{spark_ident(source)}"
 
 
-def best_of(run: Any, repeats: int) -> tuple[float, list[float]]:
-    run()  # warm-up: JIT, file listing, page cache
-    times = []
+def process_cpu() -> float:
+    """User + system CPU seconds of this process (DuckDB's threads run inside it)."""
+    ru = resource.getrusage(resource.RUSAGE_SELF)
+    return ru.ru_utime + ru.ru_stime
+
+
+def best_of(run: Any, repeats: int, cpu: Any) -> dict[str, Any]:
+    """One warm-up (JIT, file listing, page cache), then ``repeats`` timed runs: the best
+    wall time, every wall time, and the CPU seconds of the best run."""
+    run()
+    times, cpus = [], []
     for _ in range(repeats):
+        c0 = cpu()
         t0 = time.perf_counter()
         run()
         times.append(time.perf_counter() - t0)
-    return min(times), times
+        cpus.append(cpu() - c0)
+    k = int(np.argmin(times))
+    return {"best": times[k], "all": times, "cpu": cpus[k]}
 
 
 def measure_fit(
@@ -307,14 +376,14 @@ def measure_fit(
     if recorder is not None:
         calls = recorder.calls
         irls = [c for c in calls if c.kind == "irls"]
-        out["queries"] = {k: sum(c.kind == k for c in calls) for k in ("other", "levels", "irls")}
-        out["queries"]["ddl"] = sum(c.kind == "ddl" for c in calls)
-        out["query_seconds"] = {
-            k: sum(c.seconds for c in calls if c.kind == k) for k in ("other", "levels", "irls")
-        }
+        out["queries"] = {k: sum(c.kind == k for c in calls) for k in KINDS}
+        out["query_seconds"] = {k: sum(c.seconds for c in calls if c.kind == k) for k in KINDS}
         out["irls_result_rows"] = max((c.result_rows for c in irls), default=0)
         out["irls_result_values"] = max((c.result_values for c in irls), default=0)
         out["irls_result_bytes"] = max((c.result_bytes for c in irls), default=0)
+        out["irls_engine_seconds"] = [c.seconds for c in irls]
+        out["irls_cpu_seconds"] = [c.cpu_seconds for c in irls]
+        out["cpu_per_iter"] = float(np.mean(out["irls_cpu_seconds"])) if irls else math.nan
     return out
 
 
@@ -400,7 +469,6 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
     started = dt.datetime.now()
     load_start = os.getloadavg()
     java_home = ensure_java_home()
-    models = [MODELS[k] for k in args.models]
     log(f"starting Spark ({args.master})")
     t0 = time.perf_counter()
     engine = start_spark(args.master, spark_conf(args))
@@ -417,6 +485,7 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
         measure_fit(model, slice_sql, engine, None)
         warmup = time.perf_counter() - t0
     info = machine(engine)
+    jvm_cpu = JvmCpu(engine)
     info["java_home"] = java_home
     sizes: list[dict[str, Any]] = []
     try:
@@ -433,33 +502,38 @@ def run(args: argparse.Namespace) -> dict[str, Any]:
             }
             sizes.append(size)
             con = duckdb.connect()
-            for model in models:
+            keys = args.models if rows <= 1_000_000 else args.models_above_1e6
+            for model in (MODELS[k] for k in keys):
                 log(f"{rows:,} rows, {model.key}: floors")
                 entry: dict[str, Any] = {"model": model.key, "label": model.label}
                 entry["used_bytes"] = used_column_bytes(data, model.columns)
                 sql = spark_floor_sql(data.spark_source, model)
-                entry["spark_floor"], entry["spark_floor_all"] = best_of(
-                    lambda sql=sql: engine.session.sql(sql).collect(), args.repeats
+                entry["spark_floor"] = best_of(
+                    lambda sql=sql: engine.session.sql(sql).collect(), args.repeats, jvm_cpu
                 )
                 dsql = floor_sql(data.duckdb_source, model)
-                entry["duckdb_floor"], entry["duckdb_floor_all"] = best_of(
-                    lambda dsql=dsql, con=con: con.execute(dsql).fetchall(), args.repeats
+                entry["duckdb_floor"] = best_of(
+                    lambda dsql=dsql, con=con: con.execute(dsql).fetchall(),
+                    args.repeats,
+                    process_cpu,
                 )
                 log(f"{rows:,} rows, {model.key}: indb on Spark")
                 recorder = Recorder()
-                entry["spark"] = measure_fit(
-                    model, data.spark_source, RecordingSpark(engine.session, recorder), recorder
-                )
+                spark = RecordingSpark(engine.session, recorder, jvm_cpu)
+                entry["spark"] = measure_fit(model, data.spark_source, spark, recorder)
                 if recorder.last_irls_sql:
                     # planning alone (parse, analyse, optimise, physical plan) of the last
                     # IRLS query: the part of a scan that does not grow with the rows
                     explain = "EXPLAIN " + recorder.last_irls_sql
-                    entry["spark"]["plan_seconds"], _ = best_of(
-                        lambda explain=explain: engine.session.sql(explain).collect(), 2
-                    )
+                    entry["spark"]["plan_seconds"] = best_of(
+                        lambda explain=explain: engine.session.sql(explain).collect(), 2, jvm_cpu
+                    )["best"]
                     entry["spark"]["irls_sql_chars"] = len(recorder.last_irls_sql)
                 log(f"{rows:,} rows, {model.key}: indb on DuckDB")
-                entry["duckdb"] = measure_fit(model, data.duckdb_source, None, None)
+                recorder = Recorder()
+                duck = RecordingDuckDB(recorder)
+                entry["duckdb"] = measure_fit(model, data.duckdb_source, duck, recorder)
+                duck.close()
                 if entry["spark"].get("params") and entry["duckdb"].get("params"):
                     entry["agreement"] = agreement(entry["spark"], entry["duckdb"])
                 size["models"].append(entry)
@@ -488,10 +562,11 @@ def summary_line(rows: int, e: dict[str, Any]) -> str:
     s = e["spark"]
     if s.get("status") not in ("ok", "not converged"):
         return f"{e['model']}: Spark fit {s.get('status')}"
+    floor = e["spark_floor"]["best"]
     return (
-        f"{e['model']}: Spark floor {e['spark_floor']:.2f} s, fit {s['seconds']:.1f} s, "
+        f"{e['model']}: Spark floor {floor:.2f} s, fit {s['seconds']:.1f} s, "
         f"{s['iterations']} iters, {s['s_per_iter']:.2f} s/iter "
-        f"({s['s_per_iter'] / e['spark_floor']:.1f}x floor)"
+        f"({s['s_per_iter'] / floor:.1f}x floor)"
     )
 
 
@@ -523,9 +598,10 @@ TABLE_HEAD = [
     "iters",
     "s/iter",
     "iter/floor",
+    "CPU iter/floor",
     "plan s",
     "Mrows/s per iter",
-    "scans (other+levels+IRLS)",
+    "queries: profile+sample+levels+IRLS+loglik+edge",
     "back per IRLS scan",
     "p²+p+5 doubles",
     "input read / back",
@@ -538,9 +614,11 @@ def table_rows(result: dict[str, Any]) -> list[list[str]]:
         for e in size["models"]:
             for eng in ("spark", "duckdb"):
                 f = e[eng]
-                floor = e[f"{eng}_floor"]
+                floor = e[f"{eng}_floor"]["best"]
+                floor_cpu = e[f"{eng}_floor"]["cpu"]
                 ok = f.get("status") in ("ok", "not converged")
                 spi = f.get("s_per_iter", math.nan) if ok else math.nan
+                cpi = f.get("cpu_per_iter", math.nan) if ok else math.nan
                 row = [
                     f"{size['rows']:,}",
                     e["model"],
@@ -551,6 +629,7 @@ def table_rows(result: dict[str, Any]) -> list[list[str]]:
                     str(f.get("iterations", "-")),
                     fmt(spi, 3),
                     fmt(spi / floor, 1),
+                    fmt(cpi / floor_cpu, 1) if floor_cpu > 0 else "-",
                     fmt(f.get("plan_seconds"), 2),
                     fmt(size["rows"] / spi / 1e6, 2),
                 ]
@@ -558,7 +637,7 @@ def table_rows(result: dict[str, Any]) -> list[list[str]]:
                 if q:
                     back = f["irls_result_bytes"]
                     row += [
-                        f"{q['other']}+{q['levels']}+{q['irls']}",
+                        "+".join(str(q[k]) for k in KINDS[:6]) + other_note(q),
                         f"{human_bytes(back)} ({f['irls_result_rows']} rows)",
                         human_bytes(dense_stats_bytes(f["p"])),
                         f"{e['used_bytes'] / back:,.0f}x",
@@ -567,6 +646,10 @@ def table_rows(result: dict[str, Any]) -> list[list[str]]:
                     row += ["-", "-", "-", "-"]
                 out.append(row)
     return out
+
+
+def other_note(q: dict[str, int]) -> str:
+    return f" (+{q['other']} other)" if q.get("other") else ""
 
 
 def print_table(result: dict[str, Any]) -> None:
@@ -667,9 +750,12 @@ def markdown(result: dict[str, Any]) -> str:
                 )
     lines += ["", "## Where the time of a Spark fit goes", ""]
     lines += [
-        "| rows | model | other queries (n, s) | levels (n, s) | IRLS scans (n, s) | "
-        "fit total s | IRLS scans / floor |",
-        "|---:|---|---:|---:|---:|---:|---:|",
+        "Engine seconds by query kind (number of queries, total seconds), next to the fit's "
+        "wall time; the rest of the wall time is planning in Python and numpy.",
+        "",
+        "| rows | model | " + " | ".join(f"{k} (n, s)" for k in KINDS) + " | fit s | "
+        "IRLS total / floor |",
+        "|---:|---|" + "---:|" * (len(KINDS) + 2),
     ]
     for s in result["sizes"]:
         for e in s["models"]:
@@ -677,10 +763,10 @@ def markdown(result: dict[str, Any]) -> str:
             if not f.get("queries"):
                 continue
             q, qs = f["queries"], f["query_seconds"]
+            cells = " | ".join(f"{q[k]}, {qs[k]:.1f}" if q[k] else "-" for k in KINDS)
             lines.append(
-                f"| {s['rows']:,} | {e['model']} | {q['other']}, {qs['other']:.1f} | "
-                f"{q['levels']}, {qs['levels']:.1f} | {q['irls']}, {qs['irls']:.1f} | "
-                f"{f['seconds']:.1f} | {qs['irls'] / e['spark_floor']:.1f} |"
+                f"| {s['rows']:,} | {e['model']} | {cells} | "
+                f"{f['seconds']:.1f} | {qs['irls'] / e['spark_floor']['best']:.1f} |"
             )
     lines += ["", *METHOD.strip().splitlines(), ""]
     return "\n".join(lines)
@@ -715,6 +801,12 @@ METHOD = """
   `s/iter` is the mean `seconds` of the entries of the fit's `iteration_log` whose phase is
   `"fit"` (one aggregate scan each, including the solve of the update in numpy, which takes
   milliseconds); `iter/floor` divides it by the floor; `Mrows/s per iter` is rows / `s/iter`.
+- **CPU** (`CPU iter/floor`): the same ratio in CPU seconds, which depend far less than wall
+  seconds on what else the machine is running: the mean CPU seconds of one IRLS query over
+  the CPU seconds of the best floor run. For Spark it is the user + system time of the
+  driver JVM (`/proc/<pid>/stat`; with `local[N]` the executors are threads of that JVM), so
+  it is only available for an in-process driver; for DuckDB it is this process's own time
+  (DuckDB's threads run inside it).
 - **Warm-up.** Before anything is measured, one untimed Poisson fit runs on a 20,000-row
   `LIMIT` slice of the data, so the first measured fit does not pay for the JVM compiling
   Spark's planner and code generator (a long-lived cluster session has long done that).
@@ -722,11 +814,16 @@ METHOD = """
   parsing, analysis, optimisation and physical planning without running it. Each IRLS query
   is a new SQL text (the coefficients are literals in it), so every scan pays this once; it
   does not grow with the rows, and it is why small tables show a large `iter/floor`.
-- **Scans** (`other+levels+IRLS`): every query the fit sent to Spark, by kind: `other` are
-  the pre-fit profile scan (row count, NULL exclusions, domain checks, means and standard
-  deviations) and, where the family has one, the log-likelihood at the end; `levels` is the
-  one scan that counts the levels of the categorical columns (skipped without categorical
-  predictors); `IRLS` is one scan per iteration (plus any step-halving rescans).
+- **Queries** (`profile+sample+levels+IRLS+loglik`): every query the fit sent to Spark, by
+  kind. `profile` is the one pre-fit scan (row count, NULL exclusions, domain checks, means
+  and standard deviations); `sample` reads only the first 100,000 kept rows to decide whether
+  folding the table to its distinct design rows would pay (with continuous predictors it
+  never does); `levels` is the one scan that counts the levels of the categorical columns
+  (none without categorical predictors); `IRLS` is one scan per iteration (plus any
+  step-halving rescans); `loglik` is one scan for the log-likelihood at the fitted means,
+  for families whose log-likelihood does not follow from the profile sums and the deviance
+  (none of the models here); `edge` (binomial only) is one scan counting rows whose fitted
+  probability is at or near 0 or 1, for the separation warning.
 - **Back per IRLS scan**: the size of the largest IRLS query result fetched to the driver
   (numbers as 8-byte doubles/integers, level labels as UTF-8 text), with its row count. A
   numeric-only model returns one row: the upper triangle of X'WX, X'Wz, deviance, Pearson
@@ -764,6 +861,11 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     ap.add_argument("--driver-memory", default="2g", help="in-process driver only")
     ap.add_argument("--shuffle-partitions", type=int, default=4)
     ap.add_argument("--models", default=DEFAULT_MODELS, help=f"any of {','.join(MODELS)}")
+    ap.add_argument(
+        "--models-above-1e6",
+        default=None,
+        help="models for sizes above 10^6 rows (default: --models), to keep a 10^7 run short",
+    )
     ap.add_argument("--repeats", type=int, default=3, help="floor scans after one warm-up")
     ap.add_argument(
         "--no-warmup",
@@ -775,11 +877,20 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     ap.add_argument("--out", default=os.path.join(HERE, "SPARK.md"), help="Markdown report")
     ap.add_argument("--report-only", metavar="JSON", help="rewrite the report from saved JSON")
     args = ap.parse_args(argv)
-    keys = [k.strip() for k in args.models.split(",") if k.strip()]
-    unknown = [k for k in keys if k not in MODELS]
-    if unknown or not keys:
-        ap.error(f"--models: unknown {unknown}; choose from {', '.join(MODELS)}")
-    args.models = keys
+    for opt in ("models", "models_above_1e6"):
+        text = getattr(args, opt)
+        if text is None:
+            continue
+        keys = [k.strip() for k in text.split(",") if k.strip()]
+        unknown = [k for k in keys if k not in MODELS]
+        if unknown or not keys:
+            ap.error(
+                f"--{opt.replace('_', '-')}: unknown {unknown or text!r}; "
+                f"choose from {', '.join(MODELS)}"
+            )
+        setattr(args, opt, keys)
+    if args.models_above_1e6 is None:
+        args.models_above_1e6 = args.models
     if args.partitions < 1:
         ap.error(f"--partitions must be at least 1, got {args.partitions}")
     if args.repeats < 1:
