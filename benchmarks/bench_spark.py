@@ -60,7 +60,7 @@ from indb.engine import DuckDBEngine  # noqa: E402
 from indb.spark import SparkEngine  # noqa: E402
 
 MIB = 1024**2
-# the two numeric-only logistic model is not among bench_data's four; same columns otherwise
+# a numeric-only logistic model (not among bench_data's four), to pair with poisson_num
 LOGISTIC_NUM = bench_data.Model(
     "logistic_num",
     "logistic, 10 num only (p=11)",
@@ -128,9 +128,7 @@ def ensure_dataset(data_dir: str, rows: int, partitions: int, partition_by: str 
             use_threads=False,  # the same files on every run
         )
         os.replace(partial, folder)
-    files = []
-    for base, _, names in os.walk(folder):
-        files += [os.path.join(base, n) for n in names if n.endswith(".parquet")]
+    files = Dataset(folder, rows, 0, 0, partition_by).parquet_files()
     return Dataset(folder, rows, len(files), sum(os.path.getsize(f) for f in files), partition_by)
 
 
@@ -601,6 +599,7 @@ TABLE_HEAD = [
     "CPU iter/floor",
     "plan s",
     "Mrows/s per iter",
+    "load",
     "queries: profile+sample+levels+IRLS+loglik+edge",
     "back per IRLS scan",
     "p²+p+5 doubles",
@@ -632,13 +631,14 @@ def table_rows(result: dict[str, Any]) -> list[list[str]]:
                     fmt(cpi / floor_cpu, 1) if floor_cpu > 0 else "-",
                     fmt(f.get("plan_seconds"), 2),
                     fmt(size["rows"] / spi / 1e6, 2),
+                    fmt(f.get("load1"), 1),
                 ]
                 q = f.get("queries")
                 if q:
                     back = f["irls_result_bytes"]
                     row += [
                         "+".join(str(q[k]) for k in KINDS[:6]) + other_note(q),
-                        f"{human_bytes(back)} ({f['irls_result_rows']} rows)",
+                        f"{human_bytes(back)} ({plural(f['irls_result_rows'], 'row')})",
                         human_bytes(dense_stats_bytes(f["p"])),
                         f"{e['used_bytes'] / back:,.0f}x",
                     ]
@@ -682,11 +682,13 @@ def markdown(result: dict[str, Any]) -> str:
         "**These numbers are noisy.** The machine has "
         f"{m['cores']} cores and was shared with other work during the run (load average "
         f"{ls[0]:.2f} / {ls[1]:.2f} / {ls[2]:.2f} at the start, {le[0]:.2f} / {le[1]:.2f} / "
-        f"{le[2]:.2f} at the end; the 1-minute value at each fit is in the raw JSON). "
+        f"{le[2]:.2f} at the end; `load` in the results is the 1-minute value as each fit "
+        "started). "
         "Absolute seconds will differ from run to run; what carries over is the ratio of one "
         "IRLS scan to the plain scan of the same columns, measured minutes apart in the same "
         "session.",
         "",
+        *summary(result),
         "## Machine and run",
         "",
         "| | |",
@@ -772,6 +774,63 @@ def markdown(result: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def span(values: list[float], digits: int = 1) -> str:
+    vals = [v for v in values if math.isfinite(v)]
+    if not vals:
+        return "-"
+    lo, hi = min(vals), max(vals)
+    return (
+        f"{lo:.{digits}f}"
+        if f"{lo:.{digits}f}" == f"{hi:.{digits}f}"
+        else (f"{lo:.{digits}f} to {hi:.{digits}f}")
+    )
+
+
+def bytes_span(values: list[int]) -> str:
+    lo, hi = human_bytes(min(values)), human_bytes(max(values))
+    return lo if lo == hi else f"{lo} to {hi}"
+
+
+def plural(n: int, word: str) -> str:
+    return f"{n} {word}" if n == 1 else f"{n} {word}s"
+
+
+def summary(result: dict[str, Any]) -> list[str]:
+    """A few sentences computed from the measurements (no hand-written numbers)."""
+    out = ["## In short", ""]
+    for s in result["sizes"]:
+        ratios: dict[str, list[float]] = {"spark": [], "duckdb": []}
+        cpu: dict[str, list[float]] = {"spark": [], "duckdb": []}
+        back, read, rel = [], [], []
+        for e in s["models"]:
+            for eng in ratios:
+                f = e[eng]
+                if f.get("status") not in ("ok", "not converged"):
+                    continue
+                floor = e[f"{eng}_floor"]
+                ratios[eng].append(f["s_per_iter"] / floor["best"])
+                if floor["cpu"] > 0:
+                    cpu[eng].append(f.get("cpu_per_iter", math.nan) / floor["cpu"])
+            if e["spark"].get("irls_result_bytes"):
+                back.append(e["spark"]["irls_result_bytes"])
+                read.append(e["used_bytes"])
+            if e.get("agreement"):
+                rel.append(e["agreement"]["max_rel"])
+        if not back:
+            continue
+        out.append(
+            f"- **{s['rows']:,} rows** ({plural(len(s['models']), 'model')}): one IRLS scan on "
+            "Spark took "
+            f"{span(ratios['spark'])} times Spark's plain scan of the same columns in wall time "
+            f"({span(cpu['spark'])} in CPU time); on DuckDB {span(ratios['duckdb'])} times "
+            f"DuckDB's ({span(cpu['duckdb'])} in CPU time). Each IRLS scan sent "
+            f"{bytes_span(back)} back to the driver while "
+            f"reading {bytes_span(read)} of Parquet columns. "
+            f"Spark and DuckDB coefficients agree to {max(rel):.0e} relative or better."
+        )
+    return [*out, ""] if len(out) > 2 else []
+
+
 def model_keys(result: dict[str, Any]) -> list[str]:
     seen: list[str] = []
     for s in result["sizes"]:
@@ -806,7 +865,8 @@ METHOD = """
   the CPU seconds of the best floor run. For Spark it is the user + system time of the
   driver JVM (`/proc/<pid>/stat`; with `local[N]` the executors are threads of that JVM), so
   it is only available for an in-process driver; for DuckDB it is this process's own time
-  (DuckDB's threads run inside it).
+  (DuckDB's threads run inside it). `load` is the 1-minute load average as the fit started
+  (on 2 cores, anything above 2 means the fit shared the CPUs).
 - **Warm-up.** Before anything is measured, one untimed Poisson fit runs on a 20,000-row
   `LIMIT` slice of the data, so the first measured fit does not pay for the JVM compiling
   Spark's planner and code generator (a long-lived cluster session has long done that).
@@ -900,6 +960,20 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     return args
 
 
+NOTES_MARK = "<!-- hand-written notes below: kept when the report is regenerated -->"
+
+
+def kept_notes(path: str) -> str:
+    """The hand-written part of an existing report (from NOTES_MARK on), or nothing."""
+    try:
+        with open(path) as fh:
+            text = fh.read()
+    except FileNotFoundError:
+        return ""
+    at = text.find(NOTES_MARK)
+    return "" if at < 0 else "\n" + text[at:]
+
+
 def main(argv: list[str] | None = None) -> int:
     args = parse_args(argv)
     raw = os.path.join(args.data_dir, "spark_last_run.json")
@@ -912,8 +986,9 @@ def main(argv: list[str] | None = None) -> int:
         with open(raw, "w") as fh:
             json.dump(result, fh, indent=1)
     print_table(result)
+    notes = kept_notes(args.out)
     with open(args.out, "w") as fh:
-        fh.write(markdown(result))
+        fh.write(markdown(result) + notes)
     log(f"wrote {args.out}" + ("" if args.report_only else f" and {raw}"))
     return 0
 
