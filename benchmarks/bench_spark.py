@@ -23,7 +23,10 @@ measures
     own floor, and the agreement of the two coefficient vectors.
 
 It prints one table and writes a Markdown report (``--out``, default
-``benchmarks/SPARK.md``) plus the raw measurements as JSON next to the data.
+``benchmarks/SPARK.md``) plus the raw measurements as JSON next to the data
+(``spark_last_run.json``; ``--report-only JSON`` renders the report again from it). Anything
+after the line ``<!-- hand-written notes below ... -->`` in an existing report is kept.
+``--models-above-1e6`` narrows the models for the larger sizes, to keep a 10^7 run short.
 """
 
 from __future__ import annotations
