@@ -139,15 +139,18 @@ class Dialect:
     def query(self, sql: str) -> exp.Expression:
         """Parse a user's SELECT query in this dialect (it runs as written)."""
         import sqlglot
-        from sqlglot.errors import ParseError
+        from sqlglot.errors import SqlglotError, TokenError
 
         try:
             tree = sqlglot.parse_one(sql, read=self.sqlglot_name)
-        except ParseError as err:
+        except SqlglotError as err:  # ParseError, and TokenError for an unterminated quote
             first = str(err).splitlines()[0]
+            if isinstance(err, TokenError):
+                first += " (is a quote left unclosed?)"
+            shown = sql if len(sql) <= 200 else sql[:200] + "..."
             raise SpecError(
-                f"cannot parse the source query for {self.name}: {first}; "
-                "create a view with it and pass the view name instead"
+                f"cannot parse the source query {shown!r} for {self.name}: {first}; "
+                "fix the query, or create a view with it and pass the view name instead"
             ) from None
         if not isinstance(tree, exp.Query):
             raise SpecError("the source query must be a single SELECT (or WITH ... SELECT)")

@@ -411,9 +411,16 @@ class Registry:
             raise SpecError(f"model {name!r} has no scoring source; give score_source=")
         source = Source.parse(src_text)
         rel = self.d.relation(source)
-        cols = [
-            c for c, _ in self.engine.describe(self.d.render(S.select([_star()], _aliased(rel))))
-        ]
+        try:
+            described = self.engine.describe(self.d.render(S.select([_star()], _aliased(rel))))
+        except EngineError as err:
+            # a missing table, file or column is the user's input, as for the fit's source
+            raise SpecError(
+                f"cannot read the scoring source {source.label()!r} (option score_source): "
+                f"{err}; check the table name, file path or query, or give another "
+                "score_source="
+            ) from err
+        cols = [c for c, _ in described]
         missing = [c for c in W.model_inputs(result, self.d) if c not in cols]
         if missing:
             raise SpecError(
