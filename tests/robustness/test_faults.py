@@ -760,13 +760,6 @@ def test_full_spill_directory_fails_cleanly(
     assert R.dump_file(path) == before
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="EngineError keeps only the first line of DuckDB's message ('failed to offload "
-    "data block of size 256.0 KiB (.../976.5 KiB used)'); the lines naming the "
-    "max_temp_directory_size setting and the fixes (memory_limit, threads) are dropped by "
-    "engine._wrap",
-)
 def test_full_spill_directory_error_names_the_limit(
     big: tuple[Path, dict[str, Any]], tmp_path: Path
 ) -> None:
