@@ -192,7 +192,14 @@ def _knots(ctx: P.PlanContext, run: _Run) -> dict[str, tuple[float, ...]]:
     row = run.one_row(P.knots_query(ctx))
     out: dict[str, tuple[float, ...]] = {}
     for c, k in ctx.inputs.spline_columns:
-        ks = tuple(float(row[f"k_{c}_{i}"]) for i in range(len(P.knot_quantiles(k))))
+        raw = [row[f"k_{c}_{i}"] for i in range(len(P.knot_quantiles(k)))]
+        # NULL (NaN once fetched): no finite value in any kept row
+        if any(v is None or not math.isfinite(float(v)) for v in raw):
+            raise SpecError(
+                f"spline column {c!r} has no finite values in the rows used (all NaN, "
+                "infinite or NULL); filter or fix those rows in the source query"
+            )
+        ks = tuple(float(v) for v in raw)
         if len(set(ks)) < len(ks):
             raise SpecError(
                 f"spline column {c!r} has too few distinct values for {k} knots "

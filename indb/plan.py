@@ -179,8 +179,12 @@ def knots_query(ctx: PlanContext) -> exp.Select:
     """Quantiles of each spline column over kept rows (knot positions)."""
     cols = []
     for c, k in ctx.inputs.spline_columns:
+        x = S.as_double(S.col(c))
+        # finite values only (NULL otherwise; quantiles skip NULLs): NaN/inf rows are
+        # reported, with their count, by the profile's domain checks that need these knots
+        finite_x = S.case([(S.is_finite(x), x.copy())])
         for i, q in enumerate(knot_quantiles(k)):
-            cols.append(S.alias(ctx.dialect.quantile(S.as_double(S.col(c)), q), f"k_{c}_{i}"))
+            cols.append(S.alias(ctx.dialect.quantile(finite_x.copy(), q), f"k_{c}_{i}"))
     return S.select(cols, ctx.source(), where=ctx.kept())
 
 
@@ -255,6 +259,17 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
                 S.not_(S.is_finite(S.as_double(S.col(c)))),
             )
         )
+    # a numeric column listed in categorical=: NaN/inf would become levels 'nan'/'inf'; the
+    # same rule as for every other model column (rejected, rows counted)
+    types = dict(ctx.inputs.columns)
+    for c in ctx.inputs.factors:
+        if ctx.dialect.type_kind(types.get(c, "")) == "numeric":
+            checks.append(
+                (
+                    f"categorical column {c!r} is NaN or infinite",
+                    S.not_(S.is_finite(S.as_double(S.col(c)))),
+                )
+            )
     return checks
 
 

@@ -159,11 +159,6 @@ SPECIAL_CASES = [
         {"response": "GRADE", "family": "binomial", "predictors": ["TUCE"], "splines": {"GPA": 3}},
         "PSI = 1",
         "predictor column 'GPA'",
-        xfail=(
-            "plain ValueError 'cannot write non-finite number nan into SQL': the spline "
-            "knots (quantiles) are computed before the NaN/Inf check and a non-finite knot "
-            "cannot be written as a literal"
-        ),
     ),
     Special(
         "offset",
@@ -198,11 +193,7 @@ SPECIAL_CASES = [
         "SELECT GRADE, GPA, CASE WHEN PSI = 1 THEN {v} ELSE TUCE END AS TUCE FROM spector",
         {"response": "GRADE", "family": "binomial", "categorical": ["TUCE"]},
         "PSI = 1",
-        "'TUCE'",
-        xfail=(
-            "accepted: the NaN/inf values of a DOUBLE column listed in categorical= become a "
-            "level 'nan'/'inf' (term 'TUCE=nan'), neither rejected nor treated as NULL"
-        ),
+        "categorical column 'TUCE'",
     ),
 ]
 
@@ -215,8 +206,6 @@ def _special_params(naming: bool) -> list[Any]:
             if naming and case.id == "trials" and label == "-inf":
                 reason = None  # reported by the negative-trials check, which names 'n'
             marks = [pytest.mark.xfail(strict=True, reason=reason)] if reason else []
-            if case.id == "numeric-forced-categorical":  # the accepted fit separates
-                marks.append(pytest.mark.filterwarnings("ignore::indb.SeparationWarning"))
             out.append(pytest.param(case, value, id=f"{case.id}-{label}", marks=marks))
     return out
 
@@ -249,6 +238,14 @@ def test_nan_and_inf_message_names_the_column(
     with pytest.raises(SpecError) as info:
         indb.fit(case.source.format(v=value), db=con, **case.options)
     assert case.names in str(info.value), str(info.value)
+
+
+@pytest.mark.parametrize("value", ["'nan'::DOUBLE", "'-inf'::DOUBLE", "NULL::DOUBLE"])
+def test_spline_column_without_a_finite_value(con: duckdb.DuckDBPyConnection, value: str) -> None:
+    # no knot can be placed: refused before any knot is written into SQL
+    src = f"SELECT GRADE, {value} AS GPA, TUCE FROM spector"
+    with pytest.raises(SpecError, match=q("spline column 'GPA' has no finite values")):
+        indb.fit(src, "GRADE", "binomial", db=con, splines={"GPA": 3})
 
 
 # =============================================================================================
