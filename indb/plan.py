@@ -23,7 +23,7 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.design import Design, Inputs, Value
+from indb.design import RESERVED_PREFIX, Design, Inputs, Value
 from indb.dialect import Dialect
 from indb.spec import ModelSpec
 from indb.sqlexpr import Expr
@@ -273,14 +273,21 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
     return checks
 
 
-KEPT = "indb_kept"
-FREQ = "indb_freq"
-ROWCOUNT = "indb_rows"
+# Names of columns that sit next to the source's own columns (SELECT *, or the key columns)
+# carry the reserved prefix, which resolve_inputs refuses in source columns: no collision.
+KEPT = RESERVED_PREFIX + "kept"
+FREQ = RESERVED_PREFIX + "freq"
+ROWCOUNT = RESERVED_PREFIX + "rows"
 SAMPLE_ROWS = 100_000
 
 
-FOLD_Y, FOLD_PW, FOLD_F = "indb_y", "indb_pw", "indb_f"
-FOLD_DCONST, FOLD_Q = "indb_dconst", "indb_q"
+FOLD_Y, FOLD_PW, FOLD_F = (RESERVED_PREFIX + n for n in ("y", "pw", "f"))
+FOLD_DCONST, FOLD_Q = RESERVED_PREFIX + "dconst", RESERVED_PREFIX + "q"
+# per design row in compress_query: sums of f, f pw, f pw y, f pw y^2, f pw h(y)
+FOLD_SF, FOLD_SW, FOLD_SY, FOLD_SY2, FOLD_SH = (
+    RESERVED_PREFIX + n for n in ("sf", "sw", "sy", "sy2", "sh")
+)
+SAMPLE_COUNT = RESERVED_PREFIX + "c"
 
 
 def folds_offset(ctx: PlanContext) -> bool:
@@ -314,12 +321,13 @@ def sample_distinct_query(ctx: PlanContext) -> exp.Select:
     sample = S.select([k.copy() for k in keys], ctx.source(), where=ctx.kept())
     sample = sample.limit(SAMPLE_ROWS, copy=False)
     grouped = S.select(
-        [*(k.copy() for k in keys), S.alias(S.count_star(), "c")],
+        [*(k.copy() for k in keys), S.alias(S.count_star(), SAMPLE_COUNT)],
         S.subquery(sample, "smp"),
         group_by=[k.copy() for k in keys],
     )
     return S.select(
-        [S.alias(S.count_star(), "d"), S.alias(S.sum_(S.col("c")), "s")], S.subquery(grouped, "grp")
+        [S.alias(S.count_star(), "d"), S.alias(S.sum_(S.col(SAMPLE_COUNT)), "s")],
+        S.subquery(grouped, "grp"),
     )
 
 
@@ -344,42 +352,47 @@ def compress_query(ctx: PlanContext) -> exp.Select:
         if p != 2.0:
             pw = S.mul(pw, S.exp_(S.mul(S.num(2.0 - p), off.copy())))
     inner = S.select(
-        [*(k.copy() for k in keys), S.alias(f, "f"), S.alias(pw, "pw"), S.alias(y, "y")],
+        [*(k.copy() for k in keys), S.alias(f, FOLD_F), S.alias(pw, FOLD_PW), S.alias(y, FOLD_Y)],
         ctx.source(),
         where=ctx.kept(),
     )
-    fpw = S.mul(S.col("f"), S.col("pw"))
-    fpwy = S.mul(fpw.copy(), S.col("y"))
+    fpw = S.mul(S.col(FOLD_F), S.col(FOLD_PW))
+    fpwy = S.mul(fpw.copy(), S.col(FOLD_Y))
     grouped = S.select(
         [
             *(k.copy() for k in keys),
-            S.alias(S.psum(S.col("f")), "sf"),
-            S.alias(S.psum(fpw), "sw"),
-            S.alias(S.psum(fpwy), "sy"),
-            S.alias(S.psum(S.mul(fpwy.copy(), S.col("y"))), "sy2"),
-            S.alias(S.psum(S.mul(fpw.copy(), fam.deviance_h_sql(S.col("y")))), "sh"),
+            S.alias(S.psum(S.col(FOLD_F)), FOLD_SF),
+            S.alias(S.psum(fpw), FOLD_SW),
+            S.alias(S.psum(fpwy), FOLD_SY),
+            S.alias(S.psum(S.mul(fpwy.copy(), S.col(FOLD_Y))), FOLD_SY2),
+            S.alias(S.psum(S.mul(fpw.copy(), fam.deviance_h_sql(S.col(FOLD_Y)))), FOLD_SH),
             S.alias(S.count_star(), ROWCOUNT),
         ],
         S.subquery(inner, "fold_in"),
         group_by=[k.copy() for k in keys],
     )
-    sw, sy = S.col("sw"), S.col("sy")
+    sw, sy, sf = S.col(FOLD_SW), S.col(FOLD_SY), S.col(FOLD_SF)
     ybar = S.case([(S.gt(sw, S.num(0.0)), S.div(sy, sw))], S.num(0.0))
     pos = S.gt(sw.copy(), S.num(0.0))
     return S.select(
         [
             *(k.copy() for k in keys),
-            S.alias(S.col("sf"), FOLD_F),
+            S.alias(sf, FOLD_F),
             S.alias(
-                S.case(
-                    [(S.gt(S.col("sf"), S.num(0.0)), S.div(sw.copy(), S.col("sf")))], S.num(0.0)
-                ),
+                S.case([(S.gt(sf.copy(), S.num(0.0)), S.div(sw.copy(), sf.copy()))], S.num(0.0)),
                 FOLD_PW,
             ),
             S.alias(ybar, FOLD_Y),
             S.alias(
                 S.case(
-                    [(pos, S.sub(S.col("sh"), S.mul(sw.copy(), fam.deviance_h_sql(ybar.copy()))))],
+                    [
+                        (
+                            pos,
+                            S.sub(
+                                S.col(FOLD_SH), S.mul(sw.copy(), fam.deviance_h_sql(ybar.copy()))
+                            ),
+                        )
+                    ],
                     S.num(0.0),
                 ),
                 FOLD_DCONST,
@@ -389,7 +402,7 @@ def compress_query(ctx: PlanContext) -> exp.Select:
                     [
                         (
                             pos.copy(),
-                            S.sub(S.col("sy2"), S.div(S.mul(sy.copy(), sy.copy()), sw.copy())),
+                            S.sub(S.col(FOLD_SY2), S.div(S.mul(sy.copy(), sy.copy()), sw.copy())),
                         )
                     ],
                     S.num(0.0),

@@ -849,13 +849,6 @@ def test_odd_reference_level_and_offset_column(con: duckdb.DuckDBPyConnection) -
 # =============================================================================================
 # 8. Internal aliases as user column names
 # =============================================================================================
-@pytest.mark.xfail(
-    strict=True,
-    reason="a source column named indb_kept shadows the profile scan's kept-row flag "
-    "(SELECT *, <kept> AS indb_kept): rows where the user's column is 0 are counted as "
-    "excluded, so n_used, df_resid, the dispersion and every standard error are wrong, "
-    "without an error or warning",
-)
 def test_source_column_named_like_the_kept_flag(con: duckdb.DuckDBPyConnection) -> None:
     d = R.diabetes()
     frame = pd.DataFrame(
@@ -892,8 +885,9 @@ ALIAS_NAMES = [
     *("f", "pw", "y", "f0", "rk", "lv", "p", "indb_src", "indb_rows", "indb_freq"),
 ]
 FOLD_NAMES = [
-    *("f", "pw", "y", "sf", "sw", "sy", "sy2", "sh", "fold_in"),
+    *("f", "pw", "y", "sf", "sw", "sy", "sy2", "sh", "fold_in", "c", "d", "s"),
     *("indb_rows", "indb_freq", "indb_f", "indb_pw", "indb_y", "indb_dconst", "indb_q"),
+    *("indb_kept", "indb_c"),
 ]
 
 
@@ -901,19 +895,7 @@ FOLD_NAMES = [
     ("compress", "names"),
     [
         pytest.param("never", ALIAS_NAMES, id="never"),
-        pytest.param(
-            "always",
-            FOLD_NAMES,
-            id="always",
-            marks=pytest.mark.xfail(
-                strict=True,
-                reason="compress_query's inner stages select the key columns next to "
-                "aliases f, pw, y, then sf, sw, sy (and indb_f, indb_pw, indb_y in the "
-                "folded table): a predictor with one of those names is shadowed; the fit is "
-                "silently wrong (f, sf, indb_y) or fails with a negative deviance in the "
-                "step-halving SpecError (pw, sw, sy, indb_f, indb_pw)",
-            ),
-        ),
+        pytest.param("always", FOLD_NAMES, id="always"),
     ],
 )
 def test_internal_alias_names_as_predictors(
@@ -930,6 +912,41 @@ def test_internal_alias_names_as_predictors(
     assert res.terms == list(X.columns)
     ref = R.sm_fit(frame["visits"], X, "poisson")
     R.assert_coefs(res, ref, rtol=RTOL, se_rtol=RTOL)
+
+
+def test_compression_sample_with_predictors_named_like_its_counts(
+    con: duckdb.DuckDBPyConnection,
+) -> None:
+    # compress="auto" decides from a sample scan that groups the key columns next to a row
+    # count; predictors named c, d, s must stay the user's columns. Checked on the plan
+    # itself (auto only samples from 50,000 rows): 32 rows, distinct (c, d, s) counted by DuckDB.
+    from indb import plan as P
+    from indb.design import resolve_inputs
+    from indb.dialect import DuckDBDialect
+    from indb.spec import ModelSpec
+
+    con.execute("CREATE TABLE cds AS SELECT GRADE, PSI AS c, TUCE % 3 AS d, 1.0 AS s FROM spector")
+    spec = ModelSpec.build("cds", "GRADE", "binomial", compress="auto")
+    d = DuckDBDialect()
+    cols = [(r[0], r[1]) for r in con.execute("DESCRIBE cds").fetchall()]
+    ctx = P.PlanContext(spec, resolve_inputs(spec, cols, d.type_kind, d.sqlglot_name), d)
+    got = con.execute(d.render(P.sample_distinct_query(ctx))).fetchone()
+    distinct = con.execute("SELECT count(*) FROM (SELECT DISTINCT c, d, s FROM cds)").fetchone()
+    assert got == (distinct[0], 32)
+
+
+@pytest.mark.parametrize("name", ["indb__kept", "indb__y", "INDB__F", "indb__anything"])
+@pytest.mark.parametrize("use", ["predictor", "unused"])
+def test_source_column_with_the_reserved_prefix_is_refused(
+    con: duckdb.DuckDBPyConnection, name: str, use: str
+) -> None:
+    # indb's own columns (kept-row flag, compressed sums) carry the prefix 'indb__'; a source
+    # column with it, used or not (the profile scan reads SELECT *), could be shadowed
+    src = f'SELECT GRADE, GPA, TUCE AS "{name}" FROM spector'
+    exclude = [name] if use == "unused" else []
+    with pytest.raises(SpecError, match=q(f"source column '{name}' starts with 'indb__'")) as info:
+        indb.fit(src, "GRADE", "binomial", db=con, exclude=exclude)
+    assert "rename it in a SELECT" in str(info.value)
 
 
 # =============================================================================================
