@@ -178,14 +178,10 @@ def test_name_with_a_trailing_newline_is_refused(deployed: Deployed, option: str
     assert_untouched(deployed)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="DuckDB identifiers are case-insensitive: model 'Baseline' is recorded as a "
-    'second model but CREATE OR REPLACE VIEW "Baseline" replaces the view (and macro) of '
-    "model 'baseline', which then serves the other model's coefficients",
-)
 def test_model_name_differing_only_in_case_is_refused(deployed: Deployed) -> None:
-    with pytest.raises((RegistryError, SpecError), match="baseline"):
+    # DuckDB identifiers ignore case: model 'Baseline' would replace the view and macro of
+    # model 'baseline'
+    with pytest.raises(RegistryError, match="'Baseline' differs only in case from.*'baseline'"):
         indb.fit(
             "SELECT row_id, TUCE, GPA FROM claims",
             "TUCE",
@@ -197,22 +193,38 @@ def test_model_name_differing_only_in_case_is_refused(deployed: Deployed) -> Non
     assert_untouched(deployed)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="the write-back runs CREATE OR REPLACE VIEW/MACRO: a view or macro of the user's "
-    "that happens to have the model's name (or name_score) is silently replaced",
-)
-@pytest.mark.parametrize("kind", ["view", "macro"])
+@pytest.mark.parametrize("kind", ["view", "macro", "table", "view-other-case"])
 def test_existing_user_view_or_macro_is_not_replaced(deployed: Deployed, kind: str) -> None:
+    # the write-back runs CREATE OR REPLACE VIEW/MACRO: an object of the user's with the
+    # model's name (or name_score) must be refused, not replaced
+    ddl = {
+        "view": ("CREATE VIEW report AS SELECT 42 AS answer", "view 'report'"),
+        "macro": ("CREATE MACRO report_score(a) AS a + 1", "macro 'report_score'"),
+        "table": ("CREATE TABLE report AS SELECT 42 AS answer", "base table 'report'"),
+        "view-other-case": ('CREATE VIEW "REPORT" AS SELECT 42 AS answer', "view 'REPORT'"),
+    }
+    sql, named = ddl[kind]
     with duckdb.connect(str(deployed.path)) as con:
-        if kind == "view":
-            con.execute("CREATE VIEW report AS SELECT 42 AS answer")
-        else:
-            con.execute("CREATE MACRO report_score(a) AS a + 1")
+        con.execute(sql)
     deployed.before = R.dump_file(deployed.path)
-    with pytest.raises((RegistryError, SpecError), match="report"):
+    with pytest.raises(RegistryError, match=f"would replace {named}.*drop that object"):
         indb.api.deploy(deployed.result, "report", db=str(deployed.path))
     assert_untouched(deployed)
+    # held (not deployed) is allowed; promoting it later is refused the same way
+    indb.api.deploy(deployed.result, "report", db=str(deployed.path), promote=False)
+    reg = indb.api.registry(str(deployed.path))
+    try:
+        with pytest.raises(RegistryError, match=f"would replace {named}"):
+            reg.promote("report", 1)
+    finally:
+        reg.engine.close()
+
+
+def test_own_view_is_replaced_on_refit(deployed: Deployed) -> None:
+    # the model's own view and macro (deployed by indb for its live version) are replaced
+    res = indb.api.deploy(deployed.result, "baseline", db=str(deployed.path), new_version=True)
+    assert res.deployment["promoted"] and res.deployment["version"] == 2
+    assert_serves(deployed)
 
 
 # -- sources, scoring sources, column options -------------------------------------------------
