@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from collections.abc import Mapping, Sequence
 from typing import Any
 
 from indb import writeback as W
 from indb.engine import Engine, connect
-from indb.errors import SpecError
+from indb.errors import ConvergenceWarning, SpecError
 from indb.fitter import fit_spec, plan_spec
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
 from indb.results import FitResult
@@ -129,20 +130,38 @@ def fit(
     try:
         result = fit_spec(spec, engine, progress)
         if name is not None:
-            outcome = Registry(engine, registry_schema).save(
+            # a fit that did not converge is recorded but never made live on its own (as
+            # retrain's require_converged gate holds it): the live version keeps serving
+            hold = promote and not result.converged
+            reg = Registry(engine, registry_schema)
+            outcome = reg.save(
                 name,
                 result,
-                promote=promote,
+                promote=promote and not hold,
                 force_new=new_version,
                 view_schema=view_schema,
                 score_source=score_source,
                 intervals=intervals,
             )
             result = with_deployment(result, outcome)
+            if hold and not outcome.promoted:
+                result = _warn_held(result, outcome, reg.model(name)["live_version"])
         return result
     finally:
         if engine is not db:
             engine.close()
+
+
+def _warn_held(result: FitResult, outcome: SaveOutcome, live: int | None) -> FitResult:
+    serving = f"version {live} stays live" if live is not None else "no version is live yet"
+    msg = (
+        f"model {outcome.model!r}: version {outcome.version} did not converge, so it was "
+        f"recorded as held, not promoted; {serving}. To serve it anyway: "
+        f"registry(db).promote({outcome.model!r}, {outcome.version}) (CLI: indb promote "
+        f"{outcome.model} {outcome.version} --db DB); or refit with a larger max_iter"
+    )
+    warnings.warn(msg, ConvergenceWarning, stacklevel=3)
+    return dataclasses.replace(result, warnings=(*result.warnings, msg))
 
 
 def check_deploy_names(

@@ -159,6 +159,11 @@ class Design:
 # -- step 1: names and types ------------------------------------------------------------------
 
 
+#: Prefix of the columns indb adds next to the source's own (the kept-row flag of the profile
+#: scan, the sums of the compressed table); a source column with it would be shadowed.
+RESERVED_PREFIX = "indb__"
+
+
 def resolve_inputs(
     spec: ModelSpec, columns: Sequence[tuple[str, str]], type_kind, dialect_name: str
 ) -> Inputs:
@@ -171,6 +176,15 @@ def resolve_inputs(
     if len(set(names)) != len(names):
         dup = sorted({n for n in names if names.count(n) > 1})
         raise SpecError(f"the source has duplicate column names {dup}; alias them in the query")
+    # case-insensitive: DuckDB and Spark resolve identifiers regardless of case
+    reserved = [n for n in names if n.lower().startswith(RESERVED_PREFIX)]
+    if reserved:
+        raise SpecError(
+            f"source column {reserved[0]!r} starts with {RESERVED_PREFIX!r}, which indb "
+            "reserves for the columns it adds to its scans; rename it in a SELECT (e.g. "
+            f'SELECT *, "{reserved[0]}" AS new_name, leaving it out of the star with '
+            f"EXCLUDE or by listing the columns)"
+        )
 
     def need(col: str, role: str) -> None:
         if col not in types:

@@ -111,6 +111,23 @@ class Dialect:
     def drop_macro(self, schema: str | None, name: str) -> str:
         raise UnsupportedError(f"engine {self.name!r} has no scoring macros in indb yet")
 
+    def existing_objects_query(self, schema: str | None, view: str, macro: str | None) -> exp.Query:
+        """Catalog objects a deployment would replace: rows (kind, name) of the tables and
+        views named ``view`` (and macros named ``macro``, where the engine has them) in
+        ``schema`` (None: the current schema). Names compare without regard to case.
+
+        Standard ``information_schema.tables``; an engine without it overrides this.
+        """
+        where = S.and_(
+            S.eq(S.col("table_schema"), S.text(schema) if schema else exp.CurrentSchema()),
+            S.eq(exp.Lower(this=S.col("table_name")), S.text(view.lower())),
+        )
+        return S.select(
+            [S.alias(S.col("table_type"), "kind"), S.alias(S.col("table_name"), "name")],
+            exp.Table(this=S.ident("tables"), db=S.ident("information_schema")),
+            where=where,
+        )
+
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         """Statements that store ``query`` as a session-private table ``name``."""
         raise UnsupportedError(f"engine {self.name!r} cannot hold a temporary table in indb yet")
@@ -159,15 +176,18 @@ class Dialect:
     def query(self, sql: str) -> exp.Expression:
         """Parse a user's SELECT query in this dialect (it runs as written)."""
         import sqlglot
-        from sqlglot.errors import ParseError
+        from sqlglot.errors import SqlglotError, TokenError
 
         try:
             tree = sqlglot.parse_one(sql, read=self.sqlglot_name)
-        except ParseError as err:
+        except SqlglotError as err:  # ParseError, and TokenError for an unterminated quote
             first = str(err).splitlines()[0]
+            if isinstance(err, TokenError):
+                first += " (is a quote left unclosed?)"
+            shown = sql if len(sql) <= 200 else sql[:200] + "..."
             raise SpecError(
-                f"cannot parse the source query for {self.name}: {first}; "
-                "create a view with it and pass the view name instead"
+                f"cannot parse the source query {shown!r} for {self.name}: {first}; "
+                "fix the query, or create a view with it and pass the view name instead"
             ) from None
         if not isinstance(tree, exp.Query):
             raise SpecError("the source query must be a single SELECT (or WITH ... SELECT)")
@@ -218,6 +238,25 @@ class DuckDBDialect(Dialect):
 
     def drop_macro(self, schema, name):
         return f"DROP MACRO IF EXISTS {self._qualified(schema, name)}"
+
+    def existing_objects_query(self, schema, view, macro):
+        # information_schema.tables lists every attached database: keep the current one.
+        # Macros live in duckdb_functions() (https://duckdb.org/docs/sql/meta/duckdb_table_functions)
+        q = super().existing_objects_query(schema, view, macro)
+        q = q.where(S.eq(S.col("table_catalog"), exp.CurrentCatalog()), copy=False)
+        if macro is None:
+            return q
+        macros = S.select(
+            [S.alias(S.text("MACRO"), "kind"), S.alias(S.col("function_name"), "name")],
+            exp.Table(this=exp.Anonymous(this="duckdb_functions", expressions=[])),
+            where=S.and_(
+                S.eq(S.col("database_name"), exp.CurrentCatalog()),
+                S.eq(S.col("schema_name"), S.text(schema) if schema else exp.CurrentSchema()),
+                S.eq(exp.Lower(this=S.col("function_name")), S.text(macro.lower())),
+                S.eq(S.col("function_type"), S.text("macro")),
+            ),
+        )
+        return exp.union(q, macros, distinct=False)
 
     def file_scan(self, path: str) -> exp.Expression:
         low = path.lower()

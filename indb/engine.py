@@ -207,7 +207,10 @@ def rows_to_columns(names: Sequence[str], rows: Sequence[Sequence[Any]]) -> dict
 
 
 def _wrap(err: Exception, sql: str) -> EngineError:
-    msg = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+    # The whole message: DuckDB often puts the cause and the fix on later lines (an
+    # out-of-memory error names max_temp_directory_size, memory_limit and threads there).
+    # The CLI joins the lines into one when it prints the error.
+    msg = str(err).strip() or type(err).__name__
     return EngineError(f"DuckDB failed: {msg}", sql=sql)
 
 

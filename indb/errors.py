@@ -50,7 +50,9 @@ class ConvergenceWarning(IndbWarning):
 
 
 class SeparationWarning(IndbWarning):
-    """Binomial fit with fitted probabilities at 0 or 1: a sign of (quasi-)separation."""
+    """Fitted means at the edge of the family's range: binomial probabilities at 0 or 1, or
+    IRLS stopped on the boundary (e.g. Poisson means going to 0). A sign of
+    (quasi-)separation: some estimates drift to infinity."""
 
 
 class AliasingWarning(IndbWarning):

@@ -49,6 +49,8 @@ from indb.spec import ModelSpec, Source
 from indb.sqlexpr import Expr
 
 MAX_HALVINGS = 30
+# halvings (step 1/4) after which a rise too small for the convergence test ends IRLS
+STALL_HALVINGS = 2
 EDGE = 10 * 2.220446049250313e-16  # fitted probabilities numerically 0 or 1 (common practice)
 NEAR_EDGE = 1e-8  # with huge standard errors, this close to 0 or 1 also signals separation
 SEPARATION_STD_SE = 100.0
@@ -105,6 +107,8 @@ class _IrlsState:
     solution: solver.Solution
     converged: bool
     iterations: int
+    #: stopped early: step-halving could not lower the deviance measurably (see _irls)
+    stalled: bool = False
 
 
 # -- pre-fit ---------------------------------------------------------------------------------
@@ -189,7 +193,14 @@ def _knots(ctx: P.PlanContext, run: _Run) -> dict[str, tuple[float, ...]]:
     row = run.one_row(P.knots_query(ctx))
     out: dict[str, tuple[float, ...]] = {}
     for c, k in ctx.inputs.spline_columns:
-        ks = tuple(float(row[f"k_{c}_{i}"]) for i in range(len(P.knot_quantiles(k))))
+        raw = [row[f"k_{c}_{i}"] for i in range(len(P.knot_quantiles(k)))]
+        # NULL (NaN once fetched): no finite value in any kept row
+        if any(v is None or not math.isfinite(float(v)) for v in raw):
+            raise SpecError(
+                f"spline column {c!r} has no finite values in the rows used (all NaN, "
+                "infinite or NULL); filter or fix those rows in the source query"
+            )
+        ks = tuple(float(v) for v in raw)
         if len(set(ks)) < len(ks):
             raise SpecError(
                 f"spline column {c!r} has too few distinct values for {k} knots "
@@ -466,26 +477,53 @@ def _irls(
         sol = None
         budget = spec.max_iter
     converged = False
+    stalled = False
     iterations = 0
+    sums_prev: solver.Sums | None = None
     for _ in range(max(budget, 0)):
         iterations += 1
         halvings = 0
         t0 = time.perf_counter()
         while True:
             sums = scan(beta)
-            rises = (
-                sums.deviance > dev_old * (1 + 1e-9) + 1e-12 if math.isfinite(dev_old) else False
-            )
-            if sums.bad == 0 and math.isfinite(sums.deviance) and not rises:
+            valid = sums.bad == 0 and math.isfinite(sums.deviance)
+            # A rise is relative to the deviance only: deviance terms are >= 0, so their
+            # sum's rounding error is a small multiple of eps times the sum (1e-9 covers
+            # parallel partial sums over ~10^7 rows). No absolute slack: at a boundary MLE
+            # the deviance itself falls towards 0 (~5e-9 after 20 iterations on 4 rows),
+            # where a fixed 1e-12 accepted steps that raised it, over and over.
+            rises = math.isfinite(dev_old) and sums.deviance > dev_old * (1 + 1e-9)
+            if valid and not rises:
+                break
+            if (
+                valid
+                and halvings >= STALL_HALVINGS
+                and solver.relative_change(sums.deviance, dev_old) < spec.tol
+            ):
+                # Flat: a quarter of the Newton step still does not lower the deviance and
+                # the rise is below what the convergence test can see. Along the step the
+                # deviance is ~ D0 - a t + b t^2; had its minimum t* been >= 1/4, t = 1/2
+                # or 1/4 would have lowered it, and with t* < 1/4 the full step's rise
+                # b (1 - 2 t*) >= b / 2 bounds the best gain b t*^2 below tol / 8 in the
+                # same measure. Nothing measurable is left: keep the last accepted step.
+                stalled = True
                 break
             if halvings >= MAX_HALVINGS:
-                raise SpecError(
-                    f"IRLS step-halving failed after {MAX_HALVINGS} halvings (deviance "
-                    f"{sums.deviance:g}, {sums.bad} rows with invalid means); the model may be "
-                    "unsuitable for the data (check the link and family)"
-                )
+                raise SpecError(_halving_failure(spec, sums))
             beta = 0.5 * (beta + beta_prev)
             halvings += 1
+        if stalled:
+            iterations -= 1
+            assert sums_prev is not None and sol is not None
+            sums, beta = sums_prev, beta_prev
+            phi = 1.0
+            if not spec.family.dispersion_fixed:
+                rank = int((~sol.aliased).sum())
+                phi = sums.pearson / max(sums.n_weighted - rank, 1.0)
+            # the deviance has settled; converged if the remaining step is invisible too
+            converged = solver.step_in_se(beta, sol.beta, sol.inv_info, phi) < step_tol
+            break
+        sums_prev = sums
         change = (
             solver.relative_change(sums.deviance, dev_old) if math.isfinite(dev_old) else math.inf
         )
@@ -505,8 +543,32 @@ def _irls(
     if null_track is not None and null_track.done:
         null_dev = null_track.deviance
     return _IrlsState(
-        beta=beta, sums=sums, solution=sol, converged=converged, iterations=iterations
+        beta=beta,
+        sums=sums,
+        solution=sol,
+        converged=converged,
+        iterations=iterations,
+        stalled=stalled and not converged,
     ), null_dev
+
+
+def _halving_failure(spec: ModelSpec, sums: solver.Sums) -> str:
+    msg = (
+        f"IRLS step-halving failed after {MAX_HALVINGS} halvings (deviance "
+        f"{sums.deviance:g}, {sums.bad} rows with invalid means); the model may be "
+        "unsuitable for the data (check the link and family)"
+    )
+    if spec.offset is not None:
+        # an offset is added to every row's linear predictor unscaled: one on the wrong
+        # scale (exposure instead of ln(exposure)) or spanning more than ~1400 on the log
+        # scale (exp overflows past ~709) leaves no coefficients with representable means
+        msg += (
+            f", and the offset expression {spec.offset!r}: it enters the linear predictor "
+            "as is, so with a log link values spanning more than ~700 overflow the fitted "
+            "means; check that it is on the link scale (ln(exposure), not exposure) and "
+            "rescale it"
+        )
+    return msg
 
 
 def _null_deviance(
@@ -657,7 +719,7 @@ def _fold(
     for stmt in stmts:
         run.engine.execute(stmt)
     row = run.one_row(P.folded_profile_query(ctx, items, ctx.dialect.table(groups)))
-    bad, nk_null = (_count(row.pop(k)) for k in (P.FOLD_BAD, "indb_nk_null"))
+    bad, nk_null = (_count(row.pop(k)) for k in (P.FOLD_BAD, P.FOLD_NK_NULL))
     if bad or nk_null:
         # a domain error to explain or NULL exclusions to count: one more, ungrouped scan
         row.update(run.one_row(P.profile_query(ctx, P.detail_items(ctx, items))))
@@ -794,7 +856,25 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
             ctx, _intercept_only(design), run, summary.ybar, start=np.array([track.b0])
         )
         null_dev = null_state.sums.deviance
-    if not state.converged:
+    if state.stalled:
+        # The deviance has settled but the Newton step still moves coefficients by many
+        # standard errors: an estimate on its way to infinity (the MLE is on the boundary).
+        # A boundary warning, not a plain non-convergence one; strict mode still refuses it.
+        msg = (
+            f"IRLS stopped after {sum(r.phase == 'fit' for r in run.log)} iterations: "
+            "step-halving cannot lower the "
+            f"deviance ({state.sums.deviance:.6g}) any further while the next step still "
+            "moves coefficients by many standard errors; the fit sits on the boundary "
+            "(fitted means at the edge of the family's range, e.g. Poisson means at 0, "
+            "probabilities at 0 or 1), so some estimates drift to infinity and their "
+            "standard errors are unreliable (merge levels or drop the predictor that "
+            "separates the data)"
+        )
+        if spec.strict:
+            raise NonConvergenceError(msg)
+        warnings.warn(msg, SeparationWarning, stacklevel=2)
+        warn_msgs.append(msg)
+    elif not state.converged:
         msg = (
             f"IRLS did not converge in {spec.max_iter} iterations (last relative deviance "
             f"change {run.log[-1].relative_change:.3g}, tolerance {spec.tol:g})"

@@ -23,7 +23,7 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.design import Design, Inputs, Value
+from indb.design import RESERVED_PREFIX, Design, Inputs, Value
 from indb.dialect import Dialect
 from indb.spec import ModelSpec
 from indb.sqlexpr import Expr
@@ -56,7 +56,7 @@ class PlanContext:
     dialect: Dialect
     #: on a compressed table: the column holding how many source rows each row stands for
     row_count: str | None = None
-    #: rows are folded design rows carrying deviance and Pearson constants (compress_query)
+    #: rows are folded design rows carrying deviance and Pearson constants (folded_rows_query)
     folded: bool = False
 
     def count_rows(self) -> Expr:
@@ -191,8 +191,12 @@ def knots_query(ctx: PlanContext) -> exp.Select:
     """Quantiles of each spline column over kept rows (knot positions)."""
     cols = []
     for c, k in ctx.inputs.spline_columns:
+        x = S.as_double(S.col(c))
+        # finite values only (NULL otherwise; quantiles skip NULLs): NaN/inf rows are
+        # reported, with their count, by the profile's domain checks that need these knots
+        finite_x = S.case([(S.is_finite(x), x.copy())])
         for i, q in enumerate(knot_quantiles(k)):
-            cols.append(S.alias(ctx.dialect.quantile(S.as_double(S.col(c)), q), f"k_{c}_{i}"))
+            cols.append(S.alias(ctx.dialect.quantile(finite_x.copy(), q), f"k_{c}_{i}"))
     return S.select(cols, ctx.source(), where=ctx.kept())
 
 
@@ -267,17 +271,36 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
                 S.not_(S.is_finite(S.as_double(S.col(c)))),
             )
         )
+    # a numeric column listed in categorical=: NaN/inf would become levels 'nan'/'inf'; the
+    # same rule as for every other model column (rejected, rows counted)
+    types = dict(ctx.inputs.columns)
+    for c in ctx.inputs.factors:
+        if ctx.dialect.type_kind(types.get(c, "")) == "numeric":
+            checks.append(
+                (
+                    f"categorical column {c!r} is NaN or infinite",
+                    S.not_(S.is_finite(S.as_double(S.col(c)))),
+                )
+            )
     return checks
 
 
-KEPT = "indb_kept"
-FREQ = "indb_freq"
-ROWCOUNT = "indb_rows"
+# Names of columns that sit next to the source's own columns (SELECT *, or the key columns)
+# carry the reserved prefix, which resolve_inputs refuses in source columns: no collision.
+KEPT = RESERVED_PREFIX + "kept"
+FREQ = RESERVED_PREFIX + "freq"
+ROWCOUNT = RESERVED_PREFIX + "rows"
 SAMPLE_ROWS = 100_000
 
 
-FOLD_Y, FOLD_PW, FOLD_F = "indb_y", "indb_pw", "indb_f"
-FOLD_DCONST, FOLD_Q = "indb_dconst", "indb_q"
+def _r(name: str) -> str:
+    """An internal column name (reserved prefix: no source column can take it)."""
+    return RESERVED_PREFIX + name
+
+
+FOLD_Y, FOLD_PW, FOLD_F = (RESERVED_PREFIX + n for n in ("y", "pw", "f"))
+FOLD_DCONST, FOLD_Q = RESERVED_PREFIX + "dconst", RESERVED_PREFIX + "q"
+SAMPLE_COUNT = RESERVED_PREFIX + "c"
 
 
 def folds_offset(ctx: PlanContext) -> bool:
@@ -308,16 +331,16 @@ def key_columns(ctx: PlanContext) -> list[str]:
 def sample_distinct_query(ctx: PlanContext) -> exp.Select:
     """Distinct design rows among the first kept rows: ``d`` distinct of ``s`` sampled."""
     keys = [S.col(c) for c in key_columns(ctx)]
-    picked = [k.copy() for k in keys] or [S.alias(exp.Literal.number(1), "indb_one")]
+    picked = [k.copy() for k in keys] or [S.alias(exp.Literal.number(1), _r("one"))]
     sample = S.select(picked, ctx.source(), where=ctx.kept())
     sample = sample.limit(SAMPLE_ROWS, copy=False)
     grouped = S.select(
-        [*(k.copy() for k in keys), S.alias(S.count_star(), "indb_c")],
+        [*(k.copy() for k in keys), S.alias(S.count_star(), SAMPLE_COUNT)],
         S.subquery(sample, "smp"),
         group_by=[k.copy() for k in keys],
     )
     return S.select(
-        [S.alias(S.count_star(), "d"), S.alias(S.sum_(S.col("indb_c")), "s")],
+        [S.alias(S.count_star(), "d"), S.alias(S.sum_(S.col(SAMPLE_COUNT)), "s")],
         S.subquery(grouped, "grp"),
     )
 
@@ -399,10 +422,10 @@ def _atoms(ctx: PlanContext) -> tuple[list[Expr], Callable[[Expr], Expr]]:
     cols: list[Expr] = []
     inputs = ctx.inputs
     for name, e in (
-        ("indb_a_off", inputs.offset),
-        ("indb_a_w", inputs.weight),
-        ("indb_a_fw", inputs.frequency_weight),
-        ("indb_a_t", inputs.trials),
+        (_r("a_off"), inputs.offset),
+        (_r("a_w"), inputs.weight),
+        (_r("a_fw"), inputs.frequency_weight),
+        (_r("a_t"), inputs.trials),
     ):
         if e is not None and not isinstance(e, exp.Column) and e not in mapping:
             mapping[e] = name
@@ -437,7 +460,7 @@ def profile_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
 
 # -- the compressed route: fold first, profile the fold ----------------------------------------
 
-FOLD_ROWS, FOLD_OK, FOLD_BAD = "indb_nrows", "indb_ok", "indb_bad"
+FOLD_ROWS, FOLD_OK, FOLD_BAD, FOLD_NK_NULL = _r("nrows"), _r("ok"), _r("bad"), _r("nk_null")
 
 
 def _key_only(e: Expr, keys: Sequence[str]) -> bool:
@@ -471,8 +494,8 @@ def fold_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
         assert off is not None
         # e = exp(offset) only on rows inside the domain checks: no engine sees the
         # overflow of an offset that the profile is about to reject
-        extra.append(S.alias(S.case([(ok.copy(), rewrite(S.exp_(off.copy())))]), "indb_e"))
-        e = S.col("indb_e")
+        extra.append(S.alias(S.case([(ok.copy(), rewrite(S.exp_(off.copy())))]), _r("e")))
+        e = S.col(_r("e"))
         y = S.div(y, e)
         p = fam.variance_power
         if p == 1.0:
@@ -490,33 +513,33 @@ def fold_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
     stage = S.select(
         [
             exp.Star(),
-            S.alias(rewrite(fw_row), "indb_fw"),
-            S.alias(rewrite(y), "indb_fy"),
+            S.alias(rewrite(fw_row), _r("fw")),
+            S.alias(rewrite(y), _r("fy")),
             # y for h(y) only where the row is inside the domain (ln of y <= 0 is an error)
-            S.alias(S.case([(ok.copy(), rewrite(y))]), "indb_hy"),
+            S.alias(S.case([(ok.copy(), rewrite(y))]), _r("hy")),
         ],
         S.subquery(stage, "fold_c"),
     )
-    w, yf = S.col("indb_fw"), S.col("indb_fy")
-    h = fam.deviance_h_sql(S.col("indb_hy"))
+    w, yf = S.col(_r("fw")), S.col(_r("fy"))
+    h = fam.deviance_h_sql(S.col(_r("hy")))
     cols: list[Expr] = [
         *(S.col(k) for k in (*keys, KEPT, FOLD_OK)),
         S.alias(S.count_star(), FOLD_ROWS),
-        S.alias(S.psum(rewrite(f)) if f is not None else S.count_star(), "indb_sf"),
-        S.alias(S.psum(w), "indb_sw"),
-        S.alias(S.psum(S.mul(w.copy(), yf)), "indb_sy"),
-        S.alias(S.psum(S.mul(w.copy(), yf.copy(), yf.copy())), "indb_sy2"),
-        S.alias(S.psum(S.mul(w.copy(), h)), "indb_sh"),
+        S.alias(S.psum(rewrite(f)) if f is not None else S.count_star(), _r("sf")),
+        S.alias(S.psum(w), _r("sw")),
+        S.alias(S.psum(S.mul(w.copy(), yf)), _r("sy")),
+        S.alias(S.psum(S.mul(w.copy(), yf.copy(), yf.copy())), _r("sy2")),
+        S.alias(S.psum(S.mul(w.copy(), h)), _r("sh")),
     ]
     for i, it in enumerate(items):
         if it.agg == "count" or it.detail or _key_only(it.arg, keys):
             continue
         arg = rewrite(it.arg)
         if it.agg == "mean":
-            cols.append(S.alias(S.psum(arg), f"indb_p{i}"))
-            cols.append(S.alias(exp.Count(this=arg.copy()), f"indb_c{i}"))
+            cols.append(S.alias(S.psum(arg), _r(f"p{i}")))
+            cols.append(S.alias(exp.Count(this=arg.copy()), _r(f"c{i}")))
         else:
-            cols.append(S.alias(_AGGS[it.agg](arg), f"indb_p{i}"))
+            cols.append(S.alias(_AGGS[it.agg](arg), _r(f"p{i}")))
     return S.select(
         cols,
         S.subquery(stage, "fold_d"),
@@ -554,11 +577,11 @@ def folded_profile_query(ctx: PlanContext, items: Sequence[ProfileItem], table: 
                 if it.agg == "mean":
                     agg = _ratio(agg, S.sum_(mult))
         else:
-            part = S.col(f"indb_p{i}")
+            part = S.col(_r(f"p{i}"))
             if it.kept:
                 part = S.case([(ok_group.copy(), part)])
             if it.agg == "mean":
-                count = S.col(f"indb_c{i}")
+                count = S.col(_r(f"c{i}"))
                 if it.kept:
                     count = S.case([(ok_group.copy(), count)])
                 agg = _ratio(S.psum(part), S.sum_(count))
@@ -570,7 +593,7 @@ def folded_profile_query(ctx: PlanContext, items: Sequence[ProfileItem], table: 
         # rows excluded for a NULL outside the keys
         S.alias(
             S.sum_(S.case([(S.and_(key_cond.copy(), S.not_(kept.copy())), rows.copy())])),
-            "indb_nk_null",
+            FOLD_NK_NULL,
         ),
     ]
     return S.select(cols, table)
@@ -594,12 +617,12 @@ def folded_rows_query(ctx: PlanContext, table: Expr) -> exp.Select:
     fam = ctx.spec.family
     keys = key_columns(ctx)
     key_cond, _ = ctx.kept_parts(keys)
-    sf, sw, sy = S.col("indb_sf"), S.col("indb_sw"), S.col("indb_sy")
+    sf, sw, sy = S.col(_r("sf")), S.col(_r("sw")), S.col(_r("sy"))
     pos = S.gt(sw, S.num(0.0))
     ybar = S.case([(pos, S.div(sy, sw.copy()))], S.num(0.0))
     fold_pw = S.case([(S.gt(sf.copy(), S.num(0.0)), S.div(sw.copy(), sf.copy()))], S.num(0.0))
-    dconst = S.sub(S.col("indb_sh"), S.mul(sw.copy(), fam.deviance_h_sql(ybar.copy())))
-    q = S.sub(S.col("indb_sy2"), S.div(S.mul(sy.copy(), sy.copy()), sw.copy()))
+    dconst = S.sub(S.col(_r("sh")), S.mul(sw.copy(), fam.deviance_h_sql(ybar.copy())))
+    q = S.sub(S.col(_r("sy2")), S.div(S.mul(sy.copy(), sy.copy()), sw.copy()))
     return S.select(
         [
             *(S.col(k) for k in keys),

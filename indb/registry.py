@@ -168,6 +168,17 @@ class Registry:
         h = spec_hash(result.spec)
         existing = self.models()
         current = next((m for m in existing if m["model_name"] == name), None)
+        twin = next(
+            (m["model_name"] for m in existing if m["model_name"].lower() == name.lower()), name
+        )
+        if current is None and twin != name:
+            # DuckDB (and Spark) identifiers ignore case: the view and macro of one would
+            # replace the other's
+            raise RegistryError(
+                f"model name {name!r} differs only in case from model {twin!r} in the "
+                f"registry; their scoring views would be the same object. Refit {twin!r} "
+                "under that name, or choose another name; nothing was written"
+            )
         latest = self._latest_version(name) if current is not None else None
         if latest is not None and not force_new:
             # the same spec on unchanged data adds no version (live or held alike), so a
@@ -290,6 +301,8 @@ class Registry:
         ]
         # Build every statement before opening the transaction: a bad source or name fails
         # here, with nothing written.
+        if promote:
+            self._check_not_foreign(name, model_row, current)
         deploy = self._deploy_statements(name, result, model_row) if promote else []
         try:
             with self.engine.transaction():
@@ -345,6 +358,7 @@ class Registry:
         if row["status"] == "dropped":
             raise RegistryError(f"version {version} of {name!r} was dropped")
         result = FitResult.from_dict(json.loads(row["result_json"]))
+        self._check_not_foreign(name, model_row, model_row)
         deploy = self._deploy_statements(name, result, model_row)
         now = _now()
         with self.engine.transaction():
@@ -406,6 +420,34 @@ class Registry:
         schema = model_row.get("view_schema")
         return f"{schema}.{model_row['view_name']}" if schema else model_row["view_name"]
 
+    def _check_not_foreign(
+        self, name: str, model_row: dict[str, Any], current: dict[str, Any] | None
+    ) -> None:
+        """Refuse to replace a view, table or macro that indb did not deploy for ``name``.
+
+        The deployment writes CREATE OR REPLACE; the objects are this model's own only when
+        its live version was deployed to the same schema and names.
+        """
+        schema, view = model_row.get("view_schema"), model_row["view_name"]
+        macro = model_row["macro_name"] if self.d.supports_macros else None
+        ours = (
+            current is not None
+            and current.get("live_version") is not None
+            and current.get("view_schema") == schema
+            and current.get("view_name") == view
+        )
+        if ours:
+            return
+        found = self._rows(self.d.existing_objects_query(schema, view, macro))
+        if found:
+            where = f"schema {schema!r}" if schema else "the default schema"
+            objects = ", ".join(f"{r['kind'].lower()} {r['name']!r}" for r in found)
+            raise RegistryError(
+                f"model {name!r} would replace {objects} in {where}, which indb did not "
+                "create for this model; choose another model name (or view_schema), or "
+                "drop that object first; nothing was written"
+            )
+
     def _deploy_statements(
         self, name: str, result: FitResult, model_row: dict[str, Any]
     ) -> list[str]:
@@ -414,9 +456,16 @@ class Registry:
             raise SpecError(f"model {name!r} has no scoring source; give score_source=")
         source = Source.parse(src_text)
         rel = self.d.relation(source)
-        cols = [
-            c for c, _ in self.engine.describe(self.d.render(S.select([_star()], _aliased(rel))))
-        ]
+        try:
+            described = self.engine.describe(self.d.render(S.select([_star()], _aliased(rel))))
+        except EngineError as err:
+            # a missing table, file or column is the user's input, as for the fit's source
+            raise SpecError(
+                f"cannot read the scoring source {source.label()!r} (option score_source): "
+                f"{err}; check the table name, file path or query, or give another "
+                "score_source="
+            ) from err
+        cols = [c for c, _ in described]
         missing = [c for c in W.model_inputs(result, self.d) if c not in cols]
         if missing:
             raise SpecError(

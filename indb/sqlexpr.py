@@ -325,11 +325,13 @@ def subquery(q: exp.Query, name: str) -> exp.Subquery:
 def parse_expression(sql: str, dialect: str) -> Expr:
     """Parse one scalar SQL expression written by the user (raises ``ValueError`` on bad SQL)."""
     import sqlglot
-    from sqlglot.errors import ParseError
+    from sqlglot.errors import SqlglotError, TokenError
 
     try:
         trees = [t for t in sqlglot.parse(sql, read=dialect) if t is not None]
-    except ParseError as err:
+    except TokenError as err:  # sqlglot's message cuts the text short: say what to look for
+        raise ValueError(f"{str(err).splitlines()[0]} (is a quote left unclosed?)") from None
+    except SqlglotError as err:  # ParseError and any other sqlglot failure
         raise ValueError(str(err).splitlines()[0]) from None
     if not trees:
         raise ValueError("empty expression")

@@ -27,12 +27,13 @@ from indb.sqlexpr import Expr
 
 SRC = "indb_src"
 MAX_SE_TERMS = 150  # the standard-error quadratic form has p^2 terms; beyond this it is refused
-NAME_RE = re.compile(r"^[A-Za-z][A-Za-z0-9_]{0,62}$")
+NAME_RE = re.compile(r"[A-Za-z][A-Za-z0-9_]{0,62}")
 
 
 def check_name(value: str, what: str) -> str:
     """Validate a model, view or schema name (letters, digits, underscore; <= 63 chars)."""
-    if not isinstance(value, str) or not NAME_RE.match(value):
+    if not isinstance(value, str) or not NAME_RE.fullmatch(value):
+        # fullmatch: re.match with '$' would also accept a trailing newline
         raise SpecError(
             f"{what} {value!r} is not allowed: use 1-63 letters, digits or underscores, "
             "starting with a letter"

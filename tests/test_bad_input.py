@@ -51,8 +51,9 @@ class Case:
 
 
 def q(*phrases: str) -> str:
-    """Regex that finds the literal phrases in this order (anything in between)."""
-    return ".*".join(re.escape(p) for p in phrases)
+    """Regex that finds the literal phrases in this order (anything in between, line breaks
+    included: engine messages keep the driver's lines)."""
+    return "(?s)" + ".*".join(re.escape(p) for p in phrases)
 
 
 ALL = "spector"  # the table as it ships

@@ -159,11 +159,6 @@ SPECIAL_CASES = [
         {"response": "GRADE", "family": "binomial", "predictors": ["TUCE"], "splines": {"GPA": 3}},
         "PSI = 1",
         "predictor column 'GPA'",
-        xfail=(
-            "plain ValueError 'cannot write non-finite number nan into SQL': the spline "
-            "knots (quantiles) are computed before the NaN/Inf check and a non-finite knot "
-            "cannot be written as a literal"
-        ),
     ),
     Special(
         "offset",
@@ -198,11 +193,7 @@ SPECIAL_CASES = [
         "SELECT GRADE, GPA, CASE WHEN PSI = 1 THEN {v} ELSE TUCE END AS TUCE FROM spector",
         {"response": "GRADE", "family": "binomial", "categorical": ["TUCE"]},
         "PSI = 1",
-        "'TUCE'",
-        xfail=(
-            "accepted: the NaN/inf values of a DOUBLE column listed in categorical= become a "
-            "level 'nan'/'inf' (term 'TUCE=nan'), neither rejected nor treated as NULL"
-        ),
+        "categorical column 'TUCE'",
     ),
 ]
 
@@ -215,8 +206,6 @@ def _special_params(naming: bool) -> list[Any]:
             if naming and case.id == "trials" and label == "-inf":
                 reason = None  # reported by the negative-trials check, which names 'n'
             marks = [pytest.mark.xfail(strict=True, reason=reason)] if reason else []
-            if case.id == "numeric-forced-categorical":  # the accepted fit separates
-                marks.append(pytest.mark.filterwarnings("ignore::indb.SeparationWarning"))
             out.append(pytest.param(case, value, id=f"{case.id}-{label}", marks=marks))
     return out
 
@@ -249,6 +238,14 @@ def test_nan_and_inf_message_names_the_column(
     with pytest.raises(SpecError) as info:
         indb.fit(case.source.format(v=value), db=con, **case.options)
     assert case.names in str(info.value), str(info.value)
+
+
+@pytest.mark.parametrize("value", ["'nan'::DOUBLE", "'-inf'::DOUBLE", "NULL::DOUBLE"])
+def test_spline_column_without_a_finite_value(con: duckdb.DuckDBPyConnection, value: str) -> None:
+    # no knot can be placed: refused before any knot is written into SQL
+    src = f"SELECT GRADE, {value} AS GPA, TUCE FROM spector"
+    with pytest.raises(SpecError, match=q("spline column 'GPA' has no finite values")):
+        indb.fit(src, "GRADE", "binomial", db=con, splines={"GPA": 3})
 
 
 # =============================================================================================
@@ -444,15 +441,12 @@ def test_offset_spanning_more_than_exp_range_is_a_clear_spec_error(
     assert time.perf_counter() - t0 < 60
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="the step-halving SpecError says 'check the link and family' and does not name "
-    "the offset expression that makes the model unrepresentable",
-)
 def test_offset_spanning_more_than_exp_range_names_the_offset(
     con: duckdb.DuckDBPyConnection,
 ) -> None:
-    with pytest.raises(SpecError, match=q("1000 * GPA")):
+    with pytest.raises(
+        SpecError, match=q("offset expression '1000 * GPA'", "ln(exposure), not exposure")
+    ):
         indb.fit("spector", "TUCE", "poisson", db=con, offset="1000 * GPA")
 
 
@@ -584,30 +578,31 @@ def test_poisson_level_with_only_zero_counts_shows_in_its_standard_error(
     assert ref.bse["band=low"] > 100 * abs(ref.params["band=low"])
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="once the deviance is ~5e-9 each iteration's full step raises it, 12 "
-    "step-halvings bring the rise under the 1e-12 absolute slack of the rise test, the "
-    "slightly worse step is accepted, and the loop repeats to max_iter: 60 extra scans at "
-    "max_iter=25, 360 scans and ~9 s for these 4 rows at the default max_iter=50",
-)
 def test_poisson_fit_stalled_on_the_boundary_stops_early(con: duckdb.DuckDBPyConnection) -> None:
     # spector rows 9-12 with GRADE as a count (1, 0, 0, 0) and GPA, TUCE as predictors: the
     # three zeros are fitted exactly only in the limit (fitted means -> 0), so the MLE is
     # at infinity. A fit that can no longer lower the deviance should stop, not spin.
     src = "SELECT GRADE, GPA, TUCE FROM spector WHERE rowid BETWEEN 9 AND 12"
-    assert con.execute(f"SELECT list(GRADE ORDER BY rowid) FROM ({src})").fetchone()[0] == [
+    assert con.execute(
+        "SELECT list(GRADE ORDER BY rowid) FROM spector WHERE rowid BETWEEN 9 AND 12"
+    ).fetchone()[0] == [
         1.0,
         0.0,
         0.0,
         0.0,
     ]
-    res, _ = fit_quiet(src, "GRADE", "poisson", db=con, max_iter=25)
+    res, caught = fit_quiet(src, "GRADE", "poisson", db=con, max_iter=25)
     halvings = sum(r.step_halvings for r in res.iteration_log)
     assert halvings <= 30, [(r.iteration, r.step_halvings) for r in res.iteration_log]
     devs = [r.deviance for r in res.iteration_log if r.phase == "fit"]
     # accepted steps never raise the deviance beyond rounding (relative 1e-9)
     assert all(b <= a * (1 + 1e-9) for a, b in zip(devs[1:], devs[2:], strict=False))
+    # stopped before the cap, with the boundary warning (not a plain non-convergence one)
+    assert len(devs) < 25 and not res.converged
+    assert SeparationWarning in categories(caught) and ConvergenceWarning not in categories(caught)
+    assert any("sits on the boundary" in w for w in res.warnings), res.warnings
+    with pytest.raises(NonConvergenceError, match="step-halving cannot lower the deviance"):
+        indb.fit(src, "GRADE", "poisson", db=con, max_iter=25, strict=True)
 
 
 def test_exact_collinearity_through_a_categorical_alias(con: duckdb.DuckDBPyConnection) -> None:
@@ -854,13 +849,6 @@ def test_odd_reference_level_and_offset_column(con: duckdb.DuckDBPyConnection) -
 # =============================================================================================
 # 8. Internal aliases as user column names
 # =============================================================================================
-@pytest.mark.xfail(
-    strict=True,
-    reason="a source column named indb_kept shadows the profile scan's kept-row flag "
-    "(SELECT *, <kept> AS indb_kept): rows where the user's column is 0 are counted as "
-    "excluded, so n_used, df_resid, the dispersion and every standard error are wrong, "
-    "without an error or warning",
-)
 def test_source_column_named_like_the_kept_flag(con: duckdb.DuckDBPyConnection) -> None:
     d = R.diabetes()
     frame = pd.DataFrame(
@@ -897,8 +885,9 @@ ALIAS_NAMES = [
     *("f", "pw", "y", "f0", "rk", "lv", "p", "indb_src", "indb_rows", "indb_freq"),
 ]
 FOLD_NAMES = [
-    *("f", "pw", "y", "sf", "sw", "sy", "sy2", "sh", "fold_in"),
+    *("f", "pw", "y", "sf", "sw", "sy", "sy2", "sh", "fold_in", "c", "d", "s"),
     *("indb_rows", "indb_freq", "indb_f", "indb_pw", "indb_y", "indb_dconst", "indb_q"),
+    *("indb_kept", "indb_c"),
 ]
 
 
@@ -906,19 +895,7 @@ FOLD_NAMES = [
     ("compress", "names"),
     [
         pytest.param("never", ALIAS_NAMES, id="never"),
-        pytest.param(
-            "always",
-            FOLD_NAMES,
-            id="always",
-            marks=pytest.mark.xfail(
-                strict=True,
-                reason="compress_query's inner stages select the key columns next to "
-                "aliases f, pw, y, then sf, sw, sy (and indb_f, indb_pw, indb_y in the "
-                "folded table): a predictor with one of those names is shadowed; the fit is "
-                "silently wrong (f, sf, indb_y) or fails with a negative deviance in the "
-                "step-halving SpecError (pw, sw, sy, indb_f, indb_pw)",
-            ),
-        ),
+        pytest.param("always", FOLD_NAMES, id="always"),
     ],
 )
 def test_internal_alias_names_as_predictors(
@@ -935,6 +912,41 @@ def test_internal_alias_names_as_predictors(
     assert res.terms == list(X.columns)
     ref = R.sm_fit(frame["visits"], X, "poisson")
     R.assert_coefs(res, ref, rtol=RTOL, se_rtol=RTOL)
+
+
+def test_compression_sample_with_predictors_named_like_its_counts(
+    con: duckdb.DuckDBPyConnection,
+) -> None:
+    # compress="auto" decides from a sample scan that groups the key columns next to a row
+    # count; predictors named c, d, s must stay the user's columns. Checked on the plan
+    # itself (auto only samples from 50,000 rows): 32 rows, distinct (c, d, s) counted by DuckDB.
+    from indb import plan as P
+    from indb.design import resolve_inputs
+    from indb.dialect import DuckDBDialect
+    from indb.spec import ModelSpec
+
+    con.execute("CREATE TABLE cds AS SELECT GRADE, PSI AS c, TUCE % 3 AS d, 1.0 AS s FROM spector")
+    spec = ModelSpec.build("cds", "GRADE", "binomial", compress="auto")
+    d = DuckDBDialect()
+    cols = [(r[0], r[1]) for r in con.execute("DESCRIBE cds").fetchall()]
+    ctx = P.PlanContext(spec, resolve_inputs(spec, cols, d.type_kind, d.sqlglot_name), d)
+    got = con.execute(d.render(P.sample_distinct_query(ctx))).fetchone()
+    distinct = con.execute("SELECT count(*) FROM (SELECT DISTINCT c, d, s FROM cds)").fetchone()
+    assert got == (distinct[0], 32)
+
+
+@pytest.mark.parametrize("name", ["indb__kept", "indb__y", "INDB__F", "indb__anything"])
+@pytest.mark.parametrize("use", ["predictor", "unused"])
+def test_source_column_with_the_reserved_prefix_is_refused(
+    con: duckdb.DuckDBPyConnection, name: str, use: str
+) -> None:
+    # indb's own columns (kept-row flag, compressed sums) carry the prefix 'indb__'; a source
+    # column with it, used or not (the profile scan reads SELECT *), could be shadowed
+    src = f'SELECT GRADE, GPA, TUCE AS "{name}" FROM spector'
+    exclude = [name] if use == "unused" else []
+    with pytest.raises(SpecError, match=q(f"source column '{name}' starts with 'indb__'")) as info:
+        indb.fit(src, "GRADE", "binomial", db=con, exclude=exclude)
+    assert "rename it in a SELECT" in str(info.value)
 
 
 # =============================================================================================

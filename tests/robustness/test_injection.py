@@ -169,12 +169,6 @@ def test_payload_as_registry_schema_of_a_handle(deployed: Deployed, payload: str
     assert_untouched(deployed)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="check_name uses NAME_RE.match with '$', which also matches before a trailing "
-    "newline: 'x\\n' is accepted and creates a view, macro or schema whose name ends in a "
-    "newline",
-)
 @pytest.mark.parametrize("option", ["name", "view_schema", "registry_schema"])
 def test_name_with_a_trailing_newline_is_refused(deployed: Deployed, option: str) -> None:
     kwargs = {"name": "refit", option: "refit\n"}
@@ -184,14 +178,10 @@ def test_name_with_a_trailing_newline_is_refused(deployed: Deployed, option: str
     assert_untouched(deployed)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="DuckDB identifiers are case-insensitive: model 'Baseline' is recorded as a "
-    'second model but CREATE OR REPLACE VIEW "Baseline" replaces the view (and macro) of '
-    "model 'baseline', which then serves the other model's coefficients",
-)
 def test_model_name_differing_only_in_case_is_refused(deployed: Deployed) -> None:
-    with pytest.raises((RegistryError, SpecError), match="baseline"):
+    # DuckDB identifiers ignore case: model 'Baseline' would replace the view and macro of
+    # model 'baseline'
+    with pytest.raises(RegistryError, match="'Baseline' differs only in case from.*'baseline'"):
         indb.fit(
             "SELECT row_id, TUCE, GPA FROM claims",
             "TUCE",
@@ -203,22 +193,38 @@ def test_model_name_differing_only_in_case_is_refused(deployed: Deployed) -> Non
     assert_untouched(deployed)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="the write-back runs CREATE OR REPLACE VIEW/MACRO: a view or macro of the user's "
-    "that happens to have the model's name (or name_score) is silently replaced",
-)
-@pytest.mark.parametrize("kind", ["view", "macro"])
+@pytest.mark.parametrize("kind", ["view", "macro", "table", "view-other-case"])
 def test_existing_user_view_or_macro_is_not_replaced(deployed: Deployed, kind: str) -> None:
+    # the write-back runs CREATE OR REPLACE VIEW/MACRO: an object of the user's with the
+    # model's name (or name_score) must be refused, not replaced
+    ddl = {
+        "view": ("CREATE VIEW report AS SELECT 42 AS answer", "view 'report'"),
+        "macro": ("CREATE MACRO report_score(a) AS a + 1", "macro 'report_score'"),
+        "table": ("CREATE TABLE report AS SELECT 42 AS answer", "base table 'report'"),
+        "view-other-case": ('CREATE VIEW "REPORT" AS SELECT 42 AS answer', "view 'REPORT'"),
+    }
+    sql, named = ddl[kind]
     with duckdb.connect(str(deployed.path)) as con:
-        if kind == "view":
-            con.execute("CREATE VIEW report AS SELECT 42 AS answer")
-        else:
-            con.execute("CREATE MACRO report_score(a) AS a + 1")
+        con.execute(sql)
     deployed.before = R.dump_file(deployed.path)
-    with pytest.raises((RegistryError, SpecError), match="report"):
+    with pytest.raises(RegistryError, match=f"would replace {named}.*drop that object"):
         indb.api.deploy(deployed.result, "report", db=str(deployed.path))
     assert_untouched(deployed)
+    # held (not deployed) is allowed; promoting it later is refused the same way
+    indb.api.deploy(deployed.result, "report", db=str(deployed.path), promote=False)
+    reg = indb.api.registry(str(deployed.path))
+    try:
+        with pytest.raises(RegistryError, match=f"would replace {named}"):
+            reg.promote("report", 1)
+    finally:
+        reg.engine.close()
+
+
+def test_own_view_is_replaced_on_refit(deployed: Deployed) -> None:
+    # the model's own view and macro (deployed by indb for its live version) are replaced
+    res = indb.api.deploy(deployed.result, "baseline", db=str(deployed.path), new_version=True)
+    assert res.deployment["promoted"] and res.deployment["version"] == 2
+    assert_serves(deployed)
 
 
 # -- sources, scoring sources, column options -------------------------------------------------
@@ -227,22 +233,16 @@ def test_payload_as_source_or_score_source(deployed: Deployed) -> None:
         with pytest.raises(SpecError):
             indb.fit(payload, "TUCE", "poisson", db=str(deployed.path), name="refit")
         assert R.dump_file(deployed.path) == deployed.before, payload
-        # a scoring source that does not exist is reported by DuckDB (EngineError; see the
-        # xfail below), a malformed one by indb (SpecError)
-        with pytest.raises((SpecError, EngineError)):
+        # a scoring source that does not exist or is malformed: SpecError (a missing one
+        # names the option: see the test below)
+        with pytest.raises(SpecError):
             indb.api.deploy(deployed.result, "refit", db=str(deployed.path), score_source=payload)
         assert R.dump_file(deployed.path) == deployed.before, payload
     assert_serves(deployed)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="a scoring source that does not exist raises EngineError 'DuckDB failed: Catalog "
-    "Error: Table with name ... does not exist!' from Registry._deploy_statements (the fit's "
-    "source gets a SpecError 'cannot read the source ...; check the table name')",
-)
 def test_missing_score_source_is_a_spec_error_naming_the_option(deployed: Deployed) -> None:
-    with pytest.raises(SpecError, match="scor"):
+    with pytest.raises(SpecError, match="scoring source 'nope' .option score_source.*nope"):
         indb.api.deploy(deployed.result, "refit", db=str(deployed.path), score_source="nope")
     assert_untouched(deployed)
 
@@ -537,12 +537,6 @@ def test_name_positions_raise_spec_errors_only(deployed: Deployed) -> None:
     assert_untouched(deployed)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="sqlglot.errors.TokenError escapes: sqlexpr.parse_expression (and Dialect.query "
-    "for source queries) catch only ParseError, so an unterminated quote such as "
-    '"\'; DROP TABLE claims; --" reaches the caller as a raw sqlglot exception',
-)
 def test_expression_positions_raise_indb_errors_only(deployed: Deployed) -> None:
     # Whatever the payload, the caller sees an IndbError: SpecError, or EngineError where
     # DuckDB itself refused (e.g. a dollar-quoted string that is not a number).
@@ -551,10 +545,6 @@ def test_expression_positions_raise_indb_errors_only(deployed: Deployed) -> None
     assert_untouched(deployed)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="sqlglot.errors.TokenError (not an IndbError) for an unterminated quote",
-)
 @pytest.mark.parametrize(
     ("source", "options"),
     [
@@ -568,8 +558,15 @@ def test_expression_positions_raise_indb_errors_only(deployed: Deployed) -> None
 def test_unterminated_quote_is_a_spec_error(
     deployed: Deployed, source: str, options: dict[str, str]
 ) -> None:
-    with pytest.raises(SpecError):
+    with pytest.raises(SpecError) as info:
         indb.fit(source, "TUCE", "poisson", db=str(deployed.path), **options)
+    # the message names the option (or the source query) and its text, and the likely cause
+    msg = str(info.value)
+    for option, text in options.items():
+        assert f"cannot parse {option} expression {text!r}" in msg, msg
+    if not options:
+        assert f"cannot parse the source query {source!r}" in msg, msg
+    assert "quote left unclosed" in msg, msg
     assert_untouched(deployed)
 
 
