@@ -128,6 +128,16 @@ class Dialect:
             where=where,
         )
 
+    def existing_objects_sql(self, schema: str | None, view: str, macro: str | None) -> str:
+        """The catalog lookup of :meth:`existing_objects_query`, as text to run."""
+        return self.render(self.existing_objects_query(schema, view, macro))
+
+    def existing_objects(
+        self, cols: dict[str, Any], view: str, macro: str | None
+    ) -> list[tuple[str, str]]:
+        """(kind, name) pairs from the result of :meth:`existing_objects_sql`."""
+        return [(str(k), str(n)) for k, n in zip(cols["kind"], cols["name"], strict=True)]
+
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         """Statements that store ``query`` as a session-private table ``name``."""
         raise UnsupportedError(f"engine {self.name!r} cannot hold a temporary table in indb yet")

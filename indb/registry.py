@@ -438,10 +438,18 @@ class Registry:
         )
         if ours:
             return
-        found = self._rows(self.d.existing_objects_query(schema, view, macro))
+        try:
+            cols = self.engine.fetch_columns(self.d.existing_objects_sql(schema, view, macro))
+        except EngineError:
+            if schema is None:
+                raise
+            # a schema that does not exist yet holds nothing to replace (Spark's SHOW
+            # TABLES IN a missing schema fails; information_schema just has no rows)
+            cols = None
+        found = self.d.existing_objects(cols, view, macro) if cols else []
         if found:
             where = f"schema {schema!r}" if schema else "the default schema"
-            objects = ", ".join(f"{r['kind'].lower()} {r['name']!r}" for r in found)
+            objects = ", ".join(f"{kind.lower()} {obj!r}" for kind, obj in found)
             raise RegistryError(
                 f"model {name!r} would replace {objects} in {where}, which indb did not "
                 "create for this model; choose another model name (or view_schema), or "

@@ -32,8 +32,23 @@ class Sums:
     cell_keys: list[tuple[str, ...]] | None = None
 
 
+def _in_cell_order(design: Design, cells: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """The grouped rows sorted by cell: engines return groups in any order (DuckDB's order
+    varies with thread timing), and floating-point sums over them must not, so that the same
+    data give the same bits."""
+    if not design.factors or len(cells["n"]) < 2:
+        return cells
+    keys = [
+        [(v is None, "" if v is None else str(v)) for v in cells[f.alias]] for f in design.factors
+    ]
+    order = sorted(range(len(cells["n"])), key=lambda r: tuple(k[r] for k in keys))
+    idx = np.asarray(order, dtype=np.intp)
+    return {k: np.asarray(v)[idx] for k, v in cells.items()}
+
+
 def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...] = ()) -> Sums:
     """Build X'WX and X'Wz (standardized design) from per-cell sums of the IRLS scan."""
+    cells = _in_cell_order(design, cells)
     rows = len(cells["n"])
     p = design.p
     ind = np.ones((rows, p))

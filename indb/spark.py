@@ -86,6 +86,18 @@ class SparkDialect(Dialect):
                 node.set("this", "GROUPING_ID")
         return super().render(tree)
 
+    def existing_objects_sql(self, schema, view, macro):
+        # Spark has no information_schema; SHOW TABLES lists tables, views and the
+        # session's temporary views (https://spark.apache.org/docs/latest/sql-ref-syntax-aux-show-tables.html)
+        return "SHOW TABLES" + (f" IN {self.quote(schema)}" if schema else "")
+
+    def existing_objects(self, cols, view, macro):
+        return [
+            ("TEMPORARY VIEW" if bool(temp) else "TABLE OR VIEW", str(name))
+            for name, temp in zip(cols["tableName"], cols["isTemporary"], strict=True)
+            if str(name).lower() == view.lower()
+        ]
+
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         # a session-private temporary view, computed once and kept in executor memory
         return [f"CACHE TABLE {self.quote(name)} AS {self.render(query)}"]

@@ -237,6 +237,17 @@ def test_spark_temporary_views_and_append_only_registry(spark_ships: Any) -> Non
     records = spark_frame(session, f"SELECT version, status FROM {schema}.version_record")
     assert sorted(records.values.tolist()) == [[1, "live"], [2, "live"]]
 
+    # a view of the user's with a model's name is never replaced (Spark has no
+    # information_schema: the check reads SHOW TABLES)
+    session.sql("CREATE OR REPLACE TEMPORARY VIEW Mine AS SELECT 42 AS answer")
+    with pytest.raises(RegistryError, match="temporary view 'mine'.*nothing was written"):
+        fit_ships(engine, **{**kw, "name": "mine"})
+    assert spark_frame(session, "SELECT * FROM Mine")["answer"].tolist() == [42]
+    assert (
+        "mine"
+        not in spark_frame(session, f"SELECT model_name FROM {schema}.model")["model_name"].tolist()
+    )
+
 
 @pytest.mark.slow
 def test_spark_persistent_views_and_a_failed_promotion(spark_ships: Any) -> None:
