@@ -726,7 +726,7 @@ def _spill_connection(path: Path, tmp: Path) -> duckdb.DuckDBPyConnection:
     spill = tmp / "spill"
     spill.mkdir()
     con.execute("SET threads = 1")
-    con.execute("SET memory_limit = '30MB'")
+    con.execute("SET memory_limit = '64MB'")
     con.execute(f"SET temp_directory = '{spill}'")
     con.execute("SET max_temp_directory_size = '1MB'")
     return con
@@ -735,7 +735,7 @@ def _spill_connection(path: Path, tmp: Path) -> duckdb.DuckDBPyConnection:
 @pytest.fixture
 def big(setup: Setup, tmp_path: Path) -> tuple[Path, dict[str, Any]]:
     """The database plus a 1.5-million-row table whose fold (GROUP BY all design columns)
-    cannot fit in 30 MB of memory."""
+    cannot fit in 64 MB of memory (at 30 MB the fold runs out of memory before it spills)."""
     path = copy_db(setup.path, tmp_path / "big.duckdb")
     with duckdb.connect(str(path)) as con:
         con.execute(
