@@ -62,6 +62,8 @@ class Dialect:
             return self.is_finite(node.this)
         if isinstance(node, S.PreciseSum):
             return self.precise_sum(node.this)
+        if isinstance(node, S.LevelText):
+            return self.level_text(node.this)
         return node
 
     # -- translations (override per engine) --------------------------------------------------
@@ -73,6 +75,10 @@ class Dialect:
 
     def precise_sum(self, x: exp.Expression) -> exp.Expression:
         return exp.Sum(this=x)
+
+    def level_text(self, x: exp.Expression) -> exp.Expression:
+        """A categorical value's level name: its cast to text (DuckDB's and Spark's text)."""
+        return S.as_text(x)
 
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         raise UnsupportedError(f"engine {self.name!r} has no quantile aggregate")

@@ -670,7 +670,7 @@ def levels_query(ctx: PlanContext, sets: Sequence[tuple[str, ...]], cap: int) ->
     freq = ctx.raw_freq()
     weight = [S.alias(freq, "rc")] if freq is not None else []
     inner = S.select(
-        [*(S.alias(S.as_text(S.col(c)), alias[c]) for c in factors), *weight],
+        [*(S.alias(S.level_text(S.col(c)), alias[c]) for c in factors), *weight],
         ctx.source(),
         where=ctx.kept(),
     )
@@ -710,7 +710,7 @@ def levels_query(ctx: PlanContext, sets: Sequence[tuple[str, ...]], cap: int) ->
 def rows_select(ctx: PlanContext, design: Design) -> exp.Select:
     """Stage r: factor levels as text, standardized values, y, pw, fw, off (kept rows)."""
     knots = dict(design.knots)
-    cols: list[Expr] = [S.alias(S.as_text(S.col(f.column)), f.alias) for f in design.factors]
+    cols: list[Expr] = [S.alias(S.level_text(S.col(f.column)), f.alias) for f in design.factors]
     cols += [S.alias(ctx.value_sql(v, knots), v.alias) for v in design.values[1:]]
     cols += [
         S.alias(ctx.response(), "y"),

@@ -147,6 +147,22 @@ class PostgresDialect(Dialect):
             return exp.Anonymous(this="LGAMMA", expressions=[x])
         return log_gamma_series(x)
 
+    def level_text(self, x: exp.Expression) -> exp.Expression:
+        # PostgreSQL writes the double 2.0 as '2' where DuckDB and Spark write '2.0': append
+        # '.0' to an integral double's text so a DOUBLE column declared categorical gets the
+        # same level names on every engine. pg_typeof and a cast to text type-check for any
+        # operand type (a cast to a number would not, for booleans).
+        text = S.as_text(x)
+        is_double = exp.In(
+            this=S.as_text(exp.Anonymous(this="pg_typeof", expressions=[x.copy()])),
+            expressions=[S.text("double precision"), S.text("real")],
+        )
+        integral = exp.RegexpLike(this=text.copy(), expression=S.text("^-?[0-9]+$"))
+        return S.case(
+            [(S.and_(is_double, integral), exp.DPipe(this=text.copy(), expression=S.text(".0")))],
+            text,
+        )
+
     def is_finite(self, x: exp.Expression) -> exp.Expression:
         inf = exp.Cast(this=S.text("Infinity"), to=exp.DataType.build("DOUBLE"))
         return S.lt(S.abs_(x), inf)

@@ -42,7 +42,14 @@ class PreciseSum(*_AGG):
     arg_types = {"this": True}
 
 
-CUSTOM_NODES: tuple[type[exp.Expression], ...] = (LogGamma, IsFinite, PreciseSum)
+class LevelText(*_FUNC):
+    """A categorical value as its level name: the engine's text of the value, with an
+    integral double written as DuckDB and Spark write it ('2.0')."""
+
+    arg_types = {"this": True}
+
+
+CUSTOM_NODES: tuple[type[exp.Expression], ...] = (LogGamma, IsFinite, PreciseSum, LevelText)
 
 
 # -- leaves ----------------------------------------------------------------------------------
@@ -250,6 +257,10 @@ def cast(a: Expr, to: str) -> Expr:
 
 def as_double(a: Expr) -> Expr:
     return cast(a, "DOUBLE")
+
+
+def level_text(a: Expr) -> Expr:
+    return LevelText(this=a)
 
 
 def as_text(a: Expr) -> Expr:

@@ -92,7 +92,7 @@ def _columns(res: FitResult) -> list[_Col]:
 
 
 def _text(column: str) -> Expr:
-    return S.as_text(S.col(column))
+    return S.level_text(S.col(column))
 
 
 def _value(c: _Col, knots: dict[str, list[float]]) -> Expr | None:

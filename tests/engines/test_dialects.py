@@ -161,25 +161,15 @@ def test_booleans_and_integers_as_text(engine: Engine) -> None:
     assert got["n"].tolist() == ["7", "-3"]
 
 
-@pytest.mark.parametrize(
-    "engine",
-    [
-        "duckdb",
-        pytest.param(
-            "postgres",
-            marks=pytest.mark.xfail(
-                reason="PostgreSQL writes the double 2.0 as '2' (DuckDB, Spark: '2.0'), so a "
-                "DOUBLE column declared categorical gets other level names there",
-                strict=True,
-            ),
-        ),
-        "spark-local",
-    ],
-    indirect=True,
-)
-def test_integral_doubles_as_text(engine: Engine) -> None:
-    got = run(engine, [S.alias(S.as_text(S.col("x")), "t")], values_source([[S.num(2.0)]], ["x"]))
-    assert got["t"].tolist() == ["2.0"]
+@pytest.mark.parametrize("engine", ["duckdb", "postgres", "spark-local"], indirect=True)
+def test_integral_doubles_as_level_text(engine: Engine) -> None:
+    # DuckDB's text of a double is the level-name contract (recalled from DuckDB's cast
+    # rules: 2.0 -> '2.0', 0.5 -> '0.5'); PostgreSQL writes 2.0 as '2' and is translated
+    rows = [[S.num(2.0), S.integer(2)], [S.num(0.5), S.integer(-7)], [S.num(-3.0), S.integer(0)]]
+    cols = [S.alias(S.level_text(S.col("x")), "t"), S.alias(S.level_text(S.col("i")), "u")]
+    got = run(engine, cols, values_source(rows, ["x", "i"]))
+    assert got["t"].tolist() == ["2.0", "0.5", "-3.0"]
+    assert got["u"].tolist() == ["2", "-7", "0"]
 
 
 # -- engine facts behind the plan's clamps and guards ----------------------------------------------
