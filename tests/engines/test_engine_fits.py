@@ -108,3 +108,29 @@ def test_spline_knots_and_fit(loader: Loader) -> None:
     assert res.terms == ref.terms
     assert_allclose(res.params, ref.params, rtol=1e-9)
     assert_allclose(res.std_errors, ref.std_errors, rtol=1e-9)
+
+
+def test_double_column_declared_categorical_has_the_same_level_names(loader: Loader) -> None:
+    # statsmodels.datasets.fair: rate_marriage is a DOUBLE (1.0 .. 5.0) declared categorical;
+    # the level names are DuckDB's text of the double ('4.0') on every engine (PostgreSQL
+    # writes 4.0 as '4', so its dialect appends '.0')
+    d = smd.fair.load_pandas().data
+    frame = pd.DataFrame(
+        {"children": d["children"].round().astype("int64"), "rating": d["rate_marriage"]}
+    )
+    loader.load("fair_rating", frame)
+    res = indb.fit(
+        "fair_rating", "children", "poisson", db=loader.engine, categorical=["rating"], tol=1e-13
+    )
+    levels = sorted(f"{v:.1f}" for v in frame["rating"].unique())
+    used = [t.split("=")[1] for t in res.terms[1:]]
+    assert res.terms[1:] == [f"rating={v}" for v in used] and set(used) < set(levels)
+    assert len(used) == len(levels) - 1  # every level but the reference
+    # statsmodels (test-only oracle) on the same dummies
+    dummies = pd.get_dummies(frame["rating"].map(lambda v: f"{v:.1f}"), dtype=float)
+    x = np.column_stack([np.ones(len(frame)), dummies[used]])
+    sm_res = sm.GLM(frame["children"].to_numpy(float), x, family=sm.families.Poisson()).fit(
+        tol=1e-14, maxiter=100
+    )
+    assert_allclose(res.params, sm_res.params, rtol=1e-6, atol=1e-8)
+    assert_allclose(res.std_errors, sm_res.bse, rtol=1e-6)
