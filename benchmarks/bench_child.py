@@ -121,7 +121,7 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
     # full run's time is already in gram_engine_seconds, so the query runs only once more,
     # under DuckDB's profiler.
     # (not on the compressed route: its folded table lived only during the fit)
-    if fit_gram and "indb_fold_" not in fit_gram[-1][0]:
+    if fit_gram and not any(t in fit_gram[-1][0] for t in ("indb_fold_", "indb_rows_")):
         sql = fit_gram[-1][0]
         con = duckdb.connect()
         DuckDBEngine(con)  # the session settings indb uses (optimizer rules, progress bar)
