@@ -589,19 +589,25 @@ def markdown_table(headers: Sequence[str], rows: Sequence[Sequence[str]]) -> lis
     return out
 
 
-def machine_lines() -> list[str]:
-    cpu = "?"
+def cpu_and_memory() -> tuple[str, int]:
+    """The CPU model name and the machine's memory in bytes, from /proc."""
+    cpu, mem = "?", 0
     with open("/proc/cpuinfo") as fh:
         for line in fh:
             if line.startswith("model name"):
                 cpu = line.split(":", 1)[1].strip()
                 break
-    mem = "?"
     with open("/proc/meminfo") as fh:
         for line in fh:
             if line.startswith("MemTotal:"):
-                mem = f"{int(line.split()[1]) / 1024**2:.1f} GiB"
+                mem = int(line.split()[1]) * 1024
                 break
+    return cpu, mem
+
+
+def machine_lines() -> list[str]:
+    cpu, mem_bytes = cpu_and_memory()
+    mem = f"{mem_bytes / 1024**3:.1f} GiB" if mem_bytes else "?"
     nproc = len(os.sched_getaffinity(0))
     versions = []
     for pkg in ("duckdb", "numpy", "scipy", "pyarrow", "sqlglot", "statsmodels", "scikit-learn"):

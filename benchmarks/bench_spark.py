@@ -53,6 +53,7 @@ import pyarrow as pa
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
 from bench_fit import floor_sql, parse_rows
+from bench_report import cpu_and_memory
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
@@ -412,17 +413,7 @@ def dense_stats_bytes(p: int) -> int:
 
 
 def machine(engine: SparkEngine) -> dict[str, Any]:
-    cpu = "?"
-    with open("/proc/cpuinfo") as fh:
-        for line in fh:
-            if line.startswith("model name"):
-                cpu = line.split(":", 1)[1].strip()
-                break
-    mem = 0
-    with open("/proc/meminfo") as fh:
-        for line in fh:
-            if line.startswith("MemTotal:"):
-                mem = int(line.split()[1]) * 1024
+    cpu, mem = cpu_and_memory()
     java = engine.session.sql(
         "SELECT reflect('java.lang.System', 'getProperty', 'java.version') AS v"
     ).collect()[0][0]
