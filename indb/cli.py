@@ -251,9 +251,10 @@ def _apply(*decorators: Callable[[F], F]) -> Callable[[F], F]:
 database_option = click.option(
     "--db",
     "db",
-    metavar="PATH",
+    metavar="DB",
     default=None,
-    help="DuckDB database file. Leave out to work in a fresh in-memory database.",
+    help="DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
+    "out to work in a fresh in-memory DuckDB database.",
 )
 
 model_options = _apply(
@@ -396,9 +397,10 @@ registry_schema_option = click.option(
 registry_database_option = click.option(
     "--db",
     "db",
-    metavar="PATH",
+    metavar="DB",
     required=True,
-    help="DuckDB database file holding the model registry.",
+    help="Where the model registry lives: a DuckDB database file, or postgresql://..., "
+    "spark:local[N], sc://host:port.",
 )
 
 execution_options = _apply(

@@ -9,6 +9,7 @@ the DuckDB scoring view of the same model.
 
 from __future__ import annotations
 
+import json
 import uuid
 from pathlib import Path
 from typing import Any
@@ -171,6 +172,29 @@ def test_postgres_registry_views_promote_and_rollback(pg_url: str, pg_con: Any) 
         assert events.count("promote") == 3 and events[-1] == "drop"
     finally:
         reg.engine.close()
+
+
+def test_registry_commands_take_a_postgres_url(pg_url: str, pg_con: Any) -> None:
+    frame = ships()
+    pg_load(pg_con, "ships", frame)
+    schema = f"reg_{uuid.uuid4().hex[:8]}"
+    fit_ships(pg_url, name="ships_cli", registry_schema=schema)
+    fit_ships(pg_url, name="ships_cli", registry_schema=schema, exclude=["row_id", "built"])
+    common = ["--db", pg_url, "--registry-schema", schema, "--json"]
+    out = CliRunner().invoke(main, ["versions", "ships_cli", *common])
+    assert out.exit_code == 0, out.output
+    versions = json.loads(out.output)["versions"]
+    assert [(v["version"], v["status"]) for v in versions] == [(1, "retired"), (2, "live")]
+    out = CliRunner().invoke(main, ["promote", "ships_cli", "1", *common])
+    assert out.exit_code == 0, out.output
+    # the view serves version 1 again: its means are version 1's, as the API computed them
+    means = pg_frame(pg_con, "SELECT row_id, score_mean FROM ships_cli ORDER BY row_id")
+    assert len(means) == len(frame)
+    assert_allclose(float(means["score_mean"].sum()), float(frame["accident"].sum()), rtol=1e-8)
+    live = pg_frame(
+        pg_con, f"SELECT live_version FROM {schema}.model WHERE model_name = 'ships_cli'"
+    )
+    assert live["live_version"].tolist() == [1]
 
 
 # -- Spark ------------------------------------------------------------------------------------
