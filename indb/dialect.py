@@ -144,6 +144,11 @@ class Dialect:
         """(kind, name) pairs from the result of :meth:`existing_objects_sql`."""
         return [(str(k), str(n)) for k, n in zip(cols["kind"], cols["name"], strict=True)]
 
+    @property
+    def can_materialize(self) -> bool:
+        """Whether this engine's dialect implements :meth:`materialize`."""
+        return type(self).materialize is not Dialect.materialize
+
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         """Statements that store ``query`` as a session-private table ``name``."""
         raise UnsupportedError(f"engine {self.name!r} cannot hold a temporary table in indb yet")

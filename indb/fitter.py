@@ -686,16 +686,16 @@ def _should_fold(ctx: P.PlanContext, run: _Run) -> bool:
     spec = ctx.spec
     if spec.compress == "never" or spec.estimate_theta:
         return False
-    try:
-        ctx.dialect.materialize("indb_probe", S.select([S.num(1.0)], ctx.source()))
-    except UnsupportedError:
+    if not ctx.dialect.can_materialize:
         if spec.compress == "always":
-            raise
+            raise UnsupportedError(
+                f"engine {ctx.dialect.name!r} cannot hold the folded table; use compress='auto'"
+            )
         return False
     if spec.compress == "always":
         return True
     row = run.one_row(P.sample_distinct_query(ctx))
-    d, s = int(row["d"] or 0), int(row["s"] or 0)
+    d, s = _count(row["d"]), _count(row["s"])
     # the sample holds every kept row when it is smaller than SAMPLE_ROWS
     return s >= AUTO_COMPRESS_MIN_ROWS and d * COMPRESS_RATIO <= s
 
