@@ -33,7 +33,7 @@ from engine_servers import (  # noqa: E402
     start_postgres,
     start_spark_cluster,
 )
-from engine_support import SPREADS, Loader  # noqa: E402
+from engine_support import SPREADS, Loader, open_engine  # noqa: E402
 
 IN_CI = os.environ.get("CI", "").strip().lower() == "true"
 
@@ -188,18 +188,7 @@ def duck() -> Iterator[duckdb.DuckDBPyConnection]:
 @pytest.fixture(params=["duckdb", "postgres", "spark-local"])
 def loader(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[Loader]:
     """Each engine in turn (fresh DuckDB / a PostgreSQL connection / the shared Spark session)."""
-    from indb.engine import DuckDBEngine
-
-    if request.param == "duckdb":
-        engine: Any = DuckDBEngine(duckdb.connect())
-    elif request.param == "postgres":
-        from indb.postgres import PostgresEngine
-
-        engine = PostgresEngine(request.getfixturevalue("pg_url"))
-    else:
-        from indb.spark import SparkEngine
-
-        engine = SparkEngine(request.getfixturevalue("spark_local"))
+    engine = open_engine(request, request.param)
     try:
         yield Loader(request.param, engine, tmp_path)
     finally:

@@ -19,6 +19,24 @@ def record_spread(engine: str, quantity: str, value: float, case: str) -> None:
         SPREADS[engine][quantity] = (value, case)
 
 
+def open_engine(request: Any, name: str) -> Any:
+    """A fresh engine by test name: a new in-memory DuckDB, a PostgreSQL connection to the
+    session's server (fixture ``pg_url``) or the shared local Spark session (``spark_local``)."""
+    if name == "duckdb":
+        import duckdb
+
+        from indb.engine import DuckDBEngine
+
+        return DuckDBEngine(duckdb.connect())
+    if name == "postgres":
+        from indb.postgres import PostgresEngine
+
+        return PostgresEngine(request.getfixturevalue("pg_url"))
+    from indb.spark import SparkEngine
+
+    return SparkEngine(request.getfixturevalue("spark_local"))
+
+
 # -- loading a pandas frame into each engine ------------------------------------------------
 
 

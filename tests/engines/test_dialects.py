@@ -11,15 +11,15 @@ import math
 from collections.abc import Iterator, Sequence
 from typing import Any
 
-import duckdb
 import numpy as np
 import pytest
+from engine_support import open_engine
 from numpy.testing import assert_allclose
 from scipy.special import gammaln
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.engine import DuckDBEngine, Engine
+from indb.engine import Engine
 from indb.errors import EngineError, UnsupportedError
 from indb.postgres import PostgresDialect
 from indb.spark import SparkDialect
@@ -30,16 +30,7 @@ ENGINES = ["duckdb", "postgres", "spark-local"]
 
 @pytest.fixture(params=ENGINES)
 def engine(request: pytest.FixtureRequest) -> Iterator[Engine]:
-    if request.param == "duckdb":
-        eng: Engine = DuckDBEngine(duckdb.connect())
-    elif request.param == "postgres":
-        from indb.postgres import PostgresEngine
-
-        eng = PostgresEngine(request.getfixturevalue("pg_url"))
-    else:
-        from indb.spark import SparkEngine
-
-        eng = SparkEngine(request.getfixturevalue("spark_local"))
+    eng: Engine = open_engine(request, request.param)
     try:
         yield eng
     finally:
