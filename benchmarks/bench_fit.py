@@ -34,6 +34,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Callable
 from typing import Any
 
 import bench_data
@@ -91,13 +92,21 @@ def quote_text(text: str) -> str:
     return "'" + text.replace("'", "''") + "'"
 
 
-def floor_sql(path: str, model: bench_data.Model) -> str:
-    """A SUM per used column (string length for the categorical ones) in one scan."""
+def floor_items(
+    model: bench_data.Model, quote: Callable[[str], str] = quote_ident, strlen: str = "strlen"
+) -> str:
+    """The floor's select list: COUNT(*) and a SUM per used column (string length for the
+    categorical ones), with the engine's identifier quoting and length function."""
     items = ["count(*)"]
     for c in model.columns:
-        q = quote_ident(c)
-        items.append(f"sum(strlen({q}))" if c in model.factors else f"sum({q})")
-    return f"SELECT {', '.join(items)} FROM read_parquet({quote_text(path)})"
+        q = quote(c)
+        items.append(f"sum({strlen}({q}))" if c in model.factors else f"sum({q})")
+    return ", ".join(items)
+
+
+def floor_sql(path: str, model: bench_data.Model) -> str:
+    """The floor scan in DuckDB: :func:`floor_items` over the Parquet file, in one scan."""
+    return f"SELECT {floor_items(model)} FROM read_parquet({quote_text(path)})"
 
 
 def measure_floor(

@@ -605,18 +605,10 @@ def cpu_and_memory() -> tuple[str, int]:
     return cpu, mem
 
 
-def machine_lines() -> list[str]:
-    cpu, mem_bytes = cpu_and_memory()
-    mem = f"{mem_bytes / 1024**3:.1f} GiB" if mem_bytes else "?"
-    nproc = len(os.sched_getaffinity(0))
-    versions = []
-    for pkg in ("duckdb", "numpy", "scipy", "pyarrow", "sqlglot", "statsmodels", "scikit-learn"):
-        try:
-            versions.append(f"{pkg} {md.version(pkg)}")
-        except md.PackageNotFoundError:
-            versions.append(f"{pkg} (not installed)")
+def indb_commit() -> tuple[str, bool | None]:
+    """The repository's short commit and whether indb/ differs from it (``"?"`` and None
+    outside a git checkout)."""
     here = os.path.dirname(os.path.abspath(__file__))
-    commit, dirty = "?", ""
     try:
         commit = subprocess.run(
             ["git", "-C", here, "rev-parse", "--short", "HEAD"],
@@ -628,9 +620,25 @@ def machine_lines() -> list[str]:
             ["git", "-C", here, "diff", "--quiet", "HEAD", "--", "../indb"],
             capture_output=True,
         ).returncode
-        dirty = " with uncommitted changes under indb/" if changed else " (indb/ unchanged)"
     except (OSError, subprocess.CalledProcessError):
-        pass
+        return "?", None
+    return commit, bool(changed)
+
+
+def machine_lines() -> list[str]:
+    cpu, mem_bytes = cpu_and_memory()
+    mem = f"{mem_bytes / 1024**3:.1f} GiB" if mem_bytes else "?"
+    nproc = len(os.sched_getaffinity(0))
+    versions = []
+    for pkg in ("duckdb", "numpy", "scipy", "pyarrow", "sqlglot", "statsmodels", "scikit-learn"):
+        try:
+            versions.append(f"{pkg} {md.version(pkg)}")
+        except md.PackageNotFoundError:
+            versions.append(f"{pkg} (not installed)")
+    commit, changed = indb_commit()
+    dirty = ""
+    if changed is not None:
+        dirty = " with uncommitted changes under indb/" if changed else " (indb/ unchanged)"
     return [
         f"- CPU: {cpu}; nproc: {nproc}; memory: {mem}",
         f"- OS: {platform.platform()}; Python {platform.python_version()}",

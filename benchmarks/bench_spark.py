@@ -40,7 +40,6 @@ import os
 import platform
 import resource
 import shutil
-import subprocess
 import sys
 import time
 from dataclasses import dataclass, field
@@ -52,8 +51,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.dataset as ds
 import pyarrow.parquet as pq
-from bench_fit import floor_sql, parse_rows
-from bench_report import cpu_and_memory
+from bench_fit import floor_items, floor_sql, parse_rows
+from bench_report import cpu_and_memory, indb_commit
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 ROOT = os.path.dirname(HERE)
@@ -312,12 +311,9 @@ def spark_ident(name: str) -> str:
 
 
 def spark_floor_sql(source: str, model: bench_data.Model) -> str:
-    """A SUM per used column (string length for the categorical ones) in one scan."""
-    items = ["count(*)"]
-    for c in model.columns:
-        q = spark_ident(c)
-        items.append(f"sum(length({q}))" if c in model.factors else f"sum({q})")
-    return f"SELECT {', '.join(items)} FROM parquet.{spark_ident(source)}"
+    """The floor scan in Spark SQL: ``bench_fit.floor_items`` over the Parquet folder."""
+    items = floor_items(model, quote=spark_ident, strlen="length")
+    return f"SELECT {items} FROM parquet.{spark_ident(source)}"
 
 
 def process_cpu() -> float:
@@ -412,6 +408,11 @@ def dense_stats_bytes(p: int) -> int:
 # -- machine ---------------------------------------------------------------------------------
 
 
+def commit_label() -> str:
+    commit, changed = indb_commit()
+    return commit + (" (indb/ modified)" if changed else "")
+
+
 def machine(engine: SparkEngine) -> dict[str, Any]:
     cpu, mem = cpu_and_memory()
     java = engine.session.sql(
@@ -429,24 +430,8 @@ def machine(engine: SparkEngine) -> dict[str, Any]:
         "pyspark": pyspark.__version__,
         "java": java,
         "duckdb": duckdb.__version__,
-        "indb_commit": git_commit(),
+        "indb_commit": commit_label(),
     }
-
-
-def git_commit() -> str:
-    try:
-        out = subprocess.run(
-            ["git", "-C", ROOT, "rev-parse", "--short", "HEAD"],
-            capture_output=True,
-            text=True,
-            check=True,
-        )
-        dirty = subprocess.run(
-            ["git", "-C", ROOT, "status", "--porcelain", "indb"], capture_output=True, text=True
-        )
-        return out.stdout.strip() + (" (indb/ modified)" if dirty.stdout.strip() else "")
-    except (OSError, subprocess.CalledProcessError):
-        return "?"
 
 
 def log(msg: str) -> None:
