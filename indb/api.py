@@ -38,6 +38,7 @@ SPEC_OPTIONS = (
     "confidence",
     "start",
     "compress",
+    "sample_start",
 )
 ENGINE_OPTIONS = ("memory_limit", "temp_directory", "threads")
 
@@ -71,6 +72,7 @@ def fit(
     confidence: float = 0.95,
     start: Mapping[str, float] | None = None,
     compress: str = "auto",
+    sample_start: str = "auto",
     progress: Any = None,
     name: str | None = None,
     promote: bool = True,
@@ -123,6 +125,7 @@ def fit(
         confidence=confidence,
         start=start,
         compress=compress,
+        sample_start=sample_start,
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)

@@ -196,7 +196,7 @@ def _fmt_number(value: float, spec: str) -> str:
 
 
 # Scans that are not steps of the main IRLS fit (see IterationRecord.phase).
-_PHASE_LABELS = {"theta": "theta-estimation", "null": "null-model"}
+_PHASE_LABELS = {"theta": "theta-estimation", "null": "null-model", "sample": "sample-start"}
 
 
 def format_iteration(record: IterationRecord) -> str:
@@ -411,6 +411,14 @@ execution_options = _apply(
         help="Fold the source to its distinct design rows before IRLS." + _default("compress"),
     ),
     click.option(
+        "--sample-start",
+        "sample_start",
+        type=click.Choice(["auto", "always", "never"]),
+        default=None,
+        help="Start IRLS from a fit on a hashed sample of about 100,000 rows (auto: tables "
+        "of 10^6 rows or more)." + _default("sample_start"),
+    ),
+    click.option(
         "--memory-limit",
         "memory_limit",
         default=None,
@@ -534,6 +542,7 @@ def _fit_arguments(options: dict[str, Any]) -> dict[str, Any]:
         "max_levels",
         "confidence",
         "compress",
+        "sample_start",
         "memory_limit",
         "temp_directory",
         "threads",

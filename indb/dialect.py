@@ -64,6 +64,10 @@ class Dialect:
             return self.precise_sum(node.this)
         if isinstance(node, S.LevelText):
             return self.level_text(node.this)
+        if isinstance(node, S.RowPick):
+            if node.share >= 1.0:
+                return S.true()
+            return self.row_pick(list(node.expressions), node.share)
         return node
 
     # -- translations (override per engine) --------------------------------------------------
@@ -82,6 +86,16 @@ class Dialect:
 
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         raise UnsupportedError(f"engine {self.name!r} has no quantile aggregate")
+
+    def row_pick(self, values: list[exp.Expression], fraction: float) -> exp.Expression:
+        """A condition TRUE on about ``fraction`` of the rows, from a hash of ``values``
+        (deterministic: the same rows on every run)."""
+        raise UnsupportedError(f"engine {self.name!r} cannot pick a hashed row sample")
+
+    @property
+    def can_sample(self) -> bool:
+        """Whether this dialect implements :meth:`row_pick` (the sample start needs it)."""
+        return type(self).row_pick is not Dialect.row_pick
 
     def file_scan(self, path: str) -> exp.Expression:
         raise UnsupportedError(f"engine {self.name!r} cannot read files directly: {path}")
@@ -244,6 +258,11 @@ class DuckDBDialect(Dialect):
 
     def materialize(self, name, query):
         return [f"CREATE OR REPLACE TEMP TABLE {self.quote(name)} AS {self.render(query)}"]
+
+    def row_pick(self, values, fraction):
+        # HASH(...) is a UBIGINT spread over [0, 2^64): below fraction * 2^64 on that share
+        bound = exp.Literal.number(int(fraction * 2.0**64))
+        return exp.LT(this=exp.Anonymous(this="HASH", expressions=values), expression=bound)
 
     def _qualified(self, schema: str | None, name: str) -> str:
         return (self.quote(schema) + "." if schema else "") + self.quote(name)

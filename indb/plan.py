@@ -345,6 +345,15 @@ def sample_distinct_query(ctx: PlanContext) -> exp.Select:
     )
 
 
+def sample_rows_query(ctx: PlanContext, fraction: float) -> exp.Select:
+    """About ``fraction`` of the kept rows, every model column as it is in the source: the
+    table the sample start fits on. Rows are picked by a hash of their model columns
+    (:func:`indb.sqlexpr.row_pick`), so a rerun on the same data picks the same rows."""
+    cols = [S.col(c) for c in ctx.inputs.model_columns]
+    pick = S.row_pick(cols, fraction)
+    return S.select([c.copy() for c in cols], ctx.source(), where=S.and_(ctx.kept(), pick))
+
+
 # -- the profile: one list of aggregates, run over the source or over its fold -------------
 
 

@@ -142,6 +142,20 @@ class PostgresDialect(Dialect):
         # a temporary table lives in the session's own schema and disappears with it
         return [f"CREATE TEMPORARY TABLE {self.quote(name)} AS {self.render(query)}"]
 
+    def row_pick(self, values: list[exp.Expression], fraction: float) -> exp.Expression:
+        # a 64-bit hash of the row's values, uniform over [-2^63, 2^63): below
+        # -2^63 + fraction * 2^64 on that share. hash_record_extended (PostgreSQL 14+) hashes
+        # the values themselves; older servers hash their text.
+        row = exp.Anonymous(this="ROW", expressions=values)
+        if self.server_version >= 140000:
+            hashed = exp.Anonymous(this="hash_record_extended", expressions=[row, S.integer(0)])
+        else:
+            hashed = exp.Anonymous(
+                this="hashtextextended", expressions=[S.as_text(row), S.integer(0)]
+            )
+        bound = S.integer(int(-(2.0**63) + fraction * 2.0**64))
+        return exp.LT(this=hashed, expression=bound)
+
     def log_gamma(self, x: exp.Expression) -> exp.Expression:
         if self.server_version >= 180000:
             return exp.Anonymous(this="LGAMMA", expressions=[x])

@@ -45,7 +45,8 @@ class IterationRecord:
     relative_change: float
     step_halvings: int
     seconds: float
-    phase: str = "fit"  # fit | theta | null (intercept-only refit for the null deviance)
+    #: fit | sample (the sample start) | theta | null (intercept-only refit, null deviance)
+    phase: str = "fit"
 
 
 @dataclass(frozen=True)
@@ -118,10 +119,10 @@ class FitResult:
 
     @property
     def seconds_per_iteration(self) -> float:
-        """Mean wall time of one IRLS scan."""
-        if not self.iteration_log:
-            return math.nan
-        return sum(r.seconds for r in self.iteration_log) / len(self.iteration_log)
+        """Mean wall time of one IRLS iteration on the fitted table (phase ``fit``; the
+        sample start's, theta's and the null model's scans are in ``iteration_log``)."""
+        fit = [r.seconds for r in self.iteration_log if r.phase == "fit"]
+        return sum(fit) / len(fit) if fit else math.nan
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dictionary (non-finite numbers become ``None``)."""

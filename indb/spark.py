@@ -45,6 +45,9 @@ def check_view_kind(value: str) -> str:
     return value
 
 
+ROW_PICK_MODULUS = 1_000_003  # a prime; sample fractions resolve to 1e-6
+
+
 class SparkDialect(Dialect):
     """Spark SQL (tested with Spark 4): log-gamma series, isnan-based finiteness, percentile."""
 
@@ -104,6 +107,14 @@ class SparkDialect(Dialect):
 
     def drop_materialized(self, name: str) -> str:
         return f"DROP VIEW IF EXISTS {self.quote(name)}"  # uncaches it too
+
+    def row_pick(self, values: list[exp.Expression], fraction: float) -> exp.Expression:
+        # HASH(...) is Spark's 32-bit Murmur3 of the values (fixed seed 42): PMOD of it by a
+        # prime spreads rows evenly over [0, m)
+        m = ROW_PICK_MODULUS
+        hashed = exp.Anonymous(this="HASH", expressions=values)
+        spread = exp.Anonymous(this="PMOD", expressions=[hashed, exp.Literal.number(m)])
+        return exp.LT(this=spread, expression=exp.Literal.number(max(1, round(fraction * m))))
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
         return as_operand(super()._translate(node))

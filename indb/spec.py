@@ -86,6 +86,7 @@ class ModelSpec:
     confidence: float = 0.95
     start: tuple[tuple[str, float], ...] = field(default=())
     compress: str = "auto"
+    sample_start: str = "auto"
 
     @staticmethod
     def build(
@@ -116,6 +117,7 @@ class ModelSpec:
         confidence: float = 0.95,
         start: Mapping[str, float] | None = None,
         compress: str = "auto",
+        sample_start: str = "auto",
     ) -> ModelSpec:
         """Validate user options and resolve family/link names into a spec."""
         if not isinstance(response, str) or not response:
@@ -139,6 +141,10 @@ class ModelSpec:
             raise SpecError(f"trials is for grouped binomial data; family is {fam.name!r}")
         if compress not in ("auto", "always", "never"):
             raise SpecError(f"compress must be 'auto', 'always' or 'never'; got {compress!r}")
+        if sample_start not in ("auto", "always", "never"):
+            raise SpecError(
+                f"sample_start must be 'auto', 'always' or 'never'; got {sample_start!r}"
+            )
         if on_null not in ("exclude", "error"):
             raise SpecError(f"on_null must be 'exclude' or 'error'; got {on_null!r}")
         if not (isinstance(tol, int | float) and 0 < tol < 1):
@@ -199,6 +205,7 @@ class ModelSpec:
             confidence=float(confidence),
             start=st,
             compress=compress,
+            sample_start=sample_start,
         )
 
     def to_dict(self) -> dict[str, Any]:

@@ -49,7 +49,24 @@ class LevelText(*_FUNC):
     arg_types = {"this": True}
 
 
-CUSTOM_NODES: tuple[type[exp.Expression], ...] = (LogGamma, IsFinite, PreciseSum, LevelText)
+class RowPick(*_FUNC):
+    """TRUE on about ``fraction`` of the rows, picked by a hash of the ``expressions`` (a
+    row's values): the same rows on every run, whatever the scan order or thread count."""
+
+    arg_types = {"expressions": True, "fraction": True}
+
+    @property
+    def share(self) -> float:
+        return float(self.args["fraction"].name)
+
+
+CUSTOM_NODES: tuple[type[exp.Expression], ...] = (
+    LogGamma,
+    IsFinite,
+    PreciseSum,
+    LevelText,
+    RowPick,
+)
 
 
 # -- leaves ----------------------------------------------------------------------------------
@@ -307,6 +324,15 @@ def stddev_pop(e: Expr) -> Expr:
 
 def log_gamma(e: Expr) -> Expr:
     return LogGamma(this=e)
+
+
+def row_pick(values: Sequence[Expr], fraction: float) -> Expr:
+    """A deterministic row sample: TRUE on about ``fraction`` of the rows (see :class:`RowPick`)."""
+    if not 0.0 < fraction <= 1.0:
+        raise ValueError(f"a sample fraction lies in (0, 1]; got {fraction!r}")
+    return RowPick(
+        expressions=[v.copy() for v in values], fraction=exp.Literal.number(repr(float(fraction)))
+    )
 
 
 def is_finite(e: Expr) -> Expr:
