@@ -53,7 +53,8 @@ class Dialect:
                 raise UnsupportedError(
                     f"engine {self.name!r} has no translation for {type(node).__name__}"
                 )
-        return tree.sql(dialect=self.sqlglot_name)
+        # the tree is our own copy already: the generator need not copy it again
+        return tree.sql(dialect=self.sqlglot_name, copy=False)
 
     def _translate(self, node: exp.Expression) -> exp.Expression:
         if isinstance(node, S.LogGamma):

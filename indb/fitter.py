@@ -229,7 +229,9 @@ class _Summary:
     constant_weight: float | None = None
 
 
-def _summarize(ctx: P.PlanContext, row: dict, values: tuple[Value, ...]) -> _Summary:
+def _summarize(
+    ctx: P.PlanContext, row: dict, values: tuple[Value, ...], shifts: dict[str, float]
+) -> _Summary:
     n = int(row["n_kept"])
     for i, (stem, _) in enumerate(P.domain_checks(ctx)):
         bad = int(row[f"chk_{i}"] or 0)
@@ -259,15 +261,18 @@ def _summarize(ctx: P.PlanContext, row: dict, values: tuple[Value, ...]) -> _Sum
         )
     out_values = [values[0]]
     for v in values[1:]:
-        mean = float(row[f"{v.alias}_mean"])
-        ms = float(row[f"{v.alias}_ms"])
-        lo, hi = float(row[f"{v.alias}_min"]), float(row[f"{v.alias}_max"])
-        rms = math.sqrt(max(ms, 0.0))
-        sd = math.sqrt(max(ms - mean * mean, 0.0))
-        if not sd > 1e-6 * (hi - lo):
-            sd = hi - lo  # moments lost to cancellation: the range still conditions well
+        # moments about a value c of one kept row (profile_items): m = mean(v - c),
+        # q = mean((v - c)^2); q is 0 exactly when every row has v = c
+        c = shifts.get(v.alias, 0.0)
+        m = float(row[f"{v.alias}_mean"])
+        q = float(row[f"{v.alias}_ms"])
+        mean = c + m
+        var = q - m * m
+        # cancellation (c far out in a tail): the spread about c still conditions well
+        sd = math.sqrt(var) if var > 1e-12 * q else math.sqrt(max(q, 0.0))
+        rms = math.sqrt(max(q + 2.0 * c * m + c * c, 0.0))
         if v.centered:
-            if lo == hi:
+            if q == 0.0:
                 raise SpecError(
                     f"predictor {v.label!r} is constant ({mean:g}) over the {n} rows used, so it "
                     f"cannot be told apart from the intercept; leave it out (exclude=[...], "
@@ -278,7 +283,9 @@ def _summarize(ctx: P.PlanContext, row: dict, values: tuple[Value, ...]) -> _Sum
             if not rms > 0:
                 raise SpecError(f"predictor {v.label!r} is 0 in every row used; leave it out")
             out_values.append(dataclasses.replace(v, scale=rms))
-    column_sums = {v.label: float(row[f"{v.alias}_mean"]) * n for v in values[1:]}
+    column_sums = {
+        v.label: (shifts.get(v.alias, 0.0) + float(row[f"{v.alias}_mean"])) * n for v in values[1:]
+    }
     pw_min, pw_max = row["pw_min"], row["pw_max"]
     return _Summary(
         ll_sums={k[3:]: float(v) for k, v in row.items() if k.startswith("ll_") and v is not None},
@@ -660,11 +667,12 @@ def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
     ctx = P.PlanContext(spec, inputs, engine.dialect)
     knots = _knots(ctx, run)
     values = plan_values(inputs, spec.intercept)
-    items = P.profile_items(ctx, values, knots)
+    shifts = _shifts(ctx, run, values, knots)
+    items = P.profile_items(ctx, values, knots, shifts)
     folded = _fold(ctx, run, items) if _should_fold(ctx, run) else None
-    row = folded[0] if folded else run.one_row(P.profile_query(ctx, items))
+    row = folded[0] if folded else _profile(ctx, run, items)
     n_total, n_kept, by_col = _check_nulls(ctx, row)
-    summary = _summarize(ctx, row, values)
+    summary = _summarize(ctx, row, values, shifts)
     if folded:
         ctx = _folded_context(ctx, run, folded[1], n_kept)
     factors, combos = _factors(ctx, run)
@@ -674,6 +682,32 @@ def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
     return ctx, design, summary, n_total, n_kept, by_col
+
+
+def _shifts(
+    ctx: P.PlanContext, run: _Run, values: tuple[Value, ...], knots: dict
+) -> dict[str, float]:
+    """Each value in one kept row (0 where there is none, or it is NULL or not finite):
+    the points the profile takes moments about."""
+    if len(values) < 2:
+        return {}
+    row = run.one_row(P.first_values_query(ctx, values, knots))
+    out: dict[str, float] = {}
+    for v in values[1:]:
+        x = row.get(v.alias)
+        out[v.alias] = float(x) if x is not None and math.isfinite(float(x)) else 0.0
+    return out
+
+
+def _profile(ctx: P.PlanContext, run: _Run, items: list[P.ProfileItem]) -> dict[str, object]:
+    """The row route's profile: one scan grouped by the row flags; a second, ungrouped one
+    only when a kept row fails a domain check (its counts and ranges explain the error)."""
+    row = run.one_row(P.grouped_profile_query(ctx, items))
+    bad = _count(row.pop(P.FOLD_BAD))
+    row.pop(P.FOLD_NK_NULL)
+    if bad:
+        row.update(run.one_row(P.profile_query(ctx, P.detail_items(ctx, items, keys=()))))
+    return row
 
 
 AUTO_COMPRESS_MIN_ROWS = 50_000
@@ -721,9 +755,10 @@ def _fold(
     for stmt in stmts:
         run.engine.execute(stmt)
     row = run.one_row(P.folded_profile_query(ctx, items, ctx.dialect.table(groups)))
-    bad, nk_null = (_count(row.pop(k)) for k in (P.FOLD_BAD, P.FOLD_NK_NULL))
-    if bad or nk_null:
-        # a domain error to explain or NULL exclusions to count: one more, ungrouped scan
+    bad = _count(row.pop(P.FOLD_BAD))
+    row.pop(P.FOLD_NK_NULL)
+    if bad:
+        # a domain error to explain: one more, ungrouped scan counts it by check
         row.update(run.one_row(P.profile_query(ctx, P.detail_items(ctx, items))))
     run.fold_seconds = time.perf_counter() - t0
     return row, groups

@@ -345,12 +345,22 @@ def sample_distinct_query(ctx: PlanContext) -> exp.Select:
     )
 
 
+SAMPLE_HASHED = 4  # columns the sample start's hash reads
+
+
 def sample_rows_query(ctx: PlanContext, fraction: float) -> exp.Select:
     """About ``fraction`` of the kept rows, every model column as it is in the source: the
-    table the sample start fits on. Rows are picked by a hash of their model columns
-    (:func:`indb.sqlexpr.row_pick`), so a rerun on the same data picks the same rows."""
+    table the sample start fits on. Rows are picked by a hash (:func:`indb.sqlexpr.row_pick`)
+    of a few of their model columns, numeric ones first (the most distinct values; engines
+    then decode the other columns only for the picked rows), so a rerun on the same data
+    picks the same rows. Rows alike in those columns are picked together: the sample is
+    clustered, which costs a start nothing."""
     cols = [S.col(c) for c in ctx.inputs.model_columns]
-    pick = S.row_pick(cols, fraction)
+    inputs = ctx.inputs
+    order = [*inputs.numerics, *(c for c in inputs.model_columns if c not in inputs.factors)]
+    order += list(inputs.factors)
+    hashed = list(dict.fromkeys(c for c in order if c in inputs.model_columns))[:SAMPLE_HASHED]
+    pick = S.row_pick([S.col(c) for c in hashed], fraction)
     return S.select([c.copy() for c in cols], ctx.source(), where=S.and_(ctx.kept(), pick))
 
 
@@ -361,8 +371,9 @@ def sample_rows_query(ctx: PlanContext, fraction: float) -> exp.Select:
 class ProfileItem:
     """One profile aggregate: ``agg`` of the per-row ``arg``, over kept rows when ``kept``.
 
-    ``agg`` is ``count`` (rows; ``arg`` unused), ``sum`` (integer flags), ``psum`` (a sum the
-    dialect may compensate), ``min``, ``max`` or ``mean``. Every one decomposes over groups,
+    ``agg`` is ``count`` (rows; ``arg`` unused), ``nulls`` (rows where ``arg`` is NULL),
+    ``sum`` (integer flags), ``psum`` (a sum the dialect may compensate), ``min``, ``max`` or
+    ``mean``. Every one decomposes over groups,
     so the same items run in one scan of the source (:func:`profile_query`) or, on the
     compressed route, as partial aggregates inside the fold (:func:`fold_query`) combined
     over the folded table (:func:`folded_profile_query`).
@@ -378,17 +389,25 @@ class ProfileItem:
 
 
 def profile_items(
-    ctx: PlanContext, values: Sequence[Value], knots: dict[str, tuple[float, ...]]
+    ctx: PlanContext,
+    values: Sequence[Value],
+    knots: dict[str, tuple[float, ...]],
+    shifts: dict[str, float] | None = None,
 ) -> list[ProfileItem]:
     """The pre-fit profile: total rows, rows kept and NULL counts per model input (over all
     rows); over kept rows the domain-check violation counts, weighted response sums, weight
-    range, saturated log-likelihood sums and the moments that standardize values."""
+    range, saturated log-likelihood sums and the moments that standardize values.
+
+    The moments of a value v are taken about ``shifts[v.alias]`` (a value of one kept row,
+    :func:`first_values_query`): mean and mean square of v - c. The mean square is 0 exactly
+    when v is constant, and the variance from these moments keeps its digits however far
+    the mean lies from 0."""
     one = exp.Literal.number(1)
     y, pw = ctx.response(), ctx.prior_weight()
     fw = ctx.raw_freq() or S.num(1.0)
     items = [ProfileItem("n_total", "count", one, kept=False), ProfileItem("n_kept", "count", one)]
     for i, (_, e) in enumerate(ctx.null_items()):
-        items.append(ProfileItem(f"null_{i}", "sum", S.flag(S.is_null(e)), kept=False, detail=True))
+        items.append(ProfileItem(f"null_{i}", "nulls", e, kept=False))
     items += [
         ProfileItem("sum_f", "psum", fw),
         ProfileItem("sum_fpw", "psum", S.mul(fw.copy(), pw)),
@@ -410,15 +429,25 @@ def profile_items(
         items.append(ProfileItem(f"ll_{key}", "psum", positive))
     for v in values[1:]:
         raw = ctx.value_sql(v, knots, standardized=False)
-        # mean and mean square only: the scale just conditions X'WX, so the variance from
-        # moments (with its cancellation) is accurate enough, and cheaper
+        c = (shifts or {}).get(v.alias, 0.0)
+        dev = S.sub(raw, S.num(c)) if c != 0.0 else raw
+        # mean and mean square about c only (no MIN/MAX: they cost as much again): the
+        # scale just conditions X'WX, and constancy shows as a mean square of exactly 0
         items += [
-            ProfileItem(f"{v.alias}_mean", "mean", raw),
-            ProfileItem(f"{v.alias}_ms", "mean", S.mul(raw.copy(), raw.copy())),
-            ProfileItem(f"{v.alias}_min", "min", raw.copy()),
-            ProfileItem(f"{v.alias}_max", "max", raw.copy()),
+            ProfileItem(f"{v.alias}_mean", "mean", dev),
+            ProfileItem(f"{v.alias}_ms", "mean", S.mul(dev.copy(), dev.copy())),
         ]
     return items
+
+
+def first_values_query(
+    ctx: PlanContext, values: Sequence[Value], knots: dict[str, tuple[float, ...]]
+) -> exp.Select:
+    """The raw values of one kept row (any row: engines stop at the first they find); the
+    profile takes each value's moments about it."""
+    cols = [S.alias(ctx.value_sql(v, knots, standardized=False), v.alias) for v in values[1:]]
+    q = S.select(cols or [S.alias(exp.Literal.number(1), "one")], ctx.source(), where=ctx.kept())
+    return q.limit(1, copy=False)
 
 
 _AGGS = {"sum": S.sum_, "psum": S.psum, "min": S.min_, "max": S.max_, "mean": S.avg}
@@ -458,6 +487,8 @@ def profile_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
     for it in items:
         if it.agg == "count":
             agg = S.sum_(S.flag(kept.copy())) if it.kept else S.count_star()
+        elif it.agg == "nulls":
+            agg = S.sub(S.count_star(), exp.Count(this=rewrite(it.arg)))
         else:
             arg = rewrite(it.arg)
             agg = _AGGS[it.agg](S.case([(kept.copy(), arg)]) if it.kept else arg)
@@ -476,7 +507,12 @@ def _key_only(e: Expr, keys: Sequence[str]) -> bool:
     return set(S.referenced_columns(e)) <= set(keys)
 
 
-def fold_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
+def fold_query(
+    ctx: PlanContext,
+    items: Sequence[ProfileItem],
+    keys: Sequence[str] | None = None,
+    folding: bool = True,
+) -> exp.Select:
     """Stage 1 of the compressed route: the source grouped by its design-row keys, all rows.
 
     One scan, grouped by the keys and two row flags: ``indb_kept`` (no NULL outside the
@@ -488,9 +524,12 @@ def fold_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
     before the profile has looked at it. Grouping by the flags keeps CASE out of the
     aggregates, and per-row quantities are computed once in stacked projections (engines
     do not share subexpressions across aggregates); both matter for speed.
+
+    With ``keys=()`` and ``folding=False`` the same scan is the row route's profile
+    (:func:`grouped_profile_query`): grouped by the two flags only, without folding sums.
     """
     fam = ctx.spec.family
-    keys = key_columns(ctx)
+    keys = key_columns(ctx) if keys is None else list(keys)
     _, row_cond = ctx.kept_parts(keys)
     atoms, rewrite = _atoms(ctx)
     domain_ok = S.and_(row_cond.copy(), *(S.not_(c) for _, c in domain_checks(ctx)))
@@ -498,7 +537,7 @@ def fold_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
     f = ctx.raw_freq()
     y, pw = ctx.response(), ctx.prior_weight()
     extra: list[Expr] = []
-    if folds_offset(ctx):
+    if folding and folds_offset(ctx):
         off = ctx.raw_offset()
         assert off is not None
         # e = exp(offset) only on rows inside the domain checks: no engine sees the
@@ -518,33 +557,38 @@ def fold_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
     )
     if extra:
         stage = S.select([exp.Star(), *extra], S.subquery(stage, "fold_b"))
-    fw_row = S.mul(f, pw) if f is not None else pw
-    stage = S.select(
-        [
-            exp.Star(),
-            S.alias(rewrite(fw_row), _r("fw")),
-            S.alias(rewrite(y), _r("fy")),
-            # y for h(y) only where the row is inside the domain (ln of y <= 0 is an error)
-            S.alias(S.case([(ok.copy(), rewrite(y))]), _r("hy")),
-        ],
-        S.subquery(stage, "fold_c"),
-    )
-    w, yf = S.col(_r("fw")), S.col(_r("fy"))
-    h = fam.deviance_h_sql(S.col(_r("hy")))
     cols: list[Expr] = [
         *(S.col(k) for k in (*keys, KEPT, FOLD_OK)),
         S.alias(S.count_star(), FOLD_ROWS),
-        S.alias(S.psum(rewrite(f)) if f is not None else S.count_star(), _r("sf")),
-        S.alias(S.psum(w), _r("sw")),
-        S.alias(S.psum(S.mul(w.copy(), yf)), _r("sy")),
-        S.alias(S.psum(S.mul(w.copy(), yf.copy(), yf.copy())), _r("sy2")),
-        S.alias(S.psum(S.mul(w.copy(), h)), _r("sh")),
     ]
+    if folding:
+        fw_row = S.mul(f, pw) if f is not None else pw
+        stage = S.select(
+            [
+                exp.Star(),
+                S.alias(rewrite(fw_row), _r("fw")),
+                S.alias(rewrite(y), _r("fy")),
+                # y for h(y) only where the row is inside the domain (ln of y <= 0 is an error)
+                S.alias(S.case([(ok.copy(), rewrite(y))]), _r("hy")),
+            ],
+            S.subquery(stage, "fold_c"),
+        )
+        w, yf = S.col(_r("fw")), S.col(_r("fy"))
+        h = fam.deviance_h_sql(S.col(_r("hy")))
+        cols += [
+            S.alias(S.psum(rewrite(f)) if f is not None else S.count_star(), _r("sf")),
+            S.alias(S.psum(w), _r("sw")),
+            S.alias(S.psum(S.mul(w.copy(), yf)), _r("sy")),
+            S.alias(S.psum(S.mul(w.copy(), yf.copy(), yf.copy())), _r("sy2")),
+            S.alias(S.psum(S.mul(w.copy(), h)), _r("sh")),
+        ]
     for i, it in enumerate(items):
         if it.agg == "count" or it.detail or _key_only(it.arg, keys):
             continue
         arg = rewrite(it.arg)
-        if it.agg == "mean":
+        if it.agg == "nulls":
+            cols.append(S.alias(S.sub(S.count_star(), exp.Count(this=arg)), _r(f"p{i}")))
+        elif it.agg == "mean":
             cols.append(S.alias(S.psum(arg), _r(f"p{i}")))
             cols.append(S.alias(exp.Count(this=arg.copy()), _r(f"c{i}")))
         else:
@@ -556,13 +600,18 @@ def fold_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
     )
 
 
-def folded_profile_query(ctx: PlanContext, items: Sequence[ProfileItem], table: Expr) -> exp.Select:
+def folded_profile_query(
+    ctx: PlanContext,
+    items: Sequence[ProfileItem],
+    table: Expr,
+    keys: Sequence[str] | None = None,
+) -> exp.Select:
     """Stage 2: the profile of the source, combined from the groups of :func:`fold_query`
     (the same values :func:`profile_query` gives, up to summation order). Kept-row partial
     aggregates come from the groups inside the domain checks: when any kept row is outside
     (``indb_bad`` > 0) the fit stops with the detail scan's error, so they are exact
     whenever they are used."""
-    keys = key_columns(ctx)
+    keys = key_columns(ctx) if keys is None else list(keys)
     key_cond, _ = ctx.kept_parts(keys)
     rows, kept, ok = S.col(FOLD_ROWS), S.col(KEPT), S.col(FOLD_OK)
     kept_rows = S.case([(S.and_(key_cond, kept), rows)])
@@ -578,7 +627,9 @@ def folded_profile_query(ctx: PlanContext, items: Sequence[ProfileItem], table: 
             agg = exp.Literal.number(0) if it.agg == "sum" else exp.Null()
         elif _key_only(it.arg, keys):
             some = S.gt(mult.copy(), exp.Literal.number(0))
-            if it.agg in ("min", "max"):
+            if it.agg == "nulls":
+                agg = S.sum_(S.case([(some, S.mul(mult.copy(), S.flag(S.is_null(it.arg))))]))
+            elif it.agg in ("min", "max"):
                 agg = _AGGS[it.agg](S.case([(some, it.arg.copy())]))
             else:
                 weighted = S.case([(some, S.mul(mult.copy(), it.arg.copy()))])
@@ -589,7 +640,9 @@ def folded_profile_query(ctx: PlanContext, items: Sequence[ProfileItem], table: 
             part = S.col(_r(f"p{i}"))
             if it.kept:
                 part = S.case([(ok_group.copy(), part)])
-            if it.agg == "mean":
+            if it.agg == "nulls":
+                agg = S.sum_(part)
+            elif it.agg == "mean":
                 count = S.col(_r(f"c{i}"))
                 if it.kept:
                     count = S.case([(ok_group.copy(), count)])
@@ -606,6 +659,14 @@ def folded_profile_query(ctx: PlanContext, items: Sequence[ProfileItem], table: 
         ),
     ]
     return S.select(cols, table)
+
+
+def grouped_profile_query(ctx: PlanContext, items: Sequence[ProfileItem]) -> exp.Select:
+    """The row route's profile in one scan, grouped by the row flags of :func:`fold_query`
+    (at most four groups) instead of a CASE inside every aggregate; detail items are left
+    for :func:`detail_items`' scan, which runs only when a kept row fails a check."""
+    grouped = fold_query(ctx, items, keys=(), folding=False)
+    return folded_profile_query(ctx, items, S.subquery(grouped, "pg"), keys=())
 
 
 def _ratio(num: Expr, den: Expr) -> Expr:
@@ -647,9 +708,11 @@ def folded_rows_query(ctx: PlanContext, table: Expr) -> exp.Select:
     )
 
 
-def detail_items(ctx: PlanContext, items: Sequence[ProfileItem]) -> list[ProfileItem]:
+def detail_items(
+    ctx: PlanContext, items: Sequence[ProfileItem], keys: Sequence[str] | None = None
+) -> list[ProfileItem]:
     """The detail items the fold left out (those that read more than the keys)."""
-    keys = key_columns(ctx)
+    keys = key_columns(ctx) if keys is None else keys
     return [it for it in items if it.detail and not _key_only(it.arg, keys)]
 
 

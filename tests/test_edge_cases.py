@@ -14,6 +14,7 @@ intercept-only model (statsmodels' convention, also without an intercept).
 
 from __future__ import annotations
 
+import re
 import warnings
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -605,3 +606,39 @@ def test_quasi_separated_estimate_is_flagged_by_its_standard_error(
     ref = sm_fit(frame["GRADE"], X, F.Binomial())
     for term in ("intercept", "PSI", "TUCE"):
         assert_allclose(res.coef(term).estimate, ref.params[term], rtol=1e-5, err_msg=term)
+
+
+# -- predictors far from zero: the profile's moments about a value of one kept row ---------
+
+
+def test_a_predictor_far_from_zero_is_standardized_without_cancellation() -> None:
+    # statsmodels.datasets.engel (food expenditure on income): income shifted by 1e9. Plain
+    # moments E[x^2] - E[x]^2 would lose every digit of the variance (x^2 ~ 1e18, var ~ 1e5),
+    # the moments about one row's value keep them; the fit must still match statsmodels.
+    d = smd.engel.load_pandas().data
+    frame = pd.DataFrame({"food": d["foodexp"], "income": d["income"] + 1e9})
+    con = duckdb.connect()
+    con.register("engel_frame", frame)
+    res = indb.fit("SELECT * FROM engel_frame", "food", "gamma", "log", db=con, tol=1e-13)
+    X = sm.add_constant(frame["income"] - 1e9)  # the same model, income unshifted
+    ref = sm.GLM(frame["food"], X, family=sm.families.Gamma(sm.families.links.Log())).fit(
+        tol=1e-13
+    )  # statsmodels (test-only oracle)
+    # the slope is the same on either scale; the intercept absorbs 1e9 x slope
+    assert_allclose(res.coef("income").estimate, ref.params["income"], rtol=RTOL_COEF)
+    assert_allclose(res.coef("income").std_error, ref.bse["income"], rtol=RTOL_SE)
+    assert_allclose(res.deviance, ref.deviance, rtol=RTOL_DEV)
+    centre = {v["label"]: v for v in res.design["values"]}["income"]["center"]
+    assert_allclose(centre, frame["income"].mean(), rtol=1e-15)
+
+
+@pytest.mark.parametrize("value", [0.1, 1e9 + 0.1, -3.7])
+def test_a_constant_predictor_is_found_exactly(value: float) -> None:
+    # 0.1 summed 235 times and divided by 235 is not exactly 0.1, so a mean-based test would
+    # miss it; the mean square about one row's value is exactly 0. Rows: engel (235).
+    d = smd.engel.load_pandas().data
+    frame = pd.DataFrame({"food": d["foodexp"], "income": d["income"], "k": value})
+    con = duckdb.connect()
+    con.register("engel_frame", frame)
+    with pytest.raises(indb.SpecError, match=re.escape(f"predictor 'k' is constant ({value:g})")):
+        indb.fit("SELECT * FROM engel_frame", "food", "gamma", "log", db=con)
