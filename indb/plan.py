@@ -453,13 +453,18 @@ def first_values_query(
 _AGGS = {"sum": S.sum_, "psum": S.psum, "min": S.min_, "max": S.max_, "mean": S.avg}
 
 
-def _atoms(ctx: PlanContext) -> tuple[list[Expr], Callable[[Expr], Expr]]:
-    """The user's offset, weight and trials expressions as columns computed once per row
-    (``indb_a_*``), and a function that rewrites an expression to read those columns."""
+def _atoms(
+    ctx: PlanContext, hoist: Sequence[tuple[str, Expr]] = ()
+) -> tuple[list[Expr], Callable[[Expr], Expr]]:
+    """The user's offset, weight and trials expressions (and the ``hoist`` expressions) as
+    columns computed once per row (``indb_a_*``), and a function that rewrites an expression
+    to read those columns. Engines do not share a subexpression between aggregates, so a
+    per-row value used by several of them is cheaper as a column."""
     mapping: dict[Expr, str] = {}
     cols: list[Expr] = []
     inputs = ctx.inputs
     for name, e in (
+        *hoist,
         (_r("a_off"), inputs.offset),
         (_r("a_w"), inputs.weight),
         (_r("a_fw"), inputs.frequency_weight),
@@ -531,7 +536,11 @@ def fold_query(
     fam = ctx.spec.family
     keys = key_columns(ctx) if keys is None else list(keys)
     _, row_cond = ctx.kept_parts(keys)
-    atoms, rewrite = _atoms(ctx)
+    y_raw = ctx.response()
+    # the response (and its floored copy inside the saturated terms) once per row
+    atoms, rewrite = _atoms(
+        ctx, [(_r("a_yg"), S.greatest(y_raw, S.num(1e-300))), (_r("a_y"), y_raw.copy())]
+    )
     domain_ok = S.and_(row_cond.copy(), *(S.not_(c) for _, c in domain_checks(ctx)))
     ok = S.col(FOLD_OK)
     f = ctx.raw_freq()
@@ -541,8 +550,12 @@ def fold_query(
         off = ctx.raw_offset()
         assert off is not None
         # e = exp(offset) only on rows inside the domain checks: no engine sees the
-        # overflow of an offset that the profile is about to reject
-        extra.append(S.alias(S.case([(ok.copy(), rewrite(S.exp_(off.copy())))]), _r("e")))
+        # overflow of an offset that the profile is about to reject; exp(ln(x)) is x
+        given = ctx.inputs.offset
+        e_row = (
+            S.as_double(given.this.copy()) if isinstance(given, exp.Ln) else S.exp_(off.copy())
+        )
+        extra.append(S.alias(S.case([(ok.copy(), rewrite(e_row))]), _r("e")))
         e = S.col(_r("e"))
         y = S.div(y, e)
         p = fam.variance_power
