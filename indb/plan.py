@@ -552,9 +552,7 @@ def fold_query(
         # e = exp(offset) only on rows inside the domain checks: no engine sees the
         # overflow of an offset that the profile is about to reject; exp(ln(x)) is x
         given = ctx.inputs.offset
-        e_row = (
-            S.as_double(given.this.copy()) if isinstance(given, exp.Ln) else S.exp_(off.copy())
-        )
+        e_row = S.as_double(given.this.copy()) if isinstance(given, exp.Ln) else S.exp_(off.copy())
         extra.append(S.alias(S.case([(ok.copy(), rewrite(e_row))]), _r("e")))
         e = S.col(_r("e"))
         y = S.div(y, e)
