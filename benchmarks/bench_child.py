@@ -97,7 +97,8 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
     fit_recs = [r for r in res.iteration_log if r.phase == "fit"]
     null_recs = [r for r in res.iteration_log if r.phase == "null"]
     sample_recs = [r for r in res.iteration_log if r.phase == "sample"]
-    gram = [(sql, s) for sql, s in engine.calls if "s_0_0" in sql]
+    # IRLS scans: gram_query's and the log-link scan's sums (gamma's later scans have no s_*)
+    gram = [(sql, s) for sql, s in engine.calls if "s_0_0" in sql or '"r_0"' in sql]
     # the sample start's scans come first (on its small table), then the fit's
     n_sample_scans = sum(1 + r.step_halvings for r in sample_recs)
     n_fit_scans = sum(1 + r.step_halvings for r in fit_recs)

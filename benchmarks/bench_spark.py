@@ -170,7 +170,7 @@ class Recorder:
     def note(
         self, sql: str, seconds: float, cpu: float, cols: dict[str, np.ndarray] | None
     ) -> None:
-        if "s_0_0" in sql:
+        if query_kind(sql) == "irls":
             self.last_irls_sql = sql
         rows = values = size = 0
         if cols:
@@ -190,8 +190,8 @@ KINDS = ("profile", "sample", "levels", "irls", "loglik", "edge", "other")
 def query_kind(sql: str) -> str:
     """Which of indb's queries this is, from the aliases its plan builders use."""
     up = sql.upper().replace('"', "").replace("`", "")  # aliases are quoted per dialect
-    if "S_0_0" in up:
-        return "irls"  # gram_query: X'WX, X'Wz and deviance sums
+    if "S_0_0" in up or " AS R_0" in up:
+        return "irls"  # gram_query or log_scan_query: X'WX, X'Wz and deviance sums
     if "N_KEPT" in up:
         return "profile"  # profile_query: counts, NULL exclusions, domain checks, moments
     if "GROUPING" in up:

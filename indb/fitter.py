@@ -18,8 +18,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from indb import logsums, solver
 from indb import plan as P
-from indb import solver
 from indb import sqlexpr as S
 from indb.design import (
     INTERCEPT,
@@ -401,6 +401,11 @@ class _NullTrack:
         self.deviance = math.nan
         self.done = False
 
+    def finish(self, b0: float, deviance: float) -> None:
+        """The model's closed-form answer (:func:`indb.logsums.null_model`)."""
+        if math.isfinite(b0) and math.isfinite(deviance):
+            self.b0, self.deviance, self.done = b0, deviance, True
+
     def update(self, extras: dict[str, float]) -> None:
         dev = extras["nulldev"]
         if math.isfinite(self.dev_old) and not (dev <= self.dev_old * (1 + 1e-9) + 1e-12):
@@ -426,6 +431,7 @@ def _irls(
     start: np.ndarray | None = None,
     null_mu: Expr | None = None,
     null_track: _NullTrack | None = None,
+    off_mean: float = 0.0,
 ) -> tuple[_IrlsState, float | None]:
     """Iterate scans until the deviance settles and the next step is negligible.
 
@@ -436,9 +442,42 @@ def _irls(
     spec = ctx.spec
     cells: list[tuple[str, ...]] | None = None
     null_dev: float | None = None
+    # the log-link scan (no join to factor effects; plan.log_scan_query) where it applies
+    log_scan = P.log_scan_applies(ctx, design)
+    log_cache: logsums.LogCache | None = None
+    power = ctx.spec.family.variance_power
+    off_center = off_mean if math.isfinite(off_mean) else 0.0
 
     def scan(beta: np.ndarray | None) -> solver.Sums:
-        nonlocal cells, null_dev
+        nonlocal cells, null_dev, log_scan, log_cache
+        if beta is not None and log_scan:
+            gram, response, constants = logsums.scan_parts(power, log_cache)
+            tree = P.log_scan_query(
+                ctx,
+                design,
+                beta,
+                gram=gram,
+                response=response,
+                constants=constants,
+                off_center=off_center,
+            )
+            got = logsums.assemble_log_scan(
+                design, run.query(tree), beta, power, log_cache, off_center
+            )
+            wants_null = (null_mu is not None and null_dev is None) or (
+                null_track is not None and not null_track.done
+            )
+            b0, dev0 = logsums.null_model(power, got.cache) if wants_null else (0.0, 0.0)
+            if got.digits_lost <= logsums.MAX_DIGITS_LOST and math.isfinite(dev0):
+                log_cache = got.cache
+                if wants_null and null_track is not None:
+                    null_track.finish(b0, dev0)
+                elif wants_null:
+                    null_dev = dev0
+                return got.sums
+            # the model fits so closely that the split deviance lost too many digits:
+            # per-row deviances from here on (this scan is run again below)
+            log_scan = False
         with_mu = null_mu is not None and null_dev is None
         track = null_track is not None and not null_track.done
         tree = P.gram_query(
@@ -887,7 +926,14 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
     run.phase = "fit"
     track = _NullTrack(null_b0, spec.tol) if null_b0 is not None else None
     state, null_dev = _irls(
-        ctx, design, run, summary.ybar, start=start, null_mu=null_mu, null_track=track
+        ctx,
+        design,
+        run,
+        summary.ybar,
+        start=start,
+        null_mu=null_mu,
+        null_track=track,
+        off_mean=summary.off_mean,
     )
     if track is not None and null_dev is None:
         # the fitted model settled first: finish the intercept-only model on its own
@@ -993,7 +1039,9 @@ def _sample_start(
             run.engine.execute(stmt)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # the sample's own warnings say nothing of the fit
-            state, _ = _irls(sample_ctx, design, run, summary.ybar, null_track=track)
+            state, _ = _irls(
+                sample_ctx, design, run, summary.ybar, null_track=track, off_mean=summary.off_mean
+            )
     except (SpecError, EngineError) as err:
         # the full table decides what is wrong with the model; start it the standard way
         run.sample = f"sample start skipped ({type(err).__name__}); standard start"
