@@ -416,7 +416,7 @@ execution_options = _apply(
         type=click.Choice(["auto", "always", "never"]),
         default=None,
         help="Start IRLS from a fit on a hashed sample of about 100,000 rows (auto: tables "
-        "of 10^6 rows or more)." + _default("sample_start"),
+        "of 2,000,000 rows or more)." + _default("sample_start"),
     ),
     click.option(
         "--memory-limit",

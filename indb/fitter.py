@@ -986,7 +986,7 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
 
 
 SAMPLE_START_ROWS = 100_000  # rows (about) the sample start fits on
-SAMPLE_START_MIN_ROWS = 1_000_000  # sample_start="auto": only tables of this many kept rows
+SAMPLE_START_MIN_ROWS = 2_000_000  # sample_start="auto": only tables of this many kept rows
 SAMPLE_TOL = 1e-3  # the sample's own convergence: its sampling error is far larger
 SAMPLE_ROWS_PER_COEF = 20  # fewer sample rows per coefficient: no sample start
 SAMPLE_MAX_SE = 1.0  # sample standard error (link scale) above which a start is set to 0

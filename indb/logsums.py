@@ -94,7 +94,7 @@ def assemble_log_scan(
             keys=keys,
             gram={f"s_{a}_{b}": _f(cells[f"s_{a}_{b}"]) for a, b in pairs},
             resp={f"r_{a}": _f(cells[f"r_{a}"]) for a in range(m)},
-            consts={k: float(_f(cells[k]).sum()) for k in CONSTANTS},
+            consts=_constants(cells),
             off_center=off_center,
         )
     elif keys != cache.keys:
@@ -143,6 +143,15 @@ def assemble_log_scan(
         cache=cache,
         digits_lost=max(_lost(dev_terms, deviance), _lost(pear_terms, pearson)) if finite else 0.0,
     )
+
+
+def _constants(cells: dict[str, np.ndarray]) -> dict[str, float]:
+    """The first scan's constant sums; without an offset the scan leaves out those that
+    only an offset makes differ: co = cp = noff = 0, n1 = cy, n2 = cw."""
+    out = {k: float(_f(cells[k]).sum()) for k in CONSTANTS if k in cells}
+    if "n1" not in out:
+        out.update(co=0.0, cp=0.0, noff=0.0, n1=out["cy"], n2=out["cw"])
+    return out
 
 
 def _split_beta(

@@ -1302,20 +1302,25 @@ def log_scan_query(
     if response:
         cols.append(S.alias(m_pow(1.0 - p, y.copy()), "r"))
     cols.append(S.alias(m_pow(-p, S.mul(y.copy(), y.copy())), "qq"))
+    offset_sums: tuple[str, ...] = ()
     if constants:
         fpw = S.mul(fw.copy(), pw.copy())
-        u = S.sub(off.copy(), S.num(off_center)) if off_center != 0.0 else off.copy()
-        far = S.not_(S.and_(S.le(u.copy(), S.num(tmax)), S.ge(u.copy(), S.num(-tmax))))
         cols += [
             S.alias(S.mul(fpw.copy(), fam.deviance_h_sql(y.copy())), "hh"),
             S.alias(S.mul(fpw.copy(), y.copy()), "cy"),
             S.alias(fpw.copy(), "cw"),
-            S.alias(S.mul(fpw.copy(), y.copy(), u.copy()), "co"),
-            S.alias(S.mul(fpw.copy(), u.copy()), "cp"),
-            S.alias(_off_power(fpw.copy(), y.copy(), 1.0 - p, u.copy(), tmax), "n1"),
-            S.alias(_off_power(fpw.copy(), None, 2.0 - p, u.copy(), tmax), "n2"),
-            S.alias(S.flag(far), "noff"),
         ]
+        if ctx.raw_offset() is not None:  # without one: co = cp = noff = 0, n1 = cy, n2 = cw
+            offset_sums = LOG_SCAN_CONSTANTS[3:]
+            u = S.sub(off.copy(), S.num(off_center)) if off_center != 0.0 else off.copy()
+            far = S.not_(S.and_(S.le(u.copy(), S.num(tmax)), S.ge(u.copy(), S.num(-tmax))))
+            cols += [
+                S.alias(S.mul(fpw.copy(), y.copy(), u.copy()), "co"),
+                S.alias(S.mul(fpw.copy(), u.copy()), "cp"),
+                S.alias(_off_power(fpw.copy(), y.copy(), 1.0 - p, u.copy(), tmax), "n1"),
+                S.alias(_off_power(fpw.copy(), None, 2.0 - p, u.copy(), tmax), "n2"),
+                S.alias(S.flag(far), "noff"),
+            ]
     weighted = S.select(cols, S.subquery(clamped, "lm"))
     vals = [None, *(S.col(v.alias) for v in design.values[1:])]
     aggs: list[Expr] = []
@@ -1336,7 +1341,7 @@ def log_scan_query(
         S.alias(S.psum(S.col("fw")), "nw"),
     ]
     if constants:
-        for name, src in (("h", "hh"), *((c, c) for c in LOG_SCAN_CONSTANTS[1:])):
+        for name, src in (("h", "hh"), ("cy", "cy"), ("cw", "cw"), *((c, c) for c in offset_sums)):
             aggs.append(S.alias(S.psum(S.col(src)), name))
     groups = [S.col(f.alias) for f in design.factors]
     return S.select(
