@@ -566,7 +566,7 @@ class Report:
             "",
             "Pre-fit = every query and statement that is not an IRLS scan: the one-row "
             "look at the data, the compression check, the profile (or the fold and its "
-            "tables), the levels scan and the edge-probability query; sample start = the "
+            "tables) and the levels scan; sample start = the "
             "seconds to copy the hashed sample, then its IRLS scans on that small table; IRLS "
             "and null-refit scans (on the whole table) come from the iteration log; Python = "
             "wall time minus time inside DuckDB (building and "

@@ -51,8 +51,7 @@ from indb.sqlexpr import Expr
 MAX_HALVINGS = 30
 # halvings (step 1/4) after which a rise too small for the convergence test ends IRLS
 STALL_HALVINGS = 2
-EDGE = 10 * 2.220446049250313e-16  # fitted probabilities numerically 0 or 1 (common practice)
-NEAR_EDGE = 1e-8  # with huge standard errors, this close to 0 or 1 also signals separation
+EDGE, NEAR_EDGE = P.EDGE, P.NEAR_EDGE
 SEPARATION_STD_SE = 100.0
 
 Progress = Callable[[IterationRecord], None] | None
@@ -490,6 +489,8 @@ def _irls(
             null_intercept=null_track.b0 if track else None,
         )
         extra = ("nullw", "nullwz", "nulldev") if track else ("nulldev",) if with_mu else ()
+        if spec.family.unit_mean:
+            extra += ("edge", "near")
         out = solver.assemble(design, run.query(tree), extra)
         cells = out.cell_keys
         if with_mu:
@@ -1142,7 +1143,8 @@ def _result(
         warnings.warn(msg, AliasingWarning, stacklevel=3)
         warn_msgs.append(msg)
     if fam.unit_mean:
-        exact, near = _edge_rows(ctx, design, run, state.beta)
+        # counted by the last IRLS scan, at state.beta (plan.edge_counts)
+        exact, near = int(round(sums.extras["edge"])), int(round(sums.extras["near"]))
         # standard errors on the standardized design: ordinary fits have them well below 1
         # per unit; a coefficient drifting to infinity under separation has them in the
         # hundreds or thousands (common practice: flag huge standard errors, not estimates)
@@ -1232,26 +1234,6 @@ def _path_label(run: _Run, design: Design, sums: solver.Sums) -> str:
         f"compressed: {rows:,} rows folded to {groups:,} distinct design rows "
         f"({rows / max(groups, 1):.0f}x, {secs:.2f} s), then {scan}"
     )
-
-
-def _edge_rows(ctx, design, run, beta) -> tuple[int, int]:
-    """Frequency-weighted rows with fitted probabilities numerically at 0 or 1 (``EDGE``)
-    and near them (``NEAR_EDGE``)."""
-    mean = P._mean_stage(ctx, design, P._eta_from_beta(ctx, design, beta))
-    mu = S.col("mu")
-
-    def count(limit: float) -> Expr:
-        cond = S.and_(
-            S.gt(S.col("pw"), S.num(0.0)), S.or_(S.le(mu, S.num(limit)), S.ge(mu, S.num(1 - limit)))
-        )
-        return S.sum_(S.case([(cond, S.col("fw"))], S.num(0.0)))
-
-    row = run.one_row(
-        S.select(
-            [S.alias(count(EDGE), "edge"), S.alias(count(NEAR_EDGE), "near")], S.subquery(mean, "m")
-        )
-    )
-    return int(round(float(row["edge"] or 0))), int(round(float(row["near"] or 0)))
 
 
 def _log_likelihood(ctx, design, run, beta, sums, summary, dispersion) -> float:

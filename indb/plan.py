@@ -1127,6 +1127,8 @@ def gram_query(
                 ),
             )
         )
+    if ctx.spec.family.unit_mean:
+        extra += edge_counts()
     work = _work_stage(ctx, design, mean, extra, keep)
     vals = [None, *(S.col(v.alias) for v in design.values[1:])]
     aggs: list[Expr] = []
@@ -1149,6 +1151,26 @@ def gram_query(
         aggs.append(S.alias(S.psum(S.col(name)), name.replace("f", "", 1)))
     groups = [S.col(f.alias) for f in design.factors]
     return S.select([*groups, *aggs], S.subquery(work, "w"), group_by=groups)
+
+
+EDGE = 10 * 2.220446049250313e-16  # fitted probabilities numerically 0 or 1 (common practice)
+NEAR_EDGE = 1e-8  # with huge standard errors, this close to 0 or 1 also signals separation
+
+
+def edge_counts() -> list[tuple[str, Expr]]:
+    """Per-row terms counting (frequency-weighted) rows whose fitted probability lies within
+    ``EDGE`` and ``NEAR_EDGE`` of 0 or 1: the separation check rides in every binomial scan,
+    so the last one answers it at the final coefficients without a scan of its own."""
+    mu = S.col("mu")
+
+    def count(limit: float) -> Expr:
+        cond = S.and_(
+            S.gt(S.col("pw"), S.num(0.0)),
+            S.or_(S.le(mu.copy(), S.num(limit)), S.ge(mu.copy(), S.num(1 - limit))),
+        )
+        return S.case([(cond, S.col("fw"))], S.num(0.0))
+
+    return [("fedge", count(EDGE)), ("fnear", count(NEAR_EDGE))]
 
 
 def loglik_query(
