@@ -359,6 +359,38 @@ def fair() -> Frame:
     )
 
 
+def fair_rated() -> Frame:
+    # statsmodels.datasets.fair (6366 respondents) with the two ratings as text levels (the
+    # categorical cells of the compressed route, the sample start and the log-link scan),
+    # years married as an exposure-like offset column and a prior weight derived from the
+    # occupation code (1 + code mod 3).
+    d = _sm_data("fair")
+    return pd.DataFrame(
+        {
+            "rating": d["rate_marriage"].astype(int).astype(str),
+            "religious": d["religious"].astype(int).astype(str),
+            "age": d["age"].astype(float),
+            "educ": d["educ"].astype(float),
+            "years": d["yrs_married"].astype(float),
+            "affairs": d["affairs"].astype(float),
+            "had": (d["affairs"] > 0).astype(int),
+            "children": d["children"].round().astype(int),
+            "wt": 1.0 + (d["occupation"] % 3),
+        }
+    )
+
+
+def duckdb_table(frame: Frame, name: str) -> Any:
+    """A fresh in-memory DuckDB database holding ``frame`` as table ``name``."""
+    import duckdb
+
+    con = duckdb.connect()
+    con.register("indb_test_frame", frame)
+    con.execute(f'CREATE TABLE "{name}" AS SELECT * FROM indb_test_frame')
+    con.unregister("indb_test_frame")
+    return con
+
+
 def fair_counts() -> Frame:
     # statsmodels.datasets.fair collapsed to one row per (rate_marriage, religious, had_affair)
     # with the number of respondents as a frequency weight (40 rows standing for 6366).

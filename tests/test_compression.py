@@ -14,6 +14,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from numpy.testing import assert_allclose
+from reference_cases import design_matrix, duckdb_table, fair_rated
 
 import indb
 
@@ -22,28 +23,7 @@ TOL = 1e-13
 
 @pytest.fixture(scope="module")
 def fair() -> pd.DataFrame:
-    d = sm.datasets.fair.load_pandas().data
-    return pd.DataFrame(
-        {
-            "rating": d["rate_marriage"].astype(int).astype(str),
-            "religious": d["religious"].astype(int).astype(str),
-            "years": d["yrs_married"].astype(float),
-            "affairs": d["affairs"].astype(float),
-            "had": (d["affairs"] > 0).astype(int),
-            "children": d["children"].round().astype(int),
-        }
-    )
-
-
-def _design(frame: pd.DataFrame, res) -> pd.DataFrame:
-    X = pd.DataFrame({"intercept": np.ones(len(frame))})
-    for term in res.terms[1:]:
-        if "=" in term:
-            col, level = term.split("=")
-            X[term] = (frame[col] == level).astype(float)
-        else:
-            X[term] = frame[term].astype(float)
-    return X
+    return fair_rated()
 
 
 CASES = {
@@ -85,9 +65,7 @@ def test_compressed_equals_row_by_row_and_statsmodels(fair: pd.DataFrame, name: 
     opts, smfam, response, with_offset, weight = CASES[name]
     frame = fair.copy()
     frame["years_pos"] = frame["years"] + 1.0
-    con = duckdb.connect()
-    con.register("fair_df", frame)
-    con.execute("CREATE TABLE fair AS SELECT * FROM fair_df")
+    con = duckdb_table(frame, "fair")
     source = f"SELECT rating, religious, years, {response} FROM fair"
     if response == "years_pos":
         source = "SELECT rating, religious, years, years_pos FROM fair"
@@ -108,7 +86,12 @@ def test_compressed_equals_row_by_row_and_statsmodels(fair: pd.DataFrame, name: 
         assert_allclose(folded.log_likelihood, rows.log_likelihood, rtol=1e-10)
     assert folded.n_used == rows.n_used == len(frame)
     # statsmodels GLM on the full rows
-    X = _design(frame, rows)
+    X = design_matrix(
+        frame,
+        ["rating", "religious", "years"],
+        categorical=["rating", "religious"],
+        reference={"rating": "5", "religious": "3"},
+    )[rows.terms]
     kw = {}
     if with_offset:
         kw["offset"] = np.log(frame["years"])
@@ -132,9 +115,7 @@ def _dirty(fair: pd.DataFrame) -> duckdb.DuckDBPyConnection:
     frame.loc[frame.index[5::89], "children"] = np.nan
     frame.loc[frame.index[7::101], "years"] = np.nan
     frame["copies"] = (np.arange(len(frame)) % 3 + 1).astype(float)
-    con = duckdb.connect()
-    con.register("fair_df", frame)
-    con.execute("CREATE TABLE fair AS SELECT * FROM fair_df")
+    con = duckdb_table(frame, "fair")
     return con
 
 

@@ -4,18 +4,18 @@ For a log link and V(mu) = mu^p the IRLS sums split into powers of m = e^(off + 
 cell and a factor e^(k g_c) per cell (indb.logsums). The fits must agree with statsmodels'
 GLM (test-only oracle) and with the per-row scan (``gram_query``, the route every other
 model takes) on the same data. Data: statsmodels.datasets.fair (6366 respondents: two
-categorical ratings, a numeric column and ``yrs_married`` as an exposure-like offset).
+categorical ratings, numeric columns, ``ln(age)`` as the offset and a prior weight derived
+from the occupation code; ``reference_cases.fair_rated``).
 """
 
 from __future__ import annotations
 
-import duckdb
 import numpy as np
 import pandas as pd
 import pytest
 import statsmodels.api as sm
 from numpy.testing import assert_allclose
-from reference_cases import design_matrix
+from reference_cases import design_matrix, duckdb_table, fair_rated
 
 import indb
 from indb import plan
@@ -26,7 +26,7 @@ CASES = {
     "gamma": (
         {"family": "gamma", "link": "log"},
         sm.families.Gamma(sm.families.links.Log()),
-        "yrs",
+        "years",
     ),
     "tweedie_1.5": (
         {"family": "tweedie", "power": 1.5},
@@ -36,38 +36,24 @@ CASES = {
     "inverse_gaussian": (
         {"family": "inverse_gaussian", "link": "log"},
         sm.families.InverseGaussian(sm.families.links.Log()),
-        "yrs",
+        "years",
     ),
     "gaussian_log": (
         {"family": "gaussian", "link": "log"},
         sm.families.Gaussian(sm.families.links.Log()),
-        "yrs",
+        "years",
     ),
 }
 
 
 @pytest.fixture(scope="module")
 def fair() -> pd.DataFrame:
-    d = sm.datasets.fair.load_pandas().data
-    return pd.DataFrame(
-        {
-            "rating": d["rate_marriage"].astype(int).astype(str),
-            "religious": d["religious"].astype(int).astype(str),
-            "educ": d["educ"].astype(float),
-            "age": d["age"].astype(float),
-            "yrs": d["yrs_married"].astype(float),
-            "children": d["children"].round(),
-            "affairs": d["affairs"].astype(float),
-            "wt": 1.0 + (d["occupation"] % 3),  # a prior weight derived from the data
-        }
-    )
+    return fair_rated()
 
 
 def _fits(fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch, **opts):
     """The same fit twice: with the log-link scan, and with it switched off."""
-    con = duckdb.connect()
-    con.register("fair_frame", fair)
-    con.execute("CREATE TABLE fair AS SELECT * FROM fair_frame")
+    con = duckdb_table(fair, "fair")
     calls: list[int] = []
     real = plan.log_scan_query
 

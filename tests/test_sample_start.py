@@ -15,6 +15,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 from numpy.testing import assert_allclose
+from reference_cases import design_matrix, duckdb_table, fair_rated
 
 import indb
 from indb import fitter
@@ -25,35 +26,13 @@ from indb.errors import SpecError
 
 @pytest.fixture(scope="module")
 def fair() -> pd.DataFrame:
-    d = sm.datasets.fair.load_pandas().data
-    return pd.DataFrame(
-        {
-            "rating": d["rate_marriage"].astype(int).astype(str),
-            "religious": d["religious"].astype(int).astype(str),
-            "age": d["age"].astype(float),
-            "educ": d["educ"].astype(float),
-            "years": d["yrs_married"].astype(float),
-            "children": d["children"].round().astype(int),
-            "had": (d["affairs"] > 0).astype(int),
-        }
-    )
+    return fair_rated()
 
 
 @pytest.fixture
 def small_sample(monkeypatch: pytest.MonkeyPatch) -> int:
     monkeypatch.setattr(fitter, "SAMPLE_START_ROWS", 800)
     return 800
-
-
-def _design(frame: pd.DataFrame, terms: list[str]) -> pd.DataFrame:
-    X = pd.DataFrame({"intercept": np.ones(len(frame))})
-    for term in terms[1:]:
-        if "=" in term:
-            col, level = term.split("=")
-            X[term] = (frame[col] == level).astype(float)
-        else:
-            X[term] = frame[term].astype(float)
-    return X
 
 
 CASES = {
@@ -73,9 +52,7 @@ def test_sample_start_reaches_statsmodels_and_the_standard_start(
     fair: pd.DataFrame, small_sample: int, name: str
 ) -> None:
     opts, family, response, offset = CASES[name]
-    con = duckdb.connect()
-    con.register("fair_frame", fair)
-    con.execute("CREATE TABLE fair AS SELECT * FROM fair_frame")
+    con = duckdb_table(fair, "fair")
     common = dict(
         db=con,
         predictors=["rating", "religious", "age", "educ"],
@@ -103,7 +80,9 @@ def test_sample_start_reaches_statsmodels_and_the_standard_start(
     assert sampled.converged and standard.converged
 
     # statsmodels GLM on the same rows (test-only oracle)
-    X = _design(fair, sampled.terms)
+    X = design_matrix(
+        fair, ["rating", "religious", "age", "educ"], categorical=["rating", "religious"]
+    )[sampled.terms]
     kw = {"offset": np.log(fair[offset])} if offset else {}
     ref = sm.GLM(fair[response].astype(float), X, family=family, **kw).fit(tol=1e-13)
     assert_allclose(sampled.params, ref.params, rtol=1e-7, atol=1e-10)
@@ -124,9 +103,7 @@ def test_a_sample_missing_levels_still_starts_the_fit(
     # about 550 rows (9%) leave the 7-respondent cell rating 1 x religious 4 empty or nearly
     # so: its coefficient starts at 0 (aliased, or a standard error above SAMPLE_MAX_SE)
     monkeypatch.setattr(fitter, "SAMPLE_START_ROWS", 800)
-    con = duckdb.connect()
-    con.register("fair_frame", fair)
-    con.execute("CREATE TABLE fair AS SELECT * FROM fair_frame")
+    con = duckdb_table(fair, "fair")
     opts = dict(
         db=con,
         predictors=["rating", "religious", "educ"],
@@ -147,9 +124,7 @@ def test_a_sample_too_small_for_its_coefficients_is_not_used(
     fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     monkeypatch.setattr(fitter, "SAMPLE_START_ROWS", 40)
-    con = duckdb.connect()
-    con.register("fair_frame", fair)
-    con.execute("CREATE TABLE fair AS SELECT * FROM fair_frame")
+    con = duckdb_table(fair, "fair")
     res = indb.fit(
         "fair",
         "children",
@@ -167,9 +142,7 @@ def test_a_sample_too_small_for_its_coefficients_is_not_used(
 
 
 def test_auto_skips_small_tables_and_the_compressed_route(fair: pd.DataFrame) -> None:
-    con = duckdb.connect()
-    con.register("fair_frame", fair)
-    con.execute("CREATE TABLE fair AS SELECT * FROM fair_frame")
+    con = duckdb_table(fair, "fair")
     small = indb.fit("fair", "had", "binomial", db=con, predictors=["age", "educ"])
     assert fair.shape[0] < fitter.SAMPLE_START_MIN_ROWS
     assert "sample" not in small.path
