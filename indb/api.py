@@ -8,10 +8,12 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from indb import writeback as W
-from indb.engine import Engine, connect
+from indb.engines.backends import connect
+from indb.engines.base_engine import Engine
 from indb.errors import ConvergenceWarning, SpecError
 from indb.fitter import fit_spec, plan_spec
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
+from indb.registry_append import open_registry
 from indb.results import FitResult
 from indb.spec import ModelSpec
 
@@ -136,7 +138,7 @@ def fit(
             # a fit that did not converge is recorded but never made live on its own (as
             # retrain's require_converged gate holds it): the live version keeps serving
             hold = promote and not result.converged
-            reg = Registry(engine, registry_schema)
+            reg = open_registry(engine, registry_schema)
             outcome = reg.save(
                 name,
                 result,
@@ -208,13 +210,13 @@ def scoring_sql(
 
     ``source`` defaults to the model's scoring source; ``view_name`` to the model name.
     """
-    from indb.dialect import dialect_for
+    from indb.engines.backends import dialect_for
     from indb.spec import Source
 
     target = dialect_for(dialect)
     engine = connect(db)
     try:
-        reg = Registry(engine, registry_schema)
+        reg = open_registry(engine, registry_schema)
         model = reg.model(name)
         result = reg.load(name, version)
         src = Source.parse(source or model["score_source"])
@@ -258,7 +260,7 @@ def deploy(
     """Write an already fitted result to the registry (and its scoring view) of ``db``."""
     engine = connect(db)
     try:
-        outcome = Registry(engine, registry_schema).save(
+        outcome = open_registry(engine, registry_schema).save(
             name,
             result,
             promote=promote,
@@ -301,4 +303,4 @@ def dry_run(
 def registry(db: Any = None, schema: str = DEFAULT_SCHEMA) -> Registry:
     """A registry handle on ``db`` (the caller closes ``registry.engine`` when done)."""
     engine = db if isinstance(db, Engine) else connect(db)
-    return Registry(engine, schema)
+    return open_registry(engine, schema)

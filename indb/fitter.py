@@ -33,7 +33,7 @@ from indb.design import (
     plan_values,
     resolve_inputs,
 )
-from indb.engine import Engine
+from indb.engines.base_engine import Engine
 from indb.errors import (
     AliasingWarning,
     ConvergenceWarning,

@@ -24,7 +24,7 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.design import RESERVED_PREFIX, Design, Inputs, Value
-from indb.dialect import Dialect
+from indb.engines.base_dialect import Dialect
 from indb.spec import ModelSpec
 from indb.sqlexpr import Expr
 

@@ -18,9 +18,8 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.dialect import Dialect
+from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError
-from indb.links import Link, make_link
 from indb.plan import spline_basis_sql
 from indb.results import FitResult
 from indb.sqlexpr import Expr
@@ -39,14 +38,6 @@ def check_name(value: str, what: str) -> str:
             "starting with a letter"
         )
     return value
-
-
-def link_from_name(name: str) -> Link:
-    """Rebuild a link from its display name (``log``, ``power(0.3)``, ``sqrt``...)."""
-    m = re.fullmatch(r"power\((.+)\)", name)
-    if m:
-        return make_link("power", float(m.group(1)))
-    return make_link(name)
 
 
 @dataclass(frozen=True)
@@ -205,7 +196,7 @@ def scoring_query(
             f"the scoring source already has column(s) {sorted(clash)}; rename them "
             "or choose other output names"
         )
-    link = link_from_name(res.link)
+    link = res.link_object
     eta = eta_sql(res, dialect, include_offset=include_offset)
     cols: list[Expr] = [
         exp.Column(this=exp.Star(), table=S.ident(SRC)),
@@ -251,7 +242,7 @@ def model_inputs(res: FitResult, dialect: Dialect, include_offset: bool = True) 
 
 def mean_expression(res: FitResult, dialect: Dialect) -> Expr:
     """The predicted mean as one expression over the model's input columns (for macros)."""
-    link = link_from_name(res.link)
+    link = res.link_object
     return link.inverse_sql(eta_sql(res, dialect))
 
 

@@ -1,51 +1,108 @@
-"""Engine adapters: connect, run SQL text, describe columns, fetch small results.
+"""DuckDB: dialect (translations of indb's custom nodes) and engine adapter (embedded).
 
-Adapters know nothing about models. They translate driver errors into
-:class:`~indb.errors.EngineError` (keeping the SQL that failed) and run write-back
-statements in one transaction.
+DuckDB is the default backend: :func:`indb.connect` opens it for ``None``, a file path or an
+open ``duckdb`` connection.
 """
 
 from __future__ import annotations
 
 import contextlib
-import math
 import time
-from collections.abc import Iterator, Sequence
-from decimal import Decimal
+from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
+from sqlglot import exp
 
-from indb.dialect import Dialect, DuckDBDialect
-from indb.errors import EngineError, SpecError
+from indb import sqlexpr as S
+from indb.engines.base_dialect import Dialect
+from indb.engines.base_engine import Engine
+from indb.errors import EngineError
+
+# -- the dialect ------------------------------------------------------------------------------
 
 
-class Engine:
-    """Interface every engine adapter implements."""
+class DuckDBDialect(Dialect):
+    """DuckDB: lgamma, isfinite, read_parquet/read_csv_auto; IEEE doubles (1/0 = inf)."""
 
-    dialect: Dialect
+    name = "duckdb"
+    sqlglot_name = "duckdb"
 
-    def execute(self, sql: str) -> list[tuple[Any, ...]]:
-        raise NotImplementedError
+    def __init__(self, compensated_sums: bool = False) -> None:
+        # SUM(DOUBLE) adds in parallel partial sums (error ~ sqrt(n) eps in practice);
+        # KAHAN_SUM is compensated but about twice as slow (see benchmarks/RESULTS.md).
+        self.compensated_sums = compensated_sums
 
-    def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
-        """Run a query and return its columns as numpy arrays (small results only)."""
-        raise NotImplementedError
+    def precise_sum(self, x):
+        if self.compensated_sums:
+            return exp.Anonymous(this="KAHAN_SUM", expressions=[x])
+        return exp.Sum(this=x)
 
-    def describe(self, sql: str) -> list[tuple[str, str]]:
-        """(column name, type name) pairs of a query's result, without running it."""
-        raise NotImplementedError
+    def log_gamma(self, x):
+        return exp.Anonymous(this="LGAMMA", expressions=[x])
 
-    @contextlib.contextmanager
-    def transaction(self) -> Iterator[None]:
-        raise NotImplementedError
-        yield
+    def is_finite(self, x):
+        return exp.Anonymous(this="ISFINITE", expressions=[x])
 
-    def close(self) -> None:
-        pass
+    def quantile(self, x, q):
+        return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
 
-    #: seconds spent in the last execute/fetch (for iteration timing)
-    last_seconds: float = 0.0
+    supports_macros = True
+
+    def materialize(self, name, query):
+        return [f"CREATE OR REPLACE TEMP TABLE {self.quote(name)} AS {self.render(query)}"]
+
+    def row_pick(self, values, fraction):
+        # HASH(...) is a UBIGINT spread over [0, 2^64): below fraction * 2^64 on that share
+        bound = exp.Literal.number(int(fraction * 2.0**64))
+        return exp.LT(this=exp.Anonymous(this="HASH", expressions=values), expression=bound)
+
+    def _qualified(self, schema: str | None, name: str) -> str:
+        return (self.quote(schema) + "." if schema else "") + self.quote(name)
+
+    def create_macro(self, schema, name, params, body):
+        # DuckDB scalar macro; parameters are the model's input columns, so column
+        # references in the body bind to them (https://duckdb.org/docs/sql/statements/create_macro)
+        args = ", ".join(self.quote(p) for p in params)
+        return (
+            f"CREATE OR REPLACE MACRO {self._qualified(schema, name)}({args}) AS "
+            f"{self.render(body)}"
+        )
+
+    def drop_macro(self, schema, name):
+        return f"DROP MACRO IF EXISTS {self._qualified(schema, name)}"
+
+    def existing_objects_query(self, schema, view, macro):
+        # information_schema.tables lists every attached database: keep the current one.
+        # Macros live in duckdb_functions() (https://duckdb.org/docs/sql/meta/duckdb_table_functions)
+        q = super().existing_objects_query(schema, view, macro)
+        q = q.where(S.eq(S.col("table_catalog"), exp.CurrentCatalog()), copy=False)
+        if macro is None:
+            return q
+        macros = S.select(
+            [S.alias(S.text("MACRO"), "kind"), S.alias(S.col("function_name"), "name")],
+            exp.Table(this=exp.Anonymous(this="duckdb_functions", expressions=[])),
+            where=S.and_(
+                S.eq(S.col("database_name"), exp.CurrentCatalog()),
+                S.eq(S.col("schema_name"), S.text(schema) if schema else exp.CurrentSchema()),
+                S.eq(exp.Lower(this=S.col("function_name")), S.text(macro.lower())),
+                S.eq(S.col("function_type"), S.text("macro")),
+            ),
+        )
+        return exp.union(q, macros, distinct=False)
+
+    def file_scan(self, path: str) -> exp.Expression:
+        low = path.lower()
+        if low.endswith((".parquet", ".pq")) or ".parquet" in low:
+            fn = "read_parquet"
+        elif low.endswith((".json", ".ndjson")):
+            fn = "read_json_auto"
+        else:
+            fn = "read_csv_auto"
+        return exp.Table(this=exp.Anonymous(this=fn, expressions=[S.text(path)]))
+
+
+# -- the engine adapter -----------------------------------------------------------------------
 
 
 class DuckDBEngine(Engine):
@@ -201,30 +258,6 @@ def unmasked_columns(columns: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     return out
 
 
-def rows_to_columns(names: Sequence[str], rows: Sequence[Sequence[Any]]) -> dict[str, np.ndarray]:
-    """Column arrays from driver rows, typed like DuckDB's Arrow results.
-
-    Integers become int64 (float64 with NaN when NULLs occur), floats and decimals float64
-    with NaN for NULL, booleans bool, anything else an object array.
-    """
-    out: dict[str, np.ndarray] = {}
-    for i, name in enumerate(names):
-        values = [r[i] for r in rows]
-        kinds = {type(v) for v in values if v is not None}
-        has_null = any(v is None for v in values)
-        if kinds and kinds <= {bool} and not has_null:
-            out[name] = np.array(values, dtype=bool)
-        elif kinds and kinds <= {int} and not has_null:
-            out[name] = np.array(values, dtype=np.int64)
-        elif kinds <= {int, float, Decimal} and not (kinds & {bool}):
-            out[name] = np.array(
-                [math.nan if v is None else float(v) for v in values], dtype=np.float64
-            )
-        else:
-            out[name] = np.array(values, dtype=object)
-    return out
-
-
 def _wrap(err: Exception, sql: str) -> EngineError:
     # The whole message: DuckDB often puts the cause and the fix on later lines (an
     # out-of-memory error names max_temp_directory_size, memory_limit and threads there).
@@ -233,53 +266,7 @@ def _wrap(err: Exception, sql: str) -> EngineError:
     return EngineError(f"DuckDB failed: {msg}", sql=sql)
 
 
-def connect(db: Any = None, **settings: Any) -> Engine:
-    """Open an engine from ``db``.
-
-    ``db`` is None (in-memory DuckDB), a DuckDB file path or connection, an :class:`Engine`,
-    a ``postgresql://`` / ``postgres://`` URL or open ``psycopg`` connection (PostgreSQL),
-    ``spark:MASTER`` such as ``spark:local[2]`` (an in-process Spark driver), ``sc://host:port``
-    (a Spark Connect server) or an open ``SparkSession``. ``settings`` (memory_limit,
-    temp_directory, threads) apply to DuckDB only; ``view_kind`` (temporary | persistent
-    scoring views, see :class:`indb.spark.SparkEngine`) to Spark only.
-    """
-    if isinstance(db, Engine):
-        return db
-    module = type(db).__module__
-    low = db.strip().lower() if isinstance(db, str) else ""
-    is_pg = low.startswith(("postgresql://", "postgres://")) or module.startswith("psycopg")
-    is_spark = low.startswith(("spark:", "sc://")) or (
-        module.startswith("pyspark") and type(db).__name__ == "SparkSession"
-    )
-    view_kind = settings.pop("view_kind", None)
-    if view_kind is not None and not is_spark:
-        raise SpecError(f"view_kind={view_kind!r} applies to Spark only")
-    if is_pg or is_spark:
-        given = sorted(k for k, v in settings.items() if v is not None)
-        if given:
-            raise SpecError(
-                f"engine settings {given} apply to DuckDB only; configure "
-                f"{'PostgreSQL' if is_pg else 'Spark'} on the server or session instead"
-            )
-    if is_pg:
-        from indb.postgres import PostgresEngine
-
-        return PostgresEngine(db)
-    if is_spark:
-        from indb.spark import SparkEngine
-
-        if not isinstance(db, str):
-            return SparkEngine(db, view_kind=view_kind)
-        if low.startswith("sc://"):
-            return SparkEngine(remote=db.strip(), view_kind=view_kind)
-        master = db.strip()[len("spark:") :]
-        if not master:
-            raise SpecError(f"database URL {db!r} needs a Spark master, e.g. spark:local[2]")
-        return SparkEngine(master=master, view_kind=view_kind)
-    if isinstance(db, str) and "://" in db:
-        raise SpecError(
-            f"database URL {db!r} names an engine indb does not support; use "
-            "postgresql://..., spark:local[N], sc://host:port, a DuckDB file path, or omit "
-            "--db for an in-memory DuckDB database"
-        )
+def open_engine(db: Any = None, **settings: Any) -> DuckDBEngine:
+    """The engine factory of the backends table: ``db`` is None, a path or a connection;
+    ``settings`` are :class:`DuckDBEngine`'s keyword arguments."""
     return DuckDBEngine(db, **settings)

@@ -13,8 +13,8 @@ import statsmodels.datasets as smd
 from numpy.testing import assert_allclose
 
 import indb
+from indb.engines.spark import SparkEngine
 from indb.errors import EngineError, UnsupportedError
-from indb.spark import SparkEngine
 
 
 @pytest.fixture

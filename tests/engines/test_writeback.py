@@ -217,7 +217,7 @@ def spark_ships(spark_local: Any, tmp_path: Path) -> tuple[Any, pd.DataFrame, Pa
 
 @pytest.mark.slow
 def test_spark_temporary_views_and_append_only_registry(spark_ships: Any) -> None:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     session, frame, _, _ = spark_ships
     engine = SparkEngine(session)  # the caller's session: temporary scoring views
@@ -274,7 +274,7 @@ def test_spark_temporary_views_and_append_only_registry(spark_ships: Any) -> Non
 
 @pytest.mark.slow
 def test_spark_persistent_views_and_a_failed_promotion(spark_ships: Any) -> None:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     session, frame, train, _ = spark_ships
     engine = SparkEngine(session, view_kind="persistent")
