@@ -319,15 +319,18 @@ def _refit_asking_for_intervals(db: Any, kw: dict[str, Any]) -> FitResult:
 
 def test_postgres_unchanged_refit_applies_intervals(pg_url: str, pg_con: Any) -> None:
     frame = ships()
-    pg_load(pg_con, "ships", frame)
+    # tables and views of its own: the test database is shared by this module's tests
+    pg_load(pg_con, "ships_refit", frame)
     schema = f"reg_{uuid.uuid4().hex[:8]}"
-    kw = {"name": "ships_i", "registry_schema": schema}
+    kw = {"source": "ships_refit", "name": "ships_i", "registry_schema": schema}
     r2 = _refit_asking_for_intervals(pg_url, kw)
     assert "score_se_eta" in pg_columns(pg_con, "ships_i")
     scores = pg_frame(pg_con, "SELECT * FROM ships_i ORDER BY row_id")
     assert_allclose(scores["score_mean"].to_numpy(float), oracle_mean(frame, r2), rtol=PREDICT_RTOL)
     model = pg_frame(pg_con, f'SELECT live_version, intervals FROM "{schema}"."model"')
     assert model.values.tolist() == [[2, True]]
+    pg_con.execute("DROP VIEW ships_i")
+    pg_con.execute("DROP TABLE ships_refit")
 
 
 @pytest.mark.slow
