@@ -3,7 +3,7 @@
 Oracles: scipy (``special.expit``/``logit``/``ndtr``/``ndtri``, ``stats.norm``,
 ``stats.logistic``, ``stats.cauchy``, ``stats.gumbel_l``), closed-form formulas evaluated with
 Python's ``math`` module, and ``statsmodels.genmod.families.links`` (a test-only second
-implementation). The SQL forms run on a fresh in-memory DuckDB per test (see
+implementation). The SQL forms run on an in-memory DuckDB (see
 ``unit_support.evaluate``).
 """
 

@@ -1,13 +1,16 @@
 """Shared helpers for the unit tests: evaluate indb's per-row SQL forms on a real DuckDB.
 
-Each call opens a fresh in-memory DuckDB through the public :func:`indb.connect`, feeds the
-grid in as a ``VALUES`` list of double literals (``sqlexpr.num`` writes every double so it
-round-trips exactly), renders the expressions with the engine's own dialect and fetches the
-results as numpy arrays, in grid order.
+The grid goes in as a ``VALUES`` list of double literals (``sqlexpr.num`` writes every double
+so it round-trips exactly); the expressions are rendered by the engine's own dialect and the
+results fetched as numpy arrays, in grid order. The queries read no table and write nothing,
+so one in-memory DuckDB opened through the public :func:`indb.connect` serves every call
+(opening one costs ~30 ms, which per call would be most of the unit tests' time).
 """
 
 from __future__ import annotations
 
+import atexit
+import functools
 from collections.abc import Callable, Mapping
 
 import numpy as np
@@ -17,10 +20,17 @@ import indb
 from indb import sqlexpr as S
 
 
+@functools.cache
+def _engine() -> indb.Engine:
+    engine = indb.connect()
+    atexit.register(engine.close)
+    return engine
+
+
 def evaluate(
     grid: Mapping[str, np.ndarray], exprs: Mapping[str, Callable[..., exp.Expression]]
 ) -> dict[str, np.ndarray]:
-    """Evaluate SQL expressions row by row over ``grid`` on a fresh in-memory DuckDB.
+    """Evaluate SQL expressions row by row over ``grid`` on an in-memory DuckDB.
 
     Parameters
     ----------
@@ -42,11 +52,8 @@ def evaluate(
     )
     selected = [S.alias(make(*(S.col(n) for n in names)), out) for out, make in exprs.items()]
     tree = S.select(selected, source).order_by(S.col("i"), copy=False)
-    engine = indb.connect()
-    try:
-        got = engine.fetch_columns(engine.dialect.render(tree))
-    finally:
-        engine.close()
+    engine = _engine()
+    got = engine.fetch_columns(engine.dialect.render(tree))
     return {k: np.asarray(v, dtype=float) for k, v in got.items()}
 
 
