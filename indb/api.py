@@ -7,42 +7,64 @@ import warnings
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from indb import options as O
 from indb import writeback as W
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
 from indb.errors import ConvergenceWarning, SpecError
 from indb.fitter import fit_spec, plan_spec
+from indb.options import Kind
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
 from indb.registry_append import open_registry
 from indb.results import FitResult
 from indb.spec import ModelSpec
 
-SPEC_OPTIONS = (
-    "trials",
-    "offset",
-    "weight",
-    "frequency_weight",
-    "power",
-    "theta",
-    "link_power",
-    "intercept",
-    "predictors",
-    "exclude",
-    "categorical",
-    "reference",
-    "interactions",
-    "splines",
-    "on_null",
-    "tol",
-    "max_iter",
-    "strict",
-    "max_levels",
-    "confidence",
-    "start",
-    "compress",
-    "sample_start",
-)
-ENGINE_OPTIONS = ("memory_limit", "temp_directory", "threads")
+# The options of fit(), each with the kind of value it takes (indb.options): the Python
+# call, `dry_run` and the spec file's tables are all checked against these declarations.
+FIT_ARGUMENTS: dict[str, Kind] = {
+    "source": O.TEXT,
+    "response": O.TEXT,
+    "family": O.TEXT,
+    "link": O.TEXT,
+}
+SPEC_OPTIONS: dict[str, Kind] = {
+    "trials": O.TEXT,
+    "offset": O.TEXT,
+    "weight": O.TEXT,
+    "frequency_weight": O.TEXT,
+    "power": O.NUMBER,
+    "theta": O.NUMBER,
+    "link_power": O.NUMBER,
+    "intercept": O.BOOLEAN,
+    "predictors": O.NAMES,
+    "exclude": O.NAMES,
+    "categorical": O.NAMES,
+    "reference": O.LEVELS,
+    "interactions": O.COLUMN_GROUPS,
+    "splines": O.KNOTS,
+    "on_null": O.TEXT,
+    "tol": O.NUMBER,
+    "max_iter": O.WHOLE,
+    "strict": O.BOOLEAN,
+    "max_levels": O.WHOLE,
+    "confidence": O.NUMBER,
+    "start": O.VALUES,
+    "compress": O.TEXT,
+    "sample_start": O.TEXT,
+}
+DEPLOY_OPTIONS: dict[str, Kind] = {
+    "name": O.TEXT,
+    "view_schema": O.TEXT,
+    "score_source": O.TEXT,
+    "intervals": O.BOOLEAN,
+    "registry_schema": O.TEXT,
+}
+ENGINE_OPTIONS: dict[str, Kind] = {
+    "memory_limit": O.TEXT,
+    "temp_directory": O.TEXT,
+    "threads": O.WHOLE,
+}
+FIT_OPTIONS = {**FIT_ARGUMENTS, **SPEC_OPTIONS, **DEPLOY_OPTIONS, **ENGINE_OPTIONS}
 
 
 def fit(
@@ -100,6 +122,8 @@ def fit(
         Coefficients on the original scale with standard errors, fit statistics and the
         iteration log.
     """
+    # every parameter is a local here, before any other name is bound
+    O.check_options(locals(), FIT_OPTIONS)
     spec = ModelSpec.build(
         source,
         response,
@@ -258,6 +282,7 @@ def deploy(
     registry_schema: str = DEFAULT_SCHEMA,
 ) -> FitResult:
     """Write an already fitted result to the registry (and its scoring view) of ``db``."""
+    O.check_options(locals(), DEPLOY_OPTIONS)
     engine = connect(db)
     try:
         outcome = open_registry(engine, registry_schema).save(
@@ -288,9 +313,9 @@ def dry_run(
     spec_kw = {k: v for k, v in options.items() if k in SPEC_OPTIONS}
     unknown = sorted(set(options) - set(SPEC_OPTIONS) - set(ENGINE_OPTIONS))
     if unknown:
-        from indb.errors import SpecError
-
         raise SpecError(f"unknown option(s) {unknown}")
+    given = {"source": source, "response": response, "family": family, "link": link}
+    O.check_options({**given, **options}, {**FIT_ARGUMENTS, **SPEC_OPTIONS, **ENGINE_OPTIONS})
     spec = ModelSpec.build(source, response, family, link, **spec_kw)
     engine = connect(db, **{k: v for k, v in options.items() if k in ENGINE_OPTIONS})
     try:

@@ -515,14 +515,16 @@ def _check_database_path(
     *,
     may_create: bool = False,
     hint: str = "or leave --db out to read Parquet/CSV files in an in-memory database",
+    option: str = "--db",
 ) -> None:
-    # DuckDB creates a missing database file on connect; for `fit` that only turns a typo in
-    # --db into an empty database and a confusing "table does not exist" later. A named fit
-    # of a Parquet/CSV file may create the file: it is where the model is written.
+    # DuckDB creates a missing database file on connect; for `fit`, `run` and `retrain` that
+    # only turns a typo in the path into an empty database and a confusing "table does not
+    # exist" later. A named fit of a Parquet/CSV file may create the file: it is where the
+    # model is written. ``option`` names where the path was given.
     if _is_memory(db) or _is_url(db) or may_create:
         return
     if not Path(db).exists():
-        raise SpecError(f"--db {db!r}: no such database file; check the path, {hint}")
+        raise SpecError(f"{option} {db!r}: no such database file; check the path, {hint}")
 
 
 def _fit_arguments(options: dict[str, Any]) -> dict[str, Any]:
@@ -715,6 +717,13 @@ def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
     spec = load_spec_file(path)
     _ = spec.name  # raises the spec file's "needs a model name" error before any work
     db = spec.engine.get("db")
+    # as for `fit --name`: only a Parquet/CSV source may start a new database file
+    _check_database_path(
+        db,
+        may_create=Source.parse(spec.model["source"]).kind == "file",
+        hint="or make [model] source a Parquet/CSV path to start a new database",
+        option=f"spec file {path}: [engine] db",
+    )
     if dry_run:
         # A dry run writes nothing, not even a new empty database file: without the file
         # there is no registry and no live version, so plan against an in-memory database.
@@ -725,8 +734,8 @@ def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
         return spec
     if _is_memory(db):
         raise SpecError(
-            f"{path}: [engine] has no db; `indb {command}` records the model in a database, "
-            'so set db = "models.duckdb" (relative to the spec file)'
+            f"spec file {path}: [engine] has no db; `indb {command}` records the model in a "
+            'database, so set db = "models.duckdb" (relative to the spec file)'
         )
     return spec
 

@@ -151,8 +151,10 @@ class Registry:
     ) -> SaveOutcome:
         """Record ``result`` as the next version of ``name`` and (by default) make it live.
 
-        An identical spec on unchanged data (same spec hash and data fingerprint as the live
-        version) keeps the live version unless ``force_new``.
+        An identical spec on unchanged data (same spec hash and data fingerprint as the
+        newest version) keeps that version unless ``force_new`` or a deployment setting
+        (``view_schema``, ``score_source``, ``intervals``; None keeps the model's own) differs
+        from the model's: then a new version is recorded so the change takes effect.
         """
         W.check_name(name, "model name")
         if view_schema is not None:
@@ -179,7 +181,10 @@ class Registry:
             same = latest["spec_hash"] == h and json.loads(latest["fingerprint_json"]) == _jsonable(
                 result.fingerprint
             )
-            if same:
+            # a changed view schema, scoring source or intervals flag is not "unchanged":
+            # keeping the version would silently drop the request (it is applied below,
+            # as for any new version, by the same path that deploys and records it)
+            if same and not _deployment_changes(current, view_schema, score_source, intervals):
                 return SaveOutcome(
                     name,
                     int(latest["version"]),
@@ -570,6 +575,19 @@ def _conflict(err: EngineError, name: str, version: int) -> Exception:
             f"or the database is locked); nothing was written by this run — rerun it: {err}"
         )
     return err
+
+
+def _deployment_changes(
+    current: dict[str, Any], view_schema: str | None, score_source: str | None, intervals: Any
+) -> list[str]:
+    """The deployment settings a save asks to change on a model (None keeps the current)."""
+    asked = {"view_schema": view_schema, "score_source": score_source, "intervals": intervals}
+    return [
+        key
+        for key, value in asked.items()
+        if value is not None
+        and (bool(value) != bool(current[key]) if key == "intervals" else value != current[key])
+    ]
 
 
 def _model_updates(row: dict[str, Any]) -> dict[str, Any]:

@@ -304,6 +304,50 @@ def test_spark_persistent_views_and_a_failed_promotion(spark_ships: Any) -> None
     assert_allclose(again["score_mean"].to_numpy(float), mean, rtol=0)
 
 
+def _refit_asking_for_intervals(db: Any, kw: dict[str, Any]) -> FitResult:
+    """Fit, then the same spec on the same data with intervals: a new version that serves
+    them (an unchanged refit used to keep version 1 and drop the request), then unchanged."""
+    r1 = fit_ships(db, **kw)
+    assert fit_ships(db, **kw).deployment["created"] is False
+    r2 = fit_ships(db, intervals=True, **kw)
+    assert (r2.deployment["version"], r2.deployment["created"]) == (2, True)
+    assert_allclose(r2.params, r1.params, rtol=0)  # same spec, same data, same estimate
+    again = fit_ships(db, intervals=True, **kw)
+    assert (again.deployment["version"], again.deployment["created"]) == (2, False)
+    return r2
+
+
+def test_postgres_unchanged_refit_applies_intervals(pg_url: str, pg_con: Any) -> None:
+    frame = ships()
+    # tables and views of its own: the test database is shared by this module's tests
+    pg_load(pg_con, "ships_refit", frame)
+    schema = f"reg_{uuid.uuid4().hex[:8]}"
+    kw = {"source": "ships_refit", "name": "ships_i", "registry_schema": schema}
+    r2 = _refit_asking_for_intervals(pg_url, kw)
+    assert "score_se_eta" in pg_columns(pg_con, "ships_i")
+    scores = pg_frame(pg_con, "SELECT * FROM ships_i ORDER BY row_id")
+    assert_allclose(scores["score_mean"].to_numpy(float), oracle_mean(frame, r2), rtol=PREDICT_RTOL)
+    model = pg_frame(pg_con, f'SELECT live_version, intervals FROM "{schema}"."model"')
+    assert model.values.tolist() == [[2, True]]
+    pg_con.execute("DROP VIEW ships_i")
+    pg_con.execute("DROP TABLE ships_refit")
+
+
+@pytest.mark.slow
+def test_spark_unchanged_refit_applies_intervals(spark_ships: Any) -> None:
+    from indb.spark import SparkEngine
+
+    session, frame, _, _ = spark_ships
+    engine = SparkEngine(session)
+    schema = f"reg_{uuid.uuid4().hex[:8]}"
+    r2 = _refit_asking_for_intervals(engine, {"name": "ships_i", "registry_schema": schema})
+    scores = spark_frame(session, "SELECT * FROM ships_i").sort_values("row_id")
+    assert "score_se_eta" in scores.columns
+    assert_allclose(scores["score_mean"].to_numpy(float), oracle_mean(frame, r2), rtol=PREDICT_RTOL)
+    model = spark_frame(session, f"SELECT live_version, intervals FROM {schema}.model")
+    assert model.values.tolist() == [[2, True]]
+
+
 def test_view_kind_is_checked() -> None:
     with pytest.raises(SpecError, match="view_kind 'global' is not one of temporary, persistent"):
         indb.connect("spark:local[1]", view_kind="global")
