@@ -335,7 +335,7 @@ def test_postgres_unchanged_refit_applies_intervals(pg_url: str, pg_con: Any) ->
 
 @pytest.mark.slow
 def test_spark_unchanged_refit_applies_intervals(spark_ships: Any) -> None:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     session, frame, _, _ = spark_ships
     engine = SparkEngine(session)
