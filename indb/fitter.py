@@ -44,7 +44,7 @@ from indb.errors import (
     UnsupportedError,
 )
 from indb.families import NegativeBinomial, Poisson
-from indb.results import Coefficient, FitResult, IterationRecord
+from indb.results import COVARIANCE_MAX_TERMS, Coefficient, FitResult, IterationRecord
 from indb.spec import ModelSpec, Source
 from indb.sqlexpr import Expr
 
@@ -721,6 +721,7 @@ def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
     )
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
+    solver.check_size(design)
     return ctx, design, summary, n_total, n_kept, by_col
 
 
@@ -1069,7 +1070,7 @@ def _sample_start(
     phi = 1.0
     if not ctx.spec.family.dispersion_fixed:
         phi = state.sums.pearson / max(state.sums.n_weighted - int((~sol.aliased).sum()), 1.0)
-    se = np.sqrt(np.clip(np.diag(sol.inv_info) * phi, 0.0, None))
+    se = np.sqrt(np.clip(sol.inv_info.diagonal() * phi, 0.0, None))
     beta = np.where(se < SAMPLE_MAX_SE, sol.beta, 0.0)
     scans = sum(1 + r.step_halvings for r in run.log[log_size:])
     run.sample = (state.sums.n, scans, time.perf_counter() - t0)
@@ -1084,8 +1085,7 @@ def _start_from(spec: ModelSpec, design: Design, summary: _Summary) -> np.ndarra
     # start values only steer the first step, never the answer.
     given = dict(spec.start)
     orig = np.array([given.get(t, 0.0) for t in design.terms])
-    t = solver.back_transform(design)
-    return np.linalg.solve(t, orig)
+    return solver.standardize(design, orig)
 
 
 def _result(
@@ -1115,9 +1115,12 @@ def _result(
     t = solver.back_transform(design)
     beta_std = np.where(sol.aliased, 0.0, state.beta)
     est = t @ beta_std
-    cov = dispersion * (t @ sol.inv_info @ t.T)
+    # the whole covariance only while it is small; standard errors need its diagonal only
+    var, cov = solver.original_scale(
+        sol.inv_info, t, dispersion, full=design.p <= COVARIANCE_MAX_TERMS
+    )
     inf = solver.wald(
-        est, cov, sol.aliased, None if fam.dispersion_fixed else df_resid, spec.confidence
+        est, var, sol.aliased, None if fam.dispersion_fixed else df_resid, spec.confidence, cov
     )
     coefs = tuple(
         Coefficient(
@@ -1148,7 +1151,7 @@ def _result(
         # standard errors on the standardized design: ordinary fits have them well below 1
         # per unit; a coefficient drifting to infinity under separation has them in the
         # hundreds or thousands (common practice: flag huge standard errors, not estimates)
-        std_se = np.sqrt(np.clip(np.diag(sol.inv_info), 0.0, None))
+        std_se = np.sqrt(np.clip(sol.inv_info.diagonal(), 0.0, None))
         drifting = near > 0 and float(std_se.max(initial=0.0)) > SEPARATION_STD_SE
         if exact or drifting or (near and not state.converged):
             count = exact or near
@@ -1197,7 +1200,7 @@ def _result(
         family_params=fam.params(),
         excluded_by_column=by_col,
         aliased_terms=aliased_terms,
-        condition_number=solver.condition_number(sums.xtwx, sol.aliased),
+        condition_number=solver.condition_number(sums.xtwx, sol),
         warnings=tuple(warn_msgs),
         confidence=spec.confidence,
         spec=spec.to_dict(),

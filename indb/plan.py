@@ -23,7 +23,15 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.design import RESERVED_PREFIX, Design, Inputs, Value
+from indb.design import (
+    RESERVED_PREFIX,
+    Design,
+    Inputs,
+    Value,
+    cell_columns,
+    column_groups,
+    level_codes,
+)
 from indb.dialect import Dialect
 from indb.spec import ModelSpec
 from indb.sqlexpr import Expr
@@ -824,20 +832,18 @@ def _cell_table(
     """Per observed cell (one level of every factor) the summed factor coefficients, one
     column per value they multiply; cells whose coefficients are all 0 are left out."""
     arr = np.array(cells, dtype=object).reshape(len(cells), len(design.factors))
-    fcols = [j for j, c in enumerate(design.columns) if c.factors]
-    vals = sorted({design.columns[j].value for j in fcols})
+    codes = [level_codes(f.levels, arr[:, i]) for i, f in enumerate(design.factors)]
+    groups = column_groups(design)
+    vals = sorted({g.value for g in groups if g.factors})
     vpos = {v: i for i, v in enumerate(vals)}
     coef = np.zeros((len(cells), len(vals)))
-    for j in fcols:
-        c = design.columns[j]
-        mask = np.ones(len(cells), dtype=bool)
-        for fi, lv in zip(c.factors, c.levels, strict=True):
-            mask &= arr[:, fi] == lv
-        coef[mask, vpos[c.value]] += float(beta[j])
+    for g, where in zip(groups, cell_columns(design, codes), strict=True):
+        if g.factors:
+            hit = where >= 0
+            coef[hit, vpos[g.value]] += beta[where[hit]]
     rows = [
         (tuple(str(x) for x in arr[i]), coef[i].tolist())
-        for i in range(len(cells))
-        if np.any(coef[i] != 0.0)
+        for i in np.flatnonzero(np.any(coef != 0.0, axis=1))
     ]
     return vals, rows
 

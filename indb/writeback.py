@@ -22,11 +22,13 @@ from indb.dialect import Dialect
 from indb.errors import SpecError
 from indb.links import Link, make_link
 from indb.plan import spline_basis_sql
-from indb.results import FitResult
+from indb.results import STORED_COVARIANCE_MAX_TERMS, FitResult
 from indb.sqlexpr import Expr
 
 SRC = "indb_src"
-MAX_SE_TERMS = 150  # the standard-error quadratic form has p^2 terms; beyond this it is refused
+#: the standard-error quadratic form has p^2 terms; beyond this many coefficients it is
+#: refused (and the registry stores no covariance, results.STORED_COVARIANCE_MAX_TERMS)
+MAX_SE_TERMS = STORED_COVARIANCE_MAX_TERMS
 NAME_RE = re.compile(r"[A-Za-z][A-Za-z0-9_]{0,62}")
 
 
@@ -166,9 +168,11 @@ def se_eta_sql(res: FitResult) -> Expr:
     """Standard error of the linear predictor: sqrt(x' V x) as a SQL quadratic form."""
     terms = _design_terms(res)
     p = len(terms)
-    if p > MAX_SE_TERMS:
+    if p > MAX_SE_TERMS or res.covariance is None:
         raise SpecError(
-            f"standard errors in SQL are limited to {MAX_SE_TERMS} coefficients; this model has {p}"
+            f"intervals (score_se_eta and the confidence limits) are available for models of "
+            f"at most {MAX_SE_TERMS} coefficients; this model has {p}: score without "
+            "intervals (leave out --intervals / intervals=True) or merge levels"
         )
     cov = np.nan_to_num(np.asarray(res.covariance, dtype=float), nan=0.0)
     xs: list[Expr] = []
