@@ -427,8 +427,23 @@ def write_report(
     print(report.text_table())
     for line in report.sanity_lines():
         print(line)
+    text = report.markdown()
+    kept = _levels_section(out)
     with open(out, "w") as fh:
-        fh.write(report.markdown())
+        fh.write(text if not kept else text.rstrip("\n") + "\n\n" + kept)
+
+
+def _levels_section(path: str) -> str:
+    """The section ``bench_levels.py`` wrote into ``path`` (kept across rewrites)."""
+    from bench_levels import BEGIN, END
+
+    if not os.path.exists(path):
+        return ""
+    with open(path) as fh:
+        old = fh.read()
+    if BEGIN not in old or END not in old:
+        return ""
+    return BEGIN + old.split(BEGIN, 1)[1].split(END, 1)[0] + END + "\n"
 
 
 def report_only(raw: str, out: str) -> int:

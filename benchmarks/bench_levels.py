@@ -20,8 +20,11 @@ the sum of every query's time as the DuckDB adapter measures it (``Engine.last_s
 everything else in the ``indb.fit`` call (building SQL, assembling and solving X'WX,
 inference) is counted as "Python".
 
-The results go into ``benchmarks/RESULTS.md`` between the markers of the "Many levels"
-section, which ``bench_fit.py`` keeps when it rewrites the rest of the file.
+Every measurement is kept in ``benchmarks/data/levels_results.json`` (by label and case) and
+the whole set goes into ``benchmarks/RESULTS.md`` between the markers of the "Many levels"
+section, which ``bench_fit.py`` keeps when it rewrites the rest of the file. ``--label``
+names the code measured (``--indb-src`` with ``--label "dense solver (f64324f)"`` measured
+the code before the block solver).
 """
 
 from __future__ import annotations
@@ -206,15 +209,25 @@ def run_case(args: argparse.Namespace, levels: int, rows: int) -> dict[str, Any]
         "save": args.save and f"{args.save}_{levels}_{rows}.npz",
     }
     env = dict(os.environ, PYTHONPATH=args.indb_src or ROOT)
+    load = os.getloadavg()[0]
     t0 = time.perf_counter()
-    proc = subprocess.run(
-        [sys.executable, os.path.abspath(__file__), "--child", json.dumps(job)],
-        capture_output=True,
-        text=True,
-        env=env,
-        timeout=args.timeout,
-        check=False,
-    )
+    try:
+        proc = subprocess.run(
+            [sys.executable, os.path.abspath(__file__), "--child", json.dumps(job)],
+            capture_output=True,
+            text=True,
+            env=env,
+            timeout=args.timeout,
+            check=False,
+        )
+    except subprocess.TimeoutExpired:
+        return {
+            "status": f"timeout (> {args.timeout:.0f} s)",
+            "seconds": None,
+            "levels": levels,
+            "rows": rows,
+            "load": load,
+        }
     for line in proc.stdout.splitlines():
         if line.startswith(MARK):
             out = json.loads(line[len(MARK) :])
@@ -225,7 +238,7 @@ def run_case(args: argparse.Namespace, levels: int, rows: int) -> dict[str, Any]
             "status": f"failed (exit {proc.returncode}): {tail[:200]}",
             "seconds": time.perf_counter() - t0,
         }
-    out.update(levels=levels, rows=rows)
+    out.update(levels=levels, rows=rows, load=load)
     return out
 
 
@@ -236,44 +249,66 @@ def _f(v: Any, fmt: str = ".3g") -> str:
     return "" if v is None else format(v, fmt)
 
 
-def section(results: list[dict[str, Any]], command: str) -> str:
-    when = _dt.datetime.now().strftime("%Y-%m-%d %H:%M")
+def _commit() -> str:
     try:
-        commit = subprocess.run(
+        out = subprocess.run(
             ["git", "-C", ROOT, "rev-parse", "--short", "HEAD"],
             capture_output=True,
             text=True,
             check=False,
         ).stdout.strip()
     except OSError:
-        commit = "?"
+        out = ""
+    return out or "?"
+
+
+def section(results: list[dict[str, Any]]) -> str:
+    """The Markdown section: every stored measurement, by case, then by code measured."""
     lines = [
         BEGIN,
         "## Many levels (`benchmarks/bench_levels.py`)",
         "",
-        f"Measured {when} on {platform.machine()}, {os.cpu_count()} cores, repository at "
-        f"commit {commit or '?'}, by `{command}`. Poisson with offset ln(exposure) on "
-        "`big` (the levels below) + `region` (50 levels) + `x1` + `x2`; invented rows "
-        "(see the script's docstring). Engine = the summed time of every query; Python = "
-        "the rest of the `indb.fit` call (SQL building, assembling and solving X'WX, "
-        "inference). Peak = the fit process's peak resident memory (VmHWM), interpreter "
-        "and libraries included.",
+        "Poisson with offset ln(exposure) on `big` (the levels below) + `region` (50 levels) "
+        "+ `x1` + `x2`, invented rows (see `benchmarks/README.md`); each fit in its own "
+        f"process on {platform.machine()}, {os.cpu_count()} cores, address space capped. "
+        "wall / CPU s: the `indb.fit` call (CPU: user + system of the process, DuckDB's "
+        "threads included); engine s: every query's time as the adapter measures it; "
+        "Python s: wall minus engine (SQL building, assembling and solving X'WX, inference); "
+        "peak: the process's peak resident memory (VmHWM, about 150 MiB of it the "
+        "interpreter and libraries); load: the 1-minute load average at the start (the "
+        "machine is shared: above 2, other work competed for the cores and wall times grow, "
+        "CPU seconds much less).",
         "",
-        "| levels | rows | p | status | fit s | engine s | Python s | queries | iterations "
-        "| peak MiB |",
-        "|---|---|---|---|---|---|---|---|---|---|",
+        "| code measured | levels | rows | p | status | wall s | CPU s | engine s | Python s "
+        "| iterations | peak MiB | load | when |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|",
     ]
-    for r in results:
+    for r in sorted(results, key=lambda r: (r["rows"], r["levels"], r.get("when", ""))):
         eng = r.get("engine_seconds")
-        py = r["seconds"] - eng if eng is not None else None
+        py = r["seconds"] - eng if eng is not None and r.get("seconds") is not None else None
         peak = r["peak_kib"] / 1024 if r.get("peak_kib") else None
         lines.append(
-            f"| {r['levels']:,} | {r['rows']:,} | {_f(r.get('p'), ',')} | {r['status']} | "
-            f"{_f(r.get('seconds'))} | {_f(eng)} | {_f(py)} | {_f(r.get('queries'), 'd')} | "
-            f"{_f(r.get('iterations'), 'd')} | {_f(peak, '.0f')} |"
+            f"| {r.get('label', '')} | {r['levels']:,} | {r['rows']:,} | {_f(r.get('p'), ',')} "
+            f"| {r['status']} | {_f(r.get('seconds'))} | {_f(r.get('cpu_seconds'))} | "
+            f"{_f(eng)} | {_f(py)} | {_f(r.get('iterations'), 'd')} | {_f(peak, '.0f')} | "
+            f"{_f(r.get('load'), '.1f')} | {r.get('when', '')} |"
         )
     lines.append(END)
     return "\n".join(lines) + "\n"
+
+
+def store(path: str, new: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Add ``new`` to the stored measurements (replacing one of the same label and case)."""
+    old: list[dict[str, Any]] = []
+    if os.path.exists(path):
+        with open(path) as fh:
+            old = json.load(fh)
+    keys = {(r["label"], r["levels"], r["rows"]) for r in new}
+    kept = [r for r in old if (r["label"], r["levels"], r["rows"]) not in keys]
+    out = kept + new
+    with open(path, "w") as fh:
+        json.dump(out, fh, indent=1)
+    return out
 
 
 def write_section(path: str, text: str) -> None:
@@ -308,28 +343,37 @@ def main() -> None:
     )
     ap.add_argument("--timeout", type=float, default=1800.0, help="seconds per fit")
     ap.add_argument("--indb-src", default=None, help="import indb from this directory")
+    ap.add_argument(
+        "--label", default=None, help="name of the code measured (default: indb at <commit>)"
+    )
     ap.add_argument("--save", default=None, help="save estimates to SAVE_<levels>_<rows>.npz")
     ap.add_argument("--out", default=os.path.join(HERE, "RESULTS.md"))
-    ap.add_argument("--no-write", action="store_true", help="print only")
+    ap.add_argument("--no-write", action="store_true", help="measure and print only")
+    ap.add_argument(
+        "--report-only", action="store_true", help="rewrite the section from stored results"
+    )
     ap.add_argument("--child", default=None, help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.child:
         print(MARK + json.dumps(child(json.loads(args.child))), flush=True)
         return
     os.makedirs(args.data_dir, exist_ok=True)
-    results = []
-    for case in args.cases.split(","):
-        levels, rows = parse_case(case)
-        r = run_case(args, levels, rows)
-        print(json.dumps(r), flush=True)
-        results.append(r)
-    command = "python benchmarks/bench_levels.py" + (
-        f" --cases {args.cases}" if args.cases != ap.get_default("cases") else ""
-    )
-    text = section(results, command)
+    raw = os.path.join(args.data_dir, "levels_results.json")
+    results: list[dict[str, Any]] = []
+    if not args.report_only:
+        label = args.label or f"indb at {_commit()}"
+        for case in args.cases.split(","):
+            levels, rows = parse_case(case)
+            r = run_case(args, levels, rows)
+            r.update(label=label, when=_dt.datetime.now().strftime("%Y-%m-%d %H:%M"))
+            print(json.dumps(r), flush=True)
+            results.append(r)
+    if args.no_write:
+        print(section(results))
+        return
+    text = section(store(raw, results))
     print(text)
-    if not args.no_write:
-        write_section(args.out, text)
+    write_section(args.out, text)
 
 
 if __name__ == "__main__":

@@ -43,7 +43,7 @@ from indb.registry import DEFAULT_SCHEMA, Registry
 from indb.report import render_json, render_report
 from indb.results import FitResult, IterationRecord
 from indb.retrain import EXIT_HELD, RetrainOutcome, retrain
-from indb.spec import Source
+from indb.spec import MAX_LEVELS_LIMIT, Source
 from indb.specfile import SpecFile, load_spec_file
 
 __all__ = ["main", "EXIT_CODES"]
@@ -358,7 +358,8 @@ model_options = _apply(
         "max_levels",
         type=int,
         default=None,
-        help="Most levels a categorical column may have." + _default("max_levels"),
+        help=f"Most levels a categorical column may have (at most {MAX_LEVELS_LIMIT:,})."
+        + _default("max_levels"),
     ),
     click.option(
         "--confidence",
