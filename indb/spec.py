@@ -17,11 +17,12 @@ from indb.errors import SpecError
 from indb.families import Family, NegativeBinomial, canonical_link, make_family
 from indb.links import Link, make_link
 
-#: Largest max_levels accepted: one categorical column of this many levels costs memory and
-#: time in proportion to its levels (indb.normal_eq), measured in benchmarks/RESULTS.md
-#: ("Many levels"); every other categorical column still counts towards the dense part,
+#: Largest max_levels accepted, the largest size measured (benchmarks/RESULTS.md, "Many
+#: levels"): one categorical column costs the fit memory and time in proportion to its
+#: levels (indb.normal_eq), but write-back and the scoring view's CASE of one branch per
+#: level grow with them too. Every other categorical column counts towards the dense part,
 #: capped by indb.normal_eq.MAX_REST_COLUMNS.
-MAX_LEVELS_LIMIT = 100_000
+MAX_LEVELS_LIMIT = 50_000
 
 _FILE_SUFFIXES = (".parquet", ".pq", ".csv", ".tsv", ".csv.gz", ".tsv.gz", ".json", ".ndjson")
 _QUERY_START = re.compile(r"^\s*(\(|select\b|with\b|from\b|values\b|table\b)", re.IGNORECASE)

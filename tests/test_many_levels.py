@@ -402,14 +402,14 @@ def test_max_levels_above_the_practical_limit_is_refused():
     con = duckdb_table(_book(10, 100), "book")
     with pytest.raises(
         SpecError,
-        match=f"max_levels must be an integer from 2 to 100,000; got {MAX_LEVELS_LIMIT + 1}",
+        match=f"max_levels must be an integer from 2 to 50,000; got {MAX_LEVELS_LIMIT + 1}",
     ):
         _fit(con, max_levels=MAX_LEVELS_LIMIT + 1)
     out = CliRunner().invoke(
         main, ["fit", "--family", "poisson", "--response", "y", "--max-levels", "1000000", "t"]
     )
     assert out.exit_code == 2
-    assert "max_levels must be an integer from 2 to 100,000; got 1000000" in out.output
+    assert "max_levels must be an integer from 2 to 50,000; got 1000000" in out.output
 
 
 # -- thousands of levels ---------------------------------------------------------------------
