@@ -34,6 +34,7 @@ import datetime as _dt
 import json
 import os
 import platform
+import re
 import resource
 import subprocess
 import sys
@@ -188,14 +189,47 @@ def child(job: dict[str, Any]) -> dict[str, Any]:
         "start_kib": start_kib,
         "path": res.path,
     }
+    out["score_max"] = score_equations(con, res)
     if job.get("save"):
         import numpy as np
 
         np.savez(job["save"], terms=np.array(res.terms), params=res.params, se=res.std_errors)
+        out["params_file"] = job["save"]
     return out
 
 
-def run_case(args: argparse.Namespace, levels: int, rows: int) -> dict[str, Any]:
+def score_equations(con: Any, res: Any) -> float:
+    """The largest relative score of the Poisson likelihood at the estimate: for every
+    design column, |sum (y - mu) x| / max(sum y |x|, 1), with mu computed by DuckDB from
+    the coefficients (KKT of the maximum likelihood estimate: 0 up to rounding)."""
+    import pandas as pd
+
+    coef = pd.DataFrame({"term": res.terms, "b": [0.0 if b != b else b for b in res.params]})
+    con.register("coef", coef)
+    sql = """
+        WITH m AS (
+            SELECT k.big, k.region, k.claims, k.x1, k.x2,
+                   k.exposure * exp(
+                       (SELECT b FROM coef WHERE term = 'intercept')
+                       + coalesce(cb.b, 0) + coalesce(cr.b, 0)
+                       + (SELECT b FROM coef WHERE term = 'x1') * k.x1
+                       + (SELECT b FROM coef WHERE term = 'x2') * k.x2) AS mu
+            FROM pol k
+            LEFT JOIN coef cb ON cb.term = 'big=' || k.big
+            LEFT JOIN coef cr ON cr.term = 'region=' || k.region
+        )
+        SELECT max(abs(s) / greatest(t, 1)) FROM (
+            SELECT sum(claims - mu) AS s, sum(claims) AS t FROM m GROUP BY big
+            UNION ALL SELECT sum(claims - mu), sum(claims) FROM m GROUP BY region
+            UNION ALL SELECT sum(claims - mu), sum(claims) FROM m
+            UNION ALL SELECT sum((claims - mu) * x1), sum(claims * abs(x1)) FROM m
+            UNION ALL SELECT sum((claims - mu) * x2), sum(claims * x2) FROM m
+        )
+    """
+    return float(con.execute(sql).fetchone()[0])
+
+
+def run_case(args: argparse.Namespace, label: str, levels: int, rows: int) -> dict[str, Any]:
     path = table_path(args.data_dir, levels, rows)
     if not os.path.exists(path):
         t0 = time.perf_counter()
@@ -206,7 +240,10 @@ def run_case(args: argparse.Namespace, levels: int, rows: int) -> dict[str, Any]
         "max_levels": max(levels, 2),
         "mem_cap_gib": args.mem_cap_gib,
         "indb_src": args.indb_src,
-        "save": args.save and f"{args.save}_{levels}_{rows}.npz",
+        # the estimates, for the agreement between two codes on the same case
+        "save": os.path.join(
+            args.data_dir, f"est_{re.sub(r'[^A-Za-z0-9]+', '_', label)}_{levels}_{rows}.npz"
+        ),
     }
     env = dict(os.environ, PYTHONPATH=args.indb_src or ROOT)
     load = os.getloadavg()[0]
@@ -280,8 +317,8 @@ def section(results: list[dict[str, Any]]) -> str:
         "CPU seconds much less).",
         "",
         "| code measured | levels | rows | p | status | wall s | CPU s | engine s | Python s "
-        "| iterations | peak MiB | load | when |",
-        "|---|---|---|---|---|---|---|---|---|---|---|---|---|",
+        "| iterations | peak MiB | score | load | when |",
+        "|---|---|---|---|---|---|---|---|---|---|---|---|---|---|",
     ]
     for r in sorted(results, key=lambda r: (r["rows"], r["levels"], r.get("when", ""))):
         eng = r.get("engine_seconds")
@@ -291,10 +328,42 @@ def section(results: list[dict[str, Any]]) -> str:
             f"| {r.get('label', '')} | {r['levels']:,} | {r['rows']:,} | {_f(r.get('p'), ',')} "
             f"| {r['status']} | {_f(r.get('seconds'))} | {_f(r.get('cpu_seconds'))} | "
             f"{_f(eng)} | {_f(py)} | {_f(r.get('iterations'), 'd')} | {_f(peak, '.0f')} | "
-            f"{_f(r.get('load'), '.1f')} | {r.get('when', '')} |"
+            f"{_f(r.get('score_max'), '.1e')} | {_f(r.get('load'), '.1f')} | "
+            f"{r.get('when', '')} |"
         )
-    lines.append(END)
+    lines += ["", *agreement_lines(results), END]
     return "\n".join(lines) + "\n"
+
+
+def agreement_lines(results: list[dict[str, Any]]) -> list[str]:
+    """For each case measured by two codes with saved estimates: how far they agree."""
+    import numpy as np
+
+    out = [
+        "score: the largest relative score |sum (y - mu) x| / sum y |x| over the design's "
+        "columns at the estimate, mu computed by DuckDB from the coefficients (the "
+        "likelihood's first-order conditions; 0 up to rounding)."
+    ]
+    by_case: dict[tuple[int, int], list[dict[str, Any]]] = {}
+    for r in results:
+        if r.get("params_file") and os.path.exists(r["params_file"]):
+            by_case.setdefault((r["levels"], r["rows"]), []).append(r)
+    for (levels, rows), rs in sorted(by_case.items()):
+        for i, a in enumerate(rs):
+            for b in rs[i + 1 :]:
+                x, y = np.load(a["params_file"]), np.load(b["params_file"])
+                if list(x["terms"]) != list(y["terms"]):
+                    continue
+                ok = np.isfinite(x["params"]) & np.isfinite(y["params"])
+                dp = np.abs(x["params"][ok] - y["params"][ok])
+                dse = np.abs(x["se"][ok] - y["se"][ok]) / x["se"][ok]
+                out.append(
+                    f"{levels:,} levels, {rows:,} rows: {a['label']} and {b['label']} agree to "
+                    f"{dp.max():.1e} in the estimates (largest absolute difference; "
+                    f"{(dp / x['se'][ok]).max():.1e} standard errors) and {dse.max():.1e} "
+                    "relative in the standard errors."
+                )
+    return out
 
 
 def store(path: str, new: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -346,7 +415,6 @@ def main() -> None:
     ap.add_argument(
         "--label", default=None, help="name of the code measured (default: indb at <commit>)"
     )
-    ap.add_argument("--save", default=None, help="save estimates to SAVE_<levels>_<rows>.npz")
     ap.add_argument("--out", default=os.path.join(HERE, "RESULTS.md"))
     ap.add_argument("--no-write", action="store_true", help="measure and print only")
     ap.add_argument(
@@ -364,7 +432,7 @@ def main() -> None:
         label = args.label or f"indb at {_commit()}"
         for case in args.cases.split(","):
             levels, rows = parse_case(case)
-            r = run_case(args, levels, rows)
+            r = run_case(args, label, levels, rows)
             r.update(label=label, when=_dt.datetime.now().strftime("%Y-%m-%d %H:%M"))
             print(json.dumps(r), flush=True)
             results.append(r)

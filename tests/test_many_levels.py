@@ -129,6 +129,27 @@ def test_factor_after_the_long_one_and_factor_x_numeric_terms_match_statsmodels(
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
 
 
+def test_no_intercept_run_first_matches_statsmodels():
+    # without an intercept big keeps all its levels and opens the design: nothing before
+    # the run
+    frame = _book(150, 3_000, seed=15)
+    con = duckdb_table(frame, "book")
+    res = _fit(con, intercept=False)
+    x = design_matrix(frame, ["big", "region", "x1", "x2"], intercept=False)
+    # design_matrix drops every factor's reference; without an intercept indb keeps the
+    # first factor's (the contract in the README): add it back
+    ref_level = [lv for lv in sorted(frame["big"].unique()) if f"big={lv}" not in x.columns]
+    x.insert(0, f"big={ref_level[0]}", (frame["big"] == ref_level[0]).astype(float))
+    x = x[res.terms]
+    ref = sm.GLM(
+        frame["claims"], x, family=sm.families.Poisson(), offset=np.log(frame["exposure"])
+    ).fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=500)
+    assert res.terms[0].startswith("big=") and len(res.terms) == 150 + 7 + 2
+    # source: statsmodels GLM (test-only oracle)
+    assert_allclose(res.params, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
+    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
+
+
 # -- aliasing keeps its meaning --------------------------------------------------------------
 
 
