@@ -7,12 +7,10 @@
   macro in the same transaction, and the registry always names where the live ones are.
 * Names of the engine's own catalog objects (``sqlite_master``) are refused as model names.
 
-Data: the issue's reproduction, a table ``pol(id, age INT, region TEXT, exposure DOUBLE,
-claims INT)`` of 5,000 rows drawn here from a seeded Poisson model (invented, as in the
-issue), with a decoy ``mart.pol`` of 3 rows. Oracle for the scores: statsmodels GLM (Poisson,
-offset ln(exposure)) fitted on the same 5,000 rows; its predicted means do not depend on how
-the region dummies are coded. Which table a name binds to is checked against DuckDB's own
-binder (the table an ``EXPLAIN`` scans).
+Data: the issue's reproduction, the table ``pol`` of ``pol_cases.py`` (5,000 rows) with a
+decoy ``mart.pol`` of its first 3 rows. Oracle for the scores: statsmodels GLM (Poisson,
+offset ln(exposure)) on the same 5,000 rows (``pol_cases.oracle_means``). Which table a name
+binds to is checked against DuckDB's own binder (the table an ``EXPLAIN`` scans).
 """
 
 from __future__ import annotations
@@ -28,9 +26,9 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pytest
-import statsmodels.api as sm
 from click.testing import CliRunner
 from numpy.testing import assert_allclose
+from pol_cases import ROWS, oracle_means, pol_frame
 
 import indb
 from indb.cli import main
@@ -40,43 +38,10 @@ from indb.errors import DeploymentWarning, EngineError, SpecError
 from indb.registry import Registry
 from indb.spec import Source
 
-ROWS = 5_000
 # indb at tol 1e-12 and statsmodels at tol 1e-13 both sit far below this; a mean from the
 # decoy's 3 rows would differ in the first digits
 PREDICT_RTOL = 1e-8
 FIT = ["--family", "poisson", "--response", "claims", "--offset", "ln(exposure)"]
-
-
-def pol_frame(rows: int = ROWS, seed: int = 11) -> pd.DataFrame:
-    rng = np.random.default_rng(seed)
-    age = rng.integers(18, 80, rows).astype(np.int32)
-    region = rng.choice(["north", "south", "east", "west"], rows)
-    exposure = rng.uniform(0.1, 1.0, rows)
-    effect = pd.Series(region).map({"north": 0.0, "south": 0.3, "east": -0.2, "west": 0.1})
-    mu = exposure * np.exp(-1.5 + 0.01 * age + effect.to_numpy())
-    return pd.DataFrame(
-        {
-            "id": np.arange(rows, dtype=np.int64),
-            "age": age,
-            "region": region,
-            "exposure": exposure,
-            "claims": rng.poisson(mu).astype(np.int32),
-        }
-    )
-
-
-def oracle_means(frame: pd.DataFrame, predictors: list[str]) -> np.ndarray:
-    """statsmodels Poisson GLM of claims on ``predictors`` with offset ln(exposure)."""
-    x = pd.DataFrame({"const": np.ones(len(frame))}, index=frame.index)
-    for p in predictors:
-        if frame[p].dtype == object or str(frame[p].dtype).startswith(("str", "string")):
-            dummies = pd.get_dummies(frame[p], prefix=p, drop_first=True, dtype=float)
-            x = x.join(dummies)
-        else:
-            x[p] = frame[p].astype(float)
-    offset = np.log(frame["exposure"].to_numpy())
-    fit = sm.GLM(frame["claims"].astype(float), x, family=sm.families.Poisson(), offset=offset)
-    return np.asarray(fit.fit(tol=1e-13).predict(x, offset=offset))
 
 
 @pytest.fixture(scope="module")
