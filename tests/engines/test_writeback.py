@@ -329,12 +329,14 @@ def pol_means(frame: pd.DataFrame, got: pd.DataFrame, predictors: list[str]) -> 
     assert_allclose(got["score_mean"].to_numpy(float), oracle_means(frame, predictors), rtol=1e-8)
 
 
-def pg_views(con: Any, schemas: list[str]) -> set[tuple[str, str]]:
+def pg_views(con: Any, schemas: list[str], tag: str) -> set[tuple[str, str]]:
+    """(schema, view) of this test's views (their names end in ``tag``; the database is
+    shared with the session's other tests) in ``schemas``."""
     with con.cursor() as cur:
         cur.execute(
             "SELECT table_schema, table_name FROM information_schema.views "
-            "WHERE table_schema = ANY(%s)",
-            (schemas,),
+            "WHERE table_schema = ANY(%s) AND table_name LIKE %s",
+            (schemas, f"%{tag}"),
         )
         return set(cur.fetchall())
 
@@ -375,22 +377,22 @@ def test_postgres_moved_view_leaves_nothing_behind(pg_url: str, pg_con: Any) -> 
     kw = {"name": f"mv_{tag}", "registry_schema": schema}
     name = kw["name"]
     pol_fit(pg_url, table, **kw)
-    assert pg_views(pg_con, ["public", mart]) == {("public", name)}
+    assert pg_views(pg_con, ["public", mart], tag) == {("public", name)}
     pol_fit(pg_url, table, exclude=["id", "age"], view_schema=mart, **kw)
     # before: public's view went on serving version 1, unknown to the registry
-    assert pg_views(pg_con, ["public", mart]) == {(mart, name)}
+    assert pg_views(pg_con, ["public", mart], tag) == {(mart, name)}
     pol_means(frame, pg_frame(pg_con, f'SELECT * FROM "{mart}"."{name}"'), ["region"])
     reg = indb.api.registry(pg_url, schema)
     try:
         reg.promote(name, 1)  # an older version: served where the view is now
-        assert pg_views(pg_con, ["public", mart]) == {(mart, name)}
+        assert pg_views(pg_con, ["public", mart], tag) == {(mart, name)}
         pol_means(frame, pg_frame(pg_con, f'SELECT * FROM "{mart}"."{name}"'), ["age", "region"])
         # public is where unqualified names were created: the same place as no schema
         reg.promote(name, 2, view_schema="public")
-        assert pg_views(pg_con, ["public", mart]) == {("public", name)}
+        assert pg_views(pg_con, ["public", mart], tag) == {("public", name)}
         assert reg.model(name)["view_schema"] == "public"
         pol_fit(pg_url, table, exclude=["id", "region"], **kw)
-        assert pg_views(pg_con, ["public", mart]) == {("public", name)}
+        assert pg_views(pg_con, ["public", mart], tag) == {("public", name)}
 
         # a view of the user's reads the live one: the move cannot drop it, so the whole
         # write rolls back (new view, registry rows) and the old view keeps serving
@@ -399,7 +401,10 @@ def test_postgres_moved_view_leaves_nothing_behind(pg_url: str, pg_con: Any) -> 
         with pytest.raises(EngineError, match="other objects depend on it"):
             reg.promote(name, 1, view_schema=mart)
         assert reg.versions(name) == before and reg.model(name)["view_schema"] == "public"
-        assert pg_views(pg_con, ["public", mart]) == {("public", name), ("public", f"mine_{tag}")}
+        assert pg_views(pg_con, ["public", mart], tag) == {
+            ("public", name),
+            ("public", f"mine_{tag}"),
+        }
     finally:
         reg.engine.close()
 
