@@ -155,6 +155,8 @@ def fit(
         check_deploy_names(name, view_schema, registry_schema, spec, db)
     engine = connect(db, memory_limit=memory_limit, temp_directory=temp_directory, threads=threads)
     try:
+        if name is not None:  # names the engine itself uses are refused before the fit
+            Registry(engine, registry_schema).check_model_name(name)
         result = fit_spec(spec, engine, progress)
         if name is not None:
             # a fit that did not converge is recorded but never made live on its own (as
@@ -241,7 +243,7 @@ def scoring_sql(
         reg = Registry(engine, registry_schema)
         model = reg.model(name)
         result = reg.load(name, version)
-        src = Source.parse(source or model["score_source"])
+        src = Source.parse(source or reg.scoring_source_for(model, target))
         rel = target.relation(src)
         use_intervals = bool(model.get("intervals")) if intervals is None else intervals
         query = W.scoring_query(result, target, rel, intervals=use_intervals)
@@ -252,9 +254,11 @@ def scoring_sql(
 
 
 def with_deployment(result: FitResult, outcome: SaveOutcome) -> FitResult:
-    """Attach where a saved result lives (registry version, scoring view, mean column)."""
+    """Attach where a saved result lives (registry version, scoring view, mean column), and
+    the registry's warnings about deployment settings it did not apply."""
     return dataclasses.replace(
         result,
+        warnings=(*result.warnings, *outcome.warnings),
         deployment={
             "model": outcome.model,
             "version": outcome.version,

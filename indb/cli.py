@@ -1158,11 +1158,25 @@ def compare_command(
 @main.command("promote", short_help="Make a version live (also the roll-back).")
 @registry_database_option
 @registry_schema_option
+@click.option(
+    "--view-schema",
+    "view_schema",
+    default=None,
+    metavar="S",
+    help="Move the scoring view and macro to schema S (the old ones are dropped in the same "
+    "transaction); default: where they are now.",
+)
 @output_options
 @click.argument("name")
 @click.argument("version", type=int)
 def promote_command(
-    name: str, version: int, db: str, registry_schema: str | None, as_json: bool, quiet: bool
+    name: str,
+    version: int,
+    db: str,
+    registry_schema: str | None,
+    view_schema: str | None,
+    as_json: bool,
+    quiet: bool,
 ) -> None:
     """Make VERSION of model NAME live: its scoring view and macro serve it from now on.
 
@@ -1170,7 +1184,7 @@ def promote_command(
     """
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         previous = reg.model(name)["live_version"]
-        reg.promote(name, version)
+        reg.promote(name, version, view_schema=view_schema)
         view = _view_label(reg.model(name))
     if as_json:
         click.echo(
@@ -1252,6 +1266,7 @@ def scoring_sql_command(
         with _open_registry(db, registry_schema) as reg:
             row = reg.model(name)
             result = reg.load(name, version)
+            source = source or reg.scoring_source_for(row, target)
         sql = _scoring_sql(result, row, target, source, intervals)
     if as_json:
         chosen = row["live_version"] if version is None else version

@@ -9,15 +9,28 @@ from __future__ import annotations
 
 import contextlib
 import math
+import os
 import time
 from collections.abc import Iterator, Sequence
 from decimal import Decimal
 from typing import Any
 
 import numpy as np
+from sqlglot import exp
+from sqlglot.optimizer.normalize_identifiers import normalize_identifiers
 
-from indb.dialect import Dialect, DuckDBDialect
+from indb import sqlexpr as S
+from indb.dialect import (
+    Dialect,
+    DuckDBDialect,
+    qualified_name,
+    set_table_parts,
+    split_qualified,
+    table_parts,
+    table_references,
+)
 from indb.errors import EngineError, SpecError
+from indb.spec import Source
 
 
 class Engine:
@@ -44,8 +57,77 @@ class Engine:
     def close(self) -> None:
         pass
 
+    # -- where names lead (write-back stores names that mean the same in any session) ----------
+    def resolve_table(self, parts: Sequence[str]) -> tuple[str, ...] | None:
+        """The table or view that the name ``parts`` (1 to 3 names) reads in this session,
+        as the parts that name it from any session and schema: (schema, table) or
+        (catalog, schema, table). None when the engine has no such table or the name
+        cannot be qualified (a session's temporary view on Spark)."""
+        return None
+
+    def current_location(self) -> tuple[str, str]:
+        """(catalog or database, schema) that unqualified names are created in."""
+        raise NotImplementedError
+
+    def absolute_path(self, path: str) -> str:
+        """A file source's path as the engine reads it from any working directory."""
+        return path
+
     #: seconds spent in the last execute/fetch (for iteration timing)
     last_seconds: float = 0.0
+
+
+def qualify_source(engine: Engine, source: Source) -> Source:
+    """``source`` with every table name qualified as the engine resolves it now.
+
+    A scoring view resolves an unqualified name in its own schema first (DuckDB), and a
+    stored spec is read again in other sessions: both must name the table the fit read.
+    Table names inside a query are qualified too (not its CTEs or table functions); a
+    relative file path becomes absolute where the engine reads files itself. Names the
+    engine cannot find are left as written (reading them fails with the usual message).
+    """
+    if source.kind == "table":
+        found = engine.resolve_table(split_qualified(source.text))
+        return Source("table", qualified_name(found)) if found else source
+    if source.kind == "file":
+        return Source("file", engine.absolute_path(source.text))
+    tree = engine.dialect.query(source.text).this
+    changed = False
+    for table in table_references(tree):
+        # an unquoted name folds as the engine folds it (PostgreSQL: to lower case)
+        parts = table_parts(normalize_identifiers(table.copy(), engine.dialect.sqlglot_name))
+        found = engine.resolve_table(parts)
+        if found and list(found) != parts:
+            set_table_parts(table, found)
+            changed = True
+    return Source("query", engine.dialect.query_text(tree)) if changed else source
+
+
+def relative_source(engine: Engine, source: Source) -> Source:
+    """``source`` with the engine's current catalog and schema left out of its table names
+    (for SQL printed to run on another engine, where those names mean nothing)."""
+    here = [p.lower() for p in engine.current_location()]
+
+    def shortened(parts: list[str]) -> list[str]:
+        if len(parts) == 3 and parts[0].lower() == here[0]:
+            parts = parts[1:]
+        if len(parts) == 2 and parts[0].lower() == here[1]:
+            parts = parts[1:]
+        return parts
+
+    if source.kind == "table":
+        return Source("table", qualified_name(shortened(split_qualified(source.text))))
+    if source.kind == "file":
+        return source
+    tree = engine.dialect.query(source.text).this
+    changed = False
+    for table in table_references(tree):
+        parts = table_parts(table)
+        short = shortened(parts)
+        if short != parts:
+            set_table_parts(table, short)
+            changed = True
+    return Source("query", engine.dialect.query_text(tree)) if changed else source
 
 
 class DuckDBEngine(Engine):
@@ -174,6 +256,116 @@ class DuckDBEngine(Engine):
     def close(self) -> None:
         if self._owned:
             self.con.close()
+
+    def current_location(self) -> tuple[str, str]:
+        catalog, schema = self.execute("SELECT current_catalog(), current_schema()")[0]
+        return str(catalog), str(schema)
+
+    def resolve_table(self, parts: Sequence[str]) -> tuple[str, ...] | None:
+        # DuckDB tells where a name leads only by binding a query, so the lookup follows
+        # its rules over information_schema (which lists every attached database and the
+        # temp catalog): a 3-part name is exact; a 2-part name is a schema of a catalog on
+        # the search path, else a catalog's main schema; a 1-part name goes through the
+        # search path (https://duckdb.org/docs/sql/statements/set#search_path).
+        candidates = self.execute(self.dialect.render(_relations_named(parts[-1])))
+        if not candidates:
+            return None
+        catalog, path = self.execute("SELECT current_catalog(), current_setting('search_path')")[0]
+        order = duckdb_search_order(str(catalog), str(path or ""))
+        found = pick_relation(parts, candidates, order)
+        if found is None:
+            return None
+        # DuckDB writes a view's own database out of the view's SQL (so that the file may
+        # be renamed or attached under another name); a stored name does the same
+        if found[0].lower() == str(catalog).lower():
+            return found[1:]
+        return found
+
+    def absolute_path(self, path: str) -> str:
+        # DuckDB reads a relative path from the process's working directory (this one:
+        # DuckDB runs in-process) unless file_search_path names folders to look in; a
+        # URL (s3://, https://) or a home-relative path is left to DuckDB.
+        if "://" in path or path.startswith("~") or os.path.isabs(path):
+            return path
+        folders = self.execute("SELECT current_setting('file_search_path')")[0][0]
+        if folders:
+            return path
+        return os.path.abspath(path)
+
+
+def _relations_named(name: str) -> exp.Select:
+    """(catalog, schema, name) of every table and view called ``name`` (any case)."""
+    return S.select(
+        [S.col("table_catalog"), S.col("table_schema"), S.col("table_name")],
+        exp.Table(this=S.ident("tables"), db=S.ident("information_schema")),
+        where=S.eq(exp.Lower(this=S.col("table_name")), S.text(name.lower())),
+    )
+
+
+def duckdb_search_order(catalog: str, search_path: str) -> list[tuple[str, str]]:
+    """(catalog, schema) pairs in the order DuckDB looks an unqualified name up: the temp
+    catalog, the ``search_path`` setting's entries, the current database's main schema,
+    then the system catalog. An entry without a catalog is a schema of the current
+    database, or else a database's main schema. A name ``db.t`` looks in db's schemas on
+    this path, then in db.main."""
+    order = [("temp", "main")]
+    for entry in _comma_list(search_path):
+        parts = split_qualified(entry)
+        if len(parts) == 2:
+            order.append((parts[0], parts[1]))
+        elif len(parts) == 1:
+            order += [(catalog, parts[0]), (parts[0], "main")]
+    order += [(catalog, "main"), ("system", "main"), ("system", "pg_catalog")]
+    return order
+
+
+def _comma_list(text: str) -> list[str]:
+    """Split a setting's comma-separated list, keeping commas inside double quotes."""
+    items, buf, quoted = [], [], False
+    for ch in text:
+        if ch == '"':
+            quoted = not quoted  # "" inside quotes toggles twice: the escape survives
+        if ch == "," and not quoted:
+            items.append("".join(buf))
+            buf = []
+            continue
+        buf.append(ch)
+    items.append("".join(buf))
+    return [i.strip() for i in items if i.strip()]
+
+
+def pick_relation(
+    parts: Sequence[str],
+    candidates: Sequence[Sequence[Any]],
+    order: Sequence[tuple[str, str]],
+) -> tuple[str, str, str] | None:
+    """The (catalog, schema, name) among ``candidates`` that the name ``parts`` binds to,
+    following the search ``order`` (see :func:`duckdb_search_order`); names ignore case."""
+    low = [p.lower() for p in parts]
+    rows = [(str(c), str(s), str(n)) for c, s, n in candidates]
+
+    def key(c: str, s: str) -> tuple[str, str]:
+        return c.lower(), s.lower()
+
+    if len(low) == 3:
+        return next((r for r in rows if key(r[0], r[1]) == (low[0], low[1])), None)
+    if len(low) == 2:
+        catalogs: list[str] = []
+        for c, _ in order:
+            if c.lower() not in catalogs:
+                catalogs.append(c.lower())
+        in_schema = [r for r in rows if r[1].lower() == low[0] and r[0].lower() in catalogs]
+        if in_schema:
+            return min(in_schema, key=lambda r: catalogs.index(r[0].lower()))
+        # a catalog: its schemas on the search path, then its main schema
+        schemas = [s.lower() for c, s in order if c.lower() == low[0]] + ["main"]
+        in_catalog = [r for r in rows if r[0].lower() == low[0] and r[1].lower() in schemas]
+        if in_catalog:
+            return min(in_catalog, key=lambda r: schemas.index(r[1].lower()))
+        return None
+    ranks = {key(c, s): i for i, (c, s) in reversed(list(enumerate(order)))}
+    on_path = [r for r in rows if key(r[0], r[1]) in ranks]
+    return min(on_path, key=lambda r: ranks[key(r[0], r[1])]) if on_path else None
 
 
 def unmasked_columns(columns: dict[str, np.ndarray]) -> dict[str, np.ndarray]:

@@ -57,3 +57,8 @@ class SeparationWarning(IndbWarning):
 
 class AliasingWarning(IndbWarning):
     """Some design columns are linear combinations of others and were set aside."""
+
+
+class DeploymentWarning(IndbWarning):
+    """A deployment setting was not applied (for example a held version cannot move the
+    live scoring view to another schema)."""

@@ -33,7 +33,7 @@ from indb.design import (
     plan_values,
     resolve_inputs,
 )
-from indb.engine import Engine
+from indb.engine import Engine, qualify_source
 from indb.errors import (
     AliasingWarning,
     ConvergenceWarning,
@@ -862,6 +862,7 @@ def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
     The pre-fit scans run (they only read); the first IRLS scan is returned, not run. Later
     scans differ only in the coefficient literals.
     """
+    spec = dataclasses.replace(spec, source=qualify_source(engine, spec.source))
     sent: list[tuple[str, str]] = []
     recorder = _RecordingEngine(engine, sent)
     run = _Run(engine=recorder, progress=None, log=[])
@@ -896,6 +897,9 @@ class _RecordingEngine(Engine):
 def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitResult:
     """Fit ``spec`` on ``engine``; see :func:`indb.fit` for the user-facing description."""
     t_start = time.perf_counter()
+    # the name as the engine resolves it now: the stored spec and the scoring view then
+    # read this table whatever schema or session reads them later
+    spec = dataclasses.replace(spec, source=qualify_source(engine, spec.source))
     run = _Run(engine=engine, progress=progress, log=[])
     try:
         return _fit(spec, run, t_start)

@@ -108,6 +108,7 @@ class PostgresDialect(Dialect):
 
     name = "postgres"
     sqlglot_name = "postgres"
+    names_ignore_case = False
 
     def __init__(self, server_version: int = 150000) -> None:
         self.server_version = server_version
@@ -137,6 +138,24 @@ class PostgresDialect(Dialect):
         fresh.set("replace", False)
         drop = exp.Drop(kind="VIEW", tables=[create.this.copy()], exists=True)
         return [self.render(drop), self.render(fresh)]
+
+    def reserved_objects_query(self, view: str, macro: str | None) -> exp.Query | None:
+        # pg_catalog is searched before the search_path's schemas unless the path names it
+        # (https://www.postgresql.org/docs/current/ddl-schemas.html#DDL-SCHEMAS-CATALOG): a
+        # scoring view named pg_class would itself be hidden by the catalog's table
+        cls = exp.Table(this=S.ident("pg_class"), db=S.ident("pg_catalog"))
+        cls.set("alias", exp.TableAlias(this=S.ident("c")))
+        nsp = exp.Table(this=S.ident("pg_namespace"), db=S.ident("pg_catalog"))
+        nsp.set("alias", exp.TableAlias(this=S.ident("n")))
+        query = S.select(
+            [S.alias(S.col("relname", "c"), "name")],
+            cls,
+            where=S.and_(
+                S.eq(S.col("nspname", "n"), S.text("pg_catalog")),
+                S.eq(exp.Lower(this=S.col("relname", "c")), S.text(view.lower())),
+            ),
+        )
+        return query.join(nsp, on=S.eq(S.col("oid", "n"), S.col("relnamespace", "c")), copy=False)
 
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         # a temporary table lives in the session's own schema and disappears with it
@@ -307,6 +326,33 @@ class PostgresEngine(Engine):
             self._types[int(oid)] = (str(name), str(category))
             self.dialect.type_categories[str(name).lower()] = str(category)
 
+    def current_location(self) -> tuple[str, str]:
+        database, schema = self.execute("SELECT current_database(), current_schema()")[0]
+        return str(database), str(schema)
+
+    def resolve_table(self, parts: Sequence[str]) -> tuple[str, ...] | None:
+        # to_regclass resolves a name exactly as a query would (search_path, pg_catalog
+        # first) and gives NULL for a missing relation. The schema alone qualifies it: a
+        # query cannot reach another database, and leaving the database name out keeps
+        # the name valid in a restored copy under another name. The session's own
+        # temporary schema is written pg_temp, its name in every session.
+        name = self.dialect.render(exp.Table(**_table_args(parts)))
+        sql = (
+            "SELECT CASE WHEN n.oid = pg_catalog.pg_my_temp_schema() THEN 'pg_temp' "
+            "ELSE n.nspname END, c.relname FROM pg_catalog.pg_class c "
+            "JOIN pg_catalog.pg_namespace n ON n.oid = c.relnamespace "
+            "WHERE c.oid = pg_catalog.to_regclass(%s)"
+        )
+        try:
+            with self.con.cursor() as cur:
+                cur.execute(sql, (name,))
+                row = cur.fetchone()
+        except self._psycopg.Error:
+            # a name to_regclass cannot even parse (another database's): the fit's own
+            # read of it gives the error
+            return None
+        return (str(row[0]), str(row[1])) if row else None
+
     @contextlib.contextmanager
     def transaction(self) -> Iterator[None]:
         """Run the statements inside as one PostgreSQL transaction (rolled back on error)."""
@@ -319,6 +365,16 @@ class PostgresEngine(Engine):
     def close(self) -> None:
         if self._owned:
             self.con.close()
+
+
+def _table_args(parts: Sequence[str]) -> dict[str, exp.Identifier]:
+    ids = [S.ident(p) for p in parts]
+    args = {"this": ids[-1]}
+    if len(ids) >= 2:
+        args["db"] = ids[-2]
+    if len(ids) == 3:
+        args["catalog"] = ids[-3]
+    return args
 
 
 def _wrap(err: Exception, sql: str | None) -> EngineError:

@@ -287,6 +287,32 @@ class SparkEngine(Engine):
             raise _wrap(err, sql) from err
         return [(f.name, f.dataType.simpleString()) for f in fields]
 
+    def current_location(self) -> tuple[str, str]:
+        try:
+            catalog = self.session.catalog.currentCatalog()
+            database = self.session.catalog.currentDatabase()
+        except self._errors as err:
+            raise _wrap(err, "-- catalog.currentDatabase()") from err
+        return str(catalog), str(database)
+
+    def resolve_table(self, parts: Sequence[str]) -> tuple[str, ...] | None:
+        # The catalog API resolves a name as a query does (temporary views first) and
+        # returns its catalog and namespace. A session's temporary view has no name in the
+        # catalog: it stays as written (a persistent view may not read one anyway).
+        name = ".".join(self.dialect.quote(p) for p in parts)
+        try:
+            if not self.session.catalog.tableExists(name):
+                return None
+            table = self.session.catalog.getTable(name)
+        except self._errors:
+            return None
+        namespace = [str(n) for n in (table.namespace or [])]
+        if table.isTemporary:
+            # a global temporary view is reached through its namespace global_temp
+            return (*namespace, str(table.name)) if namespace else None
+        catalog = getattr(table, "catalog", None)
+        return tuple(p for p in (catalog, *namespace, str(table.name)) if p)
+
     @contextlib.contextmanager
     def transaction(self) -> Iterator[None]:
         """No transaction: Spark SQL runs each statement on its own (no rollback)."""

@@ -615,6 +615,71 @@ def test_kill_during_the_first_save_leaves_no_partial_registry(
     assert results[None] == "new version", results
 
 
+MOVE = dict(MODE, options={**MODE["options"], "view_schema": "mart"})
+
+
+def classify_move(before: dict[str, Any], after: dict[str, Any], path: Path, expected: Any) -> str:
+    """A refit that moves ``visits`` from main to mart: 'unchanged', 'moved' (one complete
+    new live version, its view and macro only in mart) or what is partial."""
+    if after == before:
+        return "unchanged"
+    objs, was = R.object_names(after), R.object_names(before)
+    moved = {("main", "visits")}, {("mart", "visits")}
+    if objs["views"] != (was["views"] - moved[0]) | moved[1]:
+        return f"partial: views {sorted(objs['views'] ^ was['views'])}"
+    macros = {("main", "visits_score")}, {("mart", "visits_score")}
+    if objs["functions"] != (was["functions"] - macros[0]) | macros[1]:
+        return f"partial: macros {sorted(objs['functions'] ^ was['functions'])}"
+    versions = [r for r in registry_rows(after, "model_version") if r["model_name"] == "visits"]
+    if [(r["version"], r["status"]) for r in versions] != [(1, "retired"), (2, "live")]:
+        return "partial: versions"
+    model = next(r for r in registry_rows(after, "model") if r["model_name"] == "visits")
+    if (model["live_version"], model["view_schema"]) != (2, "mart"):
+        return "partial: the model row does not name the live view"
+    with duckdb.connect(str(path), read_only=True) as con:
+        got = con.execute("SELECT score_mean FROM mart.visits ORDER BY row_id").fetchnumpy()
+    if not np.allclose(got["score_mean"], expected, rtol=RTOL):
+        return "partial: view scores differ from statsmodels"
+    return "moved"
+
+
+@pytest.mark.slow
+def test_kill_before_every_statement_of_a_move(
+    setup: Setup, servers: list[Server], tmp_path: Path
+) -> None:
+    # issue 11 item 4: the refit moves the view and macro to schema mart; the old ones are
+    # dropped in the same transaction, so a kill leaves either the old state or only the new
+    ref_path = copy_db(setup.path, tmp_path / "move_ref.duckdb")
+    ref = run_child(ref_path, MOVE, server=servers[0])
+    assert classify_move(setup.before, R.dump_file(ref_path), ref_path, setup.expected_mean) == (
+        "moved"
+    )
+    _, wb_points = _write_back_points(ref)
+    stmts = dict(ref.statements())
+    drops = [n for n in wb_points if stmts[n].startswith("execute DROP")]
+    assert len(drops) == 2  # the old view and the old macro
+    commit = next(n for n, text in stmts.items() if text.startswith("execute COMMIT"))
+
+    def job(point: int | None) -> Any:
+        def run(server: Server) -> tuple[int | None, str]:
+            path = copy_db(setup.path, tmp_path / f"move_{point}.duckdb")
+            if point is None:
+                r = run_child(path, MOVE, server=server, kill_after_commit=True)
+            else:
+                r = run_child(path, MOVE, server=server, kill_before=point)
+            assert r.killed
+            after = R.dump_file(path, read_only=False)  # replays the log, as the next job
+            outcome = classify_move(setup.before, after, path, setup.expected_mean)
+            OUTCOMES[f"move: {outcome}"] = OUTCOMES.get(f"move: {outcome}", 0) + 1
+            return point, outcome
+
+        return run
+
+    results = dict(_parallel([job(p) for p in [*wb_points, None]], servers))
+    assert all(results[p] == "unchanged" for p in wb_points if p <= commit), results
+    assert results[None] == "moved", results
+
+
 # -------------------------------------------------------------------------------------------
 # locked, read-only, full storage
 # -------------------------------------------------------------------------------------------
