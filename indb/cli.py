@@ -731,9 +731,11 @@ def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
 
 
 @contextmanager
-def _open_registry(db: str, schema: str | None) -> Iterator[Registry]:
+def _open_registry(db: str, schema: str | None, *, writes: bool = False) -> Iterator[Registry]:
+    """The registry of ``db``; opened read-only unless the command ``writes`` to it (so the
+    reading commands work on a read-only filesystem or a file without write permission)."""
     _check_database_path(db, hint="the registry lives in the file a named fit wrote to")
-    reg = open_registry(db, schema or DEFAULT_SCHEMA)
+    reg = open_registry(db, schema or DEFAULT_SCHEMA, read_only=not writes)
     try:
         yield reg
     finally:
@@ -1159,7 +1161,7 @@ def promote_command(
 
     Promoting an earlier version is the roll-back.
     """
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         previous = reg.model(name)["live_version"]
         reg.promote(name, version)
         view = _view_label(reg.model(name))
@@ -1190,7 +1192,7 @@ def drop_command(
 ) -> None:
     """Drop VERSION of model NAME (its rows stay for audit; the live version cannot be
     dropped)."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         reg.drop(name, version)
     if as_json:
         click.echo(_dumps({"model": name, "version": version, "status": "dropped"}))

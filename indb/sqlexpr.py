@@ -376,7 +376,10 @@ def parse_expression(sql: str, dialect: str) -> Expr:
         raise ValueError("it is not a single expression (it holds more than one statement)")
     tree = trees[0]
     banned = (exp.Block, exp.Command, exp.DDL, exp.DML, exp.Query)
-    if isinstance(tree, banned) or any(isinstance(n, banned) for n in tree.walk()):
+    # A scalar expression is a sqlglot Condition (columns, literals, operators, functions,
+    # CASE, casts). Statements parse as other node types (INSTALL x, ATTACH '..', PRAGMA,
+    # USE, SET, ...): refused here as the user's input, not sent for the engine to reject.
+    if not isinstance(tree, exp.Condition) or any(isinstance(n, banned) for n in tree.walk()):
         raise ValueError(
             "it is not a per-row expression (statements and subqueries are not allowed)"
         )
