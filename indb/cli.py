@@ -254,7 +254,8 @@ database_option = click.option(
     metavar="DB",
     default=None,
     help="DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
-    "out to work in a fresh in-memory DuckDB database.",
+    "out to work in a fresh in-memory DuckDB database. A DuckDB file is opened read-only "
+    "unless --name writes to it.",
 )
 
 model_options = _apply(
@@ -400,7 +401,7 @@ registry_database_option = click.option(
     metavar="DB",
     required=True,
     help="Where the model registry lives: a DuckDB database file, or postgresql://..., "
-    "spark:local[N], sc://host:port.",
+    "spark:local[N], sc://host:port. Commands that only read open a DuckDB file read-only.",
 )
 
 execution_options = _apply(

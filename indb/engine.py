@@ -262,7 +262,7 @@ class DuckDBEngine(Engine):
         A missing file is created (read-write) as before: there is nothing to read-protect.
         """
         duckdb = self._duckdb
-        path = ":memory:" if database in (None, "", ":memory:") else os.fspath(database)
+        path = ":memory:" if database in (None, "", ":memory:") else str(database)
         ro = read_only and path != ":memory:" and os.path.exists(path)
         try:
             try:

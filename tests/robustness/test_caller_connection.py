@@ -321,3 +321,21 @@ def test_a_statement_in_an_expression_exits_2(db_file: Path, text: str, option: 
     line = _one_error_line(result)
     assert f"cannot parse {option} expression" in line and "not a per-row expression" in line
     assert R.dump_file(db_file) == before
+
+
+# -- read-only opening next to this process's own connections -------------------------------------
+
+
+def test_a_file_this_process_has_open_for_writing_is_shared(
+    con: duckdb.DuckDBPyConnection,
+) -> None:
+    """A fit without write-back opens the file read-only; DuckDB allows one configuration
+    per file and process, so while this process has it open for writing (``con``) that
+    open database is shared instead, and the fit still works."""
+    path = con.execute("SELECT path FROM duckdb_databases() WHERE database_name = 'caller'")
+    path = path.fetchall()[0][0]
+    res = indb.fit("spector", "GRADE", "binomial", db=path, tol=1e-12)
+    R.assert_coefs(res, _reference(), rtol=RTOL, se_rtol=RTOL)
+    result = CliRunner().invoke(main, ["models", "--db", path, "--json"])
+    assert result.exit_code == 0, result.output
+    con.execute("CREATE TABLE still_writable AS SELECT 1 AS x")  # con is unaffected

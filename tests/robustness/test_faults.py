@@ -735,7 +735,7 @@ READ_ONLY_CHILD = textwrap.dedent(
     import indb
     from indb.cli import main
 
-    db, commands = sys.argv[1], json.loads(sys.argv[2])
+    db, commands, spec = sys.argv[1], json.loads(sys.argv[2]), sys.argv[3]
     try:  # the protection is real: DuckDB cannot open the file for writing
         duckdb.connect(db).close()
         protected = "no: opened for writing"
@@ -743,7 +743,7 @@ READ_ONLY_CHILD = textwrap.dedent(
         protected = str(err)
     runs = []
     for args in commands:
-        r = CliRunner().invoke(main, [a.replace("{db}", db) for a in args])
+        r = CliRunner().invoke(main, [a.replace("{db}", db).replace("{spec}", spec) for a in args])
         runs.append({"args": args, "exit_code": r.exit_code, "stdout": r.stdout,
                      "stderr": r.stderr})
     with warnings.catch_warnings():
@@ -765,11 +765,15 @@ READING = {
                    "--compress", "always", "--tol", "1e-12", "--json", "-q", "spector"],
     "fit --dry-run": ["fit", "--db", "{db}", "--family", "binomial", "--response", "GRADE",
                       "--name", "grades", "--dry-run", "spector"],
+    "run --dry-run": ["run", "{spec}", "--dry-run"],
+    "retrain --dry-run": ["retrain", "{spec}", "--dry-run"],
 }  # fmt: skip
 WRITING = {
     "fit --name": ["fit", "--db", "{db}", "--family", "binomial", "--response", "GRADE",
                    "--name", "grades", "--new-version", "-q", "spector"],
     "promote": ["promote", "visits", "1", "--db", "{db}"],
+    "run": ["run", "{spec}", "--new-version", "-q"],
+    "retrain": ["retrain", "{spec}", "-q"],
 }  # fmt: skip
 
 
@@ -809,8 +813,15 @@ def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str)
     # a folder every user may enter (pytest's tmp_path is private to its owner)
     folder = Path(tempfile.mkdtemp(prefix="indb-ro-"))
     folder.chmod(0o755)
+    specs = Path(tempfile.mkdtemp(prefix="indb-ro-spec-"))  # the spec file, elsewhere
+    specs.chmod(0o755)
     try:
         db = copy_db(setup.path, folder / "db.duckdb")
+        spec = specs / "grades.toml"
+        spec.write_text(
+            '[model]\nsource = "spector"\nresponse = "GRADE"\nfamily = "binomial"\n'
+            f'[deploy]\nname = "grades"\n[engine]\ndb = "{db}"\n'
+        )
         digest = hashlib.sha256(db.read_bytes()).hexdigest()
         prefix = _unwritable_command(way, folder)
         env = dict(os.environ, PYTHONDONTWRITEBYTECODE="1")
@@ -819,7 +830,15 @@ def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str)
         )
         commands = [*READING.values(), *WRITING.values()]
         out = subprocess.run(
-            [*prefix, sys.executable, "-c", READ_ONLY_CHILD, str(db), json.dumps(commands)],
+            [
+                *prefix,
+                sys.executable,
+                "-c",
+                READ_ONLY_CHILD,
+                str(db),
+                json.dumps(commands),
+                str(spec),
+            ],
             capture_output=True,
             text=True,
             timeout=300,
@@ -831,6 +850,7 @@ def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str)
     finally:
         folder.chmod(0o755)
         shutil.rmtree(folder)
+        shutil.rmtree(specs)
     report = json.loads(out.stdout)
     reason = "Read-only file system" if way == "read-only filesystem" else "Permission denied"
     assert reason in report["protected"]
@@ -864,7 +884,8 @@ def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str)
     _assert_matches(json.loads(runs["fit folded"]["stdout"]), grades_ref)
     _assert_matches(report["api_fit"], grades_ref)
     assert "CREATE" in report["api_sql"] and "grades" in report["api_sql"]
-    assert "nothing was written" in runs["fit --dry-run"]["stdout"]
+    for name in ("fit --dry-run", "run --dry-run", "retrain --dry-run"):
+        assert "nothing was written" in runs[name]["stdout"], name
     # the printed view, run on a writable copy, scores like statsmodels
     copy = copy_db(setup.path, Path(tempfile.mkdtemp(prefix="indb-ro-copy-")) / "copy.duckdb")
     try:
