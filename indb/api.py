@@ -153,7 +153,15 @@ def fit(
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)
-    engine = connect(db, memory_limit=memory_limit, temp_directory=temp_directory, threads=threads)
+    engine = connect(
+        db,
+        # without write-back nothing is written: a database file opens read-only, so a fit
+        # also works on a read-only filesystem or a file without write permission
+        read_only=name is None,
+        memory_limit=memory_limit,
+        temp_directory=temp_directory,
+        threads=threads,
+    )
     try:
         if name is not None:  # names the engine itself uses are refused before the fit
             Registry(engine, registry_schema).check_model_name(name)
@@ -238,7 +246,7 @@ def scoring_sql(
     from indb.spec import Source
 
     target = dialect_for(dialect)
-    engine = connect(db)
+    engine = connect(db, read_only=True)
     try:
         reg = Registry(engine, registry_schema)
         model = reg.model(name)
@@ -319,7 +327,9 @@ def dry_run(
     given = {"source": source, "response": response, "family": family, "link": link}
     O.check_options({**given, **options}, {**FIT_ARGUMENTS, **SPEC_OPTIONS, **ENGINE_OPTIONS})
     spec = ModelSpec.build(source, response, family, link, **spec_kw)
-    engine = connect(db, **{k: v for k, v in options.items() if k in ENGINE_OPTIONS})
+    engine = connect(
+        db, read_only=True, **{k: v for k, v in options.items() if k in ENGINE_OPTIONS}
+    )
     try:
         return plan_spec(spec, engine)
     finally:
@@ -327,7 +337,12 @@ def dry_run(
             engine.close()
 
 
-def registry(db: Any = None, schema: str = DEFAULT_SCHEMA) -> Registry:
-    """A registry handle on ``db`` (the caller closes ``registry.engine`` when done)."""
-    engine = db if isinstance(db, Engine) else connect(db)
+def registry(db: Any = None, schema: str = DEFAULT_SCHEMA, *, read_only: bool = False) -> Registry:
+    """A registry handle on ``db`` (the caller closes ``registry.engine`` when done).
+
+    ``read_only=True`` opens a DuckDB file read-only: listing, loading and comparing work,
+    promote and drop fail. On a connection of the caller's, closing ``registry.engine``
+    puts back the settings indb changed on it.
+    """
+    engine = db if isinstance(db, Engine) else connect(db, read_only=read_only)
     return Registry(engine, schema)

@@ -254,7 +254,8 @@ database_option = click.option(
     metavar="DB",
     default=None,
     help="DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
-    "out to work in a fresh in-memory DuckDB database.",
+    "out to work in a fresh in-memory DuckDB database. A DuckDB file is opened read-only "
+    "unless --name writes to it.",
 )
 
 model_options = _apply(
@@ -400,7 +401,7 @@ registry_database_option = click.option(
     metavar="DB",
     required=True,
     help="Where the model registry lives: a DuckDB database file, or postgresql://..., "
-    "spark:local[N], sc://host:port.",
+    "spark:local[N], sc://host:port. Commands that only read open a DuckDB file read-only.",
 )
 
 execution_options = _apply(
@@ -740,9 +741,11 @@ def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
 
 
 @contextmanager
-def _open_registry(db: str, schema: str | None) -> Iterator[Registry]:
+def _open_registry(db: str, schema: str | None, *, writes: bool = False) -> Iterator[Registry]:
+    """The registry of ``db``; opened read-only unless the command ``writes`` to it (so the
+    reading commands work on a read-only filesystem or a file without write permission)."""
     _check_database_path(db, hint="the registry lives in the file a named fit wrote to")
-    reg = open_registry(db, schema or DEFAULT_SCHEMA)
+    reg = open_registry(db, schema or DEFAULT_SCHEMA, read_only=not writes)
     try:
         yield reg
     finally:
@@ -1182,7 +1185,7 @@ def promote_command(
 
     Promoting an earlier version is the roll-back.
     """
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         previous = reg.model(name)["live_version"]
         reg.promote(name, version, view_schema=view_schema)
         view = _view_label(reg.model(name))
@@ -1213,7 +1216,7 @@ def drop_command(
 ) -> None:
     """Drop VERSION of model NAME (its rows stay for audit; the live version cannot be
     dropped)."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         reg.drop(name, version)
     if as_json:
         click.echo(_dumps({"model": name, "version": version, "status": "dropped"}))

@@ -20,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import re
 import time
+import warnings
 from collections.abc import Iterator, Sequence
 from typing import Any
 
@@ -28,7 +29,7 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.dialect import Dialect
-from indb.engine import Engine, rows_to_columns
+from indb.engine import Engine, open_transaction_error, rows_to_columns
 from indb.errors import EngineError, UnsupportedError
 from indb.sqlexpr import as_operand, log_gamma_series
 
@@ -241,7 +242,11 @@ class PostgresEngine(Engine):
     ----------
     conninfo:
         A ``postgresql://`` URL, a libpq key/value DSN, or an open ``psycopg.Connection``
-        (used as is, not closed; its autocommit setting is left alone).
+        (used as is and not closed). A connection of the caller's must have no open
+        transaction (``SpecError`` otherwise, before anything runs); indb switches it to
+        autocommit while it works and :meth:`close` puts back its autocommit flag and the
+        session settings changed here (``extra_float_digits``,
+        ``standard_conforming_strings``).
 
     Queries run in autocommit mode; :meth:`transaction` wraps write-back statements in one
     real transaction (all or nothing).
@@ -255,9 +260,14 @@ class PostgresEngine(Engine):
                 "PostgreSQL needs psycopg 3: pip install 'indb[postgres]'"
             ) from err
         self._psycopg = psycopg
+        #: a caller's settings as found (name -> text), and its autocommit flag: put back by
+        #: close()
+        self._found: dict[str, str] = {}
+        self._autocommit_found: bool | None = None
         if isinstance(conninfo, psycopg.Connection):
             self.con = conninfo
             self._owned = False
+            self._borrow()
         else:
             try:
                 self.con = psycopg.connect(str(conninfo), autocommit=True)
@@ -267,12 +277,61 @@ class PostgresEngine(Engine):
                     f"cannot connect to PostgreSQL at {redact(str(conninfo))!r}: {first}"
                 ) from err
             self._owned = True
-        self.dialect = PostgresDialect(int(self.con.info.server_version))
-        self._types: dict[int, tuple[str, str]] = {}
-        # Exact doubles in text results (the default since PostgreSQL 12, set for older
-        # servers) and backslashes in string literals taken literally, as sqlglot writes them.
-        self.execute("SET extra_float_digits = 3")
-        self.execute("SET standard_conforming_strings = on")
+        try:
+            self.dialect = PostgresDialect(int(self.con.info.server_version))
+            self._types: dict[int, tuple[str, str]] = {}
+            # Exact doubles in text results (the default since PostgreSQL 12, set for older
+            # servers) and backslashes in string literals taken literally, as sqlglot writes
+            # them.
+            self._set("extra_float_digits", "3")
+            self._set("standard_conforming_strings", "on")
+        except BaseException:
+            self.close()
+            raise
+
+    def _borrow(self) -> None:
+        """Take a caller's connection: refuse an open transaction, then run in autocommit.
+
+        Without autocommit, indb's first query would open a transaction that stays open on
+        the caller's connection (holding locks), the write-back would become a savepoint
+        that only the caller's COMMIT makes durable, and a failed probe query would abort
+        it. psycopg lets autocommit change only outside a transaction, which was just checked.
+        """
+        from psycopg.pq import TransactionStatus
+
+        status = self.con.info.transaction_status
+        if status == TransactionStatus.UNKNOWN:
+            raise EngineError("the PostgreSQL connection passed as db= is closed or broken")
+        states = {
+            TransactionStatus.INTRANS: "an open transaction",
+            TransactionStatus.INERROR: "a failed transaction",
+            TransactionStatus.ACTIVE: "a command running",
+        }
+        if status in states:
+            raise open_transaction_error("PostgreSQL", states[status])
+        if not self.con.autocommit:
+            self._autocommit_found = False
+            self.con.autocommit = True
+
+    def _set(self, name: str, value: str) -> None:
+        """Set a session setting when it differs; on a caller's connection remember it.
+
+        ``set_config`` with bound parameters: names and values are never pasted into SQL.
+        """
+        current = self._run_params("SELECT current_setting(%s)", (name,))[0][0]
+        if str(current) == value:
+            return
+        if not self._owned:
+            self._found.setdefault(name, str(current))
+        self._run_params("SELECT set_config(%s, %s, false)", (name, value))
+
+    def _run_params(self, sql: str, params: tuple[Any, ...]) -> list[tuple[Any, ...]]:
+        try:
+            with self.con.cursor() as cur:
+                cur.execute(sql, params)
+                return cur.fetchall()
+        except self._psycopg.Error as err:
+            raise _wrap(err, sql) from err
 
     def _run(self, sql: str) -> tuple[list[str], list[tuple[Any, ...]]]:
         t0 = time.perf_counter()
@@ -363,8 +422,30 @@ class PostgresEngine(Engine):
             raise _wrap(err, None) from err
 
     def close(self) -> None:
+        """Close a connection this engine opened; on a caller's, put back what it changed."""
         if self._owned:
             self.con.close()
+            return
+        failed: list[str] = []
+        for name, value in reversed(list(self._found.items())):
+            try:
+                self._run_params("SELECT set_config(%s, %s, false)", (name, value))
+            except EngineError as err:
+                failed.append(f"{name} (was {value!r}: {err})")
+        self._found.clear()
+        if self._autocommit_found is not None:
+            try:
+                self.con.autocommit = self._autocommit_found
+            except self._psycopg.Error as err:
+                failed.append(f"autocommit (was {self._autocommit_found}: {err})")
+            self._autocommit_found = None
+        if failed:
+            warnings.warn(
+                "indb could not put back these settings of your PostgreSQL connection: "
+                + "; ".join(failed),
+                RuntimeWarning,
+                stacklevel=3,
+            )
 
 
 def _table_args(parts: Sequence[str]) -> dict[str, exp.Identifier]:

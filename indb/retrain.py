@@ -145,7 +145,7 @@ def retrain(
     deploy = spec_file.deploy
     engine_opts = dict(spec_file.engine)
     db = engine_opts.pop("db", None)
-    engine = connect(db, **engine_opts)
+    engine = connect(db, read_only=dry_run, **engine_opts)
     try:
         reg = Registry(engine, deploy.get("registry_schema", DEFAULT_SCHEMA))
         reg.check_model_name(name)  # before the fit, not after it

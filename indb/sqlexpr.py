@@ -380,10 +380,9 @@ def parse_expression(sql: str, dialect: str) -> Expr:
         raise ValueError("it is not a single expression (it holds more than one statement)")
     tree = trees[0]
     banned = (exp.Block, exp.Command, exp.DDL, exp.DML, exp.Query)
+    statement = "it is not a per-row expression (statements and subqueries are not allowed)"
     if isinstance(tree, banned) or any(isinstance(n, banned) for n in tree.walk()):
-        raise ValueError(
-            "it is not a per-row expression (statements and subqueries are not allowed)"
-        )
+        raise ValueError(statement)
     # every name must be visible to the column check: no aliases, stars, COLUMNS(...),
     # positional references or bind parameters
     hidden = {"Alias", "Star", "Placeholder", "Parameter", "Columns", "PositionalColumn"}
@@ -395,6 +394,11 @@ def parse_expression(sql: str, dialect: str) -> Expr:
                 "only column names, literals, operators and functions are allowed "
                 f"(found {n.sql(dialect)!r})"
             )
+    # A scalar expression is a sqlglot Condition (columns, literals, operators, functions,
+    # CASE, casts). Other statements parse as other node types (INSTALL x, ATTACH '..',
+    # PRAGMA, USE, SET, ...): refused here as the user's input, not left for the engine.
+    if not isinstance(tree, exp.Condition):
+        raise ValueError(statement)
     return tree
 
 
