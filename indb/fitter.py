@@ -1586,11 +1586,12 @@ def _log_likelihood(ctx, design, run, beta, deviance_fit, summary, phi_fit) -> f
         phi = dev / summary.n_df  # maximum-likelihood dispersion
         phi_fit = deviance_fit / summary.n_df
     if not (math.isfinite(phi) and phi > 0 and math.isfinite(dev)):
-        if fam.name in _LOG_PHI_FAMILIES and summary.ll_sums and math.isfinite(phi_fit):
+        rescaled = math.isfinite(phi_fit) and phi_fit > 0 and math.isfinite(deviance_fit)
+        if fam.name in _LOG_PHI_FAMILIES and summary.ll_sums and rescaled:
             ll = fam.log_likelihood(
                 deviance_fit, phi_fit, summary.ll_sums, summary.n_df, summary.constant_weight
             )
-            if ll is not None and phi_fit > 0:
+            if ll is not None:
                 return float(ll) + 0.5 * summary.n_df * sc.log2_deviance_factor * math.log(2.0)
         return math.nan
     if summary.ll_sums or not fam.saturated_sql(S.col("y"), S.col("pw"), None):
