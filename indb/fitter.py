@@ -353,8 +353,9 @@ def _precision_notes(
     spec = ctx.spec
     _, mean, sd, _ = _moments(row, P.RESPONSE_KEY, shifts)
     lost = _digits(mean, sd)
-    if ctx.scaling.shift == 0.0 and lost > PRECISION_DIGITS:
-        if spec.family.variance_power == 0.0 and isinstance(spec.link, IdentityLink):
+    if not _centres_response(spec) and lost > PRECISION_DIGITS:
+        gaussian_identity = spec.family.name == "gaussian" and isinstance(spec.link, IdentityLink)
+        if gaussian_identity and not spec.intercept:
             why = "the model has no intercept to take a shift of it"
             fix = "fit an intercept, or subtract a constant from it in the source query"
         else:
@@ -362,7 +363,10 @@ def _precision_notes(
                 f"family {spec.family.name!r} with link {spec.link.describe()!r} cannot be "
                 "fitted to a shifted response"
             )
-            fix = "check that the model suits a response that varies this little"
+            fix = (
+                "model its variation about a constant instead (gaussian with the identity "
+                "link and an intercept is centred internally)"
+            )
         notes.append(
             f"response column {ctx.inputs.response!r} varies by only {sd:.3g} around "
             f"{mean:.10g} and {why}, so about {lost:.0f} of 16 significant digits are lost in "
@@ -673,7 +677,7 @@ def _irls(
                 break
             if halvings >= MAX_HALVINGS:
                 _check_repeatable(run, scan, beta_prev, dev_old)
-                raise SpecError(_halving_failure(spec, sums))
+                raise SpecError(_halving_failure(spec, sums, run.scaling))
             beta = 0.5 * (beta + beta_prev)
             halvings += 1
         if stalled:
@@ -737,11 +741,11 @@ def _check_repeatable(
     )
 
 
-def _halving_failure(spec: ModelSpec, sums: solver.Sums) -> str:
+def _halving_failure(spec: ModelSpec, sums: solver.Sums, scaling: Scaling) -> str:
     msg = (
         f"IRLS step-halving failed after {MAX_HALVINGS} halvings (deviance "
-        f"{sums.deviance:g}, {sums.bad} rows with invalid means); the model may be "
-        "unsuitable for the data (check the link and family)"
+        f"{scaling.unscale(sums.deviance):g}, {sums.bad} rows with invalid means); the model "
+        "may be unsuitable for the data (check the link and family)"
     )
     if spec.offset is not None:
         # an offset is added to every row's linear predictor unscaled: one on the wrong
@@ -928,9 +932,9 @@ def _response_scaling(spec: ModelSpec, head: dict[str, object]) -> Scaling:
     hi = _finite_or_none(head.get(f"{P.RESPONSE_KEY}_hi"))
     if lo is None or hi is None:
         return Scaling()  # no finite response among the first rows: the profile explains
-    shift = lo if p == 0.0 and exponent == 1.0 and spec.intercept else 0.0
+    shift = lo if _centres_response(spec) else 0.0
     size = hi - lo if shift != 0.0 else max(abs(lo), abs(hi))
-    factor = 1.0 / _power_of_two(size)
+    factor = 1.0 / _power_of_two(size if math.isfinite(size) else max(abs(lo), abs(hi)))
     if factor == 1.0 or (exponent is None and not spec.intercept):
         # a log link moves ln(factor) into the intercept: without one, leave y alone
         return Scaling(shift=shift, variance_power=p)
@@ -940,6 +944,19 @@ def _response_scaling(spec: ModelSpec, head: dict[str, object]) -> Scaling:
         coef_factor=1.0 if exponent is None else factor**exponent,
         log_shift=math.log(factor) if exponent is None else 0.0,
         variance_power=p,
+    )
+
+
+def _centres_response(spec: ModelSpec) -> bool:
+    """Whether the fit runs on y - c: a gaussian-variance family with the identity link and
+    an intercept to take c back (not a positive-mean one such as tweedie with power 0,
+    whose response must stay > 0)."""
+    fam = spec.family
+    return (
+        fam.variance_power == 0.0
+        and isinstance(spec.link, IdentityLink)
+        and spec.intercept
+        and not fam.positive_mean
     )
 
 
@@ -1184,7 +1201,8 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
         msg = (
             f"IRLS stopped after {sum(r.phase == 'fit' for r in run.log)} iterations: "
             "step-halving cannot lower the "
-            f"deviance ({state.sums.deviance:.6g}) any further while the next step still "
+            f"deviance ({run.scaling.unscale(state.sums.deviance):.6g}) any further while the "
+            "next step still "
             "moves coefficients by many standard errors; the fit sits on the boundary "
             "(fitted means at the edge of the family's range, e.g. Poisson means at 0, "
             "probabilities at 0 or 1), so some estimates drift to infinity and their "
