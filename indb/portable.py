@@ -48,6 +48,11 @@ class _Context:
     source: Dialect
     target: Dialect
     types: Mapping[str, str] | None
+    texts: Mapping[int, str]  # each original node's text, for messages
+
+    def shown(self, node: exp.Expression) -> str:
+        """The node as the user wrote it (its children may be converted by now)."""
+        return self.texts.get(id(node)) or node.sql(self.source.sqlglot_name)
 
     @property
     def strict(self) -> bool:
@@ -94,7 +99,8 @@ def portable_expression(
         tree = S.parse_expression(text, source.sqlglot_name)
     except ValueError as err:
         raise SpecError(f"cannot parse the stored {role} expression {text!r}: {err}") from None
-    ctx = _Context(role, text, source, target, column_types)
+    texts = {id(n): n.sql(source.sqlglot_name) for n in tree.walk()}
+    ctx = _Context(role, text, source, target, column_types, texts)
     kinds: dict[int, str | None] = {}
     # children before parents, so each rule sees its operands already converted
     for node in reversed(list(tree.walk(bfs=False))):
@@ -206,7 +212,7 @@ def _convert(
         k = _combine(kind(node.this), kind(node.expression))
         if k != INT and ctx.strict:
             raise ctx.refuse(
-                f"{node.sql(ctx.source.sqlglot_name)} takes a remainder of operands that are "
+                f"{ctx.shown(node)} takes a remainder of operands that are "
                 "not both known integer columns or literals (engines differ for others)"
             )
         return node, k
@@ -226,7 +232,7 @@ def _convert(
             return S.as_double(node.this), REAL
         if ctx.strict:
             raise ctx.refuse(
-                f"{node.sql(ctx.source.sqlglot_name)} casts to {to.sql(ctx.source.sqlglot_name)}"
+                f"{ctx.shown(node)} casts to {to.sql(ctx.source.sqlglot_name)}"
                 " (engines round and overflow differently); only CAST(... AS DOUBLE) is carried"
             )
         return node, INT if to.is_type(*exp.DataType.INTEGER_TYPES) else None
@@ -240,7 +246,7 @@ def _convert(
         return node, None
     if ctx.strict:
         raise ctx.refuse(
-            f"{node.sql(ctx.source.sqlglot_name)!r} is not among the operators and functions "
+            f"{ctx.shown(node)!r} is not among the operators and functions "
             "indb knows to mean the same on every engine (+ - * / // % ^, ln, log, log10, "
             "sqrt, exp, abs, CAST(... AS DOUBLE), CASE, comparisons, COALESCE, GREATEST, "
             "LEAST, NULLIF)"
@@ -290,7 +296,7 @@ def _slash(node: exp.Div, ctx: _Context, ka: str | None, kb: str | None) -> tupl
         return exp.IntDiv(this=a, expression=b), INT
     if ctx.strict:
         raise ctx.refuse(
-            f"{node.sql(ctx.source.sqlglot_name)} divides integers with truncation on "
+            f"{ctx.shown(node)} divides integers with truncation on "
             f"{ctx.source.name} and exactly otherwise, and the operands' types are not "
             "known; write CAST(... AS DOUBLE) around one operand"
         )
@@ -312,7 +318,7 @@ def _int_div(
             if REAL not in (ka, kb)
             else f"{ctx.source.name} truncates the quotient of non-integers"
         )
-        raise ctx.refuse(f"{node.sql(ctx.source.sqlglot_name)}: {why}")
+        raise ctx.refuse(f"{ctx.shown(node)}: {why}")
     return node, None
 
 

@@ -131,8 +131,9 @@ class SparkDialect(Dialect):
         return exp.Anonymous(this="PERCENTILE", expressions=[x, S.num(q)])
 
     # Spark's `/` is true division and returns NULL for a zero divisor (an error in ANSI mode,
-    # the default from Spark 4); ln and log return NULL for x <= 0; sqrt, exp and pow follow
-    # Java's Math (IEEE-754). `DIV` truncates (its result is a BIGINT).
+    # the default from Spark 4); ln and log return NULL for x <= 0; sqrt and exp follow Java's
+    # Math (IEEE-754), and so does pow except 1 ^ NaN and (-1) ^ +/-inf (NaN in Java, 1 in C).
+    # `DIV` truncates (its result is a BIGINT).
     log_nonpositive = "null"
     zero_division = "null"
 
@@ -147,7 +148,8 @@ class SparkDialect(Dialect):
         if isinstance(node, S.IeeeExp):
             return exp.Exp(this=a)
         if isinstance(node, S.IeeePow):
-            return exp.Pow(this=a, expression=node.expression)
+            b = node.expression
+            return S.ieee_pow_unit_base(a, b, exp.Pow(this=a.copy(), expression=b.copy()))
         return S.ieee_div_guarded(a, node.expression)
 
     def file_scan(self, path: str) -> exp.Expression:

@@ -576,10 +576,10 @@ def ieee_sqrt_guarded(x: Expr) -> Expr:
 
 
 def _positive_sign(z: Expr) -> Expr:
-    """TRUE when the zero ``z`` is +0.0, FALSE for -0.0: atan2(+0, -1) = pi, atan2(-0, -1) =
-    -pi (C's and Java's atan2 keep the sign of a zero)."""
-    z = z if isinstance(z, exp.Cast) and z.to.is_type(exp.DataType.Type.DOUBLE) else as_double(z)
-    return gt(exp.Anonymous(this="ATAN2", expressions=[z, num(-1.0)]), num(0.0))
+    """TRUE when the zero ``z`` is +0.0, FALSE for -0.0, from its text ('-0', '-0.0'): the
+    one test of a zero's sign that DuckDB, PostgreSQL and Spark all keep (Spark's ATAN2
+    adds 0.0 to its arguments, which turns -0.0 into +0.0)."""
+    return not_(exp.Like(this=as_text(z), expression=text("-%")))
 
 
 def _nonzero_number(e: Expr) -> bool:
@@ -620,9 +620,20 @@ def ieee_exp_guarded(x: Expr) -> Expr:
     )
 
 
+def ieee_pow_unit_base(a: Expr, b: Expr, pow_: Expr) -> Expr:
+    """``pow_`` (a power of a to b) with C's 1 ^ y = 1 for every y, NaN included, and
+    (-1) ^ +/-inf = 1, where Java's Math.pow (Spark) answers NaN."""
+    unit = or_(
+        and_(eq(a, num(1.0)), not_(is_null(b.copy()))),  # NULL stays NULL
+        and_(eq(a.copy(), num(-1.0)), eq(abs_(b), double_const("Infinity"))),
+    )
+    return case([(unit, num(1.0))], pow_)
+
+
 def ieee_pow_guarded(a: Expr, b: Expr) -> Expr:
-    """power(a, b) with C's results where PostgreSQL raises: NaN for a < 0 and a non-integer
-    b; for a zero a and b < 0, +inf, or -inf when a is -0.0 and b an odd integer."""
+    """power(a, b) with C's results where PostgreSQL raises: NaN for a finite a < 0 and a
+    non-integer b (for a = -inf: +inf if b > 0, else 0); for a zero a and b < 0, +inf, or
+    -inf when a is -0.0 and b an odd integer. Overflow still raises on PostgreSQL."""
     whole = eq(b.copy(), exp.Floor(this=b.copy()))
     odd = and_(
         whole,
@@ -635,9 +646,14 @@ def ieee_pow_guarded(a: Expr, b: Expr) -> Expr:
         [(and_(odd, not_(_positive_sign(a.copy()))), double_const("-Infinity"))],
         double_const("Infinity"),
     )
+    minus_inf = case([(gt(b.copy(), num(0.0)), double_const("Infinity"))], num(0.0))
     return case(
         [
             (and_(eq(a.copy(), num(0.0)), lt(b.copy(), num(0.0))), zero_base),
+            (
+                and_(eq(a.copy(), double_const("-Infinity")), not_(whole.copy())),
+                minus_inf,
+            ),
             (and_(lt(a.copy(), num(0.0)), not_(whole.copy())), double_const("NaN")),
         ],
         power(a, b),
