@@ -3,7 +3,10 @@
 Each link states its formula, the inverse ``mu = g^-1(eta)`` and ``dmu/deta``. The SQL forms
 clamp arguments of ``exp`` so no engine overflows (PostgreSQL raises on overflow where
 DuckDB and Spark return infinity); rows whose eta leaves the link's valid domain are flagged
-by :meth:`Link.eta_ok` so IRLS can halve its step instead of producing NaN.
+by :meth:`Link.eta_ok` so IRLS can halve its step instead of producing NaN. The clamp assumes
+a number (the fit's profile rejects NaN and infinite inputs and drops NULLs); scoring, whose
+rows nobody checked, goes through :meth:`Link.mean_sql`, which gives no mean for NULL, NaN,
+infinite or out-of-range eta.
 """
 
 from __future__ import annotations

@@ -3,7 +3,8 @@
 A table ``pol(id, age INT, region TEXT, exposure DOUBLE, claims INT)`` of 5,000 rows drawn
 with a fixed seed (plus the responses of other families from the same rows), rows to score
 that exercise every way a numeric input can fail, the treatment-coded design statsmodels
-fits, and the documented rule for which rows get a mean.
+fits, and the documented rule for which rows get a mean. Also the special doubles (NaN,
++/-inf, +/-0, NULL) on which the ``Ieee*`` nodes are checked against numpy on every engine.
 """
 
 from __future__ import annotations
