@@ -281,26 +281,34 @@ def _column(node: exp.Column, ctx: _Context) -> tuple[exp.Column, str | None]:
     return node, REAL if k == "float4" else k
 
 
-def _true_division(a: Expr, b: Expr, ctx: _Context) -> Expr:
-    div = S.IeeeDiv(this=S.as_double(a), expression=S.as_double(b.copy()))
-    if ctx.source.zero_division == "null":  # keep the source engine's NULL for x / 0
-        return S.case([(S.ne(b, S.num(0.0)), div)])
+def _zero_null(ctx: _Context, b: Expr, div: Expr) -> Expr:
+    """``div`` (a division by ``b``), NULL for b = 0 where the source engine returns NULL."""
+    if ctx.source.zero_division == "null":
+        return S.case([(S.ne(b.copy(), S.num(0.0)), div)])
     return div
+
+
+def _true_division(a: Expr, b: Expr, ctx: _Context) -> Expr:
+    return _zero_null(ctx, b, S.IeeeDiv(this=S.as_double(a), expression=S.as_double(b.copy())))
 
 
 def _slash(node: exp.Div, ctx: _Context, ka: str | None, kb: str | None) -> tuple[Expr, str | None]:
     a, b = node.this, node.expression
-    if ctx.source.integer_slash == "exact" or REAL in (ka, kb):
+    exact = ctx.source.integer_slash == "exact"
+    if not ctx.strict:
+        # the engine's own division of these operands (a FLOAT stays a FLOAT on DuckDB, two
+        # integers truncate on PostgreSQL); only a zero divisor gives IEEE's answer
+        kind = REAL if exact or REAL in (ka, kb) else _combine(ka, kb)
+        return _zero_null(ctx, b, S.IeeeDiv(this=a, expression=b.copy())), kind
+    if exact or REAL in (ka, kb):
         return _true_division(a, b, ctx), REAL
     if ka == kb == INT:  # PostgreSQL: integer / integer truncates toward zero
         return exp.IntDiv(this=a, expression=b), INT
-    if ctx.strict:
-        raise ctx.refuse(
-            f"{ctx.shown(node)} divides integers with truncation on "
-            f"{ctx.source.name} and exactly otherwise, and the operands' types are not "
-            "known; write CAST(... AS DOUBLE) around one operand"
-        )
-    return S.IeeeDiv(this=a, expression=b), None
+    raise ctx.refuse(
+        f"{ctx.shown(node)} divides integers with truncation on "
+        f"{ctx.source.name} and exactly otherwise, and the operands' types are not "
+        "known; write CAST(... AS DOUBLE) around one operand"
+    )
 
 
 def _int_div(

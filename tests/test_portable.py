@@ -144,15 +144,18 @@ def test_untranslatable_expressions_are_refused(
 
 
 def test_on_its_own_engine_an_expression_is_kept_as_written() -> None:
-    """No refusal without a change of dialect: DuckDB reads its own FLOOR, casts and `//`."""
+    """No refusal without a change of dialect, and the engine's own arithmetic: DuckDB reads
+    its own FLOOR, casts and `//`, and divides a FLOAT in single precision as in the fit."""
     con = duckdb.connect()
-    con.execute("CREATE TABLE t AS SELECT 47 AS age, 7.5::DOUBLE AS x, 2.5::FLOAT AS f")
+    con.execute("CREATE TABLE t AS SELECT 47 AS age, 7.5::DOUBLE AS x, 0.1::FLOAT AS f")
+    types = {"age": "INTEGER", "x": "DOUBLE", "f": "FLOAT"}
     d = DuckDBDialect()
-    for text in ("floor(age / 10)", "CAST(age / 10 AS INT)", "age // 10", "x // 2", "ln(f)"):
-        tree = portable_expression(text, "offset", d, d, None)
-        got = con.execute(f"SELECT {d.render(tree)} FROM t").fetchone()[0]
-        want = con.execute(f"SELECT {text} FROM t").fetchone()[0]
-        assert got == pytest.approx(want, rel=1e-15), text
+    texts = ("floor(age / 10)", "CAST(age / 10 AS INT)", "age // 10", "x // 2", "ln(f)", "f / 3")
+    for text in texts:
+        for known in (types, None):
+            rendered = d.render(portable_expression(text, "offset", d, d, known))
+            got = con.execute(f"SELECT {rendered}, typeof({rendered}) FROM t").fetchone()
+            assert got == con.execute(f"SELECT {text}, typeof({text}) FROM t").fetchone(), text
 
 
 # -- the registry: versions stored before the dialect was recorded ---------------------------

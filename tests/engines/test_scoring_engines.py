@@ -13,6 +13,8 @@ DuckDB with their meaning (issue 11, items 1 and 2).
 * The ``Ieee*`` nodes rendered for each engine give numpy's (IEEE-754) answers on NaN,
   +/-inf, +/-0 and negative arguments, where the engines' own functions raise or return
   NULL.
+* The other direction: expressions written for PostgreSQL or Spark, evaluated there
+  natively, against DuckDB running their translation.
 
 Data: the issue's reproduction table (``tests/scoring_cases.py``), 2,000 rows.
 """
@@ -413,3 +415,78 @@ def test_ieee_nodes_on_spark(spark_local: Any, name: str) -> None:
     d = SparkDialect()
     got = list(spark_local.sql("SELECT " + ", ".join(d.render(e) for e in exprs)).collect()[0])
     same(got, want)
+
+
+# -- expressions written for PostgreSQL or Spark, read on DuckDB -------------------------------
+
+AGES = [47, -7, 0, 40, 123]
+XS = [2.5, 0.5, 1.0, 40.0, 1e-3]
+
+
+@pytest.mark.parametrize(
+    "text",
+    ["age / 40", "age / 40.0", "ln(x) + age / 7", "log(x)", "x ^ 2 + age % 7", "abs(age) / 3"],
+)
+def test_postgres_expressions_keep_their_meaning_on_duckdb(pg_con: Any, text: str) -> None:
+    """The other direction: PostgreSQL's own result for each row against DuckDB running the
+    translation (integer division truncates, log is base 10, ^ is a power)."""
+    from indb.dialect import DuckDBDialect
+    from indb.portable import portable_expression
+
+    rows = list(zip(AGES, XS, strict=True))
+    pg_table(pg_con, "expr_rows", [("age", "INTEGER"), ("x", "DOUBLE")], rows)
+    with pg_con.cursor() as cur:
+        cur.execute(f"SELECT CAST({text} AS double precision) FROM expr_rows ORDER BY age")
+        want = [r[0] for r in cur.fetchall()]
+    duck = DuckDBDialect()
+    tree = portable_expression(
+        text, "offset", PostgresDialect(), duck, {"age": "int4", "x": "float8"}
+    )
+    con = duckdb.connect()
+    duck_table(con, "expr_rows", [("age", "INTEGER"), ("x", "DOUBLE")], rows)
+    got = [
+        r[0]
+        for r in con.execute(
+            f"SELECT CAST({duck.render(tree)} AS DOUBLE) FROM expr_rows ORDER BY age"
+        ).fetchall()
+    ]
+    assert_allclose(got, want, rtol=PRINTED_RTOL)
+
+
+@pytest.mark.parametrize(
+    "text", ["ln(x)", "log(x)", "log(10, x)", "x / (age - 41)", "age div 7", "2 * x ^ 2"]
+)
+def test_spark_expressions_keep_their_meaning_on_duckdb(
+    spark_local: Any, tmp_path: Path, text: str
+) -> None:
+    """Spark's own result against DuckDB running the translation (log is natural, ln of a
+    non-positive number is NULL, DIV truncates, ^ is XOR: refused)."""
+    from indb.dialect import DuckDBDialect
+    from indb.errors import UnsupportedError
+    from indb.portable import portable_expression
+
+    xs = [*XS[:3], 0.0, -1.0]  # Spark answers NULL for ln(0) and ln(-1)
+    rows = list(zip(AGES, xs, strict=True))
+    duck = DuckDBDialect()
+    if "^" in text:
+        with pytest.raises(UnsupportedError, match="is not among the operators"):
+            portable_expression(text, "offset", SparkDialect(), duck, {"age": "int", "x": "double"})
+        return
+    path = parquet_table(tmp_path / "expr.parquet", [("age", "INTEGER"), ("x", "DOUBLE")], rows)
+    df = spark_local.sql(
+        f"SELECT CAST(({text}) AS DOUBLE) AS v FROM parquet.`{path}` ORDER BY age"
+    ).collect()
+    want = [r[0] for r in df]
+    tree = portable_expression(text, "offset", SparkDialect(), duck, {"age": "int", "x": "double"})
+    con = duckdb.connect()
+    duck_table(con, "expr_rows", [("age", "INTEGER"), ("x", "DOUBLE")], rows)
+    got = [
+        r[0]
+        for r in con.execute(
+            f"SELECT CAST({duck.render(tree)} AS DOUBLE) FROM expr_rows ORDER BY age"
+        ).fetchall()
+    ]
+    assert [g is None for g in got] == [w is None for w in want], (got, want)
+    assert_allclose(
+        [g for g in got if g is not None], [w for w in want if w is not None], rtol=PRINTED_RTOL
+    )
