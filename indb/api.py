@@ -240,22 +240,25 @@ def scoring_sql(
 ) -> str:
     """CREATE VIEW text that scores a stored model version, rendered for ``dialect``.
 
-    ``source`` defaults to the model's scoring source; ``view_name`` to the model name.
+    ``source`` defaults to the model's scoring source; ``view_name`` to the model name. The
+    stored offset is read in the dialect it was written in and carried over with its
+    meaning; what cannot be raises :class:`~indb.errors.UnsupportedError`.
     """
     from indb.dialect import dialect_for
-    from indb.spec import Source
 
     target = dialect_for(dialect)
     engine = connect(db, read_only=True)
     try:
         reg = Registry(engine, registry_schema)
-        model = reg.model(name)
-        result = reg.load(name, version)
-        src = Source.parse(source or reg.scoring_source_for(model, target))
-        rel = target.relation(src)
-        use_intervals = bool(model.get("intervals")) if intervals is None else intervals
-        query = W.scoring_query(result, target, rel, intervals=use_intervals)
-        return target.render(W.create_view(None, view_name or name, query)) + ";"
+        sql = reg.scoring_sql(
+            name,
+            target,
+            version=version,
+            source=source,
+            intervals=intervals,
+            view_name=view_name or name,
+        )
+        return sql + ";"
     finally:
         if engine is not db:
             engine.close()

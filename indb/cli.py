@@ -757,10 +757,6 @@ def _view_label(model_row: dict[str, Any]) -> str:
     return f"{schema}.{model_row['view_name']}" if schema else str(model_row["view_name"])
 
 
-def _relation(dialect: Dialect, text: str) -> Any:
-    return dialect.relation(Source.parse(text))
-
-
 def _dialect(name: str) -> Dialect:
     if name.strip().lower() not in (*SCORING_DIALECTS, "postgresql"):
         raise SpecError(
@@ -768,28 +764,6 @@ def _dialect(name: str) -> Dialect:
             f"{', '.join(SCORING_DIALECTS)}"
         )
     return dialect_for(name)
-
-
-def _scoring_sql(
-    result: FitResult,
-    model_row: dict[str, Any],
-    dialect: Dialect,
-    source: str | None,
-    intervals: bool | None,
-) -> str:
-    text = source or model_row.get("score_source")
-    if not text:
-        raise SpecError(
-            f"model {model_row['model_name']!r} has no scoring source; give --source SRC"
-        )
-    query = writeback.scoring_query(
-        result,
-        dialect,
-        _relation(dialect, text),
-        intervals=bool(model_row.get("intervals")) if intervals is None else intervals,
-    )
-    view = writeback.create_view(model_row.get("view_schema"), model_row["view_name"], query)
-    return dialect.render(view)
 
 
 def _compare_text(cmp: dict[str, Any]) -> str:
@@ -1268,9 +1242,14 @@ def scoring_sql_command(
         target = _dialect(dialect)
         with _open_registry(db, registry_schema) as reg:
             row = reg.model(name)
-            result = reg.load(name, version)
-            source = source or reg.scoring_source_for(row, target)
-        sql = _scoring_sql(result, row, target, source, intervals)
+            sql = reg.scoring_sql(
+                name,
+                target,
+                version=version,
+                source=source,
+                intervals=intervals,
+                view_schema=row.get("view_schema"),
+            )
     if as_json:
         chosen = row["live_version"] if version is None else version
         click.echo(

@@ -69,7 +69,16 @@ class Dialect:
             if node.share >= 1.0:
                 return S.true()
             return self.row_pick(list(node.expressions), node.share)
+        if isinstance(node, S.IEEE_NODES):
+            return self.ieee(node)
         return node
+
+    def ieee(self, node: exp.Expression) -> exp.Expression:
+        """An ``Ieee*`` node (see :mod:`indb.sqlexpr`) as SQL that gives IEEE-754's NaN and
+        infinities where this engine would raise or return NULL."""
+        raise UnsupportedError(
+            f"engine {self.name!r} has no IEEE-754 translation for {type(node).__name__}"
+        )
 
     # -- translations (override per engine) --------------------------------------------------
     def log_gamma(self, x: exp.Expression) -> exp.Expression:
@@ -100,6 +109,16 @@ class Dialect:
 
     def file_scan(self, path: str) -> exp.Expression:
         raise UnsupportedError(f"engine {self.name!r} cannot read files directly: {path}")
+
+    # -- how the engine evaluates a user's expression (read by indb.portable) ---------------
+    #: ``/`` of two integers: "exact" (true division, a double) or "truncate" (toward zero)
+    integer_slash = "exact"
+    #: the integer-division operator (DuckDB ``//``, Spark ``DIV``, PostgreSQL ``div()``) with
+    #: a non-integer operand: "exact" (plain division) or "truncate"
+    int_div_fraction = "truncate"
+    #: ln and log of x <= 0, and division by zero: "ieee" (NaN, +/-inf), "error" or "null"
+    log_nonpositive = "ieee"
+    zero_division = "ieee"
 
     # -- write-back ---------------------------------------------------------------------------
     supports_macros = False
@@ -299,6 +318,25 @@ class DuckDBDialect(Dialect):
 
     def quantile(self, x, q):
         return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
+
+    # DuckDB's `//` divides integers (truncating) and divides anything else exactly
+    # (7.5 // 2 = 3.75); its `/` is true division, and ln, sqrt, exp, pow and division by
+    # zero give IEEE-754's NaN and infinities (checked in tests/test_portable.py).
+    int_div_fraction = "exact"
+
+    def ieee(self, node):
+        a = node.this
+        if isinstance(node, S.IeeeLn):
+            return exp.Ln(this=a)
+        if isinstance(node, S.IeeeLog10):
+            return exp.Anonymous(this="LOG10", expressions=[a])
+        if isinstance(node, S.IeeeSqrt):
+            return exp.Sqrt(this=a)
+        if isinstance(node, S.IeeeExp):
+            return exp.Exp(this=a)
+        if isinstance(node, S.IeeePow):
+            return exp.Pow(this=a, expression=node.expression)
+        return S.div(a, node.expression)  # IeeeDiv
 
     supports_macros = True
 

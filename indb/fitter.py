@@ -1487,8 +1487,14 @@ def _result(
         condition_number=solver.condition_number(sums.xtwx, sol.aliased),
         warnings=tuple(warn_msgs),
         confidence=spec.confidence,
-        spec=spec.to_dict(),
-        design=design.to_dict(),
+        # the dialect and column types the user's expressions (offset, weights) were
+        # written against: scoring SQL for another engine reads them in that dialect
+        # (indb.portable)
+        spec={**spec.to_dict(), "sql_dialect": ctx.dialect.name},
+        design={
+            **design.to_dict(),
+            "column_types": _column_types((run.original_ctx or ctx).inputs),
+        },
         fingerprint={
             "rows": n_total,
             "rows_used": n_kept,
@@ -1564,6 +1570,13 @@ def _residual_df_message(ctx: P.PlanContext, summary: _Summary, rank: int, df: f
         msg + "; the dispersion cannot be estimated, so standard errors, t statistics, "
         "p-values and intervals are NaN"
     )
+
+
+def _column_types(inputs: Inputs) -> dict[str, str]:
+    """Type names of the source columns the model reads (its predictors and the columns of
+    its expressions), as the engine describes them."""
+    used = set(inputs.model_columns)
+    return {name: kind for name, kind in inputs.columns if name in used}
 
 
 def _levels_for(design: Design, c: DesignColumn) -> list[str | None]:

@@ -201,6 +201,27 @@ class PostgresDialect(Dialect):
         inf = exp.Cast(this=S.text("Infinity"), to=exp.DataType.build("DOUBLE"))
         return S.lt(S.abs_(x), inf)
 
+    # PostgreSQL's `/` truncates two integers; ln, log, sqrt, exp, power and division raise on
+    # arguments outside their domain ("cannot take logarithm of a negative number", "division
+    # by zero", "value out of range: overflow"), so the Ieee* nodes guard them with CASE.
+    integer_slash = "truncate"
+    log_nonpositive = "error"
+    zero_division = "error"
+
+    def ieee(self, node: exp.Expression) -> exp.Expression:
+        a = node.this
+        if isinstance(node, S.IeeeLn):
+            return S.ieee_log_guarded(a, exp.Ln(this=a.copy()))
+        if isinstance(node, S.IeeeLog10):
+            return S.ieee_log_guarded(a, exp.Anonymous(this="LOG10", expressions=[a.copy()]))
+        if isinstance(node, S.IeeeSqrt):
+            return S.ieee_sqrt_guarded(a)
+        if isinstance(node, S.IeeeExp):
+            return S.ieee_exp_guarded(a)
+        if isinstance(node, S.IeeePow):
+            return S.ieee_pow_guarded(a, node.expression)
+        return S.ieee_div_guarded(a, node.expression)
+
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         return exp.WithinGroup(
             this=exp.PercentileCont(this=S.num(q)),

@@ -7,6 +7,7 @@ the views exactly as they were.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import hashlib
 import json
@@ -19,7 +20,7 @@ from indb import sqlexpr as S
 from indb import writeback as W
 from indb.dialect import Dialect
 from indb.engine import Engine, qualify_source, relative_source
-from indb.errors import DeploymentWarning, EngineError, RegistryError, SpecError
+from indb.errors import DeploymentWarning, EngineError, RegistryError, SpecError, UnsupportedError
 from indb.results import FitResult
 from indb.spec import Source
 
@@ -139,7 +140,72 @@ class Registry:
 
     def load(self, name: str, version: int | None = None) -> FitResult:
         """The stored result of one version (the live one by default)."""
-        return FitResult.from_dict(json.loads(self._version_row(name, version)["result_json"]))
+        return self._result(self._version_row(name, version))
+
+    def _result(self, row: dict[str, Any]) -> FitResult:
+        """A version row's result. Versions stored before results recorded the dialect of
+        their expressions were fitted on this engine (``fit(name=...)`` writes where it
+        fits), so their offset is read in this engine's dialect."""
+        result = FitResult.from_dict(json.loads(row["result_json"]))
+        if result.spec.get("sql_dialect"):
+            return result
+        return dataclasses.replace(result, spec=self._spec_with_dialect(result.spec))
+
+    def _spec_with_dialect(self, spec: dict[str, Any]) -> dict[str, Any]:
+        return spec if spec.get("sql_dialect") else {**spec, "sql_dialect": self.d.name}
+
+    def scoring_sql(
+        self,
+        name: str,
+        target: Dialect,
+        *,
+        version: int | None = None,
+        source: str | None = None,
+        intervals: bool | None = None,
+        view_schema: str | None = None,
+        view_name: str | None = None,
+    ) -> str:
+        """CREATE VIEW text (no trailing semicolon) that scores with a stored version on the
+        engine of ``target``.
+
+        The offset is read in the dialect it was written in and carried over with its
+        meaning (:mod:`indb.portable`). ``source`` (a table, file or query written for
+        ``target``) defaults to the model's scoring source; a stored query is only reused on
+        the engine it was written for.
+        """
+        model = self.model(name)
+        result = self.load(name, version)
+        if not result.design.get("column_types"):
+            # a version stored before fits recorded the types: describe the source here
+            result = dataclasses.replace(
+                result, design={**result.design, "column_types": self._source_types(model)}
+            )
+        text = source or self.scoring_source_for(model, target)
+        if not text:
+            raise SpecError(f"model {name!r} has no scoring source; give a source")
+        src = Source.parse(text)
+        if source is None and src.kind == "query" and target.name != self.d.name:
+            raise UnsupportedError(
+                f"the scoring source of model {name!r} is a query written for {self.d.name}; "
+                f"its meaning on {target.name} is not known to indb: give a source (a "
+                f"table, or a query written for {target.name})"
+            )
+        use_intervals = bool(model.get("intervals")) if intervals is None else intervals
+        query = W.scoring_query(result, target, target.relation(src), intervals=use_intervals)
+        view = W.create_view(view_schema, view_name or model["view_name"], query)
+        return target.render(view)
+
+    def _source_types(self, model: dict[str, Any]) -> dict[str, str] | None:
+        """Column types of the model's stored scoring source on this engine (None if it
+        cannot be read)."""
+        text = model.get("score_source")
+        if not text:
+            return None
+        try:
+            rel = self.d.relation(Source.parse(text))
+            return dict(self.engine.describe(self.d.render(S.select([_star()], _aliased(rel)))))
+        except (EngineError, SpecError, UnsupportedError):
+            return None
 
     def events(self, name: str) -> list[dict[str, Any]]:
         return self._rows(
@@ -189,9 +255,12 @@ class Registry:
         if latest is not None and not force_new:
             # the same spec on unchanged data adds no version (live or held alike), so a
             # scheduled job that keeps failing a gate does not pile up identical versions
-            same = latest["spec_hash"] == h and json.loads(latest["fingerprint_json"]) == _jsonable(
-                result.fingerprint
-            )
+            # hashed again from the stored spec: one stored before specs recorded their SQL
+            # dialect is this engine's (see _result), and matches a refit of it here
+            stored = self._spec_with_dialect(json.loads(latest["spec_json"]))
+            same = spec_hash(stored) == spec_hash(
+                self._spec_with_dialect(result.spec)
+            ) and json.loads(latest["fingerprint_json"]) == _jsonable(result.fingerprint)
             # a changed view schema, scoring source or intervals flag is not "unchanged":
             # keeping the version would silently drop the request (it is applied below,
             # as for any new version, by the same path that deploys and records it)
@@ -391,7 +460,7 @@ class Registry:
         row = self._version_row(name, version)
         if row["status"] == "dropped":
             raise RegistryError(f"version {version} of {name!r} was dropped")
-        result = FitResult.from_dict(json.loads(row["result_json"]))
+        result = self._result(row)
         if model_row.get("score_source"):
             model_row["score_source"] = self._qualified_source(model_row["score_source"])
         self._check_not_foreign(name, model_row, current)

@@ -130,6 +130,28 @@ class SparkDialect(Dialect):
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         return exp.Anonymous(this="PERCENTILE", expressions=[x, S.num(q)])
 
+    # Spark's `/` is true division and returns NULL for a zero divisor (an error in ANSI mode,
+    # the default from Spark 4); ln and log return NULL for x <= 0; sqrt and exp follow Java's
+    # Math (IEEE-754), and so does pow except 1 ^ NaN and (-1) ^ +/-inf (NaN in Java, 1 in C).
+    # `DIV` truncates (its result is a BIGINT).
+    log_nonpositive = "null"
+    zero_division = "null"
+
+    def ieee(self, node: exp.Expression) -> exp.Expression:
+        a = node.this
+        if isinstance(node, S.IeeeLn):
+            return S.ieee_log_guarded(a, exp.Ln(this=a.copy()))
+        if isinstance(node, S.IeeeLog10):
+            return S.ieee_log_guarded(a, exp.Anonymous(this="LOG10", expressions=[a.copy()]))
+        if isinstance(node, S.IeeeSqrt):
+            return exp.Sqrt(this=a)
+        if isinstance(node, S.IeeeExp):
+            return exp.Exp(this=a)
+        if isinstance(node, S.IeeePow):
+            b = node.expression
+            return S.ieee_pow_unit_base(a, b, exp.Pow(this=a.copy(), expression=b.copy()))
+        return S.ieee_div_guarded(a, node.expression)
+
     def file_scan(self, path: str) -> exp.Expression:
         low = path.lower().rstrip("/")
         fmt = next((f for suffix, f in _FILE_FORMATS.items() if low.endswith(suffix)), None)
