@@ -295,8 +295,13 @@ def bench_size(
         if distinct is not None:
             results[-1]["distinct_design_rows"] = distinct
         log(f"  {model.key}: floor {floor:.3f} s")
-        job = {"tool": "indb", "model": model.key, "path": path,
-               "memory_limit": MEMORY_LIMIT, "temp_directory": SPILL_DIR}
+        job = {
+            "tool": "indb",
+            "model": model.key,
+            "path": path,
+            "memory_limit": MEMORY_LIMIT,
+            "temp_directory": SPILL_DIR,
+        }
         r = run_child(job, args.indb_timeout, args.pythonpath)
         results.append({**base, "tool": "indb", **r})
         log(f"  {model.key}: indb {r.get('status')} {_secs(r)}")

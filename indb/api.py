@@ -7,40 +7,62 @@ import warnings
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from indb import options as O
 from indb import writeback as W
 from indb.engine import Engine, connect
 from indb.errors import ConvergenceWarning, SpecError
 from indb.fitter import fit_spec, plan_spec
+from indb.options import Kind
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
 from indb.results import FitResult
 from indb.spec import ModelSpec
 
-SPEC_OPTIONS = (
-    "trials",
-    "offset",
-    "weight",
-    "frequency_weight",
-    "power",
-    "theta",
-    "link_power",
-    "intercept",
-    "predictors",
-    "exclude",
-    "categorical",
-    "reference",
-    "interactions",
-    "splines",
-    "on_null",
-    "tol",
-    "max_iter",
-    "strict",
-    "max_levels",
-    "confidence",
-    "start",
-    "compress",
-    "sample_start",
-)
-ENGINE_OPTIONS = ("memory_limit", "temp_directory", "threads")
+# The options of fit(), each with the kind of value it takes (indb.options): the Python
+# call, `dry_run` and the spec file's tables are all checked against these declarations.
+FIT_ARGUMENTS: dict[str, Kind] = {
+    "source": O.TEXT,
+    "response": O.TEXT,
+    "family": O.TEXT,
+    "link": O.TEXT,
+}
+SPEC_OPTIONS: dict[str, Kind] = {
+    "trials": O.TEXT,
+    "offset": O.TEXT,
+    "weight": O.TEXT,
+    "frequency_weight": O.TEXT,
+    "power": O.NUMBER,
+    "theta": O.NUMBER,
+    "link_power": O.NUMBER,
+    "intercept": O.BOOLEAN,
+    "predictors": O.NAMES,
+    "exclude": O.NAMES,
+    "categorical": O.NAMES,
+    "reference": O.LEVELS,
+    "interactions": O.COLUMN_GROUPS,
+    "splines": O.KNOTS,
+    "on_null": O.TEXT,
+    "tol": O.NUMBER,
+    "max_iter": O.WHOLE,
+    "strict": O.BOOLEAN,
+    "max_levels": O.WHOLE,
+    "confidence": O.NUMBER,
+    "start": O.VALUES,
+    "compress": O.TEXT,
+    "sample_start": O.TEXT,
+}
+DEPLOY_OPTIONS: dict[str, Kind] = {
+    "name": O.TEXT,
+    "view_schema": O.TEXT,
+    "score_source": O.TEXT,
+    "intervals": O.BOOLEAN,
+    "registry_schema": O.TEXT,
+}
+ENGINE_OPTIONS: dict[str, Kind] = {
+    "memory_limit": O.TEXT,
+    "temp_directory": O.TEXT,
+    "threads": O.WHOLE,
+}
+FIT_OPTIONS = {**FIT_ARGUMENTS, **SPEC_OPTIONS, **DEPLOY_OPTIONS, **ENGINE_OPTIONS}
 
 
 def fit(
@@ -98,6 +120,8 @@ def fit(
         Coefficients on the original scale with standard errors, fit statistics and the
         iteration log.
     """
+    # every parameter is a local here, before any other name is bound
+    O.check_options(locals(), FIT_OPTIONS)
     spec = ModelSpec.build(
         source,
         response,
@@ -129,8 +153,18 @@ def fit(
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)
-    engine = connect(db, memory_limit=memory_limit, temp_directory=temp_directory, threads=threads)
+    engine = connect(
+        db,
+        # without write-back nothing is written: a database file opens read-only, so a fit
+        # also works on a read-only filesystem or a file without write permission
+        read_only=name is None,
+        memory_limit=memory_limit,
+        temp_directory=temp_directory,
+        threads=threads,
+    )
     try:
+        if name is not None:  # names the engine itself uses are refused before the fit
+            Registry(engine, registry_schema).check_model_name(name)
         result = fit_spec(spec, engine, progress)
         if name is not None:
             # a fit that did not converge is recorded but never made live on its own (as
@@ -206,31 +240,36 @@ def scoring_sql(
 ) -> str:
     """CREATE VIEW text that scores a stored model version, rendered for ``dialect``.
 
-    ``source`` defaults to the model's scoring source; ``view_name`` to the model name.
+    ``source`` defaults to the model's scoring source; ``view_name`` to the model name. The
+    stored offset is read in the dialect it was written in and carried over with its
+    meaning; what cannot be raises :class:`~indb.errors.UnsupportedError`.
     """
     from indb.dialect import dialect_for
-    from indb.spec import Source
 
     target = dialect_for(dialect)
-    engine = connect(db)
+    engine = connect(db, read_only=True)
     try:
         reg = Registry(engine, registry_schema)
-        model = reg.model(name)
-        result = reg.load(name, version)
-        src = Source.parse(source or model["score_source"])
-        rel = target.relation(src)
-        use_intervals = bool(model.get("intervals")) if intervals is None else intervals
-        query = W.scoring_query(result, target, rel, intervals=use_intervals)
-        return target.render(W.create_view(None, view_name or name, query)) + ";"
+        sql = reg.scoring_sql(
+            name,
+            target,
+            version=version,
+            source=source,
+            intervals=intervals,
+            view_name=view_name or name,
+        )
+        return sql + ";"
     finally:
         if engine is not db:
             engine.close()
 
 
 def with_deployment(result: FitResult, outcome: SaveOutcome) -> FitResult:
-    """Attach where a saved result lives (registry version, scoring view, mean column)."""
+    """Attach where a saved result lives (registry version, scoring view, mean column), and
+    the registry's warnings about deployment settings it did not apply."""
     return dataclasses.replace(
         result,
+        warnings=(*result.warnings, *outcome.warnings),
         deployment={
             "model": outcome.model,
             "version": outcome.version,
@@ -256,6 +295,7 @@ def deploy(
     registry_schema: str = DEFAULT_SCHEMA,
 ) -> FitResult:
     """Write an already fitted result to the registry (and its scoring view) of ``db``."""
+    O.check_options(locals(), DEPLOY_OPTIONS)
     engine = connect(db)
     try:
         outcome = Registry(engine, registry_schema).save(
@@ -286,11 +326,13 @@ def dry_run(
     spec_kw = {k: v for k, v in options.items() if k in SPEC_OPTIONS}
     unknown = sorted(set(options) - set(SPEC_OPTIONS) - set(ENGINE_OPTIONS))
     if unknown:
-        from indb.errors import SpecError
-
         raise SpecError(f"unknown option(s) {unknown}")
+    given = {"source": source, "response": response, "family": family, "link": link}
+    O.check_options({**given, **options}, {**FIT_ARGUMENTS, **SPEC_OPTIONS, **ENGINE_OPTIONS})
     spec = ModelSpec.build(source, response, family, link, **spec_kw)
-    engine = connect(db, **{k: v for k, v in options.items() if k in ENGINE_OPTIONS})
+    engine = connect(
+        db, read_only=True, **{k: v for k, v in options.items() if k in ENGINE_OPTIONS}
+    )
     try:
         return plan_spec(spec, engine)
     finally:
@@ -298,7 +340,12 @@ def dry_run(
             engine.close()
 
 
-def registry(db: Any = None, schema: str = DEFAULT_SCHEMA) -> Registry:
-    """A registry handle on ``db`` (the caller closes ``registry.engine`` when done)."""
-    engine = db if isinstance(db, Engine) else connect(db)
+def registry(db: Any = None, schema: str = DEFAULT_SCHEMA, *, read_only: bool = False) -> Registry:
+    """A registry handle on ``db`` (the caller closes ``registry.engine`` when done).
+
+    ``read_only=True`` opens a DuckDB file read-only: listing, loading and comparing work,
+    promote and drop fail. On a connection of the caller's, closing ``registry.engine``
+    puts back the settings indb changed on it.
+    """
+    engine = db if isinstance(db, Engine) else connect(db, read_only=read_only)
     return Registry(engine, schema)

@@ -254,7 +254,8 @@ database_option = click.option(
     metavar="DB",
     default=None,
     help="DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
-    "out to work in a fresh in-memory DuckDB database.",
+    "out to work in a fresh in-memory DuckDB database. A DuckDB file is opened read-only "
+    "unless --name writes to it.",
 )
 
 model_options = _apply(
@@ -401,7 +402,7 @@ registry_database_option = click.option(
     metavar="DB",
     required=True,
     help="Where the model registry lives: a DuckDB database file, or postgresql://..., "
-    "spark:local[N], sc://host:port.",
+    "spark:local[N], sc://host:port. Commands that only read open a DuckDB file read-only.",
 )
 
 execution_options = _apply(
@@ -515,14 +516,16 @@ def _check_database_path(
     *,
     may_create: bool = False,
     hint: str = "or leave --db out to read Parquet/CSV files in an in-memory database",
+    option: str = "--db",
 ) -> None:
-    # DuckDB creates a missing database file on connect; for `fit` that only turns a typo in
-    # --db into an empty database and a confusing "table does not exist" later. A named fit
-    # of a Parquet/CSV file may create the file: it is where the model is written.
+    # DuckDB creates a missing database file on connect; for `fit`, `run` and `retrain` that
+    # only turns a typo in the path into an empty database and a confusing "table does not
+    # exist" later. A named fit of a Parquet/CSV file may create the file: it is where the
+    # model is written. ``option`` names where the path was given.
     if _is_memory(db) or _is_url(db) or may_create:
         return
     if not Path(db).exists():
-        raise SpecError(f"--db {db!r}: no such database file; check the path, {hint}")
+        raise SpecError(f"{option} {db!r}: no such database file; check the path, {hint}")
 
 
 def _fit_arguments(options: dict[str, Any]) -> dict[str, Any]:
@@ -715,6 +718,13 @@ def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
     spec = load_spec_file(path)
     _ = spec.name  # raises the spec file's "needs a model name" error before any work
     db = spec.engine.get("db")
+    # as for `fit --name`: only a Parquet/CSV source may start a new database file
+    _check_database_path(
+        db,
+        may_create=Source.parse(spec.model["source"]).kind == "file",
+        hint="or make [model] source a Parquet/CSV path to start a new database",
+        option=f"spec file {path}: [engine] db",
+    )
     if dry_run:
         # A dry run writes nothing, not even a new empty database file: without the file
         # there is no registry and no live version, so plan against an in-memory database.
@@ -725,16 +735,18 @@ def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
         return spec
     if _is_memory(db):
         raise SpecError(
-            f"{path}: [engine] has no db; `indb {command}` records the model in a database, "
-            'so set db = "models.duckdb" (relative to the spec file)'
+            f"spec file {path}: [engine] has no db; `indb {command}` records the model in a "
+            'database, so set db = "models.duckdb" (relative to the spec file)'
         )
     return spec
 
 
 @contextmanager
-def _open_registry(db: str, schema: str | None) -> Iterator[Registry]:
+def _open_registry(db: str, schema: str | None, *, writes: bool = False) -> Iterator[Registry]:
+    """The registry of ``db``; opened read-only unless the command ``writes`` to it (so the
+    reading commands work on a read-only filesystem or a file without write permission)."""
     _check_database_path(db, hint="the registry lives in the file a named fit wrote to")
-    reg = open_registry(db, schema or DEFAULT_SCHEMA)
+    reg = open_registry(db, schema or DEFAULT_SCHEMA, read_only=not writes)
     try:
         yield reg
     finally:
@@ -746,10 +758,6 @@ def _view_label(model_row: dict[str, Any]) -> str:
     return f"{schema}.{model_row['view_name']}" if schema else str(model_row["view_name"])
 
 
-def _relation(dialect: Dialect, text: str) -> Any:
-    return dialect.relation(Source.parse(text))
-
-
 def _dialect(name: str) -> Dialect:
     if name.strip().lower() not in (*SCORING_DIALECTS, "postgresql"):
         raise SpecError(
@@ -757,28 +765,6 @@ def _dialect(name: str) -> Dialect:
             f"{', '.join(SCORING_DIALECTS)}"
         )
     return dialect_for(name)
-
-
-def _scoring_sql(
-    result: FitResult,
-    model_row: dict[str, Any],
-    dialect: Dialect,
-    source: str | None,
-    intervals: bool | None,
-) -> str:
-    text = source or model_row.get("score_source")
-    if not text:
-        raise SpecError(
-            f"model {model_row['model_name']!r} has no scoring source; give --source SRC"
-        )
-    query = writeback.scoring_query(
-        result,
-        dialect,
-        _relation(dialect, text),
-        intervals=bool(model_row.get("intervals")) if intervals is None else intervals,
-    )
-    view = writeback.create_view(model_row.get("view_schema"), model_row["view_name"], query)
-    return dialect.render(view)
 
 
 def _compare_text(cmp: dict[str, Any]) -> str:
@@ -1150,19 +1136,33 @@ def compare_command(
 @main.command("promote", short_help="Make a version live (also the roll-back).")
 @registry_database_option
 @registry_schema_option
+@click.option(
+    "--view-schema",
+    "view_schema",
+    default=None,
+    metavar="S",
+    help="Move the scoring view and macro to schema S (the old ones are dropped in the same "
+    "transaction); default: where they are now.",
+)
 @output_options
 @click.argument("name")
 @click.argument("version", type=int)
 def promote_command(
-    name: str, version: int, db: str, registry_schema: str | None, as_json: bool, quiet: bool
+    name: str,
+    version: int,
+    db: str,
+    registry_schema: str | None,
+    view_schema: str | None,
+    as_json: bool,
+    quiet: bool,
 ) -> None:
     """Make VERSION of model NAME live: its scoring view and macro serve it from now on.
 
     Promoting an earlier version is the roll-back.
     """
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         previous = reg.model(name)["live_version"]
-        reg.promote(name, version)
+        reg.promote(name, version, view_schema=view_schema)
         view = _view_label(reg.model(name))
     if as_json:
         click.echo(
@@ -1191,7 +1191,7 @@ def drop_command(
 ) -> None:
     """Drop VERSION of model NAME (its rows stay for audit; the live version cannot be
     dropped)."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         reg.drop(name, version)
     if as_json:
         click.echo(_dumps({"model": name, "version": version, "status": "dropped"}))
@@ -1243,8 +1243,14 @@ def scoring_sql_command(
         target = _dialect(dialect)
         with _open_registry(db, registry_schema) as reg:
             row = reg.model(name)
-            result = reg.load(name, version)
-        sql = _scoring_sql(result, row, target, source, intervals)
+            sql = reg.scoring_sql(
+                name,
+                target,
+                version=version,
+                source=source,
+                intervals=intervals,
+                view_schema=row.get("view_schema"),
+            )
     if as_json:
         chosen = row["live_version"] if version is None else version
         click.echo(

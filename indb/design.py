@@ -9,6 +9,7 @@ Plain data only; the SQL for these objects is built by :mod:`indb.plan`.
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 from collections.abc import Sequence
@@ -72,6 +73,93 @@ class Value:
     centered: bool
     center: float = 0.0
     scale: float = 1.0
+
+
+@dataclass(frozen=True)
+class Scaling:
+    """How a fit rescales its data internally, and how to map its numbers back.
+
+    The IRLS scans run on y' = (y - ``shift``) * ``factor`` with prior weights
+    pw' = pw * ``weight_factor`` and frequency weights f' = f * ``freq_factor``; every
+    factor is a power of two, so the rescaling itself rounds nothing. For a power-variance
+    family (V(mu) = mu^p) the unit deviance is homogeneous, d(s y, s mu) = s^(2-p) d(y, mu),
+    so deviance, Pearson's chi-squared and the dispersion of the rescaled fit are the
+    original ones times a power of two, d = 2^``log2_deviance_factor`` (:meth:`rescale`,
+    :meth:`unscale`), and the information matrix of the rescaled coefficients is the
+    original one times coef_factor^2 / d (fixed-dispersion families included: their
+    dispersion 1 becomes d).
+
+    The coefficients map as beta' = ``coef_factor`` * beta (a power link eta = mu^lambda:
+    ``coef_factor`` = factor^lambda, and the offset is multiplied by it too), except the
+    intercept, which also absorbs the shift (identity link: -factor * shift) and, for a log
+    link, ln(factor) (``log_shift``). Without an intercept neither can be absorbed, so the
+    fitter then leaves the response alone (see :func:`indb.fitter` ``_response_scaling``).
+    """
+
+    shift: float = 0.0
+    factor: float = 1.0
+    coef_factor: float = 1.0
+    log_shift: float = 0.0
+    weight_factor: float = 1.0
+    freq_factor: float = 1.0
+    variance_power: float = 0.0
+
+    @property
+    def response_changed(self) -> bool:
+        return self.shift != 0.0 or self.factor != 1.0
+
+    @property
+    def identity(self) -> bool:
+        return not self.response_changed and self.weight_factor == self.freq_factor == 1.0
+
+    @property
+    def log2_deviance_factor(self) -> float:
+        """log2(deviance_factor), exact (an integer for integer p) where the factor itself
+        would over- or underflow (a response near 1e200 squared)."""
+        resp = (2.0 - self.variance_power) * math.log2(self.factor) if self.factor != 1.0 else 0.0
+        return resp + math.log2(self.weight_factor) + math.log2(self.freq_factor)
+
+    def rescale(self, x: float) -> float:
+        """The inverse of :meth:`unscale`: a source-scale deviance on the fit's scale."""
+        e = self.log2_deviance_factor
+        if e == 0.0:
+            return x
+        k = round(e)
+        with np.errstate(over="ignore", under="ignore"):
+            return float(np.ldexp(x, k) * 2.0 ** (e - k))
+
+    def unscale(self, x: float) -> float:
+        """A deviance, Pearson sum or dispersion of the rescaled fit on the source's scale
+        (infinite only when the true value exceeds the largest double)."""
+        e = self.log2_deviance_factor
+        if e == 0.0:
+            return x
+        k = round(e)
+        with np.errstate(over="ignore", under="ignore"):
+            return float(np.ldexp(x, -k) * 2.0 ** (k - e))
+
+    def for_folded_rows(self) -> Scaling:
+        """The part still to apply on folded rows: their response is rescaled already."""
+        return dataclasses.replace(self, shift=0.0, factor=1.0)
+
+    def to_fit(self, beta: np.ndarray, intercept: bool) -> np.ndarray:
+        """Standardized coefficients of the original problem -> of the rescaled one."""
+        out = np.asarray(beta, float) * self.coef_factor
+        if intercept and out.size:
+            out[0] += self.log_shift - self.factor * self.shift
+        return out
+
+    def to_original(self, beta: np.ndarray, intercept: bool) -> np.ndarray:
+        """Standardized coefficients of the rescaled problem -> of the original one."""
+        out = np.asarray(beta, float).copy()
+        if intercept and out.size:
+            # the shift is added after the division: (b0' / factor) + shift keeps the
+            # digits of the small b0' that centring the response was for
+            out[0] -= self.log_shift
+            out[0] = out[0] / self.coef_factor + self.shift
+            out[1:] = out[1:] / self.coef_factor
+            return out
+        return out / self.coef_factor
 
 
 @dataclass(frozen=True)

@@ -7,32 +7,27 @@ A spec file has up to four tables::
     [gates]      # conditions a retrained version must meet to be promoted
     [engine]     # db, memory_limit, temp_directory, threads
 
-Relative ``db`` and file-source paths are read relative to the spec file's folder.
+Relative ``db`` and file-source paths are read relative to the spec file's folder. Every key
+is checked, before anything else runs, against the kind of value its option declares
+(``indb.api``'s option tables and the fields of :class:`Gates`; see ``indb.options``).
 """
 
 from __future__ import annotations
 
 import os
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from typing import Any
 
-from indb.api import ENGINE_OPTIONS, SPEC_OPTIONS
+from indb import options as O
+from indb.api import DEPLOY_OPTIONS, ENGINE_OPTIONS, FIT_ARGUMENTS, SPEC_OPTIONS
 from indb.errors import SpecError
+from indb.options import Kind
 from indb.spec import Source
 
-# the fit options of indb.fit, less start values (a retrain takes them from the live version)
-MODEL_KEYS = {"source", "response", "family", "link", *SPEC_OPTIONS} - {"start"}
-DEPLOY_KEYS = {"name", "view_schema", "score_source", "intervals", "registry_schema"}
-ENGINE_KEYS = {"db", *ENGINE_OPTIONS}
-GATE_KEYS = {
-    "require_converged",
-    "max_relative_change",
-    "max_change_in_se",
-    "max_deviance_per_row_increase",
-    "min_rows",
-    "max_excluded_share",
-}
+
+def _gate(kind: Kind, default: Any = None) -> Any:
+    return field(default=default, metadata={"kind": kind})
 
 
 @dataclass(frozen=True)
@@ -45,12 +40,36 @@ class Gates:
     ``min_rows``: fewest rows used; ``max_excluded_share``: largest share of rows excluded.
     """
 
-    require_converged: bool = True
-    max_relative_change: float | None = None
-    max_change_in_se: float | None = None
-    max_deviance_per_row_increase: float | None = None
-    min_rows: int | None = None
-    max_excluded_share: float | None = None
+    require_converged: bool = _gate(O.BOOLEAN, True)
+    max_relative_change: float | None = _gate(O.NUMBER)
+    max_change_in_se: float | None = _gate(O.NUMBER)
+    max_deviance_per_row_increase: float | None = _gate(O.NUMBER)
+    min_rows: int | None = _gate(O.WHOLE)
+    max_excluded_share: float | None = _gate(O.NUMBER)
+
+    def __post_init__(self) -> None:
+        # a gate of the wrong kind would otherwise fail only after the whole refit
+        O.check_options(
+            {f.name: getattr(self, f.name) for f in fields(self)},
+            gate_kinds(),
+            label=lambda key: f"gate {key}",
+        )
+
+
+def gate_kinds() -> dict[str, Kind]:
+    """Each gate and the kind of value it takes (declared on the fields of :class:`Gates`)."""
+    return {f.name: f.metadata["kind"] for f in fields(Gates)}
+
+
+# The keys of each table and the kind of value each takes, from the options' own
+# declarations: [model] holds the fit options of indb.fit less start values (a retrain takes
+# them from the live version); [engine] adds the database to the engine settings.
+TABLES: dict[str, dict[str, Kind]] = {
+    "model": {k: v for k, v in {**FIT_ARGUMENTS, **SPEC_OPTIONS}.items() if k != "start"},
+    "deploy": dict(DEPLOY_OPTIONS),
+    "gates": gate_kinds(),
+    "engine": {"db": O.TEXT, **ENGINE_OPTIONS},
+}
 
 
 @dataclass(frozen=True)
@@ -67,7 +86,7 @@ class SpecFile:
     def name(self) -> str:
         name = self.deploy.get("name")
         if not name:
-            raise SpecError(f'{self.path}: [deploy] needs a model name (name = "...")')
+            raise SpecError(f'spec file {self.path}: [deploy] needs a model name (name = "...")')
         return str(name)
 
 
@@ -75,12 +94,44 @@ def _check_keys(path: str, table: str, got: dict[str, Any], allowed: set[str]) -
     unknown = sorted(set(got) - allowed)
     if unknown:
         raise SpecError(
-            f"{path}: unknown key(s) {unknown} in [{table}]; allowed: {sorted(allowed)}"
+            f"spec file {path}: unknown key(s) {unknown} in [{table}]; allowed: {sorted(allowed)}"
         )
 
 
+def _tables(path: str, data: dict[str, Any]) -> dict[str, dict[str, Any]]:
+    """The four tables of a spec file, each checked for unknown keys and value kinds."""
+    _check_keys(path, "top level", data, set(TABLES))
+    out: dict[str, dict[str, Any]] = {}
+    for table, declared in TABLES.items():
+        got = data.get(table, {})
+        # `model = "pol"` at the top level is a key, not the [model] table
+        header = O.Kind(f"a table ([{table}] with its keys on the lines below)", O.TABLE.accepts)
+        O.check_options(
+            {table: got},
+            {table: header},
+            label=lambda key: f"spec file {path}: top-level key {key}",
+            show=O.toml_text,
+        )
+        _check_keys(path, table, got, set(declared))
+        O.check_options(
+            got,
+            declared,
+            label=lambda key, table=table: f"spec file {path}: [{table}] {key}",
+            show=O.toml_text,
+        )
+        out[table] = dict(got)
+    return out
+
+
 def load_spec_file(path: str) -> SpecFile:
-    """Read and validate a TOML spec file."""
+    """Read and validate a TOML spec file.
+
+    Raises
+    ------
+    SpecError
+        For a missing file, invalid TOML, an unknown table or key, a value of the wrong
+        kind (naming the table, key, expected kind and value), or a missing source/response.
+    """
     try:
         with open(path, "rb") as fh:
             data = tomllib.load(fh)
@@ -88,25 +139,30 @@ def load_spec_file(path: str) -> SpecFile:
         raise SpecError(f"spec file {path!r} does not exist") from None
     except tomllib.TOMLDecodeError as err:
         raise SpecError(f"spec file {path!r} is not valid TOML: {err}") from None
-    _check_keys(path, "top level", data, {"model", "deploy", "engine", "gates"})
-    model = dict(data.get("model", {}))
-    deploy = dict(data.get("deploy", {}))
-    engine = dict(data.get("engine", {}))
-    gates = dict(data.get("gates", {}))
-    _check_keys(path, "model", model, MODEL_KEYS)
-    _check_keys(path, "deploy", deploy, DEPLOY_KEYS)
-    _check_keys(path, "engine", engine, ENGINE_KEYS)
-    _check_keys(path, "gates", gates, GATE_KEYS)
+    tables = _tables(path, data)
+    model, engine = tables["model"], tables["engine"]
     for key in ("source", "response"):
         if key not in model:
-            raise SpecError(f'{path}: [model] needs {key} = "..."')
+            raise SpecError(f'spec file {path}: [model] needs {key} = "..."')
     base = os.path.dirname(os.path.abspath(path))
-    if "db" in engine and isinstance(engine["db"], str) and "://" not in engine["db"]:
-        engine["db"] = _relative_to(base, engine["db"])
+    if engine.get("db", "").strip() and not _is_engine_url(engine["db"]):
+        # normalised, so a message about the file shows where it was looked for
+        engine["db"] = os.path.normpath(_relative_to(base, engine["db"]))
     src = Source.parse(model["source"])
     if src.kind == "file":
         model["source"] = _relative_to(base, model["source"])
-    return SpecFile(path=path, model=model, deploy=deploy, engine=engine, gates=Gates(**gates))
+    return SpecFile(
+        path=path,
+        model=model,
+        deploy=tables["deploy"],
+        engine=engine,
+        gates=Gates(**tables["gates"]),
+    )
+
+
+def _is_engine_url(db: str) -> bool:
+    # postgresql://..., sc://host:port and spark:local[N] name servers, not files
+    return "://" in db or db.strip().lower().startswith("spark:")
 
 
 def _relative_to(base: str, p: str) -> str:

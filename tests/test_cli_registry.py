@@ -20,14 +20,13 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pytest
-import statsmodels
 import statsmodels.api as sm
 from click.testing import CliRunner, Result
 from numpy.testing import assert_allclose
+from reference_cases import ships_registry_frame as _ships
 
 from indb.cli import main
 
-SHIPS_CSV = Path(statsmodels.__file__).parent / "discrete" / "tests" / "results" / "ships.csv"
 INDB = Path(sys.executable).parent / "indb"
 COEF_RTOL = 1e-6  # same likelihood equations, both converged (task brief for the fitter)
 FIT = [
@@ -47,21 +46,6 @@ FIT = [
     "--reference",
     "operated=1960-74",
 ]
-
-
-def _ships() -> pd.DataFrame:
-    raw = pd.read_csv(SHIPS_CSV)
-    raw = raw[raw["service"] > 0].reset_index(drop=True)  # no months at risk: left out
-    return pd.DataFrame(
-        {
-            "row_id": np.arange(len(raw)),
-            "type": raw["ship"].map(dict(zip(range(1, 6), "ABCDE", strict=True))),
-            "built": raw["yr_con"].map({1: "1960-64", 2: "1965-69", 3: "1970-74", 4: "1975-79"}),
-            "operated": raw["yr_op"].map({1: "1960-74", 2: "1975-79"}),
-            "service": raw["service"].astype(float),
-            "accident": raw["accident"].astype(float),
-        }
-    )
 
 
 def _write(db: Path | str, table: str, frame: pd.DataFrame) -> None:
@@ -408,6 +392,85 @@ def test_run_then_retrain_held_back_in_a_real_process(tmp_path: Path):
     assert proc.stderr == ""
     lines = _ok(_run("versions", "ship_damage", "--db", db)).stdout.splitlines()[1:]
     assert [line.split()[1] for line in lines] == ["live", "held"]
+
+
+# -- deployment settings on an unchanged refit (issue 11, item 10) -------------------------
+
+
+def _model_row(db: Path) -> tuple[Any, ...]:
+    with duckdb.connect(str(db), read_only=True) as con:
+        return con.execute(
+            "SELECT live_version, view_schema, intervals FROM indb_registry.model"
+        ).fetchone()
+
+
+def _assert_view_scores(db: Path, view: str, coefficients: list[dict[str, Any]]) -> None:
+    """The view's mean and 95% interval columns equal statsmodels' on the ships rows."""
+    ships = _ships()
+    exog, oracle = _oracle(ships, coefficients)
+    offset = np.log(ships["service"])
+    with duckdb.connect(str(db), read_only=True) as con:
+        got = con.execute(f"SELECT * FROM {view} ORDER BY row_id").df()
+    mean = oracle.predict(exog, offset=offset)
+    assert_allclose(got["score_mean"].to_numpy(), mean.to_numpy(), rtol=COEF_RTOL)
+    # statsmodels' interval for the mean: the inverse link of eta's normal interval, as the
+    # view computes it (tolerance as tests/test_scoring.py's CI_RTOL)
+    frame = oracle.get_prediction(exog, offset=offset).summary_frame(alpha=0.05)
+    assert_allclose(got["score_mean_low"].to_numpy(), frame["mean_ci_lower"], rtol=1e-6)
+    assert_allclose(got["score_mean_high"].to_numpy(), frame["mean_ci_upper"], rtol=1e-6)
+
+
+def _coefficients(db: Path, version: int) -> list[dict[str, Any]]:
+    shown = _ok(_run("show", "ship_damage", "--db", db, "--version", version, "--json"))
+    return json.loads(shown.stdout)["coefficients"]
+
+
+def test_unchanged_fit_applies_new_intervals_and_view_schema(tmp_path: Path):
+    db = tmp_path / "models.duckdb"
+    _write(db, "ships", _ships())
+    named = [*FIT, "--db", db, "--name", "ship_damage", "-q"]
+    _ok(_run(*named, "ships"))
+    # The same spec on the same data, asking for intervals: this used to answer "same spec
+    # and data as version 1" and leave the view without them.
+    out = json.loads(_ok(_run(*named, "--intervals", "--json", "ships")).stdout)
+    assert out["deployment"]["version"] == 2 and out["deployment"]["created"] is True
+    assert _model_row(db) == (2, None, True)
+    _assert_view_scores(db, "ship_damage", out["coefficients"])
+    # Asked again, nothing differs: no new version.
+    again = _ok(_run(*named, "--intervals", "ships"))
+    assert "same spec and data as version 2 (live)" in again.stdout
+
+    moved = json.loads(_ok(_run(*named, "--view-schema", "mart", "--json", "ships")).stdout)
+    assert moved["deployment"]["version"] == 3 and moved["scoring_view"] == "mart.ship_damage"
+    assert _model_row(db) == (3, "mart", True)
+    _assert_view_scores(db, "mart.ship_damage", moved["coefficients"])
+    # Left out, --view-schema keeps the model's schema: unchanged again.
+    assert "same spec and data as version 3 (live)" in _ok(_run(*named, "ships")).stdout
+
+
+def test_unchanged_retrain_applies_a_changed_deploy_table(tmp_path: Path):
+    spec = tmp_path / "spec.toml"
+    spec.write_text(SPEC, encoding="utf-8")
+    db = tmp_path / "models.duckdb"
+    _write(db, "ships", _ships())
+    _ok(_run("run", "-q", spec))
+    assert "unchanged" in _ok(_run("retrain", "-q", spec)).stdout
+
+    deploy = '[deploy]\nname = "ship_damage"\n'
+    spec.write_text(SPEC.replace(deploy, deploy + "intervals = true\n"), encoding="utf-8")
+    out = json.loads(_ok(_run("retrain", "--json", "-q", spec)).stdout)
+    assert (out["status"], out["version"], out["previous_version"]) == ("promoted", 2, 1)
+    assert _model_row(db) == (2, None, True)
+    _assert_view_scores(db, "ship_damage", _coefficients(db, 2))
+    assert "unchanged" in _ok(_run("retrain", "-q", spec)).stdout
+
+    changed = deploy + 'intervals = true\nview_schema = "mart"\n'
+    spec.write_text(SPEC.replace(deploy, changed), encoding="utf-8")
+    out = json.loads(_ok(_run("retrain", "--json", "-q", spec)).stdout)
+    assert (out["status"], out["version"]) == ("promoted", 3)
+    assert out["scoring_view"] == "mart.ship_damage"
+    _assert_view_scores(db, "mart.ship_damage", _coefficients(db, 3))
+    assert "unchanged" in _ok(_run("retrain", "-q", spec)).stdout
 
 
 def test_help_documents_exit_codes():

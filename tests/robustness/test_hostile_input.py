@@ -44,6 +44,7 @@ from indb import (
     SeparationWarning,
     SpecError,
 )
+from indb.errors import ResidualDfWarning
 
 # indb and statsmodels solve the same likelihood equations; with tol=1e-12 both are
 # converged far below these (brief of this suite: coefficients rtol 1e-6; property tests 1e-5).
@@ -265,7 +266,9 @@ def test_one_row_intercept_only_gaussian_and_poisson(con: duckdb.DuckDBPyConnect
     res, caught = fit_quiet(one, "GPA", db=con, exclude=["TUCE"])
     assert_allclose(res.params, row["GPA"].to_numpy(), rtol=1e-12)
     assert res.df_resid == 0 and math.isnan(res.dispersion) and math.isnan(res.std_errors[0])
-    assert res.n_used == 1 and not caught
+    # issue 11: zero residual df is said, not left to the NaNs (was: no warning at all)
+    assert res.n_used == 1 and [w.category for w in caught] == [ResidualDfWarning]
+    assert re.search(q("residual degrees of freedom are 0", "NaN"), str(caught[0].message))
 
     res, caught = fit_quiet(one, "TUCE", "poisson", db=con, exclude=["GPA"], tol=TOL)
     ref = R.sm_fit(row["TUCE"], X, "poisson")
