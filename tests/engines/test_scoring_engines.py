@@ -383,22 +383,28 @@ def test_spark_view_gives_no_mean_for_rows_that_cannot_be_scored(
     spark_view(spark_local, "pol", write_parquet(train, tmp_path / "pol.parquet"))
     score = parquet_table(tmp_path / "newpol_dbl.parquet", DBL_TABLE, dbl_rows())
     spark_view(spark_local, "newpol_dbl", score)
-    res = indb.fit(
-        "pol",
-        "claims",
-        "poisson",
-        db=SparkEngine(spark_local),
-        predictors=["age", "region"],
-        offset="ln(exposure)",
-        tol=1e-12,
-        name="spark_log",
-        intervals=True,
-        score_source="newpol_dbl",
-        registry_schema=f"reg_{uuid.uuid4().hex[:8]}",
-    )
-    df = spark_local.sql("SELECT * FROM spark_log")
-    view = pd.DataFrame([tuple(r) for r in df.collect()], columns=df.columns)
-    check_engine_view(view, res, "log")
+    try:
+        res = indb.fit(
+            "pol",
+            "claims",
+            "poisson",
+            db=SparkEngine(spark_local),
+            predictors=["age", "region"],
+            offset="ln(exposure)",
+            tol=1e-12,
+            name="spark_log",
+            intervals=True,
+            score_source="newpol_dbl",
+            registry_schema=f"reg_{uuid.uuid4().hex[:8]}",
+        )
+        df = spark_local.sql("SELECT * FROM spark_log")
+        view = pd.DataFrame([tuple(r) for r in df.collect()], columns=df.columns)
+        check_engine_view(view, res, "log")
+    finally:
+        # the session is shared by the module's tests: a temporary view `pol` left behind
+        # would shadow the catalog tables named pol that later tests fit
+        for name in ("spark_log", "newpol_dbl", "pol"):
+            spark_local.catalog.dropTempView(name)
 
 
 # -- the IEEE-754 nodes on each engine --------------------------------------------------------

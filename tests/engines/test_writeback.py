@@ -470,6 +470,9 @@ def test_spark_persistent_view_in_another_database_reads_the_fitted_table(
     from indb.spark import SparkEngine
 
     session = spark_local
+    # a temporary view pol of another test in the shared session would shadow the tables
+    # below (Spark resolves temporary views first), which is not what this test is about
+    session.catalog.dropTempView("pol")
     frame = pol_frame()
     tag = uuid.uuid4().hex[:8]
     src, mart, mart_b, schema = f"src_{tag}", f"mart_{tag}", f"martb_{tag}", f"reg_{tag}"
