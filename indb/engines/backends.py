@@ -151,7 +151,7 @@ def backend_for(db: Any) -> Backend:
     return DEFAULT_BACKEND
 
 
-def connect(db: Any = None, **settings: Any) -> Engine:
+def connect(db: Any = None, *, read_only: bool = False, **settings: Any) -> Engine:
     """Open an engine from ``db``.
 
     ``db`` is None (in-memory DuckDB), a DuckDB file path or connection, an :class:`Engine`,
@@ -159,13 +159,18 @@ def connect(db: Any = None, **settings: Any) -> Engine:
     ``spark:MASTER`` such as ``spark:local[2]`` (an in-process Spark driver), ``sc://host:port``
     (a Spark Connect server) or an open ``SparkSession``. ``settings`` (memory_limit,
     temp_directory, threads) apply to DuckDB only; ``view_kind`` (temporary | persistent
-    scoring views, see :class:`indb.engines.spark.SparkEngine`) to Spark only.
+    scoring views, see :class:`indb.engines.spark.SparkEngine`) to Spark only. ``read_only``
+    says that nothing will be written: a backend that takes it (DuckDB: a file is opened
+    read-only) is told so; servers and Spark sessions are opened as usual (their permissions
+    are the server's business).
     """
     if isinstance(db, Engine):
         return db
     backend = backend_for(db)
     _refuse_foreign_settings(backend, settings)
     own = {k: v for k, v in settings.items() if k in backend.settings or _owner(k) is None}
+    if "read_only" in backend.settings:
+        own["read_only"] = read_only
     return backend.open(db, **own)
 
 
