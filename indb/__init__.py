@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 from indb.api import fit
-from indb.engine import DuckDBEngine, Engine, connect
+from indb.engines.backends import connect
+from indb.engines.base_engine import Engine
+from indb.engines.duckdb import DuckDBEngine
 from indb.errors import (
     AliasingWarning,
     ConvergenceWarning,
@@ -19,8 +21,7 @@ from indb.errors import (
 )
 from indb.results import Coefficient, FitResult, IterationRecord
 from indb.spec import ModelSpec
-
-__version__ = "0.1.0"
+from indb.version import __version__
 
 __all__ = [
     "AliasingWarning",

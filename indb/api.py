@@ -9,11 +9,13 @@ from typing import Any
 
 from indb import options as O
 from indb import writeback as W
-from indb.engine import Engine, connect
+from indb.engines.backends import connect
+from indb.engines.base_engine import Engine
 from indb.errors import ConvergenceWarning, SpecError
 from indb.fitter import fit_spec, plan_spec
 from indb.options import Kind
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
+from indb.registry_append import open_registry
 from indb.results import FitResult
 from indb.spec import ModelSpec
 
@@ -164,13 +166,13 @@ def fit(
     )
     try:
         if name is not None:  # names the engine itself uses are refused before the fit
-            Registry(engine, registry_schema).check_model_name(name)
+            open_registry(engine, registry_schema).check_model_name(name)
         result = fit_spec(spec, engine, progress)
         if name is not None:
             # a fit that did not converge is recorded but never made live on its own (as
             # retrain's require_converged gate holds it): the live version keeps serving
             hold = promote and not result.converged
-            reg = Registry(engine, registry_schema)
+            reg = open_registry(engine, registry_schema)
             outcome = reg.save(
                 name,
                 result,
@@ -244,12 +246,12 @@ def scoring_sql(
     stored offset is read in the dialect it was written in and carried over with its
     meaning; what cannot be raises :class:`~indb.errors.UnsupportedError`.
     """
-    from indb.dialect import dialect_for
+    from indb.engines.backends import dialect_for
 
     target = dialect_for(dialect)
     engine = connect(db, read_only=True)
     try:
-        reg = Registry(engine, registry_schema)
+        reg = open_registry(engine, registry_schema)
         sql = reg.scoring_sql(
             name,
             target,
@@ -298,7 +300,7 @@ def deploy(
     O.check_options(locals(), DEPLOY_OPTIONS)
     engine = connect(db)
     try:
-        outcome = Registry(engine, registry_schema).save(
+        outcome = open_registry(engine, registry_schema).save(
             name,
             result,
             promote=promote,
@@ -348,4 +350,4 @@ def registry(db: Any = None, schema: str = DEFAULT_SCHEMA, *, read_only: bool = 
     puts back the settings indb changed on it.
     """
     engine = db if isinstance(db, Engine) else connect(db, read_only=read_only)
-    return Registry(engine, schema)
+    return open_registry(engine, schema)

@@ -30,7 +30,8 @@ from indb import writeback
 from indb.api import dry_run as dry_run_model
 from indb.api import fit as fit_model
 from indb.api import registry as open_registry
-from indb.dialect import SCORING_DIALECTS, Dialect, dialect_for
+from indb.engines.backends import DIALECT_NAMES, SCORING_DIALECTS, dialect_for
+from indb.engines.base_dialect import Dialect
 from indb.errors import (
     EngineError,
     IndbError,
@@ -759,7 +760,7 @@ def _view_label(model_row: dict[str, Any]) -> str:
 
 
 def _dialect(name: str) -> Dialect:
-    if name.strip().lower() not in (*SCORING_DIALECTS, "postgresql"):
+    if name.strip().lower() not in DIALECT_NAMES:
         raise SpecError(
             f"--dialect {name!r} is not supported for scoring SQL; supported: "
             f"{', '.join(SCORING_DIALECTS)}"

@@ -36,7 +36,7 @@ from indb.design import (
     plan_values,
     resolve_inputs,
 )
-from indb.engine import Engine, qualify_source
+from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
     AliasingWarning,
     ConvergenceWarning,

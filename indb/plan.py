@@ -33,7 +33,7 @@ from indb.design import (
     column_groups,
     level_codes,
 )
-from indb.dialect import Dialect
+from indb.engines.base_dialect import Dialect
 from indb.spec import ModelSpec
 from indb.sqlexpr import Expr
 

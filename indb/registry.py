@@ -18,11 +18,12 @@ from typing import Any
 
 from indb import sqlexpr as S
 from indb import writeback as W
-from indb.dialect import Dialect
-from indb.engine import Engine, qualify_source, relative_source
+from indb.engines.base_dialect import Dialect
+from indb.engines.base_engine import Engine, qualify_source, relative_source
 from indb.errors import DeploymentWarning, EngineError, RegistryError, SpecError, UnsupportedError
 from indb.results import FitResult
 from indb.spec import Source
+from indb.version import __version__
 
 DEFAULT_SCHEMA = "indb_registry"
 
@@ -60,17 +61,9 @@ class SaveOutcome:
 class Registry:
     """Registry operations on one engine (schema ``indb_registry`` unless told otherwise).
 
-    On an engine without UPDATE (Spark's file tables) this returns an
-    :class:`indb.registry_append.AppendOnlyRegistry`, which keeps the same tables readable
-    but only ever appends rows.
+    Open one with :func:`indb.registry_append.open_registry`, which gives an engine without
+    UPDATE (Spark's file tables) the append-only subclass.
     """
-
-    def __new__(cls, engine: Engine, schema: str = DEFAULT_SCHEMA) -> Registry:
-        if cls is Registry and not engine.dialect.supports_update:
-            from indb.registry_append import AppendOnlyRegistry
-
-            return super().__new__(AppendOnlyRegistry)
-        return super().__new__(cls)
 
     def __init__(self, engine: Engine, schema: str = DEFAULT_SCHEMA) -> None:
         self.engine = engine
@@ -332,8 +325,6 @@ class Registry:
             )
             model_row["view_schema"] = current["view_schema"]
         status = "live" if promote else "held"
-        from indb import __version__
-
         vrow = {
             "model_name": name,
             "version": version,

@@ -13,6 +13,9 @@ from typing import Any
 
 import numpy as np
 
+from indb.families import Family, make_family
+from indb.links import Link, make_link
+
 #: Coefficients up to which a result carries the whole covariance matrix (32 MB of doubles
 #: at this size); above, ``covariance`` is None and the standard errors (its diagonal, all
 #: that inference needs) are in the coefficient table.
@@ -107,6 +110,20 @@ class FitResult:
     design: dict[str, Any] = field(default_factory=dict)
     fingerprint: dict[str, Any] = field(default_factory=dict)
     deployment: dict[str, Any] = field(default_factory=dict)
+
+    # -- the model as objects ------------------------------------------------------------
+    @property
+    def family_object(self) -> Family:
+        """The family as an object, with its fitted parameters (``family_params``)."""
+        return make_family(self.family, **self.family_params)
+
+    @property
+    def link_object(self) -> Link:
+        """The link as an object, from the canonical spec: its name and, for a power link
+        without a name of its own, ``spec['link_power']`` (the display name ``power(p)``
+        rounds the exponent, so it is never read back)."""
+        power = self.spec.get("link_power")
+        return make_link("power", power) if power is not None else make_link(self.link)
 
     # -- convenience views ---------------------------------------------------------------
     @property

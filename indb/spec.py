@@ -227,6 +227,7 @@ class ModelSpec:
             "family_params": self.family.params(),
             "estimate_theta": self.estimate_theta,
             "link": self.link.describe(),
+            **self.link.params(),
             "offset": self.offset,
             "weight": self.weight,
             "frequency_weight": self.frequency_weight,

@@ -32,8 +32,9 @@ from pol_cases import ROWS, oracle_means, pol_frame
 
 import indb
 from indb.cli import main
-from indb.dialect import split_qualified
-from indb.engine import DuckDBEngine, qualify_source
+from indb.engines.base_dialect import split_qualified
+from indb.engines.base_engine import qualify_source
+from indb.engines.duckdb import DuckDBEngine
 from indb.errors import DeploymentWarning, EngineError, SpecError
 from indb.registry import Registry
 from indb.spec import Source

@@ -49,7 +49,7 @@ from numpy.testing import assert_allclose
 
 import indb
 from indb import ConvergenceWarning, EngineError, NonConvergenceError
-from indb.engine import DuckDBEngine
+from indb.engines.duckdb import DuckDBEngine
 
 RTOL = 1e-6
 SEED = 20240601  # kill points and delays are drawn from this seed: the same every CI run
@@ -74,7 +74,7 @@ CHILD = textwrap.dedent(
     """
     import json, os, sys, traceback
     import indb
-    from indb.engine import DuckDBEngine
+    from indb.engines.duckdb import DuckDBEngine
 
     def say(line):
         sys.stdout.write(line + "\\n")

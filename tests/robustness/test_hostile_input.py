@@ -971,7 +971,7 @@ def test_compression_sample_with_predictors_named_like_its_counts(
     # itself (auto only samples from 50,000 rows): 32 rows, distinct (c, d, s) counted by DuckDB.
     from indb import plan as P
     from indb.design import resolve_inputs
-    from indb.dialect import DuckDBDialect
+    from indb.engines.duckdb import DuckDBDialect
     from indb.spec import ModelSpec
 
     con.execute("CREATE TABLE cds AS SELECT GRADE, PSI AS c, TUCE % 3 AS d, 1.0 AS s FROM spector")

@@ -26,8 +26,8 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.dialect import Dialect
-from indb.engine import Engine, rows_to_columns
+from indb.engines.base_dialect import Dialect
+from indb.engines.base_engine import Engine, rows_to_columns
 from indb.errors import EngineError, SpecError, UnsupportedError
 from indb.sqlexpr import as_operand, log_gamma_series
 
@@ -368,3 +368,16 @@ def _first(err: BaseException) -> str:
 
 def _wrap(err: BaseException, sql: str) -> EngineError:
     return EngineError(f"Spark failed: {_first(err)}", sql=sql)
+
+
+def open_engine(db: Any, *, view_kind: str | None = None) -> SparkEngine:
+    """The engine factory of the backends table: ``db`` is ``spark:MASTER`` (an in-process
+    driver), ``sc://host:port`` (Spark Connect) or an open ``SparkSession``."""
+    if not isinstance(db, str):
+        return SparkEngine(db, view_kind=view_kind)
+    if db.strip().lower().startswith("sc://"):
+        return SparkEngine(remote=db.strip(), view_kind=view_kind)
+    master = db.strip()[len("spark:") :]
+    if not master:
+        raise SpecError(f"database URL {db!r} needs a Spark master, e.g. spark:local[2]")
+    return SparkEngine(master=master, view_kind=view_kind)
