@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from indb.api import fit
+from indb import report as _report  # noqa: F401  (registers str(result), the text report)
+from indb.api import deploy, fit, scoring_sql
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
 from indb.engines.duckdb import DuckDBEngine
@@ -42,6 +43,8 @@ __all__ = [
     "SpecError",
     "UnsupportedError",
     "connect",
+    "deploy",
     "fit",
+    "scoring_sql",
     "__version__",
 ]

@@ -8,6 +8,7 @@ statistics and the iteration log. It holds no connection and does no I/O.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
@@ -61,6 +62,11 @@ class IterationRecord:
     seconds: float
     #: fit | sample (the sample start) | theta | null (intercept-only refit, null deviance)
     phase: str = "fit"
+
+
+#: The text rendering ``str(result)`` uses, registered by :mod:`indb.report` when it is
+#: imported (``import indb`` does): the report is a higher layer than the result it renders.
+TEXT_RENDERER: dict[str, Callable[[FitResult], str]] = {}
 
 
 @dataclass(frozen=True)
@@ -154,6 +160,11 @@ class FitResult:
         sample start's, theta's and the null model's scans are in ``iteration_log``)."""
         fit = [r.seconds for r in self.iteration_log if r.phase == "fit"]
         return sum(fit) / len(fit) if fit else math.nan
+
+    def __str__(self) -> str:
+        """The text report (:func:`indb.report.render_report`); ``repr`` keeps the fields."""
+        render = TEXT_RENDERER.get("report")
+        return render(self) if render is not None else repr(self)
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dictionary (non-finite numbers become ``None``)."""

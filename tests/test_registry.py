@@ -385,3 +385,25 @@ def test_failures_during_write_back_leave_nothing_written(db: str):
         _fit_ships(db, name="clash")
     assert snapshot(db) == before
     assert _query(db, "SELECT x FROM clash")["x"].tolist() == [1]
+
+
+def test_documented_top_level_api_and_text_report(tmp_path: Path) -> None:
+    # issue 13: indb.deploy was documented but only indb.api.deploy existed, and print(result)
+    # showed the dataclass fields instead of the report
+    import duckdb
+
+    from indb.report import render_report
+
+    db = str(tmp_path / "t.duckdb")
+    con = duckdb.connect(db)
+    con.execute(
+        "CREATE TABLE t AS SELECT i, i % 3 AS g, (i % 7) * 0.5 AS x, (i % 5) AS y "
+        "FROM range(60) r(i)"
+    )
+    con.close()
+    res = indb.fit("t", "y", "poisson", db=db, categorical=["g"], exclude=["i"])
+    assert str(res) == render_report(res)
+    assert repr(res).startswith("FitResult(")
+    out = indb.deploy(res, "counts", db=db)
+    assert out.deployment["version"] == 1
+    assert "CREATE" in indb.scoring_sql("counts", db=db).upper()
