@@ -98,7 +98,9 @@ class ViewPlacement:
         its live version was deployed to the same schema and names.
         """
         schema, view = model_row.get("view_schema"), model_row["view_name"]
-        macro = model_row["macro_name"] if self.d.supports_macros else None
+        macros: list[str | None] = [None]
+        if self.d.supports_macros:
+            macros = [model_row["macro_name"], W.unseen_macro_name(model_row["macro_name"])]
         ours = (
             current is not None
             and current.get("live_version") is not None
@@ -106,15 +108,19 @@ class ViewPlacement:
         )
         if ours:
             return
-        try:
-            cols = self.engine.fetch_columns(self.d.existing_objects_sql(schema, view, macro))
-        except EngineError:
-            if schema is None:
-                raise
-            # a schema that does not exist yet holds nothing to replace (Spark's SHOW
-            # TABLES IN a missing schema fails; information_schema just has no rows)
-            cols = None
-        found = self.d.existing_objects(cols, view, macro) if cols else []
+        found: list[tuple[str, str]] = []
+        for macro in macros:
+            try:
+                cols = self.engine.fetch_columns(self.d.existing_objects_sql(schema, view, macro))
+            except EngineError:
+                if schema is None:
+                    raise
+                # a schema that does not exist yet holds nothing to replace (Spark's SHOW
+                # TABLES IN a missing schema fails; information_schema just has no rows)
+                cols = None
+            for obj in self.d.existing_objects(cols, view, macro) if cols else []:
+                if obj not in found:
+                    found.append(obj)
         if found:
             where = f"schema {schema!r}" if schema else "the default schema"
             objects = ", ".join(f"{kind.lower()} {obj!r}" for kind, obj in found)
@@ -177,6 +183,16 @@ class ViewPlacement:
                     W.mean_expression(result, self.d),
                 )
             )
+            # its companion counts what the view's score_unseen counts, which a scalar
+            # macro returning the mean cannot carry
+            stmts.append(
+                self.d.create_macro(
+                    model_row.get("view_schema"),
+                    W.unseen_macro_name(model_row["macro_name"]),
+                    params,
+                    W.unseen_expression(result, self.d),
+                )
+            )
         return stmts
 
     def _drop_statements(self, model_row: dict[str, Any]) -> list[str]:
@@ -185,6 +201,7 @@ class ViewPlacement:
         stmts = [self.d.render(W.drop_view(schema, model_row["view_name"]))]
         if self.d.supports_macros and model_row.get("macro_name"):
             stmts.append(self.d.drop_macro(schema, model_row["macro_name"]))
+            stmts.append(self.d.drop_macro(schema, W.unseen_macro_name(model_row["macro_name"])))
         return stmts
 
 

@@ -517,12 +517,14 @@ class Registry(ViewPlacement):
         would hide a built-in object of the engine (or be hidden by one), such as DuckDB's
         ``sqlite_master`` view."""
         W.check_name(name, "model name")
-        query = self.d.reserved_objects_query(
-            name, f"{name}_score" if self.d.supports_macros else None
-        )
-        if query is None:
-            return name
-        found = sorted({str(n) for n in self.engine.fetch_columns(self.d.render(query))["name"]})
+        macros = [f"{name}_score", f"{name}_unseen"] if self.d.supports_macros else [None]
+        found_names: set[str] = set()
+        for macro in macros:
+            query = self.d.reserved_objects_query(name, macro)
+            if query is None:
+                return name
+            found_names |= {str(n) for n in self.engine.fetch_columns(self.d.render(query))["name"]}
+        found = sorted(found_names)
         if found:
             raise SpecError(
                 f"model name {name!r} is taken by the {self.d.name} built-in object(s) "

@@ -292,6 +292,20 @@ def mean_expression(res: FitResult, dialect: Dialect) -> Expr:
     return link.mean_sql(eta_sql(res, dialect))
 
 
+def unseen_expression(res: FitResult, dialect: Dialect) -> Expr:
+    """The view's ``score_unseen`` as one expression over the model's input columns (for the
+    companion macro): inputs not seen in training, plus 1 when the row gets no mean."""
+    valid = res.link_object.valid_eta_sql(eta_sql(res, dialect))
+    unscored = S.case([(valid, exp.Literal.number(0))], exp.Literal.number(1))
+    return S.add(unseen_sql(res), unscored)
+
+
+def unseen_macro_name(macro_name: str) -> str:
+    """The companion of scoring macro ``NAME_score``: ``NAME_unseen``, which counts the
+    inputs a call scored as the reference level (and 1 for a call that gets no mean)."""
+    return macro_name.removesuffix("_score") + "_unseen"
+
+
 # -- registry ---------------------------------------------------------------------------------
 
 REGISTRY_TABLES: dict[str, list[tuple[str, str]]] = {

@@ -407,3 +407,68 @@ def test_documented_top_level_api_and_text_report(tmp_path: Path) -> None:
     out = indb.deploy(res, "counts", db=db)
     assert out.deployment["version"] == 1
     assert "CREATE" in indb.scoring_sql("counts", db=db).upper()
+
+
+def test_unseen_macro_counts_what_the_view_counts(tmp_path: Path) -> None:
+    # issue 13: NAME_score scores an unknown level as the reference level and cannot say
+    # so; its companion NAME_unseen returns the view's score_unseen for the same inputs
+    import duckdb
+
+    db = str(tmp_path / "u.duckdb")
+    con = duckdb.connect(db)
+    con.execute(
+        "CREATE TABLE pol AS SELECT i, CASE hash(i, 'r') % 3 WHEN 0 THEN 'North' WHEN 1 "
+        "THEN 'South' ELSE 'West' END AS region, 20 + i % 40 AS age, "
+        "0.5 + (i % 4) * 0.25 AS exposure, hash(i, 'c') % 3 AS claims FROM range(300) r(i)"
+    )
+    con.execute(
+        "CREATE TABLE newpol AS SELECT * FROM (VALUES (1, 'North', 30, 1.0), "
+        "(2, 'Atlantis', 30, 1.0), (3, NULL, 30, 1.0), (4, 'South', NULL, 1.0), "
+        "(5, 'Atlantis', NULL, 1.0), (6, 'West', 45, -1.0)) t(i, region, age, exposure)"
+    )
+    con.close()
+    indb.fit(
+        "pol",
+        "claims",
+        "poisson",
+        db=db,
+        offset="ln(exposure)",
+        exclude=["i"],
+        name="freq",
+        score_source="newpol",
+    )
+    con = duckdb.connect(db)
+    rows = con.execute(
+        "SELECT i, score_mean, score_unseen, freq_score(region, age, exposure), "
+        "freq_unseen(region, age, exposure) FROM freq ORDER BY i"
+    ).fetchall()
+    for i, mean, unseen, macro_mean, macro_unseen in rows:
+        assert macro_unseen == unseen, i
+        assert (macro_mean is None) == (mean is None), i
+        if mean is not None:
+            assert macro_mean == pytest.approx(mean, rel=1e-12)
+    # seen; unseen level; NULL level; NULL age (no mean); both; ln(-1) (no mean)
+    assert [r[2] for r in rows] == [0, 1, 1, 1, 2, 1]
+    # both macros go when the model moves to another schema
+    con.close()
+    indb.fit(
+        "pol",
+        "claims",
+        "poisson",
+        db=db,
+        offset="ln(exposure)",
+        exclude=["i"],
+        name="freq",
+        score_source="newpol",
+        view_schema="mart",
+    )
+    con = duckdb.connect(db)
+    where = {
+        r[0]: r[1]
+        for r in con.execute(
+            "SELECT function_name, schema_name FROM duckdb_functions() "
+            "WHERE function_name IN ('freq_score', 'freq_unseen')"
+        ).fetchall()
+    }
+    assert where == {"freq_score": "mart", "freq_unseen": "mart"}
+    con.close()
