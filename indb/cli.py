@@ -23,6 +23,7 @@ from typing import Any, TypeVar
 
 import click
 
+from indb import render as R
 from indb import writeback
 from indb.api import dry_run as dry_run_model
 from indb.api import fit as fit_model
@@ -37,19 +38,6 @@ from indb.errors import (
     UnsupportedError,
 )
 from indb.registry import DEFAULT_SCHEMA, Registry
-from indb.render import (
-    _compare_text,
-    _deployment_text,
-    _dumps,
-    _num,
-    _retrain_text,
-    _table,
-    _view_label,
-    _when,
-    format_iteration,
-    iteration_json,
-)
-from indb.report import render_json, render_report
 from indb.results import FitResult, IterationRecord
 from indb.retrain import EXIT_HELD, retrain
 from indb.spec import Source
@@ -201,11 +189,11 @@ def _parse_interactions(values: Sequence[str]) -> list[tuple[str, ...]]:
 
 
 def _echo_iteration(record: IterationRecord) -> None:
-    click.echo(format_iteration(record), err=True)
+    click.echo(R.format_iteration(record), err=True)
 
 
 def _echo_iteration_json(record: IterationRecord) -> None:
-    click.echo(iteration_json(record), err=True)
+    click.echo(R.iteration_json(record), err=True)
 
 
 def _progress(quiet: bool, as_json: bool, progress_json: bool) -> Callable[..., None] | None:
@@ -595,21 +583,16 @@ def _deploy_arguments(options: dict[str, Any]) -> dict[str, Any]:
 
 def _print_sql(statements: Sequence[tuple[str, str]], as_json: bool, note: str = "") -> None:
     if as_json:
-        click.echo(_dumps({"sql": [{"purpose": p, "sql": s} for p, s in statements], "note": note}))
-        return
-    for purpose, sql in statements:
-        click.echo(f"-- {purpose}\n{sql};\n")
-    if note:
-        click.echo(f"-- {note}")
+        click.echo(R.statements_json(statements, note))
+    else:
+        click.echo(R.statements_text(statements, note), nl=False)
 
 
 def _emit_result(result: FitResult, as_json: bool, db: str | None) -> None:
     if as_json:
-        click.echo(render_json(result))
-        return
-    click.echo(render_report(result), nl=False)
-    if result.deployment:
-        click.echo("\n" + _deployment_text(result.deployment, db))
+        click.echo(R.fit_json(result))
+    else:
+        click.echo(R.fit_text(result, db), nl=False)
 
 
 def _shown_warnings(result: FitResult, as_json: bool) -> tuple[str, ...]:
@@ -836,13 +819,9 @@ def retrain_command(
     if dry_run:
         _print_sql(outcome.sql, as_json, "nothing was written")
         return
-    if as_json:
-        out = outcome.to_dict()
-        if outcome.comparison:
-            out["comparison"] = outcome.comparison
-        click.echo(_dumps(out))
-    else:
-        click.echo(_retrain_text(outcome, spec.engine.get("db")))
+    click.echo(
+        R.retrain_json(outcome) if as_json else R.retrain_text(outcome, spec.engine.get("db"))
+    )
     ctx.exit(outcome.exit_code)
 
 
@@ -854,40 +833,7 @@ def models_command(db: str, registry_schema: str | None, as_json: bool, quiet: b
     """List the models in the registry: live version, number of versions, scoring view."""
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         models = [(m, reg.versions(m["model_name"])) for m in reg.models()]
-    if as_json:
-        click.echo(
-            _dumps(
-                {
-                    "models": [
-                        {
-                            "model": m["model_name"],
-                            "live_version": m["live_version"],
-                            "versions": len(vs),
-                            "scoring_view": _view_label(m),
-                            "macro": m["macro_name"],
-                            "score_source": m["score_source"],
-                            "intervals": m["intervals"],
-                            "created_at": m["created_at"],
-                        }
-                        for m, vs in models
-                    ]
-                }
-            )
-        )
-        return
-    if not models:
-        click.echo(f"No models in the registry of {db}.")
-        return
-    rows = [
-        [
-            m["model_name"],
-            "none" if m["live_version"] is None else str(m["live_version"]),
-            str(len(vs)),
-            _view_label(m),
-        ]
-        for m, vs in models
-    ]
-    click.echo(_table(["model", "live version", "versions", "scoring view"], rows, right=(1, 2)))
+    click.echo(R.models_json(models) if as_json else R.models_text(models, db))
 
 
 @main.command("versions", short_help="List the versions of a model.")
@@ -901,35 +847,7 @@ def versions_command(
     """List the versions of model NAME, one line each."""
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         versions = reg.versions(name)
-    if as_json:
-        click.echo(_dumps({"model": name, "versions": versions}))
-        return
-    rows = [
-        [
-            str(v["version"]),
-            str(v["status"]),
-            _when(v["created_at"]),
-            str(v["family"]),
-            str(v["link"]),
-            _num(v["deviance"], ".10g"),
-            _num(v["n_used"]),
-            _num(v["iterations"]),
-            _num(v["converged"]),
-        ]
-        for v in versions
-    ]
-    headers = [
-        "version",
-        "status",
-        "created (UTC)",
-        "family",
-        "link",
-        "deviance",
-        "rows",
-        "iterations",
-        "converged",
-    ]
-    click.echo(_table(headers, rows, right=(0, 5, 6, 7)))
+    click.echo(R.versions_json(name, versions) if as_json else R.versions_text(versions))
 
 
 @main.command("show", short_help="Print the stored report of a version.")
@@ -957,15 +875,9 @@ def show_command(
         result = reg.load(name, version)
         row = next(v for v in reg.versions(name) if v["version"] == version)
     if as_json:
-        out = result.to_dict()
-        out.update({"model": name, "version": version, "status": row["status"]})
-        click.echo(_dumps(out))
-        return
-    click.echo(
-        f"Model {name}, version {version} ({row['status']}), recorded "
-        f"{_when(row['created_at'])} UTC\n"
-    )
-    click.echo(render_report(result), nl=False)
+        click.echo(R.show_json(name, version, row, result))
+    else:
+        click.echo(R.show_text(name, version, row, result), nl=False)
 
 
 @main.command("compare", short_help="Compare two versions of a model.")
@@ -982,7 +894,7 @@ def compare_command(
     deviance per row and rows used."""
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         cmp = reg.compare(name, a, b)
-    click.echo(_dumps(cmp) if as_json else _compare_text(cmp))
+    click.echo(R.compare_json(cmp) if as_json else R.compare_text(cmp))
 
 
 @main.command("promote", short_help="Make a version live (also the roll-back).")
@@ -1001,21 +913,9 @@ def promote_command(
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         previous = reg.model(name)["live_version"]
         reg.promote(name, version)
-        view = _view_label(reg.model(name))
-    if as_json:
-        click.echo(
-            _dumps(
-                {
-                    "model": name,
-                    "live_version": version,
-                    "previous_live_version": previous,
-                    "scoring_view": view,
-                }
-            )
-        )
-        return
-    was = f" (was version {previous})" if previous is not None else ""
-    click.echo(f"Model {name}: version {version} is live{was}; scoring view {view} serves it.")
+        view = R.view_label(reg.model(name))
+    render = R.promote_json if as_json else R.promote_text
+    click.echo(render(name, version, previous, view))
 
 
 @main.command("drop", short_help="Drop a version that is not live.")
@@ -1031,10 +931,7 @@ def drop_command(
     dropped)."""
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         reg.drop(name, version)
-    if as_json:
-        click.echo(_dumps({"model": name, "version": version, "status": "dropped"}))
-        return
-    click.echo(f"Model {name}: version {version} dropped (its registry rows are kept).")
+    click.echo(R.drop_json(name, version) if as_json else R.drop_text(name, version))
 
 
 @main.command("scoring-sql", short_help="Print a model's scoring view SQL.")
@@ -1085,19 +982,9 @@ def scoring_sql_command(
         sql = _scoring_sql(result, row, target, source, intervals)
     if as_json:
         chosen = row["live_version"] if version is None else version
-        click.echo(
-            _dumps(
-                {
-                    "model": name,
-                    "version": chosen,
-                    "dialect": target.name,
-                    "scoring_view": _view_label(row),
-                    "sql": sql,
-                }
-            )
-        )
-        return
-    click.echo(sql + ";")
+        click.echo(R.scoring_sql_json(name, chosen, target.name, row, sql))
+    else:
+        click.echo(R.scoring_sql_text(sql))
 
 
 @main.command("demo", short_help="Run the worked example on invented data.")

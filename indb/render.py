@@ -4,6 +4,9 @@
 the progress lines, the registry tables, a comparison of two versions, the outcome of a
 retrain, where a deployed model lives, and the JSON documents of those commands. Every
 function returns text; printing stays with the commands (``indb.cli``).
+
+Each command's output has a text renderer (``*_text``) and, where the command takes
+``--json``, a JSON one (``*_json``) that returns exactly one document.
 """
 
 from __future__ import annotations
@@ -15,8 +18,11 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
-from indb.results import IterationRecord
+from indb.report import render_json, render_report
+from indb.results import FitResult, IterationRecord
 from indb.retrain import RetrainOutcome
+
+Statements = Sequence[tuple[str, str]]
 
 
 def _fmt_number(value: float, spec: str) -> str:
@@ -63,7 +69,8 @@ def _plain(value: Any) -> Any:
     return _finite_or_none(value)
 
 
-def _dumps(value: Any) -> str:
+def to_json(value: Any) -> str:
+    """One indented JSON document (non-finite numbers as null, timestamps as ISO text)."""
     return json.dumps(_plain(value), indent=2, allow_nan=False, default=str)
 
 
@@ -99,7 +106,8 @@ def _table(headers: Sequence[str], rows: Sequence[Sequence[str]], right: Sequenc
     return "\n".join([line(headers), *(line(r) for r in rows)])
 
 
-def _deployment_text(deployment: dict[str, Any], db: str | None) -> str:
+def deployment_text(deployment: dict[str, Any], db: str | None) -> str:
+    """Where a written-back fit lives, or why nothing new was recorded (one line)."""
     name, version = deployment["model"], deployment["version"]
     if not deployment["created"]:
         state = "live" if deployment["promoted"] else "held"
@@ -119,12 +127,14 @@ def _deployment_text(deployment: dict[str, Any], db: str | None) -> str:
     )
 
 
-def _view_label(model_row: dict[str, Any]) -> str:
+def view_label(model_row: dict[str, Any]) -> str:
+    """A model's scoring view as a reader writes it: ``schema.view`` or ``view``."""
     schema = model_row.get("view_schema")
     return f"{schema}.{model_row['view_name']}" if schema else str(model_row["view_name"])
 
 
-def _compare_text(cmp: dict[str, Any]) -> str:
+def compare_text(cmp: dict[str, Any]) -> str:
+    """Two versions side by side (``Registry.compare``): terms, then the fit statistics."""
     a, b = cmp["a"], cmp["b"]
     lines = [f"Model {cmp['model']}: version {a} compared with version {b}", ""]
     rows = [
@@ -161,7 +171,8 @@ def _compare_text(cmp: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
-def _retrain_text(outcome: RetrainOutcome, db: str | None) -> str:
+def retrain_text(outcome: RetrainOutcome, db: str | None) -> str:
+    """What a retrain did, its iteration count against the live version's, and the gates."""
     name, v, prev = outcome.model, outcome.version, outcome.previous_version
     view = outcome.result.deployment.get("scoring_view") if outcome.result else None
     failed = [c.gate for c in outcome.checks if not c.passed]
@@ -196,3 +207,168 @@ def _retrain_text(outcome: RetrainOutcome, db: str | None) -> str:
         ]
         lines += ["", _table(["gate", "value", "limit", "result"], rows, right=(1, 2))]
     return "\n".join(lines)
+
+
+# -- one renderer per command output ---------------------------------------------------
+
+
+def fit_text(result: FitResult, db: str | None) -> str:
+    """The report of a fit and, when it was written back, where it now lives."""
+    text = render_report(result)
+    if result.deployment:
+        text += "\n" + deployment_text(result.deployment, db) + "\n"
+    return text
+
+
+def fit_json(result: FitResult) -> str:
+    return render_json(result)
+
+
+def statements_text(statements: Statements, note: str = "") -> str:
+    """SQL statements (``--dry-run``), each under a comment saying what it is for."""
+    text = "".join(f"-- {purpose}\n{sql};\n\n" for purpose, sql in statements)
+    return text + (f"-- {note}\n" if note else "")
+
+
+def statements_json(statements: Statements, note: str = "") -> str:
+    return to_json({"sql": [{"purpose": p, "sql": s} for p, s in statements], "note": note})
+
+
+# (model row of the registry, its versions), as `indb models` lists them
+ModelListing = Sequence[tuple[dict[str, Any], Sequence[Any]]]
+
+
+def models_text(models: ModelListing, db: str) -> str:
+    if not models:
+        return f"No models in the registry of {db}."
+    rows = [
+        [
+            m["model_name"],
+            "none" if m["live_version"] is None else str(m["live_version"]),
+            str(len(vs)),
+            view_label(m),
+        ]
+        for m, vs in models
+    ]
+    return _table(["model", "live version", "versions", "scoring view"], rows, right=(1, 2))
+
+
+def models_json(models: ModelListing) -> str:
+    return to_json(
+        {
+            "models": [
+                {
+                    "model": m["model_name"],
+                    "live_version": m["live_version"],
+                    "versions": len(vs),
+                    "scoring_view": view_label(m),
+                    "macro": m["macro_name"],
+                    "score_source": m["score_source"],
+                    "intervals": m["intervals"],
+                    "created_at": m["created_at"],
+                }
+                for m, vs in models
+            ]
+        }
+    )
+
+
+def versions_text(versions: Sequence[dict[str, Any]]) -> str:
+    rows = [
+        [
+            str(v["version"]),
+            str(v["status"]),
+            _when(v["created_at"]),
+            str(v["family"]),
+            str(v["link"]),
+            _num(v["deviance"], ".10g"),
+            _num(v["n_used"]),
+            _num(v["iterations"]),
+            _num(v["converged"]),
+        ]
+        for v in versions
+    ]
+    headers = [
+        "version",
+        "status",
+        "created (UTC)",
+        "family",
+        "link",
+        "deviance",
+        "rows",
+        "iterations",
+        "converged",
+    ]
+    return _table(headers, rows, right=(0, 5, 6, 7))
+
+
+def versions_json(name: str, versions: Sequence[dict[str, Any]]) -> str:
+    return to_json({"model": name, "versions": versions})
+
+
+def show_text(name: str, version: int, row: dict[str, Any], result: FitResult) -> str:
+    """The stored report of one version under a line saying which version it is."""
+    head = (
+        f"Model {name}, version {version} ({row['status']}), recorded "
+        f"{_when(row['created_at'])} UTC\n\n"
+    )
+    return head + render_report(result)
+
+
+def show_json(name: str, version: int, row: dict[str, Any], result: FitResult) -> str:
+    out = result.to_dict()
+    out.update({"model": name, "version": version, "status": row["status"]})
+    return to_json(out)
+
+
+def compare_json(cmp: dict[str, Any]) -> str:
+    return to_json(cmp)
+
+
+def retrain_json(outcome: RetrainOutcome) -> str:
+    out = outcome.to_dict()
+    if outcome.comparison:
+        out["comparison"] = outcome.comparison
+    return to_json(out)
+
+
+def promote_text(name: str, version: int, previous: int | None, view: str) -> str:
+    was = f" (was version {previous})" if previous is not None else ""
+    return f"Model {name}: version {version} is live{was}; scoring view {view} serves it."
+
+
+def promote_json(name: str, version: int, previous: int | None, view: str) -> str:
+    return to_json(
+        {
+            "model": name,
+            "live_version": version,
+            "previous_live_version": previous,
+            "scoring_view": view,
+        }
+    )
+
+
+def drop_text(name: str, version: int) -> str:
+    return f"Model {name}: version {version} dropped (its registry rows are kept)."
+
+
+def drop_json(name: str, version: int) -> str:
+    return to_json({"model": name, "version": version, "status": "dropped"})
+
+
+def scoring_sql_text(sql: str) -> str:
+    return sql + ";"
+
+
+def scoring_sql_json(
+    name: str, version: int | None, dialect: str, model_row: dict[str, Any], sql: str
+) -> str:
+    return to_json(
+        {
+            "model": name,
+            "version": version,
+            "dialect": dialect,
+            "scoring_view": view_label(model_row),
+            "sql": sql,
+        }
+    )
