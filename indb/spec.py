@@ -13,6 +13,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+from indb import options as O
 from indb.errors import SpecError
 from indb.families import Family, NegativeBinomial, canonical_link, make_family
 from indb.links import Link, make_link
@@ -139,14 +140,9 @@ class ModelSpec:
         fam.check_link(lk)
         if trials is not None and fam.name != "binomial":
             raise SpecError(f"trials is for grouped binomial data; family is {fam.name!r}")
-        if compress not in ("auto", "always", "never"):
-            raise SpecError(f"compress must be 'auto', 'always' or 'never'; got {compress!r}")
-        if sample_start not in ("auto", "always", "never"):
-            raise SpecError(
-                f"sample_start must be 'auto', 'always' or 'never'; got {sample_start!r}"
-            )
-        if on_null not in ("exclude", "error"):
-            raise SpecError(f"on_null must be 'exclude' or 'error'; got {on_null!r}")
+        # the enumerated options (on_null, compress, ...) against their declared values;
+        # every parameter is a local here under its option's name
+        O.check_choices(locals())
         if not (isinstance(tol, int | float) and 0 < tol < 1):
             raise SpecError(f"tol must be a number in (0, 1); got {tol!r}")
         if not (isinstance(max_iter, int) and max_iter >= 1):
