@@ -14,7 +14,6 @@ Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` a
 from __future__ import annotations
 
 import dataclasses
-import inspect
 import warnings
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -23,6 +22,8 @@ from typing import Any, TypeVar
 
 import click
 
+from indb import cli_options as CO
+from indb import options as O
 from indb import render as R
 from indb import writeback
 from indb.api import dry_run as dry_run_model
@@ -70,17 +71,6 @@ Exit codes (stable; for schedulers and scripts):
   7  registry conflict: unknown model or version, dropping the live version,
      promoting a dropped one
 """
-
-_FIT_DEFAULTS = {
-    name: p.default
-    for name, p in inspect.signature(fit_model).parameters.items()
-    if p.default is not inspect.Parameter.empty
-}
-
-
-def _default(name: str) -> str:
-    return f" [library default: {_FIT_DEFAULTS.get(name)}]" if name in _FIT_DEFAULTS else ""
-
 
 # -- errors -------------------------------------------------------------------------
 
@@ -134,57 +124,6 @@ def _echo_warnings(
         click.echo(f"indb: warning: {text}", err=True)
 
 
-# -- option parsing helpers (input mistakes are SpecErrors: exit code 2) ---------------
-
-
-def _parse_pairs(
-    values: Sequence[str], option: str, example: str, shape: str = "COLUMN=VALUE"
-) -> dict[str, str]:
-    pairs: dict[str, str] = {}
-    for raw in values:
-        column, sep, value = raw.partition("=")
-        column = column.strip()
-        if not sep or not column or value == "":
-            raise SpecError(
-                f"{option} expects {shape}, got {raw!r}; write it like {option} {example}"
-            )
-        if column in pairs:
-            raise SpecError(
-                f"{option} names column {column!r} twice ({pairs[column]!r} and {value!r}); "
-                "give each column once"
-            )
-        pairs[column] = value
-    return pairs
-
-
-def _parse_splines(values: Sequence[str]) -> dict[str, int]:
-    knots: dict[str, int] = {}
-    for raw, (column, text) in zip(
-        values, _parse_pairs(values, "--spline", "age=4", "COLUMN=KNOTS").items(), strict=True
-    ):
-        try:
-            knots[column] = int(text)
-        except ValueError:
-            raise SpecError(
-                f"--spline expects COLUMN=KNOTS with a whole number of knots, got {raw!r}; "
-                f"write it like --spline {column}=4"
-            ) from None
-    return knots
-
-
-def _parse_interactions(values: Sequence[str]) -> list[tuple[str, ...]]:
-    out: list[tuple[str, ...]] = []
-    for raw in values:
-        columns = tuple(part.strip() for part in raw.split(","))
-        if len(columns) < 2 or any(not c for c in columns):
-            raise SpecError(
-                f"--interact expects two or more comma-separated column names, got {raw!r}; "
-                "write it like --interact age,region"
-            )
-        out.append(columns)
-    return out
-
-
 # -- progress -----------------------------------------------------------------------
 
 
@@ -218,125 +157,11 @@ def _apply(*decorators: Callable[[F], F]) -> Callable[[F], F]:
     return wrap
 
 
-database_option = click.option(
-    "--db",
-    "db",
-    metavar="DB",
-    default=None,
-    help="DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
-    "out to work in a fresh in-memory DuckDB database.",
-)
-
-model_options = _apply(
-    click.option(
-        "--family", required=True, metavar="F", help="Distribution family of the response."
-    ),
-    click.option("--link", default=None, metavar="L", help="Link function (default: canonical)."),
-    click.option("--response", required=True, metavar="COL", help="Response column."),
-    click.option(
-        "--trials", default=None, metavar="EXPR", help="Binomial trials per row (SQL expression)."
-    ),
-    click.option("--offset", default=None, metavar="EXPR", help="Offset, e.g. 'ln(exposure)'."),
-    click.option("--weight", default=None, metavar="EXPR", help="Prior (variance) weight."),
-    click.option(
-        "--frequency-weight",
-        "frequency_weight",
-        default=None,
-        metavar="EXPR",
-        help="Each row counts this many times.",
-    ),
-    click.option("--power", type=float, default=None, metavar="P", help="Tweedie variance power."),
-    click.option(
-        "--theta",
-        type=float,
-        default=None,
-        metavar="T",
-        help="Negative binomial theta; leave out to estimate it.",
-    ),
-    click.option(
-        "--link-power",
-        "link_power",
-        type=float,
-        default=None,
-        metavar="X",
-        help="Exponent for --link power.",
-    ),
-    click.option(
-        "--no-intercept", "no_intercept", is_flag=True, help="Fit without an intercept term."
-    ),
-    click.option(
-        "--only",
-        "only",
-        multiple=True,
-        metavar="COL",
-        help="Use only these predictor columns (repeatable).",
-    ),
-    click.option(
-        "--exclude",
-        multiple=True,
-        metavar="COL",
-        help="Leave this column out of the predictors (repeatable).",
-    ),
-    click.option(
-        "--categorical",
-        multiple=True,
-        metavar="COL",
-        help="Treat this numeric column as categorical (repeatable).",
-    ),
-    click.option(
-        "--reference",
-        multiple=True,
-        metavar="COL=LEVEL",
-        help="Reference level of a categorical column (repeatable).",
-    ),
-    click.option(
-        "--interact",
-        multiple=True,
-        metavar="A,B",
-        help="Add the interaction of these comma-separated columns (repeatable).",
-    ),
-    click.option(
-        "--spline",
-        multiple=True,
-        metavar="COL=KNOTS",
-        help="Restricted cubic spline of COL with KNOTS knots (repeatable).",
-    ),
-    click.option(
-        "--nulls",
-        type=click.Choice(["exclude", "error"]),
-        default=None,
-        help="Rows with NULL in a model column: set them aside or stop." + _default("on_null"),
-    ),
-    click.option(
-        "--tol",
-        type=float,
-        default=None,
-        help="Relative deviance change that ends IRLS." + _default("tol"),
-    ),
-    click.option(
-        "--max-iter",
-        "max_iter",
-        type=int,
-        default=None,
-        help="Iteration cap." + _default("max_iter"),
-    ),
-    click.option(
-        "--strict", is_flag=True, help="Fail (exit 5) instead of warning when IRLS does not settle."
-    ),
-    click.option(
-        "--max-levels",
-        "max_levels",
-        type=int,
-        default=None,
-        help="Most levels a categorical column may have." + _default("max_levels"),
-    ),
-    click.option(
-        "--confidence",
-        type=float,
-        default=None,
-        help="Confidence level of the intervals." + _default("confidence"),
-    ),
-)
+# The fit's options, generated from their one declaration (indb.options.OPTIONS).
+database_option = CO.click_options(O.OPTION["db"])
+model_options = CO.click_options(*CO.on_cli("model"))
+execution_options = CO.click_options(*(o for o in CO.on_cli("engine") if o.name != "db"))
+deploy_options = CO.click_options(*CO.on_cli("deploy"))
 
 output_options = _apply(
     click.option(
@@ -356,13 +181,7 @@ progress_json_option = click.option(
     "(printed even with -q or --json).",
 )
 
-registry_schema_option = click.option(
-    "--registry-schema",
-    "registry_schema",
-    default=None,
-    metavar="S",
-    help=f"Schema holding the model registry [default: {DEFAULT_SCHEMA}].",
-)
+registry_schema_option = CO.click_options(O.OPTION["registry_schema"])
 
 registry_database_option = click.option(
     "--db",
@@ -371,95 +190,6 @@ registry_database_option = click.option(
     required=True,
     help="Where the model registry lives: a DuckDB database file, or postgresql://..., "
     "spark:local[N], sc://host:port.",
-)
-
-execution_options = _apply(
-    click.option(
-        "--compress",
-        type=click.Choice(["auto", "always", "never"]),
-        default=None,
-        help="Fold the source to its distinct design rows before IRLS." + _default("compress"),
-    ),
-    click.option(
-        "--sample-start",
-        "sample_start",
-        type=click.Choice(["auto", "always", "never"]),
-        default=None,
-        help="Start IRLS from a fit on a hashed sample of about 100,000 rows (auto: tables "
-        "of 2,000,000 rows or more)." + _default("sample_start"),
-    ),
-    click.option(
-        "--memory-limit",
-        "memory_limit",
-        default=None,
-        metavar="SIZE",
-        help="DuckDB memory limit, e.g. 4GB; work beyond it spills to --temp-directory.",
-    ),
-    click.option(
-        "--temp-directory",
-        "temp_directory",
-        default=None,
-        metavar="DIR",
-        help="Folder DuckDB spills to when over --memory-limit.",
-    ),
-    click.option(
-        "--threads",
-        type=click.IntRange(min=1),
-        default=None,
-        metavar="N",
-        help="DuckDB worker threads.",
-    ),
-)
-
-# (option key, flag as typed): options that only mean something together with --name.
-_DEPLOY_FLAGS = (
-    ("hold", "--hold"),
-    ("new_version", "--new-version"),
-    ("view_schema", "--view-schema"),
-    ("score_source", "--score-source"),
-    ("intervals", "--intervals"),
-    ("registry_schema", "--registry-schema"),
-)
-
-deploy_options = _apply(
-    click.option(
-        "--name",
-        default=None,
-        metavar="NAME",
-        help="Write the model back into --db: a new registry version, the scoring view NAME "
-        "and the scoring macro NAME_score.",
-    ),
-    click.option(
-        "--hold", is_flag=True, help="With --name: record the version without making it live."
-    ),
-    click.option(
-        "--new-version",
-        "new_version",
-        is_flag=True,
-        help="With --name: record a new version even when spec and data are unchanged.",
-    ),
-    click.option(
-        "--view-schema",
-        "view_schema",
-        default=None,
-        metavar="S",
-        help="With --name: schema for the scoring view and macro (default: the main schema).",
-    ),
-    click.option(
-        "--score-source",
-        "score_source",
-        default=None,
-        metavar="SRC",
-        help="With --name: table, query or file the scoring view reads instead of SOURCE; it "
-        "needs the model's input columns.",
-    ),
-    click.option(
-        "--intervals",
-        is_flag=True,
-        help="With --name: add the standard error of eta and a confidence interval for the "
-        "mean to the scoring view.",
-    ),
-    registry_schema_option,
 )
 
 dry_run_option = click.option(
@@ -498,56 +228,14 @@ def _check_database_path(
 
 def _fit_arguments(options: dict[str, Any]) -> dict[str, Any]:
     """Map parsed CLI options onto ``indb.api.fit`` keywords, passing only what was given."""
-    kwargs: dict[str, Any] = {"family": options["family"]}
-    for name in (
-        "link",
-        "db",
-        "trials",
-        "offset",
-        "weight",
-        "frequency_weight",
-        "power",
-        "theta",
-        "link_power",
-        "tol",
-        "max_iter",
-        "max_levels",
-        "confidence",
-        "compress",
-        "sample_start",
-        "memory_limit",
-        "temp_directory",
-        "threads",
-    ):
-        if options[name] is not None:
-            kwargs[name] = options[name]
-    if options["nulls"] is not None:
-        kwargs["on_null"] = options["nulls"]
-    if options["no_intercept"]:
-        kwargs["intercept"] = False
-    if options["strict"]:
-        kwargs["strict"] = True
-    if options["only"]:
-        kwargs["predictors"] = list(options["only"])
-    if options["exclude"]:
-        kwargs["exclude"] = list(options["exclude"])
-    if options["categorical"]:
-        kwargs["categorical"] = list(options["categorical"])
-    if options["reference"]:
-        kwargs["reference"] = _parse_pairs(
-            options["reference"], "--reference", "region=North", "COLUMN=LEVEL"
-        )
-    if options["interact"]:
-        kwargs["interactions"] = _parse_interactions(options["interact"])
-    if options["spline"]:
-        kwargs["splines"] = _parse_splines(options["spline"])
-    return kwargs
+    return CO.given_arguments(options, CO.on_cli("model", "engine"))
 
 
 def _deploy_arguments(options: dict[str, Any]) -> dict[str, Any]:
     """Map --name and its companions onto ``indb.api.fit`` keywords (empty without --name)."""
-    given = [flag for key, flag in _DEPLOY_FLAGS if options[key] not in (None, False)]
     if options["name"] is None:
+        # options that only mean something together with --name
+        given = CO.given_flags(options, (o for o in O.group("deploy") if o.name != "name"))
         if given:
             raise SpecError(
                 f"{', '.join(given)} only apply when the model is written back; "
@@ -565,17 +253,7 @@ def _deploy_arguments(options: dict[str, Any]) -> dict[str, Any]:
     for key, what in (("view_schema", "--view-schema"), ("registry_schema", "--registry-schema")):
         if options[key] is not None:
             writeback.check_name(options[key], what)
-    kwargs: dict[str, Any] = {"name": options["name"]}
-    if options["hold"]:
-        kwargs["promote"] = False
-    if options["new_version"]:
-        kwargs["new_version"] = True
-    if options["intervals"]:
-        kwargs["intervals"] = True
-    for key in ("view_schema", "score_source", "registry_schema"):
-        if options[key] is not None:
-            kwargs[key] = options[key]
-    return kwargs
+    return CO.given_arguments(options, CO.on_cli("deploy"))
 
 
 # -- printing -----------------------------------------------------------------------
@@ -717,12 +395,12 @@ def fit_command(
             _check_database_path(options["db"])
         kwargs = _fit_arguments(options)
         if dry_run:
-            statements = dry_run_model(source, options["response"], **kwargs)
+            statements = dry_run_model(source, **kwargs)
         else:
             progress = _progress(quiet, as_json, progress_json)
             if progress is not None:
                 kwargs["progress"] = progress
-            result = fit_model(source, options["response"], **kwargs, **deploy)
+            result = fit_model(source, **kwargs, **deploy)
     if dry_run:
         _echo_warnings(caught, quiet=quiet, already_shown=())
         note = (
@@ -741,11 +419,8 @@ def fit_command(
 @output_options
 @progress_json_option
 @dry_run_option
-@click.option(
-    "--new-version",
-    "new_version",
-    is_flag=True,
-    help="Record a new version even when spec and data are unchanged.",
+@CO.click_options(
+    O.OPTION["new_version"], help="Record a new version even when spec and data are unchanged."
 )
 @click.argument("spec_path", metavar="SPEC.toml")
 def run_command(
@@ -754,7 +429,7 @@ def run_command(
     quiet: bool,
     progress_json: bool,
     dry_run: bool,
-    new_version: bool,
+    new_version: bool | None,
 ) -> None:
     """Fit the model declared in SPEC.toml, record it and make it the live version.
 
@@ -771,7 +446,7 @@ def run_command(
                 **spec.model,
                 **spec.engine,
                 **spec.deploy,
-                new_version=new_version,
+                new_version=bool(new_version),
                 progress=progress,
             )
     if dry_run:
