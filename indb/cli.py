@@ -1,10 +1,12 @@
 """The ``indb`` command line: parse options, call the library, print.
 
-No SQL and no numerics live here. Every option maps onto one keyword of :func:`indb.api.fit`
-(or of the registry and retrain functions); options left out are not passed on, so the
-library's defaults stay the only defaults. Errors raised by the library become one line on
-stderr starting with ``indb: error:`` and an exit code per error class (see ``EXIT_CODES``);
-``indb retrain`` adds exit code 6 for a version held back by a gate.
+No SQL and no numerics live here, and no text layout (``indb.render``). The fit's options
+are generated from their one declaration (``indb.options.OPTIONS``, by ``indb.cli_options``)
+and each maps onto the keyword of :func:`indb.api.fit` of the same name; options left out
+are not passed on, so the library's defaults stay the only defaults. Errors raised by the
+library become one line on stderr starting with ``indb: error:`` and an exit code per error
+class (see ``EXIT_CODES``); ``indb retrain`` adds exit code 6 for a version held back by a
+gate.
 
 Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` and
 ``retrain`` (TOML spec files), the registry commands ``models``, ``versions``, ``show``,
@@ -250,9 +252,9 @@ def _deploy_arguments(options: dict[str, Any]) -> dict[str, Any]:
     # Names are checked before the fit: the library checks them only when writing back,
     # after a fit that may have taken minutes.
     writeback.check_name(options["name"], "model name (--name)")
-    for key, what in (("view_schema", "--view-schema"), ("registry_schema", "--registry-schema")):
+    for key in ("view_schema", "registry_schema"):
         if options[key] is not None:
-            writeback.check_name(options[key], what)
+            writeback.check_name(options[key], O.OPTION[key].flag)
     return CO.given_arguments(options, CO.on_cli("deploy"))
 
 
