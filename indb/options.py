@@ -26,6 +26,7 @@ from __future__ import annotations
 import json
 import math
 import numbers
+import os
 from collections.abc import Callable, Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -110,9 +111,10 @@ TABLE = Kind("a table of keys", lambda v: isinstance(v, Mapping))
 
 
 def _is_database(v: Any) -> bool:
-    # a path or URL as text; Python callers may also pass an open connection (DuckDB,
-    # psycopg), a SparkSession or an indb Engine: anything that runs SQL
-    return _is_text(v) or any(callable(getattr(v, m, None)) for m in ("execute", "sql"))
+    # a path or URL as text; Python callers may also pass a pathlib path, an open
+    # connection (DuckDB, psycopg), a SparkSession or an indb Engine: anything that runs SQL
+    runs_sql = any(callable(getattr(v, m, None)) for m in ("execute", "sql"))
+    return _is_text(v) or isinstance(v, os.PathLike) or runs_sql
 
 
 # spelt as TEXT's: in a spec file (and on the command line) a database is text

@@ -13,8 +13,10 @@ from __future__ import annotations
 import dataclasses
 import inspect
 import re
+from pathlib import Path
 
 import click
+import duckdb
 import pytest
 from click.testing import CliRunner
 
@@ -199,12 +201,13 @@ def test_fit_refuses_a_value_of_the_wrong_kind_before_any_work(
         indb.fit("t", "y", **{option: value})
 
 
-def test_a_connection_is_a_database():
-    # DuckDB's own connection object passes the db check (and is used as given)
-    import duckdb
-
-    con = duckdb.connect()
-    con.execute("CREATE TABLE t AS SELECT range::DOUBLE AS x, 2 * range + 1 AS y FROM range(5)")
-    result = indb.fit("t", "y", db=con)
-    # y = 1 + 2 x exactly: the least-squares line through the points (no oracle needed)
-    assert [round(c.estimate, 9) for c in result.coefficients] == [1.0, 2.0]
+def test_a_connection_or_a_path_is_a_database(tmp_path: Path):
+    # DuckDB's own connection object and a pathlib path pass the db check, as before it
+    path = tmp_path / "line.duckdb"
+    with duckdb.connect(str(path)) as con:
+        con.execute("CREATE TABLE t AS SELECT range::DOUBLE AS x, 2 * range + 1 AS y FROM range(5)")
+    with duckdb.connect(str(path)) as con:
+        fits = [indb.fit("t", "y", db=con), indb.fit("t", "y", db=path)]
+    for result in fits:
+        # y = 1 + 2 x exactly: the least-squares line through the points (no oracle needed)
+        assert [round(c.estimate, 9) for c in result.coefficients] == [1.0, 2.0]
