@@ -547,15 +547,6 @@ def test_tweedie_needs_positive_response_from_power_two(p: float) -> None:
     assert fam.y_min == 0.0 and fam.y_min_strict and fam.y_max is None
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason=(
-        "Tweedie(var_power=0) is the normal distribution (support and mean the whole real "
-        "line, statsmodels' Tweedie(var_power=0) deviance is (y - mu)^2) but families.Tweedie "
-        "declares y_min = 0 and positive_mean for every power, so a fit rejects negative "
-        "responses and an identity link gets a mu > 0 condition"
-    ),
-)
 def test_tweedie_power_zero_takes_any_real_response() -> None:
     fam = make_family("tweedie", power=0)
     assert fam.y_min is None and not fam.positive_mean

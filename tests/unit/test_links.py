@@ -43,7 +43,8 @@ class Case:
     the part where statsmodels does not clip its argument (it trims unit means to
     [eps, 1 - eps] and log means to >= eps); ``fd_eta``: where a central difference is
     meaningful (the inverse neither saturates nor underflows); ``abs_tail``: the mean is
-    accurate in absolute, not relative, terms as it nears 0 (see the xfail tests below).
+    accurate in absolute, not relative, terms as it nears 0 (the lower-tail test below checks
+    the SQL forms in relative terms against mpmath).
     """
 
     link: Link
@@ -386,46 +387,29 @@ LOWER_TAIL_ETA = {
 }
 
 
-def _tail_xfail(reason: str) -> pytest.MarkDecorator:
-    return pytest.mark.xfail(strict=True, reason=reason)
-
-
 @pytest.mark.parametrize(
     ("name", "form"),
-    [
-        pytest.param(
-            "probit",
-            "sql",
-            marks=_tail_xfail(
-                "links._normal_cdf_sql is accurate in absolute terms only: in the lower tail its "
-                "relative error reaches ~9e-9 (near eta = -7.8; 5e-11 at -5, 3e-9 at -10), so "
-                "SQL probit means below ~1e-6 keep about 8 digits (scipy.special.ndtr)"
-            ),
-        ),
-        pytest.param(
-            "cauchit",
-            "sql",
-            marks=_tail_xfail(
-                "CauchitLink.inverse_sql computes 1/2 + atan(eta)/pi, which cancels as eta -> "
-                "-inf: relative error ~eps/mu (7e-9 at eta = -1e8, 0 instead of 3e-301 at "
-                "-1e300; scipy.stats.cauchy.cdf)"
-            ),
-        ),
-        pytest.param(
-            "cauchit",
-            "numpy",
-            marks=_tail_xfail(
-                "CauchitLink.inverse (numpy) computes 0.5 + arctan(eta)/pi, which cancels as "
-                "eta -> -inf: relative error ~eps/mu (scipy.stats.cauchy.cdf)"
-            ),
-        ),
-    ],
+    [("probit", "sql"), ("cauchit", "sql"), ("cauchit", "numpy")],
 )
 def test_unit_link_means_keep_relative_accuracy_in_the_lower_tail(name: str, form: str) -> None:
     c = CASES[name]
     eta = LOWER_TAIL_ETA[name]
     got = _sql_forms(c.link, eta, _a(0.5))["inv"] if form == "sql" else c.link.inverse(eta)
-    assert_allclose(got, c.inverse(eta), rtol=1e-13, atol=0)
+    assert_allclose(got, _lower_tail_reference(name, eta), rtol=1e-14, atol=0)
+
+
+def _lower_tail_reference(name: str, eta: np.ndarray) -> np.ndarray:
+    """The mean at 40 significant digits (mpmath), rounded once to a double.
+
+    scipy.special.ndtr is itself off by up to ~1e-13 relative far out in the lower tail (6e-14
+    at -30, 1e-13 at -36.5, checked against mpmath.ncdf), so it cannot judge 1e-14 there;
+    the Cauchy CDF is atan(1/|eta|)/pi for eta < 0 (mpmath, same precision).
+    """
+    mpmath = pytest.importorskip("mpmath")
+    with mpmath.workdps(40):
+        if name == "probit":
+            return np.array([float(mpmath.ncdf(mpmath.mpf(float(v)))) for v in eta])
+        return np.array([float(mpmath.atan(1 / mpmath.mpf(-float(v))) / mpmath.pi) for v in eta])
 
 
 # -- clamps: large |eta| stays finite in SQL ----------------------------------------------------
