@@ -31,7 +31,8 @@ from indb import writeback
 from indb.api import dry_run as dry_run_model
 from indb.api import fit as fit_model
 from indb.api import registry as open_registry
-from indb.dialect import SCORING_DIALECTS, Dialect, dialect_for
+from indb.engines.backends import DIALECT_NAMES, SCORING_DIALECTS, dialect_for
+from indb.engines.base_dialect import Dialect
 from indb.errors import (
     EngineError,
     IndbError,
@@ -191,7 +192,7 @@ registry_database_option = click.option(
     metavar="DB",
     required=True,
     help="Where the model registry lives: a DuckDB database file, or postgresql://..., "
-    "spark:local[N], sc://host:port.",
+    "spark:local[N], sc://host:port. Commands that only read open a DuckDB file read-only.",
 )
 
 dry_run_option = click.option(
@@ -312,48 +313,24 @@ def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
 
 
 @contextmanager
-def _open_registry(db: str, schema: str | None) -> Iterator[Registry]:
+def _open_registry(db: str, schema: str | None, *, writes: bool = False) -> Iterator[Registry]:
+    """The registry of ``db``; opened read-only unless the command ``writes`` to it (so the
+    reading commands work on a read-only filesystem or a file without write permission)."""
     _check_database_path(db, hint="the registry lives in the file a named fit wrote to")
-    reg = open_registry(db, schema or DEFAULT_SCHEMA)
+    reg = open_registry(db, schema or DEFAULT_SCHEMA, read_only=not writes)
     try:
         yield reg
     finally:
         reg.engine.close()
 
 
-def _relation(dialect: Dialect, text: str) -> Any:
-    return dialect.relation(Source.parse(text))
-
-
 def _dialect(name: str) -> Dialect:
-    if name.strip().lower() not in (*SCORING_DIALECTS, "postgresql"):
+    if name.strip().lower() not in DIALECT_NAMES:
         raise SpecError(
             f"--dialect {name!r} is not supported for scoring SQL; supported: "
             f"{', '.join(SCORING_DIALECTS)}"
         )
     return dialect_for(name)
-
-
-def _scoring_sql(
-    result: FitResult,
-    model_row: dict[str, Any],
-    dialect: Dialect,
-    source: str | None,
-    intervals: bool | None,
-) -> str:
-    text = source or model_row.get("score_source")
-    if not text:
-        raise SpecError(
-            f"model {model_row['model_name']!r} has no scoring source; give --source SRC"
-        )
-    query = writeback.scoring_query(
-        result,
-        dialect,
-        _relation(dialect, text),
-        intervals=bool(model_row.get("intervals")) if intervals is None else intervals,
-    )
-    view = writeback.create_view(model_row.get("view_schema"), model_row["view_name"], query)
-    return dialect.render(view)
 
 
 # -- commands -----------------------------------------------------------------------
@@ -577,19 +554,30 @@ def compare_command(
 @main.command("promote", short_help="Make a version live (also the roll-back).")
 @registry_database_option
 @registry_schema_option
+@CO.click_options(
+    O.OPTION["view_schema"],
+    help="Move the scoring view and macro to schema S (the old ones are dropped in the same "
+    "transaction); default: where they are now.",
+)
 @output_options
 @click.argument("name")
 @click.argument("version", type=int)
 def promote_command(
-    name: str, version: int, db: str, registry_schema: str | None, as_json: bool, quiet: bool
+    name: str,
+    version: int,
+    db: str,
+    registry_schema: str | None,
+    view_schema: str | None,
+    as_json: bool,
+    quiet: bool,
 ) -> None:
     """Make VERSION of model NAME live: its scoring view and macro serve it from now on.
 
     Promoting an earlier version is the roll-back.
     """
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         previous = reg.model(name)["live_version"]
-        reg.promote(name, version)
+        reg.promote(name, version, view_schema=view_schema)
         view = R.view_label(reg.model(name))
     render = R.promote_json if as_json else R.promote_text
     click.echo(render(name, version, previous, view))
@@ -606,7 +594,7 @@ def drop_command(
 ) -> None:
     """Drop VERSION of model NAME (its rows stay for audit; the live version cannot be
     dropped)."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         reg.drop(name, version)
     click.echo(R.drop_json(name, version) if as_json else R.drop_text(name, version))
 
@@ -655,8 +643,14 @@ def scoring_sql_command(
         target = _dialect(dialect)
         with _open_registry(db, registry_schema) as reg:
             row = reg.model(name)
-            result = reg.load(name, version)
-        sql = _scoring_sql(result, row, target, source, intervals)
+            sql = reg.scoring_sql(
+                name,
+                target,
+                version=version,
+                source=source,
+                intervals=intervals,
+                view_schema=row.get("view_schema"),
+            )
     if as_json:
         chosen = row["live_version"] if version is None else version
         click.echo(R.scoring_sql_json(name, chosen, target.name, row, sql))

@@ -19,7 +19,7 @@ from typing import Any
 
 from indb import demo_data
 from indb.api import fit
-from indb.engine import DuckDBEngine
+from indb.engines.duckdb import DuckDBEngine
 from indb.report import render_json, render_report
 from indb.results import FitResult
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import math
+import sys
 import time
 import uuid
 import warnings
@@ -17,6 +18,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import sparse
 
 from indb import logsums, solver
 from indb import plan as P
@@ -27,24 +29,29 @@ from indb.design import (
     DesignColumn,
     Factor,
     Inputs,
+    Scaling,
     Value,
     build_design,
     factor_sets,
     plan_values,
     resolve_inputs,
 )
-from indb.engine import Engine
+from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
     AliasingWarning,
     ConvergenceWarning,
     EngineError,
     NonConvergenceError,
+    NondeterministicSourceError,
+    PrecisionWarning,
+    ResidualDfWarning,
     SeparationWarning,
     SpecError,
     UnsupportedError,
 )
 from indb.families import NegativeBinomial, Poisson
-from indb.results import Coefficient, FitResult, IterationRecord
+from indb.links import IdentityLink, PowerLink
+from indb.results import COVARIANCE_MAX_TERMS, Coefficient, FitResult, IterationRecord
 from indb.spec import ModelSpec, Source
 from indb.sqlexpr import Expr
 
@@ -80,6 +87,12 @@ class _Run:
     fold_seconds: float = 0.0
     #: the sample start: (rows in the sample, its IRLS scans, seconds), or why it was skipped
     sample: tuple[int, int, float] | str | None = None
+    #: the internal rescaling of response and weights (the scans' numbers -> the source's)
+    scaling: Scaling = dataclasses.field(default_factory=Scaling)
+    #: warnings found before the fit (digits lost to magnitudes), given with the result
+    notes: list[str] = dataclasses.field(default_factory=list)
+    #: (rows, frequency-weighted rows) every IRLS scan of the fit's table must count
+    expected: tuple[int, float] | None = None
 
     def drop_temp(self) -> None:
         for name in self.temp_tables:
@@ -90,7 +103,7 @@ class _Run:
     def record(self, dev: float, change: float, halvings: int, seconds: float) -> None:
         rec = IterationRecord(
             iteration=len(self.log) + 1,
-            deviance=dev,
+            deviance=self.scaling.unscale(dev),
             relative_change=change,
             step_halvings=halvings,
             seconds=seconds,
@@ -99,6 +112,25 @@ class _Run:
         self.log.append(rec)
         if self.progress is not None:
             self.progress(rec)
+
+    def check_rows(self, sums: solver.Sums) -> None:
+        """Raise when a scan of the fit's table counts other rows than the profile did:
+        the source returns different rows each time it is read."""
+        if self.expected is None or self.phase == "sample":
+            return
+        rows, weighted = self.expected
+        if sums.n == rows and abs(sums.n_weighted - weighted) <= 1e-9 * abs(weighted):
+            return
+        what = "rows" if sums.n != rows else "frequency-weighted rows"
+        seen, before = (sums.n, rows) if sums.n != rows else (sums.n_weighted, weighted)
+        raise NondeterministicSourceError(
+            f"the source is not deterministic: IRLS scan {len(self.log) + 1} counted "
+            f"{seen:,.6g} {what} where the profile scan counted {before:,.6g}. indb reads "
+            "the source once per iteration, so it must return the same rows every time; "
+            "a sample (USING SAMPLE, TABLESAMPLE), random(), a LIMIT without ORDER BY or a "
+            "table written to during the fit breaks that. Store the rows first (CREATE "
+            "TABLE ... AS SELECT ...) or make the sample repeatable (REPEATABLE (seed))"
+        )
 
 
 @dataclass(frozen=True)
@@ -229,7 +261,10 @@ class _Summary:
 
 
 def _summarize(
-    ctx: P.PlanContext, row: dict, values: tuple[Value, ...], shifts: dict[str, float]
+    ctx: P.PlanContext,
+    row: dict,
+    values: tuple[Value, ...],
+    shifts: dict[str, tuple[float, float]],
 ) -> _Summary:
     n = int(row["n_kept"])
     for i, (stem, _) in enumerate(P.domain_checks(ctx)):
@@ -260,16 +295,14 @@ def _summarize(
         )
     out_values = [values[0]]
     for v in values[1:]:
-        # moments about a value c of one kept row (profile_items): m = mean(v - c),
-        # q = mean((v - c)^2); q is 0 exactly when every row has v = c
-        c = shifts.get(v.alias, 0.0)
-        m = float(row[f"{v.alias}_mean"])
+        c, mean, sd, rms = _moments(row, v.alias, shifts)
         q = float(row[f"{v.alias}_ms"])
-        mean = c + m
-        var = q - m * m
-        # cancellation (c far out in a tail): the spread about c still conditions well
-        sd = math.sqrt(var) if var > 1e-12 * q else math.sqrt(max(q, 0.0))
-        rms = math.sqrt(max(q + 2.0 * c * m + c * c, 0.0))
+        if not (math.isfinite(q) and math.isfinite(sd) and math.isfinite(rms)):
+            raise SpecError(
+                f"predictor {v.label!r} spans more than the range of doubles (its squares "
+                f"overflow although scaled by its spread in the first {P.HEAD_ROWS} rows); "
+                "rescale it in the source query"
+            )
         if v.centered:
             if q == 0.0:
                 raise SpecError(
@@ -282,16 +315,17 @@ def _summarize(
             if not rms > 0:
                 raise SpecError(f"predictor {v.label!r} is 0 in every row used; leave it out")
             out_values.append(dataclasses.replace(v, scale=rms))
-    column_sums = {
-        v.label: (shifts.get(v.alias, 0.0) + float(row[f"{v.alias}_mean"])) * n for v in values[1:]
-    }
+    column_sums = {v.label: _moments(row, v.alias, shifts)[1] * n for v in values[1:]}
     pw_min, pw_max = row["pw_min"], row["pw_max"]
+    sc = ctx.scaling
+    # the response sum on the source's scale (the data fingerprint), from the rescaled one
+    sum_fpwy = float(row["sum_fpwy"]) / sc.factor + sc.shift * sum_fpw
     return _Summary(
         ll_sums={k[3:]: float(v) for k, v in row.items() if k.startswith("ll_") and v is not None},
         constant_weight=float(pw_min) if pw_min is not None and pw_min == pw_max else None,
         off_mean=float(row["off_mean"] or 0.0),
         column_sums=column_sums,
-        sum_fpwy=float(row["sum_fpwy"]),
+        sum_fpwy=sum_fpwy,
         n=n,
         sum_f=float(row["sum_f"]),
         sum_fpw=sum_fpw,
@@ -301,6 +335,89 @@ def _summarize(
         values=tuple(out_values),
         level_counts=(),
     )
+
+
+#: significant digits (of 16) a column's magnitude may cost before a PrecisionWarning
+PRECISION_DIGITS = 8.0
+
+
+def _precision_notes(
+    ctx: P.PlanContext, row: dict, shifts: dict[str, tuple[float, float]], summary: _Summary
+) -> list[str]:
+    """Warnings for digits lost to a large level against a small spread where the fit
+    cannot centre it away: a response the family or link cannot shift (the residual
+    y - mu of two near-equal numbers keeps about 16 - log10(level / spread) digits), and a
+    predictor left uncentred because it multiplies a categorical column or the model has
+    no intercept (its design column is then nearly proportional to the intercept or to a
+    level's indicator: X'WX loses about 2 log10(level / spread) digits)."""
+    notes: list[str] = []
+    spec = ctx.spec
+    _, mean, sd, _ = _moments(row, P.RESPONSE_KEY, shifts)
+    lost = _digits(mean, sd)
+    if not _centres_response(spec) and lost > PRECISION_DIGITS:
+        gaussian_identity = spec.family.name == "gaussian" and isinstance(spec.link, IdentityLink)
+        if gaussian_identity and not spec.intercept:
+            why = "the model has no intercept to take a shift of it"
+            fix = "fit an intercept, or subtract a constant from it in the source query"
+        else:
+            why = (
+                f"family {spec.family.name!r} with link {spec.link.describe()!r} cannot be "
+                "fitted to a shifted response"
+            )
+            fix = (
+                "model its variation about a constant instead (gaussian with the identity "
+                "link and an intercept is centred internally)"
+            )
+        notes.append(
+            f"response column {ctx.inputs.response!r} varies by only {sd:.3g} around "
+            f"{mean:.10g} and {why}, so about {lost:.0f} of 16 significant digits are lost in "
+            f"its deviance, dispersion and standard errors; {fix}"
+        )
+    if not (spec.intercept or ctx.inputs.factors):
+        return notes
+    for v in summary.values[1:]:
+        if v.centered:
+            continue
+        _, mean, sd, _ = _moments(row, v.alias, shifts)
+        lost = 2.0 * _digits(mean, sd)
+        if lost > PRECISION_DIGITS:
+            notes.append(
+                f"predictor {v.label!r} varies by only {sd:.3g} around {mean:.10g} and is "
+                "not centred (it multiplies a categorical column, or the model has no "
+                "intercept), so its design column is nearly proportional to the intercept "
+                f"or to a level's indicator and about {lost:.0f} of 16 significant digits "
+                "of its coefficients are lost; subtract a round number near its mean from "
+                "it in the source query"
+            )
+    return notes
+
+
+def _digits(mean: float, sd: float) -> float:
+    """log10(|mean| / sd): the decimal digits a difference of two values near the mean
+    loses (0 when the spread is as large as the level)."""
+    if not (sd > 0 and math.isfinite(sd) and math.isfinite(mean)) or abs(mean) <= sd:
+        return 0.0
+    return math.log10(abs(mean) / sd)
+
+
+def _moments(
+    row: dict, alias: str, shifts: dict[str, tuple[float, float]]
+) -> tuple[float, float, float, float]:
+    """(c, mean, standard deviation, root mean square) of a value from the profile's
+    moments about c, scaled by g (profile_items): m = mean((v - c) g), q = mean(((v - c)
+    g)^2); q is 0 exactly when every row has v = c."""
+    c, g = shifts.get(alias, (0.0, 1.0))
+    m = float(row[f"{alias}_mean"])
+    q = float(row[f"{alias}_ms"])
+    var = q - m * m
+    # cancellation (c far out in a tail): the spread about c still conditions well
+    sd = (math.sqrt(var) if var > 1e-12 * q else math.sqrt(max(q, 0.0))) / g
+    # rms^2 = mean(v^2) = (c + m/g)^2 + var/g^2, taken relative to the larger of |c| and
+    # the spread so that values near the largest doubles do not overflow it
+    mean = c + m / g
+    big = max(abs(c), math.sqrt(max(q, 0.0)) / g)
+    rms = big * math.hypot(mean / big, sd / big) if big > 0 else 0.0
+    return c, mean, sd, rms
 
 
 def _factors(
@@ -463,6 +580,7 @@ def _irls(
             got = logsums.assemble_log_scan(
                 design, run.query(tree), beta, power, log_cache, off_center
             )
+            run.check_rows(got.sums)
             wants_null = (null_mu is not None and null_dev is None) or (
                 null_track is not None and not null_track.done
             )
@@ -492,6 +610,7 @@ def _irls(
         if spec.family.unit_mean:
             extra += ("edge", "near")
         out = solver.assemble(design, run.query(tree), extra)
+        run.check_rows(out)
         cells = out.cell_keys
         if with_mu:
             null_dev = out.extras["nulldev"]
@@ -558,7 +677,8 @@ def _irls(
                 stalled = True
                 break
             if halvings >= MAX_HALVINGS:
-                raise SpecError(_halving_failure(spec, sums))
+                _check_repeatable(run, scan, beta_prev, dev_old)
+                raise SpecError(_halving_failure(spec, sums, run.scaling))
             beta = 0.5 * (beta + beta_prev)
             halvings += 1
         if stalled:
@@ -601,11 +721,32 @@ def _irls(
     ), null_dev
 
 
-def _halving_failure(spec: ModelSpec, sums: solver.Sums) -> str:
+def _check_repeatable(
+    run: _Run, scan: Callable[[np.ndarray], solver.Sums], beta: np.ndarray, deviance: float
+) -> None:
+    """Before blaming the model for a failed step-halving: scan the last accepted
+    coefficients again. A deviance other than the one they gave (beyond the rounding of a
+    parallel sum) means the source's values change between reads, with the same rows."""
+    if not math.isfinite(deviance) or run.phase == "sample":
+        return
+    again = scan(beta).deviance
+    if abs(again - deviance) <= 1e-9 * abs(deviance) + 1e-300:
+        return
+    raise NondeterministicSourceError(
+        "the source is not deterministic: the same coefficients gave the deviance "
+        f"{run.scaling.unscale(deviance):.10g} in one IRLS scan and "
+        f"{run.scaling.unscale(again):.10g} in the next, so its values change between "
+        "reads (random(), a sample such as USING SAMPLE or TABLESAMPLE, or a table written "
+        "to during the fit). indb reads the source once per iteration; store the rows first "
+        "(CREATE TABLE ... AS SELECT ...) or make the sample repeatable (REPEATABLE (seed))"
+    )
+
+
+def _halving_failure(spec: ModelSpec, sums: solver.Sums, scaling: Scaling) -> str:
     msg = (
         f"IRLS step-halving failed after {MAX_HALVINGS} halvings (deviance "
-        f"{sums.deviance:g}, {sums.bad} rows with invalid means); the model may be "
-        "unsuitable for the data (check the link and family)"
+        f"{scaling.unscale(sums.deviance):g}, {sums.bad} rows with invalid means); the model "
+        "may be unsuitable for the data (check the link and family)"
     )
     if spec.offset is not None:
         # an offset is added to every row's linear predictor unscaled: one on the wrong
@@ -707,12 +848,17 @@ def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
     ctx = P.PlanContext(spec, inputs, engine.dialect)
     knots = _knots(ctx, run)
     values = plan_values(inputs, spec.intercept)
-    shifts = _shifts(ctx, run, values, knots)
+    head = run.one_row(P.head_query(ctx, values, knots))
+    shifts = _shifts(head, values)
+    ctx = dataclasses.replace(ctx, scaling=_response_scaling(spec, head))
     items = P.profile_items(ctx, values, knots, shifts)
     folded = _fold(ctx, run, items) if _should_fold(ctx, run) else None
     row = folded[0] if folded else _profile(ctx, run, items)
     n_total, n_kept, by_col = _check_nulls(ctx, row)
     summary = _summarize(ctx, row, values, shifts)
+    run.scaling = _weight_scaling(ctx, summary)
+    run.notes += _precision_notes(ctx, row, shifts, summary)
+    ctx = dataclasses.replace(ctx, scaling=run.scaling)
     if folded:
         ctx = _folded_context(ctx, run, folded[1], n_kept)
     factors, combos = _factors(ctx, run)
@@ -721,22 +867,116 @@ def _prepare(spec: ModelSpec, engine: Engine, run: _Run):
     )
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
+    solver.check_size(design)
     return ctx, design, summary, n_total, n_kept, by_col
 
 
-def _shifts(
-    ctx: P.PlanContext, run: _Run, values: tuple[Value, ...], knots: dict
-) -> dict[str, float]:
-    """Each value in one kept row (0 where there is none, or it is NULL or not finite):
-    the points the profile takes moments about."""
-    if len(values) < 2:
-        return {}
-    row = run.one_row(P.first_values_query(ctx, values, knots))
-    out: dict[str, float] = {}
-    for v in values[1:]:
-        x = row.get(v.alias)
-        out[v.alias] = float(x) if x is not None and math.isfinite(float(x)) else 0.0
+def _shifts(head: dict[str, object], values: tuple[Value, ...]) -> dict[str, tuple[float, float]]:
+    """Per value (and the response, key ``y``) the point c and the power of two g the
+    profile takes moments of (v - c) g about (:func:`plan.profile_items`): c the lowest
+    value among the first kept rows (0 where there is none, or it is not finite), g about
+    one over their range when that lies outside ``MAGNITUDE_BAND`` (else 1: the SQL of
+    ordinary data stays as it was)."""
+    out: dict[str, tuple[float, float]] = {}
+    for alias in [*(v.alias for v in values[1:]), P.RESPONSE_KEY]:
+        lo, hi = _finite_or_none(head.get(f"{alias}_lo")), _finite_or_none(head.get(f"{alias}_hi"))
+        c = lo if lo is not None else 0.0
+        width = (hi - c) if hi is not None else 0.0
+        out[alias] = (c, 1.0 / _power_of_two(width))
     return out
+
+
+#: magnitudes (powers of two) inside which nothing is rescaled: 2^-16 .. 2^16
+MAGNITUDE_BAND = 16
+
+
+def _power_of_two(magnitude: float) -> float:
+    """The power of two nearest ``magnitude`` when it lies outside 2^+-MAGNITUDE_BAND, else 1
+    (also for 0 and non-finite magnitudes: nothing to go by)."""
+    if not (math.isfinite(magnitude) and magnitude > 0):
+        return 1.0
+    e = round(math.log2(magnitude))
+    return math.ldexp(1.0, e) if abs(e) > MAGNITUDE_BAND else 1.0
+
+
+def _finite_or_none(v: object) -> float | None:
+    if v is None:
+        return None
+    x = float(v)
+    return x if math.isfinite(x) else None
+
+
+def _response_scaling(spec: ModelSpec, head: dict[str, object]) -> Scaling:
+    """How to rescale the response (from its range among the first kept rows).
+
+    Gaussian with the identity link and an intercept: centred on a value of a kept row,
+    y - c (the intercept takes c back), so residuals, deviance and X'Wz keep their digits
+    however far the response lies from 0; then, like every power-variance family
+    (V(mu) = mu^p) with a log link and an intercept or a power link, divided by the power
+    of two nearest its size when that lies outside 2^+-MAGNITUDE_BAND, so that squares,
+    mu^p and the deviance neither overflow nor underflow and the convergence test sees
+    the deviance at its usual size. Binomial and negative binomial responses are not
+    rescaled: their variance functions are not powers of the mean.
+    """
+    fam, link = spec.family, spec.link
+    p = fam.variance_power
+    if p is None:
+        return Scaling()
+    if link.name == "log":
+        exponent = None
+    elif isinstance(link, IdentityLink):
+        exponent = 1.0
+    elif isinstance(link, PowerLink):
+        exponent = link.exponent
+    else:
+        return Scaling()
+    lo = _finite_or_none(head.get(f"{P.RESPONSE_KEY}_lo"))
+    hi = _finite_or_none(head.get(f"{P.RESPONSE_KEY}_hi"))
+    if lo is None or hi is None:
+        return Scaling()  # no finite response among the first rows: the profile explains
+    shift = lo if _centres_response(spec) else 0.0
+    size = hi - lo if shift != 0.0 else max(abs(lo), abs(hi))
+    factor = 1.0 / _power_of_two(size if math.isfinite(size) else max(abs(lo), abs(hi)))
+    if factor == 1.0 or (exponent is None and not spec.intercept):
+        # a log link moves ln(factor) into the intercept: without one, leave y alone
+        return Scaling(shift=shift, variance_power=p)
+    return Scaling(
+        shift=shift,
+        factor=factor,
+        coef_factor=1.0 if exponent is None else factor**exponent,
+        log_shift=math.log(factor) if exponent is None else 0.0,
+        variance_power=p,
+    )
+
+
+def _centres_response(spec: ModelSpec) -> bool:
+    """Whether the fit runs on y - c: a gaussian-variance family with the identity link and
+    an intercept to take c back (not a positive-mean one such as tweedie with power 0,
+    whose response must stay > 0)."""
+    fam = spec.family
+    return (
+        fam.variance_power == 0.0
+        and isinstance(spec.link, IdentityLink)
+        and spec.intercept
+        and not fam.positive_mean
+    )
+
+
+def _weight_scaling(ctx: P.PlanContext, summary: _Summary) -> Scaling:
+    """The response scaling plus the weights' powers of two: frequency weights divided by
+    the one nearest their mean, prior weights by the one nearest their frequency-weighted
+    mean (each only outside 2^+-MAGNITUDE_BAND). Every IRLS sum is then about as large
+    as with unit weights, so the convergence test (a relative deviance change with an
+    absolute floor, and a step measured in standard errors) stops where it would with
+    unit weights: constant weights of 1e-12 or 1e50 give the unit-weight estimates."""
+    inputs = ctx.inputs
+    ff = 1.0
+    if inputs.frequency_weight is not None:
+        ff = 1.0 / _power_of_two(summary.sum_f / max(summary.n, 1))
+    wf = 1.0
+    if (inputs.weight is not None or inputs.trials is not None) and summary.sum_f > 0:
+        wf = 1.0 / _power_of_two(summary.sum_fpw / summary.sum_f)
+    return dataclasses.replace(ctx.scaling, weight_factor=wf, freq_factor=ff)
 
 
 def _profile(ctx: P.PlanContext, run: _Run, items: list[P.ProfileItem]) -> dict[str, object]:
@@ -853,7 +1093,14 @@ def _folded_context(ctx: P.PlanContext, run: _Run, groups: str, n_kept: int) -> 
     )
     run.original_ctx = ctx
     run.compressed = (n_kept, n_groups, run.fold_seconds + time.perf_counter() - t0)
-    return P.PlanContext(new_spec, inputs, ctx.dialect, row_count=P.ROWCOUNT, folded=True)
+    return P.PlanContext(
+        new_spec,
+        inputs,
+        ctx.dialect,
+        row_count=P.ROWCOUNT,
+        folded=True,
+        scaling=ctx.scaling.for_folded_rows(),
+    )
 
 
 def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
@@ -862,11 +1109,12 @@ def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
     The pre-fit scans run (they only read); the first IRLS scan is returned, not run. Later
     scans differ only in the coefficient literals.
     """
+    spec = dataclasses.replace(spec, source=qualify_source(engine, spec.source))
     sent: list[tuple[str, str]] = []
     recorder = _RecordingEngine(engine, sent)
     run = _Run(engine=recorder, progress=None, log=[])
     ctx, design, summary, *_ = _prepare(spec, recorder, run)
-    start = _start_from(spec, design, summary)
+    start = _start_from(spec, design, run.scaling)
     tree = P.gram_query(ctx, design, start, ybar=summary.ybar)
     sent.append(("IRLS scan (one per iteration; coefficients change)", engine.dialect.render(tree)))
     return sent
@@ -896,6 +1144,9 @@ class _RecordingEngine(Engine):
 def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitResult:
     """Fit ``spec`` on ``engine``; see :func:`indb.fit` for the user-facing description."""
     t_start = time.perf_counter()
+    # the name as the engine resolves it now: the stored spec and the scoring view then
+    # read this table whatever schema or session reads them later
+    spec = dataclasses.replace(spec, source=qualify_source(engine, spec.source))
     run = _Run(engine=engine, progress=progress, log=[])
     try:
         return _fit(spec, run, t_start)
@@ -912,6 +1163,12 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
         summary = dataclasses.replace(summary, ybar=run.fit_ybar)
 
     warn_msgs: list[str] = []
+    for msg in run.notes:
+        warnings.warn(msg, PrecisionWarning, stacklevel=2)
+        warn_msgs.append(msg)
+    # every scan of the fit's table must see the rows the profile saw
+    rows = run.compressed[1] if run.compressed is not None else n_kept
+    run.expected = (rows, summary.sum_f * run.scaling.freq_factor)
     if spec.estimate_theta:
         theta, beta0 = _estimate_theta(ctx, design, run, summary)
         spec = dataclasses.replace(spec, family=NegativeBinomial(theta=theta))
@@ -919,7 +1176,7 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
         ctx = dataclasses.replace(ctx, spec=spec)
         start = beta0
     else:
-        start = _start_from(spec, design, summary)
+        start = _start_from(spec, design, run.scaling)
     null_mu, refit_null = _null_deviance(ctx, design, run, summary.ybar)
     null_b0 = _null_start(ctx, summary) if refit_null else None
     if start is None:
@@ -950,7 +1207,8 @@ def _fit(spec: ModelSpec, run: _Run, t_start: float) -> FitResult:
         msg = (
             f"IRLS stopped after {sum(r.phase == 'fit' for r in run.log)} iterations: "
             "step-halving cannot lower the "
-            f"deviance ({state.sums.deviance:.6g}) any further while the next step still "
+            f"deviance ({run.scaling.unscale(state.sums.deviance):.6g}) any further while the "
+            "next step still "
             "moves coefficients by many standard errors; the fit sits on the boundary "
             "(fitted means at the edge of the family's range, e.g. Poisson means at 0, "
             "probabilities at 0 or 1), so some estimates drift to infinity and their "
@@ -1069,23 +1327,23 @@ def _sample_start(
     phi = 1.0
     if not ctx.spec.family.dispersion_fixed:
         phi = state.sums.pearson / max(state.sums.n_weighted - int((~sol.aliased).sum()), 1.0)
-    se = np.sqrt(np.clip(np.diag(sol.inv_info) * phi, 0.0, None))
+    se = np.sqrt(np.clip(sol.inv_info.diagonal() * phi, 0.0, None))
     beta = np.where(se < SAMPLE_MAX_SE, sol.beta, 0.0)
     scans = sum(1 + r.step_halvings for r in run.log[log_size:])
     run.sample = (state.sums.n, scans, time.perf_counter() - t0)
     return beta, (track.b0 if track is not None else None)
 
 
-def _start_from(spec: ModelSpec, design: Design, summary: _Summary) -> np.ndarray | None:
-    """Warm-start coefficients given on the original scale (by term name), standardized."""
+def _start_from(spec: ModelSpec, design: Design, scaling: Scaling) -> np.ndarray | None:
+    """Warm-start coefficients given on the original scale (by term name), standardized
+    and rescaled as the fit's response (:class:`indb.design.Scaling`)."""
     if not spec.start:
         return None
     # Terms the design no longer has (a level that vanished, a dropped column) are ignored:
     # start values only steer the first step, never the answer.
     given = dict(spec.start)
     orig = np.array([given.get(t, 0.0) for t in design.terms])
-    t = solver.back_transform(design)
-    return np.linalg.solve(t, orig)
+    return scaling.to_fit(solver.standardize(design, orig), design.intercept)
 
 
 def _result(
@@ -1105,19 +1363,31 @@ def _result(
     spec = report_spec
     fam = spec.family
     sol = state.solution
-    sums = state.sums
+    sums = state.sums  # on the scale of the internally rescaled fit (run.scaling)
+    sc = run.scaling
     rank = int((~sol.aliased).sum())
     df_resid = summary.n_df - rank
+    if df_resid <= 0:
+        msg = _residual_df_message(ctx, summary, rank, df_resid)
+        warnings.warn(msg, ResidualDfWarning, stacklevel=3)
+        warn_msgs.append(msg)
+    # the dispersion of the rescaled fit (a fixed dispersion 1 becomes the rescaling's
+    # power of two there), and the covariance of its coefficients, coef_factor times the
+    # source's: both stay finite where the source's overflow (a response near 1e200)
     if fam.dispersion_fixed:
-        dispersion = 1.0
+        phi_fit = sc.rescale(1.0)
     else:
-        dispersion = sums.pearson / df_resid if df_resid > 0 else math.nan
-    t = solver.back_transform(design)
-    beta_std = np.where(sol.aliased, 0.0, state.beta)
-    est = t @ beta_std
-    cov = dispersion * (t @ sol.inv_info @ t.T)
-    inf = solver.wald(
-        est, cov, sol.aliased, None if fam.dispersion_fixed else df_resid, spec.confidence
+        phi_fit = sums.pearson / df_resid if df_resid > 0 else math.nan
+    dispersion = 1.0 if fam.dispersion_fixed else sc.unscale(phi_fit)
+    beta_std = sc.to_original(np.where(sol.aliased, 0.0, state.beta), design.intercept)
+    inf = _inference(
+        design,
+        sol,
+        beta_std,
+        sc.coef_factor,
+        phi_fit,
+        None if fam.dispersion_fixed else df_resid,
+        spec.confidence,
     )
     coefs = tuple(
         Coefficient(
@@ -1144,11 +1414,13 @@ def _result(
         warn_msgs.append(msg)
     if fam.unit_mean:
         # counted by the last IRLS scan, at state.beta (plan.edge_counts)
-        exact, near = int(round(sums.extras["edge"])), int(round(sums.extras["near"]))
+        ff = sc.freq_factor
+        exact = int(round(sums.extras["edge"] / ff))
+        near = int(round(sums.extras["near"] / ff))
         # standard errors on the standardized design: ordinary fits have them well below 1
         # per unit; a coefficient drifting to infinity under separation has them in the
         # hundreds or thousands (common practice: flag huge standard errors, not estimates)
-        std_se = np.sqrt(np.clip(np.diag(sol.inv_info), 0.0, None))
+        std_se = np.sqrt(np.clip(sol.inv_info.diagonal() * phi_fit, 0.0, None))
         drifting = near > 0 and float(std_se.max(initial=0.0)) > SEPARATION_STD_SE
         if exact or drifting or (near and not state.converged):
             count = exact or near
@@ -1163,7 +1435,23 @@ def _result(
             )
             warnings.warn(msg, SeparationWarning, stacklevel=3)
             warn_msgs.append(msg)
-    ll = _log_likelihood(ctx, design, run, state.beta, sums, summary, dispersion)
+    deviance = sc.unscale(sums.deviance)
+    # beyond the doubles, or below the normal ones (a subnormal keeps few digits)
+    lost = not math.isfinite(deviance) or (deviance < sys.float_info.min < sums.deviance)
+    if math.isfinite(sums.deviance) and lost:
+        big = not math.isfinite(deviance)
+        msg = (
+            f"response column {spec.response!r} is so {'large' if big else 'small'} that "
+            f"the deviance ({sums.deviance:.6g} x 2^{-sc.log2_deviance_factor:g}), Pearson's "
+            f"chi-squared and the dispersion {'exceed' if big else 'fall below'} the range "
+            f"of doubles and are reported as {'infinite' if big else '0'}; the fit ran on "
+            "the response divided by a power of two, so estimates, standard errors, tests "
+            "and the log-likelihood are exact (rescale the response by a round number in "
+            "the source query to see the deviance)"
+        )
+        warnings.warn(msg, PrecisionWarning, stacklevel=3)
+        warn_msgs.append(msg)
+    ll = _log_likelihood(ctx, design, run, beta_std, sums.deviance, summary, phi_fit)
     # parameters counted by AIC/BIC: the coefficients, plus an estimated dispersion or theta
     k = rank + (0 if fam.dispersion_fixed else 1) + (1 if spec.estimate_theta else 0)
     aic = -2.0 * ll + 2.0 * k
@@ -1175,9 +1463,9 @@ def _result(
         source=spec.source.label(),
         coefficients=coefs,
         covariance=inf.covariance,
-        deviance=sums.deviance,
-        null_deviance=null_dev,
-        pearson_chi2=sums.pearson,
+        deviance=deviance,
+        null_deviance=sc.unscale(null_dev),
+        pearson_chi2=sc.unscale(sums.pearson),
         dispersion=dispersion,
         dispersion_estimated=not fam.dispersion_fixed,
         log_likelihood=ll,
@@ -1197,11 +1485,17 @@ def _result(
         family_params=fam.params(),
         excluded_by_column=by_col,
         aliased_terms=aliased_terms,
-        condition_number=solver.condition_number(sums.xtwx, sol.aliased),
+        condition_number=solver.condition_number(sums.xtwx, sol),
         warnings=tuple(warn_msgs),
         confidence=spec.confidence,
-        spec=spec.to_dict(),
-        design=design.to_dict(),
+        # the dialect and column types the user's expressions (offset, weights) were
+        # written against: scoring SQL for another engine reads them in that dialect
+        # (indb.portable)
+        spec={**spec.to_dict(), "sql_dialect": ctx.dialect.name},
+        design={
+            **design.to_dict(),
+            "column_types": _column_types((run.original_ctx or ctx).inputs),
+        },
         fingerprint={
             "rows": n_total,
             "rows_used": n_kept,
@@ -1213,6 +1507,82 @@ def _result(
             },
         },
     )
+
+
+def _inference(
+    design: Design,
+    sol: solver.Solution,
+    beta_std: np.ndarray,
+    coef_factor: float,
+    phi_fit: float,
+    df: float | None,
+    confidence: float,
+) -> solver.Inference:
+    """Wald inference on the source's scale, computed in units where nothing overflows.
+
+    The covariance of the rescaled fit's standardized coefficients is ``phi_fit`` times
+    its inverse information; mapping it to the source's coefficients multiplies row and
+    column j by u_j / ``coef_factor``, where u_j = 1 / scale_j can be 1e-160 for a value
+    near 1e160 (its variance, ~1e-325, underflows where its standard error does not). So
+    the statistics are taken on coefficients divided by u_j' (the power of two nearest
+    u_j / ``coef_factor``), exactly, and estimates, standard errors and limits multiplied
+    back; only the covariance matrix itself over- or underflows where it must."""
+    t = solver.back_transform(design)
+    est = t @ beta_std
+    units = np.array([_nearest_power_of_two(abs(d) / coef_factor) for d in t.diagonal()])
+    # t_u maps the rescaled fit's coefficients to est / units: t / coef_factor, row-scaled
+    t_u = sparse.csr_array(sparse.diags_array(1.0 / (units * coef_factor)) @ t)
+    # the whole covariance only while it is small; standard errors need its diagonal only
+    var_u, cov_u = solver.original_scale(
+        sol.inv_info, t_u, phi_fit, full=design.p <= COVARIANCE_MAX_TERMS
+    )
+    inf = solver.wald(est / units, var_u, sol.aliased, df, confidence, cov_u)
+    if np.all(units == 1.0):
+        return inf
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        return dataclasses.replace(
+            inf,
+            estimate=np.where(sol.aliased, np.nan, est),
+            std_error=inf.std_error * units,
+            ci_low=inf.ci_low * units,
+            ci_high=inf.ci_high * units,
+            covariance=None
+            if inf.covariance is None
+            else inf.covariance * units[:, None] * units[None, :],
+        )
+
+
+def _nearest_power_of_two(x: float) -> float:
+    if not (math.isfinite(x) and x > 0):
+        return 1.0
+    return math.ldexp(1.0, round(math.log2(x)))
+
+
+def _residual_df_message(ctx: P.PlanContext, summary: _Summary, rank: int, df: float) -> str:
+    fam = ctx.spec.family
+    msg = (
+        f"the residual degrees of freedom are {df:g}: {summary.n_df:g} rows with a positive "
+        f"weight minus {rank} estimated coefficients"
+    )
+    if ctx.inputs.frequency_weight is not None:
+        msg += (
+            f" (frequency weights count rows: theirs sum to {summary.sum_f:g} over "
+            f"{summary.n} rows; weights that are not counts belong in weight=, CLI --weight, "
+            "as prior weights)"
+        )
+    if fam.dispersion_fixed:
+        return msg + "; nothing is left to judge the fit by (deviance-based tests are void)"
+    return (
+        msg + "; the dispersion cannot be estimated, so standard errors, t statistics, "
+        "p-values and intervals are NaN"
+    )
+
+
+def _column_types(inputs: Inputs) -> dict[str, str]:
+    """Type names of the source columns the model reads (its predictors and the columns of
+    its expressions), as the engine describes them."""
+    used = set(inputs.model_columns)
+    return {name: kind for name, kind in inputs.columns if name in used}
 
 
 def _levels_for(design: Design, c: DesignColumn) -> list[str | None]:
@@ -1236,26 +1606,47 @@ def _path_label(run: _Run, design: Design, sums: solver.Sums) -> str:
     )
 
 
-def _log_likelihood(ctx, design, run, beta, sums, summary, dispersion) -> float:
+#: families whose log-likelihood depends on the dispersion only through D / phi and
+#: n ln(phi): rescaling D and phi by one factor d moves it by -n ln(d) / 2 exactly
+_LOG_PHI_FAMILIES = ("gaussian", "inverse_gaussian")
+
+
+def _log_likelihood(ctx, design, run, beta, deviance_fit, summary, phi_fit) -> float:
+    """The log-likelihood at the fitted means, on the source's scale.
+
+    ``beta`` are the standardized coefficients of the source's problem; ``deviance_fit``
+    and ``phi_fit`` the deviance and dispersion of the internally rescaled fit
+    (:class:`indb.design.Scaling`). Where the source's deviance exceeds the largest double
+    (a gaussian response near 1e200) the families of ``_LOG_PHI_FAMILIES`` still give it
+    exactly from the rescaled numbers."""
     fam = ctx.spec.family
-    phi = dispersion
+    sc = run.scaling
+    dev = sc.unscale(deviance_fit)
+    phi = 1.0 if fam.dispersion_fixed else sc.unscale(phi_fit)
     if fam.name == "gaussian":
-        phi = sums.deviance / summary.n_df  # maximum-likelihood dispersion
-    if not (math.isfinite(phi) and phi > 0):
+        phi = dev / summary.n_df  # maximum-likelihood dispersion
+        phi_fit = deviance_fit / summary.n_df
+    if not (math.isfinite(phi) and phi > 0 and math.isfinite(dev)):
+        rescaled = math.isfinite(phi_fit) and phi_fit > 0 and math.isfinite(deviance_fit)
+        if fam.name in _LOG_PHI_FAMILIES and summary.ll_sums and rescaled:
+            ll = fam.log_likelihood(
+                deviance_fit, phi_fit, summary.ll_sums, summary.n_df, summary.constant_weight
+            )
+            if ll is not None:
+                return float(ll) + 0.5 * summary.n_df * sc.log2_deviance_factor * math.log(2.0)
         return math.nan
     if summary.ll_sums or not fam.saturated_sql(S.col("y"), S.col("pw"), None):
         # loglik = saturated loglik - D / (2 phi): from the profile sums, no extra scan
-        ll = fam.log_likelihood(
-            sums.deviance, phi, summary.ll_sums, summary.n_df, summary.constant_weight
-        )
+        ll = fam.log_likelihood(dev, phi, summary.ll_sums, summary.n_df, summary.constant_weight)
         if ll is not None:
             return float(ll)
-    if run.original_ctx is not None:
-        # folded rows carry no per-row terms such as ln Gamma(y + 1): sum over the source
-        ctx = dataclasses.replace(
-            run.original_ctx,
-            spec=dataclasses.replace(run.original_ctx.spec, family=ctx.spec.family),
-        )
+    # a pass over the rows as the source has them (no internal rescaling)
+    source_ctx = run.original_ctx if run.original_ctx is not None else ctx
+    ctx = dataclasses.replace(
+        source_ctx,
+        spec=dataclasses.replace(source_ctx.spec, family=ctx.spec.family),
+        scaling=Scaling(),
+    )
     tree = P.loglik_query(ctx, design, beta, phi)
     if tree is None:
         return math.nan

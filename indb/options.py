@@ -160,6 +160,13 @@ class _Required:
 #: The default of an option that must be given (``source`` and ``response``).
 REQUIRED: Any = _Required()
 
+#: Largest max_levels accepted, the largest size measured (benchmarks/RESULTS.md, "Many
+#: levels"): one categorical column costs the fit memory and time in proportion to its
+#: levels (indb.normal_eq), but write-back and the scoring view's CASE of one branch per
+#: level grow with them too. Every other categorical column counts towards the dense part,
+#: capped by indb.normal_eq.MAX_REST_COLUMNS. ``ModelSpec.build`` checks the range.
+MAX_LEVELS_LIMIT = 50_000
+
 #: The groups of options; the first three are also the tables of a spec file.
 GROUPS = ("model", "deploy", "engine", "run")
 
@@ -380,7 +387,7 @@ OPTIONS: tuple[Option, ...] = (
         "max_levels",
         WHOLE,
         10_000,
-        "Most levels a categorical column may have.",
+        f"Most levels a categorical column may have (at most {MAX_LEVELS_LIMIT:,}).",
         "model",
         metavar="N",
     ),
@@ -495,7 +502,8 @@ OPTIONS: tuple[Option, ...] = (
         DATABASE,
         None,
         "DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
-        "out to work in a fresh in-memory DuckDB database.",
+        "out to work in a fresh in-memory DuckDB database. A DuckDB file is opened read-only "
+        "unless --name writes to it.",
         "engine",
         metavar="DB",
     ),

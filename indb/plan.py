@@ -23,8 +23,17 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.design import RESERVED_PREFIX, Design, Inputs, Value
-from indb.dialect import Dialect
+from indb.design import (
+    RESERVED_PREFIX,
+    Design,
+    Inputs,
+    Scaling,
+    Value,
+    cell_columns,
+    column_groups,
+    level_codes,
+)
+from indb.engines.base_dialect import Dialect
 from indb.spec import ModelSpec
 from indb.sqlexpr import Expr
 
@@ -58,6 +67,8 @@ class PlanContext:
     row_count: str | None = None
     #: rows are folded design rows carrying deviance and Pearson constants (folded_rows_query)
     folded: bool = False
+    #: the internal rescaling of response, offset and weights (identity: none)
+    scaling: Scaling = Scaling()
 
     def count_rows(self) -> Expr:
         """COUNT(*) of source rows (SUM of the row-count column on a compressed table)."""
@@ -130,17 +141,42 @@ class PlanContext:
         return items
 
     # -- derived per-row quantities --------------------------------------------------------
-    def response(self) -> Expr:
-        """y: the response, as a proportion for grouped binomial data."""
+    def observed_response(self) -> Expr:
+        """y as observed: the response, as a proportion for grouped binomial data."""
         y = self.raw_response()
         t = self.raw_trials()
         if t is None:
             return y
         return S.case([(S.gt(t, S.num(0.0)), S.div(y, t))], S.num(0.0))
 
+    def response(self) -> Expr:
+        """y as the scans fit it: :meth:`observed_response` shifted and scaled by
+        :attr:`scaling` (y' = (y - shift) * factor)."""
+        y = self.observed_response()
+        sc = self.scaling
+        if sc.shift != 0.0:
+            y = S.sub(y, S.num(sc.shift))
+        return S.mul(y, S.num(sc.factor)) if sc.factor != 1.0 else y
+
     def prior_weight(self) -> Expr:
         parts = [e for e in (self.raw_trials(), self.raw_weight()) if e is not None]
+        if self.scaling.weight_factor != 1.0:
+            parts.append(S.num(self.scaling.weight_factor))
         return S.mul(*parts) if parts else S.num(1.0)
+
+    def freq_weight(self) -> Expr | None:
+        """The frequency weight as the scans use it (times :attr:`scaling`'s factor)."""
+        f = self.raw_freq()
+        if f is None or self.scaling.freq_factor == 1.0:
+            return f
+        return S.mul(f, S.num(self.scaling.freq_factor))
+
+    def offset(self) -> Expr | None:
+        """The offset as the scans use it: on a power link's rescaled eta scale."""
+        o = self.raw_offset()
+        if o is None or self.scaling.coef_factor == 1.0:
+            return o
+        return S.mul(o, S.num(self.scaling.coef_factor))
 
     def value_sql(
         self, v: Value, knots: dict[str, tuple[float, ...]] | None = None, standardized: bool = True
@@ -388,22 +424,30 @@ class ProfileItem:
     detail: bool = False
 
 
+#: alias of the response in :func:`head_query` and in the ``shifts`` of :func:`profile_items`
+RESPONSE_KEY = "y"
+
+
 def profile_items(
     ctx: PlanContext,
     values: Sequence[Value],
     knots: dict[str, tuple[float, ...]],
-    shifts: dict[str, float] | None = None,
+    shifts: dict[str, tuple[float, float]] | None = None,
 ) -> list[ProfileItem]:
     """The pre-fit profile: total rows, rows kept and NULL counts per model input (over all
     rows); over kept rows the domain-check violation counts, weighted response sums, weight
     range, saturated log-likelihood sums and the moments that standardize values.
 
-    The moments of a value v are taken about ``shifts[v.alias]`` (a value of one kept row,
-    :func:`first_values_query`): mean and mean square of v - c. The mean square is 0 exactly
-    when v is constant, and the variance from these moments keeps its digits however far
-    the mean lies from 0."""
+    The moments of a value v are taken about ``shifts[v.alias] = (c, g)``, a value c of a
+    kept row (:func:`head_query`) and a power of two g: mean and mean square of
+    (v - c) g. The mean square is 0 exactly when v is constant, the variance from these
+    moments keeps its digits however far the mean lies from 0, and g (about one over the
+    spread) keeps the square finite for values near the largest doubles. The response
+    (``shifts["y"]``) gets the same two moments, which tell how many digits a fit that
+    cannot centre it loses."""
     one = exp.Literal.number(1)
     y, pw = ctx.response(), ctx.prior_weight()
+    y_obs = ctx.observed_response()
     fw = ctx.raw_freq() or S.num(1.0)
     items = [ProfileItem("n_total", "count", one, kept=False), ProfileItem("n_kept", "count", one)]
     for i, (_, e) in enumerate(ctx.null_items()):
@@ -416,38 +460,52 @@ def profile_items(
             "sum_f_pos", "psum", S.case([(S.gt(pw.copy(), S.num(0.0)), fw.copy())], S.num(0.0))
         ),
         ProfileItem("n_zero_weight", "sum", S.flag(S.le(pw.copy(), S.num(0.0)))),
-        ProfileItem("y_min", "min", y.copy(), detail=True),
-        ProfileItem("y_max", "max", y.copy(), detail=True),
+        ProfileItem("y_min", "min", y_obs.copy(), detail=True),
+        ProfileItem("y_max", "max", y_obs.copy(), detail=True),
         ProfileItem("pw_min", "min", pw.copy()),
         ProfileItem("pw_max", "max", pw.copy()),
-        ProfileItem("off_mean", "mean", ctx.raw_offset() or S.num(0.0)),
+        ProfileItem("off_mean", "mean", ctx.offset() or S.num(0.0)),
     ]
     for i, (_, cond) in enumerate(domain_checks(ctx)):
         items.append(ProfileItem(f"chk_{i}", "sum", S.flag(cond), detail=True))
     for key, term in saturated_terms(ctx).items():
         positive = S.case([(S.gt(pw.copy(), S.num(0.0)), S.mul(fw.copy(), term))])
         items.append(ProfileItem(f"ll_{key}", "psum", positive))
-    for v in values[1:]:
-        raw = ctx.value_sql(v, knots, standardized=False)
-        c = (shifts or {}).get(v.alias, 0.0)
+    moments = [(v.alias, ctx.value_sql(v, knots, standardized=False)) for v in values[1:]]
+    for alias, raw in [*moments, (RESPONSE_KEY, y_obs.copy())]:
+        c, g = (shifts or {}).get(alias, (0.0, 1.0))
         dev = S.sub(raw, S.num(c)) if c != 0.0 else raw
+        dev = S.mul(dev, S.num(g)) if g != 1.0 else dev
         # mean and mean square about c only (no MIN/MAX: they cost as much again): the
         # scale just conditions X'WX, and constancy shows as a mean square of exactly 0
         items += [
-            ProfileItem(f"{v.alias}_mean", "mean", dev),
-            ProfileItem(f"{v.alias}_ms", "mean", S.mul(dev.copy(), dev.copy())),
+            ProfileItem(f"{alias}_mean", "mean", dev),
+            ProfileItem(f"{alias}_ms", "mean", S.mul(dev.copy(), dev.copy())),
         ]
     return items
 
 
-def first_values_query(
+HEAD_ROWS = 1000  # kept rows head_query looks at
+
+
+def head_query(
     ctx: PlanContext, values: Sequence[Value], knots: dict[str, tuple[float, ...]]
 ) -> exp.Select:
-    """The raw values of one kept row (any row: engines stop at the first they find); the
-    profile takes each value's moments about it."""
+    """The range (``<alias>_lo``, ``<alias>_hi``) of every value and of the observed
+    response (alias ``y``) over the first ``HEAD_ROWS`` kept rows (any rows: engines stop
+    reading there). The low end is a value of a kept row, the point the profile takes
+    moments about; the width sets the power of two that keeps those moments (and, for the
+    response, the fit) far from overflow."""
     cols = [S.alias(ctx.value_sql(v, knots, standardized=False), v.alias) for v in values[1:]]
-    q = S.select(cols or [S.alias(exp.Literal.number(1), "one")], ctx.source(), where=ctx.kept())
-    return q.limit(1, copy=False)
+    cols.append(S.alias(ctx.observed_response(), RESPONSE_KEY))
+    head = S.select(cols, ctx.source(), where=ctx.kept()).limit(HEAD_ROWS, copy=False)
+    out: list[Expr] = []
+    for alias in [*(v.alias for v in values[1:]), RESPONSE_KEY]:
+        out += [
+            S.alias(S.min_(S.col(alias)), f"{alias}_lo"),
+            S.alias(S.max_(S.col(alias)), f"{alias}_hi"),
+        ]
+    return S.select(out, S.subquery(head, "head"))
 
 
 _AGGS = {"sum": S.sum_, "psum": S.psum, "min": S.min_, "max": S.max_, "mean": S.avg}
@@ -536,18 +594,20 @@ def fold_query(
     fam = ctx.spec.family
     keys = key_columns(ctx) if keys is None else list(keys)
     _, row_cond = ctx.kept_parts(keys)
-    y_raw = ctx.response()
-    # the response (and its floored copy inside the saturated terms) once per row
-    atoms, rewrite = _atoms(
-        ctx, [(_r("a_yg"), S.greatest(y_raw, S.num(1e-300))), (_r("a_y"), y_raw.copy())]
-    )
+    y_raw = ctx.observed_response()
+    # the response (its floored copy inside the saturated terms, its rescaled copy in the
+    # folding sums) once per row
+    hoist = [(_r("a_yg"), S.greatest(y_raw, S.num(1e-300))), (_r("a_y"), y_raw.copy())]
+    if ctx.scaling.response_changed:
+        hoist.append((_r("a_yt"), ctx.response()))
+    atoms, rewrite = _atoms(ctx, hoist)
     domain_ok = S.and_(row_cond.copy(), *(S.not_(c) for _, c in domain_checks(ctx)))
     ok = S.col(FOLD_OK)
     f = ctx.raw_freq()
     y, pw = ctx.response(), ctx.prior_weight()
     extra: list[Expr] = []
     if folding and folds_offset(ctx):
-        off = ctx.raw_offset()
+        off = ctx.offset()
         assert off is not None
         # e = exp(offset) only on rows inside the domain checks: no engine sees the
         # overflow of an offset that the profile is about to reject; exp(ln(x)) is x
@@ -733,7 +793,7 @@ def saturated_terms(ctx: PlanContext) -> dict[str, Expr]:
     by the domain checks of the same scan, and their terms are never used."""
     if ctx.spec.estimate_theta:
         return {}
-    y = ctx.response()
+    y = ctx.observed_response()
     yg = S.greatest(y, S.num(1e-300))
     return ctx.spec.family.saturated_sql(
         yg, S.greatest(ctx.prior_weight(), S.num(1e-300)), ctx.raw_trials()
@@ -798,14 +858,19 @@ def rows_select(ctx: PlanContext, design: Design) -> exp.Select:
     cols += [
         S.alias(ctx.response(), "y"),
         S.alias(ctx.prior_weight(), "pw"),
-        S.alias(ctx.raw_freq() or S.num(1.0), "fw"),
-        S.alias(ctx.raw_offset() or S.num(0.0), "off"),
+        S.alias(ctx.freq_weight() or S.num(1.0), "fw"),
+        S.alias(ctx.offset() or S.num(0.0), "off"),
     ]
     t = ctx.raw_trials()
     if t is not None:
         cols.append(S.alias(t, "nt"))
     if ctx.folded:
-        cols += [S.alias(S.col(FOLD_DCONST), "dconst"), S.alias(S.col(FOLD_Q), "q")]
+        # sums of f pw (...) over the folded rows: rescaled with the weights
+        wf = ctx.scaling.weight_factor * ctx.scaling.freq_factor
+        consts = [S.col(FOLD_DCONST), S.col(FOLD_Q)]
+        if wf != 1.0:
+            consts = [S.mul(c, S.num(wf)) for c in consts]
+        cols += [S.alias(consts[0], "dconst"), S.alias(consts[1], "q")]
     return S.select(cols, ctx.source(), where=ctx.kept())
 
 
@@ -824,20 +889,18 @@ def _cell_table(
     """Per observed cell (one level of every factor) the summed factor coefficients, one
     column per value they multiply; cells whose coefficients are all 0 are left out."""
     arr = np.array(cells, dtype=object).reshape(len(cells), len(design.factors))
-    fcols = [j for j, c in enumerate(design.columns) if c.factors]
-    vals = sorted({design.columns[j].value for j in fcols})
+    codes = [level_codes(f.levels, arr[:, i]) for i, f in enumerate(design.factors)]
+    groups = column_groups(design)
+    vals = sorted({g.value for g in groups if g.factors})
     vpos = {v: i for i, v in enumerate(vals)}
     coef = np.zeros((len(cells), len(vals)))
-    for j in fcols:
-        c = design.columns[j]
-        mask = np.ones(len(cells), dtype=bool)
-        for fi, lv in zip(c.factors, c.levels, strict=True):
-            mask &= arr[:, fi] == lv
-        coef[mask, vpos[c.value]] += float(beta[j])
+    for g, where in zip(groups, cell_columns(design, codes), strict=True):
+        if g.factors:
+            hit = where >= 0
+            coef[hit, vpos[g.value]] += beta[where[hit]]
     rows = [
         (tuple(str(x) for x in arr[i]), coef[i].tolist())
-        for i in range(len(cells))
-        if np.any(coef[i] != 0.0)
+        for i in np.flatnonzero(np.any(coef != 0.0, axis=1))
     ]
     return vals, rows
 
@@ -950,6 +1013,9 @@ def _eta_start(ctx: PlanContext, design: Design, ybar: float) -> exp.Select:
     """Stage e for the first scan: eta = g(mu0) from the family's standard start."""
     fam, link = ctx.spec.family, ctx.spec.link
     y, pw = S.col("y"), S.col("pw")
+    if ctx.scaling.weight_factor != 1.0:
+        # the start (binomial's uses the weight) as without the internal rescaling
+        pw = S.div(pw, S.num(ctx.scaling.weight_factor))
     mu0 = fam.start_sql(y, pw, ybar)
     needs_positive = (
         link.positive_mean or link.eta_ok(S.col("eta")) is not None or fam.positive_mean

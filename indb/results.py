@@ -8,10 +8,25 @@ statistics and the iteration log. It holds no connection and does no I/O.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
 import numpy as np
+
+from indb.families import Family, make_family
+from indb.links import Link, make_link
+
+#: Coefficients up to which a result carries the whole covariance matrix (32 MB of doubles
+#: at this size); above, ``covariance`` is None and the standard errors (its diagonal, all
+#: that inference needs) are in the coefficient table.
+COVARIANCE_MAX_TERMS = 2_000
+
+#: Coefficients up to which the covariance goes into :meth:`FitResult.to_dict` (the JSON
+#: output and each registry version): p^2 numbers, about 0.5 MB here but 250 MB at 3,000
+#: coefficients. It is also the most a scoring view's interval SQL takes
+#: (``writeback.MAX_SE_TERMS``), the one use a stored version has for it.
+STORED_COVARIANCE_MAX_TERMS = 150
 
 
 @dataclass(frozen=True)
@@ -49,13 +64,21 @@ class IterationRecord:
     phase: str = "fit"
 
 
+#: The text rendering ``str(result)`` uses, registered by :mod:`indb.report` when it is
+#: imported (``import indb`` does): the report is a higher layer than the result it renders.
+TEXT_RENDERER: dict[str, Callable[[FitResult], str]] = {}
+
+
 @dataclass(frozen=True)
 class FitResult:
     """The outcome of fitting one model.
 
     Attributes are named in the trade's terms. ``statistic`` in the coefficient table is a
     z statistic when the dispersion is fixed and a t statistic (``df_resid`` degrees of
-    freedom) when it is estimated; ``test`` says which.
+    freedom) when it is estimated; ``test`` says which. ``covariance`` is the coefficients'
+    covariance matrix (NaN rows and columns at aliased terms) for models of up to
+    :data:`COVARIANCE_MAX_TERMS` coefficients and ``None`` above; a result read back from
+    JSON or the registry has it up to :data:`STORED_COVARIANCE_MAX_TERMS` coefficients.
     """
 
     family: str
@@ -63,7 +86,7 @@ class FitResult:
     response: str
     source: str
     coefficients: tuple[Coefficient, ...]
-    covariance: np.ndarray
+    covariance: np.ndarray | None
     deviance: float
     null_deviance: float
     pearson_chi2: float
@@ -93,6 +116,20 @@ class FitResult:
     design: dict[str, Any] = field(default_factory=dict)
     fingerprint: dict[str, Any] = field(default_factory=dict)
     deployment: dict[str, Any] = field(default_factory=dict)
+
+    # -- the model as objects ------------------------------------------------------------
+    @property
+    def family_object(self) -> Family:
+        """The family as an object, with its fitted parameters (``family_params``)."""
+        return make_family(self.family, **self.family_params)
+
+    @property
+    def link_object(self) -> Link:
+        """The link as an object, from the canonical spec: its name and, for a power link
+        without a name of its own, ``spec['link_power']`` (the display name ``power(p)``
+        rounds the exponent, so it is never read back)."""
+        power = self.spec.get("link_power")
+        return make_link("power", power) if power is not None else make_link(self.link)
 
     # -- convenience views ---------------------------------------------------------------
     @property
@@ -124,6 +161,11 @@ class FitResult:
         fit = [r.seconds for r in self.iteration_log if r.phase == "fit"]
         return sum(fit) / len(fit) if fit else math.nan
 
+    def __str__(self) -> str:
+        """The text report (:func:`indb.report.render_report`); ``repr`` keeps the fields."""
+        render = TEXT_RENDERER.get("report")
+        return render(self) if render is not None else repr(self)
+
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dictionary (non-finite numbers become ``None``)."""
         out: dict[str, Any] = {
@@ -132,7 +174,12 @@ class FitResult:
             "response": self.response,
             "source": self.source,
             "coefficients": [_clean(asdict(c)) for c in self.coefficients],
-            "covariance": [[_num(v) for v in row] for row in self.covariance.tolist()],
+            "covariance": (
+                [[_num(v) for v in row] for row in self.covariance.tolist()]
+                if self.covariance is not None
+                and len(self.coefficients) <= STORED_COVARIANCE_MAX_TERMS
+                else None
+            ),
             "deviance": _num(self.deviance),
             "null_deviance": _num(self.null_deviance),
             "pearson_chi2": _num(self.pearson_chi2),
@@ -202,14 +249,21 @@ class FitResult:
             )
             for r in d.get("iteration_log", [])
         )
-        cov = np.array([[f(v) for v in row] for row in d.get("covariance", [])], dtype=float)
+        stored = d.get("covariance")
+        cov = (
+            np.array([[f(v) for v in row] for row in stored], dtype=float).reshape(
+                len(coefs), len(coefs)
+            )
+            if stored is not None
+            else None
+        )
         return FitResult(
             family=d["family"],
             link=d["link"],
             response=d["response"],
             source=d["source"],
             coefficients=coefs,
-            covariance=cov.reshape(len(coefs), len(coefs)),
+            covariance=cov,
             deviance=f(d["deviance"]),
             null_deviance=f(d["null_deviance"]),
             pearson_chi2=f(d["pearson_chi2"]),

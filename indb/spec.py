@@ -18,6 +18,9 @@ from indb.errors import SpecError
 from indb.families import Family, NegativeBinomial, canonical_link, make_family
 from indb.links import Link, make_link
 
+# declared with the max_levels option; checked (and importable) here
+from indb.options import MAX_LEVELS_LIMIT
+
 _FILE_SUFFIXES = (".parquet", ".pq", ".csv", ".tsv", ".csv.gz", ".tsv.gz", ".json", ".ndjson")
 _QUERY_START = re.compile(r"^\s*(\(|select\b|with\b|from\b|values\b|table\b)", re.IGNORECASE)
 
@@ -147,8 +150,11 @@ class ModelSpec:
             raise SpecError(f"tol must be a number in (0, 1); got {tol!r}")
         if not (isinstance(max_iter, int) and max_iter >= 1):
             raise SpecError(f"max_iter must be a positive integer; got {max_iter!r}")
-        if not (isinstance(max_levels, int) and max_levels >= 2):
-            raise SpecError(f"max_levels must be an integer >= 2; got {max_levels!r}")
+        if not (isinstance(max_levels, int) and 2 <= max_levels <= MAX_LEVELS_LIMIT):
+            raise SpecError(
+                f"max_levels must be an integer from 2 to {MAX_LEVELS_LIMIT:,}; got "
+                f"{max_levels!r} (the README's 'Many levels' section gives the limits)"
+            )
         if not (0 < confidence < 1):
             raise SpecError(f"confidence must be in (0, 1); got {confidence!r}")
         for name, expr in (
@@ -213,6 +219,7 @@ class ModelSpec:
             "family_params": self.family.params(),
             "estimate_theta": self.estimate_theta,
             "link": self.link.describe(),
+            **self.link.params(),
             "offset": self.offset,
             "weight": self.weight,
             "frequency_weight": self.frequency_weight,

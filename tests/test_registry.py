@@ -23,35 +23,19 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pytest
-import statsmodels
 import statsmodels.api as sm
 from numpy.testing import assert_allclose, assert_array_equal
+from reference_cases import ships_registry_frame as _ships
 
 import indb
 from indb.errors import RegistryError, SpecError
 from indb.registry import Registry
 from indb.results import FitResult
 
-SHIPS_CSV = Path(statsmodels.__file__).parent / "discrete" / "tests" / "results" / "ships.csv"
 # indb and statsmodels solve the same likelihood equations; at tol=1e-10 both are converged
 # far below this (task brief for the core fitter: coefficients rtol 1e-6).
 COEF_RTOL = 1e-6
 TOL = 1e-10
-
-
-def _ships() -> pd.DataFrame:
-    raw = pd.read_csv(SHIPS_CSV)
-    raw = raw[raw["service"] > 0].reset_index(drop=True)  # no months at risk: left out
-    return pd.DataFrame(
-        {
-            "row_id": np.arange(len(raw)),
-            "type": raw["ship"].map(dict(zip(range(1, 6), "ABCDE", strict=True))),
-            "built": raw["yr_con"].map({1: "1960-64", 2: "1965-69", 3: "1970-74", 4: "1975-79"}),
-            "operated": raw["yr_op"].map({1: "1960-74", 2: "1975-79"}),
-            "service": raw["service"].astype(float),
-            "accident": raw["accident"].astype(float),
-        }
-    )
 
 
 @pytest.fixture
@@ -401,3 +385,25 @@ def test_failures_during_write_back_leave_nothing_written(db: str):
         _fit_ships(db, name="clash")
     assert snapshot(db) == before
     assert _query(db, "SELECT x FROM clash")["x"].tolist() == [1]
+
+
+def test_documented_top_level_api_and_text_report(tmp_path: Path) -> None:
+    # issue 13: indb.deploy was documented but only indb.api.deploy existed, and print(result)
+    # showed the dataclass fields instead of the report
+    import duckdb
+
+    from indb.report import render_report
+
+    db = str(tmp_path / "t.duckdb")
+    con = duckdb.connect(db)
+    con.execute(
+        "CREATE TABLE t AS SELECT i, i % 3 AS g, (i % 7) * 0.5 AS x, (i % 5) AS y "
+        "FROM range(60) r(i)"
+    )
+    con.close()
+    res = indb.fit("t", "y", "poisson", db=db, categorical=["g"], exclude=["i"])
+    assert str(res) == render_report(res)
+    assert repr(res).startswith("FitResult(")
+    out = indb.deploy(res, "counts", db=db)
+    assert out.deployment["version"] == 1
+    assert "CREATE" in indb.scoring_sql("counts", db=db).upper()

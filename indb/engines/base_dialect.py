@@ -1,9 +1,10 @@
-"""Engine dialects: the one place where generated syntax trees become SQL text.
+"""The dialect base: the one place where generated syntax trees become SQL text.
 
-Each engine gets a subclass that translates indb's custom nodes (``LogGamma``, ``IsFinite``,
-``PreciseSum``) and engine-specific constructs (file scans, type names). A custom node
-without a translation raises :class:`~indb.errors.UnsupportedError` instead of being passed
-through as generic SQL.
+Each backend module of :mod:`indb.engines` subclasses :class:`Dialect` to translate indb's
+custom nodes (``LogGamma``, ``IsFinite``, ``PreciseSum``) and engine-specific constructs
+(file scans, type names); this module never imports them. A custom node without a
+translation raises :class:`~indb.errors.UnsupportedError` instead of being passed through as
+generic SQL.
 """
 
 from __future__ import annotations
@@ -69,7 +70,16 @@ class Dialect:
             if node.share >= 1.0:
                 return S.true()
             return self.row_pick(list(node.expressions), node.share)
+        if isinstance(node, S.IEEE_NODES):
+            return self.ieee(node)
         return node
+
+    def ieee(self, node: exp.Expression) -> exp.Expression:
+        """An ``Ieee*`` node (see :mod:`indb.sqlexpr`) as SQL that gives IEEE-754's NaN and
+        infinities where this engine would raise or return NULL."""
+        raise UnsupportedError(
+            f"engine {self.name!r} has no IEEE-754 translation for {type(node).__name__}"
+        )
 
     # -- translations (override per engine) --------------------------------------------------
     def log_gamma(self, x: exp.Expression) -> exp.Expression:
@@ -101,6 +111,16 @@ class Dialect:
     def file_scan(self, path: str) -> exp.Expression:
         raise UnsupportedError(f"engine {self.name!r} cannot read files directly: {path}")
 
+    # -- how the engine evaluates a user's expression (read by indb.portable) ---------------
+    #: ``/`` of two integers: "exact" (true division, a double) or "truncate" (toward zero)
+    integer_slash = "exact"
+    #: the integer-division operator (DuckDB ``//``, Spark ``DIV``, PostgreSQL ``div()``) with
+    #: a non-integer operand: "exact" (plain division) or "truncate"
+    int_div_fraction = "truncate"
+    #: ln and log of x <= 0, and division by zero: "ieee" (NaN, +/-inf), "error" or "null"
+    log_nonpositive = "ieee"
+    zero_division = "ieee"
+
     # -- write-back ---------------------------------------------------------------------------
     supports_macros = False
     #: registry tables may declare PRIMARY KEY constraints (a second writer of the same
@@ -111,6 +131,9 @@ class Dialect:
     supports_update = True
     #: storage clause of registry tables (``USING <format>``), for engines that need one
     table_format: str | None = None
+    #: the engine treats quoted names that differ only in case as one object (DuckDB,
+    #: Spark); PostgreSQL keeps "Mart" and "mart" apart
+    names_ignore_case = True
 
     def replace_view(
         self, create: exp.Create, columns: Sequence[str], existing: Sequence[str] | None
@@ -229,85 +252,63 @@ class Dialect:
             raise SpecError("the source query must be a single SELECT (or WITH ... SELECT)")
         return exp.Subquery(this=tree)
 
+    def query_text(self, tree: exp.Expression) -> str:
+        """A user's query as text again, after indb changed its table names.
 
-class DuckDBDialect(Dialect):
-    """DuckDB: lgamma, isfinite, read_parquet/read_csv_auto; IEEE doubles (1/0 = inf)."""
+        Rendered by sqlglot alone: indb's own translations (such as PostgreSQL's casts of
+        float literals) are for the SQL indb generates, not for what the user wrote.
+        """
+        return tree.sql(dialect=self.sqlglot_name)
 
-    name = "duckdb"
-    sqlglot_name = "duckdb"
+    # -- engine catalog objects ----------------------------------------------------------------
+    def reserved_objects_query(self, view: str, macro: str | None) -> exp.Query | None:
+        """Built-in objects of the engine (rows: ``name``) that a scoring view named ``view``
+        or a macro named ``macro`` would hide or be hidden by; None when the engine has none
+        in the schemas names are looked up in."""
+        return None
 
-    def __init__(self, compensated_sums: bool = False) -> None:
-        # SUM(DOUBLE) adds in parallel partial sums (error ~ sqrt(n) eps in practice);
-        # KAHAN_SUM is compensated but about twice as slow (see benchmarks/RESULTS.md).
-        self.compensated_sums = compensated_sums
 
-    def precise_sum(self, x):
-        if self.compensated_sums:
-            return exp.Anonymous(this="KAHAN_SUM", expressions=[x])
-        return exp.Sum(this=x)
+def table_references(query: exp.Expression) -> list[exp.Table]:
+    """The named tables and views a query reads: not its CTEs, derived tables or table
+    functions (``read_parquet(...)``, ``range(...)``), each node once."""
+    from sqlglot.optimizer.scope import traverse_scope
 
-    def log_gamma(self, x):
-        return exp.Anonymous(this="LGAMMA", expressions=[x])
+    seen: dict[int, exp.Table] = {}
+    for scope in traverse_scope(query):
+        for source in scope.sources.values():
+            # a CTE or derived table is a Scope here; a table function has no identifier
+            if isinstance(source, exp.Table) and isinstance(source.this, exp.Identifier):
+                seen.setdefault(id(source), source)
+    return list(seen.values())
 
-    def is_finite(self, x):
-        return exp.Anonymous(this="ISFINITE", expressions=[x])
 
-    def quantile(self, x, q):
-        return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
+def table_parts(table: exp.Table) -> list[str]:
+    """[catalog, schema, name] of a table reference, without the parts it leaves out."""
+    return [p for p in (table.catalog, table.db, table.name) if p]
 
-    supports_macros = True
 
-    def materialize(self, name, query):
-        return [f"CREATE OR REPLACE TEMP TABLE {self.quote(name)} AS {self.render(query)}"]
+def set_table_parts(table: exp.Table, parts: Sequence[str]) -> None:
+    """Point a table reference at ``parts`` (1 to 3 names), keeping its alias."""
+    ids = [S.ident(p) for p in parts]
+    table.set("this", ids[-1])
+    table.set("db", ids[-2] if len(ids) >= 2 else None)
+    table.set("catalog", ids[-3] if len(ids) == 3 else None)
 
-    def row_pick(self, values, fraction):
-        # HASH(...) is a UBIGINT spread over [0, 2^64): below fraction * 2^64 on that share
-        bound = exp.Literal.number(int(fraction * 2.0**64))
-        return exp.LT(this=exp.Anonymous(this="HASH", expressions=values), expression=bound)
 
-    def _qualified(self, schema: str | None, name: str) -> str:
-        return (self.quote(schema) + "." if schema else "") + self.quote(name)
+_PLAIN_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 
-    def create_macro(self, schema, name, params, body):
-        # DuckDB scalar macro; parameters are the model's input columns, so column
-        # references in the body bind to them (https://duckdb.org/docs/sql/statements/create_macro)
-        args = ", ".join(self.quote(p) for p in params)
-        return (
-            f"CREATE OR REPLACE MACRO {self._qualified(schema, name)}({args}) AS "
-            f"{self.render(body)}"
-        )
 
-    def drop_macro(self, schema, name):
-        return f"DROP MACRO IF EXISTS {self._qualified(schema, name)}"
+def qualified_name(parts: Sequence[str]) -> str:
+    """Dotted text of a table name that :func:`split_qualified` reads back into ``parts``:
+    a part that is not a plain identifier is written in double quotes (``""`` for ``"``)."""
+    return ".".join(
+        p if _PLAIN_NAME.fullmatch(p) else '"' + p.replace('"', '""') + '"' for p in parts
+    )
 
-    def existing_objects_query(self, schema, view, macro):
-        # information_schema.tables lists every attached database: keep the current one.
-        # Macros live in duckdb_functions() (https://duckdb.org/docs/sql/meta/duckdb_table_functions)
-        q = super().existing_objects_query(schema, view, macro)
-        q = q.where(S.eq(S.col("table_catalog"), exp.CurrentCatalog()), copy=False)
-        if macro is None:
-            return q
-        macros = S.select(
-            [S.alias(S.text("MACRO"), "kind"), S.alias(S.col("function_name"), "name")],
-            exp.Table(this=exp.Anonymous(this="duckdb_functions", expressions=[])),
-            where=S.and_(
-                S.eq(S.col("database_name"), exp.CurrentCatalog()),
-                S.eq(S.col("schema_name"), S.text(schema) if schema else exp.CurrentSchema()),
-                S.eq(exp.Lower(this=S.col("function_name")), S.text(macro.lower())),
-                S.eq(S.col("function_type"), S.text("macro")),
-            ),
-        )
-        return exp.union(q, macros, distinct=False)
 
-    def file_scan(self, path: str) -> exp.Expression:
-        low = path.lower()
-        if low.endswith((".parquet", ".pq")) or ".parquet" in low:
-            fn = "read_parquet"
-        elif low.endswith((".json", ".ndjson")):
-            fn = "read_json_auto"
-        else:
-            fn = "read_csv_auto"
-        return exp.Table(this=exp.Anonymous(this=fn, expressions=[S.text(path)]))
+def split_qualified(name: str) -> list[str]:
+    """The parts of a dotted, possibly double-quoted table name (see :meth:`Dialect.table`)."""
+    return _split_qualified(name)
 
 
 def _split_qualified(name: str) -> list[str]:
@@ -345,26 +346,3 @@ def _split_qualified(name: str) -> list[str]:
     if any(p == "" for p in parts):
         raise SpecError(f"empty part in name {name!r}")
     return parts
-
-
-DIALECTS: dict[str, type[Dialect]] = {"duckdb": DuckDBDialect}
-SCORING_DIALECTS = ("duckdb", "postgres", "spark")
-
-
-def dialect_for(name: str) -> Dialect:
-    """A dialect by name, for printing scoring SQL (engine modules load on demand)."""
-    key = name.strip().lower()
-    if key == "duckdb":
-        return DuckDBDialect()
-    if key in ("postgres", "postgresql"):
-        from indb.postgres import PostgresDialect
-
-        return PostgresDialect()
-    if key == "spark":
-        from indb.spark import SparkDialect
-
-        return SparkDialect()
-    raise SpecError(
-        f"dialect {name!r} is not supported for scoring SQL; supported: "
-        f"{', '.join(SCORING_DIALECTS)}"
-    )
