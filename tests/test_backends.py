@@ -160,3 +160,20 @@ def test_cli_dialect_option_takes_every_table_spelling(tmp_path: Path) -> None:
         assert out.exit_code == 0, out.output
         assert out.output.startswith("CREATE")
     assert backends.backend_named("postgresql").name == "postgres"
+
+
+def test_file_sources_in_each_engines_own_form() -> None:
+    # issue 13: Spark's own spelling of a file source, format.`path`, is taken as written
+    # (it was refused with a hint about CSV); CSV still needs reader options
+    from indb.engines.postgres import PostgresDialect
+    from indb.engines.spark import SparkDialect
+    from indb.errors import UnsupportedError
+
+    spark = SparkDialect()
+    assert spark.render(spark.file_scan("parquet.`/data/p`")) == "`parquet`.`/data/p`"
+    assert spark.render(spark.file_scan("ORC.`/data/o`")) == "`orc`.`/data/o`"
+    with pytest.raises(UnsupportedError, match="reader options"):
+        spark.file_scan("csv.`/data/c`")
+    # PostgreSQL names the way out for scoring-sql, --source with a table
+    with pytest.raises(UnsupportedError, match="--source TABLE"):
+        PostgresDialect().file_scan("/data/p.parquet")

@@ -647,3 +647,19 @@ def test_demo_command_writes_reports(tmp_path: Path):
     for path in written:
         assert json.loads(path.read_text()).keys() >= REQUIRED_KEYS
     assert "CAUTION" in result.stdout
+    # issue 13: the views keep policy_id (not a predictor), so scores join back to policies
+    import duckdb
+
+    con = duckdb.connect(str(out_dir / "demo.duckdb"), read_only=True)
+    try:
+        for view in ("frequency", "severity", "pure_premium", "lapse"):
+            cols = [r[0] for r in con.execute(f"DESCRIBE {view}").fetchall()]
+            assert "policy_id" in cols, view
+            n, ids = con.execute(
+                f"SELECT count(*), count(DISTINCT policy_id) FROM {view}"
+            ).fetchone()
+            assert n == ids > 0, view
+        terms = json.loads((out_dir / "frequency.json").read_text())["coefficients"]
+        assert not [t for t in terms if "policy_id" in t["term"]]
+    finally:
+        con.close()

@@ -231,7 +231,8 @@ class PostgresDialect(Dialect):
     def file_scan(self, path: str) -> exp.Expression:
         raise UnsupportedError(
             f"PostgreSQL cannot read the file {path!r} from a query; load it into a table "
-            "(e.g. with COPY or psql's \\copy) and pass the table name"
+            "(e.g. with COPY or psql's \\copy) and pass the table name (for scoring-sql: "
+            "--source TABLE, or source= in Python)"
         )
 
     def type_kind(self, type_name: str) -> str:

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 import time
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -36,6 +37,9 @@ _SPARK_NUMERIC |= {"byte", "short", "long", "real"}
 _SPARK_TEXT = {"string", "varchar", "char"}
 _SPARK_BOOL = {"boolean"}
 _FILE_FORMATS = {".parquet": "parquet", ".pq": "parquet", ".orc": "orc", ".json": "json"}
+#: formats Spark reads as format.`path` with no reader options (CSV needs a header option)
+_DIRECT_FORMATS = frozenset(_FILE_FORMATS.values())
+_FORMAT_PATH = re.compile(r"(\w+)\.`([^`]+)`")
 VIEW_KINDS = ("temporary", "persistent")
 
 
@@ -153,6 +157,10 @@ class SparkDialect(Dialect):
         return S.ieee_div_guarded(a, node.expression)
 
     def file_scan(self, path: str) -> exp.Expression:
+        named = _FORMAT_PATH.fullmatch(path.strip())
+        if named and named.group(1).lower() in _DIRECT_FORMATS:
+            # already in Spark's own form, format.`path` (how its docs write a file source)
+            return exp.Table(this=S.ident(named.group(2)), db=S.ident(named.group(1).lower()))
         low = path.lower().rstrip("/")
         fmt = next((f for suffix, f in _FILE_FORMATS.items() if low.endswith(suffix)), None)
         if fmt is None and (".parquet" in low or Path(path).is_dir()):
