@@ -126,8 +126,10 @@ def fit(
         threads=threads,
     )
     try:
-        if name is not None:  # names the engine itself uses are refused before the fit
-            open_registry(engine, registry_schema).check_model_name(name)
+        if name is not None:  # a name the deployment cannot take is refused before any scan
+            open_registry(engine, registry_schema).check_before_fit(
+                name, view_schema=view_schema, promote=promote
+            )
         result = fit_spec(spec, engine, progress)
         if name is not None:
             # a fit that did not converge is recorded but never made live on its own (as

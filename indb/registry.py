@@ -232,42 +232,25 @@ class Registry(ViewPlacement):
             W.check_name(view_schema, "view schema")
         fresh = not self.exists()
         h = spec_hash(result.spec)
-        existing = self.models()
-        current = next((m for m in existing if m["model_name"] == name), None)
-        twin = next(
-            (m["model_name"] for m in existing if m["model_name"].lower() == name.lower()), name
-        )
-        if current is None and twin != name:
-            # DuckDB (and Spark) identifiers ignore case: the view and macro of one would
-            # replace the other's
-            raise RegistryError(
-                f"model name {name!r} differs only in case from model {twin!r} in the "
-                f"registry; their scoring views would be the same object. Refit {twin!r} "
-                "under that name, or choose another name; nothing was written"
+        current = self._current_or_twin(name)
+        match = self._same_fit_version(name, result) if current is not None else None
+        # a changed view schema, scoring source or intervals flag is not "unchanged":
+        # keeping the version would silently drop the request (it is applied below, as for
+        # any new version, by the same path that deploys and records it)
+        if (
+            match is not None
+            and not force_new
+            and not _deployment_changes(current, view_schema, score_source, intervals)
+        ):
+            return SaveOutcome(
+                name,
+                int(match["version"]),
+                False,
+                match["status"] == "live",
+                self._view_label(current),
+                "score_mean",
+                self._macro_label(current) if self.d.supports_macros else None,
             )
-        latest = self._latest_version(name) if current is not None else None
-        if latest is not None and not force_new:
-            # the same spec on unchanged data adds no version (live or held alike), so a
-            # scheduled job that keeps failing a gate does not pile up identical versions
-            # hashed again from the stored spec: one stored before specs recorded their SQL
-            # dialect is this engine's (see _result), and matches a refit of it here
-            stored = self._spec_with_dialect(json.loads(latest["spec_json"]))
-            same = spec_hash(stored) == spec_hash(
-                self._spec_with_dialect(result.spec)
-            ) and json.loads(latest["fingerprint_json"]) == _jsonable(result.fingerprint)
-            # a changed view schema, scoring source or intervals flag is not "unchanged":
-            # keeping the version would silently drop the request (it is applied below,
-            # as for any new version, by the same path that deploys and records it)
-            if same and not _deployment_changes(current, view_schema, score_source, intervals):
-                return SaveOutcome(
-                    name,
-                    int(latest["version"]),
-                    False,
-                    latest["status"] == "live",
-                    self._view_label(current),
-                    "score_mean",
-                    self._macro_label(current) if self.d.supports_macros else None,
-                )
         version = 1
         if current is not None:  # numbers are never reused, dropped versions included
             rows = self._rows(
@@ -426,9 +409,65 @@ class Registry(ViewPlacement):
             tuple(notes),
         )
 
-    def _latest_version(self, name: str) -> dict[str, Any] | None:
-        """The newest version that was not dropped (None if there is none)."""
-        rows = self._rows(
+    def check_before_fit(
+        self, name: str, *, view_schema: str | None = None, promote: bool = True
+    ) -> None:
+        """The checks of :meth:`save` that need no fitted result, run before a fit's first
+        scan so that a name it cannot take costs no scans: names of the engine's own
+        objects, a name differing only in case from a model's, and (for a version to be made
+        live) a view or macro of that name which indb did not create for this model."""
+        self.check_model_name(name)
+        if view_schema is not None:
+            W.check_name(view_schema, "view schema")
+        current = self._current_or_twin(name)
+        if not promote:
+            return
+        target = {"view_schema": view_schema, "view_name": name, "macro_name": f"{name}_score"}
+        if current is not None:
+            target = {
+                "view_schema": current["view_schema"] if view_schema is None else view_schema,
+                "view_name": current["view_name"],
+                "macro_name": current["macro_name"],
+            }
+        self._check_not_foreign(name, target, current)
+
+    def _current_or_twin(self, name: str) -> dict[str, Any] | None:
+        """The model row of ``name`` (None for a new model); a new name that differs only in
+        case from a registered model's is refused."""
+        existing = self.models()
+        current = next((m for m in existing if m["model_name"] == name), None)
+        twin = next(
+            (m["model_name"] for m in existing if m["model_name"].lower() == name.lower()), name
+        )
+        if current is None and twin != name:
+            # DuckDB (and Spark) identifiers ignore case: the view and macro of one would
+            # replace the other's
+            raise RegistryError(
+                f"model name {name!r} differs only in case from model {twin!r} in the "
+                f"registry; their scoring views would be the same object. Refit {twin!r} "
+                "under that name, or choose another name; nothing was written"
+            )
+        return current
+
+    def _same_fit_version(self, name: str, result: FitResult) -> dict[str, Any] | None:
+        """The version that ``result`` repeats (same spec hash and data fingerprint): the
+        newest version, or else a held one. The same spec on unchanged data adds no version,
+        so a scheduled job that keeps failing a gate does not pile up identical versions."""
+        rows = self._undropped_versions(name)
+        candidates = rows[-1:] + [r for r in reversed(rows[:-1]) if r["status"] == "held"]
+        # hashed again from the stored spec: one stored before specs recorded their SQL
+        # dialect is this engine's (see _result), and matches a refit of it here
+        want = spec_hash(self._spec_with_dialect(result.spec))
+        prints = _jsonable(result.fingerprint)
+        for row in candidates:
+            stored = self._spec_with_dialect(json.loads(row["spec_json"]))
+            if spec_hash(stored) == want and json.loads(row["fingerprint_json"]) == prints:
+                return row
+        return None
+
+    def _undropped_versions(self, name: str) -> list[dict[str, Any]]:
+        """The versions that were not dropped, oldest first."""
+        return self._rows(
             W.select_rows(
                 self.schema,
                 "model_version",
@@ -436,7 +475,6 @@ class Registry(ViewPlacement):
                 order=["version"],
             )
         )
-        return rows[-1] if rows else None
 
     def promote(self, name: str, version: int, *, view_schema: str | None = None) -> None:
         """Point the stable view (and macro) at ``version``; the previous live version retires.

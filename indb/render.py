@@ -185,6 +185,13 @@ def retrain_text(outcome: RetrainOutcome, db: str | None) -> str:
             f"Model {name}: spec and data unchanged; version {v} stays live "
             "(--force records a new version)."
         )
+    elif outcome.result is not None and not outcome.result.deployment.get("created", True):
+        keep = f"version {prev} stays live" if prev is not None else "no version is live"
+        head = (
+            f"Model {name}: spec and data match held version {v}, so no new version was "
+            f"recorded; it stays HELD BACK by gate(s) {', '.join(failed)}; {keep}. Promote "
+            f"it anyway with `indb promote {name} {v} --db {db}`."
+        )
     else:
         keep = f"version {prev} stays live" if prev is not None else "no version is live"
         head = (
