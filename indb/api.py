@@ -59,7 +59,7 @@ def fit(
     sample_start: str = "auto",
     progress: Any = None,
     name: str | None = None,
-    promote: bool = True,
+    promote: bool | None = None,
     new_version: bool = False,
     view_schema: str | None = None,
     score_source: str | None = None,
@@ -134,12 +134,12 @@ def fit(
         if name is not None:
             # a fit that did not converge is recorded but never made live on its own (as
             # retrain's require_converged gate holds it): the live version keeps serving
-            hold = promote and not result.converged
+            hold = promote is not False and not result.converged
             reg = open_registry(engine, registry_schema)
             outcome = reg.save(
                 name,
                 result,
-                promote=promote and not hold,
+                promote=False if hold else promote,
                 force_new=new_version,
                 view_schema=view_schema,
                 score_source=score_source,
@@ -252,7 +252,7 @@ def deploy(
     name: str,
     *,
     db: Any = None,
-    promote: bool = True,
+    promote: bool | None = None,
     new_version: bool = False,
     view_schema: str | None = None,
     score_source: str | None = None,

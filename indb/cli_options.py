@@ -148,8 +148,10 @@ def _click_option(sp: Spelling, help: str | None) -> Callable[[F], F]:
     if option.kind is O.BOOLEAN:
         switch = sp.flag
         if "/" not in switch:
-            # a one-way switch sets the value that is not the default
-            common["flag_value"] = not option.default
+            # a one-way switch sets the value that is not the default (a former spelling:
+            # the value it is declared to set)
+            alias = sp.hidden and option.alias_value is not None
+            common["flag_value"] = option.alias_value if alias else not option.default
         return click.option(switch, sp.dest, **common)
     required = not sp.hidden and (option.required or option.cli_required)
     kw: dict[str, Any] = {**common, "metavar": option.metavar, "required": required}

@@ -214,6 +214,9 @@ class Option:
     aliases:
         Former command-line spellings, still accepted but not shown in ``--help``, for one
         release (``--only`` for ``--predictors``).
+    alias_value:
+        For a boolean, the value its former spellings set (None: the opposite of the
+        default; ``--hold`` sets ``promote`` False where the default is None).
     """
 
     name: str
@@ -230,6 +233,7 @@ class Option:
     cli_required: bool = False
     minimum: int | None = None
     aliases: tuple[str, ...] = ()
+    alias_value: Any = None
 
     def __post_init__(self) -> None:
         if self.group not in GROUPS:
@@ -445,11 +449,16 @@ OPTIONS: tuple[Option, ...] = (
     Option(
         "promote",
         BOOLEAN,
-        True,
-        _with("record the version without making it live."),
+        None,
+        _with(
+            "make the version live (--promote) or only record it (--no-promote). Left out, "
+            "a first version, or a refit with the live version's spec, goes live; a "
+            "version whose spec differs from the live one's is recorded held until promoted."
+        ),
         "deploy",
         in_file=False,  # a retrain promotes by its gates
         aliases=("--hold",),
+        alias_value=False,
     ),
     Option(
         "new_version",

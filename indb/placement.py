@@ -219,3 +219,31 @@ def aliased(rel: exp.Expression) -> exp.Expression:
 
 def _create_schema(schema: str) -> exp.Create:
     return exp.Create(kind="SCHEMA", this=exp.Table(db=S.ident(schema)), exists=True)
+
+
+def deployment_changes(
+    current: dict[str, Any], view_schema: str | None, score_source: str | None, intervals: Any
+) -> list[str]:
+    """The deployment settings a save asks to change on a model (None keeps the current)."""
+    asked = {"view_schema": view_schema, "score_source": score_source, "intervals": intervals}
+    return [
+        key
+        for key, value in asked.items()
+        if value is not None
+        and (bool(value) != bool(current[key]) if key == "intervals" else value != current[key])
+    ]
+
+
+def model_updates(row: dict[str, Any]) -> dict[str, Any]:
+    """The columns of a model row that a deployment sets (where and how it is served)."""
+    return {
+        k: row[k]
+        for k in (
+            "live_version",
+            "view_schema",
+            "view_name",
+            "macro_name",
+            "score_source",
+            "intervals",
+        )
+    }

@@ -21,7 +21,9 @@ from indb import writeback as W
 from indb.engines.base_dialect import Dialect
 from indb.engines.base_engine import Engine
 from indb.errors import DeploymentWarning, EngineError, RegistryError, SpecError, UnsupportedError
-from indb.placement import ViewPlacement, aliased, star
+from indb.placement import ViewPlacement, aliased, deployment_changes, model_updates, star
+from indb.promotion import jsonable as _jsonable
+from indb.promotion import promote_by_default, signature_changes
 from indb.results import FitResult
 from indb.spec import Source
 from indb.version import __version__
@@ -212,7 +214,7 @@ class Registry(ViewPlacement):
         name: str,
         result: FitResult,
         *,
-        promote: bool = True,
+        promote: bool | None = True,
         force_new: bool = False,
         view_schema: str | None = None,
         score_source: str | None = None,
@@ -221,6 +223,12 @@ class Registry(ViewPlacement):
         parent_version: int | None = None,
     ) -> SaveOutcome:
         """Record ``result`` as the next version of ``name`` and (by default) make it live.
+
+        ``promote=None`` decides by the live version: a first version, or one with the live
+        version's spec (a refit on new data), goes live; a version whose spec differs is
+        recorded held (a :class:`~indb.errors.DeploymentWarning` names what differs), so an
+        ad-hoc fit never replaces a live model, and the signature of its macro, silently.
+        ``promote=True`` over a live version whose scoring inputs change warns which.
 
         An identical spec on unchanged data (same spec hash and data fingerprint as the
         newest version) keeps that version unless ``force_new`` or a deployment setting
@@ -240,7 +248,7 @@ class Registry(ViewPlacement):
         if (
             match is not None
             and not force_new
-            and not _deployment_changes(current, view_schema, score_source, intervals)
+            and not deployment_changes(current, view_schema, score_source, intervals)
         ):
             return SaveOutcome(
                 name,
@@ -297,6 +305,13 @@ class Registry(ViewPlacement):
         if model_row["score_source"]:
             model_row["score_source"] = self._qualified_source(model_row["score_source"])
         notes: list[str] = []
+        live_result = self._live_result(name, current)
+        if promote is None:
+            promote, why = promote_by_default(name, version, result, live_result)
+            if why:
+                notes.append(why)
+        elif promote and live_result is not None:
+            notes += signature_changes(name, live_result, result, self.d)
         if not promote and self._live_elsewhere(current, model_row):
             # the model row says where the live view and macro are: a version that is not
             # made live must not move them, nor make the row point where they are not
@@ -410,7 +425,7 @@ class Registry(ViewPlacement):
         )
 
     def check_before_fit(
-        self, name: str, *, view_schema: str | None = None, promote: bool = True
+        self, name: str, *, view_schema: str | None = None, promote: bool | None = True
     ) -> None:
         """The checks of :meth:`save` that need no fitted result, run before a fit's first
         scan so that a name it cannot take costs no scans: names of the engine's own
@@ -420,7 +435,7 @@ class Registry(ViewPlacement):
         if view_schema is not None:
             W.check_name(view_schema, "view schema")
         current = self._current_or_twin(name)
-        if not promote:
+        if promote is False:  # None may promote: checked as if it will
             return
         target = {"view_schema": view_schema, "view_name": name, "macro_name": f"{name}_score"}
         if current is not None:
@@ -430,6 +445,12 @@ class Registry(ViewPlacement):
                 "macro_name": current["macro_name"],
             }
         self._check_not_foreign(name, target, current)
+
+    def _live_result(self, name: str, current: dict[str, Any] | None) -> FitResult | None:
+        """The live version's result (None without a model or a live version)."""
+        if current is None or current.get("live_version") is None:
+            return None
+        return self.load(name, int(current["live_version"]))
 
     def _current_or_twin(self, name: str) -> dict[str, Any] | None:
         """The model row of ``name`` (None for a new model); a new name that differs only in
@@ -598,7 +619,7 @@ class Registry(ViewPlacement):
         self._run(W.update_rows(self.schema, "model_version", {"status": status}, where))
 
     def _update_model(self, name: str, row: dict[str, Any]) -> None:
-        self._run(W.update_rows(self.schema, "model", _model_updates(row), W.where_model(name)))
+        self._run(W.update_rows(self.schema, "model", model_updates(row), W.where_model(name)))
 
     def _columns_of(self, relation: Any) -> list[str] | None:
         """Column names of a table or view, or None when there is none by that name."""
@@ -647,41 +668,10 @@ def _conflict(err: EngineError, name: str, version: int) -> Exception:
     return err
 
 
-def _deployment_changes(
-    current: dict[str, Any], view_schema: str | None, score_source: str | None, intervals: Any
-) -> list[str]:
-    """The deployment settings a save asks to change on a model (None keeps the current)."""
-    asked = {"view_schema": view_schema, "score_source": score_source, "intervals": intervals}
-    return [
-        key
-        for key, value in asked.items()
-        if value is not None
-        and (bool(value) != bool(current[key]) if key == "intervals" else value != current[key])
-    ]
-
-
-def _model_updates(row: dict[str, Any]) -> dict[str, Any]:
-    return {
-        k: row[k]
-        for k in (
-            "live_version",
-            "view_schema",
-            "view_name",
-            "macro_name",
-            "score_source",
-            "intervals",
-        )
-    }
-
-
 def exp_max(column: str):
     from sqlglot import exp
 
     return exp.Max(this=S.col(column))
-
-
-def _jsonable(obj: Any) -> Any:
-    return json.loads(json.dumps(obj, sort_keys=True, default=str))
 
 
 def _py(v: Any) -> Any:

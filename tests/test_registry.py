@@ -64,7 +64,7 @@ def _registry(db: str) -> Iterator[Registry]:
         reg.engine.close()
 
 
-def _fit_ships(db: str, **kwargs: Any) -> FitResult:
+def _fit_ships(db: str, reference: dict[str, str] | None = None, **kwargs: Any) -> FitResult:
     return indb.fit(
         "ships",
         "accident",
@@ -73,7 +73,7 @@ def _fit_ships(db: str, **kwargs: Any) -> FitResult:
         offset="ln(service)",
         exclude=["row_id"],
         # fixed reference levels: the most frequent level changes when the data do
-        reference={"type": "A", "built": "1960-64", "operated": "1960-74"},
+        reference=reference or {"type": "A", "built": "1960-64", "operated": "1960-74"},
         tol=TOL,
         **kwargs,
     )
@@ -481,3 +481,39 @@ def test_unseen_macro_counts_what_the_view_counts(tmp_path: Path) -> None:
     }
     assert where == {"freq_score": "mart", "freq_unseen": "mart"}
     con.close()
+
+
+def test_a_changed_spec_is_held_unless_promoted(tmp_path: Path) -> None:
+    # issue 13: an ad-hoc `fit --name M --only type` over a live model went live at once,
+    # skipping the gates its spec file had, and changed the macro's arguments from 4 to 1
+    from indb.errors import DeploymentWarning
+
+    db = str(tmp_path / "s.duckdb")
+    _write(db, "ships", _ships())
+
+    def live() -> int:
+        return int(_query(db, "SELECT live_version FROM indb_registry.model")["live_version"][0])
+
+    first = _fit_ships(db, name="ship_damage")
+    assert first.deployment["promoted"] is True  # a first version goes live
+    with pytest.warns(DeploymentWarning, match=r"recorded held.*differs.*in predictors"):
+        adhoc = _fit_ships(db, name="ship_damage", predictors=["type"], reference={"type": "A"})
+    assert adhoc.deployment["promoted"] is False and live() == 1
+    # the macro keeps its four arguments and version 1's means (the view's, which
+    # statsmodels checks in test_round_trip_versions_compare_promote_rollback_drop)
+    both = _query(
+        db,
+        "SELECT score_mean, ship_damage_score(type, built, operated, service) AS m "
+        "FROM ship_damage",
+    )
+    assert_allclose(both["m"], both["score_mean"], rtol=1e-12)
+    # the same spec as the live version on changed data goes live (a refit)
+    _query(db, "DELETE FROM ships WHERE row_id = 3")
+    refit = _fit_ships(db, name="ship_damage")
+    assert refit.deployment["promoted"] is True and live() == 3
+    # asked for, the changed spec goes live, and the changed scoring inputs are named
+    with pytest.warns(DeploymentWarning, match=r"scoring inputs change from \(type, built"):
+        asked = _fit_ships(
+            db, name="ship_damage", predictors=["type"], reference={"type": "A"}, promote=True
+        )
+    assert asked.deployment["promoted"] is True and live() == 4

@@ -386,6 +386,7 @@ def test_refit_into_another_schema_moves_the_view_and_macro(db, frame):
         "freq",
         "--view-schema",
         "mart",
+        "--promote",  # other predictors: made live when asked (issue 13)
         "pol",
     )
     assert "scoring view mart.freq" in out.output and "macro mart.freq_score" in out.output
@@ -418,7 +419,20 @@ def test_refit_into_another_schema_moves_the_view_and_macro(db, frame):
     assert model_row(db, "freq")["view_schema"] == "main"
     assert_allclose(scores(db, "main.freq"), v1, rtol=PREDICT_RTOL)
     # main and the default schema are the same place: nothing is dropped
-    cli("fit", "--db", db, *FIT, "--exclude", "id", "--exclude", "region", "--name", "freq", "pol")
+    cli(
+        "fit",
+        "--db",
+        db,
+        *FIT,
+        "--exclude",
+        "id",
+        "--exclude",
+        "region",
+        "--name",
+        "freq",
+        "--promote",
+        "pol",
+    )
     assert objects(db) == {
         ("view", "main", "freq"),
         ("macro", "main", "freq_score"),
@@ -494,6 +508,7 @@ def test_a_failed_move_changes_nothing(db):
             exclude=["id", "age"],
             name="freq",
             view_schema="mart",
+            promote=True,
         )
     assert objects(db) == before[0] - {("view", "main", "freq")}
     assert model_row(db, "freq") == before[1]

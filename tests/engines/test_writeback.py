@@ -75,6 +75,8 @@ def oracle_mean(frame: pd.DataFrame, res: FitResult) -> np.ndarray:
 
 def fit_ships(db: Any, source: str = "ships", **kw: Any) -> FitResult:
     kw.setdefault("exclude", ["row_id"])
+    if "name" in kw:  # these tests refit with other predictors and serve what they fit
+        kw.setdefault("promote", True)
     return indb.fit(
         source,
         "accident",
@@ -364,6 +366,8 @@ def test_view_kind_is_checked() -> None:
 
 def pol_fit(db: Any, source: str, **kw: Any) -> FitResult:
     kw.setdefault("exclude", ["id"])
+    if "name" in kw:  # these tests refit with other predictors and serve what they fit
+        kw.setdefault("promote", True)
     return indb.fit(source, "claims", "poisson", db=db, offset="ln(exposure)", tol=1e-12, **kw)
 
 
