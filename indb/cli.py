@@ -16,6 +16,8 @@ Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` a
 from __future__ import annotations
 
 import dataclasses
+import json
+import sys
 import warnings
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -336,7 +338,46 @@ def _dialect(name: str) -> Dialect:
 # -- commands -----------------------------------------------------------------------
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]}, epilog=EXIT_EPILOG)
+class _OneLineErrors(click.Group):
+    """The command group, with every error as one ``indb: error:`` line on stderr (click's
+    own usage errors too) and, under ``--json``, a JSON error object on stdout."""
+
+    def main(  # type: ignore[override]
+        self, args: Sequence[str] | None = None, *a: Any, standalone_mode: bool = True, **kw: Any
+    ) -> Any:
+        argv = list(sys.argv[1:] if args is None else args)
+        try:
+            code = super().main(argv, *a, standalone_mode=False, **kw)
+        except click.ClickException as exc:
+            code = exc.exit_code
+            message = exc.message if isinstance(exc, CommandFailure) else _usage_message(exc)
+            if "--json" in argv:
+                click.echo(json.dumps({"error": message, "exit_code": code}))
+            click.echo(f"indb: error: {message}", err=True)
+        except click.Abort:
+            code = 1
+            click.echo("indb: error: aborted", err=True)
+        if not standalone_mode:
+            return code
+        sys.exit(code if isinstance(code, int) else 0)
+
+
+def _usage_message(exc: click.ClickException) -> str:
+    """click's usage error as one line, with where to look for the options."""
+    text = _one_line(exc.format_message())
+    ctx = getattr(exc, "ctx", None)
+    if isinstance(exc, click.UsageError) and ctx is not None:
+        # the program is indb however it was started (python -m, a test runner)
+        path = " ".join(["indb", *ctx.command_path.split()[1:]])
+        text += f" (see `{path} --help`)"
+    return text
+
+
+@click.group(
+    cls=_OneLineErrors,
+    context_settings={"help_option_names": ["-h", "--help"]},
+    epilog=EXIT_EPILOG,
+)
 @click.version_option(package_name="indb", prog_name="indb")
 def main() -> None:
     """indb: fit generalized linear models inside the database.

@@ -124,7 +124,11 @@ def _assert_one_error_line(result: Result, code: int, *needles: str) -> str:
     lines = [line for line in result.stderr.splitlines() if line.startswith("indb: error:")]
     assert len(lines) == 1, result.stderr
     assert "Traceback" not in result.stderr and "Traceback" not in result.stdout
-    assert result.stdout == ""
+    if result.stdout:  # only under --json (issue 13): one JSON error object, the same words
+        assert json.loads(result.stdout) == {
+            "error": lines[0].removeprefix("indb: error: "),
+            "exit_code": code,
+        }
     for needle in needles:
         assert needle in lines[0], (needle, lines[0])
     return lines[0]
@@ -663,3 +667,16 @@ def test_demo_command_writes_reports(tmp_path: Path):
         assert not [t for t in terms if "policy_id" in t["term"]]
     finally:
         con.close()
+
+
+def test_usage_errors_and_json_errors_are_one_line(tmp_path: Path):
+    # issue 13: click's own option errors printed three lines against the documented one,
+    # and --json printed nothing on an error
+    bogus = _run("fit", "--bogus", "x")
+    line = _assert_one_error_line(bogus, 2, "--bogus", "indb fit --help")
+    assert bogus.stdout == "" and "Usage:" not in bogus.stderr, line
+    missing = _run("fit", "--json", "--family", "poisson", "--response", "y", "nope.parquet")
+    assert missing.exit_code != 0 and missing.stdout
+    out = json.loads(missing.stdout)
+    assert out["exit_code"] == missing.exit_code and out["error"]
+    _assert_one_error_line(missing, missing.exit_code)
