@@ -243,7 +243,9 @@ def _deploy_arguments(options: dict[str, Any]) -> dict[str, Any]:
         given = CO.given_flags(options, (o for o in O.group("deploy") if o.name != "name"))
         if given:
             raise SpecError(
-                f"{', '.join(given)} only apply when the model is written back; "
+                f"{', '.join(given)} "
+                f"{'applies' if len(given) == 1 else 'apply'} only when the model is "
+                "written back; "
                 "add --name NAME (and --db PATH)"
             )
         return {}

@@ -10,6 +10,7 @@ Plain data only; the SQL for these objects is built by :mod:`indb.plan`.
 from __future__ import annotations
 
 import dataclasses
+import difflib
 import itertools
 import math
 from collections.abc import Sequence
@@ -280,7 +281,8 @@ def resolve_inputs(
     def need(col: str, role: str) -> None:
         if col not in types:
             raise SpecError(
-                f"{role} column {col!r} is not in the source; columns are {_short(names)}"
+                f"{role} column {col!r} is not in the source{_did_you_mean(col, names)}; "
+                f"columns are {_short(names)}"
             )
 
     need(spec.response, "response")
@@ -680,3 +682,10 @@ def _cell_columns_by_tuple(
         ] = j
     rows = zip(*(codes[fi].tolist() for fi in g.factors), strict=True)
     return np.fromiter((where.get(k, -1) for k in rows), dtype=np.int64, count=len(codes[0]))
+
+
+def _did_you_mean(name: str, names: Sequence[str]) -> str:
+    """`` (did you mean 'x'?)`` for the closest column name, if one is close."""
+    lower = {n.lower(): n for n in names}
+    close = difflib.get_close_matches(name.lower(), list(lower), n=1, cutoff=0.75)
+    return f" (did you mean {lower[close[0]]!r}?)" if close else ""

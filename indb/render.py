@@ -209,7 +209,7 @@ def retrain_text(outcome: RetrainOutcome, db: str | None) -> str:
     lines = [head, iters]
     if outcome.checks:
         rows = [
-            [c.gate, _num(c.value, ".6g"), _num(c.limit, ".6g"), "pass" if c.passed else "FAIL"]
+            [c.gate, _gate_num(c.value), _gate_num(c.limit), "pass" if c.passed else "FAIL"]
             for c in outcome.checks
         ]
         lines += ["", _table(["gate", "value", "limit", "result"], rows, right=(1, 2))]
@@ -340,6 +340,8 @@ def retrain_json(outcome: RetrainOutcome) -> str:
 
 
 def promote_text(name: str, version: int, previous: int | None, view: str) -> str:
+    if previous == version:
+        return f"Model {name}: version {version} was already live; scoring view {view} serves it."
     was = f" (was version {previous})" if previous is not None else ""
     return f"Model {name}: version {version} is live{was}; scoring view {view} serves it."
 
@@ -379,3 +381,11 @@ def scoring_sql_json(
             "sql": sql,
         }
     )
+
+
+def _gate_num(x: float) -> str:
+    """A gate's value or limit: whole numbers with thousands separators (min_rows
+    1,000,000, not 1e+06), others to 6 significant digits."""
+    if isinstance(x, (int, float)) and math.isfinite(x) and float(x).is_integer():
+        return f"{int(x):,}"
+    return _num(x, ".6g")

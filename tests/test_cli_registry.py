@@ -195,7 +195,7 @@ def test_deploy_options_need_name_and_database(tmp_path: Path):
     _error(
         _run(*FIT, "--db", path, "--no-promote", "--no-intervals", "ships"),
         2,
-        "--no-promote, --no-intervals only apply",
+        "--no-promote, --no-intervals apply only when",
         "--name",
     )
     parquet = tmp_path / "ships.parquet"
@@ -510,3 +510,16 @@ def test_help_documents_exit_codes():
         ), code
     for command in ("models", "versions", "show", "compare", "promote", "drop", "scoring-sql"):
         assert command in text
+
+
+def test_small_frictions_of_the_registry_commands(tmp_path: Path):
+    # issue 13: promoting the live version said "(was version 1)" about itself; a misspelt
+    # response column gets a suggestion
+    path = tmp_path / "models.duckdb"
+    _write(path, "ships", _ships())
+    assert _run(*FIT, "--db", path, "--name", "ships_m", "ships").exit_code == 0
+    again = _run("promote", "ships_m", "1", "--db", path)
+    assert again.exit_code == 0, again.output
+    assert "version 1 was already live" in again.stdout and "was version" not in again.stdout
+    wrong = [a if a != "accident" else "acident" for a in FIT]
+    _error(_run(*wrong, "--db", path, "ships"), 2, "did you mean 'accident'?")
