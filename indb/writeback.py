@@ -21,8 +21,8 @@ from indb import sqlexpr as S
 from indb.dialect import Dialect
 from indb.errors import SpecError
 from indb.links import Link, make_link
-from indb.plan import spline_basis_sql
 from indb.results import FitResult
+from indb.splines import spline_basis_sql
 from indb.sqlexpr import Expr
 
 SRC = "indb_src"

@@ -1,0 +1,68 @@
+"""Bookkeeping of one fit: the engine it runs on, the iteration log, its temporary tables
+and what the route did (fold, sample start)."""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import math
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+
+from indb.engine import Engine
+from indb.plan.context import PlanContext
+from indb.results import IterationRecord
+
+Progress = Callable[[IterationRecord], None] | None
+
+
+@dataclass
+class FitRun:
+    """Mutable bookkeeping for one fit."""
+
+    engine: Engine
+    progress: Progress
+    log: list[IterationRecord]
+
+    def query(self, tree) -> dict[str, np.ndarray]:
+        return self.engine.fetch_columns(self.engine.dialect.render(tree))
+
+    def one_row(self, tree) -> dict[str, object]:
+        cols = self.query(tree)
+        return {k: (v[0] if len(v) else None) for k, v in cols.items()}
+
+    phase: str = "fit"
+    temp_tables: list[str] = dataclasses.field(default_factory=list)
+    compressed: tuple[int, int, float] | None = None
+    original_ctx: PlanContext | None = None  # the uncompressed source, for the log-lik
+    fit_ybar: float | None = None  # weighted mean response of the folded problem
+    fold_seconds: float = 0.0
+    #: the sample start: (rows in the sample, its IRLS scans, seconds), or why it was skipped
+    sample: tuple[int, int, float] | str | None = None
+
+    def drop_temp(self) -> None:
+        for name in self.temp_tables:
+            with contextlib.suppress(Exception):
+                self.engine.execute(self.engine.dialect.drop_materialized(name))
+        self.temp_tables.clear()
+
+    def record(self, dev: float, change: float, halvings: int, seconds: float) -> None:
+        rec = IterationRecord(
+            iteration=len(self.log) + 1,
+            deviance=dev,
+            relative_change=change,
+            step_halvings=halvings,
+            seconds=seconds,
+            phase=self.phase,
+        )
+        self.log.append(rec)
+        if self.progress is not None:
+            self.progress(rec)
+
+
+def fetched_count(v: object) -> int:
+    """A count from a fetched aggregate: a SUM over no rows is NULL (None, or NaN after a
+    driver's float conversion)."""
+    return 0 if v is None or (isinstance(v, float) and math.isnan(v)) else int(v)
