@@ -67,116 +67,161 @@ def irls(
     first scan when ``null_mu`` (a per-row null mean) is given, or from ``null_track`` (the
     intercept-only model with the offset, iterated in the same scans) when it converged.
     """
-    spec = ctx.spec
-    cells: list[tuple[str, ...]] | None = None
-    null_dev: float | None = None
-    # the log-link scan (no join to factor effects; plan.log_scan.log_scan_query) where it applies
-    log_scan = log_scan_applies(ctx, design)
-    log_cache: logsums.LogCache | None = None
-    power = ctx.spec.family.variance_power
-    off_center = off_mean if math.isfinite(off_mean) else 0.0
+    loop = IrlsSolver(
+        ctx, design, run, ybar, null_mu=null_mu, null_track=null_track, off_mean=off_mean
+    )
+    return loop.fit(start)
 
-    def scan(beta: np.ndarray | None) -> solver.Sums:
-        nonlocal cells, null_dev, log_scan, log_cache
-        if beta is not None and log_scan:
-            gram, response, constants = logsums.scan_parts(power, log_cache)
-            tree = log_scan_query(
-                ctx,
-                design,
-                beta,
-                gram=gram,
-                response=response,
-                constants=constants,
-                off_center=off_center,
-            )
-            got = logsums.assemble_log_scan(
-                design, run.query(tree), beta, power, log_cache, off_center
-            )
-            wants_null = (null_mu is not None and null_dev is None) or (
-                null_track is not None and not null_track.done
-            )
-            b0, dev0 = logsums.null_model(power, got.cache) if wants_null else (0.0, 0.0)
-            if got.digits_lost <= logsums.MAX_DIGITS_LOST and math.isfinite(dev0):
-                log_cache = got.cache
-                if wants_null and null_track is not None:
-                    null_track.finish(b0, dev0)
-                elif wants_null:
-                    null_dev = dev0
-                return got.sums
-            # the model fits so closely that the split deviance lost too many digits:
-            # per-row deviances from here on (this scan is run again below)
-            log_scan = False
-        with_mu = null_mu is not None and null_dev is None
-        track = null_track is not None and not null_track.done
-        tree = gram_query(
-            ctx,
-            design,
-            beta,
-            ybar=ybar,
-            null_mu=null_mu if with_mu else None,
-            cells=cells,
-            null_intercept=null_track.b0 if track else None,
-        )
-        extra = ("nullw", "nullwz", "nulldev") if track else ("nulldev",) if with_mu else ()
-        if spec.family.unit_mean:
-            extra += ("edge", "near")
-        out = solver.assemble(design, run.query(tree), extra)
-        cells = out.cell_keys
-        if with_mu:
-            null_dev = out.extras["nulldev"]
-        if track:
-            null_track.update(out.extras)
-        return out
 
-    # Converged when the deviance settles AND the next Newton step is statistically
-    # invisible: with linear convergence (non-canonical links) a small deviance change alone
-    # can leave coefficients ~1e-4 standard errors from the optimum.
-    step_tol = max(math.sqrt(spec.tol), 1e-7)
+class IrlsSolver:
+    """IRLS on one context and design, the loop's state kept as fields.
 
-    t0 = time.perf_counter()
-    if start is None:
-        sums = scan(None)
-        if sums.bad:
-            raise SpecError(
-                f"cannot find valid starting values for family {spec.family.name!r} with link "
-                f"{spec.link.describe()!r} ({sums.bad} rows give an invalid mean); "
-                "try another link or starting values"
-            )
-        dev_old = math.inf
-        beta_prev = _fallback_beta(ctx, design, ybar)
-        run.record(sums.deviance, math.nan, 0, time.perf_counter() - t0)
-        sol = solver.solve(sums.xtwx, sums.xtwz)
-        beta = sol.beta
-        budget = spec.max_iter - 1  # the start scan counts as an iteration
-    else:
-        beta = np.asarray(start, float)
-        beta_prev = beta.copy()
-        dev_old = math.inf
-        sol = None
-        budget = spec.max_iter
-    converged = False
-    stalled = False
-    iterations = 0
-    sums_prev: solver.Sums | None = None
-    for _ in range(max(budget, 0)):
-        iterations += 1
-        halvings = 0
+    :meth:`fit` runs the steps in this order:
+
+    1. :meth:`start`: one scan at the family's starting means and the first solve, or the
+       coefficients given;
+    2. per iteration, :meth:`step`: :meth:`scan_accepted` scans at ``beta``, halving the
+       step toward ``beta_prev`` while a mean is invalid or the deviance rises (or marks a
+       stall, :meth:`finish_stalled`); the update is solved; the loop ends when the
+       deviance has settled and :meth:`step_size` of the next step is negligible.
+
+    :meth:`scan` is one query: the log-link scan where it applies (:meth:`log_scan_sums`),
+    else the IRLS scan (:meth:`gram_scan_sums`); the null model rides along in either.
+    """
+
+    #: the coefficients the next scan reads, and the last accepted ones (halving goes there)
+    beta: np.ndarray
+    beta_prev: np.ndarray
+
+    def __init__(
+        self,
+        ctx: PlanContext,
+        design: Design,
+        run: FitRun,
+        ybar: float,
+        *,
+        null_mu: Expr | None = None,
+        null_track: NullTrack | None = None,
+        off_mean: float = 0.0,
+    ) -> None:
+        self.ctx, self.design, self.run, self.ybar = ctx, design, run, ybar
+        self.spec = ctx.spec
+        self.null_mu = null_mu
+        self.null_track = null_track
+        # what one scan hands the next
+        self.cells: list[tuple[str, ...]] | None = None
+        self.null_dev: float | None = None
+        # the log-link scan (no join to factor effects; plan.log_scan.log_scan_query) where
+        # it applies
+        self.log_scan = log_scan_applies(ctx, design)
+        self.log_cache: logsums.LogCache | None = None
+        self.power = ctx.spec.family.variance_power
+        self.off_center = off_mean if math.isfinite(off_mean) else 0.0
+        # Converged when the deviance settles AND the next Newton step is statistically
+        # invisible: with linear convergence (non-canonical links) a small deviance change alone
+        # can leave coefficients ~1e-4 standard errors from the optimum.
+        self.step_tol = max(math.sqrt(self.spec.tol), 1e-7)
+        # the loop
+        self.dev_old = math.inf
+        self.sums: solver.Sums | None = None
+        self.sums_prev: solver.Sums | None = None
+        self.sol: solver.Solution | None = None
+        self.budget = self.spec.max_iter
+        self.iterations = 0
+        self.converged = False
+        self.stalled = False
+
+    # -- the loop ------------------------------------------------------------------------------
+
+    def fit(self, start: np.ndarray | None = None) -> tuple[IrlsState, float | None]:
+        """Run IRLS from ``start`` (None: the family's starting means); see :func:`irls`."""
+        self.start(start)
+        for _ in range(max(self.budget, 0)):
+            if self.step():
+                break
+        assert self.sol is not None
+        null_dev = self.null_dev
+        if self.null_track is not None and self.null_track.done:
+            null_dev = self.null_track.deviance
+        return IrlsState(
+            beta=self.beta,
+            sums=self.sums,
+            solution=self.sol,
+            converged=self.converged,
+            iterations=self.iterations,
+            stalled=self.stalled and not self.converged,
+        ), null_dev
+
+    def start(self, start: np.ndarray | None) -> None:
+        """The first coefficients: solved from a scan at the starting means, or given."""
+        spec = self.spec
         t0 = time.perf_counter()
+        if start is None:
+            sums = self.scan(None)
+            if sums.bad:
+                raise SpecError(
+                    f"cannot find valid starting values for family {spec.family.name!r} with "
+                    f"link {spec.link.describe()!r} ({sums.bad} rows give an invalid mean); "
+                    "try another link or starting values"
+                )
+            self.sums = sums
+            self.beta_prev = _fallback_beta(self.ctx, self.design, self.ybar)
+            self.run.record(sums.deviance, math.nan, 0, time.perf_counter() - t0)
+            self.sol = solver.solve(sums.xtwx, sums.xtwz)
+            self.beta = self.sol.beta
+            self.budget = spec.max_iter - 1  # the start scan counts as an iteration
+        else:
+            self.beta = np.asarray(start, float)
+            self.beta_prev = self.beta.copy()
+            self.budget = spec.max_iter
+
+    def step(self) -> bool:
+        """One iteration: an accepted scan, its update, the convergence test. True: stop."""
+        self.iterations += 1
+        t0 = time.perf_counter()
+        halvings = self.scan_accepted()
+        if self.stalled:
+            self.finish_stalled()
+            return True
+        sums = self.sums
+        assert sums is not None
+        self.sums_prev = sums
+        change = (
+            solver.relative_change(sums.deviance, self.dev_old)
+            if math.isfinite(self.dev_old)
+            else math.inf
+        )
+        self.run.record(sums.deviance, change, halvings, time.perf_counter() - t0)
+        self.sol = solver.solve(sums.xtwx, sums.xtwz)
+        if change < self.spec.tol and self.step_size() < self.step_tol:
+            self.converged = True
+            return True
+        self.dev_old = sums.deviance
+        self.beta_prev = self.beta
+        self.beta = self.sol.beta
+        return False
+
+    def scan_accepted(self) -> int:
+        """Scan at ``beta``, halving the step toward ``beta_prev`` and scanning again while
+        a mean is invalid or the deviance rises; sets ``stalled`` when the rise is too small
+        to see. Returns the halvings."""
+        spec = self.spec
+        halvings = 0
         while True:
-            sums = scan(beta)
+            sums = self.sums = self.scan(self.beta)
             valid = sums.bad == 0 and math.isfinite(sums.deviance)
             # A rise is relative to the deviance only: deviance terms are >= 0, so their
             # sum's rounding error is a small multiple of eps times the sum (1e-9 covers
             # parallel partial sums over ~10^7 rows). No absolute slack: at a boundary MLE
             # the deviance itself falls towards 0 (~5e-9 after 20 iterations on 4 rows),
             # where a fixed 1e-12 accepted steps that raised it, over and over.
-            rises = math.isfinite(dev_old) and sums.deviance > dev_old * (1 + 1e-9)
+            rises = math.isfinite(self.dev_old) and sums.deviance > self.dev_old * (1 + 1e-9)
             if valid and not rises:
-                break
+                return halvings
             if (
                 valid
                 and halvings >= STALL_HALVINGS
-                and solver.relative_change(sums.deviance, dev_old) < spec.tol
+                and solver.relative_change(sums.deviance, self.dev_old) < spec.tol
             ):
                 # Flat: a quarter of the Newton step still does not lower the deviance and
                 # the rise is below what the convergence test can see. Along the step the
@@ -184,50 +229,105 @@ def irls(
                 # or 1/4 would have lowered it, and with t* < 1/4 the full step's rise
                 # b (1 - 2 t*) >= b / 2 bounds the best gain b t*^2 below tol / 8 in the
                 # same measure. Nothing measurable is left: keep the last accepted step.
-                stalled = True
-                break
+                self.stalled = True
+                return halvings
             if halvings >= MAX_HALVINGS:
                 raise SpecError(_halving_failure(spec, sums))
-            beta = 0.5 * (beta + beta_prev)
+            self.beta = 0.5 * (self.beta + self.beta_prev)
             halvings += 1
-        if stalled:
-            iterations -= 1
-            assert sums_prev is not None and sol is not None
-            sums, beta = sums_prev, beta_prev
-            phi = 1.0
-            if not spec.family.dispersion_fixed:
-                rank = int((~sol.aliased).sum())
-                phi = sums.pearson / max(sums.n_weighted - rank, 1.0)
-            # the deviance has settled; converged if the remaining step is invisible too
-            converged = solver.step_in_se(beta, sol.beta, sol.inv_info, phi) < step_tol
-            break
-        sums_prev = sums
-        change = (
-            solver.relative_change(sums.deviance, dev_old) if math.isfinite(dev_old) else math.inf
-        )
-        run.record(sums.deviance, change, halvings, time.perf_counter() - t0)
-        sol = solver.solve(sums.xtwx, sums.xtwz)
+
+    def finish_stalled(self) -> None:
+        """Go back to the last accepted step (its scan and its solved update)."""
+        self.iterations -= 1
+        assert self.sums_prev is not None and self.sol is not None
+        self.sums, self.beta = self.sums_prev, self.beta_prev
+        # the deviance has settled; converged if the remaining step is invisible too
+        self.converged = self.step_size() < self.step_tol
+
+    def step_size(self) -> float:
+        """The solved update's step from ``beta``, in standard errors (largest over the
+        coefficients), with the dispersion of the scan it was solved from."""
+        sums, sol = self.sums, self.sol
+        assert sums is not None and sol is not None
         phi = 1.0
-        if not spec.family.dispersion_fixed:
+        if not self.spec.family.dispersion_fixed:
             rank = int((~sol.aliased).sum())
             phi = sums.pearson / max(sums.n_weighted - rank, 1.0)
-        if change < spec.tol and solver.step_in_se(beta, sol.beta, sol.inv_info, phi) < step_tol:
-            converged = True
-            break
-        dev_old = sums.deviance
-        beta_prev = beta
-        beta = sol.beta
-    assert sol is not None
-    if null_track is not None and null_track.done:
-        null_dev = null_track.deviance
-    return IrlsState(
-        beta=beta,
-        sums=sums,
-        solution=sol,
-        converged=converged,
-        iterations=iterations,
-        stalled=stalled and not converged,
-    ), null_dev
+        return solver.step_in_se(self.beta, sol.beta, sol.inv_info, phi)
+
+    # -- one scan ------------------------------------------------------------------------------
+
+    def scan(self, beta: np.ndarray | None) -> solver.Sums:
+        """The sums of one scan at ``beta`` (None: at the family's starting means)."""
+        if beta is not None and self.log_scan:
+            sums = self.log_scan_sums(beta)
+            if sums is not None:
+                return sums
+            # the model fits so closely that the split deviance lost too many digits:
+            # per-row deviances from here on (this scan is run again below)
+            self.log_scan = False
+        return self.gram_scan_sums(beta)
+
+    def wants_null(self) -> bool:
+        """Whether this scan should also answer for the null model."""
+        track = self.null_track
+        return (self.null_mu is not None and self.null_dev is None) or (
+            track is not None and not track.done
+        )
+
+    def log_scan_sums(self, beta: np.ndarray) -> solver.Sums | None:
+        """The log-link scan at ``beta`` (:mod:`indb.logsums`), with the null model in closed
+        form; None when its split deviance lost more than ``MAX_DIGITS_LOST`` digits."""
+        ctx, design, power = self.ctx, self.design, self.power
+        gram, response, constants = logsums.scan_parts(power, self.log_cache)
+        tree = log_scan_query(
+            ctx,
+            design,
+            beta,
+            gram=gram,
+            response=response,
+            constants=constants,
+            off_center=self.off_center,
+        )
+        got = logsums.assemble_log_scan(
+            design, self.run.query(tree), beta, power, self.log_cache, self.off_center
+        )
+        wants_null = self.wants_null()
+        b0, dev0 = logsums.null_model(power, got.cache) if wants_null else (0.0, 0.0)
+        if got.digits_lost <= logsums.MAX_DIGITS_LOST and math.isfinite(dev0):
+            self.log_cache = got.cache
+            if wants_null and self.null_track is not None:
+                self.null_track.finish(b0, dev0)
+            elif wants_null:
+                self.null_dev = dev0
+            return got.sums
+        return None
+
+    def gram_scan_sums(self, beta: np.ndarray | None) -> solver.Sums:
+        """The IRLS scan at ``beta`` (:func:`indb.plan.irls_scan.gram_query`), carrying the
+        null model: its deviance at ``null_mu``, or one step of ``null_track``."""
+        null_mu, null_track = self.null_mu, self.null_track
+        with_mu = null_mu is not None and self.null_dev is None
+        track = null_track is not None and not null_track.done
+        tree = gram_query(
+            self.ctx,
+            self.design,
+            beta,
+            ybar=self.ybar,
+            null_mu=null_mu if with_mu else None,
+            cells=self.cells,
+            null_intercept=null_track.b0 if track else None,
+        )
+        extra = ("nullw", "nullwz", "nulldev") if track else ("nulldev",) if with_mu else ()
+        if self.spec.family.unit_mean:
+            extra += ("edge", "near")
+        out = solver.assemble(self.design, self.run.query(tree), extra)
+        self.cells = out.cell_keys
+        if with_mu:
+            self.null_dev = out.extras["nulldev"]
+        if track:
+            null_track.update(out.extras)
+        return out
 
 
 def _halving_failure(spec: ModelSpec, sums: solver.Sums) -> str:
