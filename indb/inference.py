@@ -42,10 +42,7 @@ def result(
     sums = state.sums
     rank = int((~sol.aliased).sum())
     df_resid = summary.n_df - rank
-    if fam.dispersion_fixed:
-        dispersion = 1.0
-    else:
-        dispersion = sums.pearson / df_resid if df_resid > 0 else math.nan
+    dispersion = solver.dispersion(sums.pearson, df_resid, fam.dispersion_fixed)
     t = solver.back_transform(design)
     beta_std = np.where(sol.aliased, 0.0, state.beta)
     est = t @ beta_std

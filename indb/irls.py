@@ -11,6 +11,7 @@ import numpy as np
 from indb import logsums, solver
 from indb.design import Design
 from indb.errors import SpecError
+from indb.families import Family
 from indb.fitrun import FitRun
 from indb.nullmodel import NullTrack
 from indb.plan.context import PlanContext
@@ -249,10 +250,7 @@ class IrlsSolver:
         coefficients), with the dispersion of the scan it was solved from."""
         sums, sol = self.sums, self.sol
         assert sums is not None and sol is not None
-        phi = 1.0
-        if not self.spec.family.dispersion_fixed:
-            rank = int((~sol.aliased).sum())
-            phi = sums.pearson / max(sums.n_weighted - rank, 1.0)
+        phi = working_dispersion(self.spec.family, sums, sol)
         return solver.step_in_se(self.beta, sol.beta, sol.inv_info, phi)
 
     # -- one scan ------------------------------------------------------------------------------
@@ -328,6 +326,16 @@ class IrlsSolver:
         if track:
             null_track.update(out.extras)
         return out
+
+
+def working_dispersion(family: Family, sums: solver.Sums, sol: solver.Solution) -> float:
+    """The dispersion that measures a step in standard errors while IRLS runs: Pearson's
+    chi-squared of the scan over its rows less the coefficients, at least one (a sample or
+    an early scan may have no rows to spare)."""
+    rank = int((~sol.aliased).sum())
+    return solver.dispersion(
+        sums.pearson, max(sums.n_weighted - rank, 1.0), family.dispersion_fixed
+    )
 
 
 def _halving_failure(spec: ModelSpec, sums: solver.Sums) -> str:

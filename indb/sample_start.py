@@ -15,7 +15,7 @@ from indb import solver
 from indb.design import Design
 from indb.errors import EngineError, SpecError, UnsupportedError
 from indb.fitrun import FitRun
-from indb.irls import irls
+from indb.irls import irls, working_dispersion
 from indb.nullmodel import NullTrack
 from indb.plan.context import PlanContext
 from indb.plan.sample import sample_rows_query
@@ -102,9 +102,7 @@ def sample_start(
     # drifting to the boundary there: standard error above 1 on the link scale, per unit of
     # a 0/1 column or per standard deviation of a value) starts at 0, like an aliased one:
     # a boundary estimate such as -30 for an empty cell would start the full table far off.
-    phi = 1.0
-    if not ctx.spec.family.dispersion_fixed:
-        phi = state.sums.pearson / max(state.sums.n_weighted - int((~sol.aliased).sum()), 1.0)
+    phi = working_dispersion(ctx.spec.family, state.sums, sol)
     se = np.sqrt(np.clip(np.diag(sol.inv_info) * phi, 0.0, None))
     beta = np.where(se < SAMPLE_MAX_SE, sol.beta, 0.0)
     scans = sum(1 + r.step_halvings for r in run.log[log_size:])

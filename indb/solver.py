@@ -180,6 +180,14 @@ def step_in_se(old: np.ndarray, new: np.ndarray, inv_info: np.ndarray, dispersio
     return float(np.max(np.abs(new[ok] - old[ok]) / np.sqrt(var[ok])))
 
 
+def dispersion(pearson: float, df_resid: float, fixed: bool) -> float:
+    """The dispersion phi: 1 where the family fixes it (``fixed``), otherwise Pearson's
+    chi-squared over the residual degrees of freedom (NaN when none are left)."""
+    if fixed:
+        return 1.0
+    return pearson / df_resid if df_resid > 0 else math.nan
+
+
 def relative_change(new: float, old: float) -> float:
     """|new - old| / (|new| + 0.1): the usual deviance convergence measure."""
     return abs(new - old) / (abs(new) + 0.1)
