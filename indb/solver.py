@@ -32,7 +32,7 @@ class Sums:
     cell_keys: list[tuple[str, ...]] | None = None
 
 
-def _in_cell_order(design: Design, cells: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+def in_cell_order(design: Design, cells: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     """The grouped rows sorted by cell: engines return groups in any order (DuckDB's order
     varies with thread timing), and floating-point sums over them must not, so that the same
     data give the same bits."""
@@ -48,7 +48,7 @@ def _in_cell_order(design: Design, cells: dict[str, np.ndarray]) -> dict[str, np
 
 def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...] = ()) -> Sums:
     """Build X'WX and X'Wz (standardized design) from per-cell sums of the IRLS scan."""
-    cells = _in_cell_order(design, cells)
+    cells = in_cell_order(design, cells)
     rows = len(cells["n"])
     p = design.p
     ind = np.ones((rows, p))
@@ -66,22 +66,22 @@ def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...
     keys = sorted(by_value)
     for ia, a in enumerate(keys):
         ca = by_value[a]
-        xtwz[ca] = ind[:, ca].T @ _f(cells[f"t_{a}"])
+        xtwz[ca] = ind[:, ca].T @ zero_nulls(cells[f"t_{a}"])
         for b in keys[ia:]:
             cb = by_value[b]
-            s = _f(cells[f"s_{min(a, b)}_{max(a, b)}"])
+            s = zero_nulls(cells[f"s_{min(a, b)}_{max(a, b)}"])
             block = (ind[:, ca] * s[:, None]).T @ ind[:, cb]
             xtwx[np.ix_(ca, cb)] = block
             xtwx[np.ix_(cb, ca)] = block.T
     return Sums(
         xtwx=xtwx,
         xtwz=xtwz,
-        deviance=float(_f(cells["dev"]).sum()),
-        pearson=float(_f(cells["pear"]).sum()),
-        bad=int(_f(cells["bad"]).sum()),
-        n=int(_f(cells["n"]).sum()),
-        n_weighted=float(_f(cells["nw"]).sum()),
-        extras={k: float(_f(cells[k]).sum()) for k in extra},
+        deviance=float(zero_nulls(cells["dev"]).sum()),
+        pearson=float(zero_nulls(cells["pear"]).sum()),
+        bad=int(zero_nulls(cells["bad"]).sum()),
+        n=int(zero_nulls(cells["n"]).sum()),
+        n_weighted=float(zero_nulls(cells["nw"]).sum()),
+        extras={k: float(zero_nulls(cells[k]).sum()) for k in extra},
         cells=rows,
         cell_keys=(
             list(zip(*(cells[f.alias].tolist() for f in design.factors), strict=True))
@@ -91,7 +91,8 @@ def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...
     )
 
 
-def _f(a: np.ndarray) -> np.ndarray:
+def zero_nulls(a: np.ndarray) -> np.ndarray:
+    """A fetched column of sums as floats, with NULL (a SUM over no rows) as 0."""
     return np.nan_to_num(np.asarray(a, dtype=float), nan=0.0)
 
 
