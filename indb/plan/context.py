@@ -134,7 +134,6 @@ class PlanContext:
 # Names of columns that sit next to the source's own columns (SELECT *, or the key columns)
 # carry the reserved prefix, which resolve_inputs refuses in source columns: no collision.
 KEPT = RESERVED_PREFIX + "kept"
-FREQ = RESERVED_PREFIX + "freq"
 ROWCOUNT = RESERVED_PREFIX + "rows"
 
 

@@ -15,7 +15,6 @@ Stable aliases keep the generated text reproducible for snapshot tests.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 
 import numpy as np
@@ -455,13 +454,3 @@ def response_histogram_query(ctx: PlanContext, design: Design) -> exp.Select:
         rows,
         group_by=[S.col("y")],
     )
-
-
-def offset_null_mu(ctx: PlanContext) -> Expr:
-    """Per-row null mean without intercept: the inverse link of the offset (clamped)."""
-    fam, link = ctx.spec.family, ctx.spec.link
-    return fam.clamp_mu_sql(link.inverse_sql(S.col("off")))
-
-
-def finite(x: float) -> bool:
-    return math.isfinite(x)
