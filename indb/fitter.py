@@ -33,8 +33,6 @@ from indb.sample_start import sample_start, start_from
 from indb.spec import ModelSpec
 from indb.theta import estimate_theta
 
-# -- the whole fit -----------------------------------------------------------------------------
-
 
 def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
     """Pre-fit scans (read only): columns, knots, the profile (on the compressed route, the

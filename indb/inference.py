@@ -36,6 +36,9 @@ def result(
     t_start,
     report_spec,
 ) -> FitResult:
+    """The :class:`~indb.results.FitResult` of a converged (or stopped) IRLS ``state``:
+    estimates back on the original scale, Wald inference with the dispersion, warnings
+    about aliased columns and separation, log-likelihood, AIC and BIC, the fingerprint."""
     spec = report_spec
     fam = spec.family
     sol = state.solution

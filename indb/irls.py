@@ -27,6 +27,8 @@ STALL_HALVINGS = 2
 
 @dataclass(frozen=True)
 class IrlsState:
+    """Where IRLS stopped: the last scanned coefficients, that scan's sums and update."""
+
     beta: np.ndarray
     sums: solver.Sums
     solution: solver.Solution
@@ -34,9 +36,6 @@ class IrlsState:
     iterations: int
     #: stopped early: step-halving could not lower the deviance measurably (see irls)
     stalled: bool = False
-
-
-# -- IRLS ------------------------------------------------------------------------------------
 
 
 def _fallback_beta(ctx: PlanContext, design: Design, ybar: float) -> np.ndarray:

@@ -78,6 +78,7 @@ def null_start(ctx: PlanContext, summary: Summary) -> float:
 
 
 def intercept_only(design: Design) -> Design:
+    """The design of the null model: the intercept alone."""
     return Design(
         intercept=True,
         factors=(),

@@ -26,10 +26,9 @@ from indb.plan.profile import (
 from indb.spec import ModelSpec
 from indb.splines import knot_quantiles
 
-# -- pre-fit ---------------------------------------------------------------------------------
-
 
 def describe(spec: ModelSpec, engine: Engine) -> Inputs:
+    """The source's columns and types (described, not run), checked against the spec."""
     d = engine.dialect
     probe = PlanContext(spec, _empty_inputs(spec), d)
     try:
@@ -103,6 +102,7 @@ def _what(label: str) -> str:
 
 
 def knots(ctx: PlanContext, run: FitRun) -> dict[str, tuple[float, ...]]:
+    """Quantile knots of each spline column over the kept rows (one scan)."""
     if not ctx.inputs.spline_columns:
         return {}
     row = run.one_row(knots_query(ctx))
@@ -127,6 +127,9 @@ def knots(ctx: PlanContext, run: FitRun) -> dict[str, tuple[float, ...]]:
 
 @dataclass(frozen=True)
 class Summary:
+    """What the profile tells the fit: row counts and weighted sums, the standardized values,
+    the data-only log-likelihood sums and the fingerprint's column sums."""
+
     n: int
     sum_f: float
     sum_fpw: float
@@ -145,6 +148,8 @@ class Summary:
 def summarize(
     ctx: PlanContext, row: dict, values: tuple[Value, ...], shifts: dict[str, float]
 ) -> Summary:
+    """The profile row checked (domain, weights, a response with both outcomes, constant
+    predictors) and turned into a :class:`Summary`; values centred and scaled."""
     n = int(row["n_kept"])
     for i, (stem, _) in enumerate(domain_checks(ctx)):
         bad = int(row[f"chk_{i}"] or 0)
