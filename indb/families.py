@@ -367,6 +367,9 @@ class InverseGaussian(Family):
 class Tweedie(Family):
     """Tweedie with variance power p: V(mu) = mu^p (p = 0 or p >= 1).
 
+    Domain: y >= 0 and mu > 0 for 1 <= p < 2, y > 0 for p >= 2; p = 0 is the normal
+    distribution, with any real response and mean.
+
     d = 2 [ y^(2-p) / ((1-p)(2-p)) - y mu^(1-p) / (1-p) + mu^(2-p) / (2-p) ], with the
     Poisson (p = 1) and gamma (p = 2) limits. The log-likelihood has no closed form (a series
     density), so it is not reported.
@@ -387,6 +390,10 @@ class Tweedie(Family):
             )
         if p >= 2:
             object.__setattr__(self, "y_min_strict", True)
+        if p == 0:
+            # power 0 is the normal distribution: any real response, any real mean
+            object.__setattr__(self, "y_min", None)
+            object.__setattr__(self, "positive_mean", False)
 
     def variance_sql(self, mu):
         return S.power(mu, S.num(self.var_power))

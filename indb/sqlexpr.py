@@ -184,6 +184,10 @@ def abs_(a: Expr) -> Expr:
     return exp.Abs(this=a)
 
 
+def floor_(a: Expr) -> Expr:
+    return exp.Floor(this=a)
+
+
 def fn(name: str, *args: Expr) -> Expr:
     """A plain function call by (engine-neutral) name, e.g. ``tan``, ``atan``."""
     return exp.Anonymous(this=name.upper(), expressions=list(args))
