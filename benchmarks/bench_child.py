@@ -63,8 +63,9 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
             self.executed: list[tuple[str, float]] = []  # the adapter runs SETs on start
             # DuckDB's own memory cap: the table (up to 8 GB of Parquet at 1e8 rows) never
             # has to fit; spill files go to the temp directory
-            super().__init__(None, memory_limit=job.get("memory_limit"),
-                             temp_directory=job.get("temp_directory"))
+            super().__init__(
+                None, memory_limit=job.get("memory_limit"), temp_directory=job.get("temp_directory")
+            )
             self.calls: list[tuple[str, float]] = []
 
         def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
@@ -128,9 +129,9 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
         "other_query_seconds": sum(s for _, s in engine.calls)
         - sum(s for _, s in gram)
         + executed_other,
-        "other_queries": len(engine.calls) - len(gram) + sum(
-            1 for sql, _ in engine.executed if not sql.startswith(("SET", "DROP"))
-        )
+        "other_queries": len(engine.calls)
+        - len(gram)
+        + sum(1 for sql, _ in engine.executed if not sql.startswith(("SET", "DROP")))
         - (1 if sample_copy else 0),
         "terms": res.terms,
         "params": [float(v) for v in res.params],

@@ -295,8 +295,13 @@ def bench_size(
         if distinct is not None:
             results[-1]["distinct_design_rows"] = distinct
         log(f"  {model.key}: floor {floor:.3f} s")
-        job = {"tool": "indb", "model": model.key, "path": path,
-               "memory_limit": MEMORY_LIMIT, "temp_directory": SPILL_DIR}
+        job = {
+            "tool": "indb",
+            "model": model.key,
+            "path": path,
+            "memory_limit": MEMORY_LIMIT,
+            "temp_directory": SPILL_DIR,
+        }
         r = run_child(job, args.indb_timeout, args.pythonpath)
         results.append({**base, "tool": "indb", **r})
         log(f"  {model.key}: indb {r.get('status')} {_secs(r)}")
@@ -427,8 +432,23 @@ def write_report(
     print(report.text_table())
     for line in report.sanity_lines():
         print(line)
+    text = report.markdown()
+    kept = _levels_section(out)
     with open(out, "w") as fh:
-        fh.write(report.markdown())
+        fh.write(text if not kept else text.rstrip("\n") + "\n\n" + kept)
+
+
+def _levels_section(path: str) -> str:
+    """The section ``bench_levels.py`` wrote into ``path`` (kept across rewrites)."""
+    from bench_levels import BEGIN, END
+
+    if not os.path.exists(path):
+        return ""
+    with open(path) as fh:
+        old = fh.read()
+    if BEGIN not in old or END not in old:
+        return ""
+    return BEGIN + old.split(BEGIN, 1)[1].split(END, 1)[0] + END + "\n"
 
 
 def report_only(raw: str, out: str) -> int:

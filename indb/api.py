@@ -153,8 +153,18 @@ def fit(
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)
-    engine = connect(db, memory_limit=memory_limit, temp_directory=temp_directory, threads=threads)
+    engine = connect(
+        db,
+        # without write-back nothing is written: a database file opens read-only, so a fit
+        # also works on a read-only filesystem or a file without write permission
+        read_only=name is None,
+        memory_limit=memory_limit,
+        temp_directory=temp_directory,
+        threads=threads,
+    )
     try:
+        if name is not None:  # names the engine itself uses are refused before the fit
+            Registry(engine, registry_schema).check_model_name(name)
         result = fit_spec(spec, engine, progress)
         if name is not None:
             # a fit that did not converge is recorded but never made live on its own (as
@@ -230,31 +240,36 @@ def scoring_sql(
 ) -> str:
     """CREATE VIEW text that scores a stored model version, rendered for ``dialect``.
 
-    ``source`` defaults to the model's scoring source; ``view_name`` to the model name.
+    ``source`` defaults to the model's scoring source; ``view_name`` to the model name. The
+    stored offset is read in the dialect it was written in and carried over with its
+    meaning; what cannot be raises :class:`~indb.errors.UnsupportedError`.
     """
     from indb.dialect import dialect_for
-    from indb.spec import Source
 
     target = dialect_for(dialect)
-    engine = connect(db)
+    engine = connect(db, read_only=True)
     try:
         reg = Registry(engine, registry_schema)
-        model = reg.model(name)
-        result = reg.load(name, version)
-        src = Source.parse(source or model["score_source"])
-        rel = target.relation(src)
-        use_intervals = bool(model.get("intervals")) if intervals is None else intervals
-        query = W.scoring_query(result, target, rel, intervals=use_intervals)
-        return target.render(W.create_view(None, view_name or name, query)) + ";"
+        sql = reg.scoring_sql(
+            name,
+            target,
+            version=version,
+            source=source,
+            intervals=intervals,
+            view_name=view_name or name,
+        )
+        return sql + ";"
     finally:
         if engine is not db:
             engine.close()
 
 
 def with_deployment(result: FitResult, outcome: SaveOutcome) -> FitResult:
-    """Attach where a saved result lives (registry version, scoring view, mean column)."""
+    """Attach where a saved result lives (registry version, scoring view, mean column), and
+    the registry's warnings about deployment settings it did not apply."""
     return dataclasses.replace(
         result,
+        warnings=(*result.warnings, *outcome.warnings),
         deployment={
             "model": outcome.model,
             "version": outcome.version,
@@ -315,7 +330,9 @@ def dry_run(
     given = {"source": source, "response": response, "family": family, "link": link}
     O.check_options({**given, **options}, {**FIT_ARGUMENTS, **SPEC_OPTIONS, **ENGINE_OPTIONS})
     spec = ModelSpec.build(source, response, family, link, **spec_kw)
-    engine = connect(db, **{k: v for k, v in options.items() if k in ENGINE_OPTIONS})
+    engine = connect(
+        db, read_only=True, **{k: v for k, v in options.items() if k in ENGINE_OPTIONS}
+    )
     try:
         return plan_spec(spec, engine)
     finally:
@@ -323,7 +340,12 @@ def dry_run(
             engine.close()
 
 
-def registry(db: Any = None, schema: str = DEFAULT_SCHEMA) -> Registry:
-    """A registry handle on ``db`` (the caller closes ``registry.engine`` when done)."""
-    engine = db if isinstance(db, Engine) else connect(db)
+def registry(db: Any = None, schema: str = DEFAULT_SCHEMA, *, read_only: bool = False) -> Registry:
+    """A registry handle on ``db`` (the caller closes ``registry.engine`` when done).
+
+    ``read_only=True`` opens a DuckDB file read-only: listing, loading and comparing work,
+    promote and drop fail. On a connection of the caller's, closing ``registry.engine``
+    puts back the settings indb changed on it.
+    """
+    engine = db if isinstance(db, Engine) else connect(db, read_only=read_only)
     return Registry(engine, schema)

@@ -43,7 +43,7 @@ from indb.registry import DEFAULT_SCHEMA, Registry
 from indb.report import render_json, render_report
 from indb.results import FitResult, IterationRecord
 from indb.retrain import EXIT_HELD, RetrainOutcome, retrain
-from indb.spec import Source
+from indb.spec import MAX_LEVELS_LIMIT, Source
 from indb.specfile import SpecFile, load_spec_file
 
 __all__ = ["main", "EXIT_CODES"]
@@ -254,7 +254,8 @@ database_option = click.option(
     metavar="DB",
     default=None,
     help="DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
-    "out to work in a fresh in-memory DuckDB database.",
+    "out to work in a fresh in-memory DuckDB database. A DuckDB file is opened read-only "
+    "unless --name writes to it.",
 )
 
 model_options = _apply(
@@ -358,7 +359,8 @@ model_options = _apply(
         "max_levels",
         type=int,
         default=None,
-        help="Most levels a categorical column may have." + _default("max_levels"),
+        help=f"Most levels a categorical column may have (at most {MAX_LEVELS_LIMIT:,})."
+        + _default("max_levels"),
     ),
     click.option(
         "--confidence",
@@ -400,7 +402,7 @@ registry_database_option = click.option(
     metavar="DB",
     required=True,
     help="Where the model registry lives: a DuckDB database file, or postgresql://..., "
-    "spark:local[N], sc://host:port.",
+    "spark:local[N], sc://host:port. Commands that only read open a DuckDB file read-only.",
 )
 
 execution_options = _apply(
@@ -740,9 +742,11 @@ def _load_spec(path: str, command: str, *, dry_run: bool) -> SpecFile:
 
 
 @contextmanager
-def _open_registry(db: str, schema: str | None) -> Iterator[Registry]:
+def _open_registry(db: str, schema: str | None, *, writes: bool = False) -> Iterator[Registry]:
+    """The registry of ``db``; opened read-only unless the command ``writes`` to it (so the
+    reading commands work on a read-only filesystem or a file without write permission)."""
     _check_database_path(db, hint="the registry lives in the file a named fit wrote to")
-    reg = open_registry(db, schema or DEFAULT_SCHEMA)
+    reg = open_registry(db, schema or DEFAULT_SCHEMA, read_only=not writes)
     try:
         yield reg
     finally:
@@ -754,10 +758,6 @@ def _view_label(model_row: dict[str, Any]) -> str:
     return f"{schema}.{model_row['view_name']}" if schema else str(model_row["view_name"])
 
 
-def _relation(dialect: Dialect, text: str) -> Any:
-    return dialect.relation(Source.parse(text))
-
-
 def _dialect(name: str) -> Dialect:
     if name.strip().lower() not in (*SCORING_DIALECTS, "postgresql"):
         raise SpecError(
@@ -765,28 +765,6 @@ def _dialect(name: str) -> Dialect:
             f"{', '.join(SCORING_DIALECTS)}"
         )
     return dialect_for(name)
-
-
-def _scoring_sql(
-    result: FitResult,
-    model_row: dict[str, Any],
-    dialect: Dialect,
-    source: str | None,
-    intervals: bool | None,
-) -> str:
-    text = source or model_row.get("score_source")
-    if not text:
-        raise SpecError(
-            f"model {model_row['model_name']!r} has no scoring source; give --source SRC"
-        )
-    query = writeback.scoring_query(
-        result,
-        dialect,
-        _relation(dialect, text),
-        intervals=bool(model_row.get("intervals")) if intervals is None else intervals,
-    )
-    view = writeback.create_view(model_row.get("view_schema"), model_row["view_name"], query)
-    return dialect.render(view)
 
 
 def _compare_text(cmp: dict[str, Any]) -> str:
@@ -1158,19 +1136,33 @@ def compare_command(
 @main.command("promote", short_help="Make a version live (also the roll-back).")
 @registry_database_option
 @registry_schema_option
+@click.option(
+    "--view-schema",
+    "view_schema",
+    default=None,
+    metavar="S",
+    help="Move the scoring view and macro to schema S (the old ones are dropped in the same "
+    "transaction); default: where they are now.",
+)
 @output_options
 @click.argument("name")
 @click.argument("version", type=int)
 def promote_command(
-    name: str, version: int, db: str, registry_schema: str | None, as_json: bool, quiet: bool
+    name: str,
+    version: int,
+    db: str,
+    registry_schema: str | None,
+    view_schema: str | None,
+    as_json: bool,
+    quiet: bool,
 ) -> None:
     """Make VERSION of model NAME live: its scoring view and macro serve it from now on.
 
     Promoting an earlier version is the roll-back.
     """
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         previous = reg.model(name)["live_version"]
-        reg.promote(name, version)
+        reg.promote(name, version, view_schema=view_schema)
         view = _view_label(reg.model(name))
     if as_json:
         click.echo(
@@ -1199,7 +1191,7 @@ def drop_command(
 ) -> None:
     """Drop VERSION of model NAME (its rows stay for audit; the live version cannot be
     dropped)."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         reg.drop(name, version)
     if as_json:
         click.echo(_dumps({"model": name, "version": version, "status": "dropped"}))
@@ -1251,8 +1243,14 @@ def scoring_sql_command(
         target = _dialect(dialect)
         with _open_registry(db, registry_schema) as reg:
             row = reg.model(name)
-            result = reg.load(name, version)
-        sql = _scoring_sql(result, row, target, source, intervals)
+            sql = reg.scoring_sql(
+                name,
+                target,
+                version=version,
+                source=source,
+                intervals=intervals,
+                view_schema=row.get("view_schema"),
+            )
     if as_json:
         chosen = row["live_version"] if version is None else version
         click.echo(

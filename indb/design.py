@@ -9,9 +9,13 @@ Plain data only; the SQL for these objects is built by :mod:`indb.plan`.
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+
+import numpy as np
 
 from indb import sqlexpr as S
 from indb.errors import SpecError
@@ -69,6 +73,93 @@ class Value:
     centered: bool
     center: float = 0.0
     scale: float = 1.0
+
+
+@dataclass(frozen=True)
+class Scaling:
+    """How a fit rescales its data internally, and how to map its numbers back.
+
+    The IRLS scans run on y' = (y - ``shift``) * ``factor`` with prior weights
+    pw' = pw * ``weight_factor`` and frequency weights f' = f * ``freq_factor``; every
+    factor is a power of two, so the rescaling itself rounds nothing. For a power-variance
+    family (V(mu) = mu^p) the unit deviance is homogeneous, d(s y, s mu) = s^(2-p) d(y, mu),
+    so deviance, Pearson's chi-squared and the dispersion of the rescaled fit are the
+    original ones times a power of two, d = 2^``log2_deviance_factor`` (:meth:`rescale`,
+    :meth:`unscale`), and the information matrix of the rescaled coefficients is the
+    original one times coef_factor^2 / d (fixed-dispersion families included: their
+    dispersion 1 becomes d).
+
+    The coefficients map as beta' = ``coef_factor`` * beta (a power link eta = mu^lambda:
+    ``coef_factor`` = factor^lambda, and the offset is multiplied by it too), except the
+    intercept, which also absorbs the shift (identity link: -factor * shift) and, for a log
+    link, ln(factor) (``log_shift``). Without an intercept neither can be absorbed, so the
+    fitter then leaves the response alone (see :func:`indb.magnitudes.response_scaling`).
+    """
+
+    shift: float = 0.0
+    factor: float = 1.0
+    coef_factor: float = 1.0
+    log_shift: float = 0.0
+    weight_factor: float = 1.0
+    freq_factor: float = 1.0
+    variance_power: float = 0.0
+
+    @property
+    def response_changed(self) -> bool:
+        return self.shift != 0.0 or self.factor != 1.0
+
+    @property
+    def identity(self) -> bool:
+        return not self.response_changed and self.weight_factor == self.freq_factor == 1.0
+
+    @property
+    def log2_deviance_factor(self) -> float:
+        """log2(deviance_factor), exact (an integer for integer p) where the factor itself
+        would over- or underflow (a response near 1e200 squared)."""
+        resp = (2.0 - self.variance_power) * math.log2(self.factor) if self.factor != 1.0 else 0.0
+        return resp + math.log2(self.weight_factor) + math.log2(self.freq_factor)
+
+    def rescale(self, x: float) -> float:
+        """The inverse of :meth:`unscale`: a source-scale deviance on the fit's scale."""
+        e = self.log2_deviance_factor
+        if e == 0.0:
+            return x
+        k = round(e)
+        with np.errstate(over="ignore", under="ignore"):
+            return float(np.ldexp(x, k) * 2.0 ** (e - k))
+
+    def unscale(self, x: float) -> float:
+        """A deviance, Pearson sum or dispersion of the rescaled fit on the source's scale
+        (infinite only when the true value exceeds the largest double)."""
+        e = self.log2_deviance_factor
+        if e == 0.0:
+            return x
+        k = round(e)
+        with np.errstate(over="ignore", under="ignore"):
+            return float(np.ldexp(x, -k) * 2.0 ** (k - e))
+
+    def for_folded_rows(self) -> Scaling:
+        """The part still to apply on folded rows: their response is rescaled already."""
+        return dataclasses.replace(self, shift=0.0, factor=1.0)
+
+    def to_fit(self, beta: np.ndarray, intercept: bool) -> np.ndarray:
+        """Standardized coefficients of the original problem -> of the rescaled one."""
+        out = np.asarray(beta, float) * self.coef_factor
+        if intercept and out.size:
+            out[0] += self.log_shift - self.factor * self.shift
+        return out
+
+    def to_original(self, beta: np.ndarray, intercept: bool) -> np.ndarray:
+        """Standardized coefficients of the rescaled problem -> of the original one."""
+        out = np.asarray(beta, float).copy()
+        if intercept and out.size:
+            # the shift is added after the division: (b0' / factor) + shift keeps the
+            # digits of the small b0' that centring the response was for
+            out[0] -= self.log_shift
+            out[0] = out[0] / self.coef_factor + self.shift
+            out[1:] = out[1:] / self.coef_factor
+            return out
+        return out / self.coef_factor
 
 
 @dataclass(frozen=True)
@@ -478,3 +569,114 @@ def factor_sets(design_terms: Sequence[TermSpec], factors: Sequence[str]) -> lis
 
 def all_level_tuples(factors: Sequence[Factor]) -> list[tuple[str, ...]]:
     return list(itertools.product(*(f.levels for f in factors)))
+
+
+# -- cells: rows of the grouped scans ------------------------------------------------------
+
+
+def level_codes(levels: Sequence[str], values: np.ndarray) -> np.ndarray:
+    """Position of each cell value in ``levels`` (ascending text); a value that is not a
+    level (NULL, or a level the design does not know) gets a code past the levels, in
+    ascending text order with NULL last, so that sorting by code is deterministic."""
+    lut = {lv: i for i, lv in enumerate(levels)}
+    codes = np.array([lut.get(v, -1) for v in values.tolist()], dtype=np.int64)
+    unknown = codes < 0
+    if unknown.any():
+        others = sorted({v for v in np.asarray(values)[unknown]}, key=lambda v: (v is None, str(v)))
+        extra = {v: len(levels) + i for i, v in enumerate(others)}
+        codes[unknown] = [extra[v] for v in np.asarray(values)[unknown]]
+    return codes
+
+
+@dataclass(frozen=True)
+class ColumnGroup:
+    """Design columns that share their factors and their value: indicators of distinct
+    level combinations of the same factors, so no row has more than one of them (their
+    block of X'WX is diagonal)."""
+
+    factors: tuple[int, ...]
+    value: int
+    columns: tuple[int, ...]
+
+
+def column_groups(design: Design) -> list[ColumnGroup]:
+    """The design's columns grouped by (factors, value), in order of first column."""
+    return [g for g, _ in _lookups(design)]
+
+
+def cell_columns(design: Design, codes: Sequence[np.ndarray]) -> list[np.ndarray]:
+    """For each of :func:`column_groups`, the design column each cell belongs to (-1 for
+    none: a reference level, or a combination the design has no column for).
+
+    ``codes`` are the cells' :func:`level_codes`, one array per factor of the design.
+    """
+    n = len(codes[0]) if codes else 1
+    out: list[np.ndarray] = []
+    for g, look in _lookups(design):
+        if not g.factors:
+            out.append(np.full(n, g.columns[0], dtype=np.int64))
+        elif look is None:
+            out.append(_cell_columns_by_tuple(design, g, codes))
+        else:
+            sizes, table = look
+            # one integer per level combination (mixed radix; values that are not levels
+            # share the top digit, which no column has)
+            key = np.zeros(n, dtype=np.int64)
+            for fi, size in zip(g.factors, sizes, strict=True):
+                key = key * size + np.minimum(codes[fi], size - 1)
+            out.append(table[key])
+    return out
+
+
+#: designs whose lookups were built last (by id, holding the design so the id stays unique)
+_LOOKUP_CACHE: dict[int, tuple[Design, list]] = {}
+#: most level combinations a group's lookup table holds (int64 each); more go by tuple
+_MAX_TABLE = 1 << 22
+
+
+def _lookups(design: Design) -> list[tuple[ColumnGroup, tuple[list[int], np.ndarray] | None]]:
+    """Column groups and, per factor group, a table from mixed-radix level key to column
+    (-1 where the design has none); built once per design, since every IRLS scan needs it."""
+    hit = _LOOKUP_CACHE.get(id(design))
+    if hit is not None and hit[0] is design:
+        return hit[1]
+    grouped: dict[tuple[tuple[int, ...], int], list[int]] = {}
+    for j, c in enumerate(design.columns):
+        grouped.setdefault((c.factors, c.value), []).append(j)
+    out: list[tuple[ColumnGroup, tuple[list[int], np.ndarray] | None]] = []
+    for (f, v), cols in grouped.items():
+        g = ColumnGroup(f, v, tuple(cols))
+        sizes = [len(design.factors[fi].levels) + 1 for fi in f]
+        if not f or math.prod(sizes) > _MAX_TABLE:
+            out.append((g, None))
+            continue
+        key = np.zeros(len(cols), dtype=np.int64)
+        for pos_in_col, (fi, size) in enumerate(zip(f, sizes, strict=True)):
+            pos = {lv: i for i, lv in enumerate(design.factors[fi].levels)}
+            key = key * size + np.array(
+                [pos[design.columns[j].levels[pos_in_col]] for j in cols], dtype=np.int64
+            )
+        table = np.full(math.prod(sizes), -1, dtype=np.int64)
+        table[key] = cols
+        out.append((g, (sizes, table)))
+    if len(_LOOKUP_CACHE) >= 8:
+        _LOOKUP_CACHE.clear()
+    _LOOKUP_CACHE[id(design)] = (design, out)
+    return out
+
+
+def _cell_columns_by_tuple(
+    design: Design, g: ColumnGroup, codes: Sequence[np.ndarray]
+) -> np.ndarray:
+    """:func:`cell_columns` for a group with too many level combinations for a table."""
+    where: dict[tuple[int, ...], int] = {}
+    for j in g.columns:
+        c = design.columns[j]
+        where[
+            tuple(
+                design.factors[fi].levels.index(lv)
+                for fi, lv in zip(c.factors, c.levels, strict=True)
+            )
+        ] = j
+    rows = zip(*(codes[fi].tolist() for fi in g.factors), strict=True)
+    return np.fromiter((where.get(k, -1) for k in rows), dtype=np.int64, count=len(codes[0]))

@@ -69,7 +69,16 @@ class Dialect:
             if node.share >= 1.0:
                 return S.true()
             return self.row_pick(list(node.expressions), node.share)
+        if isinstance(node, S.IEEE_NODES):
+            return self.ieee(node)
         return node
+
+    def ieee(self, node: exp.Expression) -> exp.Expression:
+        """An ``Ieee*`` node (see :mod:`indb.sqlexpr`) as SQL that gives IEEE-754's NaN and
+        infinities where this engine would raise or return NULL."""
+        raise UnsupportedError(
+            f"engine {self.name!r} has no IEEE-754 translation for {type(node).__name__}"
+        )
 
     # -- translations (override per engine) --------------------------------------------------
     def log_gamma(self, x: exp.Expression) -> exp.Expression:
@@ -101,6 +110,16 @@ class Dialect:
     def file_scan(self, path: str) -> exp.Expression:
         raise UnsupportedError(f"engine {self.name!r} cannot read files directly: {path}")
 
+    # -- how the engine evaluates a user's expression (read by indb.portable) ---------------
+    #: ``/`` of two integers: "exact" (true division, a double) or "truncate" (toward zero)
+    integer_slash = "exact"
+    #: the integer-division operator (DuckDB ``//``, Spark ``DIV``, PostgreSQL ``div()``) with
+    #: a non-integer operand: "exact" (plain division) or "truncate"
+    int_div_fraction = "truncate"
+    #: ln and log of x <= 0, and division by zero: "ieee" (NaN, +/-inf), "error" or "null"
+    log_nonpositive = "ieee"
+    zero_division = "ieee"
+
     # -- write-back ---------------------------------------------------------------------------
     supports_macros = False
     #: registry tables may declare PRIMARY KEY constraints (a second writer of the same
@@ -111,6 +130,9 @@ class Dialect:
     supports_update = True
     #: storage clause of registry tables (``USING <format>``), for engines that need one
     table_format: str | None = None
+    #: the engine treats quoted names that differ only in case as one object (DuckDB,
+    #: Spark); PostgreSQL keeps "Mart" and "mart" apart
+    names_ignore_case = True
 
     def replace_view(
         self, create: exp.Create, columns: Sequence[str], existing: Sequence[str] | None
@@ -229,6 +251,48 @@ class Dialect:
             raise SpecError("the source query must be a single SELECT (or WITH ... SELECT)")
         return exp.Subquery(this=tree)
 
+    def query_text(self, tree: exp.Expression) -> str:
+        """A user's query as text again, after indb changed its table names.
+
+        Rendered by sqlglot alone: indb's own translations (such as PostgreSQL's casts of
+        float literals) are for the SQL indb generates, not for what the user wrote.
+        """
+        return tree.sql(dialect=self.sqlglot_name)
+
+    # -- engine catalog objects ----------------------------------------------------------------
+    def reserved_objects_query(self, view: str, macro: str | None) -> exp.Query | None:
+        """Built-in objects of the engine (rows: ``name``) that a scoring view named ``view``
+        or a macro named ``macro`` would hide or be hidden by; None when the engine has none
+        in the schemas names are looked up in."""
+        return None
+
+
+def table_references(query: exp.Expression) -> list[exp.Table]:
+    """The named tables and views a query reads: not its CTEs, derived tables or table
+    functions (``read_parquet(...)``, ``range(...)``), each node once."""
+    from sqlglot.optimizer.scope import traverse_scope
+
+    seen: dict[int, exp.Table] = {}
+    for scope in traverse_scope(query):
+        for source in scope.sources.values():
+            # a CTE or derived table is a Scope here; a table function has no identifier
+            if isinstance(source, exp.Table) and isinstance(source.this, exp.Identifier):
+                seen.setdefault(id(source), source)
+    return list(seen.values())
+
+
+def table_parts(table: exp.Table) -> list[str]:
+    """[catalog, schema, name] of a table reference, without the parts it leaves out."""
+    return [p for p in (table.catalog, table.db, table.name) if p]
+
+
+def set_table_parts(table: exp.Table, parts: Sequence[str]) -> None:
+    """Point a table reference at ``parts`` (1 to 3 names), keeping its alias."""
+    ids = [S.ident(p) for p in parts]
+    table.set("this", ids[-1])
+    table.set("db", ids[-2] if len(ids) >= 2 else None)
+    table.set("catalog", ids[-3] if len(ids) == 3 else None)
+
 
 class DuckDBDialect(Dialect):
     """DuckDB: lgamma, isfinite, read_parquet/read_csv_auto; IEEE doubles (1/0 = inf)."""
@@ -254,6 +318,25 @@ class DuckDBDialect(Dialect):
 
     def quantile(self, x, q):
         return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
+
+    # DuckDB's `//` divides integers (truncating) and divides anything else exactly
+    # (7.5 // 2 = 3.75); its `/` is true division, and ln, sqrt, exp, pow and division by
+    # zero give IEEE-754's NaN and infinities (checked in tests/test_portable.py).
+    int_div_fraction = "exact"
+
+    def ieee(self, node):
+        a = node.this
+        if isinstance(node, S.IeeeLn):
+            return exp.Ln(this=a)
+        if isinstance(node, S.IeeeLog10):
+            return exp.Anonymous(this="LOG10", expressions=[a])
+        if isinstance(node, S.IeeeSqrt):
+            return exp.Sqrt(this=a)
+        if isinstance(node, S.IeeeExp):
+            return exp.Exp(this=a)
+        if isinstance(node, S.IeeePow):
+            return exp.Pow(this=a, expression=node.expression)
+        return S.div(a, node.expression)  # IeeeDiv
 
     supports_macros = True
 
@@ -299,6 +382,32 @@ class DuckDBDialect(Dialect):
         )
         return exp.union(q, macros, distinct=False)
 
+    def reserved_objects_query(self, view, macro):
+        # DuckDB looks unqualified names up in the temp catalog, then the database's own
+        # schemas, then the system catalog's main and pg_catalog schemas: a view named
+        # sqlite_master in main would hide the built-in view of that name from every query,
+        # and a macro in main hides a built-in function (https://duckdb.org/docs/sql/statements/set#search_path)
+        def internal(table_fn: str, column: str, name: str) -> exp.Select:
+            return S.select(
+                [S.alias(S.col(column), "name")],
+                exp.Table(this=exp.Anonymous(this=table_fn, expressions=[])),
+                where=S.and_(
+                    S.col("internal"),
+                    S.eq(exp.Lower(this=S.col(column)), S.text(name.lower())),
+                ),
+            )
+
+        parts: list[exp.Select] = [
+            internal("duckdb_views", "view_name", view),
+            internal("duckdb_tables", "table_name", view),
+        ]
+        if macro is not None:
+            parts.append(internal("duckdb_functions", "function_name", macro))
+        query: exp.Query = parts[0]
+        for part in parts[1:]:
+            query = exp.union(query, part, distinct=False)
+        return query
+
     def file_scan(self, path: str) -> exp.Expression:
         low = path.lower()
         if low.endswith((".parquet", ".pq")) or ".parquet" in low:
@@ -308,6 +417,22 @@ class DuckDBDialect(Dialect):
         else:
             fn = "read_csv_auto"
         return exp.Table(this=exp.Anonymous(this=fn, expressions=[S.text(path)]))
+
+
+_PLAIN_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
+
+
+def qualified_name(parts: Sequence[str]) -> str:
+    """Dotted text of a table name that :func:`split_qualified` reads back into ``parts``:
+    a part that is not a plain identifier is written in double quotes (``""`` for ``"``)."""
+    return ".".join(
+        p if _PLAIN_NAME.fullmatch(p) else '"' + p.replace('"', '""') + '"' for p in parts
+    )
+
+
+def split_qualified(name: str) -> list[str]:
+    """The parts of a dotted, possibly double-quoted table name (see :meth:`Dialect.table`)."""
+    return _split_qualified(name)
 
 
 def _split_qualified(name: str) -> list[str]:

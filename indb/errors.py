@@ -15,6 +15,12 @@ class SpecError(IndbError, ValueError):
     """The model declaration or the input data is not acceptable (fix the input, then rerun)."""
 
 
+class NondeterministicSourceError(SpecError):
+    """The source returned other rows in a later scan than in the first: it must give the
+    same rows every time it is read (no unrepeatable sample, random(), or concurrent
+    writes)."""
+
+
 class EngineError(IndbError):
     """The database engine failed while running generated SQL.
 
@@ -57,3 +63,18 @@ class SeparationWarning(IndbWarning):
 
 class AliasingWarning(IndbWarning):
     """Some design columns are linear combinations of others and were set aside."""
+
+
+class DeploymentWarning(IndbWarning):
+    """A deployment setting was not applied (for example a held version cannot move the
+    live scoring view to another schema)."""
+
+
+class PrecisionWarning(IndbWarning):
+    """A column's magnitude against its spread costs the fit significant digits that the
+    internal centring and scaling could not win back (the column is named)."""
+
+
+class ResidualDfWarning(IndbWarning):
+    """The residual degrees of freedom are 0 or negative: no dispersion estimate, and no
+    t statistics, p-values or intervals where the dispersion is estimated."""

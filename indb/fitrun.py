@@ -11,7 +11,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from indb import solver
+from indb.design import Scaling
 from indb.engine import Engine
+from indb.errors import NondeterministicSourceError
 from indb.plan.context import PlanContext
 from indb.results import IterationRecord
 
@@ -41,6 +44,12 @@ class FitRun:
     fold_seconds: float = 0.0
     #: the sample start: (rows in the sample, its IRLS scans, seconds), or why it was skipped
     sample: tuple[int, int, float] | str | None = None
+    #: the internal rescaling of response and weights (the scans' numbers -> the source's)
+    scaling: Scaling = dataclasses.field(default_factory=Scaling)
+    #: warnings found before the fit (digits lost to magnitudes), given with the result
+    notes: list[str] = dataclasses.field(default_factory=list)
+    #: (rows, frequency-weighted rows) every IRLS scan of the fit's table must count
+    expected: tuple[int, float] | None = None
 
     def drop_temp(self) -> None:
         for name in self.temp_tables:
@@ -51,7 +60,7 @@ class FitRun:
     def record(self, dev: float, change: float, halvings: int, seconds: float) -> None:
         rec = IterationRecord(
             iteration=len(self.log) + 1,
-            deviance=dev,
+            deviance=self.scaling.unscale(dev),
             relative_change=change,
             step_halvings=halvings,
             seconds=seconds,
@@ -60,6 +69,25 @@ class FitRun:
         self.log.append(rec)
         if self.progress is not None:
             self.progress(rec)
+
+    def check_rows(self, sums: solver.Sums) -> None:
+        """Raise when a scan of the fit's table counts other rows than the profile did:
+        the source returns different rows each time it is read."""
+        if self.expected is None or self.phase == "sample":
+            return
+        rows, weighted = self.expected
+        if sums.n == rows and abs(sums.n_weighted - weighted) <= 1e-9 * abs(weighted):
+            return
+        what = "rows" if sums.n != rows else "frequency-weighted rows"
+        seen, before = (sums.n, rows) if sums.n != rows else (sums.n_weighted, weighted)
+        raise NondeterministicSourceError(
+            f"the source is not deterministic: IRLS scan {len(self.log) + 1} counted "
+            f"{seen:,.6g} {what} where the profile scan counted {before:,.6g}. indb reads "
+            "the source once per iteration, so it must return the same rows every time; "
+            "a sample (USING SAMPLE, TABLESAMPLE), random(), a LIMIT without ORDER BY or a "
+            "table written to during the fit breaks that. Store the rows first (CREATE "
+            "TABLE ... AS SELECT ...) or make the sample repeatable (REPEATABLE (seed))"
+        )
 
 
 def fetched_count(v: object) -> int:

@@ -16,10 +16,16 @@ import warnings
 
 import numpy as np
 
-from indb import folding, prefit
+from indb import folding, magnitudes, prefit, solver
 from indb.design import build_design, plan_values
-from indb.engine import Engine
-from indb.errors import ConvergenceWarning, NonConvergenceError, SeparationWarning, SpecError
+from indb.engine import Engine, qualify_source
+from indb.errors import (
+    ConvergenceWarning,
+    NonConvergenceError,
+    PrecisionWarning,
+    SeparationWarning,
+    SpecError,
+)
 from indb.families import NegativeBinomial
 from indb.fitrun import FitRun, Progress
 from indb.inference import result
@@ -27,7 +33,7 @@ from indb.irls import irls
 from indb.nullmodel import NullTrack, intercept_only, null_deviance, null_start
 from indb.plan.context import PlanContext
 from indb.plan.irls_scan import gram_query
-from indb.plan.profile import profile_items
+from indb.plan.profile import head_query, profile_items
 from indb.results import FitResult
 from indb.sample_start import sample_start, start_from
 from indb.spec import ModelSpec
@@ -41,12 +47,17 @@ def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
     ctx = PlanContext(spec, inputs, engine.dialect)
     knots = prefit.knots(ctx, run)
     values = plan_values(inputs, spec.intercept)
-    shifts = prefit.shifts(ctx, run, values, knots)
+    head = run.one_row(head_query(ctx, values, knots))
+    shifts = magnitudes.shifts(head, values)
+    ctx = dataclasses.replace(ctx, scaling=magnitudes.response_scaling(spec, head))
     items = profile_items(ctx, values, knots, shifts)
     folded = folding.fold(ctx, run, items) if folding.should_fold(ctx, run) else None
     row = folded[0] if folded else prefit.profile(ctx, run, items)
     n_total, n_kept, by_col = prefit.check_nulls(ctx, row)
     summary = prefit.summarize(ctx, row, values, shifts)
+    run.scaling = magnitudes.weight_scaling(ctx, summary)
+    run.notes += magnitudes.precision_notes(ctx, row, shifts, summary)
+    ctx = dataclasses.replace(ctx, scaling=run.scaling)
     if folded:
         ctx = folding.folded_context(ctx, run, folded[1], n_kept)
     factors, combos = prefit.factors(ctx, run)
@@ -55,6 +66,7 @@ def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
     )
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
+    solver.check_size(design)
     return ctx, design, summary, n_total, n_kept, by_col
 
 
@@ -64,11 +76,12 @@ def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
     The pre-fit scans run (they only read); the first IRLS scan is returned, not run. Later
     scans differ only in the coefficient literals.
     """
+    spec = dataclasses.replace(spec, source=qualify_source(engine, spec.source))
     sent: list[tuple[str, str]] = []
     recorder = _RecordingEngine(engine, sent)
     run = FitRun(engine=recorder, progress=None, log=[])
     ctx, design, summary, *_ = _prepare(spec, recorder, run)
-    start = start_from(spec, design, summary)
+    start = start_from(spec, design, run.scaling)
     tree = gram_query(ctx, design, start, ybar=summary.ybar)
     sent.append(("IRLS scan (one per iteration; coefficients change)", engine.dialect.render(tree)))
     return sent
@@ -98,6 +111,9 @@ class _RecordingEngine(Engine):
 def fit_spec(spec: ModelSpec, engine: Engine, progress: Progress = None) -> FitResult:
     """Fit ``spec`` on ``engine``; see :func:`indb.fit` for the user-facing description."""
     t_start = time.perf_counter()
+    # the name as the engine resolves it now: the stored spec and the scoring view then
+    # read this table whatever schema or session reads them later
+    spec = dataclasses.replace(spec, source=qualify_source(engine, spec.source))
     run = FitRun(engine=engine, progress=progress, log=[])
     try:
         return _fit(spec, run, t_start)
@@ -114,6 +130,12 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         summary = dataclasses.replace(summary, ybar=run.fit_ybar)
 
     warn_msgs: list[str] = []
+    for msg in run.notes:
+        warnings.warn(msg, PrecisionWarning, stacklevel=2)
+        warn_msgs.append(msg)
+    # every scan of the fit's table must see the rows the profile saw
+    rows = run.compressed[1] if run.compressed is not None else n_kept
+    run.expected = (rows, summary.sum_f * run.scaling.freq_factor)
     if spec.estimate_theta:
         theta, beta0 = estimate_theta(ctx, design, run, summary)
         spec = dataclasses.replace(spec, family=NegativeBinomial(theta=theta))
@@ -121,7 +143,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         ctx = dataclasses.replace(ctx, spec=spec)
         start = beta0
     else:
-        start = start_from(spec, design, summary)
+        start = start_from(spec, design, run.scaling)
     null_mu, refit_null = null_deviance(ctx, design, run, summary.ybar)
     null_b0 = null_start(ctx, summary) if refit_null else None
     if start is None:
@@ -152,7 +174,8 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         msg = (
             f"IRLS stopped after {sum(r.phase == 'fit' for r in run.log)} iterations: "
             "step-halving cannot lower the "
-            f"deviance ({state.sums.deviance:.6g}) any further while the next step still "
+            f"deviance ({run.scaling.unscale(state.sums.deviance):.6g}) any further while the "
+            "next step still "
             "moves coefficients by many standard errors; the fit sits on the boundary "
             "(fitted means at the edge of the family's range, e.g. Poisson means at 0, "
             "probabilities at 0 or 1), so some estimates drift to infinity and their "

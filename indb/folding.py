@@ -120,4 +120,11 @@ def folded_context(ctx: PlanContext, run: FitRun, groups: str, n_kept: int) -> P
     )
     run.original_ctx = ctx
     run.compressed = (n_kept, n_groups, run.fold_seconds + time.perf_counter() - t0)
-    return PlanContext(new_spec, inputs, ctx.dialect, row_count=ROWCOUNT, folded=True)
+    return PlanContext(
+        new_spec,
+        inputs,
+        ctx.dialect,
+        row_count=ROWCOUNT,
+        folded=True,
+        scaling=ctx.scaling.for_folded_rows(),
+    )

@@ -9,8 +9,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from indb import logsums, solver
-from indb.design import Design
-from indb.errors import SpecError
+from indb.design import Design, Scaling
+from indb.errors import NondeterministicSourceError, SpecError
 from indb.families import Family
 from indb.fitrun import FitRun
 from indb.nullmodel import NullTrack
@@ -232,9 +232,30 @@ class IrlsSolver:
                 self.stalled = True
                 return halvings
             if halvings >= MAX_HALVINGS:
-                raise SpecError(_halving_failure(spec, sums))
+                self.check_repeatable()
+                raise SpecError(_halving_failure(spec, sums, self.run.scaling))
             self.beta = 0.5 * (self.beta + self.beta_prev)
             halvings += 1
+
+    def check_repeatable(self) -> None:
+        """Before blaming the model for a failed step-halving: scan the last accepted
+        coefficients again. A deviance other than the one they gave (beyond the rounding of
+        a parallel sum) means the source's values change between reads, with the same rows."""
+        run, deviance = self.run, self.dev_old
+        if not math.isfinite(deviance) or run.phase == "sample":
+            return
+        again = self.scan(self.beta_prev).deviance
+        if abs(again - deviance) <= 1e-9 * abs(deviance) + 1e-300:
+            return
+        raise NondeterministicSourceError(
+            "the source is not deterministic: the same coefficients gave the deviance "
+            f"{run.scaling.unscale(deviance):.10g} in one IRLS scan and "
+            f"{run.scaling.unscale(again):.10g} in the next, so its values change between "
+            "reads (random(), a sample such as USING SAMPLE or TABLESAMPLE, or a table written "
+            "to during the fit). indb reads the source once per iteration; store the rows "
+            "first (CREATE TABLE ... AS SELECT ...) or make the sample repeatable "
+            "(REPEATABLE (seed))"
+        )
 
     def finish_stalled(self) -> None:
         """Go back to the last accepted step (its scan and its solved update)."""
@@ -289,6 +310,7 @@ class IrlsSolver:
         got = logsums.assemble_log_scan(
             design, self.run.query(tree), beta, power, self.log_cache, self.off_center
         )
+        self.run.check_rows(got.sums)
         wants_null = self.wants_null()
         b0, dev0 = logsums.null_model(power, got.cache) if wants_null else (0.0, 0.0)
         if got.digits_lost <= logsums.MAX_DIGITS_LOST and math.isfinite(dev0):
@@ -319,6 +341,7 @@ class IrlsSolver:
         if self.spec.family.unit_mean:
             extra += ("edge", "near")
         out = solver.assemble(self.design, self.run.query(tree), extra)
+        self.run.check_rows(out)
         self.cells = out.cell_keys
         if with_mu:
             self.null_dev = out.extras["nulldev"]
@@ -337,11 +360,11 @@ def working_dispersion(family: Family, sums: solver.Sums, sol: solver.Solution) 
     )
 
 
-def _halving_failure(spec: ModelSpec, sums: solver.Sums) -> str:
+def _halving_failure(spec: ModelSpec, sums: solver.Sums, scaling: Scaling) -> str:
     msg = (
         f"IRLS step-halving failed after {MAX_HALVINGS} halvings (deviance "
-        f"{sums.deviance:g}, {sums.bad} rows with invalid means); the model may be "
-        "unsuitable for the data (check the link and family)"
+        f"{scaling.unscale(sums.deviance):g}, {sums.bad} rows with invalid means); the model "
+        "may be unsuitable for the data (check the link and family)"
     )
     if spec.offset is not None:
         # an offset is added to every row's linear predictor unscaled: one on the wrong

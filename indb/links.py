@@ -3,7 +3,10 @@
 Each link states its formula, the inverse ``mu = g^-1(eta)`` and ``dmu/deta``. The SQL forms
 clamp arguments of ``exp`` so no engine overflows (PostgreSQL raises on overflow where
 DuckDB and Spark return infinity); rows whose eta leaves the link's valid domain are flagged
-by :meth:`Link.eta_ok` so IRLS can halve its step instead of producing NaN.
+by :meth:`Link.eta_ok` so IRLS can halve its step instead of producing NaN. The clamp assumes
+a number (the fit's profile rejects NaN and infinite inputs and drops NULLs); scoring, whose
+rows nobody checked, goes through :meth:`Link.mean_sql`, which gives no mean for NULL, NaN,
+infinite or out-of-range eta.
 """
 
 from __future__ import annotations
@@ -110,6 +113,30 @@ class Link:
         return None
 
     safe_eta: float = 1.0  # substituted where eta is invalid, so formulas stay finite
+
+    @property
+    def increasing(self) -> bool:
+        """Whether the mean rises with eta (every link here is monotone)."""
+        return True
+
+    def valid_eta_sql(self, eta: Expr) -> Expr:
+        """TRUE where eta is a finite number inside :meth:`eta_ok`; FALSE or NULL where it is
+        NULL, NaN, +/-inf or outside (the rows :meth:`mean_sql` gives no mean)."""
+        ok = S.is_finite(eta)
+        inside = self.eta_ok(eta.copy())
+        return ok if inside is None else S.and_(ok, inside)
+
+    def mean_sql(self, eta: Expr) -> Expr:
+        """The mean for scoring: :meth:`inverse_sql` where :meth:`valid_eta_sql` holds, else
+        NULL.
+
+        Scoring rows were never checked by a fit, and the inverse link alone would turn an
+        invalid eta into a number: its clamp ``LEAST(GREATEST(eta, -700), 700)`` makes NULL
+        -700 (GREATEST skips NULLs) and NaN 700 (NaN sorts above every number) on DuckDB,
+        PostgreSQL and Spark alike; the probit CDF makes NaN 1. A mean beyond what a double
+        holds (log link, eta > 700) is NULL too, not the clamp's 1e304.
+        """
+        return S.case([(self.valid_eta_sql(eta), self.inverse_sql(eta.copy()))])
 
     # numpy forms -------------------------------------------------------------------------
     def link(self, mu: np.ndarray) -> np.ndarray:
@@ -348,6 +375,10 @@ class PowerLink(Link):
 
     def eta_ok(self, eta: Expr) -> Expr | None:
         return S.gt(eta, S.num(0.0))
+
+    @property
+    def increasing(self) -> bool:
+        return self.exponent > 0
 
     def link(self, mu):
         return np.power(np.asarray(mu, float), self.exponent)

@@ -29,7 +29,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from indb.design import Design
+from indb.design import Design, cell_columns, column_groups
 from indb.solver import Sums, assemble, in_cell_order, zero_nulls
 
 #: digits the split deviance or Pearson sum may lose before the fitter stops using it
@@ -46,7 +46,7 @@ CONSTANTS = ("h", "cy", "cw", "co", "cp", "n1", "n2", "noff")
 class LogCache:
     """What the first log-link scan found that later scans need not sum again."""
 
-    keys: list[tuple] | None  # cells in order (None: no factors)
+    keys: tuple[np.ndarray, ...]  # the cells' level codes per factor, in cell order
     gram: dict[str, np.ndarray]  # s_a_b per cell (kept for gamma: constant there)
     resp: dict[str, np.ndarray]  # r_a per cell (kept for Poisson: constant there)
     consts: dict[str, float]  # CONSTANTS (see plan.log_scan.log_scan_query)
@@ -70,12 +70,6 @@ def scan_parts(p: float, cache: LogCache | None) -> tuple[bool, bool, bool]:
     return p != 2.0, p != 1.0, False
 
 
-def _cell_keys(design: Design, cells: dict[str, np.ndarray]) -> list[tuple] | None:
-    if not design.factors:
-        return None
-    return list(zip(*(cells[f.alias].tolist() for f in design.factors), strict=True))
-
-
 def assemble_log_scan(
     design: Design,
     cells: dict[str, np.ndarray],
@@ -86,8 +80,8 @@ def assemble_log_scan(
 ) -> LogSums:
     """X'WX, X'Wz, deviance and Pearson chi-squared at ``beta`` from one log-link scan
     (``off_center``: the c the first scan's constants took the offset about)."""
-    cells = in_cell_order(design, cells)
-    keys = _cell_keys(design, cells)
+    cells, codes = in_cell_order(design, cells)
+    keys = tuple(codes)
     m = len(design.values)
     pairs = [(a, b) for a in range(m) for b in range(a, m)]
     if cache is None:
@@ -98,7 +92,9 @@ def assemble_log_scan(
             consts=_constants(cells),
             off_center=off_center,
         )
-    elif keys != cache.keys:
+    elif len(keys) != len(cache.keys) or not all(
+        np.array_equal(a, b) for a, b in zip(keys, cache.keys, strict=True)
+    ):
         raise ValueError("the cells of this scan differ from the first scan's")
     gram = cache.gram if "s_0_0" not in cells else {k: zero_nulls(cells[k]) for k in cache.gram}
     resp = cache.resp if "r_0" not in cells else {k: zero_nulls(cells[k]) for k in cache.resp}
@@ -108,7 +104,7 @@ def assemble_log_scan(
         G[:, a, b] = G[:, b, a] = gram[f"s_{a}_{b}"]
     R = np.column_stack([resp[f"r_{a}"] for a in range(m)]) if m else np.zeros((nc, 0))
 
-    gam, bnum = _split_beta(design, cells, beta)
+    gam, bnum = _split_beta(design, codes, nc, beta)
     with np.errstate(over="ignore", invalid="ignore"):
         e2, e1, e0 = (np.exp(k * gam) for k in (2.0 - p, 1.0 - p, -p))
         g0 = G[:, 0, :]
@@ -133,11 +129,11 @@ def assemble_log_scan(
         scaled[f"t_{a}"] = t[:, a]
     zero = np.zeros(nc)
     scaled.update(dev=zero, pear=zero, bad=zero_nulls(cells["bad"]), n=cells["n"], nw=cells["nw"])
-    sums = assemble(design, scaled)
+    sums = assemble(design, scaled, codes=codes)
     deviance, pearson = float(dev_terms.sum()), float(pear_terms.sum())
     finite = (
         all(math.isfinite(x) for x in (deviance, pearson))
-        and np.isfinite(sums.xtwx).all()
+        and np.isfinite(sums.xtwx.data).all()
         and np.isfinite(sums.xtwz).all()
     )
     sums = dataclasses.replace(
@@ -160,21 +156,22 @@ def _constants(cells: dict[str, np.ndarray]) -> dict[str, float]:
 
 
 def _split_beta(
-    design: Design, cells: dict[str, np.ndarray], beta: np.ndarray
+    design: Design, codes: list[np.ndarray], nc: int, beta: np.ndarray
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Per cell the summed factor coefficients g_c, and the coefficient of each value."""
-    nc = len(cells["n"])
+    """Per cell the summed factor coefficients g_c, and the coefficient of each value
+    (``codes``: the cells' level codes per factor)."""
     gam = np.zeros(nc)
     bnum = np.zeros(len(design.values))
-    for j, c in enumerate(design.columns):
-        b = float(beta[j])
-        if not c.factors:
-            bnum[c.value] += b
+    groups = column_groups(design)
+    where = cell_columns(design, codes) if design.factors else []
+    for g_i, g in enumerate(groups):
+        if not g.factors:
+            for j in g.columns:
+                bnum[g.value] += float(beta[j])
             continue
-        hit = np.ones(nc, dtype=bool)
-        for fi, level in zip(c.factors, c.levels, strict=True):
-            hit &= cells[design.factors[fi].alias] == level
-        gam += b * hit
+        col = where[g_i]
+        hit = col >= 0
+        gam[hit] += beta[col[hit]]
     return gam, bnum
 
 

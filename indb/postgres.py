@@ -20,6 +20,7 @@ from __future__ import annotations
 import contextlib
 import re
 import time
+import warnings
 from collections.abc import Iterator, Sequence
 from typing import Any
 
@@ -28,7 +29,7 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.dialect import Dialect
-from indb.engine import Engine, rows_to_columns
+from indb.engine import Engine, open_transaction_error, rows_to_columns
 from indb.errors import EngineError, UnsupportedError
 from indb.sqlexpr import as_operand, log_gamma_series
 
@@ -108,6 +109,7 @@ class PostgresDialect(Dialect):
 
     name = "postgres"
     sqlglot_name = "postgres"
+    names_ignore_case = False
 
     def __init__(self, server_version: int = 150000) -> None:
         self.server_version = server_version
@@ -137,6 +139,24 @@ class PostgresDialect(Dialect):
         fresh.set("replace", False)
         drop = exp.Drop(kind="VIEW", tables=[create.this.copy()], exists=True)
         return [self.render(drop), self.render(fresh)]
+
+    def reserved_objects_query(self, view: str, macro: str | None) -> exp.Query | None:
+        # pg_catalog is searched before the search_path's schemas unless the path names it
+        # (https://www.postgresql.org/docs/current/ddl-schemas.html#DDL-SCHEMAS-CATALOG): a
+        # scoring view named pg_class would itself be hidden by the catalog's table
+        cls = exp.Table(this=S.ident("pg_class"), db=S.ident("pg_catalog"))
+        cls.set("alias", exp.TableAlias(this=S.ident("c")))
+        nsp = exp.Table(this=S.ident("pg_namespace"), db=S.ident("pg_catalog"))
+        nsp.set("alias", exp.TableAlias(this=S.ident("n")))
+        query = S.select(
+            [S.alias(S.col("relname", "c"), "name")],
+            cls,
+            where=S.and_(
+                S.eq(S.col("nspname", "n"), S.text("pg_catalog")),
+                S.eq(exp.Lower(this=S.col("relname", "c")), S.text(view.lower())),
+            ),
+        )
+        return query.join(nsp, on=S.eq(S.col("oid", "n"), S.col("relnamespace", "c")), copy=False)
 
     def materialize(self, name: str, query: exp.Expression) -> list[str]:
         # a temporary table lives in the session's own schema and disappears with it
@@ -181,6 +201,27 @@ class PostgresDialect(Dialect):
         inf = exp.Cast(this=S.text("Infinity"), to=exp.DataType.build("DOUBLE"))
         return S.lt(S.abs_(x), inf)
 
+    # PostgreSQL's `/` truncates two integers; ln, log, sqrt, exp, power and division raise on
+    # arguments outside their domain ("cannot take logarithm of a negative number", "division
+    # by zero", "value out of range: overflow"), so the Ieee* nodes guard them with CASE.
+    integer_slash = "truncate"
+    log_nonpositive = "error"
+    zero_division = "error"
+
+    def ieee(self, node: exp.Expression) -> exp.Expression:
+        a = node.this
+        if isinstance(node, S.IeeeLn):
+            return S.ieee_log_guarded(a, exp.Ln(this=a.copy()))
+        if isinstance(node, S.IeeeLog10):
+            return S.ieee_log_guarded(a, exp.Anonymous(this="LOG10", expressions=[a.copy()]))
+        if isinstance(node, S.IeeeSqrt):
+            return S.ieee_sqrt_guarded(a)
+        if isinstance(node, S.IeeeExp):
+            return S.ieee_exp_guarded(a)
+        if isinstance(node, S.IeeePow):
+            return S.ieee_pow_guarded(a, node.expression)
+        return S.ieee_div_guarded(a, node.expression)
+
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         return exp.WithinGroup(
             this=exp.PercentileCont(this=S.num(q)),
@@ -222,7 +263,11 @@ class PostgresEngine(Engine):
     ----------
     conninfo:
         A ``postgresql://`` URL, a libpq key/value DSN, or an open ``psycopg.Connection``
-        (used as is, not closed; its autocommit setting is left alone).
+        (used as is and not closed). A connection of the caller's must have no open
+        transaction (``SpecError`` otherwise, before anything runs); indb switches it to
+        autocommit while it works and :meth:`close` puts back its autocommit flag and the
+        session settings changed here (``extra_float_digits``,
+        ``standard_conforming_strings``).
 
     Queries run in autocommit mode; :meth:`transaction` wraps write-back statements in one
     real transaction (all or nothing).
@@ -236,9 +281,14 @@ class PostgresEngine(Engine):
                 "PostgreSQL needs psycopg 3: pip install 'indb[postgres]'"
             ) from err
         self._psycopg = psycopg
+        #: a caller's settings as found (name -> text), and its autocommit flag: put back by
+        #: close()
+        self._found: dict[str, str] = {}
+        self._autocommit_found: bool | None = None
         if isinstance(conninfo, psycopg.Connection):
             self.con = conninfo
             self._owned = False
+            self._borrow()
         else:
             try:
                 self.con = psycopg.connect(str(conninfo), autocommit=True)
@@ -248,12 +298,61 @@ class PostgresEngine(Engine):
                     f"cannot connect to PostgreSQL at {redact(str(conninfo))!r}: {first}"
                 ) from err
             self._owned = True
-        self.dialect = PostgresDialect(int(self.con.info.server_version))
-        self._types: dict[int, tuple[str, str]] = {}
-        # Exact doubles in text results (the default since PostgreSQL 12, set for older
-        # servers) and backslashes in string literals taken literally, as sqlglot writes them.
-        self.execute("SET extra_float_digits = 3")
-        self.execute("SET standard_conforming_strings = on")
+        try:
+            self.dialect = PostgresDialect(int(self.con.info.server_version))
+            self._types: dict[int, tuple[str, str]] = {}
+            # Exact doubles in text results (the default since PostgreSQL 12, set for older
+            # servers) and backslashes in string literals taken literally, as sqlglot writes
+            # them.
+            self._set("extra_float_digits", "3")
+            self._set("standard_conforming_strings", "on")
+        except BaseException:
+            self.close()
+            raise
+
+    def _borrow(self) -> None:
+        """Take a caller's connection: refuse an open transaction, then run in autocommit.
+
+        Without autocommit, indb's first query would open a transaction that stays open on
+        the caller's connection (holding locks), the write-back would become a savepoint
+        that only the caller's COMMIT makes durable, and a failed probe query would abort
+        it. psycopg lets autocommit change only outside a transaction, which was just checked.
+        """
+        from psycopg.pq import TransactionStatus
+
+        status = self.con.info.transaction_status
+        if status == TransactionStatus.UNKNOWN:
+            raise EngineError("the PostgreSQL connection passed as db= is closed or broken")
+        states = {
+            TransactionStatus.INTRANS: "an open transaction",
+            TransactionStatus.INERROR: "a failed transaction",
+            TransactionStatus.ACTIVE: "a command running",
+        }
+        if status in states:
+            raise open_transaction_error("PostgreSQL", states[status])
+        if not self.con.autocommit:
+            self._autocommit_found = False
+            self.con.autocommit = True
+
+    def _set(self, name: str, value: str) -> None:
+        """Set a session setting when it differs; on a caller's connection remember it.
+
+        ``set_config`` with bound parameters: names and values are never pasted into SQL.
+        """
+        current = self._run_params("SELECT current_setting(%s)", (name,))[0][0]
+        if str(current) == value:
+            return
+        if not self._owned:
+            self._found.setdefault(name, str(current))
+        self._run_params("SELECT set_config(%s, %s, false)", (name, value))
+
+    def _run_params(self, sql: str, params: tuple[Any, ...]) -> list[tuple[Any, ...]]:
+        try:
+            with self.con.cursor() as cur:
+                cur.execute(sql, params)
+                return cur.fetchall()
+        except self._psycopg.Error as err:
+            raise _wrap(err, sql) from err
 
     def _run(self, sql: str) -> tuple[list[str], list[tuple[Any, ...]]]:
         t0 = time.perf_counter()
@@ -307,6 +406,33 @@ class PostgresEngine(Engine):
             self._types[int(oid)] = (str(name), str(category))
             self.dialect.type_categories[str(name).lower()] = str(category)
 
+    def current_location(self) -> tuple[str, str]:
+        database, schema = self.execute("SELECT current_database(), current_schema()")[0]
+        return str(database), str(schema)
+
+    def resolve_table(self, parts: Sequence[str]) -> tuple[str, ...] | None:
+        # to_regclass resolves a name exactly as a query would (search_path, pg_catalog
+        # first) and gives NULL for a missing relation. The schema alone qualifies it: a
+        # query cannot reach another database, and leaving the database name out keeps
+        # the name valid in a restored copy under another name. The session's own
+        # temporary schema is written pg_temp, its name in every session.
+        name = self.dialect.render(exp.Table(**_table_args(parts)))
+        sql = (
+            "SELECT CASE WHEN n.oid = pg_catalog.pg_my_temp_schema() THEN 'pg_temp' "
+            "ELSE n.nspname END, c.relname FROM pg_catalog.pg_class c "
+            "JOIN pg_catalog.pg_namespace n ON n.oid = c.relnamespace "
+            "WHERE c.oid = pg_catalog.to_regclass(%s)"
+        )
+        try:
+            with self.con.cursor() as cur:
+                cur.execute(sql, (name,))
+                row = cur.fetchone()
+        except self._psycopg.Error:
+            # a name to_regclass cannot even parse (another database's): the fit's own
+            # read of it gives the error
+            return None
+        return (str(row[0]), str(row[1])) if row else None
+
     @contextlib.contextmanager
     def transaction(self) -> Iterator[None]:
         """Run the statements inside as one PostgreSQL transaction (rolled back on error)."""
@@ -317,8 +443,40 @@ class PostgresEngine(Engine):
             raise _wrap(err, None) from err
 
     def close(self) -> None:
+        """Close a connection this engine opened; on a caller's, put back what it changed."""
         if self._owned:
             self.con.close()
+            return
+        failed: list[str] = []
+        for name, value in reversed(list(self._found.items())):
+            try:
+                self._run_params("SELECT set_config(%s, %s, false)", (name, value))
+            except EngineError as err:
+                failed.append(f"{name} (was {value!r}: {err})")
+        self._found.clear()
+        if self._autocommit_found is not None:
+            try:
+                self.con.autocommit = self._autocommit_found
+            except self._psycopg.Error as err:
+                failed.append(f"autocommit (was {self._autocommit_found}: {err})")
+            self._autocommit_found = None
+        if failed:
+            warnings.warn(
+                "indb could not put back these settings of your PostgreSQL connection: "
+                + "; ".join(failed),
+                RuntimeWarning,
+                stacklevel=3,
+            )
+
+
+def _table_args(parts: Sequence[str]) -> dict[str, exp.Identifier]:
+    ids = [S.ident(p) for p in parts]
+    args = {"this": ids[-1]}
+    if len(ids) >= 2:
+        args["db"] = ids[-2]
+    if len(ids) == 3:
+        args["catalog"] = ids[-3]
+    return args
 
 
 def _wrap(err: Exception, sql: str | None) -> EngineError:

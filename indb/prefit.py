@@ -15,10 +15,10 @@ from indb.fitrun import FitRun, fetched_count
 from indb.plan.context import PlanContext
 from indb.plan.fold import FOLD_BAD, FOLD_NK_NULL, detail_items, grouped_profile_query
 from indb.plan.profile import (
+    HEAD_ROWS,
     ProfileItem,
     describe_query,
     domain_checks,
-    first_values_query,
     knots_query,
     levels_query,
     profile_query,
@@ -146,7 +146,10 @@ class Summary:
 
 
 def summarize(
-    ctx: PlanContext, row: dict, values: tuple[Value, ...], shifts: dict[str, float]
+    ctx: PlanContext,
+    row: dict,
+    values: tuple[Value, ...],
+    shifts: dict[str, tuple[float, float]],
 ) -> Summary:
     """The profile row checked (domain, weights, a response with both outcomes, constant
     predictors) and turned into a :class:`Summary`; values centred and scaled."""
@@ -179,16 +182,14 @@ def summarize(
         )
     out_values = [values[0]]
     for v in values[1:]:
-        # moments about a value c of one kept row (profile_items): m = mean(v - c),
-        # q = mean((v - c)^2); q is 0 exactly when every row has v = c
-        c = shifts.get(v.alias, 0.0)
-        m = float(row[f"{v.alias}_mean"])
+        c, mean, sd, rms = moments(row, v.alias, shifts)
         q = float(row[f"{v.alias}_ms"])
-        mean = c + m
-        var = q - m * m
-        # cancellation (c far out in a tail): the spread about c still conditions well
-        sd = math.sqrt(var) if var > 1e-12 * q else math.sqrt(max(q, 0.0))
-        rms = math.sqrt(max(q + 2.0 * c * m + c * c, 0.0))
+        if not (math.isfinite(q) and math.isfinite(sd) and math.isfinite(rms)):
+            raise SpecError(
+                f"predictor {v.label!r} spans more than the range of doubles (its squares "
+                f"overflow although scaled by its spread in the first {HEAD_ROWS} rows); "
+                "rescale it in the source query"
+            )
         if v.centered:
             if q == 0.0:
                 raise SpecError(
@@ -201,16 +202,17 @@ def summarize(
             if not rms > 0:
                 raise SpecError(f"predictor {v.label!r} is 0 in every row used; leave it out")
             out_values.append(dataclasses.replace(v, scale=rms))
-    column_sums = {
-        v.label: (shifts.get(v.alias, 0.0) + float(row[f"{v.alias}_mean"])) * n for v in values[1:]
-    }
+    column_sums = {v.label: moments(row, v.alias, shifts)[1] * n for v in values[1:]}
     pw_min, pw_max = row["pw_min"], row["pw_max"]
+    sc = ctx.scaling
+    # the response sum on the source's scale (the data fingerprint), from the rescaled one
+    sum_fpwy = float(row["sum_fpwy"]) / sc.factor + sc.shift * sum_fpw
     return Summary(
         ll_sums={k[3:]: float(v) for k, v in row.items() if k.startswith("ll_") and v is not None},
         constant_weight=float(pw_min) if pw_min is not None and pw_min == pw_max else None,
         off_mean=float(row["off_mean"] or 0.0),
         column_sums=column_sums,
-        sum_fpwy=float(row["sum_fpwy"]),
+        sum_fpwy=sum_fpwy,
         n=n,
         sum_f=float(row["sum_f"]),
         sum_fpw=sum_fpw,
@@ -289,19 +291,24 @@ def factors(
     return tuple(out), combos
 
 
-def shifts(
-    ctx: PlanContext, run: FitRun, values: tuple[Value, ...], knots: dict
-) -> dict[str, float]:
-    """Each value in one kept row (0 where there is none, or it is NULL or not finite):
-    the points the profile takes moments about."""
-    if len(values) < 2:
-        return {}
-    row = run.one_row(first_values_query(ctx, values, knots))
-    out: dict[str, float] = {}
-    for v in values[1:]:
-        x = row.get(v.alias)
-        out[v.alias] = float(x) if x is not None and math.isfinite(float(x)) else 0.0
-    return out
+def moments(
+    row: dict, alias: str, shifts: dict[str, tuple[float, float]]
+) -> tuple[float, float, float, float]:
+    """(c, mean, standard deviation, root mean square) of a value from the profile's
+    moments about c, scaled by g (profile_items): m = mean((v - c) g), q = mean(((v - c)
+    g)^2); q is 0 exactly when every row has v = c."""
+    c, g = shifts.get(alias, (0.0, 1.0))
+    m = float(row[f"{alias}_mean"])
+    q = float(row[f"{alias}_ms"])
+    var = q - m * m
+    # cancellation (c far out in a tail): the spread about c still conditions well
+    sd = (math.sqrt(var) if var > 1e-12 * q else math.sqrt(max(q, 0.0))) / g
+    # rms^2 = mean(v^2) = (c + m/g)^2 + var/g^2, taken relative to the larger of |c| and
+    # the spread so that values near the largest doubles do not overflow it
+    mean = c + m / g
+    big = max(abs(c), math.sqrt(max(q, 0.0)) / g)
+    rms = big * math.hypot(mean / big, sd / big) if big > 0 else 0.0
+    return c, mean, sd, rms
 
 
 def profile(ctx: PlanContext, run: FitRun, items: list[ProfileItem]) -> dict[str, object]:

@@ -7,17 +7,20 @@ the views exactly as they were.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import hashlib
 import json
 import math
+import warnings
 from dataclasses import dataclass
 from typing import Any
 
 from indb import sqlexpr as S
 from indb import writeback as W
-from indb.engine import Engine
-from indb.errors import EngineError, RegistryError, SpecError
+from indb.dialect import Dialect
+from indb.engine import Engine, qualify_source, relative_source
+from indb.errors import DeploymentWarning, EngineError, RegistryError, SpecError, UnsupportedError
 from indb.results import FitResult
 from indb.spec import Source
 
@@ -50,6 +53,8 @@ class SaveOutcome:
     scoring_view: str
     mean_column: str
     macro: str | None
+    #: deployment settings that were not applied, and why (also issued as warnings)
+    warnings: tuple[str, ...] = ()
 
 
 class Registry:
@@ -135,7 +140,72 @@ class Registry:
 
     def load(self, name: str, version: int | None = None) -> FitResult:
         """The stored result of one version (the live one by default)."""
-        return FitResult.from_dict(json.loads(self._version_row(name, version)["result_json"]))
+        return self._result(self._version_row(name, version))
+
+    def _result(self, row: dict[str, Any]) -> FitResult:
+        """A version row's result. Versions stored before results recorded the dialect of
+        their expressions were fitted on this engine (``fit(name=...)`` writes where it
+        fits), so their offset is read in this engine's dialect."""
+        result = FitResult.from_dict(json.loads(row["result_json"]))
+        if result.spec.get("sql_dialect"):
+            return result
+        return dataclasses.replace(result, spec=self._spec_with_dialect(result.spec))
+
+    def _spec_with_dialect(self, spec: dict[str, Any]) -> dict[str, Any]:
+        return spec if spec.get("sql_dialect") else {**spec, "sql_dialect": self.d.name}
+
+    def scoring_sql(
+        self,
+        name: str,
+        target: Dialect,
+        *,
+        version: int | None = None,
+        source: str | None = None,
+        intervals: bool | None = None,
+        view_schema: str | None = None,
+        view_name: str | None = None,
+    ) -> str:
+        """CREATE VIEW text (no trailing semicolon) that scores with a stored version on the
+        engine of ``target``.
+
+        The offset is read in the dialect it was written in and carried over with its
+        meaning (:mod:`indb.portable`). ``source`` (a table, file or query written for
+        ``target``) defaults to the model's scoring source; a stored query is only reused on
+        the engine it was written for.
+        """
+        model = self.model(name)
+        result = self.load(name, version)
+        if not result.design.get("column_types"):
+            # a version stored before fits recorded the types: describe the source here
+            result = dataclasses.replace(
+                result, design={**result.design, "column_types": self._source_types(model)}
+            )
+        text = source or self.scoring_source_for(model, target)
+        if not text:
+            raise SpecError(f"model {name!r} has no scoring source; give a source")
+        src = Source.parse(text)
+        if source is None and src.kind == "query" and target.name != self.d.name:
+            raise UnsupportedError(
+                f"the scoring source of model {name!r} is a query written for {self.d.name}; "
+                f"its meaning on {target.name} is not known to indb: give a source (a "
+                f"table, or a query written for {target.name})"
+            )
+        use_intervals = bool(model.get("intervals")) if intervals is None else intervals
+        query = W.scoring_query(result, target, target.relation(src), intervals=use_intervals)
+        view = W.create_view(view_schema, view_name or model["view_name"], query)
+        return target.render(view)
+
+    def _source_types(self, model: dict[str, Any]) -> dict[str, str] | None:
+        """Column types of the model's stored scoring source on this engine (None if it
+        cannot be read)."""
+        text = model.get("score_source")
+        if not text:
+            return None
+        try:
+            rel = self.d.relation(Source.parse(text))
+            return dict(self.engine.describe(self.d.render(S.select([_star()], _aliased(rel)))))
+        except (EngineError, SpecError, UnsupportedError):
+            return None
 
     def events(self, name: str) -> list[dict[str, Any]]:
         return self._rows(
@@ -163,7 +233,7 @@ class Registry:
         (``view_schema``, ``score_source``, ``intervals``; None keeps the model's own) differs
         from the model's: then a new version is recorded so the change takes effect.
         """
-        W.check_name(name, "model name")
+        self.check_model_name(name)
         if view_schema is not None:
             W.check_name(view_schema, "view schema")
         fresh = not self.exists()
@@ -185,9 +255,12 @@ class Registry:
         if latest is not None and not force_new:
             # the same spec on unchanged data adds no version (live or held alike), so a
             # scheduled job that keeps failing a gate does not pile up identical versions
-            same = latest["spec_hash"] == h and json.loads(latest["fingerprint_json"]) == _jsonable(
-                result.fingerprint
-            )
+            # hashed again from the stored spec: one stored before specs recorded their SQL
+            # dialect is this engine's (see _result), and matches a refit of it here
+            stored = self._spec_with_dialect(json.loads(latest["spec_json"]))
+            same = spec_hash(stored) == spec_hash(
+                self._spec_with_dialect(result.spec)
+            ) and json.loads(latest["fingerprint_json"]) == _jsonable(result.fingerprint)
             # a changed view schema, scoring source or intervals flag is not "unchanged":
             # keeping the version would silently drop the request (it is applied below,
             # as for any new version, by the same path that deploys and records it)
@@ -199,7 +272,7 @@ class Registry:
                     latest["status"] == "live",
                     self._view_label(current),
                     "score_mean",
-                    current["macro_name"] if self.d.supports_macros else None,
+                    self._macro_label(current) if self.d.supports_macros else None,
                 )
         version = 1
         if current is not None:  # numbers are never reused, dropped versions included
@@ -244,6 +317,20 @@ class Registry:
                 model_row["score_source"] = score_source
             if intervals is not None:
                 model_row["intervals"] = bool(intervals)
+        if model_row["score_source"]:
+            model_row["score_source"] = self._qualified_source(model_row["score_source"])
+        notes: list[str] = []
+        if not promote and self._live_elsewhere(current, model_row):
+            # the model row says where the live view and macro are: a version that is not
+            # made live must not move them, nor make the row point where they are not
+            notes.append(
+                f"view_schema {view_schema!r} was not applied: version {version} of {name!r} "
+                f"is held, and the live version {current['live_version']} keeps serving "
+                f"from {self._view_label(current)}; to serve version {version} from schema "
+                f"{view_schema!r}, promote it with view_schema={view_schema!r} (CLI: indb "
+                f"promote {name} {version} --view-schema {view_schema})"
+            )
+            model_row["view_schema"] = current["view_schema"]
         status = "live" if promote else "held"
         from indb import __version__
 
@@ -334,6 +421,8 @@ class Registry:
                     self._update_model(name, model_row)
         except EngineError as err:
             raise _conflict(err, name, version) from err
+        for note in notes:
+            warnings.warn(note, DeploymentWarning, stacklevel=2)
         return SaveOutcome(
             name,
             version,
@@ -341,7 +430,8 @@ class Registry:
             promote,
             self._view_label(model_row),
             "score_mean",
-            model_row["macro_name"] if self.d.supports_macros else None,
+            self._macro_label(model_row) if self.d.supports_macros else None,
+            tuple(notes),
         )
 
     def _latest_version(self, name: str) -> dict[str, Any] | None:
@@ -356,14 +446,24 @@ class Registry:
         )
         return rows[-1] if rows else None
 
-    def promote(self, name: str, version: int) -> None:
-        """Point the stable view (and macro) at ``version``; the previous live version retires."""
-        model_row = self.model(name)
+    def promote(self, name: str, version: int, *, view_schema: str | None = None) -> None:
+        """Point the stable view (and macro) at ``version``; the previous live version retires.
+
+        The view and macro stay where the model's live ones are, unless ``view_schema``
+        moves them: the old ones are then dropped in the same transaction.
+        """
+        current = self.model(name)
+        self.check_model_name(name)
+        model_row = dict(current)
+        if view_schema is not None:
+            model_row["view_schema"] = W.check_name(view_schema, "view schema")
         row = self._version_row(name, version)
         if row["status"] == "dropped":
             raise RegistryError(f"version {version} of {name!r} was dropped")
-        result = FitResult.from_dict(json.loads(row["result_json"]))
-        self._check_not_foreign(name, model_row, model_row)
+        result = self._result(row)
+        if model_row.get("score_source"):
+            model_row["score_source"] = self._qualified_source(model_row["score_source"])
+        self._check_not_foreign(name, model_row, current)
         deploy = self._deploy_statements(name, result, model_row)
         now = _now()
         with self.engine.transaction():
@@ -420,10 +520,79 @@ class Registry:
             "converged": [ra.converged, rb.converged],
         }
 
+    def check_model_name(self, name: str) -> str:
+        """Refuse a model name that is not a plain name, or whose scoring view or macro
+        would hide a built-in object of the engine (or be hidden by one), such as DuckDB's
+        ``sqlite_master`` view."""
+        W.check_name(name, "model name")
+        query = self.d.reserved_objects_query(
+            name, f"{name}_score" if self.d.supports_macros else None
+        )
+        if query is None:
+            return name
+        found = sorted({str(n) for n in self.engine.fetch_columns(self.d.render(query))["name"]})
+        if found:
+            raise SpecError(
+                f"model name {name!r} is taken by the {self.d.name} built-in object(s) "
+                f"{found}: its scoring view or macro would hide them (or be hidden by them); "
+                "choose another model name"
+            )
+        return name
+
+    def scoring_source_for(self, model_row: dict[str, Any], dialect: Dialect) -> str | None:
+        """The model's scoring source as SQL for ``dialect`` should name it: as stored for
+        this engine's own dialect; for another engine, without this engine's current
+        catalog and schema (names that mean nothing there)."""
+        text = model_row.get("score_source")
+        if not text or dialect.name == self.d.name:
+            return text
+        return relative_source(self.engine, Source.parse(text)).text
+
     # -- internals ---------------------------------------------------------------------------
     def _view_label(self, model_row: dict[str, Any]) -> str:
         schema = model_row.get("view_schema")
         return f"{schema}.{model_row['view_name']}" if schema else model_row["view_name"]
+
+    def _macro_label(self, model_row: dict[str, Any]) -> str:
+        schema = model_row.get("view_schema")
+        return f"{schema}.{model_row['macro_name']}" if schema else model_row["macro_name"]
+
+    def _qualified_source(self, text: str) -> str:
+        """A scoring source's text with its tables named as the engine resolves them now."""
+        return qualify_source(self.engine, Source.parse(text)).text
+
+    def _schema_key(self, schema: str | None) -> str:
+        """The schema a view_schema setting puts objects in (None: the current schema),
+        spelled as the engine compares names."""
+        name = schema if schema is not None else self.engine.current_location()[1]
+        return name.lower() if self.d.names_ignore_case else name
+
+    def _same_place(self, a: dict[str, Any], b: dict[str, Any]) -> bool:
+        """Whether two model rows put the scoring view and macro on the same objects."""
+
+        def names(row: dict[str, Any]) -> tuple[str, ...]:
+            out = (row["view_name"], row.get("macro_name") or "")
+            return tuple(n.lower() for n in out) if self.d.names_ignore_case else out
+
+        if names(a) != names(b):
+            return False
+        if a.get("view_schema") == b.get("view_schema"):
+            return True
+        return self._schema_key(a.get("view_schema")) == self._schema_key(b.get("view_schema"))
+
+    def _live_elsewhere(self, live: dict[str, Any] | None, target: dict[str, Any]) -> bool:
+        """Whether ``live`` (a model row) has a live view and macro that ``target`` would
+        place elsewhere."""
+        return (
+            live is not None
+            and live.get("live_version") is not None
+            and not self._same_place(live, target)
+        )
+
+    def _live_model_row(self, name: str) -> dict[str, Any] | None:
+        if not self.exists():
+            return None
+        return next((m for m in self.models() if m["model_name"] == name), None)
 
     def _check_not_foreign(
         self, name: str, model_row: dict[str, Any], current: dict[str, Any] | None
@@ -438,8 +607,7 @@ class Registry:
         ours = (
             current is not None
             and current.get("live_version") is not None
-            and current.get("view_schema") == schema
-            and current.get("view_name") == view
+            and self._same_place(current, model_row)
         )
         if ours:
             return
@@ -488,6 +656,13 @@ class Registry:
             result, self.d, rel, intervals=bool(model_row.get("intervals")), source_columns=cols
         )
         stmts = []
+        live = self._live_model_row(name)
+        if self._live_elsewhere(live, model_row):
+            # the view and macro move: the old ones would go on serving a retired version,
+            # unknown to the registry. Dropped first, in the same transaction; on Spark
+            # (no transactions) a failure after this leaves no stale view, and promoting
+            # again with the new view_schema completes the move.
+            stmts += self._drop_statements(live)
         if model_row.get("view_schema"):
             stmts.append(self.d.render(_create_schema(model_row["view_schema"])))
         view = W.create_view(model_row.get("view_schema"), model_row["view_name"], query)
@@ -507,6 +682,14 @@ class Registry:
                     W.mean_expression(result, self.d),
                 )
             )
+        return stmts
+
+    def _drop_statements(self, model_row: dict[str, Any]) -> list[str]:
+        """DROP the scoring view and macro a model row names."""
+        schema = model_row.get("view_schema")
+        stmts = [self.d.render(W.drop_view(schema, model_row["view_name"]))]
+        if self.d.supports_macros and model_row.get("macro_name"):
+            stmts.append(self.d.drop_macro(schema, model_row["macro_name"]))
         return stmts
 
     def _make_live(

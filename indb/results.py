@@ -13,6 +13,17 @@ from typing import Any
 
 import numpy as np
 
+#: Coefficients up to which a result carries the whole covariance matrix (32 MB of doubles
+#: at this size); above, ``covariance`` is None and the standard errors (its diagonal, all
+#: that inference needs) are in the coefficient table.
+COVARIANCE_MAX_TERMS = 2_000
+
+#: Coefficients up to which the covariance goes into :meth:`FitResult.to_dict` (the JSON
+#: output and each registry version): p^2 numbers, about 0.5 MB here but 250 MB at 3,000
+#: coefficients. It is also the most a scoring view's interval SQL takes
+#: (``writeback.MAX_SE_TERMS``), the one use a stored version has for it.
+STORED_COVARIANCE_MAX_TERMS = 150
+
 
 @dataclass(frozen=True)
 class Coefficient:
@@ -55,7 +66,10 @@ class FitResult:
 
     Attributes are named in the trade's terms. ``statistic`` in the coefficient table is a
     z statistic when the dispersion is fixed and a t statistic (``df_resid`` degrees of
-    freedom) when it is estimated; ``test`` says which.
+    freedom) when it is estimated; ``test`` says which. ``covariance`` is the coefficients'
+    covariance matrix (NaN rows and columns at aliased terms) for models of up to
+    :data:`COVARIANCE_MAX_TERMS` coefficients and ``None`` above; a result read back from
+    JSON or the registry has it up to :data:`STORED_COVARIANCE_MAX_TERMS` coefficients.
     """
 
     family: str
@@ -63,7 +77,7 @@ class FitResult:
     response: str
     source: str
     coefficients: tuple[Coefficient, ...]
-    covariance: np.ndarray
+    covariance: np.ndarray | None
     deviance: float
     null_deviance: float
     pearson_chi2: float
@@ -132,7 +146,12 @@ class FitResult:
             "response": self.response,
             "source": self.source,
             "coefficients": [_clean(asdict(c)) for c in self.coefficients],
-            "covariance": [[_num(v) for v in row] for row in self.covariance.tolist()],
+            "covariance": (
+                [[_num(v) for v in row] for row in self.covariance.tolist()]
+                if self.covariance is not None
+                and len(self.coefficients) <= STORED_COVARIANCE_MAX_TERMS
+                else None
+            ),
             "deviance": _num(self.deviance),
             "null_deviance": _num(self.null_deviance),
             "pearson_chi2": _num(self.pearson_chi2),
@@ -202,14 +221,21 @@ class FitResult:
             )
             for r in d.get("iteration_log", [])
         )
-        cov = np.array([[f(v) for v in row] for row in d.get("covariance", [])], dtype=float)
+        stored = d.get("covariance")
+        cov = (
+            np.array([[f(v) for v in row] for row in stored], dtype=float).reshape(
+                len(coefs), len(coefs)
+            )
+            if stored is not None
+            else None
+        )
         return FitResult(
             family=d["family"],
             link=d["link"],
             response=d["response"],
             source=d["source"],
             coefficients=coefs,
-            covariance=cov.reshape(len(coefs), len(coefs)),
+            covariance=cov,
             deviance=f(d["deviance"]),
             null_deviance=f(d["null_deviance"]),
             pearson_chi2=f(d["pearson_chi2"]),

@@ -145,9 +145,10 @@ def retrain(
     deploy = spec_file.deploy
     engine_opts = dict(spec_file.engine)
     db = engine_opts.pop("db", None)
-    engine = connect(db, **engine_opts)
+    engine = connect(db, read_only=dry_run, **engine_opts)
     try:
         reg = Registry(engine, deploy.get("registry_schema", DEFAULT_SCHEMA))
+        reg.check_model_name(name)  # before the fit, not after it
         live: FitResult | None = None
         live_version: int | None = None
         if reg.exists() and any(m["model_name"] == name for m in reg.models()):
@@ -199,7 +200,7 @@ def retrain(
             # same spec and data as a held version: promote it if the gates now pass (they
             # may have been loosened), otherwise it stays held and the exit code says so
             if passed:
-                reg.promote(name, outcome.version)
+                reg.promote(name, outcome.version, view_schema=deploy.get("view_schema"))
                 status = "promoted"
             else:
                 status = "held"

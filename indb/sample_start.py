@@ -12,7 +12,7 @@ import warnings
 import numpy as np
 
 from indb import solver
-from indb.design import Design
+from indb.design import Design, Scaling
 from indb.errors import EngineError, SpecError, UnsupportedError
 from indb.fitrun import FitRun
 from indb.irls import irls, working_dispersion
@@ -103,20 +103,20 @@ def sample_start(
     # a 0/1 column or per standard deviation of a value) starts at 0, like an aliased one:
     # a boundary estimate such as -30 for an empty cell would start the full table far off.
     phi = working_dispersion(ctx.spec.family, state.sums, sol)
-    se = np.sqrt(np.clip(np.diag(sol.inv_info) * phi, 0.0, None))
+    se = np.sqrt(np.clip(sol.inv_info.diagonal() * phi, 0.0, None))
     beta = np.where(se < SAMPLE_MAX_SE, sol.beta, 0.0)
     scans = sum(1 + r.step_halvings for r in run.log[log_size:])
     run.sample = (state.sums.n, scans, time.perf_counter() - t0)
     return beta, (track.b0 if track is not None else None)
 
 
-def start_from(spec: ModelSpec, design: Design, summary: Summary) -> np.ndarray | None:
-    """Warm-start coefficients given on the original scale (by term name), standardized."""
+def start_from(spec: ModelSpec, design: Design, scaling: Scaling) -> np.ndarray | None:
+    """Warm-start coefficients given on the original scale (by term name), standardized
+    and rescaled as the fit's response (:class:`indb.design.Scaling`)."""
     if not spec.start:
         return None
     # Terms the design no longer has (a level that vanished, a dropped column) are ignored:
     # start values only steer the first step, never the answer.
     given = dict(spec.start)
     orig = np.array([given.get(t, 0.0) for t in design.terms])
-    t = solver.back_transform(design)
-    return np.linalg.solve(t, orig)
+    return scaling.to_fit(solver.standardize(design, orig), design.intercept)

@@ -1,6 +1,8 @@
 """Numerical core: assemble X'WX from grouped sums, solve the IRLS update, derive inference.
 
-numpy/scipy only: sufficient statistics in, numbers out. No I/O, no printing.
+numpy/scipy only: sufficient statistics in, numbers out. No I/O, no printing. X'WX is a
+sparse matrix (its categorical blocks are diagonal within a factor and sparse between
+factors); :mod:`indb.normal_eq` solves it through that structure.
 """
 
 from __future__ import annotations
@@ -9,18 +11,46 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import linalg, special, stats
+from scipy import sparse, special, stats
+from scipy.sparse import linalg as splinalg
 
-from indb.design import Design
+from indb.design import ColumnGroup, Design, cell_columns, column_groups, level_codes
+from indb.errors import SpecError
+from indb.normal_eq import (
+    ALIAS_TOL,
+    MAX_REST_COLUMNS,
+    InverseInfo,
+    Solution,
+    condition_number,
+    solve,
+)
+from indb.plan.irls_scan import MAX_CELL_JOIN
 
-ALIAS_TOL = 1e-10  # squared sine below which a (standardized) column counts as aliased
+__all__ = [
+    "ALIAS_TOL",
+    "InverseInfo",
+    "Solution",
+    "Sums",
+    "assemble",
+    "back_transform",
+    "check_size",
+    "condition_number",
+    "dispersion",
+    "in_cell_order",
+    "original_scale",
+    "solve",
+    "standardize",
+    "step_in_se",
+    "wald",
+    "zero_nulls",
+]
 
 
 @dataclass(frozen=True)
 class Sums:
-    """Totals of one IRLS scan, assembled into matrices."""
+    """Totals of one IRLS scan, assembled into matrices (X'WX sparse, symmetric)."""
 
-    xtwx: np.ndarray
+    xtwx: sparse.csr_array
     xtwz: np.ndarray
     deviance: float
     pearson: float
@@ -32,47 +62,109 @@ class Sums:
     cell_keys: list[tuple[str, ...]] | None = None
 
 
-def in_cell_order(design: Design, cells: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """The grouped rows sorted by cell: engines return groups in any order (DuckDB's order
-    varies with thread timing), and floating-point sums over them must not, so that the same
-    data give the same bits."""
-    if not design.factors or len(cells["n"]) < 2:
-        return cells
-    keys = [
-        [(v is None, "" if v is None else str(v)) for v in cells[f.alias]] for f in design.factors
-    ]
-    order = sorted(range(len(cells["n"])), key=lambda r: tuple(k[r] for k in keys))
-    idx = np.asarray(order, dtype=np.intp)
-    return {k: np.asarray(v)[idx] for k, v in cells.items()}
+def check_size(design: Design) -> None:
+    """Refuse, before any IRLS scan, a design whose columns outside its largest categorical
+    term exceed :data:`~indb.normal_eq.MAX_REST_COLUMNS`: those are solved as a dense
+    matrix (the largest term costs only a vector; see :mod:`indb.normal_eq`)."""
+    groups = [g for g in column_groups(design) if g.factors]
+    largest = max(groups, key=lambda g: len(g.columns), default=None)
+    rest = design.p - (len(largest.columns) if largest is not None else 0)
+    if rest <= MAX_REST_COLUMNS:
+        return
+    others = sorted(
+        (g for g in groups if g is not largest), key=lambda g: len(g.columns), reverse=True
+    )
+    shown = ", ".join(
+        f"{_term_name(design, g)} ({len(g.columns):,})" for g in [largest, *others][:4] if g
+    )
+    raise SpecError(
+        f"the design has {design.p:,} coefficients, {rest:,} of them outside its largest "
+        f"categorical term; indb solves those as a dense matrix and takes at most "
+        f"{MAX_REST_COLUMNS:,} (one categorical column may have up to max_levels levels, the "
+        f"others together {MAX_REST_COLUMNS:,} coefficients). Largest terms: {shown}. Group "
+        "rare levels of the other categorical columns in the query, or leave some out"
+    )
 
 
-def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...] = ()) -> Sums:
-    """Build X'WX and X'Wz (standardized design) from per-cell sums of the IRLS scan."""
-    cells = in_cell_order(design, cells)
+def _term_name(design: Design, g: ColumnGroup) -> str:
+    term = design.columns[g.columns[0]].term
+    return repr(term.split("=")[0] if "=" in term else term)
+
+
+def in_cell_order(
+    design: Design, cells: dict[str, np.ndarray]
+) -> tuple[dict[str, np.ndarray], list[np.ndarray]]:
+    """The grouped rows sorted by cell, and each factor's level codes in that order.
+
+    Engines return groups in any order (DuckDB's order varies with thread timing), and
+    floating-point sums over them must not, so that the same data give the same bits."""
+    if not design.factors:
+        return cells, []
+    codes = [level_codes(f.levels, np.asarray(cells[f.alias])) for f in design.factors]
+    if len(cells["n"]) < 2:
+        return cells, codes
+    sizes = [int(c.max()) + 1 for c in codes]
+    if math.prod(sizes) < 2**62:  # one mixed-radix key: one argsort instead of a lexsort
+        key = np.zeros(len(codes[0]), dtype=np.int64)
+        for c, size in zip(codes, sizes, strict=True):
+            key = key * size + c
+        if (np.diff(key) > 0).all():
+            return cells, codes
+        order = np.argsort(key, kind="stable")
+    else:
+        order = np.lexsort(codes[::-1])
+    return {k: np.asarray(v)[order] for k, v in cells.items()}, [c[order] for c in codes]
+
+
+def assemble(
+    design: Design,
+    cells: dict[str, np.ndarray],
+    extra: tuple[str, ...] = (),
+    codes: list[np.ndarray] | None = None,
+) -> Sums:
+    """Build X'WX (sparse) and X'Wz (standardized design) from per-cell sums of the IRLS
+    scan: each cell adds its sums to the design columns it belongs to, one entry per pair
+    of column groups (never a cells x p indicator matrix).
+
+    ``codes``: the cells' level codes when ``cells`` are already in cell order (as
+    :func:`in_cell_order` returns them)."""
+    if codes is None:
+        cells, codes = in_cell_order(design, cells)
     rows = len(cells["n"])
     p = design.p
-    ind = np.ones((rows, p))
-    for f_i, f in enumerate(design.factors):
-        lv = cells[f.alias]
-        for j, c in enumerate(design.columns):
-            if f_i in c.factors:
-                level = c.levels[c.factors.index(f_i)]
-                ind[:, j] *= lv == level
-    by_value: dict[int, list[int]] = {}
-    for j, c in enumerate(design.columns):
-        by_value.setdefault(c.value, []).append(j)
-    xtwx = np.zeros((p, p))
+    groups = column_groups(design)
+    where = (
+        cell_columns(design, codes)
+        if design.factors
+        else [np.full(rows, g.columns[0], dtype=np.int64) for g in groups]
+    )
     xtwz = np.zeros(p)
-    keys = sorted(by_value)
-    for ia, a in enumerate(keys):
-        ca = by_value[a]
-        xtwz[ca] = ind[:, ca].T @ zero_nulls(cells[f"t_{a}"])
-        for b in keys[ia:]:
-            cb = by_value[b]
-            s = zero_nulls(cells[f"s_{min(a, b)}_{max(a, b)}"])
-            block = (ind[:, ca] * s[:, None]).T @ ind[:, cb]
-            xtwx[np.ix_(ca, cb)] = block
-            xtwx[np.ix_(cb, ca)] = block.T
+    parts_i: list[np.ndarray] = []
+    parts_j: list[np.ndarray] = []
+    parts_v: list[np.ndarray] = []
+    for ga, g in enumerate(groups):
+        ia = where[ga]
+        has_a = ia >= 0
+        xtwz += np.bincount(
+            ia[has_a], weights=zero_nulls(cells[f"t_{g.value}"])[has_a], minlength=p
+        )
+        for gb in range(ga, len(groups)):
+            h = groups[gb]
+            ib = where[gb]
+            lo, hi = min(g.value, h.value), max(g.value, h.value)
+            s = zero_nulls(cells[f"s_{lo}_{hi}"])
+            i, j, v = _block_entries(g, h, ia, ib, s, p)
+            parts_i.append(i)
+            parts_j.append(j)
+            parts_v.append(v)
+            if ga != gb:
+                parts_i.append(j)
+                parts_j.append(i)
+                parts_v.append(v)
+    xtwx = sparse.coo_array(
+        (np.concatenate(parts_v), (np.concatenate(parts_i), np.concatenate(parts_j))),
+        shape=(p, p),
+    ).tocsr()  # sums the duplicates
     return Sums(
         xtwx=xtwx,
         xtwz=xtwz,
@@ -83,12 +175,38 @@ def assemble(design: Design, cells: dict[str, np.ndarray], extra: tuple[str, ...
         n_weighted=float(zero_nulls(cells["nw"]).sum()),
         extras={k: float(zero_nulls(cells[k]).sum()) for k in extra},
         cells=rows,
+        # the next scan joins a table of the cells' effects when there are few enough
+        # (plan.irls_scan.MAX_CELL_JOIN), one table per factor set otherwise
         cell_keys=(
             list(zip(*(cells[f.alias].tolist() for f in design.factors), strict=True))
-            if design.factors
+            if design.factors and rows <= MAX_CELL_JOIN
             else None
         ),
     )
+
+
+def _block_entries(
+    g: ColumnGroup, h: ColumnGroup, ia: np.ndarray, ib: np.ndarray, s: np.ndarray, p: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The entries (i, j, value) the cells give the block of X'WX between column groups
+    ``g`` and ``h`` (``ia``, ``ib``: each cell's column in them, -1 for none).
+
+    When one side is a single column (no factors) or both have the same factors, a cell's
+    position follows from one side's column: those blocks are summed per column here, so
+    they reach the sparse matrix as at most p entries. Blocks between different factors
+    keep one entry per cell (the sparse matrix sums duplicates)."""
+    both = (ia >= 0) & (ib >= 0)
+    i, j, v = ia[both], ib[both], s[both]
+    if g.factors and h.factors and g.factors != h.factors:
+        return i, j, v
+    key, other = (i, j) if g.factors else (j, i)
+    sums = np.bincount(key, weights=v, minlength=p)
+    hit = np.flatnonzero(np.bincount(key, minlength=p))
+    partner = np.zeros(p, dtype=np.int64)
+    partner[key] = other
+    if key is i:
+        return hit, partner[hit], sums[hit]
+    return partner[hit], hit, sums[hit]
 
 
 def zero_nulls(a: np.ndarray) -> np.ndarray:
@@ -96,85 +214,60 @@ def zero_nulls(a: np.ndarray) -> np.ndarray:
     return np.nan_to_num(np.asarray(a, dtype=float), nan=0.0)
 
 
-@dataclass(frozen=True)
-class Solution:
-    """Solved update: coefficients (0 where aliased), aliased mask, inverse information."""
-
-    beta: np.ndarray
-    aliased: np.ndarray
-    inv_info: np.ndarray  # (X'WX)^-1 on kept columns, zeros elsewhere
-
-
-def solve(xtwx: np.ndarray, xtwz: np.ndarray, tol: float = ALIAS_TOL) -> Solution:
-    """Solve X'WX beta = X'Wz, setting aside columns that are (near) linear combinations of
-    earlier ones (sequential pivoting in design order, on the correlation-scaled matrix)."""
-    p = len(xtwz)
-    d = np.sqrt(np.clip(np.diag(xtwx), 0.0, None))
-    aliased = np.zeros(p, dtype=bool)
-    kept: list[int] = []
-    lower = np.zeros((p, p))
-    scale = np.where(d > 0, d, 1.0)
-    corr = xtwx / np.outer(scale, scale)
-    for j in range(p):
-        if d[j] <= 0 or not np.isfinite(d[j]):
-            aliased[j] = True
-            continue
-        if kept:
-            k = len(kept)
-            y = linalg.solve_triangular(lower[:k, :k], corr[kept, j], lower=True)
-            r = corr[j, j] - float(y @ y)
-        else:
-            y = np.zeros(0)
-            r = corr[j, j]
-        if r <= tol:
-            aliased[j] = True
-            continue
-        k = len(kept)
-        lower[k, :k] = y
-        lower[k, k] = math.sqrt(r)
-        kept.append(j)
-    beta = np.zeros(p)
-    inv_info = np.zeros((p, p))
-    if kept:
-        ck = corr[np.ix_(kept, kept)]
-        cf = linalg.cho_factor(ck, lower=True)
-        rhs = xtwz[kept] / scale[kept]
-        beta[kept] = linalg.cho_solve(cf, rhs) / scale[kept]
-        inv = linalg.cho_solve(cf, np.eye(len(kept)))
-        inv_info[np.ix_(kept, kept)] = inv / np.outer(scale[kept], scale[kept])
-    return Solution(beta=beta, aliased=aliased, inv_info=inv_info)
-
-
-def condition_number(xtwx: np.ndarray, aliased: np.ndarray) -> float:
-    """Condition number of the correlation-scaled X'WX on the kept columns (reported once
-    per fit: an eigen-decomposition per iteration cost seconds at p ~ 600)."""
-    kept = ~aliased
-    if not kept.any():
-        return math.nan
-    sub = xtwx[np.ix_(kept, kept)]
-    d = np.sqrt(np.diag(sub))
-    ev = np.linalg.eigvalsh(sub / np.outer(d, d))
-    return float(ev[-1] / ev[0]) if ev[0] > 0 else math.inf
-
-
-def back_transform(design: Design) -> np.ndarray:
-    """Matrix T with beta_original = T @ beta_standardized."""
+def back_transform(design: Design) -> sparse.csr_array:
+    """Matrix T with beta_original = T @ beta_standardized (sparse: the identity, 1 / scale
+    on the diagonal of numeric columns, and the centred columns' shifts in the intercept's
+    row)."""
     p = design.p
-    t = np.eye(p)
+    diag = np.ones(p)
+    rows: list[int] = []
+    cols: list[int] = []
+    vals: list[float] = []
     icpt = 0 if design.intercept else None
     for j, c in enumerate(design.columns):
         if c.value == 0:
             continue
         v = design.values[c.value]
-        t[j, j] = 1.0 / v.scale
+        diag[j] = 1.0 / v.scale
         if v.centered and icpt is not None:
-            t[icpt, j] = -v.center / v.scale
-    return t
+            rows.append(icpt)
+            cols.append(j)
+            vals.append(-v.center / v.scale)
+    t = sparse.coo_array((vals, (rows, cols)), shape=(p, p)) + sparse.diags_array(diag)
+    return t.tocsr()
 
 
-def step_in_se(old: np.ndarray, new: np.ndarray, inv_info: np.ndarray, dispersion: float) -> float:
+def standardize(design: Design, beta: np.ndarray) -> np.ndarray:
+    """Coefficients on the original scale to the standardized design's (T^-1 beta)."""
+    # T is upper triangular (the intercept's row is the first) with a non-zero diagonal
+    t = back_transform(design)
+    return splinalg.spsolve_triangular(t, np.asarray(beta, float), lower=False)
+
+
+def original_scale(
+    inv: InverseInfo, t: sparse.csr_array, dispersion: float, full: bool
+) -> tuple[np.ndarray, np.ndarray | None]:
+    """Variances of the original-scale coefficients T beta, diag(phi T V T'), and with
+    ``full`` the whole covariance phi T V T' (p x p: callers keep p small)."""
+    if full:
+        v = inv.dense()
+        cov = dispersion * (t @ (t @ v).T).T
+        return np.diag(cov).copy(), cov
+    var = np.zeros(t.shape[0])
+    nnz = np.diff(t.indptr)
+    single = np.flatnonzero(nnz <= 1)
+    diag_v = inv.diagonal()
+    var[single] = t.diagonal()[single] ** 2 * diag_v[single]
+    for i in np.flatnonzero(nnz > 1):  # the intercept's row: it and the centred columns
+        lo, hi = t.indptr[i], t.indptr[i + 1]
+        idx, w = t.indices[lo:hi], t.data[lo:hi]
+        var[i] = float(w @ inv.block(idx) @ w)
+    return dispersion * var, None
+
+
+def step_in_se(old: np.ndarray, new: np.ndarray, inv_info: InverseInfo, dispersion: float) -> float:
     """Largest coefficient change in units of its standard error (aliased columns skipped)."""
-    var = np.diag(inv_info) * dispersion
+    var = inv_info.diagonal() * dispersion
     ok = var > 0
     if not ok.any():
         return 0.0
@@ -202,17 +295,22 @@ class Inference:
     p_value: np.ndarray
     ci_low: np.ndarray
     ci_high: np.ndarray
-    covariance: np.ndarray
+    covariance: np.ndarray | None
 
 
 def wald(
-    beta: np.ndarray, cov: np.ndarray, aliased: np.ndarray, df: float | None, confidence: float
+    beta: np.ndarray,
+    variance: np.ndarray,
+    aliased: np.ndarray,
+    df: float | None,
+    confidence: float,
+    cov: np.ndarray | None = None,
 ) -> Inference:
-    """Wald statistics: z (df None) or t with ``df`` degrees of freedom."""
-    se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    """Wald statistics: z (df None) or t with ``df`` degrees of freedom, from the
+    coefficients' variances (``cov``, when given, is passed on with NaN at aliased ones)."""
+    se = np.sqrt(np.clip(np.asarray(variance, float), 0.0, None))
     est = beta.astype(float).copy()
     est[aliased] = np.nan
-    se = se.copy()
     se[aliased] = np.nan
     with np.errstate(divide="ignore", invalid="ignore"):
         stat = est / se
@@ -223,9 +321,10 @@ def wald(
         dfp = max(df, 1e-12)
         pv = 2.0 * stats.t.sf(np.abs(stat), dfp)
         q = stats.t.ppf(0.5 + confidence / 2.0, dfp)
-    cov = cov.copy()
-    cov[aliased, :] = np.nan
-    cov[:, aliased] = np.nan
+    if cov is not None:
+        cov = cov.copy()
+        cov[aliased, :] = np.nan
+        cov[:, aliased] = np.nan
     return Inference(est, se, stat, pv, est - q * se, est + q * se, cov)
 
 

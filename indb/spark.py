@@ -130,6 +130,28 @@ class SparkDialect(Dialect):
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         return exp.Anonymous(this="PERCENTILE", expressions=[x, S.num(q)])
 
+    # Spark's `/` is true division and returns NULL for a zero divisor (an error in ANSI mode,
+    # the default from Spark 4); ln and log return NULL for x <= 0; sqrt and exp follow Java's
+    # Math (IEEE-754), and so does pow except 1 ^ NaN and (-1) ^ +/-inf (NaN in Java, 1 in C).
+    # `DIV` truncates (its result is a BIGINT).
+    log_nonpositive = "null"
+    zero_division = "null"
+
+    def ieee(self, node: exp.Expression) -> exp.Expression:
+        a = node.this
+        if isinstance(node, S.IeeeLn):
+            return S.ieee_log_guarded(a, exp.Ln(this=a.copy()))
+        if isinstance(node, S.IeeeLog10):
+            return S.ieee_log_guarded(a, exp.Anonymous(this="LOG10", expressions=[a.copy()]))
+        if isinstance(node, S.IeeeSqrt):
+            return exp.Sqrt(this=a)
+        if isinstance(node, S.IeeeExp):
+            return exp.Exp(this=a)
+        if isinstance(node, S.IeeePow):
+            b = node.expression
+            return S.ieee_pow_unit_base(a, b, exp.Pow(this=a.copy(), expression=b.copy()))
+        return S.ieee_div_guarded(a, node.expression)
+
     def file_scan(self, path: str) -> exp.Expression:
         low = path.lower().rstrip("/")
         fmt = next((f for suffix, f in _FILE_FORMATS.items() if low.endswith(suffix)), None)
@@ -286,6 +308,32 @@ class SparkEngine(Engine):
         except self._errors as err:
             raise _wrap(err, sql) from err
         return [(f.name, f.dataType.simpleString()) for f in fields]
+
+    def current_location(self) -> tuple[str, str]:
+        try:
+            catalog = self.session.catalog.currentCatalog()
+            database = self.session.catalog.currentDatabase()
+        except self._errors as err:
+            raise _wrap(err, "-- catalog.currentDatabase()") from err
+        return str(catalog), str(database)
+
+    def resolve_table(self, parts: Sequence[str]) -> tuple[str, ...] | None:
+        # The catalog API resolves a name as a query does (temporary views first) and
+        # returns its catalog and namespace. A session's temporary view has no name in the
+        # catalog: it stays as written (a persistent view may not read one anyway).
+        name = ".".join(self.dialect.quote(p) for p in parts)
+        try:
+            if not self.session.catalog.tableExists(name):
+                return None
+            table = self.session.catalog.getTable(name)
+        except self._errors:
+            return None
+        namespace = [str(n) for n in (table.namespace or [])]
+        if table.isTemporary:
+            # a global temporary view is reached through its namespace global_temp
+            return (*namespace, str(table.name)) if namespace else None
+        catalog = getattr(table, "catalog", None)
+        return tuple(p for p in (catalog, *namespace, str(table.name)) if p)
 
     @contextlib.contextmanager
     def transaction(self) -> Iterator[None]:

@@ -17,6 +17,13 @@ from indb.errors import SpecError
 from indb.families import Family, NegativeBinomial, canonical_link, make_family
 from indb.links import Link, make_link
 
+#: Largest max_levels accepted, the largest size measured (benchmarks/RESULTS.md, "Many
+#: levels"): one categorical column costs the fit memory and time in proportion to its
+#: levels (indb.normal_eq), but write-back and the scoring view's CASE of one branch per
+#: level grow with them too. Every other categorical column counts towards the dense part,
+#: capped by indb.normal_eq.MAX_REST_COLUMNS.
+MAX_LEVELS_LIMIT = 50_000
+
 _FILE_SUFFIXES = (".parquet", ".pq", ".csv", ".tsv", ".csv.gz", ".tsv.gz", ".json", ".ndjson")
 _QUERY_START = re.compile(r"^\s*(\(|select\b|with\b|from\b|values\b|table\b)", re.IGNORECASE)
 
@@ -151,8 +158,11 @@ class ModelSpec:
             raise SpecError(f"tol must be a number in (0, 1); got {tol!r}")
         if not (isinstance(max_iter, int) and max_iter >= 1):
             raise SpecError(f"max_iter must be a positive integer; got {max_iter!r}")
-        if not (isinstance(max_levels, int) and max_levels >= 2):
-            raise SpecError(f"max_levels must be an integer >= 2; got {max_levels!r}")
+        if not (isinstance(max_levels, int) and 2 <= max_levels <= MAX_LEVELS_LIMIT):
+            raise SpecError(
+                f"max_levels must be an integer from 2 to {MAX_LEVELS_LIMIT:,}; got "
+                f"{max_levels!r} (the README's 'Many levels' section gives the limits)"
+            )
         if not (0 < confidence < 1):
             raise SpecError(f"confidence must be in (0, 1); got {confidence!r}")
         for name, expr in (

@@ -60,12 +60,67 @@ class RowPick(*_FUNC):
         return float(self.args["fraction"].name)
 
 
+class IeeeLn(*_FUNC):
+    """Natural log with IEEE-754 results: ln(0) = -inf, ln(x < 0) = NaN, never an error or
+    NULL (PostgreSQL raises and Spark returns NULL there). User expressions carried between
+    engines use these ``Ieee*`` nodes (:mod:`indb.portable`); indb's own SQL does not."""
+
+    arg_types = {"this": True}
+
+
+class IeeeLog10(*_FUNC):
+    """Base-10 log with IEEE-754 results (as :class:`IeeeLn`)."""
+
+    arg_types = {"this": True}
+
+
+class IeeeSqrt(*_FUNC):
+    """Square root with IEEE-754 results: sqrt(x < 0) = NaN, never an error."""
+
+    arg_types = {"this": True}
+
+
+class IeeeExp(*_FUNC):
+    """e^x with IEEE-754 results: +inf on overflow, 0 on underflow, never an error."""
+
+    arg_types = {"this": True}
+
+
+class IeeePow(*_FUNC):
+    """x^y with C's ``pow`` results: NaN for a negative base and a non-integer exponent,
+    +/-inf for a zero base and a negative exponent, never an error."""
+
+    arg_types = {"this": True, "expression": True}
+
+
+class IeeeDiv(*_FUNC):
+    """``this / expression`` as the engine divides these operands, except that a zero
+    divisor gives IEEE-754's +/-inf or NaN (DuckDB's answer) instead of an error or NULL.
+    The operands' types decide the kind of division: cast them to DOUBLE for true division."""
+
+    arg_types = {"this": True, "expression": True}
+
+
 CUSTOM_NODES: tuple[type[exp.Expression], ...] = (
     LogGamma,
     IsFinite,
     PreciseSum,
     LevelText,
     RowPick,
+    IeeeLn,
+    IeeeLog10,
+    IeeeSqrt,
+    IeeeExp,
+    IeeePow,
+    IeeeDiv,
+)
+IEEE_NODES: tuple[type[exp.Expression], ...] = (
+    IeeeLn,
+    IeeeLog10,
+    IeeeSqrt,
+    IeeeExp,
+    IeeePow,
+    IeeeDiv,
 )
 
 
@@ -194,17 +249,30 @@ def fn(name: str, *args: Expr) -> Expr:
 
 
 def greatest(*args: Expr) -> Expr:
-    # ignore_nulls: our arguments are never NULL, and without it sqlglot wraps every call in
-    # a NULL-propagating CASE, which bloats the SQL and slows DuckDB's planner badly.
+    """GREATEST as every engine indb renders for evaluates it: NULL arguments are skipped
+    (GREATEST(NULL, 0) = 0 on DuckDB, PostgreSQL and Spark) and NaN is larger than every
+    number (GREATEST(NaN, 0) = NaN). So it invents a value for a NULL argument: pass only
+    arguments that cannot be NULL, or guard the row first (as :meth:`indb.links.Link.mean_sql`
+    does for scoring)."""
+    # ignore_nulls=True states those engines' semantics; with False sqlglot wraps every call
+    # in a NULL-propagating CASE, which bloats the SQL and slows DuckDB's planner badly.
     return exp.Greatest(this=args[0], expressions=list(args[1:]), ignore_nulls=True)
 
 
 def least(*args: Expr) -> Expr:
+    """LEAST, with :func:`greatest`'s caveats (NULL skipped; NaN larger than every number,
+    so LEAST(NaN, 700) = 700)."""
     return exp.Least(this=args[0], expressions=list(args[1:]), ignore_nulls=True)
 
 
 def clamp(a: Expr, lo: float | None, hi: float | None) -> Expr:
-    """Clamp into [lo, hi] with GREATEST/LEAST (either bound may be omitted)."""
+    """Clamp into [lo, hi] with GREATEST/LEAST (either bound may be omitted).
+
+    Only for operands that are numbers: NULL becomes ``lo`` (or ``hi``) and NaN becomes
+    ``hi`` (see :func:`greatest`). The fit's rows are such numbers (the profile rejects NaN
+    and +/-inf in every model column and offset, and excludes or refuses NULLs, before any
+    IRLS scan); scoring rows are not, and are guarded by :meth:`indb.links.Link.mean_sql`.
+    """
     out = a
     if lo is not None:
         out = greatest(out, num(lo))
@@ -380,10 +448,9 @@ def parse_expression(sql: str, dialect: str) -> Expr:
         raise ValueError("it is not a single expression (it holds more than one statement)")
     tree = trees[0]
     banned = (exp.Block, exp.Command, exp.DDL, exp.DML, exp.Query)
+    statement = "it is not a per-row expression (statements and subqueries are not allowed)"
     if isinstance(tree, banned) or any(isinstance(n, banned) for n in tree.walk()):
-        raise ValueError(
-            "it is not a per-row expression (statements and subqueries are not allowed)"
-        )
+        raise ValueError(statement)
     # every name must be visible to the column check: no aliases, stars, COLUMNS(...),
     # positional references or bind parameters
     hidden = {"Alias", "Star", "Placeholder", "Parameter", "Columns", "PositionalColumn"}
@@ -395,6 +462,11 @@ def parse_expression(sql: str, dialect: str) -> Expr:
                 "only column names, literals, operators and functions are allowed "
                 f"(found {n.sql(dialect)!r})"
             )
+    # A scalar expression is a sqlglot Condition (columns, literals, operators, functions,
+    # CASE, casts). Other statements parse as other node types (INSTALL x, ATTACH '..',
+    # PRAGMA, USE, SET, ...): refused here as the user's input, not left for the engine.
+    if not isinstance(tree, exp.Condition):
+        raise ValueError(statement)
     return tree
 
 
@@ -468,3 +540,129 @@ def log_gamma_series(x: Expr) -> Expr:
     prod = mul(x, *(add(x, num(float(k))) for k in range(1, int(LOG_GAMMA_SHIFT))))
     # x, z and the tests appear several times: copy() gives every occurrence its own node
     return sub(core, case([(small, ln(prod))], num(0.0))).copy()
+
+
+# -- IEEE-754 results for engines that raise or return NULL instead ---------------------------
+
+#: exp(x) is finite exactly for x <= EXP_FINITE_MAX and nonzero exactly for x >= EXP_NONZERO_MIN
+#: (the largest and smallest doubles with that property under a correctly rounded exp, as
+#: glibc's; found by bisection with Python's math.exp)
+EXP_FINITE_MAX = 709.782712893384
+EXP_NONZERO_MIN = -745.1332191019411
+
+
+def double_const(name: str) -> Expr:
+    """``CAST('NaN' AS DOUBLE)``, ``'Infinity'`` or ``'-Infinity'``: the spelling DuckDB,
+    PostgreSQL and Spark all read as the special double."""
+    return cast(text(name), "DOUBLE")
+
+
+def is_nan(x: Expr) -> Expr:
+    """x = NaN, TRUE for NaN on engines where NaN equals itself (DuckDB, PostgreSQL, Spark)."""
+    return eq(x, double_const("NaN"))
+
+
+def ieee_log_guarded(x: Expr, log: Expr) -> Expr:
+    """``log`` (a log of ``x``) where x > 0; -inf at 0; NaN below 0; NULL and NaN pass through.
+
+    NaN > 0 holds on PostgreSQL and Spark (NaN sorts above every number), so NaN reaches the
+    engine's log, which returns NaN; ``ELSE x`` keeps NULL (and NaN, on an engine where every
+    comparison with NaN is false)."""
+    return case(
+        [
+            (gt(x, num(0.0)), log),
+            (eq(x.copy(), num(0.0)), double_const("-Infinity")),
+            (lt(x.copy(), num(0.0)), double_const("NaN")),
+        ],
+        x.copy(),
+    )
+
+
+def ieee_sqrt_guarded(x: Expr) -> Expr:
+    """sqrt(x), NaN below 0 (sqrt(-0.0) = -0.0 as in IEEE-754: -0.0 < 0 is false)."""
+    return case([(lt(x, num(0.0)), double_const("NaN"))], sqrt(x.copy()))
+
+
+def _positive_sign(z: Expr) -> Expr:
+    """TRUE when the zero ``z`` is +0.0, FALSE for -0.0, from its text ('-0', '-0.0'): the
+    one test of a zero's sign that DuckDB, PostgreSQL and Spark all keep (Spark's ATAN2
+    adds 0.0 to its arguments, which turns -0.0 into +0.0)."""
+    return not_(exp.Like(this=as_text(z), expression=text("-%")))
+
+
+def _nonzero_number(e: Expr) -> bool:
+    """Whether ``e`` is a numeric literal other than 0 (possibly negated or cast)."""
+    while isinstance(e, exp.Cast | exp.Neg | exp.Paren):
+        e = e.this
+    return isinstance(e, exp.Literal) and not e.is_string and float(e.this) != 0.0
+
+
+def ieee_div_guarded(a: Expr, b: Expr) -> Expr:
+    """a / b, with IEEE-754's result for a zero divisor: NaN for 0/0 and NaN/0, otherwise
+    infinity with the sign of a times the sign of the zero."""
+    if _nonzero_number(b):  # ln(age / 40): nothing to guard
+        return div(a, b)
+    by_zero = case(
+        [
+            (is_null(a), null()),
+            (or_(is_nan(a.copy()), eq(a.copy(), num(0.0))), double_const("NaN")),
+            (
+                eq(gt(a.copy(), num(0.0)), _positive_sign(b.copy())),
+                double_const("Infinity"),
+            ),
+        ],
+        double_const("-Infinity"),
+    )
+    return case([(ne(b, num(0.0)), div(a.copy(), b.copy())), (eq(b.copy(), num(0.0)), by_zero)])
+
+
+def ieee_exp_guarded(x: Expr) -> Expr:
+    """exp(x), +inf where it overflows and 0 where it underflows (NaN stays NaN)."""
+    return case(
+        [
+            (is_nan(x), x.copy()),
+            (gt(x.copy(), num(EXP_FINITE_MAX)), double_const("Infinity")),
+            (lt(x.copy(), num(EXP_NONZERO_MIN)), num(0.0)),
+        ],
+        exp_(x.copy()),
+    )
+
+
+def ieee_pow_unit_base(a: Expr, b: Expr, pow_: Expr) -> Expr:
+    """``pow_`` (a power of a to b) with C's 1 ^ y = 1 for every y, NaN included, and
+    (-1) ^ +/-inf = 1, where Java's Math.pow (Spark) answers NaN."""
+    unit = or_(
+        and_(eq(a, num(1.0)), not_(is_null(b.copy()))),  # NULL stays NULL
+        and_(eq(a.copy(), num(-1.0)), eq(abs_(b), double_const("Infinity"))),
+    )
+    return case([(unit, num(1.0))], pow_)
+
+
+def ieee_pow_guarded(a: Expr, b: Expr) -> Expr:
+    """power(a, b) with C's results where PostgreSQL raises: NaN for a finite a < 0 and a
+    non-integer b (for a = -inf: +inf if b > 0, else 0); for a zero a and b < 0, +inf, or
+    -inf when a is -0.0 and b an odd integer. Overflow still raises on PostgreSQL."""
+    whole = eq(b.copy(), exp.Floor(this=b.copy()))
+    odd = and_(
+        whole,
+        eq(
+            sub(b.copy(), mul(num(2.0), exp.Floor(this=div(b.copy(), num(2.0))))),
+            num(1.0),
+        ),
+    )
+    zero_base = case(
+        [(and_(odd, not_(_positive_sign(a.copy()))), double_const("-Infinity"))],
+        double_const("Infinity"),
+    )
+    minus_inf = case([(gt(b.copy(), num(0.0)), double_const("Infinity"))], num(0.0))
+    return case(
+        [
+            (and_(eq(a.copy(), num(0.0)), lt(b.copy(), num(0.0))), zero_base),
+            (
+                and_(eq(a.copy(), double_const("-Infinity")), not_(whole.copy())),
+                minus_inf,
+            ),
+            (and_(lt(a.copy(), num(0.0)), not_(whole.copy())), double_const("NaN")),
+        ],
+        power(a, b),
+    )

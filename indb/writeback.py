@@ -3,7 +3,9 @@
 Pure functions from a fitted result (plain data) to syntax trees; the dialect renders them
 and the registry module runs them in one transaction. Coefficients enter the SQL as exact
 double literals; categorical levels become CASE branches on text literals escaped by the
-renderer, so no level value can change the meaning of the generated SQL.
+renderer, so no level value can change the meaning of the generated SQL. The stored offset
+is read in the dialect it was written in (:mod:`indb.portable`), and a row whose eta is not
+a valid number gets NULL scores and a flag (:meth:`indb.links.Link.mean_sql`).
 """
 
 from __future__ import annotations
@@ -21,12 +23,14 @@ from indb import sqlexpr as S
 from indb.dialect import Dialect
 from indb.errors import SpecError
 from indb.links import Link, make_link
-from indb.results import FitResult
+from indb.results import STORED_COVARIANCE_MAX_TERMS, FitResult
 from indb.splines import spline_basis_sql
 from indb.sqlexpr import Expr
 
 SRC = "indb_src"
-MAX_SE_TERMS = 150  # the standard-error quadratic form has p^2 terms; beyond this it is refused
+#: the standard-error quadratic form has p^2 terms; beyond this many coefficients it is
+#: refused (and the registry stores no covariance, results.STORED_COVARIANCE_MAX_TERMS)
+MAX_SE_TERMS = STORED_COVARIANCE_MAX_TERMS
 NAME_RE = re.compile(r"[A-Za-z][A-Za-z0-9_]{0,62}")
 
 
@@ -69,6 +73,7 @@ class _Col:
     numerics: tuple[str, ...]
     basis: int | None
     estimate: float
+    aliased: bool = False
 
 
 def _columns(res: FitResult) -> list[_Col]:
@@ -77,7 +82,7 @@ def _columns(res: FitResult) -> list[_Col]:
         raise SpecError("this result carries no design description; refit it with this version")
     out = []
     for c, coef in zip(cols, res.coefficients, strict=True):
-        est = 0.0 if coef.aliased or not math.isfinite(coef.estimate) else coef.estimate
+        unused = coef.aliased or not math.isfinite(coef.estimate)
         out.append(
             _Col(
                 c["term"],
@@ -85,7 +90,8 @@ def _columns(res: FitResult) -> list[_Col]:
                 tuple(c["levels"]),
                 tuple(c["numerics"]),
                 c["basis"],
-                est,
+                0.0 if unused else coef.estimate,
+                unused,
             )
         )
     return out
@@ -114,20 +120,47 @@ def _design_terms(res: FitResult) -> list[tuple[_Col, Expr | None, Expr | None]]
     return [(c, _indicator(c), _value(c, knots)) for c in _columns(res)]
 
 
+def written_in(res: FitResult, default: Dialect) -> Dialect:
+    """The dialect the result's user expressions (offset, weights) were written in.
+
+    Fits record it as ``spec["sql_dialect"]``; a result from before that (or built by
+    hand) is taken to be written for ``default``, the engine that holds it.
+    """
+    from indb.dialect import dialect_for
+
+    name = res.spec.get("sql_dialect")
+    return dialect_for(name) if name else default
+
+
+def offset_sql(res: FitResult, dialect: Dialect) -> Expr | None:
+    """The stored offset, read in the dialect it was written in, for ``dialect``
+    (:func:`indb.portable.portable_expression`); None without an offset."""
+    from indb.portable import portable_expression
+
+    offset = res.spec.get("offset")
+    if not offset:
+        return None
+    source = written_in(res, dialect)
+    types = res.design.get("column_types")
+    return portable_expression(offset, "offset", source, dialect, types)
+
+
 def eta_sql(res: FitResult, dialect: Dialect, *, include_offset: bool = True) -> Expr:
     """The linear predictor on the original columns, coefficients as literals.
 
     Categorical parts are one CASE per factor set and multiplier, so a row evaluates one
     branch per factor; a level not seen in training falls to ``ELSE 0``, the reference level's
-    contribution (flagged by :func:`unseen_sql`).
+    contribution (flagged by :func:`unseen_sql`). A coefficient estimated at exactly 0 stays
+    in (as ``0 * x``), so that a NULL or non-finite input makes eta NULL or NaN whenever
+    it enters the standard error.
     """
     terms: list[Expr] = []
-    offset = res.spec.get("offset")
-    if include_offset and offset:
-        terms.append(S.as_double(S.parse_expression(offset, dialect.sqlglot_name)))
+    offset = offset_sql(res, dialect) if include_offset else None
+    if offset is not None:
+        terms.append(S.as_double(offset))
     groups: dict[tuple[tuple[str, ...], tuple[str, ...], int | None], list[_Col]] = {}
     for c, ind, val in _design_terms(res):
-        if c.estimate == 0.0:
+        if c.aliased:
             continue
         if ind is None:
             terms.append(S.num(c.estimate) if val is None else S.mul(S.num(c.estimate), val))
@@ -149,7 +182,8 @@ def eta_sql(res: FitResult, dialect: Dialect, *, include_offset: bool = True) ->
 
 
 def unseen_sql(res: FitResult) -> Expr:
-    """Number of categorical inputs whose value (or NULL) was not a training level."""
+    """Number of categorical inputs whose value (or NULL) was not a training level
+    (:func:`scoring_query` adds 1 for a row that gets no mean)."""
     flags: list[Expr] = []
     for f in res.design.get("factors", []):
         levels = [S.text(lv) for lv in f["levels"]]
@@ -163,12 +197,17 @@ def unseen_sql(res: FitResult) -> Expr:
 
 
 def se_eta_sql(res: FitResult) -> Expr:
-    """Standard error of the linear predictor: sqrt(x' V x) as a SQL quadratic form."""
+    """Standard error of the linear predictor: sqrt(x' V x) as a SQL quadratic form.
+
+    GREATEST(q, 0) takes away rounding below 0 only on rows whose eta is valid, where every
+    x is a number; :func:`scoring_query` guards the rest (GREATEST(NULL, 0) would be 0)."""
     terms = _design_terms(res)
     p = len(terms)
-    if p > MAX_SE_TERMS:
+    if p > MAX_SE_TERMS or res.covariance is None:
         raise SpecError(
-            f"standard errors in SQL are limited to {MAX_SE_TERMS} coefficients; this model has {p}"
+            f"intervals (score_se_eta and the confidence limits) are available for models of "
+            f"at most {MAX_SE_TERMS} coefficients; this model has {p}: score without "
+            "intervals (leave out --intervals / intervals=True) or merge levels"
         )
     cov = np.nan_to_num(np.asarray(res.covariance, dtype=float), nan=0.0)
     xs: list[Expr] = []
@@ -207,10 +246,14 @@ def scoring_query(
         )
     link = link_from_name(res.link)
     eta = eta_sql(res, dialect, include_offset=include_offset)
+    # A row gets a mean only where eta is a finite number the inverse link takes; NULL,
+    # NaN and +/-inf inputs (a NULL age, ln of a negative exposure) give NULL eta, mean,
+    # standard error and bounds, and count 1 in the unseen column.
+    valid = link.valid_eta_sql(eta.copy())
     cols: list[Expr] = [
         exp.Column(this=exp.Star(), table=S.ident(SRC)),
-        S.alias(eta, names.eta),
-        S.alias(link.inverse_sql(eta.copy()), names.mean),
+        S.alias(S.case([(S.is_finite(eta.copy()), eta.copy())]), names.eta),
+        S.alias(link.mean_sql(eta.copy()), names.mean),
     ]
     if intervals:
         from scipy import stats
@@ -220,15 +263,17 @@ def scoring_query(
             if res.test == "z"
             else stats.t.ppf(0.5 + res.confidence / 2, max(res.df_resid, 1e-12))
         )
-        se = se_eta_sql(res)
-        lo = link.inverse_sql(S.sub(eta.copy(), S.mul(S.num(q), se.copy())))
-        hi = link.inverse_sql(S.add(eta.copy(), S.mul(S.num(q), se.copy())))
-        cols += [
-            S.alias(se, names.se),
-            S.alias(S.least(lo.copy(), hi.copy()), names.low),
-            S.alias(S.greatest(lo, hi), names.high),
-        ]
-    cols.append(S.alias(unseen_sql(res), names.unseen))
+        # NULL where the row has no mean, by adding a CASE that is 0 or NULL rather than by
+        # putting the quadratic form inside a CASE branch: DuckDB shares the common parts
+        # of an expression only outside conditional branches (3x faster at 10^6 rows)
+        se = S.add(se_eta_sql(res), S.case([(valid.copy(), S.num(0.0))]))
+        down = link.mean_sql(S.sub(eta.copy(), S.mul(S.num(q), se.copy())))
+        up = link.mean_sql(S.add(eta.copy(), S.mul(S.num(q), se.copy())))
+        # ordered by the link's direction, not LEAST/GREATEST, which would skip a NULL bound
+        lo, hi = (down, up) if link.increasing else (up, down)
+        cols += [S.alias(se, names.se), S.alias(lo, names.low), S.alias(hi, names.high)]
+    unscored = S.case([(valid, exp.Literal.number(0))], exp.Literal.number(1))
+    cols.append(S.alias(S.add(unseen_sql(res), unscored), names.unseen))
     src = source.copy()
     src.set("alias", exp.TableAlias(this=S.ident(SRC)))
     return S.select(cols, src)
@@ -243,16 +288,18 @@ def model_inputs(res: FitResult, dialect: Dialect, include_offset: bool = True) 
                 out.append(name)
     offset = res.spec.get("offset")
     if include_offset and offset:
-        for name in S.referenced_columns(S.parse_expression(offset, dialect.sqlglot_name)):
+        tree = S.parse_expression(offset, written_in(res, dialect).sqlglot_name)
+        for name in S.referenced_columns(tree):
             if name not in out:
                 out.append(name)
     return out
 
 
 def mean_expression(res: FitResult, dialect: Dialect) -> Expr:
-    """The predicted mean as one expression over the model's input columns (for macros)."""
+    """The predicted mean as one expression over the model's input columns (for macros):
+    NULL where the inputs give no valid eta, as in the view."""
     link = link_from_name(res.link)
-    return link.inverse_sql(eta_sql(res, dialect))
+    return link.mean_sql(eta_sql(res, dialect))
 
 
 # -- registry ---------------------------------------------------------------------------------

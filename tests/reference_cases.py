@@ -23,6 +23,7 @@ import itertools
 import warnings
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -896,3 +897,24 @@ def fit_check() -> None:
 
 if __name__ == "__main__":
     fit_check()
+
+
+SHIPS_CSV = Path(sm.__file__).parent / "discrete" / "tests" / "results" / "ships.csv"
+
+
+def ships_registry_frame() -> pd.DataFrame:
+    """McCullagh & Nelder's ship damage data as shipped in statsmodels' test results, shaped
+    for the registry and retraining tests (one row per ship type, construction and operation
+    period; rows with no months at risk left out)."""
+    raw = pd.read_csv(SHIPS_CSV)
+    raw = raw[raw["service"] > 0].reset_index(drop=True)  # no months at risk: left out
+    return pd.DataFrame(
+        {
+            "row_id": np.arange(len(raw)),
+            "type": raw["ship"].map(dict(zip(range(1, 6), "ABCDE", strict=True))),
+            "built": raw["yr_con"].map({1: "1960-64", 2: "1965-69", 3: "1970-74", 4: "1975-79"}),
+            "operated": raw["yr_op"].map({1: "1960-74", 2: "1975-79"}),
+            "service": raw["service"].astype(float),
+            "accident": raw["accident"].astype(float),
+        }
+    )

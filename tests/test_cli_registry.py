@@ -20,14 +20,13 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pytest
-import statsmodels
 import statsmodels.api as sm
 from click.testing import CliRunner, Result
 from numpy.testing import assert_allclose
+from reference_cases import ships_registry_frame as _ships
 
 from indb.cli import main
 
-SHIPS_CSV = Path(statsmodels.__file__).parent / "discrete" / "tests" / "results" / "ships.csv"
 INDB = Path(sys.executable).parent / "indb"
 COEF_RTOL = 1e-6  # same likelihood equations, both converged (task brief for the fitter)
 FIT = [
@@ -47,21 +46,6 @@ FIT = [
     "--reference",
     "operated=1960-74",
 ]
-
-
-def _ships() -> pd.DataFrame:
-    raw = pd.read_csv(SHIPS_CSV)
-    raw = raw[raw["service"] > 0].reset_index(drop=True)  # no months at risk: left out
-    return pd.DataFrame(
-        {
-            "row_id": np.arange(len(raw)),
-            "type": raw["ship"].map(dict(zip(range(1, 6), "ABCDE", strict=True))),
-            "built": raw["yr_con"].map({1: "1960-64", 2: "1965-69", 3: "1970-74", 4: "1975-79"}),
-            "operated": raw["yr_op"].map({1: "1960-74", 2: "1975-79"}),
-            "service": raw["service"].astype(float),
-            "accident": raw["accident"].astype(float),
-        }
-    )
 
 
 def _write(db: Path | str, table: str, frame: pd.DataFrame) -> None:

@@ -23,35 +23,19 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pytest
-import statsmodels
 import statsmodels.api as sm
 from numpy.testing import assert_allclose, assert_array_equal
+from reference_cases import ships_registry_frame as _ships
 
 import indb
 from indb.errors import RegistryError, SpecError
 from indb.registry import Registry
 from indb.results import FitResult
 
-SHIPS_CSV = Path(statsmodels.__file__).parent / "discrete" / "tests" / "results" / "ships.csv"
 # indb and statsmodels solve the same likelihood equations; at tol=1e-10 both are converged
 # far below this (task brief for the core fitter: coefficients rtol 1e-6).
 COEF_RTOL = 1e-6
 TOL = 1e-10
-
-
-def _ships() -> pd.DataFrame:
-    raw = pd.read_csv(SHIPS_CSV)
-    raw = raw[raw["service"] > 0].reset_index(drop=True)  # no months at risk: left out
-    return pd.DataFrame(
-        {
-            "row_id": np.arange(len(raw)),
-            "type": raw["ship"].map(dict(zip(range(1, 6), "ABCDE", strict=True))),
-            "built": raw["yr_con"].map({1: "1960-64", 2: "1965-69", 3: "1970-74", 4: "1975-79"}),
-            "operated": raw["yr_op"].map({1: "1960-74", 2: "1975-79"}),
-            "service": raw["service"].astype(float),
-            "accident": raw["accident"].astype(float),
-        }
-    )
 
 
 @pytest.fixture

@@ -4,7 +4,8 @@ Nothing here touches a connection. One module per query family:
 
 * :mod:`~indb.plan.context`: :class:`~indb.plan.context.PlanContext` (spec, checked inputs,
   dialect) and the internal column names the queries share;
-* :mod:`~indb.plan.profile`: the pre-fit scans (describe, knots, profile, levels);
+* :mod:`~indb.plan.profile`: the pre-fit scans (describe, knots, the head of the rows, profile,
+  levels);
 * :mod:`~indb.plan.fold`: the compressed route (fold, folded profile, folded rows);
 * :mod:`~indb.plan.sample`: the sample start's rows;
 * :mod:`~indb.plan.irls_scan`: the IRLS scan (X'WX, X'Wz, deviance, Pearson) and the

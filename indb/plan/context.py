@@ -9,7 +9,7 @@ from dataclasses import dataclass
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.design import RESERVED_PREFIX, Inputs, Value
+from indb.design import RESERVED_PREFIX, Inputs, Scaling, Value
 from indb.dialect import Dialect
 from indb.spec import ModelSpec
 from indb.splines import spline_basis_sql
@@ -30,6 +30,8 @@ class PlanContext:
     row_count: str | None = None
     #: rows are folded design rows carrying deviance and Pearson constants (folded_rows_query)
     folded: bool = False
+    #: the internal rescaling of response, offset and weights (identity: none)
+    scaling: Scaling = Scaling()
 
     def count_rows(self) -> Expr:
         """COUNT(*) of source rows (SUM of the row-count column on a compressed table)."""
@@ -102,17 +104,42 @@ class PlanContext:
         return items
 
     # -- derived per-row quantities --------------------------------------------------------
-    def response(self) -> Expr:
-        """y: the response, as a proportion for grouped binomial data."""
+    def observed_response(self) -> Expr:
+        """y as observed: the response, as a proportion for grouped binomial data."""
         y = self.raw_response()
         t = self.raw_trials()
         if t is None:
             return y
         return S.case([(S.gt(t, S.num(0.0)), S.div(y, t))], S.num(0.0))
 
+    def response(self) -> Expr:
+        """y as the scans fit it: :meth:`observed_response` shifted and scaled by
+        :attr:`scaling` (y' = (y - shift) * factor)."""
+        y = self.observed_response()
+        sc = self.scaling
+        if sc.shift != 0.0:
+            y = S.sub(y, S.num(sc.shift))
+        return S.mul(y, S.num(sc.factor)) if sc.factor != 1.0 else y
+
     def prior_weight(self) -> Expr:
         parts = [e for e in (self.raw_trials(), self.raw_weight()) if e is not None]
+        if self.scaling.weight_factor != 1.0:
+            parts.append(S.num(self.scaling.weight_factor))
         return S.mul(*parts) if parts else S.num(1.0)
+
+    def freq_weight(self) -> Expr | None:
+        """The frequency weight as the scans use it (times :attr:`scaling`'s factor)."""
+        f = self.raw_freq()
+        if f is None or self.scaling.freq_factor == 1.0:
+            return f
+        return S.mul(f, S.num(self.scaling.freq_factor))
+
+    def offset(self) -> Expr | None:
+        """The offset as the scans use it: on a power link's rescaled eta scale."""
+        o = self.raw_offset()
+        if o is None or self.scaling.coef_factor == 1.0:
+            return o
+        return S.mul(o, S.num(self.scaling.coef_factor))
 
     def value_sql(
         self, v: Value, knots: dict[str, tuple[float, ...]] | None = None, standardized: bool = True

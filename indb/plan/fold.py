@@ -107,18 +107,20 @@ def fold_query(
     fam = ctx.spec.family
     keys = key_columns(ctx) if keys is None else list(keys)
     _, row_cond = ctx.kept_parts(keys)
-    y_raw = ctx.response()
-    # the response (and its floored copy inside the saturated terms) once per row
-    atoms, rewrite = row_atoms(
-        ctx, [(reserved("a_yg"), S.greatest(y_raw, S.num(1e-300))), (reserved("a_y"), y_raw.copy())]
-    )
+    y_raw = ctx.observed_response()
+    # the response (its floored copy inside the saturated terms, its rescaled copy in the
+    # folding sums) once per row
+    hoist = [(reserved("a_yg"), S.greatest(y_raw, S.num(1e-300))), (reserved("a_y"), y_raw.copy())]
+    if ctx.scaling.response_changed:
+        hoist.append((reserved("a_yt"), ctx.response()))
+    atoms, rewrite = row_atoms(ctx, hoist)
     domain_ok = S.and_(row_cond.copy(), *(S.not_(c) for _, c in domain_checks(ctx)))
     ok = S.col(FOLD_OK)
     f = ctx.raw_freq()
     y, pw = ctx.response(), ctx.prior_weight()
     extra: list[Expr] = []
     if folding and folds_offset(ctx):
-        off = ctx.raw_offset()
+        off = ctx.offset()
         assert off is not None
         # e = exp(offset) only on rows inside the domain checks: no engine sees the
         # overflow of an offset that the profile is about to reject; exp(ln(x)) is x

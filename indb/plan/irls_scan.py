@@ -21,7 +21,7 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.design import Design
+from indb.design import Design, cell_columns, column_groups, level_codes
 from indb.plan.context import FOLD_DCONST, FOLD_Q, ROWS, PlanContext
 from indb.sqlexpr import Expr
 
@@ -36,14 +36,19 @@ def rows_select(ctx: PlanContext, design: Design) -> exp.Select:
     cols += [
         S.alias(ctx.response(), "y"),
         S.alias(ctx.prior_weight(), "pw"),
-        S.alias(ctx.raw_freq() or S.num(1.0), "fw"),
-        S.alias(ctx.raw_offset() or S.num(0.0), "off"),
+        S.alias(ctx.freq_weight() or S.num(1.0), "fw"),
+        S.alias(ctx.offset() or S.num(0.0), "off"),
     ]
     t = ctx.raw_trials()
     if t is not None:
         cols.append(S.alias(t, "nt"))
     if ctx.folded:
-        cols += [S.alias(S.col(FOLD_DCONST), "dconst"), S.alias(S.col(FOLD_Q), "q")]
+        # sums of f pw (...) over the folded rows: rescaled with the weights
+        wf = ctx.scaling.weight_factor * ctx.scaling.freq_factor
+        consts = [S.col(FOLD_DCONST), S.col(FOLD_Q)]
+        if wf != 1.0:
+            consts = [S.mul(c, S.num(wf)) for c in consts]
+        cols += [S.alias(consts[0], "dconst"), S.alias(consts[1], "q")]
     return S.select(cols, ctx.source(), where=ctx.kept())
 
 
@@ -62,20 +67,18 @@ def _cell_table(
     """Per observed cell (one level of every factor) the summed factor coefficients, one
     column per value they multiply; cells whose coefficients are all 0 are left out."""
     arr = np.array(cells, dtype=object).reshape(len(cells), len(design.factors))
-    fcols = [j for j, c in enumerate(design.columns) if c.factors]
-    vals = sorted({design.columns[j].value for j in fcols})
+    codes = [level_codes(f.levels, arr[:, i]) for i, f in enumerate(design.factors)]
+    groups = column_groups(design)
+    vals = sorted({g.value for g in groups if g.factors})
     vpos = {v: i for i, v in enumerate(vals)}
     coef = np.zeros((len(cells), len(vals)))
-    for j in fcols:
-        c = design.columns[j]
-        mask = np.ones(len(cells), dtype=bool)
-        for fi, lv in zip(c.factors, c.levels, strict=True):
-            mask &= arr[:, fi] == lv
-        coef[mask, vpos[c.value]] += float(beta[j])
+    for g, where in zip(groups, cell_columns(design, codes), strict=True):
+        if g.factors:
+            hit = where >= 0
+            coef[hit, vpos[g.value]] += beta[where[hit]]
     rows = [
         (tuple(str(x) for x in arr[i]), coef[i].tolist())
-        for i in range(len(cells))
-        if np.any(coef[i] != 0.0)
+        for i in np.flatnonzero(np.any(coef != 0.0, axis=1))
     ]
     return vals, rows
 
@@ -188,6 +191,9 @@ def _eta_start(ctx: PlanContext, design: Design, ybar: float) -> exp.Select:
     """Stage e for the first scan: eta = g(mu0) from the family's standard start."""
     fam, link = ctx.spec.family, ctx.spec.link
     y, pw = S.col("y"), S.col("pw")
+    if ctx.scaling.weight_factor != 1.0:
+        # the start (binomial's uses the weight) as without the internal rescaling
+        pw = S.div(pw, S.num(ctx.scaling.weight_factor))
     mu0 = fam.start_sql(y, pw, ybar)
     needs_positive = (
         link.positive_mean or link.eta_ok(S.col("eta")) is not None or fam.positive_mean

@@ -145,22 +145,30 @@ class ProfileItem:
     detail: bool = False
 
 
+#: alias of the response in :func:`head_query` and in the ``shifts`` of :func:`profile_items`
+RESPONSE_KEY = "y"
+
+
 def profile_items(
     ctx: PlanContext,
     values: Sequence[Value],
     knots: dict[str, tuple[float, ...]],
-    shifts: dict[str, float] | None = None,
+    shifts: dict[str, tuple[float, float]] | None = None,
 ) -> list[ProfileItem]:
     """The pre-fit profile: total rows, rows kept and NULL counts per model input (over all
     rows); over kept rows the domain-check violation counts, weighted response sums, weight
     range, saturated log-likelihood sums and the moments that standardize values.
 
-    The moments of a value v are taken about ``shifts[v.alias]`` (a value of one kept row,
-    :func:`first_values_query`): mean and mean square of v - c. The mean square is 0 exactly
-    when v is constant, and the variance from these moments keeps its digits however far
-    the mean lies from 0."""
+    The moments of a value v are taken about ``shifts[v.alias] = (c, g)``, a value c of a
+    kept row (:func:`head_query`) and a power of two g: mean and mean square of
+    (v - c) g. The mean square is 0 exactly when v is constant, the variance from these
+    moments keeps its digits however far the mean lies from 0, and g (about one over the
+    spread) keeps the square finite for values near the largest doubles. The response
+    (``shifts["y"]``) gets the same two moments, which tell how many digits a fit that
+    cannot centre it loses."""
     one = exp.Literal.number(1)
     y, pw = ctx.response(), ctx.prior_weight()
+    y_obs = ctx.observed_response()
     fw = ctx.raw_freq() or S.num(1.0)
     items = [ProfileItem("n_total", "count", one, kept=False), ProfileItem("n_kept", "count", one)]
     for i, (_, e) in enumerate(ctx.null_items()):
@@ -173,38 +181,52 @@ def profile_items(
             "sum_f_pos", "psum", S.case([(S.gt(pw.copy(), S.num(0.0)), fw.copy())], S.num(0.0))
         ),
         ProfileItem("n_zero_weight", "sum", S.flag(S.le(pw.copy(), S.num(0.0)))),
-        ProfileItem("y_min", "min", y.copy(), detail=True),
-        ProfileItem("y_max", "max", y.copy(), detail=True),
+        ProfileItem("y_min", "min", y_obs.copy(), detail=True),
+        ProfileItem("y_max", "max", y_obs.copy(), detail=True),
         ProfileItem("pw_min", "min", pw.copy()),
         ProfileItem("pw_max", "max", pw.copy()),
-        ProfileItem("off_mean", "mean", ctx.raw_offset() or S.num(0.0)),
+        ProfileItem("off_mean", "mean", ctx.offset() or S.num(0.0)),
     ]
     for i, (_, cond) in enumerate(domain_checks(ctx)):
         items.append(ProfileItem(f"chk_{i}", "sum", S.flag(cond), detail=True))
     for key, term in saturated_terms(ctx).items():
         positive = S.case([(S.gt(pw.copy(), S.num(0.0)), S.mul(fw.copy(), term))])
         items.append(ProfileItem(f"ll_{key}", "psum", positive))
-    for v in values[1:]:
-        raw = ctx.value_sql(v, knots, standardized=False)
-        c = (shifts or {}).get(v.alias, 0.0)
+    moments = [(v.alias, ctx.value_sql(v, knots, standardized=False)) for v in values[1:]]
+    for alias, raw in [*moments, (RESPONSE_KEY, y_obs.copy())]:
+        c, g = (shifts or {}).get(alias, (0.0, 1.0))
         dev = S.sub(raw, S.num(c)) if c != 0.0 else raw
+        dev = S.mul(dev, S.num(g)) if g != 1.0 else dev
         # mean and mean square about c only (no MIN/MAX: they cost as much again): the
         # scale just conditions X'WX, and constancy shows as a mean square of exactly 0
         items += [
-            ProfileItem(f"{v.alias}_mean", "mean", dev),
-            ProfileItem(f"{v.alias}_ms", "mean", S.mul(dev.copy(), dev.copy())),
+            ProfileItem(f"{alias}_mean", "mean", dev),
+            ProfileItem(f"{alias}_ms", "mean", S.mul(dev.copy(), dev.copy())),
         ]
     return items
 
 
-def first_values_query(
+HEAD_ROWS = 1000  # kept rows head_query looks at
+
+
+def head_query(
     ctx: PlanContext, values: Sequence[Value], knots: dict[str, tuple[float, ...]]
 ) -> exp.Select:
-    """The raw values of one kept row (any row: engines stop at the first they find); the
-    profile takes each value's moments about it."""
+    """The range (``<alias>_lo``, ``<alias>_hi``) of every value and of the observed
+    response (alias ``y``) over the first ``HEAD_ROWS`` kept rows (any rows: engines stop
+    reading there). The low end is a value of a kept row, the point the profile takes
+    moments about; the width sets the power of two that keeps those moments (and, for the
+    response, the fit) far from overflow."""
     cols = [S.alias(ctx.value_sql(v, knots, standardized=False), v.alias) for v in values[1:]]
-    q = S.select(cols or [S.alias(exp.Literal.number(1), "one")], ctx.source(), where=ctx.kept())
-    return q.limit(1, copy=False)
+    cols.append(S.alias(ctx.observed_response(), RESPONSE_KEY))
+    head = S.select(cols, ctx.source(), where=ctx.kept()).limit(HEAD_ROWS, copy=False)
+    out: list[Expr] = []
+    for alias in [*(v.alias for v in values[1:]), RESPONSE_KEY]:
+        out += [
+            S.alias(S.min_(S.col(alias)), f"{alias}_lo"),
+            S.alias(S.max_(S.col(alias)), f"{alias}_hi"),
+        ]
+    return S.select(out, S.subquery(head, "head"))
 
 
 AGGREGATES = {"sum": S.sum_, "psum": S.psum, "min": S.min_, "max": S.max_, "mean": S.avg}
@@ -266,7 +288,7 @@ def saturated_terms(ctx: PlanContext) -> dict[str, Expr]:
     by the domain checks of the same scan, and their terms are never used."""
     if ctx.spec.estimate_theta:
         return {}
-    y = ctx.response()
+    y = ctx.observed_response()
     yg = S.greatest(y, S.num(1e-300))
     return ctx.spec.family.saturated_sql(
         yg, S.greatest(ctx.prior_weight(), S.num(1e-300)), ctx.raw_trials()

@@ -5,6 +5,8 @@ oracles: statsmodels (test-only) and the DuckDB fit of the same data.
 
 from __future__ import annotations
 
+import warnings
+
 import duckdb
 import numpy as np
 import pandas as pd
@@ -179,3 +181,91 @@ def test_sample_start_on_each_engine(loader: Loader, monkeypatch: pytest.MonkeyP
     assert_allclose(res.std_errors, ref.bse, rtol=1e-7)
     assert_allclose(res.deviance, ref.deviance, rtol=1e-10)
     assert_allclose(res.null_deviance, ref.null_deviance, rtol=1e-10)
+
+
+# -- extreme magnitudes and weights (issue 11): the rescaled SQL on every engine ---------------
+
+
+def spector_magnitudes() -> pd.DataFrame:
+    # statsmodels.datasets.spector with a response 1e13 + {0, 0.125}, a response 1e200 times
+    # TUCE/100, a predictor GPA * 1e160 and a constant weight 1e50 (lower-case names)
+    d = smd.spector.load_pandas().data
+    return pd.DataFrame(
+        {
+            "far": 1e13 + 0.125 * d["GRADE"],
+            "huge": 1e200 * d["TUCE"] / 100.0,
+            "tuce": d["TUCE"].astype(float),
+            "gpa": d["GPA"],
+            "bigx": d["GPA"] * 1e160,
+            "psi": d["PSI"].astype(float),
+            "w": 1e50,
+        }
+    )
+
+
+def test_extreme_magnitudes_on_every_engine(loader: Loader) -> None:
+    # Oracles: statsmodels (test-only) on the data without the magnitude (each checked
+    # against exact rational arithmetic in tests/robustness/test_magnitudes.py): OLS on
+    # far - 1e13 (exact in doubles); gamma-log GLM on TUCE/100 (the intercept moves by
+    # ln 1e200); OLS on GPA (the slope scales by 1e-160); Poisson with unit weights.
+    d = spector_magnitudes()
+    loader.load("magnitudes", d)
+    x = sm.add_constant(d[["gpa", "psi"]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        far = indb.fit("magnitudes", "far", db=loader.engine, predictors=["gpa", "psi"], tol=1e-13)
+        huge = indb.fit(
+            "magnitudes",
+            "huge",
+            "gamma",
+            "log",
+            db=loader.engine,
+            predictors=["gpa", "psi"],
+            tol=1e-13,
+        )
+        bigx = indb.fit(
+            "magnitudes", "tuce", db=loader.engine, predictors=["bigx", "psi"], tol=1e-13
+        )
+        wide = indb.fit(
+            "magnitudes",
+            "tuce",
+            "poisson",
+            db=loader.engine,
+            predictors=["gpa", "psi"],
+            weight="w",
+            tol=1e-13,
+        )
+    ols = sm.OLS((d["far"] - 1e13).to_numpy(), x).fit()
+    assert_allclose(far.params[1:], ols.params.to_numpy()[1:], rtol=1e-9)
+    assert_allclose(far.std_errors, ols.bse.to_numpy(), rtol=1e-9)
+    assert_allclose(far.dispersion, ols.scale, rtol=1e-9)
+    tight = {"tol_criterion": "params", "atol": 1e-14, "rtol": 1e-13, "maxiter": 2000}
+    gam = sm.GLM(d["tuce"] / 100.0, x, family=sm.families.Gamma(sm.families.links.Log())).fit(
+        **tight
+    )
+    assert_allclose(huge.params, gam.params.to_numpy() + [np.log(1e200), 0, 0], rtol=1e-6)
+    assert_allclose(huge.std_errors, gam.bse.to_numpy(), rtol=1e-6)
+    lin = sm.OLS(d["tuce"].to_numpy(), x).fit()
+    assert_allclose(bigx.coef("bigx").estimate, lin.params["gpa"] / 1e160, rtol=1e-9)
+    assert_allclose(bigx.coef("bigx").std_error, lin.bse["gpa"] / 1e160, rtol=1e-9)
+    poi = sm.GLM(d["tuce"], x, family=sm.families.Poisson()).fit(**tight)
+    assert wide.converged
+    assert_allclose(wide.params, poi.params.to_numpy(), rtol=1e-9)
+    assert_allclose(wide.std_errors, poi.bse.to_numpy() / 1e25, rtol=1e-8)
+
+
+RANDOM_ROWS = {
+    "duckdb": "SELECT * FROM coin WHERE random() < 0.5",
+    "postgres": "SELECT * FROM coin WHERE random() < 0.5",
+    "spark-local": "SELECT * FROM coin WHERE rand() < 0.5",
+}
+
+
+def test_source_with_random_rows_is_named_on_every_engine(loader: Loader) -> None:
+    # 4,000 rows of which a random half is read each time: every IRLS scan must count the
+    # rows the profile counted. statsmodels.datasets.spector repeated 125 times.
+    d = smd.spector.load_pandas().data
+    frame = pd.concat([d] * 125, ignore_index=True).rename(columns=str.lower)
+    loader.load("coin", frame)
+    with pytest.raises(indb.SpecError, match=r"the source is not deterministic: IRLS scan"):
+        indb.fit(RANDOM_ROWS[loader.name], "grade", "binomial", db=loader.engine)

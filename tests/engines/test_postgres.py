@@ -187,3 +187,140 @@ def test_nearly_separated_probit_and_cloglog(engine: PostgresEngine, link: str) 
     pg_load(engine.con, "cancer_bc", frame)
     res = indb.fit("cancer_bc", "malignant", "binomial", link, db=engine, tol=1e-13)
     assert_allclose(res.params, ref.params, rtol=1e-9)
+
+
+# -- a psycopg connection of the caller's ---------------------------------------------------------
+# indb.fit(db=con, name=...) inside the caller's transaction used to abort it (a failed probe
+# query of the registry), and the caller's COMMIT then returned normally and discarded their
+# tables. Now: refused before anything runs; outside a transaction indb runs in autocommit
+# and puts back the autocommit flag and every session setting it changed.
+OPEN_TX = r"the PostgreSQL connection passed as db= has an open transaction;.*Commit or roll back"
+FAILED_TX = r"the PostgreSQL connection passed as db= has a failed transaction;"
+CALLER_REGISTRY = "caller_registry"
+
+
+def _settings(con: Any) -> dict[str, str]:
+    """Every session setting as the server reports it (read outside indb), then commit."""
+    rows = con.execute("SELECT name, setting FROM pg_settings").fetchall()
+    if not con.autocommit:
+        con.commit()  # reading opened a transaction: end it, as a caller would
+    return dict(rows)
+
+
+def _statsmodels_spector() -> Any:
+    # statsmodels GLM on statsmodels.datasets.spector (test-only oracle), binomial logit
+    import statsmodels.api as sm
+
+    d = smd.spector.load_pandas().data
+    X = sm.add_constant(d[["GPA", "TUCE", "PSI"]])
+    fit = sm.GLM(d["GRADE"], X, family=sm.families.Binomial())
+    return fit.fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=200)
+
+
+@pytest.fixture
+def caller(pg_url: str) -> Any:
+    """The caller's own connection with psycopg's defaults (autocommit off), and a table."""
+    import psycopg
+
+    with psycopg.connect(pg_url, autocommit=True) as admin:
+        admin.execute(f"DROP SCHEMA IF EXISTS {CALLER_REGISTRY} CASCADE")
+        admin.execute("DROP VIEW IF EXISTS caller_grades")
+        admin.execute("DROP TABLE IF EXISTS caller_work")
+        pg_load(admin, "spector_caller", smd.spector.load_pandas().data)
+    con = psycopg.connect(pg_url)
+    try:
+        yield con
+    finally:
+        con.close()
+        with psycopg.connect(pg_url, autocommit=True) as admin:
+            admin.execute(f"DROP SCHEMA IF EXISTS {CALLER_REGISTRY} CASCADE")
+            admin.execute("DROP VIEW IF EXISTS caller_grades")
+            admin.execute("DROP TABLE IF EXISTS caller_work")
+
+
+def _named_fit(con: Any) -> Any:
+    return indb.fit(
+        "spector_caller",
+        "GRADE",
+        "binomial",
+        db=con,
+        name="caller_grades",
+        registry_schema=CALLER_REGISTRY,
+        tol=1e-13,
+    )
+
+
+def test_named_fit_in_the_callers_open_transaction_is_refused(caller: Any, pg_url: str) -> None:
+    from psycopg.pq import TransactionStatus
+
+    before = _settings(caller)
+    caller.execute("CREATE TABLE caller_work AS SELECT 42 AS answer")
+    assert caller.info.transaction_status == TransactionStatus.INTRANS
+    with pytest.raises(SpecError, match=OPEN_TX):
+        _named_fit(caller)
+    # the caller's transaction is alive and theirs to commit
+    assert caller.info.transaction_status == TransactionStatus.INTRANS
+    caller.execute("INSERT INTO caller_work VALUES (43)")
+    caller.commit()
+    assert caller.execute("SELECT answer FROM caller_work ORDER BY 1").fetchall() == [(42,), (43,)]
+    assert caller.execute("SELECT to_regnamespace(%s)", (CALLER_REGISTRY,)).fetchall() == [(None,)]
+    caller.commit()
+    assert caller.autocommit is False
+    assert _settings(caller) == before
+
+
+def test_a_failed_transaction_is_refused(caller: Any) -> None:
+    import psycopg
+
+    with pytest.raises(psycopg.Error):
+        caller.execute("SELECT * FROM no_such_table_anywhere")
+    with pytest.raises(SpecError, match=FAILED_TX):
+        _named_fit(caller)
+    caller.rollback()
+
+
+def test_outside_a_transaction_the_fit_commits_and_puts_everything_back(
+    caller: Any, pg_url: str
+) -> None:
+    import psycopg
+    from psycopg.pq import TransactionStatus
+
+    caller.execute("SET extra_float_digits = 2")  # a session setting of the caller's own
+    caller.commit()
+    before = _settings(caller)
+    res = _named_fit(caller)
+    ref = _statsmodels_spector()
+    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-9)
+    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=1e-8)
+    # the connection is as it was: autocommit off, no transaction left open, same settings
+    assert caller.autocommit is False
+    assert caller.info.transaction_status == TransactionStatus.IDLE
+    assert _settings(caller) == before
+    # the write-back is committed: another session sees it
+    with psycopg.connect(pg_url, autocommit=True) as other:
+        live = other.execute(
+            f"SELECT live_version FROM {CALLER_REGISTRY}.model WHERE model_name = %s",
+            ("caller_grades",),
+        ).fetchall()
+    assert live == [(1,)]
+    # reading the registry and a failing call leave it as it was too
+    assert "caller_grades" in indb.api.scoring_sql(
+        "caller_grades", db=caller, registry_schema=CALLER_REGISTRY, dialect="postgres"
+    )
+    with pytest.raises(SpecError, match="no_such_column"):
+        indb.fit("spector_caller", "no_such_column", "binomial", db=caller)
+    assert caller.autocommit is False
+    assert caller.info.transaction_status == TransactionStatus.IDLE
+    assert _settings(caller) == before
+
+
+def test_an_autocommit_connection_keeps_its_settings(pg_con: Any) -> None:
+    pg_con.execute("SET extra_float_digits = 0")
+    pg_con.execute("SET standard_conforming_strings = off")
+    before = _settings(pg_con)
+    pg_load(pg_con, "spector_caller_ac", smd.spector.load_pandas().data)
+    res = indb.fit("spector_caller_ac", "GRADE", "binomial", db=pg_con, tol=1e-13)
+    assert_allclose(res.params, _statsmodels_spector().params.to_numpy(), rtol=1e-9)
+    assert pg_con.autocommit is True
+    assert _settings(pg_con) == before
+    pg_con.execute("DROP TABLE spector_caller_ac")

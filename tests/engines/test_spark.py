@@ -10,6 +10,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import statsmodels.datasets as smd
+from engine_support import spark_view, write_parquet
 from numpy.testing import assert_allclose
 
 import indb
@@ -105,3 +106,26 @@ def test_compressed_fit_uses_a_cached_view(engine: SparkEngine, tmp_path: Path) 
     assert res.terms == ref.terms
     assert_allclose(res.params, ref.params, rtol=1e-9)
     assert_allclose(res.std_errors, ref.std_errors, rtol=1e-9)
+
+
+def test_a_callers_session_keeps_its_settings_and_views(spark_local: Any, tmp_path: Path) -> None:
+    """indb changes no setting of a session it is given (Spark has no transactions, so
+    there is none to refuse), and the temporary view of the folded route is dropped.
+
+    Oracle: statsmodels GLM on statsmodels.datasets.spector (binomial logit)."""
+    import statsmodels.api as sm
+
+    d = smd.spector.load_pandas().data
+    spark_view(spark_local, "spector_caller", write_parquet(d, tmp_path / "spector.parquet"))
+    conf = spark_local.conf.getAll
+    views = {t.name for t in spark_local.catalog.listTables() if t.isTemporary}
+    res = indb.fit(
+        "spector_caller", "GRADE", "binomial", db=spark_local, compress="always", tol=1e-13
+    )
+    ref = sm.GLM(d["GRADE"], sm.add_constant(d[["GPA", "TUCE", "PSI"]]), sm.families.Binomial())
+    ref = ref.fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=200)
+    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-9)
+    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=1e-8)
+    assert spark_local.conf.getAll == conf
+    assert {t.name for t in spark_local.catalog.listTables() if t.isTemporary} == views
+    spark_local.catalog.dropTempView("spector_caller")

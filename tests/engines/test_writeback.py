@@ -23,6 +23,8 @@ import statsmodels.api as sm
 from click.testing import CliRunner
 from engine_support import pg_load, spark_view, write_parquet
 from numpy.testing import assert_allclose
+from pol_cases import ROWS as POL_ROWS
+from pol_cases import oracle_means, pol_frame
 
 import indb
 from indb.cli import main
@@ -353,6 +355,161 @@ def test_view_kind_is_checked() -> None:
         indb.connect("spark:local[1]", view_kind="global")
     with pytest.raises(SpecError, match="view_kind='persistent' applies to Spark only"):
         indb.connect(None, view_kind="persistent")
+
+
+# -- views in other schemas (issue 11, items 3 and 4) ------------------------------------------
+# Data and oracle: pol_cases.py (the issue's 5,000-row table; statsmodels Poisson GLM with
+# offset ln(exposure)). A decoy table of the same name holds its first 3 rows.
+
+
+def pol_fit(db: Any, source: str, **kw: Any) -> FitResult:
+    kw.setdefault("exclude", ["id"])
+    return indb.fit(source, "claims", "poisson", db=db, offset="ln(exposure)", tol=1e-12, **kw)
+
+
+def pol_means(frame: pd.DataFrame, got: pd.DataFrame, predictors: list[str]) -> None:
+    got = got.sort_values("id").reset_index(drop=True)
+    assert len(got) == POL_ROWS  # not the decoy's 3
+    assert_allclose(got["score_mean"].to_numpy(float), oracle_means(frame, predictors), rtol=1e-8)
+
+
+def pg_views(con: Any, schemas: list[str], tag: str) -> set[tuple[str, str]]:
+    """(schema, view) of this test's views (their names end in ``tag``; the database is
+    shared with the session's other tests) in ``schemas``."""
+    with con.cursor() as cur:
+        cur.execute(
+            "SELECT table_schema, table_name FROM information_schema.views "
+            "WHERE table_schema = ANY(%s) AND table_name LIKE %s",
+            (schemas, f"%{tag}"),
+        )
+        return set(cur.fetchall())
+
+
+def test_postgres_view_in_another_schema_reads_the_fitted_table(pg_url: str, pg_con: Any) -> None:
+    import psycopg
+
+    from indb.postgres import PostgresEngine
+
+    frame = pol_frame()
+    tag = uuid.uuid4().hex[:8]
+    table, mart, schema = f"pol_{tag}", f"mart_{tag}", f"reg_{tag}"
+    pg_load(pg_con, table, frame)
+    pg_con.execute(f'CREATE SCHEMA "{mart}"')
+    pg_con.execute(f'CREATE TABLE "{mart}"."{table}" AS SELECT * FROM "{table}" WHERE id < 3')
+    kw = {"name": "vs1", "view_schema": mart, "registry_schema": schema}
+    pol_fit(pg_url, table, **kw)
+    pol_means(frame, pg_frame(pg_con, f'SELECT * FROM "{mart}".vs1'), ["age", "region"])
+    stored = pg_frame(pg_con, f'SELECT spec_json FROM "{schema}".model_version')
+    assert json.loads(stored["spec_json"][0])["source"]["text"] == f"public.{table}"
+    score_source = pg_frame(pg_con, f'SELECT score_source FROM "{schema}".model')
+    assert score_source["score_source"].tolist() == [f"public.{table}"]
+
+    # a promotion from a session whose search_path finds the decoy first: PostgreSQL binds
+    # a view's names when it is created, so an unqualified stored name would read the decoy
+    pol_fit(pg_url, table, **{**kw, "exclude": ["id", "age"]})
+    with psycopg.connect(pg_url, autocommit=True, options=f"-c search_path={mart},public") as c:
+        assert pg_frame(c, f'SELECT count(*) AS n FROM "{table}"')["n"].tolist() == [3]
+        indb.api.registry(PostgresEngine(c), schema).promote("vs1", 1)
+    pol_means(frame, pg_frame(pg_con, f'SELECT * FROM "{mart}".vs1'), ["age", "region"])
+
+
+def test_postgres_moved_view_leaves_nothing_behind(pg_url: str, pg_con: Any) -> None:
+    frame = pol_frame()
+    tag = uuid.uuid4().hex[:8]
+    table, mart, schema = f"pol_{tag}", f"mart_{tag}", f"reg_{tag}"
+    pg_load(pg_con, table, frame)
+    kw = {"name": f"mv_{tag}", "registry_schema": schema}
+    name = kw["name"]
+    pol_fit(pg_url, table, **kw)
+    assert pg_views(pg_con, ["public", mart], tag) == {("public", name)}
+    pol_fit(pg_url, table, exclude=["id", "age"], view_schema=mart, **kw)
+    # before: public's view went on serving version 1, unknown to the registry
+    assert pg_views(pg_con, ["public", mart], tag) == {(mart, name)}
+    pol_means(frame, pg_frame(pg_con, f'SELECT * FROM "{mart}"."{name}"'), ["region"])
+    reg = indb.api.registry(pg_url, schema)
+    try:
+        reg.promote(name, 1)  # an older version: served where the view is now
+        assert pg_views(pg_con, ["public", mart], tag) == {(mart, name)}
+        pol_means(frame, pg_frame(pg_con, f'SELECT * FROM "{mart}"."{name}"'), ["age", "region"])
+        # public is where unqualified names were created: the same place as no schema
+        reg.promote(name, 2, view_schema="public")
+        assert pg_views(pg_con, ["public", mart], tag) == {("public", name)}
+        assert reg.model(name)["view_schema"] == "public"
+        pol_fit(pg_url, table, exclude=["id", "region"], **kw)
+        assert pg_views(pg_con, ["public", mart], tag) == {("public", name)}
+
+        # a view of the user's reads the live one: the move cannot drop it, so the whole
+        # write rolls back (new view, registry rows) and the old view keeps serving
+        pg_con.execute(f'CREATE VIEW "mine_{tag}" AS SELECT id, score_mean FROM "{name}"')
+        before = reg.versions(name)
+        with pytest.raises(EngineError, match="other objects depend on it"):
+            reg.promote(name, 1, view_schema=mart)
+        assert reg.versions(name) == before and reg.model(name)["view_schema"] == "public"
+        assert pg_views(pg_con, ["public", mart], tag) == {
+            ("public", name),
+            ("public", f"mine_{tag}"),
+        }
+    finally:
+        reg.engine.close()
+
+
+def test_postgres_refuses_a_model_named_like_a_catalog_table(pg_url: str, pg_con: Any) -> None:
+    frame = pol_frame(rows=50)
+    table = f"pol_{uuid.uuid4().hex[:8]}"
+    pg_load(pg_con, table, frame)
+    schema = f"reg_{uuid.uuid4().hex[:8]}"
+    with pytest.raises(SpecError, match="model name 'pg_class' is taken by the postgres built-in"):
+        pol_fit(pg_url, table, name="pg_class", registry_schema=schema)
+    assert not indb.api.registry(pg_url, schema).exists()
+
+
+@pytest.mark.slow
+def test_spark_persistent_view_in_another_database_reads_the_fitted_table(
+    spark_local: Any, tmp_path: Path
+) -> None:
+    from indb.spark import SparkEngine
+
+    session = spark_local
+    # a temporary view pol of another test in the shared session would shadow the tables
+    # below (Spark resolves temporary views first), which is not what this test is about
+    session.catalog.dropTempView("pol")
+    frame = pol_frame()
+    tag = uuid.uuid4().hex[:8]
+    src, mart, mart_b, schema = f"src_{tag}", f"mart_{tag}", f"martb_{tag}", f"reg_{tag}"
+    path = write_parquet(frame, tmp_path / "pol.parquet")
+    for db in (src, mart):
+        session.sql(f"CREATE DATABASE {db}").collect()
+    session.sql(f"CREATE TABLE {src}.pol USING parquet AS SELECT * FROM parquet.`{path}`").collect()
+    session.sql(
+        f"CREATE TABLE {mart}.pol USING parquet AS SELECT * FROM {src}.pol WHERE id < 3"
+    ).collect()
+    engine = SparkEngine(session, view_kind="persistent")
+    kw = {"name": "vs1", "view_schema": mart, "registry_schema": schema}
+    try:
+        session.sql(f"USE {src}").collect()
+        pol_fit(engine, "pol", **kw)
+        pol_means(frame, spark_frame(session, f"SELECT * FROM {mart}.vs1"), ["age", "region"])
+        reg = indb.api.registry(engine, schema)
+        assert reg.model("vs1")["score_source"] == f"spark_catalog.{src}.pol"
+        assert reg.load("vs1").spec["source"]["text"] == f"spark_catalog.{src}.pol"
+        pol_fit(engine, "pol", **{**kw, "exclude": ["id", "age"]})
+
+        # a promotion from the decoy's database reads the stored, qualified name
+        session.sql(f"USE {mart}").collect()
+        reg.promote("vs1", 1)
+        pol_means(frame, spark_frame(session, f"SELECT * FROM {mart}.vs1"), ["age", "region"])
+
+        # moving the view drops the old one (Spark: before the promote event is written)
+        reg.promote("vs1", 2, view_schema=mart_b)
+        assert "vs1" not in spark_frame(session, f"SHOW VIEWS IN {mart}")["viewName"].tolist()
+        # SHOW VIEWS also lists the session's temporary views (other tests' in this shared
+        # session): the catalog's own views of mart_b are the ones that must be just vs1
+        shown = spark_frame(session, f"SHOW VIEWS IN {mart_b}")
+        assert shown.loc[~shown["isTemporary"].astype(bool), "viewName"].tolist() == ["vs1"]
+        assert reg.model("vs1")["view_schema"] == mart_b
+        pol_means(frame, spark_frame(session, f"SELECT * FROM {mart_b}.vs1"), ["region"])
+    finally:
+        session.sql("USE default").collect()
 
 
 # -- the printed scoring SQL on every engine ----------------------------------------------------

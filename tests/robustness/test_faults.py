@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import concurrent.futures
 import contextlib
+import hashlib
 import json
 import os
 import queue
@@ -31,6 +32,7 @@ import shutil
 import signal
 import subprocess
 import sys
+import tempfile
 import textwrap
 import threading
 import time
@@ -615,6 +617,71 @@ def test_kill_during_the_first_save_leaves_no_partial_registry(
     assert results[None] == "new version", results
 
 
+MOVE = dict(MODE, options={**MODE["options"], "view_schema": "mart"})
+
+
+def classify_move(before: dict[str, Any], after: dict[str, Any], path: Path, expected: Any) -> str:
+    """A refit that moves ``visits`` from main to mart: 'unchanged', 'moved' (one complete
+    new live version, its view and macro only in mart) or what is partial."""
+    if after == before:
+        return "unchanged"
+    objs, was = R.object_names(after), R.object_names(before)
+    moved = {("main", "visits")}, {("mart", "visits")}
+    if objs["views"] != (was["views"] - moved[0]) | moved[1]:
+        return f"partial: views {sorted(objs['views'] ^ was['views'])}"
+    macros = {("main", "visits_score")}, {("mart", "visits_score")}
+    if objs["functions"] != (was["functions"] - macros[0]) | macros[1]:
+        return f"partial: macros {sorted(objs['functions'] ^ was['functions'])}"
+    versions = [r for r in registry_rows(after, "model_version") if r["model_name"] == "visits"]
+    if [(r["version"], r["status"]) for r in versions] != [(1, "retired"), (2, "live")]:
+        return "partial: versions"
+    model = next(r for r in registry_rows(after, "model") if r["model_name"] == "visits")
+    if (model["live_version"], model["view_schema"]) != (2, "mart"):
+        return "partial: the model row does not name the live view"
+    with duckdb.connect(str(path), read_only=True) as con:
+        got = con.execute("SELECT score_mean FROM mart.visits ORDER BY row_id").fetchnumpy()
+    if not np.allclose(got["score_mean"], expected, rtol=RTOL):
+        return "partial: view scores differ from statsmodels"
+    return "moved"
+
+
+@pytest.mark.slow
+def test_kill_before_every_statement_of_a_move(
+    setup: Setup, servers: list[Server], tmp_path: Path
+) -> None:
+    # issue 11 item 4: the refit moves the view and macro to schema mart; the old ones are
+    # dropped in the same transaction, so a kill leaves either the old state or only the new
+    ref_path = copy_db(setup.path, tmp_path / "move_ref.duckdb")
+    ref = run_child(ref_path, MOVE, server=servers[0])
+    assert classify_move(setup.before, R.dump_file(ref_path), ref_path, setup.expected_mean) == (
+        "moved"
+    )
+    _, wb_points = _write_back_points(ref)
+    stmts = dict(ref.statements())
+    drops = [n for n in wb_points if stmts[n].startswith("execute DROP")]
+    assert len(drops) == 2  # the old view and the old macro
+    commit = next(n for n, text in stmts.items() if text.startswith("execute COMMIT"))
+
+    def job(point: int | None) -> Any:
+        def run(server: Server) -> tuple[int | None, str]:
+            path = copy_db(setup.path, tmp_path / f"move_{point}.duckdb")
+            if point is None:
+                r = run_child(path, MOVE, server=server, kill_after_commit=True)
+            else:
+                r = run_child(path, MOVE, server=server, kill_before=point)
+            assert r.killed
+            after = R.dump_file(path, read_only=False)  # replays the log, as the next job
+            outcome = classify_move(setup.before, after, path, setup.expected_mean)
+            OUTCOMES[f"move: {outcome}"] = OUTCOMES.get(f"move: {outcome}", 0) + 1
+            return point, outcome
+
+        return run
+
+    results = dict(_parallel([job(p) for p in [*wb_points, None]], servers))
+    assert all(results[p] == "unchanged" for p in wb_points if p <= commit), results
+    assert results[None] == "moved", results
+
+
 # -------------------------------------------------------------------------------------------
 # locked, read-only, full storage
 # -------------------------------------------------------------------------------------------
@@ -717,6 +784,188 @@ def test_read_only_database_fits_but_refuses_write_back(setup: Setup, db: Path) 
     finally:
         engine.close()
     assert R.dump_file(db) == setup.before
+
+
+# The reading commands on a database nothing may write to. DuckDB used to be opened for
+# writing by every command, which fails on such a file before anything is read (exit 3).
+# Two real ways to make it unwritable, each run in a child process: a read-only bind mount
+# in a private mount namespace (the filesystem says EROFS), and a file and folder without
+# write permission read by an unprivileged user (EACCES; root ignores permissions, so as
+# root the child runs as nobody).
+READ_ONLY_CHILD = textwrap.dedent(
+    """
+    import hashlib, json, sys, warnings
+    import duckdb
+    from click.testing import CliRunner
+    import indb
+    from indb.cli import main
+
+    db, commands, spec = sys.argv[1], json.loads(sys.argv[2]), sys.argv[3]
+    try:  # the protection is real: DuckDB cannot open the file for writing
+        duckdb.connect(db).close()
+        protected = "no: opened for writing"
+    except duckdb.Error as err:
+        protected = str(err)
+    runs = []
+    for args in commands:
+        r = CliRunner().invoke(main, [a.replace("{db}", db).replace("{spec}", spec) for a in args])
+        runs.append({"args": args, "exit_code": r.exit_code, "stdout": r.stdout,
+                     "stderr": r.stderr})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        api = indb.fit("spector", "GRADE", "binomial", db=db, tol=1e-12).to_dict()
+        sql = indb.api.scoring_sql("grades", db=db, dialect="postgres")
+    print(json.dumps({"protected": protected, "runs": runs, "api_fit": api, "api_sql": sql}))
+    """
+)
+READING = {
+    "models": ["models", "--db", "{db}", "--json"],
+    "versions": ["versions", "visits", "--db", "{db}", "--json"],
+    "show": ["show", "visits", "--db", "{db}", "--json"],
+    "compare": ["compare", "visits", "1", "1", "--db", "{db}", "--json"],
+    "scoring-sql": ["scoring-sql", "visits", "--db", "{db}"],
+    "fit": ["fit", "--db", "{db}", "--family", "poisson", "--response", "mdvis", "--tol",
+            "1e-10", "--json", "-q", "randhie"],
+    "fit folded": ["fit", "--db", "{db}", "--family", "binomial", "--response", "GRADE",
+                   "--compress", "always", "--tol", "1e-12", "--json", "-q", "spector"],
+    "fit --dry-run": ["fit", "--db", "{db}", "--family", "binomial", "--response", "GRADE",
+                      "--name", "grades", "--dry-run", "spector"],
+    "run --dry-run": ["run", "{spec}", "--dry-run"],
+    "retrain --dry-run": ["retrain", "{spec}", "--dry-run"],
+}  # fmt: skip
+WRITING = {
+    "fit --name": ["fit", "--db", "{db}", "--family", "binomial", "--response", "GRADE",
+                   "--name", "grades", "--new-version", "-q", "spector"],
+    "promote": ["promote", "visits", "1", "--db", "{db}"],
+    "run": ["run", "{spec}", "--new-version", "-q"],
+    "retrain": ["retrain", "{spec}", "-q"],
+}  # fmt: skip
+
+
+def _unwritable_command(way: str, folder: Path) -> list[str]:
+    """The command prefix that runs the child with ``folder`` unwritable, or a skip."""
+    if way == "read-only filesystem":
+        unshare = shutil.which("unshare")
+        probe = [unshare or "unshare", "--mount", "--propagation", "private", "true"]
+        if unshare is None or subprocess.run(probe, capture_output=True).returncode != 0:
+            pytest.skip("no private mount namespace here (needs root and CAP_SYS_ADMIN)")
+        mount = 'mount --bind -o ro "$1" "$1" && shift && exec "$@"'
+        return [*probe[:-1], "sh", "-c", mount, "sh", str(folder)]
+    (folder / "db.duckdb").chmod(0o444)
+    folder.chmod(0o555)
+    if os.geteuid() != 0:
+        return []
+    setpriv = shutil.which("setpriv")
+    if setpriv is None:
+        pytest.skip("running as root without setpriv: cannot drop to an unprivileged user")
+    prefix = [setpriv, "--reuid=65534", "--regid=65534", "--clear-groups", "--"]
+    # the unprivileged user must be able to run this interpreter and its packages: a clone
+    # under a private folder (mktemp -d is 0700) keeps .venv out of its reach
+    probe = subprocess.run([*prefix, sys.executable, "-c", "import duckdb"], capture_output=True)
+    if probe.returncode != 0:
+        pytest.skip("the unprivileged user cannot import duckdb from this interpreter")
+    return prefix
+
+
+def _coefficients(result: dict[str, Any]) -> dict[str, tuple[float, float]]:
+    return {c["term"]: (c["estimate"], c["std_error"]) for c in result["coefficients"]}
+
+
+def _assert_matches(result: dict[str, Any], ref: Any) -> None:
+    got = _coefficients(result)
+    assert sorted(got) == sorted(ref.params.index)
+    for term, (est, se) in got.items():
+        assert_allclose(est, ref.params[term], rtol=RTOL, atol=1e-6 * ref.bse[term], err_msg=term)
+        assert_allclose(se, ref.bse[term], rtol=RTOL, err_msg=term)
+
+
+@pytest.mark.parametrize("way", ["read-only filesystem", "no write permission"])
+def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str) -> None:
+    # a folder every user may enter (pytest's tmp_path is private to its owner)
+    folder = Path(tempfile.mkdtemp(prefix="indb-ro-"))
+    folder.chmod(0o755)
+    specs = Path(tempfile.mkdtemp(prefix="indb-ro-spec-"))  # the spec file, elsewhere
+    specs.chmod(0o755)
+    try:
+        db = copy_db(setup.path, folder / "db.duckdb")
+        spec = specs / "grades.toml"
+        spec.write_text(
+            '[model]\nsource = "spector"\nresponse = "GRADE"\nfamily = "binomial"\n'
+            f'[deploy]\nname = "grades"\n[engine]\ndb = "{db}"\n'
+        )
+        digest = hashlib.sha256(db.read_bytes()).hexdigest()
+        prefix = _unwritable_command(way, folder)
+        env = dict(os.environ, PYTHONDONTWRITEBYTECODE="1")
+        env["PYTHONPATH"] = os.pathsep.join(
+            [str(Path(indb.__file__).resolve().parent.parent), env.get("PYTHONPATH", "")]
+        )
+        commands = [*READING.values(), *WRITING.values()]
+        out = subprocess.run(
+            [
+                *prefix,
+                sys.executable,
+                "-c",
+                READ_ONLY_CHILD,
+                str(db),
+                json.dumps(commands),
+                str(spec),
+            ],
+            capture_output=True,
+            text=True,
+            timeout=300,
+            env=env,
+            cwd=folder,
+        )
+        assert out.returncode == 0, out.stderr[-3000:]
+        after = hashlib.sha256(db.read_bytes()).hexdigest()
+    finally:
+        folder.chmod(0o755)
+        shutil.rmtree(folder)
+        shutil.rmtree(specs)
+    report = json.loads(out.stdout)
+    reason = "Read-only file system" if way == "read-only filesystem" else "Permission denied"
+    assert reason in report["protected"]
+    runs = dict(zip([*READING, *WRITING], report["runs"], strict=True))
+    for name in READING:
+        assert runs[name]["exit_code"] == 0, (name, runs[name]["stderr"])
+    for name in WRITING:  # writing needs a writable file: a clear engine error, exit 3
+        assert runs[name]["exit_code"] == 3, (name, runs[name]["stderr"])
+        assert "cannot open DuckDB database" in runs[name]["stderr"]
+        assert reason in runs[name]["stderr"]
+    assert after == digest  # nothing was written, not a byte
+
+    # what the reading commands returned, against DuckDB's own reading of the registry and
+    # against statsmodels
+    with duckdb.connect(str(setup.path), read_only=True) as con:
+        live = con.execute(
+            "SELECT model_name, live_version FROM indb_registry.model ORDER BY 1"
+        ).fetchall()
+    models = json.loads(runs["models"]["stdout"])["models"]
+    assert [(m["model"], m["live_version"]) for m in models] == live
+    assert [v["version"] for v in json.loads(runs["versions"]["stdout"])["versions"]] == [1]
+    frame = R.randhie()
+    visits_ref = R.sm_fit(
+        frame["mdvis"], R.design(frame, [c for c in frame.columns if c != "mdvis"]), "poisson"
+    )
+    _assert_matches(json.loads(runs["show"]["stdout"]), visits_ref)
+    _assert_matches(json.loads(runs["fit"]["stdout"]), visits_ref)
+    assert all(t["change"] == 0 for t in json.loads(runs["compare"]["stdout"])["terms"])
+    spector = R.spector()
+    grades_ref = R.sm_fit(spector["GRADE"], R.design(spector, ["GPA", "TUCE", "PSI"]), "binomial")
+    _assert_matches(json.loads(runs["fit folded"]["stdout"]), grades_ref)
+    _assert_matches(report["api_fit"], grades_ref)
+    assert "CREATE" in report["api_sql"] and "grades" in report["api_sql"]
+    for name in ("fit --dry-run", "run --dry-run", "retrain --dry-run"):
+        assert "nothing was written" in runs[name]["stdout"], name
+    # the printed view, run on a writable copy, scores like statsmodels
+    copy = copy_db(setup.path, Path(tempfile.mkdtemp(prefix="indb-ro-copy-")) / "copy.duckdb")
+    try:
+        with duckdb.connect(str(copy)) as con:
+            con.execute(runs["scoring-sql"]["stdout"])
+            mean = con.execute("SELECT score_mean FROM visits ORDER BY row_id").fetchnumpy()
+        assert_allclose(mean["score_mean"], setup.expected_mean, rtol=RTOL)
+    finally:
+        shutil.rmtree(copy.parent)
 
 
 def _spill_connection(path: Path, tmp: Path) -> duckdb.DuckDBPyConnection:

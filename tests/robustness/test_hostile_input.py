@@ -31,7 +31,9 @@ import robust_support as R
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from numpy.testing import assert_allclose
+from scipy import sparse as sp
 from scipy.optimize import minimize
+from scipy.sparse import linalg as spla
 from scipy.special import logsumexp
 
 import indb
@@ -42,6 +44,7 @@ from indb import (
     SeparationWarning,
     SpecError,
 )
+from indb.errors import ResidualDfWarning
 
 # indb and statsmodels solve the same likelihood equations; with tol=1e-12 both are
 # converged far below these (brief of this suite: coefficients rtol 1e-6; property tests 1e-5).
@@ -263,7 +266,9 @@ def test_one_row_intercept_only_gaussian_and_poisson(con: duckdb.DuckDBPyConnect
     res, caught = fit_quiet(one, "GPA", db=con, exclude=["TUCE"])
     assert_allclose(res.params, row["GPA"].to_numpy(), rtol=1e-12)
     assert res.df_resid == 0 and math.isnan(res.dispersion) and math.isnan(res.std_errors[0])
-    assert res.n_used == 1 and not caught
+    # issue 11: zero residual df is said, not left to the NaNs (was: no warning at all)
+    assert res.n_used == 1 and [w.category for w in caught] == [ResidualDfWarning]
+    assert re.search(q("residual degrees of freedom are 0", "NaN"), str(caught[0].message))
 
     res, caught = fit_quiet(one, "TUCE", "poisson", db=con, exclude=["GPA"], tol=TOL)
     ref = R.sm_fit(row["TUCE"], X, "poisson")
@@ -678,6 +683,50 @@ def test_ten_thousand_plus_levels_are_refused_naming_the_option(
     # raising the cap moves the limit: 11,999 still refuses
     with pytest.raises(SpecError, match=q("more than 11999 levels")):
         indb.fit("wide", "y", db=con, max_levels=11_999)
+
+
+def test_twelve_thousand_levels_fit_when_the_cap_is_raised(
+    con: duckdb.DuckDBPyConnection,
+) -> None:
+    # The refused table above, accepted with max_levels=12,000: 24,000 rows, 12,001
+    # coefficients. x = i % 5 is constant within each code, so x is a combination of the
+    # code indicators: in design order (intercept, x, code=...) the last code whose x is not
+    # 0 is set aside. Solved through the block structure (indb.normal_eq); a dense
+    # 12,001 x 12,001 solve would need 1.2 GB per copy.
+    con.execute(
+        "CREATE TABLE wide AS SELECT (i % 7)::DOUBLE AS y, i % 5 AS x, "
+        "'C' || lpad(CAST(i % 12000 AS VARCHAR), 5, '0') AS code FROM range(24000) t(i)"
+    )
+    t0 = time.perf_counter()
+    res, caught = fit_quiet("wide", "y", db=con, max_levels=12_000, tol=TOL)
+    seconds = time.perf_counter() - t0
+    assert res.aliased_terms == ("code=C11999",)
+    assert AliasingWarning in categories(caught)
+    assert seconds < 120  # (a few seconds on 2 cores; the bound only catches a dense path)
+    # oracle: scipy's sparse LU (SuperLU) of X'X on the kept columns, X built here
+    frame = con.execute("SELECT y, x, code FROM wide").df()
+    terms = [t for t in res.terms if t not in res.aliased_terms]
+    pos = {t: j for j, t in enumerate(terms)}
+    n = len(frame)
+    code_col = frame["code"].map(lambda v: pos.get(f"code={v}", -1)).to_numpy()
+    hit = code_col >= 0
+    rows = np.concatenate([np.arange(n), np.arange(n), np.flatnonzero(hit)])
+    cols = np.concatenate([np.zeros(n, int), np.ones(n, int), code_col[hit]])
+    vals = np.concatenate([np.ones(n), frame["x"].to_numpy(float), np.ones(hit.sum())])
+    x = sp.csc_array(sp.coo_array((vals, (rows, cols)), shape=(n, len(terms))))
+    assert [pos["intercept"], pos["x"]] == [0, 1]
+    lu = spla.splu((x.T @ x).tocsc())
+    beta = lu.solve(x.T @ frame["y"].to_numpy())
+    rss = float(np.sum((frame["y"].to_numpy() - x @ beta) ** 2))
+    got = np.array([res.coef(t).estimate for t in terms])
+    assert_allclose(got, beta, rtol=1e-8, atol=1e-9)
+    assert_allclose(res.deviance, rss, rtol=1e-9)
+    sigma2 = rss / (n - len(terms))
+    for term in ("intercept", "x", "code=C00001", "code=C11998"):
+        e = np.zeros(len(terms))
+        e[pos[term]] = 1.0
+        se = math.sqrt(sigma2 * lu.solve(e)[pos[term]])
+        assert_allclose(res.coef(term).std_error, se, rtol=1e-8)
 
 
 def test_level_cap_boundary_and_accepted_fit_when_raised(con: duckdb.DuckDBPyConnection) -> None:
