@@ -82,11 +82,15 @@ class IrlsSolver:
        coefficients given;
     2. per iteration, :meth:`step`: :meth:`scan_accepted` scans at ``beta``, halving the
        step toward ``beta_prev`` while a mean is invalid or the deviance rises (or marks a
-       stall, :meth:`finish_stalled`); the update is solved; the loop ends when the
-       deviance has settled and :meth:`step_size` of the next step is negligible.
+       stall, :meth:`finish_stalled`; when halving fails, :meth:`check_repeatable` first
+       rules out a source whose values change between reads); the update is solved; the
+       loop ends when the deviance has settled and :meth:`step_size` of the next step is
+       negligible.
 
     :meth:`scan` is one query: the log-link scan where it applies (:meth:`log_scan_sums`),
-    else the IRLS scan (:meth:`gram_scan_sums`); the null model rides along in either.
+    else the IRLS scan (:meth:`gram_scan_sums`); the null model rides along in either. Each
+    scan's row counts are checked against the profile's
+    (:meth:`indb.fitrun.FitRun.check_rows`).
     """
 
     #: the coefficients the next scan reads, and the last accepted ones (halving goes there)
