@@ -54,7 +54,7 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
     import duckdb
 
     import indb
-    from indb.engine import DuckDBEngine
+    from indb.engines.duckdb import DuckDBEngine
 
     class RecordingEngine(DuckDBEngine):
         """The stock DuckDB adapter, noting each query's text and engine time."""

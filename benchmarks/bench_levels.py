@@ -131,7 +131,7 @@ def child(job: dict[str, Any]) -> dict[str, Any]:
     import duckdb
 
     import indb
-    from indb.engine import DuckDBEngine
+    from indb.engines.duckdb import DuckDBEngine
 
     class TimedEngine(DuckDBEngine):
         """The stock adapter, adding up the engine time of every statement."""

@@ -34,7 +34,7 @@ HERE = os.path.dirname(os.path.abspath(__file__))
 sys.path.insert(0, os.path.dirname(HERE))
 
 import indb  # noqa: E402
-from indb import engine as E  # noqa: E402
+from indb.engines import duckdb as E  # noqa: E402
 
 
 def cpu_best(con: duckdb.DuckDBPyConnection, sql: str, repeats: int = 5) -> float:

@@ -59,8 +59,8 @@ ROOT = os.path.dirname(HERE)
 sys.path.insert(0, ROOT)  # run from a checkout: the indb package next to benchmarks/
 
 import indb  # noqa: E402
-from indb.engine import DuckDBEngine  # noqa: E402
-from indb.spark import SparkEngine  # noqa: E402
+from indb.engines.duckdb import DuckDBEngine  # noqa: E402
+from indb.engines.spark import SparkEngine  # noqa: E402
 
 MIB = 1024**2
 # a numeric-only logistic model (not among bench_data's four), to pair with poisson_num

@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
-from indb.api import fit
-from indb.engine import DuckDBEngine, Engine, connect
+from indb import report as _report  # noqa: F401  (registers str(result), the text report)
+from indb.api import deploy, fit, scoring_sql
+from indb.engines.backends import connect
+from indb.engines.base_engine import Engine
+from indb.engines.duckdb import DuckDBEngine
 from indb.errors import (
     AliasingWarning,
     ConvergenceWarning,
@@ -19,8 +22,7 @@ from indb.errors import (
 )
 from indb.results import Coefficient, FitResult, IterationRecord
 from indb.spec import ModelSpec
-
-__version__ = "0.1.0"
+from indb.version import __version__
 
 __all__ = [
     "AliasingWarning",
@@ -41,6 +43,8 @@ __all__ = [
     "SpecError",
     "UnsupportedError",
     "connect",
+    "deploy",
     "fit",
+    "scoring_sql",
     "__version__",
 ]

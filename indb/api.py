@@ -9,60 +9,22 @@ from typing import Any
 
 from indb import options as O
 from indb import writeback as W
-from indb.engine import Engine, connect
+from indb.engines.backends import connect
+from indb.engines.base_engine import Engine
 from indb.errors import ConvergenceWarning, SpecError
 from indb.fitter import fit_spec, plan_spec
-from indb.options import Kind
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
+from indb.registry_append import open_registry
 from indb.results import FitResult
 from indb.spec import ModelSpec
 
-# The options of fit(), each with the kind of value it takes (indb.options): the Python
-# call, `dry_run` and the spec file's tables are all checked against these declarations.
-FIT_ARGUMENTS: dict[str, Kind] = {
-    "source": O.TEXT,
-    "response": O.TEXT,
-    "family": O.TEXT,
-    "link": O.TEXT,
-}
-SPEC_OPTIONS: dict[str, Kind] = {
-    "trials": O.TEXT,
-    "offset": O.TEXT,
-    "weight": O.TEXT,
-    "frequency_weight": O.TEXT,
-    "power": O.NUMBER,
-    "theta": O.NUMBER,
-    "link_power": O.NUMBER,
-    "intercept": O.BOOLEAN,
-    "predictors": O.NAMES,
-    "exclude": O.NAMES,
-    "categorical": O.NAMES,
-    "reference": O.LEVELS,
-    "interactions": O.COLUMN_GROUPS,
-    "splines": O.KNOTS,
-    "on_null": O.TEXT,
-    "tol": O.NUMBER,
-    "max_iter": O.WHOLE,
-    "strict": O.BOOLEAN,
-    "max_levels": O.WHOLE,
-    "confidence": O.NUMBER,
-    "start": O.VALUES,
-    "compress": O.TEXT,
-    "sample_start": O.TEXT,
-}
-DEPLOY_OPTIONS: dict[str, Kind] = {
-    "name": O.TEXT,
-    "view_schema": O.TEXT,
-    "score_source": O.TEXT,
-    "intervals": O.BOOLEAN,
-    "registry_schema": O.TEXT,
-}
-ENGINE_OPTIONS: dict[str, Kind] = {
-    "memory_limit": O.TEXT,
-    "temp_directory": O.TEXT,
-    "threads": O.WHOLE,
-}
-FIT_OPTIONS = {**FIT_ARGUMENTS, **SPEC_OPTIONS, **DEPLOY_OPTIONS, **ENGINE_OPTIONS}
+# The options of fit() and their kinds, as the checks here read them; declared once in
+# indb.options (OPTIONS), which the spec file and the command line read too.
+FIT_ARGUMENTS = O.FIT_ARGUMENTS
+SPEC_OPTIONS = O.SPEC_OPTIONS
+DEPLOY_OPTIONS = O.DEPLOY_OPTIONS
+ENGINE_OPTIONS = O.ENGINE_OPTIONS
+FIT_OPTIONS = O.FIT_OPTIONS
 
 
 def fit(
@@ -112,7 +74,8 @@ def fit(
     Each IRLS iteration is one generated aggregate query; only sums (X'WX, X'Wz, deviance)
     leave the database. With ``name`` the fitted model is written back: a new registry
     version and, when promoted, a scoring view ``name`` (and a ``name_score`` macro on
-    DuckDB); ``result.deployment`` then says where. See the README for every option.
+    DuckDB); ``result.deployment`` then says where. Every option is declared, with its
+    kind, default and help, in ``indb.options.OPTIONS``; see the README and ``indb fit --help``.
 
     Returns
     -------
@@ -163,14 +126,16 @@ def fit(
         threads=threads,
     )
     try:
-        if name is not None:  # names the engine itself uses are refused before the fit
-            Registry(engine, registry_schema).check_model_name(name)
+        if name is not None:  # a name the deployment cannot take is refused before any scan
+            open_registry(engine, registry_schema).check_before_fit(
+                name, view_schema=view_schema, promote=promote
+            )
         result = fit_spec(spec, engine, progress)
         if name is not None:
             # a fit that did not converge is recorded but never made live on its own (as
             # retrain's require_converged gate holds it): the live version keeps serving
             hold = promote and not result.converged
-            reg = Registry(engine, registry_schema)
+            reg = open_registry(engine, registry_schema)
             outcome = reg.save(
                 name,
                 result,
@@ -244,12 +209,12 @@ def scoring_sql(
     stored offset is read in the dialect it was written in and carried over with its
     meaning; what cannot be raises :class:`~indb.errors.UnsupportedError`.
     """
-    from indb.dialect import dialect_for
+    from indb.engines.backends import dialect_for
 
     target = dialect_for(dialect)
     engine = connect(db, read_only=True)
     try:
-        reg = Registry(engine, registry_schema)
+        reg = open_registry(engine, registry_schema)
         sql = reg.scoring_sql(
             name,
             target,
@@ -298,7 +263,7 @@ def deploy(
     O.check_options(locals(), DEPLOY_OPTIONS)
     engine = connect(db)
     try:
-        outcome = Registry(engine, registry_schema).save(
+        outcome = open_registry(engine, registry_schema).save(
             name,
             result,
             promote=promote,
@@ -348,4 +313,4 @@ def registry(db: Any = None, schema: str = DEFAULT_SCHEMA, *, read_only: bool = 
     puts back the settings indb changed on it.
     """
     engine = db if isinstance(db, Engine) else connect(db, read_only=read_only)
-    return Registry(engine, schema)
+    return open_registry(engine, schema)

@@ -1,10 +1,12 @@
 """The ``indb`` command line: parse options, call the library, print.
 
-No SQL and no numerics live here. Every option maps onto one keyword of :func:`indb.api.fit`
-(or of the registry and retrain functions); options left out are not passed on, so the
-library's defaults stay the only defaults. Errors raised by the library become one line on
-stderr starting with ``indb: error:`` and an exit code per error class (see ``EXIT_CODES``);
-``indb retrain`` adds exit code 6 for a version held back by a gate.
+No SQL and no numerics live here, and no text layout (``indb.render``). The fit's options
+are generated from their one declaration (``indb.options.OPTIONS``, by ``indb.cli_options``)
+and each maps onto the keyword of :func:`indb.api.fit` of the same name; options left out
+are not passed on, so the library's defaults stay the only defaults. Errors raised by the
+library become one line on stderr starting with ``indb: error:`` and an exit code per error
+class (see ``EXIT_CODES``); ``indb retrain`` adds exit code 6 for a version held back by a
+gate.
 
 Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` and
 ``retrain`` (TOML spec files), the registry commands ``models``, ``versions``, ``show``,
@@ -14,10 +16,6 @@ Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` a
 from __future__ import annotations
 
 import dataclasses
-import datetime as _dt
-import inspect
-import json
-import math
 import warnings
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -26,11 +24,15 @@ from typing import Any, TypeVar
 
 import click
 
+from indb import cli_options as CO
+from indb import options as O
+from indb import render as R
 from indb import writeback
 from indb.api import dry_run as dry_run_model
 from indb.api import fit as fit_model
 from indb.api import registry as open_registry
-from indb.dialect import SCORING_DIALECTS, Dialect, dialect_for
+from indb.engines.backends import DIALECT_NAMES, SCORING_DIALECTS, dialect_for
+from indb.engines.base_dialect import Dialect
 from indb.errors import (
     EngineError,
     IndbError,
@@ -40,10 +42,9 @@ from indb.errors import (
     UnsupportedError,
 )
 from indb.registry import DEFAULT_SCHEMA, Registry
-from indb.report import render_json, render_report
 from indb.results import FitResult, IterationRecord
-from indb.retrain import EXIT_HELD, RetrainOutcome, retrain
-from indb.spec import MAX_LEVELS_LIMIT, Source
+from indb.retrain import EXIT_HELD, retrain
+from indb.spec import Source
 from indb.specfile import SpecFile, load_spec_file
 
 __all__ = ["main", "EXIT_CODES"]
@@ -73,17 +74,6 @@ Exit codes (stable; for schedulers and scripts):
   7  registry conflict: unknown model or version, dropping the live version,
      promoting a dropped one
 """
-
-_FIT_DEFAULTS = {
-    name: p.default
-    for name, p in inspect.signature(fit_model).parameters.items()
-    if p.default is not inspect.Parameter.empty
-}
-
-
-def _default(name: str) -> str:
-    return f" [library default: {_FIT_DEFAULTS.get(name)}]" if name in _FIT_DEFAULTS else ""
-
 
 # -- errors -------------------------------------------------------------------------
 
@@ -137,93 +127,15 @@ def _echo_warnings(
         click.echo(f"indb: warning: {text}", err=True)
 
 
-# -- option parsing helpers (input mistakes are SpecErrors: exit code 2) ---------------
-
-
-def _parse_pairs(
-    values: Sequence[str], option: str, example: str, shape: str = "COLUMN=VALUE"
-) -> dict[str, str]:
-    pairs: dict[str, str] = {}
-    for raw in values:
-        column, sep, value = raw.partition("=")
-        column = column.strip()
-        if not sep or not column or value == "":
-            raise SpecError(
-                f"{option} expects {shape}, got {raw!r}; write it like {option} {example}"
-            )
-        if column in pairs:
-            raise SpecError(
-                f"{option} names column {column!r} twice ({pairs[column]!r} and {value!r}); "
-                "give each column once"
-            )
-        pairs[column] = value
-    return pairs
-
-
-def _parse_splines(values: Sequence[str]) -> dict[str, int]:
-    knots: dict[str, int] = {}
-    for raw, (column, text) in zip(
-        values, _parse_pairs(values, "--spline", "age=4", "COLUMN=KNOTS").items(), strict=True
-    ):
-        try:
-            knots[column] = int(text)
-        except ValueError:
-            raise SpecError(
-                f"--spline expects COLUMN=KNOTS with a whole number of knots, got {raw!r}; "
-                f"write it like --spline {column}=4"
-            ) from None
-    return knots
-
-
-def _parse_interactions(values: Sequence[str]) -> list[tuple[str, ...]]:
-    out: list[tuple[str, ...]] = []
-    for raw in values:
-        columns = tuple(part.strip() for part in raw.split(","))
-        if len(columns) < 2 or any(not c for c in columns):
-            raise SpecError(
-                f"--interact expects two or more comma-separated column names, got {raw!r}; "
-                "write it like --interact age,region"
-            )
-        out.append(columns)
-    return out
-
-
 # -- progress -----------------------------------------------------------------------
 
 
-def _fmt_number(value: float, spec: str) -> str:
-    return format(value, spec) if math.isfinite(value) else "n/a"
-
-
-# Scans that are not steps of the main IRLS fit (see IterationRecord.phase).
-_PHASE_LABELS = {"theta": "theta-estimation", "null": "null-model", "sample": "sample-start"}
-
-
-def format_iteration(record: IterationRecord) -> str:
-    """One progress line for one IRLS iteration (written to stderr by ``indb fit``)."""
-    phase = getattr(record, "phase", "fit")
-    label = "iteration" if phase == "fit" else f"{_PHASE_LABELS.get(phase, phase)} iteration"
-    return (
-        f"indb: {label} {record.iteration:>3}"
-        f"  deviance {_fmt_number(record.deviance, '.10g')}"
-        f"  relative change {_fmt_number(record.relative_change, '.3e')}"
-        f"  step halvings {record.step_halvings}"
-        f"  {_fmt_number(record.seconds, '.3f')} s"
-    )
-
-
 def _echo_iteration(record: IterationRecord) -> None:
-    click.echo(format_iteration(record), err=True)
-
-
-def iteration_json(record: IterationRecord) -> str:
-    """One iteration as a single-line JSON object (``--progress-json``; NaN/inf -> null)."""
-    fields = {k: _finite_or_none(v) for k, v in dataclasses.asdict(record).items()}
-    return json.dumps(fields, allow_nan=False, separators=(",", ":"))
+    click.echo(R.format_iteration(record), err=True)
 
 
 def _echo_iteration_json(record: IterationRecord) -> None:
-    click.echo(iteration_json(record), err=True)
+    click.echo(R.iteration_json(record), err=True)
 
 
 def _progress(quiet: bool, as_json: bool, progress_json: bool) -> Callable[..., None] | None:
@@ -248,127 +160,11 @@ def _apply(*decorators: Callable[[F], F]) -> Callable[[F], F]:
     return wrap
 
 
-database_option = click.option(
-    "--db",
-    "db",
-    metavar="DB",
-    default=None,
-    help="DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
-    "out to work in a fresh in-memory DuckDB database. A DuckDB file is opened read-only "
-    "unless --name writes to it.",
-)
-
-model_options = _apply(
-    click.option(
-        "--family", required=True, metavar="F", help="Distribution family of the response."
-    ),
-    click.option("--link", default=None, metavar="L", help="Link function (default: canonical)."),
-    click.option("--response", required=True, metavar="COL", help="Response column."),
-    click.option(
-        "--trials", default=None, metavar="EXPR", help="Binomial trials per row (SQL expression)."
-    ),
-    click.option("--offset", default=None, metavar="EXPR", help="Offset, e.g. 'ln(exposure)'."),
-    click.option("--weight", default=None, metavar="EXPR", help="Prior (variance) weight."),
-    click.option(
-        "--frequency-weight",
-        "frequency_weight",
-        default=None,
-        metavar="EXPR",
-        help="Each row counts this many times.",
-    ),
-    click.option("--power", type=float, default=None, metavar="P", help="Tweedie variance power."),
-    click.option(
-        "--theta",
-        type=float,
-        default=None,
-        metavar="T",
-        help="Negative binomial theta; leave out to estimate it.",
-    ),
-    click.option(
-        "--link-power",
-        "link_power",
-        type=float,
-        default=None,
-        metavar="X",
-        help="Exponent for --link power.",
-    ),
-    click.option(
-        "--no-intercept", "no_intercept", is_flag=True, help="Fit without an intercept term."
-    ),
-    click.option(
-        "--only",
-        "only",
-        multiple=True,
-        metavar="COL",
-        help="Use only these predictor columns (repeatable).",
-    ),
-    click.option(
-        "--exclude",
-        multiple=True,
-        metavar="COL",
-        help="Leave this column out of the predictors (repeatable).",
-    ),
-    click.option(
-        "--categorical",
-        multiple=True,
-        metavar="COL",
-        help="Treat this numeric column as categorical (repeatable).",
-    ),
-    click.option(
-        "--reference",
-        multiple=True,
-        metavar="COL=LEVEL",
-        help="Reference level of a categorical column (repeatable).",
-    ),
-    click.option(
-        "--interact",
-        multiple=True,
-        metavar="A,B",
-        help="Add the interaction of these comma-separated columns (repeatable).",
-    ),
-    click.option(
-        "--spline",
-        multiple=True,
-        metavar="COL=KNOTS",
-        help="Restricted cubic spline of COL with KNOTS knots (repeatable).",
-    ),
-    click.option(
-        "--nulls",
-        type=click.Choice(["exclude", "error"]),
-        default=None,
-        help="Rows with NULL in a model column: set them aside or stop." + _default("on_null"),
-    ),
-    click.option(
-        "--tol",
-        type=float,
-        default=None,
-        help="Relative deviance change that ends IRLS." + _default("tol"),
-    ),
-    click.option(
-        "--max-iter",
-        "max_iter",
-        type=int,
-        default=None,
-        help="Iteration cap." + _default("max_iter"),
-    ),
-    click.option(
-        "--strict", is_flag=True, help="Fail (exit 5) instead of warning when IRLS does not settle."
-    ),
-    click.option(
-        "--max-levels",
-        "max_levels",
-        type=int,
-        default=None,
-        help=f"Most levels a categorical column may have (at most {MAX_LEVELS_LIMIT:,})."
-        + _default("max_levels"),
-    ),
-    click.option(
-        "--confidence",
-        type=float,
-        default=None,
-        help="Confidence level of the intervals." + _default("confidence"),
-    ),
-)
+# The fit's options, generated from their one declaration (indb.options.OPTIONS).
+database_option = CO.click_options(O.OPTION["db"])
+model_options = CO.click_options(*CO.on_cli("model"))
+execution_options = CO.click_options(*(o for o in CO.on_cli("engine") if o.name != "db"))
+deploy_options = CO.click_options(*CO.on_cli("deploy"))
 
 output_options = _apply(
     click.option(
@@ -388,13 +184,7 @@ progress_json_option = click.option(
     "(printed even with -q or --json).",
 )
 
-registry_schema_option = click.option(
-    "--registry-schema",
-    "registry_schema",
-    default=None,
-    metavar="S",
-    help=f"Schema holding the model registry [default: {DEFAULT_SCHEMA}].",
-)
+registry_schema_option = CO.click_options(O.OPTION["registry_schema"])
 
 registry_database_option = click.option(
     "--db",
@@ -403,95 +193,6 @@ registry_database_option = click.option(
     required=True,
     help="Where the model registry lives: a DuckDB database file, or postgresql://..., "
     "spark:local[N], sc://host:port. Commands that only read open a DuckDB file read-only.",
-)
-
-execution_options = _apply(
-    click.option(
-        "--compress",
-        type=click.Choice(["auto", "always", "never"]),
-        default=None,
-        help="Fold the source to its distinct design rows before IRLS." + _default("compress"),
-    ),
-    click.option(
-        "--sample-start",
-        "sample_start",
-        type=click.Choice(["auto", "always", "never"]),
-        default=None,
-        help="Start IRLS from a fit on a hashed sample of about 100,000 rows (auto: tables "
-        "of 2,000,000 rows or more)." + _default("sample_start"),
-    ),
-    click.option(
-        "--memory-limit",
-        "memory_limit",
-        default=None,
-        metavar="SIZE",
-        help="DuckDB memory limit, e.g. 4GB; work beyond it spills to --temp-directory.",
-    ),
-    click.option(
-        "--temp-directory",
-        "temp_directory",
-        default=None,
-        metavar="DIR",
-        help="Folder DuckDB spills to when over --memory-limit.",
-    ),
-    click.option(
-        "--threads",
-        type=click.IntRange(min=1),
-        default=None,
-        metavar="N",
-        help="DuckDB worker threads.",
-    ),
-)
-
-# (option key, flag as typed): options that only mean something together with --name.
-_DEPLOY_FLAGS = (
-    ("hold", "--hold"),
-    ("new_version", "--new-version"),
-    ("view_schema", "--view-schema"),
-    ("score_source", "--score-source"),
-    ("intervals", "--intervals"),
-    ("registry_schema", "--registry-schema"),
-)
-
-deploy_options = _apply(
-    click.option(
-        "--name",
-        default=None,
-        metavar="NAME",
-        help="Write the model back into --db: a new registry version, the scoring view NAME "
-        "and the scoring macro NAME_score.",
-    ),
-    click.option(
-        "--hold", is_flag=True, help="With --name: record the version without making it live."
-    ),
-    click.option(
-        "--new-version",
-        "new_version",
-        is_flag=True,
-        help="With --name: record a new version even when spec and data are unchanged.",
-    ),
-    click.option(
-        "--view-schema",
-        "view_schema",
-        default=None,
-        metavar="S",
-        help="With --name: schema for the scoring view and macro (default: the main schema).",
-    ),
-    click.option(
-        "--score-source",
-        "score_source",
-        default=None,
-        metavar="SRC",
-        help="With --name: table, query or file the scoring view reads instead of SOURCE; it "
-        "needs the model's input columns.",
-    ),
-    click.option(
-        "--intervals",
-        is_flag=True,
-        help="With --name: add the standard error of eta and a confidence interval for the "
-        "mean to the scoring view.",
-    ),
-    registry_schema_option,
 )
 
 dry_run_option = click.option(
@@ -530,56 +231,14 @@ def _check_database_path(
 
 def _fit_arguments(options: dict[str, Any]) -> dict[str, Any]:
     """Map parsed CLI options onto ``indb.api.fit`` keywords, passing only what was given."""
-    kwargs: dict[str, Any] = {"family": options["family"]}
-    for name in (
-        "link",
-        "db",
-        "trials",
-        "offset",
-        "weight",
-        "frequency_weight",
-        "power",
-        "theta",
-        "link_power",
-        "tol",
-        "max_iter",
-        "max_levels",
-        "confidence",
-        "compress",
-        "sample_start",
-        "memory_limit",
-        "temp_directory",
-        "threads",
-    ):
-        if options[name] is not None:
-            kwargs[name] = options[name]
-    if options["nulls"] is not None:
-        kwargs["on_null"] = options["nulls"]
-    if options["no_intercept"]:
-        kwargs["intercept"] = False
-    if options["strict"]:
-        kwargs["strict"] = True
-    if options["only"]:
-        kwargs["predictors"] = list(options["only"])
-    if options["exclude"]:
-        kwargs["exclude"] = list(options["exclude"])
-    if options["categorical"]:
-        kwargs["categorical"] = list(options["categorical"])
-    if options["reference"]:
-        kwargs["reference"] = _parse_pairs(
-            options["reference"], "--reference", "region=North", "COLUMN=LEVEL"
-        )
-    if options["interact"]:
-        kwargs["interactions"] = _parse_interactions(options["interact"])
-    if options["spline"]:
-        kwargs["splines"] = _parse_splines(options["spline"])
-    return kwargs
+    return CO.given_arguments(options, CO.on_cli("model", "engine"))
 
 
 def _deploy_arguments(options: dict[str, Any]) -> dict[str, Any]:
     """Map --name and its companions onto ``indb.api.fit`` keywords (empty without --name)."""
-    given = [flag for key, flag in _DEPLOY_FLAGS if options[key] not in (None, False)]
     if options["name"] is None:
+        # options that only mean something together with --name
+        given = CO.given_flags(options, (o for o in O.group("deploy") if o.name != "name"))
         if given:
             raise SpecError(
                 f"{', '.join(given)} only apply when the model is written back; "
@@ -594,115 +253,27 @@ def _deploy_arguments(options: dict[str, Any]) -> dict[str, Any]:
     # Names are checked before the fit: the library checks them only when writing back,
     # after a fit that may have taken minutes.
     writeback.check_name(options["name"], "model name (--name)")
-    for key, what in (("view_schema", "--view-schema"), ("registry_schema", "--registry-schema")):
+    for key in ("view_schema", "registry_schema"):
         if options[key] is not None:
-            writeback.check_name(options[key], what)
-    kwargs: dict[str, Any] = {"name": options["name"]}
-    if options["hold"]:
-        kwargs["promote"] = False
-    if options["new_version"]:
-        kwargs["new_version"] = True
-    if options["intervals"]:
-        kwargs["intervals"] = True
-    for key in ("view_schema", "score_source", "registry_schema"):
-        if options[key] is not None:
-            kwargs[key] = options[key]
-    return kwargs
+            writeback.check_name(options[key], O.OPTION[key].flag)
+    return CO.given_arguments(options, CO.on_cli("deploy"))
 
 
 # -- printing -----------------------------------------------------------------------
 
 
-def _finite_or_none(value: Any) -> Any:
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
-
-
-def _plain(value: Any) -> Any:
-    """JSON-ready copy: non-finite floats -> null, timestamps -> ISO text, tuples -> lists."""
-    if isinstance(value, dict):
-        return {str(k): _plain(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_plain(v) for v in value]
-    if isinstance(value, _dt.datetime | _dt.date):
-        return value.isoformat()
-    return _finite_or_none(value)
-
-
-def _dumps(value: Any) -> str:
-    return json.dumps(_plain(value), indent=2, allow_nan=False, default=str)
-
-
-def _num(value: Any, spec: str = ".6g") -> str:
-    if value is None:
-        return "n/a"
-    if isinstance(value, bool):
-        return "yes" if value else "no"
-    if isinstance(value, int):
-        return str(value)
-    return _fmt_number(float(value), spec)
-
-
-def _when(value: Any) -> str:
-    if isinstance(value, _dt.datetime):
-        return value.strftime("%Y-%m-%d %H:%M:%S")
-    return "n/a" if value is None else str(value)
-
-
-def _table(headers: Sequence[str], rows: Sequence[Sequence[str]], right: Sequence[int]) -> str:
-    """Columns separated by two spaces; the columns numbered in ``right`` are right-aligned."""
-    widths = [len(h) for h in headers]
-    for row in rows:
-        widths = [max(w, len(cell)) for w, cell in zip(widths, row, strict=True)]
-
-    def line(cells: Sequence[str]) -> str:
-        parts = [
-            c.rjust(w) if i in right else c.ljust(w)
-            for i, (c, w) in enumerate(zip(cells, widths, strict=True))
-        ]
-        return "  ".join(parts).rstrip()
-
-    return "\n".join([line(headers), *(line(r) for r in rows)])
-
-
 def _print_sql(statements: Sequence[tuple[str, str]], as_json: bool, note: str = "") -> None:
     if as_json:
-        click.echo(_dumps({"sql": [{"purpose": p, "sql": s} for p, s in statements], "note": note}))
-        return
-    for purpose, sql in statements:
-        click.echo(f"-- {purpose}\n{sql};\n")
-    if note:
-        click.echo(f"-- {note}")
-
-
-def _deployment_text(deployment: dict[str, Any], db: str | None) -> str:
-    name, version = deployment["model"], deployment["version"]
-    if not deployment["created"]:
-        state = "live" if deployment["promoted"] else "held"
-        return (
-            f"Model {name}: same spec and data as version {version} ({state}); nothing new "
-            "recorded (--new-version records one anyway)."
-        )
-    if not deployment["promoted"]:
-        return (
-            f"Model {name}: version {version} recorded but not live; make it live with "
-            f"`indb promote {name} {version} --db {db}`."
-        )
-    macro = f", scoring macro {deployment['macro']}" if deployment.get("macro") else ""
-    return (
-        f"Model {name}: version {version} is live; scoring view {deployment['scoring_view']} "
-        f"(predicted mean in column {deployment['mean_column']}){macro}."
-    )
+        click.echo(R.statements_json(statements, note))
+    else:
+        click.echo(R.statements_text(statements, note), nl=False)
 
 
 def _emit_result(result: FitResult, as_json: bool, db: str | None) -> None:
     if as_json:
-        click.echo(render_json(result))
-        return
-    click.echo(render_report(result), nl=False)
-    if result.deployment:
-        click.echo("\n" + _deployment_text(result.deployment, db))
+        click.echo(R.fit_json(result))
+    else:
+        click.echo(R.fit_text(result, db), nl=False)
 
 
 def _shown_warnings(result: FitResult, as_json: bool) -> tuple[str, ...]:
@@ -753,92 +324,13 @@ def _open_registry(db: str, schema: str | None, *, writes: bool = False) -> Iter
         reg.engine.close()
 
 
-def _view_label(model_row: dict[str, Any]) -> str:
-    schema = model_row.get("view_schema")
-    return f"{schema}.{model_row['view_name']}" if schema else str(model_row["view_name"])
-
-
 def _dialect(name: str) -> Dialect:
-    if name.strip().lower() not in (*SCORING_DIALECTS, "postgresql"):
+    if name.strip().lower() not in DIALECT_NAMES:
         raise SpecError(
             f"--dialect {name!r} is not supported for scoring SQL; supported: "
             f"{', '.join(SCORING_DIALECTS)}"
         )
     return dialect_for(name)
-
-
-def _compare_text(cmp: dict[str, Any]) -> str:
-    a, b = cmp["a"], cmp["b"]
-    lines = [f"Model {cmp['model']}: version {a} compared with version {b}", ""]
-    rows = [
-        [
-            t["term"],
-            _num(t["estimate_a"]),
-            _num(t["estimate_b"]),
-            _num(t["change"], ".4g"),
-            _num(t["change_in_se"], ".3f"),
-            _num(t["relative_change"], ".3g"),
-        ]
-        for t in cmp["terms"]
-    ]
-    headers = [
-        "term",
-        f"version {a}",
-        f"version {b}",
-        "change",
-        f"change in SE of v{a}",
-        "relative change",
-    ]
-    lines.append(_table(headers, rows, right=(1, 2, 3, 4, 5)))
-    if cmp["terms_only_in_b"]:
-        lines.append(f"terms only in version {b}: {', '.join(cmp['terms_only_in_b'])}")
-    lines.append("")
-    stats = [
-        ["rows used", *(_num(v) for v in cmp["rows"])],
-        ["deviance", *(_num(v, ".10g") for v in cmp["deviance"])],
-        ["deviance per row", *(_num(v, ".6g") for v in cmp["deviance_per_row"])],
-        ["AIC", *(_num(v, ".10g") for v in cmp["aic"])],
-        ["converged", *(_num(v) for v in cmp["converged"])],
-    ]
-    lines.append(_table(["", f"version {a}", f"version {b}"], stats, right=(1, 2)))
-    return "\n".join(lines)
-
-
-def _retrain_text(outcome: RetrainOutcome, db: str | None) -> str:
-    name, v, prev = outcome.model, outcome.version, outcome.previous_version
-    view = outcome.result.deployment.get("scoring_view") if outcome.result else None
-    failed = [c.gate for c in outcome.checks if not c.passed]
-    if outcome.status == "first":
-        head = f"Model {name}: first version {v} recorded and live; scoring view {view}."
-    elif outcome.status == "promoted":
-        head = f"Model {name}: version {v} promoted, replacing version {prev}; view {view}."
-    elif outcome.status == "unchanged":
-        head = (
-            f"Model {name}: spec and data unchanged; version {v} stays live "
-            "(--force records a new version)."
-        )
-    else:
-        keep = f"version {prev} stays live" if prev is not None else "no version is live"
-        head = (
-            f"Model {name}: version {v} recorded but HELD BACK by gate(s) "
-            f"{', '.join(failed)}; {keep}. Promote it anyway with "
-            f"`indb promote {name} {v} --db {db}`."
-        )
-    if outcome.previous_iterations is None:
-        iters = f"IRLS iterations: {outcome.iterations} (cold start: no live version)."
-    else:
-        iters = (
-            f"IRLS iterations: {outcome.iterations}, warm-started from version {prev} "
-            f"(version {prev} took {outcome.previous_iterations})."
-        )
-    lines = [head, iters]
-    if outcome.checks:
-        rows = [
-            [c.gate, _num(c.value, ".6g"), _num(c.limit, ".6g"), "pass" if c.passed else "FAIL"]
-            for c in outcome.checks
-        ]
-        lines += ["", _table(["gate", "value", "limit", "result"], rows, right=(1, 2))]
-    return "\n".join(lines)
 
 
 # -- commands -----------------------------------------------------------------------
@@ -882,12 +374,12 @@ def fit_command(
             _check_database_path(options["db"])
         kwargs = _fit_arguments(options)
         if dry_run:
-            statements = dry_run_model(source, options["response"], **kwargs)
+            statements = dry_run_model(source, **kwargs)
         else:
             progress = _progress(quiet, as_json, progress_json)
             if progress is not None:
                 kwargs["progress"] = progress
-            result = fit_model(source, options["response"], **kwargs, **deploy)
+            result = fit_model(source, **kwargs, **deploy)
     if dry_run:
         _echo_warnings(caught, quiet=quiet, already_shown=())
         note = (
@@ -906,11 +398,8 @@ def fit_command(
 @output_options
 @progress_json_option
 @dry_run_option
-@click.option(
-    "--new-version",
-    "new_version",
-    is_flag=True,
-    help="Record a new version even when spec and data are unchanged.",
+@CO.click_options(
+    O.OPTION["new_version"], help="Record a new version even when spec and data are unchanged."
 )
 @click.argument("spec_path", metavar="SPEC.toml")
 def run_command(
@@ -919,7 +408,7 @@ def run_command(
     quiet: bool,
     progress_json: bool,
     dry_run: bool,
-    new_version: bool,
+    new_version: bool | None,
 ) -> None:
     """Fit the model declared in SPEC.toml, record it and make it the live version.
 
@@ -936,7 +425,7 @@ def run_command(
                 **spec.model,
                 **spec.engine,
                 **spec.deploy,
-                new_version=new_version,
+                new_version=bool(new_version),
                 progress=progress,
             )
     if dry_run:
@@ -984,13 +473,9 @@ def retrain_command(
     if dry_run:
         _print_sql(outcome.sql, as_json, "nothing was written")
         return
-    if as_json:
-        out = outcome.to_dict()
-        if outcome.comparison:
-            out["comparison"] = outcome.comparison
-        click.echo(_dumps(out))
-    else:
-        click.echo(_retrain_text(outcome, spec.engine.get("db")))
+    click.echo(
+        R.retrain_json(outcome) if as_json else R.retrain_text(outcome, spec.engine.get("db"))
+    )
     ctx.exit(outcome.exit_code)
 
 
@@ -1002,40 +487,7 @@ def models_command(db: str, registry_schema: str | None, as_json: bool, quiet: b
     """List the models in the registry: live version, number of versions, scoring view."""
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         models = [(m, reg.versions(m["model_name"])) for m in reg.models()]
-    if as_json:
-        click.echo(
-            _dumps(
-                {
-                    "models": [
-                        {
-                            "model": m["model_name"],
-                            "live_version": m["live_version"],
-                            "versions": len(vs),
-                            "scoring_view": _view_label(m),
-                            "macro": m["macro_name"],
-                            "score_source": m["score_source"],
-                            "intervals": m["intervals"],
-                            "created_at": m["created_at"],
-                        }
-                        for m, vs in models
-                    ]
-                }
-            )
-        )
-        return
-    if not models:
-        click.echo(f"No models in the registry of {db}.")
-        return
-    rows = [
-        [
-            m["model_name"],
-            "none" if m["live_version"] is None else str(m["live_version"]),
-            str(len(vs)),
-            _view_label(m),
-        ]
-        for m, vs in models
-    ]
-    click.echo(_table(["model", "live version", "versions", "scoring view"], rows, right=(1, 2)))
+    click.echo(R.models_json(models) if as_json else R.models_text(models, db))
 
 
 @main.command("versions", short_help="List the versions of a model.")
@@ -1049,35 +501,7 @@ def versions_command(
     """List the versions of model NAME, one line each."""
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         versions = reg.versions(name)
-    if as_json:
-        click.echo(_dumps({"model": name, "versions": versions}))
-        return
-    rows = [
-        [
-            str(v["version"]),
-            str(v["status"]),
-            _when(v["created_at"]),
-            str(v["family"]),
-            str(v["link"]),
-            _num(v["deviance"], ".10g"),
-            _num(v["n_used"]),
-            _num(v["iterations"]),
-            _num(v["converged"]),
-        ]
-        for v in versions
-    ]
-    headers = [
-        "version",
-        "status",
-        "created (UTC)",
-        "family",
-        "link",
-        "deviance",
-        "rows",
-        "iterations",
-        "converged",
-    ]
-    click.echo(_table(headers, rows, right=(0, 5, 6, 7)))
+    click.echo(R.versions_json(name, versions) if as_json else R.versions_text(versions))
 
 
 @main.command("show", short_help="Print the stored report of a version.")
@@ -1105,15 +529,9 @@ def show_command(
         result = reg.load(name, version)
         row = next(v for v in reg.versions(name) if v["version"] == version)
     if as_json:
-        out = result.to_dict()
-        out.update({"model": name, "version": version, "status": row["status"]})
-        click.echo(_dumps(out))
-        return
-    click.echo(
-        f"Model {name}, version {version} ({row['status']}), recorded "
-        f"{_when(row['created_at'])} UTC\n"
-    )
-    click.echo(render_report(result), nl=False)
+        click.echo(R.show_json(name, version, row, result))
+    else:
+        click.echo(R.show_text(name, version, row, result), nl=False)
 
 
 @main.command("compare", short_help="Compare two versions of a model.")
@@ -1130,17 +548,14 @@ def compare_command(
     deviance per row and rows used."""
     with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
         cmp = reg.compare(name, a, b)
-    click.echo(_dumps(cmp) if as_json else _compare_text(cmp))
+    click.echo(R.compare_json(cmp) if as_json else R.compare_text(cmp))
 
 
 @main.command("promote", short_help="Make a version live (also the roll-back).")
 @registry_database_option
 @registry_schema_option
-@click.option(
-    "--view-schema",
-    "view_schema",
-    default=None,
-    metavar="S",
+@CO.click_options(
+    O.OPTION["view_schema"],
     help="Move the scoring view and macro to schema S (the old ones are dropped in the same "
     "transaction); default: where they are now.",
 )
@@ -1163,21 +578,9 @@ def promote_command(
     with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         previous = reg.model(name)["live_version"]
         reg.promote(name, version, view_schema=view_schema)
-        view = _view_label(reg.model(name))
-    if as_json:
-        click.echo(
-            _dumps(
-                {
-                    "model": name,
-                    "live_version": version,
-                    "previous_live_version": previous,
-                    "scoring_view": view,
-                }
-            )
-        )
-        return
-    was = f" (was version {previous})" if previous is not None else ""
-    click.echo(f"Model {name}: version {version} is live{was}; scoring view {view} serves it.")
+        view = R.view_label(reg.model(name))
+    render = R.promote_json if as_json else R.promote_text
+    click.echo(render(name, version, previous, view))
 
 
 @main.command("drop", short_help="Drop a version that is not live.")
@@ -1193,10 +596,7 @@ def drop_command(
     dropped)."""
     with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         reg.drop(name, version)
-    if as_json:
-        click.echo(_dumps({"model": name, "version": version, "status": "dropped"}))
-        return
-    click.echo(f"Model {name}: version {version} dropped (its registry rows are kept).")
+    click.echo(R.drop_json(name, version) if as_json else R.drop_text(name, version))
 
 
 @main.command("scoring-sql", short_help="Print a model's scoring view SQL.")
@@ -1253,19 +653,9 @@ def scoring_sql_command(
             )
     if as_json:
         chosen = row["live_version"] if version is None else version
-        click.echo(
-            _dumps(
-                {
-                    "model": name,
-                    "version": chosen,
-                    "dialect": target.name,
-                    "scoring_view": _view_label(row),
-                    "sql": sql,
-                }
-            )
-        )
-        return
-    click.echo(sql + ";")
+        click.echo(R.scoring_sql_json(name, chosen, target.name, row, sql))
+    else:
+        click.echo(R.scoring_sql_text(sql))
 
 
 @main.command("demo", short_help="Run the worked example on invented data.")

@@ -19,7 +19,7 @@ from typing import Any
 
 from indb import demo_data
 from indb.api import fit
-from indb.engine import DuckDBEngine
+from indb.engines.duckdb import DuckDBEngine
 from indb.report import render_json, render_report
 from indb.results import FitResult
 
@@ -40,32 +40,51 @@ class DemoModel:
 def demo_models(parquet: str) -> list[DemoModel]:
     """The four worked examples over the invented policy file."""
     lit = "'" + parquet.replace("'", "''") + "'"
-    cols = ", ".join(NUMERIC + FACTORS)
+    # policy_id rides along (excluded from the predictors) so that the scoring views can be
+    # joined back to the policies
+    cols = ", ".join(["policy_id", *NUMERIC, *FACTORS])
     return [
         DemoModel(
             "frequency",
             "Claim frequency: Poisson, log link, offset ln(exposure)",
             f"SELECT {cols}, claim_count, exposure FROM read_parquet({lit})",
-            {"response": "claim_count", "family": "poisson", "offset": "ln(exposure)"},
+            {
+                "response": "claim_count",
+                "family": "poisson",
+                "offset": "ln(exposure)",
+                "exclude": ["policy_id"],
+            },
         ),
         DemoModel(
             "severity",
             "Claim severity: gamma, log link, weight = claim count",
             f"SELECT {cols}, claim_cost / claim_count AS average_cost, claim_count "
             f"FROM read_parquet({lit}) WHERE claim_count > 0",
-            {"response": "average_cost", "family": "gamma", "link": "log", "weight": "claim_count"},
+            {
+                "response": "average_cost",
+                "family": "gamma",
+                "link": "log",
+                "weight": "claim_count",
+                "exclude": ["policy_id"],
+            },
         ),
         DemoModel(
             "pure_premium",
             "Pure premium: Tweedie (power 1.5), log link, weight = exposure",
             f"SELECT {cols}, claim_cost / exposure AS loss_cost, exposure FROM read_parquet({lit})",
-            {"response": "loss_cost", "family": "tweedie", "power": 1.5, "weight": "exposure"},
+            {
+                "response": "loss_cost",
+                "family": "tweedie",
+                "power": 1.5,
+                "weight": "exposure",
+                "exclude": ["policy_id"],
+            },
         ),
         DemoModel(
             "lapse",
             "Lapse at renewal: binomial, logit link",
             f"SELECT {cols}, claim_count, lapsed FROM read_parquet({lit})",
-            {"response": "lapsed", "family": "binomial"},
+            {"response": "lapsed", "family": "binomial", "exclude": ["policy_id"]},
         ),
     ]
 

@@ -13,7 +13,7 @@ import numpy as np
 
 from indb import solver
 from indb.design import Scaling
-from indb.engine import Engine
+from indb.engines.base_engine import Engine
 from indb.errors import NondeterministicSourceError
 from indb.plan.context import PlanContext
 from indb.results import IterationRecord

@@ -18,7 +18,7 @@ import numpy as np
 
 from indb import folding, magnitudes, prefit, solver
 from indb.design import build_design, plan_values
-from indb.engine import Engine, qualify_source
+from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
     ConvergenceWarning,
     NonConvergenceError,

@@ -151,6 +151,11 @@ class Link:
     def describe(self) -> str:
         return self.name
 
+    def params(self) -> dict[str, float]:
+        """What :func:`make_link` needs beside ``name``, keyed as ``ModelSpec.build`` takes
+        it: empty, except ``link_power`` for a power link that has no name of its own."""
+        return {}
+
 
 @dataclass(frozen=True)
 class IdentityLink(Link):
@@ -393,6 +398,9 @@ class PowerLink(Link):
     def describe(self) -> str:
         named = {-1.0: "inverse", -2.0: "inverse_squared", 0.5: "sqrt"}
         return named.get(self.exponent, f"power({self.exponent:g})")
+
+    def params(self) -> dict[str, float]:
+        return {"link_power": self.exponent} if self.name == "power" else {}
 
 
 @dataclass(frozen=True)

@@ -1,14 +1,24 @@
-"""The type each option takes, as data: one :class:`Kind` per shape of value.
+"""The fit options, declared once: one :class:`Option` per option, with the :class:`Kind` of
+value it takes.
 
-The places that declare options (``indb.api.SPEC_OPTIONS`` and its siblings, the fields of
-``indb.specfile.Gates``) pair every option name with a kind, and :func:`check_options`
-checks given values against those declarations before any work starts. A spec file reaches
-the same declarations with its file and table named (``indb.specfile``), so a TOML value of
-the wrong type is refused with the key, the expected type and the value seen, instead of
-failing deep inside a fit or being taken for something else (``"no"`` is not false).
+``OPTIONS`` is the one list of the options of :func:`indb.fit`: name, kind, default, help,
+allowed values, and the group it belongs to, which is also the table of a spec file that
+holds it (``model``, ``deploy``, ``engine``; ``run`` for the progress callback, which only
+Python has). Everything else reads it: ``indb.fit`` and ``indb.dry_run`` check their
+arguments against the kinds, ``ModelSpec.build`` checks the choices, ``indb.specfile`` takes
+each table's keys from it, and the command line generates its options from it
+(``indb.cli_options``), spelt as the name with ``-`` for ``_`` (``on_null`` is
+``--on-null``). A test holds the Python signatures of ``indb.fit`` and ``ModelSpec.build`` to
+the list, names and defaults.
 
-Range and choice checks (``tol`` in (0, 1), ``compress`` one of three words) stay where the
-value is used (``indb.spec.ModelSpec.build``); a kind only says what shape a value has.
+:func:`check_options` checks given values against the kinds before any work starts. A spec
+file reaches the same declarations with its file and table named (``indb.specfile``), so a
+TOML value of the wrong type is refused with the key, the expected type and the value seen,
+instead of failing deep inside a fit or being taken for something else (``"no"`` is not
+false). The fields of ``indb.specfile.Gates`` declare their kinds the same way.
+
+Range checks (``tol`` in (0, 1), ``max_iter`` >= 1) stay where the value is used
+(``indb.spec.ModelSpec.build``); a kind only says what shape a value has.
 """
 
 from __future__ import annotations
@@ -16,11 +26,14 @@ from __future__ import annotations
 import json
 import math
 import numbers
-from collections.abc import Callable, Collection, Mapping
+import os
+from collections.abc import Callable, Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from indb.errors import SpecError
+from indb.families import FAMILY_NAMES
+from indb.links import LINK_NAMES
 
 
 @dataclass(frozen=True)
@@ -97,6 +110,18 @@ VALUES = Kind("a table of term = number, e.g. { age = 0.5 }", _is_map(_is_number
 TABLE = Kind("a table of keys", lambda v: isinstance(v, Mapping))
 
 
+def _is_database(v: Any) -> bool:
+    # a path or URL as text; Python callers may also pass a pathlib path, an open
+    # connection (DuckDB, psycopg), a SparkSession or an indb Engine: anything that runs SQL
+    runs_sql = any(callable(getattr(v, m, None)) for m in ("execute", "sql"))
+    return _is_text(v) or isinstance(v, os.PathLike) or runs_sql
+
+
+# spelt as TEXT's: in a spec file (and on the command line) a database is text
+DATABASE = Kind(TEXT.expected, _is_database)
+CALLBACK = Kind("a function taking one iteration record", callable)
+
+
 def check_options(
     values: Mapping[str, Any],
     declared: Mapping[str, Kind],
@@ -122,3 +147,426 @@ def toml_text(value: Any, limit: int = 80) -> str:
         return str(value)  # TOML spells them nan, inf, -inf (JSON would say NaN)
     text = json.dumps(value, default=str, ensure_ascii=False)
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+# -- the options ------------------------------------------------------------------------
+
+
+class _Required:
+    def __repr__(self) -> str:
+        return "REQUIRED"
+
+
+#: The default of an option that must be given (``source`` and ``response``).
+REQUIRED: Any = _Required()
+
+#: Largest max_levels accepted, the largest size measured (benchmarks/RESULTS.md, "Many
+#: levels"): one categorical column costs the fit memory and time in proportion to its
+#: levels (indb.normal_eq), but write-back and the scoring view's CASE of one branch per
+#: level grow with them too. Every other categorical column counts towards the dense part,
+#: capped by indb.normal_eq.MAX_REST_COLUMNS. ``ModelSpec.build`` checks the range.
+MAX_LEVELS_LIMIT = 50_000
+
+#: The groups of options; the first three are also the tables of a spec file.
+GROUPS = ("model", "deploy", "engine", "run")
+
+
+@dataclass(frozen=True)
+class Option:
+    """One option of :func:`indb.fit`, as every interface to it sees it.
+
+    Parameters
+    ----------
+    name:
+        The Python keyword and spec-file key; the command line spells it with ``-`` for
+        ``_`` (:attr:`flag`).
+    kind:
+        The shape of value it takes (checked by :func:`check_options`).
+    default:
+        The library's default (:data:`REQUIRED` when it has none). The command line passes
+        on only the options given, so this stays the one default.
+    help:
+        One or two sentences for ``--help``; :meth:`help_text` adds the allowed values and
+        the default.
+    group:
+        ``model`` (what to fit: ``ModelSpec.build``), ``deploy`` (writing the model back),
+        ``engine`` (the database and its settings) or ``run`` (Python only).
+    choices:
+        The allowed values of an enumerated option, listed by :meth:`help_text`.
+        ``ModelSpec.build`` refuses any other value, unless ``resolved`` is set.
+    resolved:
+        The value is a name that ``make_family`` / ``make_link`` resolve, forgiving case
+        and a few alternative spellings, with messages of their own; ``choices`` then lists
+        the names without being checked here.
+    metavar:
+        How ``--help`` shows the value (``COL``, ``EXPR``).
+    positional:
+        A positional argument of :func:`indb.fit` and ``ModelSpec.build``.
+    cli, in_file:
+        Whether the option has a command-line form / is a key of its group's table in a
+        spec file. Start values, for example, have neither: a retrain takes them from the
+        live version.
+    cli_required:
+        The command line asks for it although Python has a default (``--family``: a fit
+        from the shell names its family).
+    minimum:
+        The smallest whole number the command line takes.
+    aliases:
+        Former command-line spellings, still accepted but not shown in ``--help``, for one
+        release (``--only`` for ``--predictors``).
+    """
+
+    name: str
+    kind: Kind
+    default: Any
+    help: str
+    group: str
+    choices: tuple[str, ...] = ()
+    resolved: bool = False
+    metavar: str | None = None
+    positional: bool = False
+    cli: bool = True
+    in_file: bool = True
+    cli_required: bool = False
+    minimum: int | None = None
+    aliases: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        if self.group not in GROUPS:
+            raise ValueError(f"option {self.name}: group {self.group!r} not in {GROUPS}")
+
+    @property
+    def flag(self) -> str:
+        """The command-line spelling: ``on_null`` -> ``--on-null``."""
+        return "--" + self.name.replace("_", "-")
+
+    @property
+    def required(self) -> bool:
+        return self.default is REQUIRED
+
+    def help_text(self) -> str:
+        """:attr:`help` with the allowed values and the library's default appended."""
+        text = self.help
+        if self.choices:
+            text += f" One of: {', '.join(self.choices)}."
+        shown = self.default not in (None, REQUIRED, (), True, False)
+        if shown and not self.cli_required:
+            text += f"  [default: {self.default}]"
+        return text
+
+
+def _with(help: str) -> str:
+    return f"With --name: {help}"
+
+
+OPTIONS: tuple[Option, ...] = (
+    # -- model: what to fit ([model] in a spec file; ModelSpec.build) ---------------------
+    Option(
+        "source",
+        TEXT,
+        REQUIRED,
+        "The rows: a table or view name, a SELECT query, or a Parquet/CSV path (globs allowed).",
+        "model",
+        positional=True,
+        cli=False,  # the SOURCE argument of `indb fit`
+    ),
+    Option("response", TEXT, REQUIRED, "Response column.", "model", metavar="COL", positional=True),
+    Option(
+        "family",
+        TEXT,
+        "gaussian",
+        "Distribution family of the response.",
+        "model",
+        choices=FAMILY_NAMES,
+        resolved=True,
+        metavar="F",
+        positional=True,
+        cli_required=True,
+    ),
+    Option(
+        "link",
+        TEXT,
+        None,
+        "Link function (default: the family's canonical link).",
+        "model",
+        choices=LINK_NAMES,
+        resolved=True,
+        metavar="L",
+        positional=True,
+    ),
+    Option(
+        "trials", TEXT, None, "Binomial trials per row (SQL expression).", "model", metavar="EXPR"
+    ),
+    Option("offset", TEXT, None, "Offset, e.g. 'ln(exposure)'.", "model", metavar="EXPR"),
+    Option("weight", TEXT, None, "Prior (variance) weight.", "model", metavar="EXPR"),
+    Option(
+        "frequency_weight", TEXT, None, "Each row counts this many times.", "model", metavar="EXPR"
+    ),
+    Option("power", NUMBER, None, "Tweedie variance power.", "model", metavar="P"),
+    Option(
+        "theta",
+        NUMBER,
+        None,
+        "Negative binomial theta; leave out to estimate it.",
+        "model",
+        metavar="T",
+    ),
+    Option("link_power", NUMBER, None, "Exponent for --link power.", "model", metavar="X"),
+    Option("intercept", BOOLEAN, True, "Fit without an intercept term.", "model"),
+    Option(
+        "predictors",
+        NAMES,
+        None,
+        "Use only these predictor columns (repeatable).",
+        "model",
+        metavar="COL",
+        aliases=("--only",),
+    ),
+    Option(
+        "exclude",
+        NAMES,
+        (),
+        "Leave this column out of the predictors (repeatable).",
+        "model",
+        metavar="COL",
+    ),
+    Option(
+        "categorical",
+        NAMES,
+        (),
+        "Treat this numeric column as categorical (repeatable).",
+        "model",
+        metavar="COL",
+    ),
+    Option(
+        "reference",
+        LEVELS,
+        None,
+        "Reference level of a categorical column (repeatable).",
+        "model",
+        metavar="COL=LEVEL",
+    ),
+    Option(
+        "interactions",
+        COLUMN_GROUPS,
+        (),
+        "Add the interaction of these comma-separated columns (repeatable).",
+        "model",
+        metavar="A,B",
+        aliases=("--interact",),
+    ),
+    Option(
+        "splines",
+        KNOTS,
+        None,
+        "Restricted cubic spline of COL with KNOTS knots (repeatable).",
+        "model",
+        metavar="COL=KNOTS",
+        aliases=("--spline",),
+    ),
+    Option(
+        "on_null",
+        TEXT,
+        "exclude",
+        "Rows with NULL in a model column: set them aside or stop.",
+        "model",
+        choices=("exclude", "error"),
+        metavar="ACTION",
+        aliases=("--nulls",),
+    ),
+    Option("tol", NUMBER, 1e-8, "Relative deviance change that ends IRLS.", "model", metavar="TOL"),
+    Option("max_iter", WHOLE, 50, "Iteration cap.", "model", metavar="N"),
+    Option(
+        "strict",
+        BOOLEAN,
+        False,
+        "Fail (exit 5) instead of warning when IRLS does not settle.",
+        "model",
+    ),
+    Option(
+        "max_levels",
+        WHOLE,
+        10_000,
+        f"Most levels a categorical column may have (at most {MAX_LEVELS_LIMIT:,}).",
+        "model",
+        metavar="N",
+    ),
+    Option(
+        "confidence", NUMBER, 0.95, "Confidence level of the intervals.", "model", metavar="LEVEL"
+    ),
+    Option(
+        "start",
+        VALUES,
+        None,
+        "Starting coefficients by term name (on the original scale).",
+        "model",
+        cli=False,
+        in_file=False,  # a retrain starts from the live version
+    ),
+    Option(
+        "compress",
+        TEXT,
+        "auto",
+        "Fold the source to its distinct design rows before IRLS.",
+        "model",
+        choices=("auto", "always", "never"),
+        metavar="WHEN",
+    ),
+    Option(
+        "sample_start",
+        TEXT,
+        "auto",
+        "Start IRLS from a fit on a hashed sample of about 100,000 rows (auto: tables of "
+        "2,000,000 rows or more).",
+        "model",
+        choices=("auto", "always", "never"),
+        metavar="WHEN",
+    ),
+    # -- run: Python only --------------------------------------------------------------------
+    Option(
+        "progress",
+        CALLBACK,
+        None,
+        "Called with each iteration record as the fit runs.",
+        "run",
+        cli=False,  # the command line has --progress-json and its text lines
+        in_file=False,
+    ),
+    # -- deploy: writing the model back ([deploy]) -------------------------------------------
+    Option(
+        "name",
+        TEXT,
+        None,
+        "Write the model back into --db: a new registry version, the scoring view NAME and "
+        "the scoring macro NAME_score.",
+        "deploy",
+        metavar="NAME",
+    ),
+    Option(
+        "promote",
+        BOOLEAN,
+        True,
+        _with("record the version without making it live."),
+        "deploy",
+        in_file=False,  # a retrain promotes by its gates
+        aliases=("--hold",),
+    ),
+    Option(
+        "new_version",
+        BOOLEAN,
+        False,
+        _with("record a new version even when spec and data are unchanged."),
+        "deploy",
+        in_file=False,
+    ),
+    Option(
+        "view_schema",
+        TEXT,
+        None,
+        _with("schema for the scoring view and macro (default: the main schema)."),
+        "deploy",
+        metavar="S",
+    ),
+    Option(
+        "score_source",
+        TEXT,
+        None,
+        _with(
+            "table, query or file the scoring view reads instead of SOURCE; it needs the "
+            "model's input columns."
+        ),
+        "deploy",
+        metavar="SRC",
+    ),
+    Option(
+        "intervals",
+        BOOLEAN,
+        None,
+        _with(
+            "add the standard error of eta and a confidence interval for the mean to the "
+            "scoring view."
+        ),
+        "deploy",
+    ),
+    Option(
+        "registry_schema",
+        TEXT,
+        "indb_registry",  # indb.registry.DEFAULT_SCHEMA (a test holds them together)
+        "Schema holding the model registry.",
+        "deploy",
+        metavar="S",
+    ),
+    # -- engine: the database and its settings ([engine]; connect) -------------------------
+    Option(
+        "db",
+        DATABASE,
+        None,
+        "DuckDB database file, or postgresql://..., spark:local[N], sc://host:port. Leave "
+        "out to work in a fresh in-memory DuckDB database. A DuckDB file is opened read-only "
+        "unless --name writes to it.",
+        "engine",
+        metavar="DB",
+    ),
+    Option(
+        "memory_limit",
+        TEXT,
+        None,
+        "DuckDB memory limit, e.g. 4GB; work beyond it spills to --temp-directory.",
+        "engine",
+        metavar="SIZE",
+    ),
+    Option(
+        "temp_directory",
+        TEXT,
+        None,
+        "Folder DuckDB spills to when over --memory-limit.",
+        "engine",
+        metavar="DIR",
+    ),
+    Option("threads", WHOLE, None, "DuckDB worker threads.", "engine", metavar="N", minimum=1),
+)
+
+OPTION: dict[str, Option] = {o.name: o for o in OPTIONS}
+
+
+def group(name: str) -> tuple[Option, ...]:
+    """The options of one group, in declaration order."""
+    return tuple(o for o in OPTIONS if o.group == name)
+
+
+def kinds(options: Iterable[Option]) -> dict[str, Kind]:
+    """Option name -> kind, the form :func:`check_options` reads."""
+    return {o.name: o.kind for o in options}
+
+
+# The declarations as the checks read them: fit's positional arguments; the keywords of
+# ModelSpec.build (and of dry_run); writing back; the engine settings connect(db, ...) takes.
+FIT_ARGUMENTS: dict[str, Kind] = kinds(o for o in OPTIONS if o.positional)
+SPEC_OPTIONS: dict[str, Kind] = kinds(o for o in group("model") if not o.positional)
+DEPLOY_OPTIONS: dict[str, Kind] = kinds(group("deploy"))
+ENGINE_OPTIONS: dict[str, Kind] = kinds(o for o in group("engine") if o.name != "db")
+FIT_OPTIONS: dict[str, Kind] = kinds(OPTIONS)
+
+
+def file_keys(table: str) -> dict[str, Kind]:
+    """The keys of one table of a spec file (``model``, ``deploy``, ``engine``) and their kinds."""
+    return kinds(o for o in group(table) if o.in_file)
+
+
+def either(choices: Sequence[str]) -> str:
+    """``'a', 'b' or 'c'``: allowed values as an error message lists them."""
+    quoted = [repr(c) for c in choices]
+    return quoted[0] if len(quoted) == 1 else f"{', '.join(quoted[:-1])} or {quoted[-1]}"
+
+
+def check_choices(values: Mapping[str, Any], options: Iterable[Option] = OPTIONS) -> None:
+    """Raise :class:`SpecError` for the first enumerated option given a value it does not allow.
+
+    Options whose names are resolved elsewhere (``family``, ``link``) and values that are
+    None (not given) are left alone.
+    """
+    for option in options:
+        value = values.get(option.name)
+        enumerated = option.choices and not option.resolved
+        if enumerated and value is not None and value not in option.choices:
+            raise SpecError(f"{option.name} must be {either(option.choices)}; got {value!r}")

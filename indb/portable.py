@@ -33,7 +33,7 @@ import sqlglot
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.dialect import Dialect
+from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError, UnsupportedError
 from indb.sqlexpr import Expr
 

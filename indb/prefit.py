@@ -9,7 +9,7 @@ import math
 from dataclasses import dataclass
 
 from indb.design import Factor, Inputs, Value, factor_sets, resolve_inputs
-from indb.engine import Engine
+from indb.engines.base_engine import Engine
 from indb.errors import EngineError, SpecError
 from indb.fitrun import FitRun, fetched_count
 from indb.plan.context import PlanContext

@@ -18,11 +18,13 @@ from typing import Any
 
 from indb import sqlexpr as S
 from indb import writeback as W
-from indb.dialect import Dialect
-from indb.engine import Engine, qualify_source, relative_source
+from indb.engines.base_dialect import Dialect
+from indb.engines.base_engine import Engine
 from indb.errors import DeploymentWarning, EngineError, RegistryError, SpecError, UnsupportedError
+from indb.placement import ViewPlacement, aliased, star
 from indb.results import FitResult
 from indb.spec import Source
+from indb.version import __version__
 
 DEFAULT_SCHEMA = "indb_registry"
 
@@ -57,20 +59,12 @@ class SaveOutcome:
     warnings: tuple[str, ...] = ()
 
 
-class Registry:
+class Registry(ViewPlacement):
     """Registry operations on one engine (schema ``indb_registry`` unless told otherwise).
 
-    On an engine without UPDATE (Spark's file tables) this returns an
-    :class:`indb.registry_append.AppendOnlyRegistry`, which keeps the same tables readable
-    but only ever appends rows.
+    Open one with :func:`indb.registry_append.open_registry`, which gives an engine without
+    UPDATE (Spark's file tables) the append-only subclass.
     """
-
-    def __new__(cls, engine: Engine, schema: str = DEFAULT_SCHEMA) -> Registry:
-        if cls is Registry and not engine.dialect.supports_update:
-            from indb.registry_append import AppendOnlyRegistry
-
-            return super().__new__(AppendOnlyRegistry)
-        return super().__new__(cls)
 
     def __init__(self, engine: Engine, schema: str = DEFAULT_SCHEMA) -> None:
         self.engine = engine
@@ -203,7 +197,7 @@ class Registry:
             return None
         try:
             rel = self.d.relation(Source.parse(text))
-            return dict(self.engine.describe(self.d.render(S.select([_star()], _aliased(rel)))))
+            return dict(self.engine.describe(self.d.render(S.select([star()], aliased(rel)))))
         except (EngineError, SpecError, UnsupportedError):
             return None
 
@@ -238,42 +232,25 @@ class Registry:
             W.check_name(view_schema, "view schema")
         fresh = not self.exists()
         h = spec_hash(result.spec)
-        existing = self.models()
-        current = next((m for m in existing if m["model_name"] == name), None)
-        twin = next(
-            (m["model_name"] for m in existing if m["model_name"].lower() == name.lower()), name
-        )
-        if current is None and twin != name:
-            # DuckDB (and Spark) identifiers ignore case: the view and macro of one would
-            # replace the other's
-            raise RegistryError(
-                f"model name {name!r} differs only in case from model {twin!r} in the "
-                f"registry; their scoring views would be the same object. Refit {twin!r} "
-                "under that name, or choose another name; nothing was written"
+        current = self._current_or_twin(name)
+        match = self._same_fit_version(name, result) if current is not None else None
+        # a changed view schema, scoring source or intervals flag is not "unchanged":
+        # keeping the version would silently drop the request (it is applied below, as for
+        # any new version, by the same path that deploys and records it)
+        if (
+            match is not None
+            and not force_new
+            and not _deployment_changes(current, view_schema, score_source, intervals)
+        ):
+            return SaveOutcome(
+                name,
+                int(match["version"]),
+                False,
+                match["status"] == "live",
+                self._view_label(current),
+                "score_mean",
+                self._macro_label(current) if self.d.supports_macros else None,
             )
-        latest = self._latest_version(name) if current is not None else None
-        if latest is not None and not force_new:
-            # the same spec on unchanged data adds no version (live or held alike), so a
-            # scheduled job that keeps failing a gate does not pile up identical versions
-            # hashed again from the stored spec: one stored before specs recorded their SQL
-            # dialect is this engine's (see _result), and matches a refit of it here
-            stored = self._spec_with_dialect(json.loads(latest["spec_json"]))
-            same = spec_hash(stored) == spec_hash(
-                self._spec_with_dialect(result.spec)
-            ) and json.loads(latest["fingerprint_json"]) == _jsonable(result.fingerprint)
-            # a changed view schema, scoring source or intervals flag is not "unchanged":
-            # keeping the version would silently drop the request (it is applied below,
-            # as for any new version, by the same path that deploys and records it)
-            if same and not _deployment_changes(current, view_schema, score_source, intervals):
-                return SaveOutcome(
-                    name,
-                    int(latest["version"]),
-                    False,
-                    latest["status"] == "live",
-                    self._view_label(current),
-                    "score_mean",
-                    self._macro_label(current) if self.d.supports_macros else None,
-                )
         version = 1
         if current is not None:  # numbers are never reused, dropped versions included
             rows = self._rows(
@@ -332,8 +309,6 @@ class Registry:
             )
             model_row["view_schema"] = current["view_schema"]
         status = "live" if promote else "held"
-        from indb import __version__
-
         vrow = {
             "model_name": name,
             "version": version,
@@ -434,9 +409,65 @@ class Registry:
             tuple(notes),
         )
 
-    def _latest_version(self, name: str) -> dict[str, Any] | None:
-        """The newest version that was not dropped (None if there is none)."""
-        rows = self._rows(
+    def check_before_fit(
+        self, name: str, *, view_schema: str | None = None, promote: bool = True
+    ) -> None:
+        """The checks of :meth:`save` that need no fitted result, run before a fit's first
+        scan so that a name it cannot take costs no scans: names of the engine's own
+        objects, a name differing only in case from a model's, and (for a version to be made
+        live) a view or macro of that name which indb did not create for this model."""
+        self.check_model_name(name)
+        if view_schema is not None:
+            W.check_name(view_schema, "view schema")
+        current = self._current_or_twin(name)
+        if not promote:
+            return
+        target = {"view_schema": view_schema, "view_name": name, "macro_name": f"{name}_score"}
+        if current is not None:
+            target = {
+                "view_schema": current["view_schema"] if view_schema is None else view_schema,
+                "view_name": current["view_name"],
+                "macro_name": current["macro_name"],
+            }
+        self._check_not_foreign(name, target, current)
+
+    def _current_or_twin(self, name: str) -> dict[str, Any] | None:
+        """The model row of ``name`` (None for a new model); a new name that differs only in
+        case from a registered model's is refused."""
+        existing = self.models()
+        current = next((m for m in existing if m["model_name"] == name), None)
+        twin = next(
+            (m["model_name"] for m in existing if m["model_name"].lower() == name.lower()), name
+        )
+        if current is None and twin != name:
+            # DuckDB (and Spark) identifiers ignore case: the view and macro of one would
+            # replace the other's
+            raise RegistryError(
+                f"model name {name!r} differs only in case from model {twin!r} in the "
+                f"registry; their scoring views would be the same object. Refit {twin!r} "
+                "under that name, or choose another name; nothing was written"
+            )
+        return current
+
+    def _same_fit_version(self, name: str, result: FitResult) -> dict[str, Any] | None:
+        """The version that ``result`` repeats (same spec hash and data fingerprint): the
+        newest version, or else a held one. The same spec on unchanged data adds no version,
+        so a scheduled job that keeps failing a gate does not pile up identical versions."""
+        rows = self._undropped_versions(name)
+        candidates = rows[-1:] + [r for r in reversed(rows[:-1]) if r["status"] == "held"]
+        # hashed again from the stored spec: one stored before specs recorded their SQL
+        # dialect is this engine's (see _result), and matches a refit of it here
+        want = spec_hash(self._spec_with_dialect(result.spec))
+        prints = _jsonable(result.fingerprint)
+        for row in candidates:
+            stored = self._spec_with_dialect(json.loads(row["spec_json"]))
+            if spec_hash(stored) == want and json.loads(row["fingerprint_json"]) == prints:
+                return row
+        return None
+
+    def _undropped_versions(self, name: str) -> list[dict[str, Any]]:
+        """The versions that were not dropped, oldest first."""
+        return self._rows(
             W.select_rows(
                 self.schema,
                 "model_version",
@@ -444,7 +475,6 @@ class Registry:
                 order=["version"],
             )
         )
-        return rows[-1] if rows else None
 
     def promote(self, name: str, version: int, *, view_schema: str | None = None) -> None:
         """Point the stable view (and macro) at ``version``; the previous live version retires.
@@ -525,12 +555,14 @@ class Registry:
         would hide a built-in object of the engine (or be hidden by one), such as DuckDB's
         ``sqlite_master`` view."""
         W.check_name(name, "model name")
-        query = self.d.reserved_objects_query(
-            name, f"{name}_score" if self.d.supports_macros else None
-        )
-        if query is None:
-            return name
-        found = sorted({str(n) for n in self.engine.fetch_columns(self.d.render(query))["name"]})
+        macros = [f"{name}_score", f"{name}_unseen"] if self.d.supports_macros else [None]
+        found_names: set[str] = set()
+        for macro in macros:
+            query = self.d.reserved_objects_query(name, macro)
+            if query is None:
+                return name
+            found_names |= {str(n) for n in self.engine.fetch_columns(self.d.render(query))["name"]}
+        found = sorted(found_names)
         if found:
             raise SpecError(
                 f"model name {name!r} is taken by the {self.d.name} built-in object(s) "
@@ -539,159 +571,7 @@ class Registry:
             )
         return name
 
-    def scoring_source_for(self, model_row: dict[str, Any], dialect: Dialect) -> str | None:
-        """The model's scoring source as SQL for ``dialect`` should name it: as stored for
-        this engine's own dialect; for another engine, without this engine's current
-        catalog and schema (names that mean nothing there)."""
-        text = model_row.get("score_source")
-        if not text or dialect.name == self.d.name:
-            return text
-        return relative_source(self.engine, Source.parse(text)).text
-
     # -- internals ---------------------------------------------------------------------------
-    def _view_label(self, model_row: dict[str, Any]) -> str:
-        schema = model_row.get("view_schema")
-        return f"{schema}.{model_row['view_name']}" if schema else model_row["view_name"]
-
-    def _macro_label(self, model_row: dict[str, Any]) -> str:
-        schema = model_row.get("view_schema")
-        return f"{schema}.{model_row['macro_name']}" if schema else model_row["macro_name"]
-
-    def _qualified_source(self, text: str) -> str:
-        """A scoring source's text with its tables named as the engine resolves them now."""
-        return qualify_source(self.engine, Source.parse(text)).text
-
-    def _schema_key(self, schema: str | None) -> str:
-        """The schema a view_schema setting puts objects in (None: the current schema),
-        spelled as the engine compares names."""
-        name = schema if schema is not None else self.engine.current_location()[1]
-        return name.lower() if self.d.names_ignore_case else name
-
-    def _same_place(self, a: dict[str, Any], b: dict[str, Any]) -> bool:
-        """Whether two model rows put the scoring view and macro on the same objects."""
-
-        def names(row: dict[str, Any]) -> tuple[str, ...]:
-            out = (row["view_name"], row.get("macro_name") or "")
-            return tuple(n.lower() for n in out) if self.d.names_ignore_case else out
-
-        if names(a) != names(b):
-            return False
-        if a.get("view_schema") == b.get("view_schema"):
-            return True
-        return self._schema_key(a.get("view_schema")) == self._schema_key(b.get("view_schema"))
-
-    def _live_elsewhere(self, live: dict[str, Any] | None, target: dict[str, Any]) -> bool:
-        """Whether ``live`` (a model row) has a live view and macro that ``target`` would
-        place elsewhere."""
-        return (
-            live is not None
-            and live.get("live_version") is not None
-            and not self._same_place(live, target)
-        )
-
-    def _live_model_row(self, name: str) -> dict[str, Any] | None:
-        if not self.exists():
-            return None
-        return next((m for m in self.models() if m["model_name"] == name), None)
-
-    def _check_not_foreign(
-        self, name: str, model_row: dict[str, Any], current: dict[str, Any] | None
-    ) -> None:
-        """Refuse to replace a view, table or macro that indb did not deploy for ``name``.
-
-        The deployment writes CREATE OR REPLACE; the objects are this model's own only when
-        its live version was deployed to the same schema and names.
-        """
-        schema, view = model_row.get("view_schema"), model_row["view_name"]
-        macro = model_row["macro_name"] if self.d.supports_macros else None
-        ours = (
-            current is not None
-            and current.get("live_version") is not None
-            and self._same_place(current, model_row)
-        )
-        if ours:
-            return
-        try:
-            cols = self.engine.fetch_columns(self.d.existing_objects_sql(schema, view, macro))
-        except EngineError:
-            if schema is None:
-                raise
-            # a schema that does not exist yet holds nothing to replace (Spark's SHOW
-            # TABLES IN a missing schema fails; information_schema just has no rows)
-            cols = None
-        found = self.d.existing_objects(cols, view, macro) if cols else []
-        if found:
-            where = f"schema {schema!r}" if schema else "the default schema"
-            objects = ", ".join(f"{kind.lower()} {obj!r}" for kind, obj in found)
-            raise RegistryError(
-                f"model {name!r} would replace {objects} in {where}, which indb did not "
-                "create for this model; choose another model name (or view_schema), or "
-                "drop that object first; nothing was written"
-            )
-
-    def _deploy_statements(
-        self, name: str, result: FitResult, model_row: dict[str, Any]
-    ) -> list[str]:
-        src_text = model_row.get("score_source")
-        if not src_text:
-            raise SpecError(f"model {name!r} has no scoring source; give score_source=")
-        source = Source.parse(src_text)
-        rel = self.d.relation(source)
-        try:
-            described = self.engine.describe(self.d.render(S.select([_star()], _aliased(rel))))
-        except EngineError as err:
-            # a missing table, file or column is the user's input, as for the fit's source
-            raise SpecError(
-                f"cannot read the scoring source {source.label()!r} (option score_source): "
-                f"{err}; check the table name, file path or query, or give another "
-                "score_source="
-            ) from err
-        cols = [c for c, _ in described]
-        missing = [c for c in W.model_inputs(result, self.d) if c not in cols]
-        if missing:
-            raise SpecError(
-                f"the scoring source {source.label()!r} lacks model input column(s) {missing}"
-            )
-        query = W.scoring_query(
-            result, self.d, rel, intervals=bool(model_row.get("intervals")), source_columns=cols
-        )
-        stmts = []
-        live = self._live_model_row(name)
-        if self._live_elsewhere(live, model_row):
-            # the view and macro move: the old ones would go on serving a retired version,
-            # unknown to the registry. Dropped first, in the same transaction; on Spark
-            # (no transactions) a failure after this leaves no stale view, and promoting
-            # again with the new view_schema completes the move.
-            stmts += self._drop_statements(live)
-        if model_row.get("view_schema"):
-            stmts.append(self.d.render(_create_schema(model_row["view_schema"])))
-        view = W.create_view(model_row.get("view_schema"), model_row["view_name"], query)
-        names = W.ScoreColumns()
-        out_cols = [*cols, names.eta, names.mean]
-        if model_row.get("intervals"):
-            out_cols += [names.se, names.low, names.high]
-        out_cols.append(names.unseen)
-        stmts += self.d.replace_view(view, out_cols, self._columns_of(view.this))
-        if self.d.supports_macros:
-            params = W.model_inputs(result, self.d)
-            stmts.append(
-                self.d.create_macro(
-                    model_row.get("view_schema"),
-                    model_row["macro_name"],
-                    params,
-                    W.mean_expression(result, self.d),
-                )
-            )
-        return stmts
-
-    def _drop_statements(self, model_row: dict[str, Any]) -> list[str]:
-        """DROP the scoring view and macro a model row names."""
-        schema = model_row.get("view_schema")
-        stmts = [self.d.render(W.drop_view(schema, model_row["view_name"]))]
-        if self.d.supports_macros and model_row.get("macro_name"):
-            stmts.append(self.d.drop_macro(schema, model_row["macro_name"]))
-        return stmts
-
     def _make_live(
         self, name: str, version: int, model_row: dict[str, Any], deploy: list[str], now: str
     ) -> None:
@@ -723,9 +603,7 @@ class Registry:
     def _columns_of(self, relation: Any) -> list[str] | None:
         """Column names of a table or view, or None when there is none by that name."""
         try:
-            return [
-                c for c, _ in self.engine.describe(self.d.render(S.select([_star()], relation)))
-            ]
+            return [c for c, _ in self.engine.describe(self.d.render(S.select([star()], relation)))]
         except EngineError:
             return None
 
@@ -800,26 +678,6 @@ def exp_max(column: str):
     from sqlglot import exp
 
     return exp.Max(this=S.col(column))
-
-
-def _star():
-    from sqlglot import exp
-
-    return exp.Star()
-
-
-def _aliased(rel):
-    from sqlglot import exp
-
-    r = rel.copy()
-    r.set("alias", exp.TableAlias(this=S.ident(W.SRC)))
-    return r
-
-
-def _create_schema(schema: str):
-    from sqlglot import exp
-
-    return exp.Create(kind="SCHEMA", this=exp.Table(db=S.ident(schema)), exists=True)
 
 
 def _jsonable(obj: Any) -> Any:

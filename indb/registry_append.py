@@ -25,6 +25,9 @@ write order gives the guarantee:
    live -- running ``promote`` again repairs that;
 3. there are no constraints, so two writers saving the same model at the same moment can
    both take the same version number; run one writer per model.
+
+:func:`open_registry` picks the registry class an engine needs (this one where the dialect
+has no UPDATE); it lives here because this module is the one that knows both classes.
 """
 
 from __future__ import annotations
@@ -35,8 +38,9 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb import writeback as W
+from indb.engines.base_engine import Engine
 from indb.errors import EngineError, RegistryError
-from indb.registry import Registry, _now
+from indb.registry import DEFAULT_SCHEMA, Registry, _now
 
 MODEL_RECORD = "model_record"
 VERSION_RECORD = "version_record"
@@ -202,3 +206,14 @@ class AppendOnlyRegistry(Registry):
                 f"no transactions; the registry still names the previous version live): "
                 f"{err}; fix the cause and run promote"
             ) from err
+
+
+def open_registry(engine: Engine, schema: str = DEFAULT_SCHEMA) -> Registry:
+    """Registry operations on ``engine`` (schema ``indb_registry`` unless told otherwise).
+
+    On an engine without UPDATE (Spark's file tables) this is an
+    :class:`AppendOnlyRegistry`, which keeps the same tables readable but only ever appends
+    rows.
+    """
+    cls = Registry if engine.dialect.supports_update else AppendOnlyRegistry
+    return cls(engine, schema)

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from indb.results import Coefficient, FitResult
+from indb.results import TEXT_RENDERER, Coefficient, FitResult
 
 __all__ = ["render_report", "render_json", "CAUTION"]
 
@@ -423,3 +423,6 @@ def _json_default(obj: Any) -> Any:
     if isinstance(obj, set | frozenset):
         return sorted(obj, key=str)
     raise TypeError(f"cannot write a {type(obj).__name__} to JSON: {obj!r}")
+
+
+TEXT_RENDERER["report"] = render_report

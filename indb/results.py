@@ -8,10 +8,14 @@ statistics and the iteration log. It holds no connection and does no I/O.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
 import numpy as np
+
+from indb.families import Family, make_family
+from indb.links import Link, make_link
 
 #: Coefficients up to which a result carries the whole covariance matrix (32 MB of doubles
 #: at this size); above, ``covariance`` is None and the standard errors (its diagonal, all
@@ -58,6 +62,11 @@ class IterationRecord:
     seconds: float
     #: fit | sample (the sample start) | theta | null (intercept-only refit, null deviance)
     phase: str = "fit"
+
+
+#: The text rendering ``str(result)`` uses, registered by :mod:`indb.report` when it is
+#: imported (``import indb`` does): the report is a higher layer than the result it renders.
+TEXT_RENDERER: dict[str, Callable[[FitResult], str]] = {}
 
 
 @dataclass(frozen=True)
@@ -108,6 +117,20 @@ class FitResult:
     fingerprint: dict[str, Any] = field(default_factory=dict)
     deployment: dict[str, Any] = field(default_factory=dict)
 
+    # -- the model as objects ------------------------------------------------------------
+    @property
+    def family_object(self) -> Family:
+        """The family as an object, with its fitted parameters (``family_params``)."""
+        return make_family(self.family, **self.family_params)
+
+    @property
+    def link_object(self) -> Link:
+        """The link as an object, from the canonical spec: its name and, for a power link
+        without a name of its own, ``spec['link_power']`` (the display name ``power(p)``
+        rounds the exponent, so it is never read back)."""
+        power = self.spec.get("link_power")
+        return make_link("power", power) if power is not None else make_link(self.link)
+
     # -- convenience views ---------------------------------------------------------------
     @property
     def terms(self) -> list[str]:
@@ -137,6 +160,11 @@ class FitResult:
         sample start's, theta's and the null model's scans are in ``iteration_log``)."""
         fit = [r.seconds for r in self.iteration_log if r.phase == "fit"]
         return sum(fit) / len(fit) if fit else math.nan
+
+    def __str__(self) -> str:
+        """The text report (:func:`indb.report.render_report`); ``repr`` keeps the fields."""
+        render = TEXT_RENDERER.get("report")
+        return render(self) if render is not None else repr(self)
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dictionary (non-finite numbers become ``None``)."""

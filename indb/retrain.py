@@ -8,9 +8,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from indb.api import with_deployment
-from indb.engine import connect
+from indb.engines.backends import connect
 from indb.fitter import fit_spec, plan_spec
-from indb.registry import DEFAULT_SCHEMA, Registry
+from indb.registry import DEFAULT_SCHEMA
+from indb.registry_append import open_registry
 from indb.results import FitResult
 from indb.spec import ModelSpec
 from indb.specfile import Gates, SpecFile
@@ -147,7 +148,7 @@ def retrain(
     db = engine_opts.pop("db", None)
     engine = connect(db, read_only=dry_run, **engine_opts)
     try:
-        reg = Registry(engine, deploy.get("registry_schema", DEFAULT_SCHEMA))
+        reg = open_registry(engine, deploy.get("registry_schema", DEFAULT_SCHEMA))
         reg.check_model_name(name)  # before the fit, not after it
         live: FitResult | None = None
         live_version: int | None = None

@@ -13,16 +13,13 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+from indb import options as O
 from indb.errors import SpecError
 from indb.families import Family, NegativeBinomial, canonical_link, make_family
 from indb.links import Link, make_link
 
-#: Largest max_levels accepted, the largest size measured (benchmarks/RESULTS.md, "Many
-#: levels"): one categorical column costs the fit memory and time in proportion to its
-#: levels (indb.normal_eq), but write-back and the scoring view's CASE of one branch per
-#: level grow with them too. Every other categorical column counts towards the dense part,
-#: capped by indb.normal_eq.MAX_REST_COLUMNS.
-MAX_LEVELS_LIMIT = 50_000
+# declared with the max_levels option; checked (and importable) here
+from indb.options import MAX_LEVELS_LIMIT
 
 _FILE_SUFFIXES = (".parquet", ".pq", ".csv", ".tsv", ".csv.gz", ".tsv.gz", ".json", ".ndjson")
 _QUERY_START = re.compile(r"^\s*(\(|select\b|with\b|from\b|values\b|table\b)", re.IGNORECASE)
@@ -146,14 +143,9 @@ class ModelSpec:
         fam.check_link(lk)
         if trials is not None and fam.name != "binomial":
             raise SpecError(f"trials is for grouped binomial data; family is {fam.name!r}")
-        if compress not in ("auto", "always", "never"):
-            raise SpecError(f"compress must be 'auto', 'always' or 'never'; got {compress!r}")
-        if sample_start not in ("auto", "always", "never"):
-            raise SpecError(
-                f"sample_start must be 'auto', 'always' or 'never'; got {sample_start!r}"
-            )
-        if on_null not in ("exclude", "error"):
-            raise SpecError(f"on_null must be 'exclude' or 'error'; got {on_null!r}")
+        # the enumerated options (on_null, compress, ...) against their declared values;
+        # every parameter is a local here under its option's name
+        O.check_choices(locals())
         if not (isinstance(tol, int | float) and 0 < tol < 1):
             raise SpecError(f"tol must be a number in (0, 1); got {tol!r}")
         if not (isinstance(max_iter, int) and max_iter >= 1):
@@ -227,6 +219,7 @@ class ModelSpec:
             "family_params": self.family.params(),
             "estimate_theta": self.estimate_theta,
             "link": self.link.describe(),
+            **self.link.params(),
             "offset": self.offset,
             "weight": self.weight,
             "frequency_weight": self.frequency_weight,

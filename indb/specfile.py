@@ -9,7 +9,7 @@ A spec file has up to four tables::
 
 Relative ``db`` and file-source paths are read relative to the spec file's folder. Every key
 is checked, before anything else runs, against the kind of value its option declares
-(``indb.api``'s option tables and the fields of :class:`Gates`; see ``indb.options``).
+(``indb.options.OPTIONS`` and the fields of :class:`Gates`).
 """
 
 from __future__ import annotations
@@ -20,7 +20,6 @@ from dataclasses import dataclass, field, fields
 from typing import Any
 
 from indb import options as O
-from indb.api import DEPLOY_OPTIONS, ENGINE_OPTIONS, FIT_ARGUMENTS, SPEC_OPTIONS
 from indb.errors import SpecError
 from indb.options import Kind
 from indb.spec import Source
@@ -62,13 +61,13 @@ def gate_kinds() -> dict[str, Kind]:
 
 
 # The keys of each table and the kind of value each takes, from the options' own
-# declarations: [model] holds the fit options of indb.fit less start values (a retrain takes
-# them from the live version); [engine] adds the database to the engine settings.
+# declarations (indb.options.OPTIONS: an option's group is its table; start values, promote
+# and new_version are not keys, see Option.in_file) and the fields of Gates.
 TABLES: dict[str, dict[str, Kind]] = {
-    "model": {k: v for k, v in {**FIT_ARGUMENTS, **SPEC_OPTIONS}.items() if k != "start"},
-    "deploy": dict(DEPLOY_OPTIONS),
+    "model": O.file_keys("model"),
+    "deploy": O.file_keys("deploy"),
     "gates": gate_kinds(),
-    "engine": {"db": O.TEXT, **ENGINE_OPTIONS},
+    "engine": O.file_keys("engine"),
 }
 
 

@@ -20,9 +20,9 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.dialect import Dialect
+from indb.engines.backends import dialect_for
+from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError
-from indb.links import Link, make_link
 from indb.results import STORED_COVARIANCE_MAX_TERMS, FitResult
 from indb.splines import spline_basis_sql
 from indb.sqlexpr import Expr
@@ -43,14 +43,6 @@ def check_name(value: str, what: str) -> str:
             "starting with a letter"
         )
     return value
-
-
-def link_from_name(name: str) -> Link:
-    """Rebuild a link from its display name (``log``, ``power(0.3)``, ``sqrt``...)."""
-    m = re.fullmatch(r"power\((.+)\)", name)
-    if m:
-        return make_link("power", float(m.group(1)))
-    return make_link(name)
 
 
 @dataclass(frozen=True)
@@ -126,8 +118,6 @@ def written_in(res: FitResult, default: Dialect) -> Dialect:
     Fits record it as ``spec["sql_dialect"]``; a result from before that (or built by
     hand) is taken to be written for ``default``, the engine that holds it.
     """
-    from indb.dialect import dialect_for
-
     name = res.spec.get("sql_dialect")
     return dialect_for(name) if name else default
 
@@ -244,7 +234,7 @@ def scoring_query(
             f"the scoring source already has column(s) {sorted(clash)}; rename them "
             "or choose other output names"
         )
-    link = link_from_name(res.link)
+    link = res.link_object
     eta = eta_sql(res, dialect, include_offset=include_offset)
     # A row gets a mean only where eta is a finite number the inverse link takes; NULL,
     # NaN and +/-inf inputs (a NULL age, ln of a negative exposure) give NULL eta, mean,
@@ -298,8 +288,22 @@ def model_inputs(res: FitResult, dialect: Dialect, include_offset: bool = True) 
 def mean_expression(res: FitResult, dialect: Dialect) -> Expr:
     """The predicted mean as one expression over the model's input columns (for macros):
     NULL where the inputs give no valid eta, as in the view."""
-    link = link_from_name(res.link)
+    link = res.link_object
     return link.mean_sql(eta_sql(res, dialect))
+
+
+def unseen_expression(res: FitResult, dialect: Dialect) -> Expr:
+    """The view's ``score_unseen`` as one expression over the model's input columns (for the
+    companion macro): inputs not seen in training, plus 1 when the row gets no mean."""
+    valid = res.link_object.valid_eta_sql(eta_sql(res, dialect))
+    unscored = S.case([(valid, exp.Literal.number(0))], exp.Literal.number(1))
+    return S.add(unseen_sql(res), unscored)
+
+
+def unseen_macro_name(macro_name: str) -> str:
+    """The companion of scoring macro ``NAME_score``: ``NAME_unseen``, which counts the
+    inputs a call scored as the reference level (and 1 for a call that gets no mean)."""
+    return macro_name.removesuffix("_score") + "_unseen"
 
 
 # -- registry ---------------------------------------------------------------------------------

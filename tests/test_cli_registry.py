@@ -191,6 +191,13 @@ def test_deploy_options_need_name_and_database(tmp_path: Path):
     path = tmp_path / "models.duckdb"
     _write(path, "ships", _ships())
     _error(_run(*FIT, "--db", path, "--hold", "--intervals", "ships"), 2, "--hold", "--name")
+    # the message names each option as typed: the name's spelling, a switch's off form
+    _error(
+        _run(*FIT, "--db", path, "--no-promote", "--no-intervals", "ships"),
+        2,
+        "--no-promote, --no-intervals only apply",
+        "--name",
+    )
     parquet = tmp_path / "ships.parquet"
     _ships().to_parquet(parquet)
     _error(_run(*FIT, "--name", "ship_damage", parquet), 2, "--db")
@@ -200,6 +207,20 @@ def test_deploy_options_need_name_and_database(tmp_path: Path):
     new_db = tmp_path / "new.duckdb"
     result = _ok(_run(*FIT, "--db", new_db, "--name", "ship_damage", "-q", parquet))
     assert "version 1 is live" in result.stdout and new_db.exists()
+
+
+@pytest.mark.parametrize("hold", ["--no-promote", "--hold"])
+def test_a_version_recorded_but_not_made_live(db: Path, hold: str):
+    # --no-promote (promote=False in Python) and its former spelling --hold: version 3 is
+    # recorded and held, version 1 keeps serving the view
+    with duckdb.connect(str(db)) as con:
+        before = con.execute("SELECT * FROM ship_damage ORDER BY row_id").fetchall()
+    text = _ok(_run(*FIT, "--db", db, "--name", "ship_damage", hold, "--new-version", "ships"))
+    assert "version 3 recorded but not live" in text.stdout
+    lines = _ok(_run("versions", "ship_damage", "--db", db)).stdout.splitlines()[1:]
+    assert [line.split()[1] for line in lines] == ["live", "held", "held"]
+    with duckdb.connect(str(db)) as con:
+        assert con.execute("SELECT * FROM ship_damage ORDER BY row_id").fetchall() == before
 
 
 # -- registry commands --------------------------------------------------------------

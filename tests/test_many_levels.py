@@ -31,7 +31,7 @@ import indb
 from indb import inference, normal_eq, solver
 from indb.api import scoring_sql
 from indb.cli import main
-from indb.engine import DuckDBEngine
+from indb.engines.duckdb import DuckDBEngine
 from indb.errors import AliasingWarning, SpecError
 from indb.registry import Registry
 from indb.results import STORED_COVARIANCE_MAX_TERMS

@@ -33,11 +33,11 @@ from sqlglot import exp
 import indb
 from indb import sqlexpr as S
 from indb.cli import main
-from indb.dialect import DuckDBDialect
+from indb.engines.duckdb import DuckDBDialect
+from indb.engines.postgres import PostgresDialect
+from indb.engines.spark import SparkDialect
 from indb.errors import UnsupportedError
 from indb.portable import portable_expression
-from indb.postgres import PostgresDialect
-from indb.spark import SparkDialect
 
 
 def duck_values(con: duckdb.DuckDBPyConnection, exprs: list[exp.Expression]) -> list[object]:

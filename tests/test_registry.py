@@ -381,7 +381,103 @@ def test_failures_during_write_back_leave_nothing_written(db: str):
     # The view would replace a table indb did not create: refused before the write-back
     # (a failure inside the transaction is rolled back: tests/robustness/test_faults.py
     # kills the write-back before each of its statements).
+    # issue 13: and before the fit's first scan (no IRLS iteration is reported)
+    scans: list[Any] = []
     with pytest.raises(RegistryError, match="would replace base table 'clash'"):
-        _fit_ships(db, name="clash")
+        _fit_ships(db, name="clash", progress=scans.append)
+    assert scans == []
     assert snapshot(db) == before
+    # a held version deploys nothing, so it may take the name
+    held = _fit_ships(db, name="clash", promote=False, progress=scans.append)
+    assert held.deployment["promoted"] is False
+    assert len(scans) == held.iterations  # the callback sees every IRLS scan
     assert _query(db, "SELECT x FROM clash")["x"].tolist() == [1]
+    before = snapshot(db)
+    assert _query(db, "SELECT x FROM clash")["x"].tolist() == [1]
+
+
+def test_documented_top_level_api_and_text_report(tmp_path: Path) -> None:
+    # issue 13: indb.deploy was documented but only indb.api.deploy existed, and print(result)
+    # showed the dataclass fields instead of the report
+    import duckdb
+
+    from indb.report import render_report
+
+    db = str(tmp_path / "t.duckdb")
+    con = duckdb.connect(db)
+    con.execute(
+        "CREATE TABLE t AS SELECT i, i % 3 AS g, (i % 7) * 0.5 AS x, (i % 5) AS y "
+        "FROM range(60) r(i)"
+    )
+    con.close()
+    res = indb.fit("t", "y", "poisson", db=db, categorical=["g"], exclude=["i"])
+    assert str(res) == render_report(res)
+    assert repr(res).startswith("FitResult(")
+    out = indb.deploy(res, "counts", db=db)
+    assert out.deployment["version"] == 1
+    assert "CREATE" in indb.scoring_sql("counts", db=db).upper()
+
+
+def test_unseen_macro_counts_what_the_view_counts(tmp_path: Path) -> None:
+    # issue 13: NAME_score scores an unknown level as the reference level and cannot say
+    # so; its companion NAME_unseen returns the view's score_unseen for the same inputs
+    import duckdb
+
+    db = str(tmp_path / "u.duckdb")
+    con = duckdb.connect(db)
+    con.execute(
+        "CREATE TABLE pol AS SELECT i, CASE hash(i, 'r') % 3 WHEN 0 THEN 'North' WHEN 1 "
+        "THEN 'South' ELSE 'West' END AS region, 20 + i % 40 AS age, "
+        "0.5 + (i % 4) * 0.25 AS exposure, hash(i, 'c') % 3 AS claims FROM range(300) r(i)"
+    )
+    con.execute(
+        "CREATE TABLE newpol AS SELECT * FROM (VALUES (1, 'North', 30, 1.0), "
+        "(2, 'Atlantis', 30, 1.0), (3, NULL, 30, 1.0), (4, 'South', NULL, 1.0), "
+        "(5, 'Atlantis', NULL, 1.0), (6, 'West', 45, -1.0)) t(i, region, age, exposure)"
+    )
+    con.close()
+    indb.fit(
+        "pol",
+        "claims",
+        "poisson",
+        db=db,
+        offset="ln(exposure)",
+        exclude=["i"],
+        name="freq",
+        score_source="newpol",
+    )
+    con = duckdb.connect(db)
+    rows = con.execute(
+        "SELECT i, score_mean, score_unseen, freq_score(region, age, exposure), "
+        "freq_unseen(region, age, exposure) FROM freq ORDER BY i"
+    ).fetchall()
+    for i, mean, unseen, macro_mean, macro_unseen in rows:
+        assert macro_unseen == unseen, i
+        assert (macro_mean is None) == (mean is None), i
+        if mean is not None:
+            assert macro_mean == pytest.approx(mean, rel=1e-12)
+    # seen; unseen level; NULL level; NULL age (no mean); both; ln(-1) (no mean)
+    assert [r[2] for r in rows] == [0, 1, 1, 1, 2, 1]
+    # both macros go when the model moves to another schema
+    con.close()
+    indb.fit(
+        "pol",
+        "claims",
+        "poisson",
+        db=db,
+        offset="ln(exposure)",
+        exclude=["i"],
+        name="freq",
+        score_source="newpol",
+        view_schema="mart",
+    )
+    con = duckdb.connect(db)
+    where = {
+        r[0]: r[1]
+        for r in con.execute(
+            "SELECT function_name, schema_name FROM duckdb_functions() "
+            "WHERE function_name IN ('freq_score', 'freq_unseen')"
+        ).fetchall()
+    }
+    assert where == {"freq_score": "mart", "freq_unseen": "mart"}
+    con.close()

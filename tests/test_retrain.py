@@ -279,6 +279,24 @@ def test_failing_gate_holds_back_with_exit_code_6(tmp_path: Path):
     assert out["status"] == "held" and out["exit_code"] == 6
     assert [g["passed"] for g in out["gates"] if g["gate"] == "max_relative_change"] == [False]
 
+    # issue 13: held versions do not pile up. The same spec on the same data repeats held
+    # version 2 and says so; other data give version 3; the data of version 2 again repeat
+    # version 2 (an older held version, not the newest)
+    again = _run("retrain", "-q", str(spec_path))
+    assert again.exit_code == 6, again.output
+    assert "match held version 2" in again.stdout and "no new version" in again.stdout
+    fewer = changed.iloc[1:].reset_index(drop=True)
+    _write(db, fewer)
+    assert _run("retrain", "-q", str(spec_path)).exit_code == 6
+    _write(db, changed)
+    back = _run("retrain", "-q", str(spec_path))
+    assert back.exit_code == 6 and "match held version 2" in back.stdout, back.output
+    with duckdb.connect(str(db)) as con:
+        statuses = con.execute(
+            "SELECT version, status FROM indb_registry.model_version ORDER BY version"
+        ).fetchall()
+    assert statuses == [(1, "live"), (2, "held"), (3, "held")]
+
 
 def test_dry_run_prints_sql_and_writes_nothing(tmp_path: Path):
     spec_path, db = _setup(tmp_path)

@@ -20,7 +20,8 @@ from reference_cases import design_matrix, duckdb_table, fair_rated
 import indb
 from indb import sample_start
 from indb import sqlexpr as S
-from indb.dialect import Dialect, DuckDBDialect
+from indb.engines.base_dialect import Dialect
+from indb.engines.duckdb import DuckDBDialect
 from indb.errors import SpecError
 
 

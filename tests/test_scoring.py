@@ -29,6 +29,8 @@ import statsmodels.api as sm
 from numpy.testing import assert_allclose
 
 import indb
+from indb.families import Gamma
+from indb.links import PowerLink
 from indb.results import FitResult
 
 SHIPS_CSV = Path(statsmodels.__file__).parent / "discrete" / "tests" / "results" / "ships.csv"
@@ -219,6 +221,48 @@ def test_gamma_log_view_matches_statsmodels_with_t_intervals(db: str):
     # contract); statsmodels uses the normal distribution unless asked.
     oracle = _oracle(data, res, "YES", sm.families.Gamma(sm.families.links.Log()), use_t=True)
     _assert_view_matches(view, oracle, _exog(data, res))
+
+
+def test_power_link_scores_with_the_exact_exponent(db: str):
+    # A power link with no name of its own: its display name "power(0.333333)" rounds the
+    # exponent, so the view and the registry's copy must take it from the canonical spec.
+    data = _scotland()
+    _write(db, "scotland", data)
+    power = 1.0 / 3.0
+    res = indb.fit(
+        "scotland",
+        "YES",
+        "gamma",
+        "power",
+        link_power=power,
+        db=db,
+        exclude=["row_id"],
+        tol=TOL,
+        name="cube_root",
+        intervals=True,
+    )
+    assert res.link == "power(0.333333)"  # the display name, rounded
+    assert res.link_object == PowerLink(name="power", exponent=power)
+    view = _query(db, "SELECT * FROM cube_root ORDER BY row_id")
+    # statsmodels' Power link with the same exponent (check_link=False: statsmodels lists
+    # only the gamma family's usual links)
+    family = sm.families.Gamma(sm.families.links.Power(power), check_link=False)
+    oracle = _oracle(data, res, "YES", family, use_t=True)
+    _assert_view_matches(view, oracle, _exog(data, res))
+
+    # the stored version rebuilds the same link from the registry's JSON
+    stored = indb.api.registry(db)
+    try:
+        again = stored.load("cube_root")
+    finally:
+        stored.engine.close()
+    assert again.link_object == res.link_object
+    assert again.family_object == res.family_object == Gamma()
+    printed = indb.api.scoring_sql("cube_root", db=db, view_name="cube_root_again")
+    with duckdb.connect(db) as con:
+        con.execute(printed)
+        rescored = con.execute("SELECT * FROM cube_root_again ORDER BY row_id").df()
+    _assert_view_matches(rescored, oracle, _exog(data, res))
 
 
 def test_view_without_intervals_has_no_interval_columns(db: str):

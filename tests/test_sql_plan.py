@@ -32,7 +32,7 @@ from sqlglot import exp
 import indb
 from indb import sqlexpr as S
 from indb.design import Factor, build_design, plan_values, resolve_inputs
-from indb.dialect import DuckDBDialect
+from indb.engines.duckdb import DuckDBDialect
 from indb.families import make_family
 from indb.links import make_link
 from indb.plan.context import PlanContext

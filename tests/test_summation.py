@@ -16,7 +16,7 @@ import pytest
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.engine import DuckDBEngine
+from indb.engines.duckdb import DuckDBEngine
 
 N = 2_000_000  # large enough for rounding to accumulate, small enough for CI
 

@@ -32,8 +32,9 @@ from pol_cases import ROWS, oracle_means, pol_frame
 
 import indb
 from indb.cli import main
-from indb.dialect import split_qualified
-from indb.engine import DuckDBEngine, qualify_source
+from indb.engines.base_dialect import split_qualified
+from indb.engines.base_engine import qualify_source
+from indb.engines.duckdb import DuckDBEngine
 from indb.errors import DeploymentWarning, EngineError, SpecError
 from indb.registry import Registry
 from indb.spec import Source
@@ -365,7 +366,11 @@ def test_scoring_sql_names_the_source_for_its_dialect(db):
 
 def test_refit_into_another_schema_moves_the_view_and_macro(db, frame):
     cli("fit", "--db", db, *FIT, "--exclude", "id", "--tol", "1e-12", "--name", "freq", "pol")
-    assert objects(db) == {("view", "main", "freq"), ("macro", "main", "freq_score")}
+    assert objects(db) == {
+        ("view", "main", "freq"),
+        ("macro", "main", "freq_score"),
+        ("macro", "main", "freq_unseen"),
+    }
     out = cli(
         "fit",
         "--db",
@@ -385,24 +390,40 @@ def test_refit_into_another_schema_moves_the_view_and_macro(db, frame):
     )
     assert "scoring view mart.freq" in out.output and "macro mart.freq_score" in out.output
     # before: main.freq and main.freq_score went on serving version 1, untracked
-    assert objects(db) == {("view", "mart", "freq"), ("macro", "mart", "freq_score")}
+    assert objects(db) == {
+        ("view", "mart", "freq"),
+        ("macro", "mart", "freq_score"),
+        ("macro", "mart", "freq_unseen"),
+    }
     row = model_row(db, "freq")
     assert (row["live_version"], row["view_schema"]) == (2, "mart")
     assert_allclose(scores(db, "mart.freq"), oracle_means(frame, ["region"]), rtol=PREDICT_RTOL)
 
     # promoting the older version keeps the view where the model's view is now
     cli("promote", "freq", "1", "--db", db)
-    assert objects(db) == {("view", "mart", "freq"), ("macro", "mart", "freq_score")}
+    assert objects(db) == {
+        ("view", "mart", "freq"),
+        ("macro", "mart", "freq_score"),
+        ("macro", "mart", "freq_unseen"),
+    }
     v1 = oracle_means(frame, ["age", "region"])
     assert_allclose(scores(db, "mart.freq"), v1, rtol=PREDICT_RTOL)
     # ... unless the promotion moves it: back to main, mart's dropped in the same transaction
     cli("promote", "freq", "1", "--db", db, "--view-schema", "main")
-    assert objects(db) == {("view", "main", "freq"), ("macro", "main", "freq_score")}
+    assert objects(db) == {
+        ("view", "main", "freq"),
+        ("macro", "main", "freq_score"),
+        ("macro", "main", "freq_unseen"),
+    }
     assert model_row(db, "freq")["view_schema"] == "main"
     assert_allclose(scores(db, "main.freq"), v1, rtol=PREDICT_RTOL)
     # main and the default schema are the same place: nothing is dropped
     cli("fit", "--db", db, *FIT, "--exclude", "id", "--exclude", "region", "--name", "freq", "pol")
-    assert objects(db) == {("view", "main", "freq"), ("macro", "main", "freq_score")}
+    assert objects(db) == {
+        ("view", "main", "freq"),
+        ("macro", "main", "freq_score"),
+        ("macro", "main", "freq_unseen"),
+    }
     with registry(db) as reg:
         events = [e["detail"] for e in reg.events("freq") if e["action"] == "promote"]
     assert events == [
@@ -438,12 +459,20 @@ def test_held_version_does_not_move_the_view_and_says_so(db, frame):
             promote=False,
         )
     assert any("indb promote freq 2 --view-schema mart" in w for w in res.warnings)
-    assert objects(db) == {("view", "main", "freq"), ("macro", "main", "freq_score")}
+    assert objects(db) == {
+        ("view", "main", "freq"),
+        ("macro", "main", "freq_score"),
+        ("macro", "main", "freq_unseen"),
+    }
     row = model_row(db, "freq")
     assert (row["live_version"], row["view_schema"]) == (1, None)  # where the live view is
     with registry(db) as reg:
         reg.promote("freq", 2, view_schema="mart")
-    assert objects(db) == {("view", "mart", "freq"), ("macro", "mart", "freq_score")}
+    assert objects(db) == {
+        ("view", "mart", "freq"),
+        ("macro", "mart", "freq_score"),
+        ("macro", "mart", "freq_unseen"),
+    }
     assert_allclose(scores(db, "mart.freq"), oracle_means(frame, ["region"]), rtol=1e-6)
 
 

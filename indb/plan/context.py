@@ -10,7 +10,7 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.design import RESERVED_PREFIX, Inputs, Scaling, Value
-from indb.dialect import Dialect
+from indb.engines.base_dialect import Dialect
 from indb.spec import ModelSpec
 from indb.splines import spline_basis_sql
 from indb.sqlexpr import Expr

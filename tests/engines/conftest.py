@@ -135,8 +135,8 @@ def spark_local(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Any]:
         import pyspark  # noqa: F401
     except ImportError:
         unavailable("Spark", "pyspark is not installed (pip install -e '.[spark]')")
+    from indb.engines.spark import SparkEngine
     from indb.errors import EngineError
-    from indb.spark import SparkEngine
 
     _quiet_spark_logging()
     conf = {

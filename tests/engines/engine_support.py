@@ -25,14 +25,14 @@ def open_engine(request: Any, name: str) -> Any:
     if name == "duckdb":
         import duckdb
 
-        from indb.engine import DuckDBEngine
+        from indb.engines.duckdb import DuckDBEngine
 
         return DuckDBEngine(duckdb.connect())
     if name == "postgres":
-        from indb.postgres import PostgresEngine
+        from indb.engines.postgres import PostgresEngine
 
         return PostgresEngine(request.getfixturevalue("pg_url"))
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     return SparkEngine(request.getfixturevalue("spark_local"))
 

@@ -19,10 +19,10 @@ from scipy.special import gammaln
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.engine import Engine
+from indb.engines.base_engine import Engine
+from indb.engines.postgres import PostgresDialect
+from indb.engines.spark import SparkDialect
 from indb.errors import EngineError, UnsupportedError
-from indb.postgres import PostgresDialect
-from indb.spark import SparkDialect
 from indb.sqlexpr import log_gamma_series
 
 ENGINES = ["duckdb", "postgres", "spark-local"]

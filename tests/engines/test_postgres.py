@@ -13,8 +13,8 @@ from engine_support import pg_load
 from numpy.testing import assert_allclose
 
 import indb
+from indb.engines.postgres import PostgresEngine
 from indb.errors import EngineError, SpecError
-from indb.postgres import PostgresEngine
 
 
 @pytest.fixture

@@ -138,7 +138,7 @@ def parquet_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 @pytest.fixture(scope="module")
 def pg_engine(pg_url: str) -> Any:
-    from indb.postgres import PostgresEngine
+    from indb.engines.postgres import PostgresEngine
 
     engine = indb.connect(pg_url)
     assert isinstance(engine, PostgresEngine)
@@ -148,14 +148,14 @@ def pg_engine(pg_url: str) -> Any:
 
 @pytest.fixture(scope="module")
 def spark_local_engine(spark_local: Any) -> Any:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     return SparkEngine(spark_local)
 
 
 @pytest.fixture(scope="module")
 def spark_connect_engine(spark_connect_url: str) -> Any:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     engine = indb.connect(spark_connect_url)
     assert isinstance(engine, SparkEngine)

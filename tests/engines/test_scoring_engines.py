@@ -35,8 +35,8 @@ from numpy.testing import assert_allclose
 from scoring_cases import LEVELS, design, ieee_cases, link_valid, pol_frame, same, scoring_rows
 
 import indb
-from indb.postgres import PostgresDialect
-from indb.spark import SparkDialect
+from indb.engines.postgres import PostgresDialect
+from indb.engines.spark import SparkDialect
 
 TRAIN_ROWS = 2_000
 # the same double literals through the same operations; exp, ln and pow may differ in the
@@ -377,7 +377,7 @@ def test_spark_view_gives_no_mean_for_rows_that_cannot_be_scored(
 ) -> None:
     from engine_support import spark_view, write_parquet
 
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     train = pol_frame().head(TRAIN_ROWS)[["id", "age", "region", "exposure", "claims"]]
     spark_view(spark_local, "pol", write_parquet(train, tmp_path / "pol.parquet"))
@@ -441,7 +441,7 @@ XS = [2.5, 0.5, 1.0, 40.0, 1e-3]
 def test_postgres_expressions_keep_their_meaning_on_duckdb(pg_con: Any, text: str) -> None:
     """The other direction: PostgreSQL's own result for each row against DuckDB running the
     translation (integer division truncates, log is base 10, ^ is a power)."""
-    from indb.dialect import DuckDBDialect
+    from indb.engines.duckdb import DuckDBDialect
     from indb.portable import portable_expression
 
     rows = list(zip(AGES, XS, strict=True))
@@ -472,7 +472,7 @@ def test_spark_expressions_keep_their_meaning_on_duckdb(
 ) -> None:
     """Spark's own result against DuckDB running the translation (log is natural, ln of a
     non-positive number is NULL, DIV truncates, ^ is XOR: refused)."""
-    from indb.dialect import DuckDBDialect
+    from indb.engines.duckdb import DuckDBDialect
     from indb.errors import UnsupportedError
     from indb.portable import portable_expression
 

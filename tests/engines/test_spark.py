@@ -14,8 +14,8 @@ from engine_support import spark_view, write_parquet
 from numpy.testing import assert_allclose
 
 import indb
+from indb.engines.spark import SparkEngine
 from indb.errors import EngineError, UnsupportedError
-from indb.spark import SparkEngine
 
 
 @pytest.fixture

@@ -219,7 +219,7 @@ def spark_ships(spark_local: Any, tmp_path: Path) -> tuple[Any, pd.DataFrame, Pa
 
 @pytest.mark.slow
 def test_spark_temporary_views_and_append_only_registry(spark_ships: Any) -> None:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     session, frame, _, _ = spark_ships
     engine = SparkEngine(session)  # the caller's session: temporary scoring views
@@ -276,7 +276,7 @@ def test_spark_temporary_views_and_append_only_registry(spark_ships: Any) -> Non
 
 @pytest.mark.slow
 def test_spark_persistent_views_and_a_failed_promotion(spark_ships: Any) -> None:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     session, frame, train, _ = spark_ships
     engine = SparkEngine(session, view_kind="persistent")
@@ -337,7 +337,7 @@ def test_postgres_unchanged_refit_applies_intervals(pg_url: str, pg_con: Any) ->
 
 @pytest.mark.slow
 def test_spark_unchanged_refit_applies_intervals(spark_ships: Any) -> None:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     session, frame, _, _ = spark_ships
     engine = SparkEngine(session)
@@ -388,7 +388,7 @@ def pg_views(con: Any, schemas: list[str], tag: str) -> set[tuple[str, str]]:
 def test_postgres_view_in_another_schema_reads_the_fitted_table(pg_url: str, pg_con: Any) -> None:
     import psycopg
 
-    from indb.postgres import PostgresEngine
+    from indb.engines.postgres import PostgresEngine
 
     frame = pol_frame()
     tag = uuid.uuid4().hex[:8]
@@ -467,7 +467,7 @@ def test_postgres_refuses_a_model_named_like_a_catalog_table(pg_url: str, pg_con
 def test_spark_persistent_view_in_another_database_reads_the_fitted_table(
     spark_local: Any, tmp_path: Path
 ) -> None:
-    from indb.spark import SparkEngine
+    from indb.engines.spark import SparkEngine
 
     session = spark_local
     # a temporary view pol of another test in the shared session would shadow the tables

@@ -27,7 +27,7 @@ from click.testing import CliRunner
 
 import indb
 from indb.cli import main
-from indb.engine import DuckDBEngine, shown_size_range, size_shown_as
+from indb.engines.duckdb import DuckDBEngine, shown_size_range, size_shown_as
 from indb.errors import SpecError
 
 RTOL = 1e-6

@@ -970,7 +970,7 @@ def test_compression_sample_with_predictors_named_like_its_counts(
     # count; predictors named c, d, s must stay the user's columns. Checked on the plan
     # itself (auto only samples from 50,000 rows): 32 rows, distinct (c, d, s) counted by DuckDB.
     from indb.design import resolve_inputs
-    from indb.dialect import DuckDBDialect
+    from indb.engines.duckdb import DuckDBDialect
     from indb.plan.context import PlanContext
     from indb.plan.fold import sample_distinct_query
     from indb.spec import ModelSpec

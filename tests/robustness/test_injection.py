@@ -111,7 +111,7 @@ def template(tmp_path_factory: pytest.TempPathFactory) -> Deployed:
     registry = {(R.DEFAULT_REGISTRY, t) for t in R.REGISTRY_TABLES}
     assert names["tables"] == {("main", "claims"), *registry}
     assert names["views"] == {("main", "baseline")}
-    assert names["functions"] == {("main", "baseline_score")}
+    assert names["functions"] == {("main", "baseline_score"), ("main", "baseline_unseen")}
     return Deployed(path, before, frame, expected, res)
 
 
@@ -347,7 +347,10 @@ def test_payload_column_names_and_levels_deploy_safely(
     old, new = R.object_names(deployed.before), R.object_names(after)
     assert new["tables"] == old["tables"] | {("main", "inj")}
     assert new["views"] == old["views"] | {("main", "inj_model")}
-    assert new["functions"] == old["functions"] | {("main", "inj_model_score")}
+    assert new["functions"] == old["functions"] | {
+        ("main", "inj_model_score"),
+        ("main", "inj_model_unseen"),
+    }
     for key, table in deployed.before["tables"].items():
         if key[0] == "main":
             assert after["tables"][key] == table  # claims: same rows
@@ -495,7 +498,10 @@ def test_offset_and_weight_payloads(deployed: Deployed, expr: Expr) -> None:
     old, new = R.object_names(deployed.before), R.object_names(after)
     assert new["tables"] == old["tables"]
     assert new["views"] == old["views"] | {("main", "expr_model")}
-    assert new["functions"] == old["functions"] | {("main", "expr_model_score")}
+    assert new["functions"] == old["functions"] | {
+        ("main", "expr_model_score"),
+        ("main", "expr_model_unseen"),
+    }
     with deployed.con() as con:
         view = con.execute("SELECT score_mean FROM expr_model ORDER BY row_id").fetchall()
         claims = con.execute("SELECT * FROM claims ORDER BY row_id").fetchall()

@@ -28,8 +28,8 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.dialect import Dialect
-from indb.engine import Engine, open_transaction_error, rows_to_columns
+from indb.engines.base_dialect import Dialect
+from indb.engines.base_engine import Engine, open_transaction_error, rows_to_columns
 from indb.errors import EngineError, UnsupportedError
 from indb.sqlexpr import as_operand, log_gamma_series
 
@@ -231,7 +231,8 @@ class PostgresDialect(Dialect):
     def file_scan(self, path: str) -> exp.Expression:
         raise UnsupportedError(
             f"PostgreSQL cannot read the file {path!r} from a query; load it into a table "
-            "(e.g. with COPY or psql's \\copy) and pass the table name"
+            "(e.g. with COPY or psql's \\copy) and pass the table name (for scoring-sql: "
+            "--source TABLE, or source= in Python)"
         )
 
     def type_kind(self, type_name: str) -> str:
@@ -483,3 +484,8 @@ def _wrap(err: Exception, sql: str | None) -> EngineError:
     text = str(err).strip()
     msg = text.splitlines()[0] if text else type(err).__name__
     return EngineError(f"PostgreSQL failed: {msg}", sql=sql)
+
+
+def open_engine(db: Any) -> PostgresEngine:
+    """The engine factory of the backends table: ``db`` is a URL, a DSN or a connection."""
+    return PostgresEngine(db)

@@ -1,9 +1,10 @@
-"""Engine dialects: the one place where generated syntax trees become SQL text.
+"""The dialect base: the one place where generated syntax trees become SQL text.
 
-Each engine gets a subclass that translates indb's custom nodes (``LogGamma``, ``IsFinite``,
-``PreciseSum``) and engine-specific constructs (file scans, type names). A custom node
-without a translation raises :class:`~indb.errors.UnsupportedError` instead of being passed
-through as generic SQL.
+Each backend module of :mod:`indb.engines` subclasses :class:`Dialect` to translate indb's
+custom nodes (``LogGamma``, ``IsFinite``, ``PreciseSum``) and engine-specific constructs
+(file scans, type names); this module never imports them. A custom node without a
+translation raises :class:`~indb.errors.UnsupportedError` instead of being passed through as
+generic SQL.
 """
 
 from __future__ import annotations
@@ -294,131 +295,6 @@ def set_table_parts(table: exp.Table, parts: Sequence[str]) -> None:
     table.set("catalog", ids[-3] if len(ids) == 3 else None)
 
 
-class DuckDBDialect(Dialect):
-    """DuckDB: lgamma, isfinite, read_parquet/read_csv_auto; IEEE doubles (1/0 = inf)."""
-
-    name = "duckdb"
-    sqlglot_name = "duckdb"
-
-    def __init__(self, compensated_sums: bool = False) -> None:
-        # SUM(DOUBLE) adds in parallel partial sums (error ~ sqrt(n) eps in practice);
-        # KAHAN_SUM is compensated but about twice as slow (see benchmarks/RESULTS.md).
-        self.compensated_sums = compensated_sums
-
-    def precise_sum(self, x):
-        if self.compensated_sums:
-            return exp.Anonymous(this="KAHAN_SUM", expressions=[x])
-        return exp.Sum(this=x)
-
-    def log_gamma(self, x):
-        return exp.Anonymous(this="LGAMMA", expressions=[x])
-
-    def is_finite(self, x):
-        return exp.Anonymous(this="ISFINITE", expressions=[x])
-
-    def quantile(self, x, q):
-        return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
-
-    # DuckDB's `//` divides integers (truncating) and divides anything else exactly
-    # (7.5 // 2 = 3.75); its `/` is true division, and ln, sqrt, exp, pow and division by
-    # zero give IEEE-754's NaN and infinities (checked in tests/test_portable.py).
-    int_div_fraction = "exact"
-
-    def ieee(self, node):
-        a = node.this
-        if isinstance(node, S.IeeeLn):
-            return exp.Ln(this=a)
-        if isinstance(node, S.IeeeLog10):
-            return exp.Anonymous(this="LOG10", expressions=[a])
-        if isinstance(node, S.IeeeSqrt):
-            return exp.Sqrt(this=a)
-        if isinstance(node, S.IeeeExp):
-            return exp.Exp(this=a)
-        if isinstance(node, S.IeeePow):
-            return exp.Pow(this=a, expression=node.expression)
-        return S.div(a, node.expression)  # IeeeDiv
-
-    supports_macros = True
-
-    def materialize(self, name, query):
-        return [f"CREATE OR REPLACE TEMP TABLE {self.quote(name)} AS {self.render(query)}"]
-
-    def row_pick(self, values, fraction):
-        # HASH(...) is a UBIGINT spread over [0, 2^64): below fraction * 2^64 on that share
-        bound = exp.Literal.number(int(fraction * 2.0**64))
-        return exp.LT(this=exp.Anonymous(this="HASH", expressions=values), expression=bound)
-
-    def _qualified(self, schema: str | None, name: str) -> str:
-        return (self.quote(schema) + "." if schema else "") + self.quote(name)
-
-    def create_macro(self, schema, name, params, body):
-        # DuckDB scalar macro; parameters are the model's input columns, so column
-        # references in the body bind to them (https://duckdb.org/docs/sql/statements/create_macro)
-        args = ", ".join(self.quote(p) for p in params)
-        return (
-            f"CREATE OR REPLACE MACRO {self._qualified(schema, name)}({args}) AS "
-            f"{self.render(body)}"
-        )
-
-    def drop_macro(self, schema, name):
-        return f"DROP MACRO IF EXISTS {self._qualified(schema, name)}"
-
-    def existing_objects_query(self, schema, view, macro):
-        # information_schema.tables lists every attached database: keep the current one.
-        # Macros live in duckdb_functions() (https://duckdb.org/docs/sql/meta/duckdb_table_functions)
-        q = super().existing_objects_query(schema, view, macro)
-        q = q.where(S.eq(S.col("table_catalog"), exp.CurrentCatalog()), copy=False)
-        if macro is None:
-            return q
-        macros = S.select(
-            [S.alias(S.text("MACRO"), "kind"), S.alias(S.col("function_name"), "name")],
-            exp.Table(this=exp.Anonymous(this="duckdb_functions", expressions=[])),
-            where=S.and_(
-                S.eq(S.col("database_name"), exp.CurrentCatalog()),
-                S.eq(S.col("schema_name"), S.text(schema) if schema else exp.CurrentSchema()),
-                S.eq(exp.Lower(this=S.col("function_name")), S.text(macro.lower())),
-                S.eq(S.col("function_type"), S.text("macro")),
-            ),
-        )
-        return exp.union(q, macros, distinct=False)
-
-    def reserved_objects_query(self, view, macro):
-        # DuckDB looks unqualified names up in the temp catalog, then the database's own
-        # schemas, then the system catalog's main and pg_catalog schemas: a view named
-        # sqlite_master in main would hide the built-in view of that name from every query,
-        # and a macro in main hides a built-in function (https://duckdb.org/docs/sql/statements/set#search_path)
-        def internal(table_fn: str, column: str, name: str) -> exp.Select:
-            return S.select(
-                [S.alias(S.col(column), "name")],
-                exp.Table(this=exp.Anonymous(this=table_fn, expressions=[])),
-                where=S.and_(
-                    S.col("internal"),
-                    S.eq(exp.Lower(this=S.col(column)), S.text(name.lower())),
-                ),
-            )
-
-        parts: list[exp.Select] = [
-            internal("duckdb_views", "view_name", view),
-            internal("duckdb_tables", "table_name", view),
-        ]
-        if macro is not None:
-            parts.append(internal("duckdb_functions", "function_name", macro))
-        query: exp.Query = parts[0]
-        for part in parts[1:]:
-            query = exp.union(query, part, distinct=False)
-        return query
-
-    def file_scan(self, path: str) -> exp.Expression:
-        low = path.lower()
-        if low.endswith((".parquet", ".pq")) or ".parquet" in low:
-            fn = "read_parquet"
-        elif low.endswith((".json", ".ndjson")):
-            fn = "read_json_auto"
-        else:
-            fn = "read_csv_auto"
-        return exp.Table(this=exp.Anonymous(this=fn, expressions=[S.text(path)]))
-
-
 _PLAIN_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 
 
@@ -470,26 +346,3 @@ def _split_qualified(name: str) -> list[str]:
     if any(p == "" for p in parts):
         raise SpecError(f"empty part in name {name!r}")
     return parts
-
-
-DIALECTS: dict[str, type[Dialect]] = {"duckdb": DuckDBDialect}
-SCORING_DIALECTS = ("duckdb", "postgres", "spark")
-
-
-def dialect_for(name: str) -> Dialect:
-    """A dialect by name, for printing scoring SQL (engine modules load on demand)."""
-    key = name.strip().lower()
-    if key == "duckdb":
-        return DuckDBDialect()
-    if key in ("postgres", "postgresql"):
-        from indb.postgres import PostgresDialect
-
-        return PostgresDialect()
-    if key == "spark":
-        from indb.spark import SparkDialect
-
-        return SparkDialect()
-    raise SpecError(
-        f"dialect {name!r} is not supported for scoring SQL; supported: "
-        f"{', '.join(SCORING_DIALECTS)}"
-    )

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 import time
 from collections.abc import Iterator, Sequence
 from pathlib import Path
@@ -26,8 +27,8 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.dialect import Dialect
-from indb.engine import Engine, rows_to_columns
+from indb.engines.base_dialect import Dialect
+from indb.engines.base_engine import Engine, rows_to_columns
 from indb.errors import EngineError, SpecError, UnsupportedError
 from indb.sqlexpr import as_operand, log_gamma_series
 
@@ -36,6 +37,9 @@ _SPARK_NUMERIC |= {"byte", "short", "long", "real"}
 _SPARK_TEXT = {"string", "varchar", "char"}
 _SPARK_BOOL = {"boolean"}
 _FILE_FORMATS = {".parquet": "parquet", ".pq": "parquet", ".orc": "orc", ".json": "json"}
+#: formats Spark reads as format.`path` with no reader options (CSV needs a header option)
+_DIRECT_FORMATS = frozenset(_FILE_FORMATS.values())
+_FORMAT_PATH = re.compile(r"(\w+)\.`([^`]+)`")
 VIEW_KINDS = ("temporary", "persistent")
 
 
@@ -153,6 +157,10 @@ class SparkDialect(Dialect):
         return S.ieee_div_guarded(a, node.expression)
 
     def file_scan(self, path: str) -> exp.Expression:
+        named = _FORMAT_PATH.fullmatch(path.strip())
+        if named and named.group(1).lower() in _DIRECT_FORMATS:
+            # already in Spark's own form, format.`path` (how its docs write a file source)
+            return exp.Table(this=S.ident(named.group(2)), db=S.ident(named.group(1).lower()))
         low = path.lower().rstrip("/")
         fmt = next((f for suffix, f in _FILE_FORMATS.items() if low.endswith(suffix)), None)
         if fmt is None and (".parquet" in low or Path(path).is_dir()):
@@ -368,3 +376,16 @@ def _first(err: BaseException) -> str:
 
 def _wrap(err: BaseException, sql: str) -> EngineError:
     return EngineError(f"Spark failed: {_first(err)}", sql=sql)
+
+
+def open_engine(db: Any, *, view_kind: str | None = None) -> SparkEngine:
+    """The engine factory of the backends table: ``db`` is ``spark:MASTER`` (an in-process
+    driver), ``sc://host:port`` (Spark Connect) or an open ``SparkSession``."""
+    if not isinstance(db, str):
+        return SparkEngine(db, view_kind=view_kind)
+    if db.strip().lower().startswith("sc://"):
+        return SparkEngine(remote=db.strip(), view_kind=view_kind)
+    master = db.strip()[len("spark:") :]
+    if not master:
+        raise SpecError(f"database URL {db!r} needs a Spark master, e.g. spark:local[2]")
+    return SparkEngine(master=master, view_kind=view_kind)

@@ -1,14 +1,12 @@
-"""Engine adapters: connect, run SQL text, describe columns, fetch small results.
+"""DuckDB: dialect (translations of indb's custom nodes) and engine adapter (embedded).
 
-Adapters know nothing about models. They translate driver errors into
-:class:`~indb.errors.EngineError` (keeping the SQL that failed) and run write-back
-statements in one transaction.
+DuckDB is the default backend: :func:`indb.connect` opens it for ``None``, a file path or an
+open ``duckdb`` connection.
 """
 
 from __future__ import annotations
 
 import contextlib
-import math
 import numbers
 import os
 import re
@@ -20,139 +18,141 @@ from typing import Any
 
 import numpy as np
 from sqlglot import exp
-from sqlglot.optimizer.normalize_identifiers import normalize_identifiers
 
 from indb import sqlexpr as S
-from indb.dialect import (
-    Dialect,
-    DuckDBDialect,
-    qualified_name,
-    set_table_parts,
-    split_qualified,
-    table_parts,
-    table_references,
-)
+from indb.engines.base_dialect import Dialect, split_qualified
+from indb.engines.base_engine import Engine, open_transaction_error
 from indb.errors import EngineError, SpecError
-from indb.spec import Source
+
+# -- the dialect ------------------------------------------------------------------------------
 
 
-class Engine:
-    """Interface every engine adapter implements.
+class DuckDBDialect(Dialect):
+    """DuckDB: lgamma, isfinite, read_parquet/read_csv_auto; IEEE doubles (1/0 = inf)."""
 
-    An adapter either opens its own connection (and closes it in :meth:`close`) or borrows
-    one the caller passed in. A borrowed connection must not be inside a transaction (the
-    adapter refuses it before running anything, see :func:`open_transaction_error`), and
-    every setting the adapter changes on it is put back by :meth:`close`.
-    """
+    name = "duckdb"
+    sqlglot_name = "duckdb"
 
-    dialect: Dialect
+    def __init__(self, compensated_sums: bool = False) -> None:
+        # SUM(DOUBLE) adds in parallel partial sums (error ~ sqrt(n) eps in practice);
+        # KAHAN_SUM is compensated but about twice as slow (see benchmarks/RESULTS.md).
+        self.compensated_sums = compensated_sums
 
-    def execute(self, sql: str) -> list[tuple[Any, ...]]:
-        raise NotImplementedError
+    def precise_sum(self, x):
+        if self.compensated_sums:
+            return exp.Anonymous(this="KAHAN_SUM", expressions=[x])
+        return exp.Sum(this=x)
 
-    def fetch_columns(self, sql: str) -> dict[str, np.ndarray]:
-        """Run a query and return its columns as numpy arrays (small results only)."""
-        raise NotImplementedError
+    def log_gamma(self, x):
+        return exp.Anonymous(this="LGAMMA", expressions=[x])
 
-    def describe(self, sql: str) -> list[tuple[str, str]]:
-        """(column name, type name) pairs of a query's result, without running it."""
-        raise NotImplementedError
+    def is_finite(self, x):
+        return exp.Anonymous(this="ISFINITE", expressions=[x])
 
-    @contextlib.contextmanager
-    def transaction(self) -> Iterator[None]:
-        raise NotImplementedError
-        yield
+    def quantile(self, x, q):
+        return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
 
-    def close(self) -> None:
-        pass
+    # DuckDB's `//` divides integers (truncating) and divides anything else exactly
+    # (7.5 // 2 = 3.75); its `/` is true division, and ln, sqrt, exp, pow and division by
+    # zero give IEEE-754's NaN and infinities (checked in tests/test_portable.py).
+    int_div_fraction = "exact"
 
-    # -- where names lead (write-back stores names that mean the same in any session) ----------
-    def resolve_table(self, parts: Sequence[str]) -> tuple[str, ...] | None:
-        """The table or view that the name ``parts`` (1 to 3 names) reads in this session,
-        as the parts that name it from any session and schema: (schema, table) or
-        (catalog, schema, table). None when the engine has no such table or the name
-        cannot be qualified (a session's temporary view on Spark)."""
-        return None
+    def ieee(self, node):
+        a = node.this
+        if isinstance(node, S.IeeeLn):
+            return exp.Ln(this=a)
+        if isinstance(node, S.IeeeLog10):
+            return exp.Anonymous(this="LOG10", expressions=[a])
+        if isinstance(node, S.IeeeSqrt):
+            return exp.Sqrt(this=a)
+        if isinstance(node, S.IeeeExp):
+            return exp.Exp(this=a)
+        if isinstance(node, S.IeeePow):
+            return exp.Pow(this=a, expression=node.expression)
+        return S.div(a, node.expression)  # IeeeDiv
 
-    def current_location(self) -> tuple[str, str]:
-        """(catalog or database, schema) that unqualified names are created in."""
-        raise NotImplementedError
+    supports_macros = True
 
-    def absolute_path(self, path: str) -> str:
-        """A file source's path as the engine reads it from any working directory."""
-        return path
+    def materialize(self, name, query):
+        return [f"CREATE OR REPLACE TEMP TABLE {self.quote(name)} AS {self.render(query)}"]
 
-    #: seconds spent in the last execute/fetch (for iteration timing)
-    last_seconds: float = 0.0
+    def row_pick(self, values, fraction):
+        # HASH(...) is a UBIGINT spread over [0, 2^64): below fraction * 2^64 on that share
+        bound = exp.Literal.number(int(fraction * 2.0**64))
+        return exp.LT(this=exp.Anonymous(this="HASH", expressions=values), expression=bound)
+
+    def _qualified(self, schema: str | None, name: str) -> str:
+        return (self.quote(schema) + "." if schema else "") + self.quote(name)
+
+    def create_macro(self, schema, name, params, body):
+        # DuckDB scalar macro; parameters are the model's input columns, so column
+        # references in the body bind to them (https://duckdb.org/docs/sql/statements/create_macro)
+        args = ", ".join(self.quote(p) for p in params)
+        return (
+            f"CREATE OR REPLACE MACRO {self._qualified(schema, name)}({args}) AS "
+            f"{self.render(body)}"
+        )
+
+    def drop_macro(self, schema, name):
+        return f"DROP MACRO IF EXISTS {self._qualified(schema, name)}"
+
+    def existing_objects_query(self, schema, view, macro):
+        # information_schema.tables lists every attached database: keep the current one.
+        # Macros live in duckdb_functions() (https://duckdb.org/docs/sql/meta/duckdb_table_functions)
+        q = super().existing_objects_query(schema, view, macro)
+        q = q.where(S.eq(S.col("table_catalog"), exp.CurrentCatalog()), copy=False)
+        if macro is None:
+            return q
+        macros = S.select(
+            [S.alias(S.text("MACRO"), "kind"), S.alias(S.col("function_name"), "name")],
+            exp.Table(this=exp.Anonymous(this="duckdb_functions", expressions=[])),
+            where=S.and_(
+                S.eq(S.col("database_name"), exp.CurrentCatalog()),
+                S.eq(S.col("schema_name"), S.text(schema) if schema else exp.CurrentSchema()),
+                S.eq(exp.Lower(this=S.col("function_name")), S.text(macro.lower())),
+                S.eq(S.col("function_type"), S.text("macro")),
+            ),
+        )
+        return exp.union(q, macros, distinct=False)
+
+    def reserved_objects_query(self, view, macro):
+        # DuckDB looks unqualified names up in the temp catalog, then the database's own
+        # schemas, then the system catalog's main and pg_catalog schemas: a view named
+        # sqlite_master in main would hide the built-in view of that name from every query,
+        # and a macro in main hides a built-in function (https://duckdb.org/docs/sql/statements/set#search_path)
+        def internal(table_fn: str, column: str, name: str) -> exp.Select:
+            return S.select(
+                [S.alias(S.col(column), "name")],
+                exp.Table(this=exp.Anonymous(this=table_fn, expressions=[])),
+                where=S.and_(
+                    S.col("internal"),
+                    S.eq(exp.Lower(this=S.col(column)), S.text(name.lower())),
+                ),
+            )
+
+        parts: list[exp.Select] = [
+            internal("duckdb_views", "view_name", view),
+            internal("duckdb_tables", "table_name", view),
+        ]
+        if macro is not None:
+            parts.append(internal("duckdb_functions", "function_name", macro))
+        query: exp.Query = parts[0]
+        for part in parts[1:]:
+            query = exp.union(query, part, distinct=False)
+        return query
+
+    def file_scan(self, path: str) -> exp.Expression:
+        low = path.lower()
+        if low.endswith((".parquet", ".pq")) or ".parquet" in low:
+            fn = "read_parquet"
+        elif low.endswith((".json", ".ndjson")):
+            fn = "read_json_auto"
+        else:
+            fn = "read_csv_auto"
+        return exp.Table(this=exp.Anonymous(this=fn, expressions=[S.text(path)]))
 
 
-def qualify_source(engine: Engine, source: Source) -> Source:
-    """``source`` with every table name qualified as the engine resolves it now.
-
-    A scoring view resolves an unqualified name in its own schema first (DuckDB), and a
-    stored spec is read again in other sessions: both must name the table the fit read.
-    Table names inside a query are qualified too (not its CTEs or table functions); a
-    relative file path becomes absolute where the engine reads files itself. Names the
-    engine cannot find are left as written (reading them fails with the usual message).
-    """
-    if source.kind == "table":
-        found = engine.resolve_table(split_qualified(source.text))
-        return Source("table", qualified_name(found)) if found else source
-    if source.kind == "file":
-        return Source("file", engine.absolute_path(source.text))
-    tree = engine.dialect.query(source.text).this
-    changed = False
-    for table in table_references(tree):
-        # an unquoted name folds as the engine folds it (PostgreSQL: to lower case)
-        parts = table_parts(normalize_identifiers(table.copy(), engine.dialect.sqlglot_name))
-        found = engine.resolve_table(parts)
-        if found and list(found) != parts:
-            set_table_parts(table, found)
-            changed = True
-    return Source("query", engine.dialect.query_text(tree)) if changed else source
-
-
-def relative_source(engine: Engine, source: Source) -> Source:
-    """``source`` with the engine's current catalog and schema left out of its table names
-    (for SQL printed to run on another engine, where those names mean nothing)."""
-    here = [p.lower() for p in engine.current_location()]
-
-    def shortened(parts: list[str]) -> list[str]:
-        if len(parts) == 3 and parts[0].lower() == here[0]:
-            parts = parts[1:]
-        if len(parts) == 2 and parts[0].lower() == here[1]:
-            parts = parts[1:]
-        return parts
-
-    if source.kind == "table":
-        return Source("table", qualified_name(shortened(split_qualified(source.text))))
-    if source.kind == "file":
-        return source
-    tree = engine.dialect.query(source.text).this
-    changed = False
-    for table in table_references(tree):
-        parts = table_parts(table)
-        short = shortened(parts)
-        if short != parts:
-            set_table_parts(table, short)
-            changed = True
-    return Source("query", engine.dialect.query_text(tree)) if changed else source
-
-
-def open_transaction_error(engine: str, state: str) -> SpecError:
-    """The refusal of a caller's connection that is inside a transaction.
-
-    indb runs statements and transactions of its own; inside the caller's transaction a
-    BEGIN of indb's (or any statement that fails) would abort it, and the caller's later
-    COMMIT would then discard their work without an error.
-    """
-    return SpecError(
-        f"the {engine} connection passed as db= has {state}; indb runs its own statements "
-        "and transactions on it, and a failure among them would abort your transaction "
-        "(your COMMIT would then discard your work). Commit or roll back first, or pass a "
-        "connection with no transaction open; nothing was changed"
-    )
-
+# -- the engine adapter -----------------------------------------------------------------------
 
 #: what to give instead when DuckDB refuses an engine setting's value
 _SETTING_HINTS = {
@@ -635,30 +635,6 @@ def unmasked_columns(columns: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     return out
 
 
-def rows_to_columns(names: Sequence[str], rows: Sequence[Sequence[Any]]) -> dict[str, np.ndarray]:
-    """Column arrays from driver rows, typed like DuckDB's Arrow results.
-
-    Integers become int64 (float64 with NaN when NULLs occur), floats and decimals float64
-    with NaN for NULL, booleans bool, anything else an object array.
-    """
-    out: dict[str, np.ndarray] = {}
-    for i, name in enumerate(names):
-        values = [r[i] for r in rows]
-        kinds = {type(v) for v in values if v is not None}
-        has_null = any(v is None for v in values)
-        if kinds and kinds <= {bool} and not has_null:
-            out[name] = np.array(values, dtype=bool)
-        elif kinds and kinds <= {int} and not has_null:
-            out[name] = np.array(values, dtype=np.int64)
-        elif kinds <= {int, float, Decimal} and not (kinds & {bool}):
-            out[name] = np.array(
-                [math.nan if v is None else float(v) for v in values], dtype=np.float64
-            )
-        else:
-            out[name] = np.array(values, dtype=object)
-    return out
-
-
 def _wrap(err: Exception, sql: str) -> EngineError:
     # The whole message: DuckDB often puts the cause and the fix on later lines (an
     # out-of-memory error names max_temp_directory_size, memory_limit and threads there).
@@ -667,55 +643,7 @@ def _wrap(err: Exception, sql: str) -> EngineError:
     return EngineError(f"DuckDB failed: {msg}", sql=sql)
 
 
-def connect(db: Any = None, *, read_only: bool = False, **settings: Any) -> Engine:
-    """Open an engine from ``db``.
-
-    ``db`` is None (in-memory DuckDB), a DuckDB file path or connection, an :class:`Engine`,
-    a ``postgresql://`` / ``postgres://`` URL or open ``psycopg`` connection (PostgreSQL),
-    ``spark:MASTER`` such as ``spark:local[2]`` (an in-process Spark driver), ``sc://host:port``
-    (a Spark Connect server) or an open ``SparkSession``. ``settings`` (memory_limit,
-    temp_directory, threads) apply to DuckDB only; ``view_kind`` (temporary | persistent
-    scoring views, see :class:`indb.spark.SparkEngine`) to Spark only. ``read_only`` says
-    that nothing will be written: a DuckDB file is then opened read-only (servers and Spark
-    sessions are opened as usual; their permissions are the server's business).
-    """
-    if isinstance(db, Engine):
-        return db
-    module = type(db).__module__
-    low = db.strip().lower() if isinstance(db, str) else ""
-    is_pg = low.startswith(("postgresql://", "postgres://")) or module.startswith("psycopg")
-    is_spark = low.startswith(("spark:", "sc://")) or (
-        module.startswith("pyspark") and type(db).__name__ == "SparkSession"
-    )
-    view_kind = settings.pop("view_kind", None)
-    if view_kind is not None and not is_spark:
-        raise SpecError(f"view_kind={view_kind!r} applies to Spark only")
-    if is_pg or is_spark:
-        given = sorted(k for k, v in settings.items() if v is not None)
-        if given:
-            raise SpecError(
-                f"engine settings {given} apply to DuckDB only; configure "
-                f"{'PostgreSQL' if is_pg else 'Spark'} on the server or session instead"
-            )
-    if is_pg:
-        from indb.postgres import PostgresEngine
-
-        return PostgresEngine(db)
-    if is_spark:
-        from indb.spark import SparkEngine
-
-        if not isinstance(db, str):
-            return SparkEngine(db, view_kind=view_kind)
-        if low.startswith("sc://"):
-            return SparkEngine(remote=db.strip(), view_kind=view_kind)
-        master = db.strip()[len("spark:") :]
-        if not master:
-            raise SpecError(f"database URL {db!r} needs a Spark master, e.g. spark:local[2]")
-        return SparkEngine(master=master, view_kind=view_kind)
-    if isinstance(db, str) and "://" in db:
-        raise SpecError(
-            f"database URL {db!r} names an engine indb does not support; use "
-            "postgresql://..., spark:local[N], sc://host:port, a DuckDB file path, or omit "
-            "--db for an in-memory DuckDB database"
-        )
-    return DuckDBEngine(db, read_only=read_only, **settings)
+def open_engine(db: Any = None, **settings: Any) -> DuckDBEngine:
+    """The engine factory of the backends table: ``db`` is None, a path or a connection;
+    ``settings`` are :class:`DuckDBEngine`'s keyword arguments."""
+    return DuckDBEngine(db, **settings)

@@ -1,0 +1,381 @@
+"""Text and JSON renderings of the command line's outputs, apart from the commands.
+
+``indb.report`` renders one fit; this module renders everything else a command prints:
+the progress lines, the registry tables, a comparison of two versions, the outcome of a
+retrain, where a deployed model lives, and the JSON documents of those commands. Every
+function returns text; printing stays with the commands (``indb.cli``).
+
+Each command's output has a text renderer (``*_text``) and, where the command takes
+``--json``, a JSON one (``*_json``) that returns exactly one document.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as _dt
+import json
+import math
+from collections.abc import Sequence
+from typing import Any
+
+from indb.report import render_json, render_report
+from indb.results import FitResult, IterationRecord
+from indb.retrain import RetrainOutcome
+
+Statements = Sequence[tuple[str, str]]
+
+
+def _fmt_number(value: float, spec: str) -> str:
+    return format(value, spec) if math.isfinite(value) else "n/a"
+
+
+# Scans that are not steps of the main IRLS fit (see IterationRecord.phase).
+_PHASE_LABELS = {"theta": "theta-estimation", "null": "null-model", "sample": "sample-start"}
+
+
+def format_iteration(record: IterationRecord) -> str:
+    """One progress line for one IRLS iteration (written to stderr by ``indb fit``)."""
+    phase = getattr(record, "phase", "fit")
+    label = "iteration" if phase == "fit" else f"{_PHASE_LABELS.get(phase, phase)} iteration"
+    return (
+        f"indb: {label} {record.iteration:>3}"
+        f"  deviance {_fmt_number(record.deviance, '.10g')}"
+        f"  relative change {_fmt_number(record.relative_change, '.3e')}"
+        f"  step halvings {record.step_halvings}"
+        f"  {_fmt_number(record.seconds, '.3f')} s"
+    )
+
+
+def iteration_json(record: IterationRecord) -> str:
+    """One iteration as a single-line JSON object (``--progress-json``; NaN/inf -> null)."""
+    fields = {k: _finite_or_none(v) for k, v in dataclasses.asdict(record).items()}
+    return json.dumps(fields, allow_nan=False, separators=(",", ":"))
+
+
+def _finite_or_none(value: Any) -> Any:
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+def _plain(value: Any) -> Any:
+    """JSON-ready copy: non-finite floats -> null, timestamps -> ISO text, tuples -> lists."""
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, _dt.datetime | _dt.date):
+        return value.isoformat()
+    return _finite_or_none(value)
+
+
+def to_json(value: Any) -> str:
+    """One indented JSON document (non-finite numbers as null, timestamps as ISO text)."""
+    return json.dumps(_plain(value), indent=2, allow_nan=False, default=str)
+
+
+def _num(value: Any, spec: str = ".6g") -> str:
+    if value is None:
+        return "n/a"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, int):
+        return str(value)
+    return _fmt_number(float(value), spec)
+
+
+def _when(value: Any) -> str:
+    if isinstance(value, _dt.datetime):
+        return value.strftime("%Y-%m-%d %H:%M:%S")
+    return "n/a" if value is None else str(value)
+
+
+def _table(headers: Sequence[str], rows: Sequence[Sequence[str]], right: Sequence[int]) -> str:
+    """Columns separated by two spaces; the columns numbered in ``right`` are right-aligned."""
+    widths = [len(h) for h in headers]
+    for row in rows:
+        widths = [max(w, len(cell)) for w, cell in zip(widths, row, strict=True)]
+
+    def line(cells: Sequence[str]) -> str:
+        parts = [
+            c.rjust(w) if i in right else c.ljust(w)
+            for i, (c, w) in enumerate(zip(cells, widths, strict=True))
+        ]
+        return "  ".join(parts).rstrip()
+
+    return "\n".join([line(headers), *(line(r) for r in rows)])
+
+
+def deployment_text(deployment: dict[str, Any], db: str | None) -> str:
+    """Where a written-back fit lives, or why nothing new was recorded (one line)."""
+    name, version = deployment["model"], deployment["version"]
+    if not deployment["created"]:
+        state = "live" if deployment["promoted"] else "held"
+        return (
+            f"Model {name}: same spec and data as version {version} ({state}); nothing new "
+            "recorded (--new-version records one anyway)."
+        )
+    if not deployment["promoted"]:
+        return (
+            f"Model {name}: version {version} recorded but not live; make it live with "
+            f"`indb promote {name} {version} --db {db}`."
+        )
+    macro = f", scoring macro {deployment['macro']}" if deployment.get("macro") else ""
+    return (
+        f"Model {name}: version {version} is live; scoring view {deployment['scoring_view']} "
+        f"(predicted mean in column {deployment['mean_column']}){macro}."
+    )
+
+
+def view_label(model_row: dict[str, Any]) -> str:
+    """A model's scoring view as a reader writes it: ``schema.view`` or ``view``."""
+    schema = model_row.get("view_schema")
+    return f"{schema}.{model_row['view_name']}" if schema else str(model_row["view_name"])
+
+
+def compare_text(cmp: dict[str, Any]) -> str:
+    """Two versions side by side (``Registry.compare``): terms, then the fit statistics."""
+    a, b = cmp["a"], cmp["b"]
+    lines = [f"Model {cmp['model']}: version {a} compared with version {b}", ""]
+    rows = [
+        [
+            t["term"],
+            _num(t["estimate_a"]),
+            _num(t["estimate_b"]),
+            _num(t["change"], ".4g"),
+            _num(t["change_in_se"], ".3f"),
+            _num(t["relative_change"], ".3g"),
+        ]
+        for t in cmp["terms"]
+    ]
+    headers = [
+        "term",
+        f"version {a}",
+        f"version {b}",
+        "change",
+        f"change in SE of v{a}",
+        "relative change",
+    ]
+    lines.append(_table(headers, rows, right=(1, 2, 3, 4, 5)))
+    if cmp["terms_only_in_b"]:
+        lines.append(f"terms only in version {b}: {', '.join(cmp['terms_only_in_b'])}")
+    lines.append("")
+    stats = [
+        ["rows used", *(_num(v) for v in cmp["rows"])],
+        ["deviance", *(_num(v, ".10g") for v in cmp["deviance"])],
+        ["deviance per row", *(_num(v, ".6g") for v in cmp["deviance_per_row"])],
+        ["AIC", *(_num(v, ".10g") for v in cmp["aic"])],
+        ["converged", *(_num(v) for v in cmp["converged"])],
+    ]
+    lines.append(_table(["", f"version {a}", f"version {b}"], stats, right=(1, 2)))
+    return "\n".join(lines)
+
+
+def retrain_text(outcome: RetrainOutcome, db: str | None) -> str:
+    """What a retrain did, its iteration count against the live version's, and the gates."""
+    name, v, prev = outcome.model, outcome.version, outcome.previous_version
+    view = outcome.result.deployment.get("scoring_view") if outcome.result else None
+    failed = [c.gate for c in outcome.checks if not c.passed]
+    if outcome.status == "first":
+        head = f"Model {name}: first version {v} recorded and live; scoring view {view}."
+    elif outcome.status == "promoted":
+        head = f"Model {name}: version {v} promoted, replacing version {prev}; view {view}."
+    elif outcome.status == "unchanged":
+        head = (
+            f"Model {name}: spec and data unchanged; version {v} stays live "
+            "(--force records a new version)."
+        )
+    elif outcome.result is not None and not outcome.result.deployment.get("created", True):
+        keep = f"version {prev} stays live" if prev is not None else "no version is live"
+        head = (
+            f"Model {name}: spec and data match held version {v}, so no new version was "
+            f"recorded; it stays HELD BACK by gate(s) {', '.join(failed)}; {keep}. Promote "
+            f"it anyway with `indb promote {name} {v} --db {db}`."
+        )
+    else:
+        keep = f"version {prev} stays live" if prev is not None else "no version is live"
+        head = (
+            f"Model {name}: version {v} recorded but HELD BACK by gate(s) "
+            f"{', '.join(failed)}; {keep}. Promote it anyway with "
+            f"`indb promote {name} {v} --db {db}`."
+        )
+    if outcome.previous_iterations is None:
+        iters = f"IRLS iterations: {outcome.iterations} (cold start: no live version)."
+    else:
+        iters = (
+            f"IRLS iterations: {outcome.iterations}, warm-started from version {prev} "
+            f"(version {prev} took {outcome.previous_iterations})."
+        )
+    lines = [head, iters]
+    if outcome.checks:
+        rows = [
+            [c.gate, _num(c.value, ".6g"), _num(c.limit, ".6g"), "pass" if c.passed else "FAIL"]
+            for c in outcome.checks
+        ]
+        lines += ["", _table(["gate", "value", "limit", "result"], rows, right=(1, 2))]
+    return "\n".join(lines)
+
+
+# -- one renderer per command output ---------------------------------------------------
+
+
+def fit_text(result: FitResult, db: str | None) -> str:
+    """The report of a fit and, when it was written back, where it now lives."""
+    text = render_report(result)
+    if result.deployment:
+        text += "\n" + deployment_text(result.deployment, db) + "\n"
+    return text
+
+
+def fit_json(result: FitResult) -> str:
+    return render_json(result)
+
+
+def statements_text(statements: Statements, note: str = "") -> str:
+    """SQL statements (``--dry-run``), each under a comment saying what it is for."""
+    text = "".join(f"-- {purpose}\n{sql};\n\n" for purpose, sql in statements)
+    return text + (f"-- {note}\n" if note else "")
+
+
+def statements_json(statements: Statements, note: str = "") -> str:
+    return to_json({"sql": [{"purpose": p, "sql": s} for p, s in statements], "note": note})
+
+
+# (model row of the registry, its versions), as `indb models` lists them
+ModelListing = Sequence[tuple[dict[str, Any], Sequence[Any]]]
+
+
+def models_text(models: ModelListing, db: str) -> str:
+    if not models:
+        return f"No models in the registry of {db}."
+    rows = [
+        [
+            m["model_name"],
+            "none" if m["live_version"] is None else str(m["live_version"]),
+            str(len(vs)),
+            view_label(m),
+        ]
+        for m, vs in models
+    ]
+    return _table(["model", "live version", "versions", "scoring view"], rows, right=(1, 2))
+
+
+def models_json(models: ModelListing) -> str:
+    return to_json(
+        {
+            "models": [
+                {
+                    "model": m["model_name"],
+                    "live_version": m["live_version"],
+                    "versions": len(vs),
+                    "scoring_view": view_label(m),
+                    "macro": m["macro_name"],
+                    "score_source": m["score_source"],
+                    "intervals": m["intervals"],
+                    "created_at": m["created_at"],
+                }
+                for m, vs in models
+            ]
+        }
+    )
+
+
+def versions_text(versions: Sequence[dict[str, Any]]) -> str:
+    rows = [
+        [
+            str(v["version"]),
+            str(v["status"]),
+            _when(v["created_at"]),
+            str(v["family"]),
+            str(v["link"]),
+            _num(v["deviance"], ".10g"),
+            _num(v["n_used"]),
+            _num(v["iterations"]),
+            _num(v["converged"]),
+        ]
+        for v in versions
+    ]
+    headers = [
+        "version",
+        "status",
+        "created (UTC)",
+        "family",
+        "link",
+        "deviance",
+        "rows",
+        "iterations",
+        "converged",
+    ]
+    return _table(headers, rows, right=(0, 5, 6, 7))
+
+
+def versions_json(name: str, versions: Sequence[dict[str, Any]]) -> str:
+    return to_json({"model": name, "versions": versions})
+
+
+def show_text(name: str, version: int, row: dict[str, Any], result: FitResult) -> str:
+    """The stored report of one version under a line saying which version it is."""
+    head = (
+        f"Model {name}, version {version} ({row['status']}), recorded "
+        f"{_when(row['created_at'])} UTC\n\n"
+    )
+    return head + render_report(result)
+
+
+def show_json(name: str, version: int, row: dict[str, Any], result: FitResult) -> str:
+    out = result.to_dict()
+    out.update({"model": name, "version": version, "status": row["status"]})
+    return to_json(out)
+
+
+def compare_json(cmp: dict[str, Any]) -> str:
+    return to_json(cmp)
+
+
+def retrain_json(outcome: RetrainOutcome) -> str:
+    out = outcome.to_dict()
+    if outcome.comparison:
+        out["comparison"] = outcome.comparison
+    return to_json(out)
+
+
+def promote_text(name: str, version: int, previous: int | None, view: str) -> str:
+    was = f" (was version {previous})" if previous is not None else ""
+    return f"Model {name}: version {version} is live{was}; scoring view {view} serves it."
+
+
+def promote_json(name: str, version: int, previous: int | None, view: str) -> str:
+    return to_json(
+        {
+            "model": name,
+            "live_version": version,
+            "previous_live_version": previous,
+            "scoring_view": view,
+        }
+    )
+
+
+def drop_text(name: str, version: int) -> str:
+    return f"Model {name}: version {version} dropped (its registry rows are kept)."
+
+
+def drop_json(name: str, version: int) -> str:
+    return to_json({"model": name, "version": version, "status": "dropped"})
+
+
+def scoring_sql_text(sql: str) -> str:
+    return sql + ";"
+
+
+def scoring_sql_json(
+    name: str, version: int | None, dialect: str, model_row: dict[str, Any], sql: str
+) -> str:
+    return to_json(
+        {
+            "model": name,
+            "version": version,
+            "dialect": dialect,
+            "scoring_view": view_label(model_row),
+            "sql": sql,
+        }
+    )
