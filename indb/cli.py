@@ -16,9 +16,6 @@ Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` a
 from __future__ import annotations
 
 import dataclasses
-import json
-import sys
-import warnings
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
@@ -33,15 +30,18 @@ from indb import writeback
 from indb.api import dry_run as dry_run_model
 from indb.api import fit as fit_model
 from indb.api import registry as open_registry
+from indb.cli_errors import (
+    EXIT_CODES,
+    OneLineErrors,
+    echo_warnings,
+    library_errors,
+    one_line,
+)
 from indb.engines.backends import DIALECT_NAMES, SCORING_DIALECTS, dialect_for
 from indb.engines.base_dialect import Dialect
 from indb.errors import (
-    EngineError,
-    IndbError,
-    NonConvergenceError,
     RegistryError,
     SpecError,
-    UnsupportedError,
 )
 from indb.registry import DEFAULT_SCHEMA, Registry
 from indb.results import FitResult, IterationRecord
@@ -52,16 +52,6 @@ from indb.specfile import SpecFile, load_spec_file
 __all__ = ["main", "EXIT_CODES"]
 
 F = TypeVar("F", bound=Callable[..., Any])
-
-# Most specific class first: the first match decides the exit code.
-EXIT_CODES: tuple[tuple[type[IndbError], int], ...] = (
-    (SpecError, 2),
-    (EngineError, 3),
-    (UnsupportedError, 4),
-    (NonConvergenceError, 5),
-    (RegistryError, 7),
-    (IndbError, 1),
-)
 
 EXIT_EPILOG = f"""\b
 Exit codes (stable; for schedulers and scripts):
@@ -76,58 +66,6 @@ Exit codes (stable; for schedulers and scripts):
   7  registry conflict: unknown model or version, dropping the live version,
      promoting a dropped one
 """
-
-# -- errors -------------------------------------------------------------------------
-
-
-class CommandFailure(click.ClickException):
-    """A library error turned into one stderr line and an exit code."""
-
-    def __init__(self, message: str, exit_code: int) -> None:
-        super().__init__(message)
-        self.exit_code = exit_code
-
-    def show(self, file: Any = None) -> None:
-        click.echo(f"indb: error: {self.message}", err=True)
-
-
-def _one_line(text: str) -> str:
-    parts = [line.strip() for line in text.splitlines() if line.strip()]
-    return " ".join(parts) if parts else "(no message)"
-
-
-def _exit_code(exc: IndbError) -> int:
-    for cls, code in EXIT_CODES:
-        if isinstance(exc, cls):
-            return code
-    return 1
-
-
-@contextmanager
-def _library_errors(quiet: bool) -> Iterator[list[warnings.WarningMessage]]:
-    """Collect warnings raised inside and turn an ``IndbError`` into a ``CommandFailure``."""
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            yield caught
-        except IndbError as exc:
-            _echo_warnings(caught, quiet=quiet, already_shown=())
-            raise CommandFailure(_one_line(str(exc)), _exit_code(exc)) from None
-
-
-def _echo_warnings(
-    caught: Sequence[warnings.WarningMessage], *, quiet: bool, already_shown: Sequence[str]
-) -> None:
-    if quiet:
-        return
-    seen: set[str] = set(already_shown)
-    for w in caught:
-        text = _one_line(str(w.message))
-        if text in seen:
-            continue
-        seen.add(text)
-        click.echo(f"indb: warning: {text}", err=True)
-
 
 # -- progress -----------------------------------------------------------------------
 
@@ -283,7 +221,7 @@ def _emit_result(result: FitResult, as_json: bool, db: str | None) -> None:
 def _shown_warnings(result: FitResult, as_json: bool) -> tuple[str, ...]:
     # The text report lists the fit's warnings itself; JSON carries them too, but stderr
     # is the only place a reader of --json output sees them at once.
-    return () if as_json else tuple(_one_line(w) for w in result.warnings)
+    return () if as_json else tuple(one_line(w) for w in result.warnings)
 
 
 # -- spec files and the registry ------------------------------------------------------------
@@ -340,43 +278,8 @@ def _dialect(name: str) -> Dialect:
 # -- commands -----------------------------------------------------------------------
 
 
-class _OneLineErrors(click.Group):
-    """The command group, with every error as one ``indb: error:`` line on stderr (click's
-    own usage errors too) and, under ``--json``, a JSON error object on stdout."""
-
-    def main(  # type: ignore[override]
-        self, args: Sequence[str] | None = None, *a: Any, standalone_mode: bool = True, **kw: Any
-    ) -> Any:
-        argv = list(sys.argv[1:] if args is None else args)
-        try:
-            code = super().main(argv, *a, standalone_mode=False, **kw)
-        except click.ClickException as exc:
-            code = exc.exit_code
-            message = exc.message if isinstance(exc, CommandFailure) else _usage_message(exc)
-            if "--json" in argv:
-                click.echo(json.dumps({"error": message, "exit_code": code}))
-            click.echo(f"indb: error: {message}", err=True)
-        except click.Abort:
-            code = 1
-            click.echo("indb: error: aborted", err=True)
-        if not standalone_mode:
-            return code
-        sys.exit(code if isinstance(code, int) else 0)
-
-
-def _usage_message(exc: click.ClickException) -> str:
-    """click's usage error as one line, with where to look for the options."""
-    text = _one_line(exc.format_message())
-    ctx = getattr(exc, "ctx", None)
-    if isinstance(exc, click.UsageError) and ctx is not None:
-        # the program is indb however it was started (python -m, a test runner)
-        path = " ".join(["indb", *ctx.command_path.split()[1:]])
-        text += f" (see `{path} --help`)"
-    return text
-
-
 @click.group(
-    cls=_OneLineErrors,
+    cls=OneLineErrors,
     context_settings={"help_option_names": ["-h", "--help"]},
     epilog=EXIT_EPILOG,
 )
@@ -407,7 +310,7 @@ def fit_command(
     SOURCE is a table or view name, a SELECT query, or a Parquet/CSV path (globs allowed).
     With --name the model is also written back into --db (see `indb models`).
     """
-    with _library_errors(quiet) as caught:
+    with library_errors(quiet) as caught:
         deploy = _deploy_arguments(options)
         if deploy:
             creates = not dry_run and Source.parse(source).kind == "file"
@@ -424,7 +327,7 @@ def fit_command(
                 kwargs["progress"] = progress
             result = fit_model(source, **kwargs, **deploy)
     if dry_run:
-        _echo_warnings(caught, quiet=quiet, already_shown=())
+        echo_warnings(caught, quiet=quiet, already_shown=())
         note = (
             f"nothing was written; after the fit, --name writes registry rows and the view "
             f"{deploy['name']} (see `indb scoring-sql` for its SQL)"
@@ -433,7 +336,7 @@ def fit_command(
         )
         _print_sql(statements, as_json, note)
         return
-    _echo_warnings(caught, quiet=quiet, already_shown=_shown_warnings(result, as_json))
+    echo_warnings(caught, quiet=quiet, already_shown=_shown_warnings(result, as_json))
     _emit_result(result, as_json, options["db"])
 
 
@@ -458,7 +361,7 @@ def run_command(
     The spec file's [model] table gives the fit, [deploy] the model name and view, [engine]
     the database; [gates] apply to `indb retrain` only.
     """
-    with _library_errors(quiet) as caught:
+    with library_errors(quiet) as caught:
         spec = _load_spec(spec_path, "run", dry_run=dry_run)
         if dry_run:
             statements = dry_run_model(**spec.model, **spec.engine)
@@ -472,10 +375,10 @@ def run_command(
                 progress=progress,
             )
     if dry_run:
-        _echo_warnings(caught, quiet=quiet, already_shown=())
+        echo_warnings(caught, quiet=quiet, already_shown=())
         _print_sql(statements, as_json, "nothing was written")
         return
-    _echo_warnings(caught, quiet=quiet, already_shown=_shown_warnings(result, as_json))
+    echo_warnings(caught, quiet=quiet, already_shown=_shown_warnings(result, as_json))
     _emit_result(result, as_json, spec.engine.get("db"))
 
 
@@ -507,12 +410,12 @@ def retrain_command(
     Exit code 0: promoted, unchanged or first version; 6: recorded but held back by a gate
     (the scoring view keeps serving the live version). See `indb --help` for the others.
     """
-    with _library_errors(quiet) as caught:
+    with library_errors(quiet) as caught:
         spec = _load_spec(spec_path, "retrain", dry_run=dry_run)
         outcome = retrain(
             spec, dry_run=dry_run, progress=_progress(quiet, as_json, progress_json), force=force
         )
-    _echo_warnings(caught, quiet=quiet, already_shown=())
+    echo_warnings(caught, quiet=quiet, already_shown=())
     if dry_run:
         _print_sql(outcome.sql, as_json, "nothing was written")
         return
@@ -528,7 +431,7 @@ def retrain_command(
 @output_options
 def models_command(db: str, registry_schema: str | None, as_json: bool, quiet: bool) -> None:
     """List the models in the registry: live version, number of versions, scoring view."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with library_errors(quiet), _open_registry(db, registry_schema) as reg:
         models = [(m, reg.versions(m["model_name"])) for m in reg.models()]
     click.echo(R.models_json(models) if as_json else R.models_text(models, db))
 
@@ -542,7 +445,7 @@ def versions_command(
     name: str, db: str, registry_schema: str | None, as_json: bool, quiet: bool
 ) -> None:
     """List the versions of model NAME, one line each."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with library_errors(quiet), _open_registry(db, registry_schema) as reg:
         versions = reg.versions(name)
     click.echo(R.versions_json(name, versions) if as_json else R.versions_text(versions))
 
@@ -564,7 +467,7 @@ def show_command(
     quiet: bool,
 ) -> None:
     """Print the stored report of one version of model NAME (the live one by default)."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with library_errors(quiet), _open_registry(db, registry_schema) as reg:
         if version is None:
             version = reg.model(name)["live_version"]
             if version is None:
@@ -589,7 +492,7 @@ def compare_command(
 ) -> None:
     """Compare versions A and B of model NAME: coefficient changes in standard errors of A,
     deviance per row and rows used."""
-    with _library_errors(quiet), _open_registry(db, registry_schema) as reg:
+    with library_errors(quiet), _open_registry(db, registry_schema) as reg:
         cmp = reg.compare(name, a, b)
     click.echo(R.compare_json(cmp) if as_json else R.compare_text(cmp))
 
@@ -618,7 +521,7 @@ def promote_command(
 
     Promoting an earlier version is the roll-back.
     """
-    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
+    with library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         previous = reg.model(name)["live_version"]
         reg.promote(name, version, view_schema=view_schema)
         view = R.view_label(reg.model(name))
@@ -637,7 +540,7 @@ def drop_command(
 ) -> None:
     """Drop VERSION of model NAME (its rows stay for audit; the live version cannot be
     dropped)."""
-    with _library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
+    with library_errors(quiet), _open_registry(db, registry_schema, writes=True) as reg:
         reg.drop(name, version)
     click.echo(R.drop_json(name, version) if as_json else R.drop_text(name, version))
 
@@ -682,7 +585,7 @@ def scoring_sql_command(
     quiet: bool,
 ) -> None:
     """Print the CREATE VIEW statement that scores with model NAME, to run elsewhere."""
-    with _library_errors(quiet):
+    with library_errors(quiet):
         target = _dialect(dialect)
         with _open_registry(db, registry_schema) as reg:
             row = reg.model(name)
@@ -722,9 +625,9 @@ def demo_command(rows: int | None, out_dir: str, quick: bool) -> None:
     """Run the worked example on invented data and write its outputs to DIR."""
     from indb import demo  # imported here: the demo pulls in more than `indb fit` needs
 
-    with _library_errors(quiet=False) as caught:
+    with library_errors(quiet=False) as caught:
         demo.run(quick=quick, out_dir=out_dir, rows=rows, echo=click.echo)
-    _echo_warnings(caught, quiet=False, already_shown=())
+    echo_warnings(caught, quiet=False, already_shown=())
 
 
 if __name__ == "__main__":  # pragma: no cover

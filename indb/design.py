@@ -94,7 +94,7 @@ class Scaling:
     ``coef_factor`` = factor^lambda, and the offset is multiplied by it too), except the
     intercept, which also absorbs the shift (identity link: -factor * shift) and, for a log
     link, ln(factor) (``log_shift``). Without an intercept neither can be absorbed, so the
-    fitter then leaves the response alone (see :func:`indb.fitter` ``_response_scaling``).
+    fitter then leaves the response alone (see :func:`indb.magnitudes.response_scaling`).
     """
 
     shift: float = 0.0

@@ -1,4 +1,4 @@
-"""Solver side of the log-link scan (:func:`indb.plan.log_scan_query`): numpy only.
+"""Solver side of the log-link scan (:func:`indb.plan.log_scan.log_scan_query`): numpy only.
 
 With a log link, V(mu) = mu^p and factor terms that shift eta by a constant g_c per cell,
 mu = e^(g_c) m with m = e^t for the rest of eta, t = off + x'b. Every per-row weight of an
@@ -17,7 +17,8 @@ scan sums powers of m per cell and the cell factors are multiplied in here:
 For Poisson (p = 1) R_c and for gamma (p = 2) G_c do not depend on the coefficients: the
 first scan's values are kept (:class:`LogCache`) and later scans leave those sums out.
 Splitting the deviance into sums cancels digits when the model fits very closely; the
-fitter checks :attr:`LogSums.digits_lost` and returns to per-row deviances past a limit.
+IRLS loop (:mod:`indb.irls`) checks :attr:`LogSums.digits_lost` and returns to per-row
+deviances past a limit.
 """
 
 from __future__ import annotations
@@ -29,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from indb.design import Design, cell_columns, column_groups
-from indb.solver import Sums, _f, _in_cell_order, assemble
+from indb.solver import Sums, assemble, in_cell_order, zero_nulls
 
 #: digits the split deviance or Pearson sum may lose before the fitter stops using it
 #: (relative error about 10^(digits - 16); 10^-10 still leaves the convergence test, at a
@@ -37,7 +38,7 @@ from indb.solver import Sums, _f, _in_cell_order, assemble
 MAX_DIGITS_LOST = 6.0
 
 
-#: plan.log_scan_query's constant sums (offsets enter as u = off - the offset's mean)
+#: plan.log_scan.log_scan_query's constant sums (offsets enter as u = off - the offset's mean)
 CONSTANTS = ("h", "cy", "cw", "co", "cp", "n1", "n2", "noff")
 
 
@@ -48,7 +49,7 @@ class LogCache:
     keys: tuple[np.ndarray, ...]  # the cells' level codes per factor, in cell order
     gram: dict[str, np.ndarray]  # s_a_b per cell (kept for gamma: constant there)
     resp: dict[str, np.ndarray]  # r_a per cell (kept for Poisson: constant there)
-    consts: dict[str, float]  # CONSTANTS (see plan.log_scan_query)
+    consts: dict[str, float]  # CONSTANTS (see plan.log_scan.log_scan_query)
     off_center: float  # the c of u = off - c in those sums
 
 
@@ -79,15 +80,15 @@ def assemble_log_scan(
 ) -> LogSums:
     """X'WX, X'Wz, deviance and Pearson chi-squared at ``beta`` from one log-link scan
     (``off_center``: the c the first scan's constants took the offset about)."""
-    cells, codes = _in_cell_order(design, cells)
+    cells, codes = in_cell_order(design, cells)
     keys = tuple(codes)
     m = len(design.values)
     pairs = [(a, b) for a in range(m) for b in range(a, m)]
     if cache is None:
         cache = LogCache(
             keys=keys,
-            gram={f"s_{a}_{b}": _f(cells[f"s_{a}_{b}"]) for a, b in pairs},
-            resp={f"r_{a}": _f(cells[f"r_{a}"]) for a in range(m)},
+            gram={f"s_{a}_{b}": zero_nulls(cells[f"s_{a}_{b}"]) for a, b in pairs},
+            resp={f"r_{a}": zero_nulls(cells[f"r_{a}"]) for a in range(m)},
             consts=_constants(cells),
             off_center=off_center,
         )
@@ -95,8 +96,8 @@ def assemble_log_scan(
         np.array_equal(a, b) for a, b in zip(keys, cache.keys, strict=True)
     ):
         raise ValueError("the cells of this scan differ from the first scan's")
-    gram = cache.gram if "s_0_0" not in cells else {k: _f(cells[k]) for k in cache.gram}
-    resp = cache.resp if "r_0" not in cells else {k: _f(cells[k]) for k in cache.resp}
+    gram = cache.gram if "s_0_0" not in cells else {k: zero_nulls(cells[k]) for k in cache.gram}
+    resp = cache.resp if "r_0" not in cells else {k: zero_nulls(cells[k]) for k in cache.resp}
     nc = len(cells["n"])
     G = np.zeros((nc, m, m))
     for a, b in pairs:
@@ -110,7 +111,11 @@ def assemble_log_scan(
         t = e2[:, None] * (np.einsum("cab,b->ca", G, bnum) + (gam[:, None] - 1.0) * g0)
         t += e1[:, None] * R
         pear_terms = np.array(
-            [(e0 * _f(cells["pq"])).sum(), -2.0 * (e1 * R[:, 0]).sum(), (e2 * G[:, 0, 0]).sum()]
+            [
+                (e0 * zero_nulls(cells["pq"])).sum(),
+                -2.0 * (e1 * R[:, 0]).sum(),
+                (e2 * G[:, 0, 0]).sum(),
+            ]
         )
         # t = u + (b_0 + c) + sum_a b_a v_a: the intercept's share taken about c too
         bshift = bnum.copy()
@@ -123,7 +128,7 @@ def assemble_log_scan(
     for a in range(m):
         scaled[f"t_{a}"] = t[:, a]
     zero = np.zeros(nc)
-    scaled.update(dev=zero, pear=zero, bad=_f(cells["bad"]), n=cells["n"], nw=cells["nw"])
+    scaled.update(dev=zero, pear=zero, bad=zero_nulls(cells["bad"]), n=cells["n"], nw=cells["nw"])
     sums = assemble(design, scaled, codes=codes)
     deviance, pearson = float(dev_terms.sum()), float(pear_terms.sum())
     finite = (
@@ -144,7 +149,7 @@ def assemble_log_scan(
 def _constants(cells: dict[str, np.ndarray]) -> dict[str, float]:
     """The first scan's constant sums; without an offset the scan leaves out those that
     only an offset makes differ: co = cp = noff = 0, n1 = cy, n2 = cw."""
-    out = {k: float(_f(cells[k]).sum()) for k in CONSTANTS if k in cells}
+    out = {k: float(zero_nulls(cells[k]).sum()) for k in CONSTANTS if k in cells}
     if "n1" not in out:
         out.update(co=0.0, cp=0.0, noff=0.0, n1=out["cy"], n2=out["cw"])
     return out

@@ -24,7 +24,7 @@ from indb.normal_eq import (
     condition_number,
     solve,
 )
-from indb.plan import MAX_CELL_JOIN
+from indb.plan.irls_scan import MAX_CELL_JOIN
 
 __all__ = [
     "ALIAS_TOL",
@@ -35,11 +35,14 @@ __all__ = [
     "back_transform",
     "check_size",
     "condition_number",
+    "dispersion",
+    "in_cell_order",
     "original_scale",
     "solve",
     "standardize",
     "step_in_se",
     "wald",
+    "zero_nulls",
 ]
 
 
@@ -88,7 +91,7 @@ def _term_name(design: Design, g: ColumnGroup) -> str:
     return repr(term.split("=")[0] if "=" in term else term)
 
 
-def _in_cell_order(
+def in_cell_order(
     design: Design, cells: dict[str, np.ndarray]
 ) -> tuple[dict[str, np.ndarray], list[np.ndarray]]:
     """The grouped rows sorted by cell, and each factor's level codes in that order.
@@ -124,9 +127,9 @@ def assemble(
     of column groups (never a cells x p indicator matrix).
 
     ``codes``: the cells' level codes when ``cells`` are already in cell order (as
-    :func:`_in_cell_order` returns them)."""
+    :func:`in_cell_order` returns them)."""
     if codes is None:
-        cells, codes = _in_cell_order(design, cells)
+        cells, codes = in_cell_order(design, cells)
     rows = len(cells["n"])
     p = design.p
     groups = column_groups(design)
@@ -142,12 +145,14 @@ def assemble(
     for ga, g in enumerate(groups):
         ia = where[ga]
         has_a = ia >= 0
-        xtwz += np.bincount(ia[has_a], weights=_f(cells[f"t_{g.value}"])[has_a], minlength=p)
+        xtwz += np.bincount(
+            ia[has_a], weights=zero_nulls(cells[f"t_{g.value}"])[has_a], minlength=p
+        )
         for gb in range(ga, len(groups)):
             h = groups[gb]
             ib = where[gb]
             lo, hi = min(g.value, h.value), max(g.value, h.value)
-            s = _f(cells[f"s_{lo}_{hi}"])
+            s = zero_nulls(cells[f"s_{lo}_{hi}"])
             i, j, v = _block_entries(g, h, ia, ib, s, p)
             parts_i.append(i)
             parts_j.append(j)
@@ -163,15 +168,15 @@ def assemble(
     return Sums(
         xtwx=xtwx,
         xtwz=xtwz,
-        deviance=float(_f(cells["dev"]).sum()),
-        pearson=float(_f(cells["pear"]).sum()),
-        bad=int(_f(cells["bad"]).sum()),
-        n=int(_f(cells["n"]).sum()),
-        n_weighted=float(_f(cells["nw"]).sum()),
-        extras={k: float(_f(cells[k]).sum()) for k in extra},
+        deviance=float(zero_nulls(cells["dev"]).sum()),
+        pearson=float(zero_nulls(cells["pear"]).sum()),
+        bad=int(zero_nulls(cells["bad"]).sum()),
+        n=int(zero_nulls(cells["n"]).sum()),
+        n_weighted=float(zero_nulls(cells["nw"]).sum()),
+        extras={k: float(zero_nulls(cells[k]).sum()) for k in extra},
         cells=rows,
         # the next scan joins a table of the cells' effects when there are few enough
-        # (plan.MAX_CELL_JOIN), one table per factor set otherwise
+        # (plan.irls_scan.MAX_CELL_JOIN), one table per factor set otherwise
         cell_keys=(
             list(zip(*(cells[f.alias].tolist() for f in design.factors), strict=True))
             if design.factors and rows <= MAX_CELL_JOIN
@@ -204,7 +209,8 @@ def _block_entries(
     return partner[hit], hit, sums[hit]
 
 
-def _f(a: np.ndarray) -> np.ndarray:
+def zero_nulls(a: np.ndarray) -> np.ndarray:
+    """A fetched column of sums as floats, with NULL (a SUM over no rows) as 0."""
     return np.nan_to_num(np.asarray(a, dtype=float), nan=0.0)
 
 
@@ -266,6 +272,14 @@ def step_in_se(old: np.ndarray, new: np.ndarray, inv_info: InverseInfo, dispersi
     if not ok.any():
         return 0.0
     return float(np.max(np.abs(new[ok] - old[ok]) / np.sqrt(var[ok])))
+
+
+def dispersion(pearson: float, df_resid: float, fixed: bool) -> float:
+    """The dispersion phi: 1 where the family fixes it (``fixed``), otherwise Pearson's
+    chi-squared over the residual degrees of freedom (NaN when none are left)."""
+    if fixed:
+        return 1.0
+    return pearson / df_resid if df_resid > 0 else math.nan
 
 
 def relative_change(new: float, old: float) -> float:

@@ -23,8 +23,8 @@ from indb import sqlexpr as S
 from indb.engines.backends import dialect_for
 from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError
-from indb.plan import spline_basis_sql
 from indb.results import STORED_COVARIANCE_MAX_TERMS, FitResult
+from indb.splines import spline_basis_sql
 from indb.sqlexpr import Expr
 
 SRC = "indb_src"

@@ -18,7 +18,7 @@ from numpy.testing import assert_allclose
 from reference_cases import design_matrix, duckdb_table, fair_rated
 
 import indb
-from indb import plan
+from indb import irls
 
 CASES = {
     # name: (indb options, statsmodels family, response column)
@@ -55,17 +55,17 @@ def _fits(fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch, **opts):
     """The same fit twice: with the log-link scan, and with it switched off."""
     con = duckdb_table(fair, "fair")
     calls: list[int] = []
-    real = plan.log_scan_query
+    real = irls.log_scan_query
 
     def counted(*args, **kwargs):
         calls.append(1)
         return real(*args, **kwargs)
 
-    monkeypatch.setattr(plan, "log_scan_query", counted)
+    monkeypatch.setattr(irls, "log_scan_query", counted)
     common = dict(db=con, tol=1e-12, compress="never", sample_start="never", **opts)
     fast = indb.fit("fair", **common)
     used = len(calls)
-    monkeypatch.setattr(plan, "log_scan_applies", lambda ctx, design: False)
+    monkeypatch.setattr(irls, "log_scan_applies", lambda ctx, design: False)
     per_row = indb.fit("fair", **common)
     return fast, per_row, used
 

@@ -28,7 +28,7 @@ from scipy import linalg, sparse
 from scipy.sparse import linalg as splinalg
 
 import indb
-from indb import fitter, normal_eq, solver
+from indb import inference, normal_eq, solver
 from indb.api import scoring_sql
 from indb.cli import main
 from indb.engines.duckdb import DuckDBEngine
@@ -398,7 +398,7 @@ def test_covariance_matrix_only_up_to_its_limit(monkeypatch):
     frame = _book(40, 2_000, seed=12)
     con = duckdb_table(frame, "book")
     full = _fit(con)
-    monkeypatch.setattr(fitter, "COVARIANCE_MAX_TERMS", 20)
+    monkeypatch.setattr(inference, "COVARIANCE_MAX_TERMS", 20)
     small = _fit(con)
     assert full.covariance is not None and small.covariance is None
     # the standard errors come from the same diagonal either way

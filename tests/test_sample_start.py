@@ -18,7 +18,7 @@ from numpy.testing import assert_allclose
 from reference_cases import design_matrix, duckdb_table, fair_rated
 
 import indb
-from indb import fitter
+from indb import sample_start
 from indb import sqlexpr as S
 from indb.engines.base_dialect import Dialect
 from indb.engines.duckdb import DuckDBDialect
@@ -32,7 +32,7 @@ def fair() -> pd.DataFrame:
 
 @pytest.fixture
 def small_sample(monkeypatch: pytest.MonkeyPatch) -> int:
-    monkeypatch.setattr(fitter, "SAMPLE_START_ROWS", 800)
+    monkeypatch.setattr(sample_start, "SAMPLE_START_ROWS", 800)
     return 800
 
 
@@ -103,7 +103,7 @@ def test_a_sample_missing_levels_still_starts_the_fit(
 ) -> None:
     # about 550 rows (9%) leave the 7-respondent cell rating 1 x religious 4 empty or nearly
     # so: its coefficient starts at 0 (aliased, or a standard error above SAMPLE_MAX_SE)
-    monkeypatch.setattr(fitter, "SAMPLE_START_ROWS", 800)
+    monkeypatch.setattr(sample_start, "SAMPLE_START_ROWS", 800)
     con = duckdb_table(fair, "fair")
     opts = dict(
         db=con,
@@ -124,7 +124,7 @@ def test_a_sample_missing_levels_still_starts_the_fit(
 def test_a_sample_too_small_for_its_coefficients_is_not_used(
     fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    monkeypatch.setattr(fitter, "SAMPLE_START_ROWS", 40)
+    monkeypatch.setattr(sample_start, "SAMPLE_START_ROWS", 40)
     con = duckdb_table(fair, "fair")
     res = indb.fit(
         "fair",
@@ -145,7 +145,7 @@ def test_a_sample_too_small_for_its_coefficients_is_not_used(
 def test_auto_skips_small_tables_and_the_compressed_route(fair: pd.DataFrame) -> None:
     con = duckdb_table(fair, "fair")
     small = indb.fit("fair", "had", "binomial", db=con, predictors=["age", "educ"])
-    assert fair.shape[0] < fitter.SAMPLE_START_MIN_ROWS
+    assert fair.shape[0] < sample_start.SAMPLE_START_MIN_ROWS
     assert "sample" not in small.path
     folded = indb.fit(
         "fair",

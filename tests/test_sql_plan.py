@@ -30,12 +30,13 @@ from scipy import special, stats
 from sqlglot import exp
 
 import indb
-from indb import plan as P
 from indb import sqlexpr as S
 from indb.design import Factor, build_design, plan_values, resolve_inputs
 from indb.engines.duckdb import DuckDBDialect
 from indb.families import make_family
 from indb.links import make_link
+from indb.plan.context import PlanContext
+from indb.plan.irls_scan import gram_query
 from indb.spec import ModelSpec
 
 GOLDEN = Path(__file__).parent / "golden"
@@ -229,7 +230,7 @@ def test_parquet_file_is_scanned_in_place(tmp_path: Path) -> None:
 # Golden SQL: the iteration query of a small fixed spec
 # ---------------------------------------------------------------------------------------------
 GOLDEN_HEADER = """\
--- Golden snapshot of indb.plan.gram_query rendered for DuckDB ({what}).
+-- Golden snapshot of indb.plan.irls_scan.gram_query rendered for DuckDB ({what}).
 -- Spec: poisson, log link, response claims, offset ln(exposure); numeric age (centre 40,
 -- scale 10) and power (centre 6, scale 2); categorical region with levels East, North, West
 -- and reference North. Stored pretty-printed by sqlglot; the test checks that this text
@@ -238,7 +239,7 @@ GOLDEN_HEADER = """\
 """
 
 
-def _golden_context() -> tuple[P.PlanContext, Any]:
+def _golden_context() -> tuple[PlanContext, Any]:
     spec = ModelSpec.build("claims_table", "claims", "poisson", offset="ln(exposure)")
     columns = [
         ("claims", "BIGINT"),
@@ -264,7 +265,7 @@ def _golden_context() -> tuple[P.PlanContext, Any]:
     )
     design = build_design(inputs, True, values, (region,), {})
     assert design.terms == ["intercept", "age", "power", "region=East", "region=West"]
-    return P.PlanContext(spec, inputs, dialect), design
+    return PlanContext(spec, inputs, dialect), design
 
 
 def _check_golden(name: str, what: str, sql: str) -> None:
@@ -283,13 +284,13 @@ def _check_golden(name: str, what: str, sql: str) -> None:
 def test_golden_iteration_query() -> None:
     ctx, design = _golden_context()
     beta = np.array([-2.5, 0.125, -0.25, 0.5, 0.75])  # standardized, exactly representable
-    sql = ctx.dialect.render(P.gram_query(ctx, design, beta, ybar=0.125))
+    sql = ctx.dialect.render(gram_query(ctx, design, beta, ybar=0.125))
     _check_golden("duckdb_gram_query.sql", "iteration query, fixed coefficients", sql)
 
 
 def test_golden_start_query() -> None:
     ctx, design = _golden_context()
-    sql = ctx.dialect.render(P.gram_query(ctx, design, None, ybar=0.125))
+    sql = ctx.dialect.render(gram_query(ctx, design, None, ybar=0.125))
     _check_golden("duckdb_gram_start_query.sql", "first scan, beta=None, ybar 0.125", sql)
 
 
@@ -302,7 +303,7 @@ def test_golden_query_runs_on_duckdb(con: duckdb.DuckDBPyConnection) -> None:
     ctx, design = _golden_context()
     beta = np.array([-2.5, 0.125, -0.25, 0.5, 0.75])
     for b in (beta, None):
-        sql = ctx.dialect.render(P.gram_query(ctx, design, b, ybar=0.125))
+        sql = ctx.dialect.render(gram_query(ctx, design, b, ybar=0.125))
         assert con.execute(sql).fetchall() == []  # grouped by region: no rows, no groups
 
 
@@ -586,6 +587,6 @@ def test_plan_has_stable_text() -> None:
     # Generated SQL uses stable aliases (no counters): two renders are identical.
     ctx, design = _golden_context()
     beta = np.array([-2.5, 0.125, -0.25, 0.5, 0.75])
-    a = ctx.dialect.render(P.gram_query(ctx, design, beta, ybar=0.125))
-    b = ctx.dialect.render(P.gram_query(ctx, design, beta.copy(), ybar=0.125))
+    a = ctx.dialect.render(gram_query(ctx, design, beta, ybar=0.125))
+    b = ctx.dialect.render(gram_query(ctx, design, beta.copy(), ybar=0.125))
     assert a == b

@@ -142,9 +142,9 @@ def test_sample_start_on_each_engine(loader: Loader, monkeypatch: pytest.MonkeyP
     # statsmodels.datasets.fair (6366 respondents): the sample start's hashed pick (each
     # engine's own hash function) and temporary table, then IRLS on the whole table; the
     # answer is statsmodels' GLM (test-only oracle) whatever rows the hash picked
-    from indb import fitter
+    from indb import sample_start
 
-    monkeypatch.setattr(fitter, "SAMPLE_START_ROWS", 1000)
+    monkeypatch.setattr(sample_start, "SAMPLE_START_ROWS", 1000)
     d = smd.fair.load_pandas().data
     frame = pd.DataFrame(
         {

@@ -1,4 +1,4 @@
--- Golden snapshot of indb.plan.gram_query rendered for DuckDB (first scan, beta=None, ybar 0.125).
+-- Golden snapshot of indb.plan.irls_scan.gram_query rendered for DuckDB (first scan, beta=None, ybar 0.125).
 -- Spec: poisson, log link, response claims, offset ln(exposure); numeric age (centre 40,
 -- scale 10) and power (centre 6, scale 2); categorical region with levels East, North, West
 -- and reference North. Stored pretty-printed by sqlglot; the test checks that this text

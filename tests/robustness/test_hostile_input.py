@@ -969,17 +969,18 @@ def test_compression_sample_with_predictors_named_like_its_counts(
     # compress="auto" decides from a sample scan that groups the key columns next to a row
     # count; predictors named c, d, s must stay the user's columns. Checked on the plan
     # itself (auto only samples from 50,000 rows): 32 rows, distinct (c, d, s) counted by DuckDB.
-    from indb import plan as P
     from indb.design import resolve_inputs
     from indb.engines.duckdb import DuckDBDialect
+    from indb.plan.context import PlanContext
+    from indb.plan.fold import sample_distinct_query
     from indb.spec import ModelSpec
 
     con.execute("CREATE TABLE cds AS SELECT GRADE, PSI AS c, TUCE % 3 AS d, 1.0 AS s FROM spector")
     spec = ModelSpec.build("cds", "GRADE", "binomial", compress="auto")
     d = DuckDBDialect()
     cols = [(r[0], r[1]) for r in con.execute("DESCRIBE cds").fetchall()]
-    ctx = P.PlanContext(spec, resolve_inputs(spec, cols, d.type_kind, d.sqlglot_name), d)
-    got = con.execute(d.render(P.sample_distinct_query(ctx))).fetchone()
+    ctx = PlanContext(spec, resolve_inputs(spec, cols, d.type_kind, d.sqlglot_name), d)
+    got = con.execute(d.render(sample_distinct_query(ctx))).fetchone()
     distinct = con.execute("SELECT count(*) FROM (SELECT DISTINCT c, d, s FROM cds)").fetchone()
     assert got == (distinct[0], 32)
 

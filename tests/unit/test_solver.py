@@ -134,7 +134,7 @@ def test_step_in_se_and_relative_change() -> None:
 
 
 def _nb_sums(y: np.ndarray, mu: np.ndarray, theta: float) -> tuple[float, float]:
-    """The theta scan's sums a and b (indb.plan.theta_query's definitions) in numpy."""
+    """The theta scan's sums a and b (indb.plan.irls_scan.theta_query's definitions) in numpy."""
     tm = theta + mu
     a = float(np.sum(np.log(tm) + (y + theta) / tm))
     b = float(np.sum(1.0 / tm + (mu - y) / tm**2))

@@ -1,0 +1,383 @@
+"""The IRLS loop: one aggregate scan per iteration, step-halving, the convergence test."""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from indb import logsums, solver
+from indb.design import Design, Scaling
+from indb.errors import NondeterministicSourceError, SpecError
+from indb.families import Family
+from indb.fitrun import FitRun
+from indb.nullmodel import NullTrack
+from indb.plan.context import PlanContext
+from indb.plan.irls_scan import gram_query
+from indb.plan.log_scan import log_scan_applies, log_scan_query
+from indb.spec import ModelSpec
+from indb.sqlexpr import Expr
+
+MAX_HALVINGS = 30
+# halvings (step 1/4) after which a rise too small for the convergence test ends IRLS
+STALL_HALVINGS = 2
+
+
+@dataclass(frozen=True)
+class IrlsState:
+    """Where IRLS stopped: the last scanned coefficients, that scan's sums and update."""
+
+    beta: np.ndarray
+    sums: solver.Sums
+    solution: solver.Solution
+    converged: bool
+    iterations: int
+    #: stopped early: step-halving could not lower the deviance measurably (see irls)
+    stalled: bool = False
+
+
+def _fallback_beta(ctx: PlanContext, design: Design, ybar: float) -> np.ndarray:
+    """Intercept-only coefficients g(ybar): where a failing first step halves toward."""
+    beta = np.zeros(design.p)
+    if design.intercept:
+        link = ctx.spec.link
+        mu = min(max(ybar, 1e-6), 1 - 1e-6) if ctx.spec.family.unit_mean else ybar
+        with np.errstate(all="ignore"):
+            g = float(link.link(np.array([mu]))[0])
+        beta[0] = g if math.isfinite(g) else 0.0
+    return beta
+
+
+def irls(
+    ctx: PlanContext,
+    design: Design,
+    run: FitRun,
+    ybar: float,
+    *,
+    start: np.ndarray | None = None,
+    null_mu: Expr | None = None,
+    null_track: NullTrack | None = None,
+    off_mean: float = 0.0,
+) -> tuple[IrlsState, float | None]:
+    """Iterate scans until the deviance settles and the next step is negligible.
+
+    Returns the state at the last scanned coefficients and the null deviance: from the
+    first scan when ``null_mu`` (a per-row null mean) is given, or from ``null_track`` (the
+    intercept-only model with the offset, iterated in the same scans) when it converged.
+    """
+    loop = IrlsSolver(
+        ctx, design, run, ybar, null_mu=null_mu, null_track=null_track, off_mean=off_mean
+    )
+    return loop.fit(start)
+
+
+class IrlsSolver:
+    """IRLS on one context and design, the loop's state kept as fields.
+
+    :meth:`fit` runs the steps in this order:
+
+    1. :meth:`start`: one scan at the family's starting means and the first solve, or the
+       coefficients given;
+    2. per iteration, :meth:`step`: :meth:`scan_accepted` scans at ``beta``, halving the
+       step toward ``beta_prev`` while a mean is invalid or the deviance rises (or marks a
+       stall, :meth:`finish_stalled`; when halving fails, :meth:`check_repeatable` first
+       rules out a source whose values change between reads); the update is solved; the
+       loop ends when the deviance has settled and :meth:`step_size` of the next step is
+       negligible.
+
+    :meth:`scan` is one query: the log-link scan where it applies (:meth:`log_scan_sums`),
+    else the IRLS scan (:meth:`gram_scan_sums`); the null model rides along in either. Each
+    scan's row counts are checked against the profile's
+    (:meth:`indb.fitrun.FitRun.check_rows`).
+    """
+
+    #: the coefficients the next scan reads, and the last accepted ones (halving goes there)
+    beta: np.ndarray
+    beta_prev: np.ndarray
+
+    def __init__(
+        self,
+        ctx: PlanContext,
+        design: Design,
+        run: FitRun,
+        ybar: float,
+        *,
+        null_mu: Expr | None = None,
+        null_track: NullTrack | None = None,
+        off_mean: float = 0.0,
+    ) -> None:
+        self.ctx, self.design, self.run, self.ybar = ctx, design, run, ybar
+        self.spec = ctx.spec
+        self.null_mu = null_mu
+        self.null_track = null_track
+        # what one scan hands the next
+        self.cells: list[tuple[str, ...]] | None = None
+        self.null_dev: float | None = None
+        # the log-link scan (no join to factor effects; plan.log_scan.log_scan_query) where
+        # it applies
+        self.log_scan = log_scan_applies(ctx, design)
+        self.log_cache: logsums.LogCache | None = None
+        self.power = ctx.spec.family.variance_power
+        self.off_center = off_mean if math.isfinite(off_mean) else 0.0
+        # Converged when the deviance settles AND the next Newton step is statistically
+        # invisible: with linear convergence (non-canonical links) a small deviance change alone
+        # can leave coefficients ~1e-4 standard errors from the optimum.
+        self.step_tol = max(math.sqrt(self.spec.tol), 1e-7)
+        # the loop
+        self.dev_old = math.inf
+        self.sums: solver.Sums | None = None
+        self.sums_prev: solver.Sums | None = None
+        self.sol: solver.Solution | None = None
+        self.budget = self.spec.max_iter
+        self.iterations = 0
+        self.converged = False
+        self.stalled = False
+
+    # -- the loop ------------------------------------------------------------------------------
+
+    def fit(self, start: np.ndarray | None = None) -> tuple[IrlsState, float | None]:
+        """Run IRLS from ``start`` (None: the family's starting means); see :func:`irls`."""
+        self.start(start)
+        for _ in range(max(self.budget, 0)):
+            if self.step():
+                break
+        assert self.sol is not None
+        null_dev = self.null_dev
+        if self.null_track is not None and self.null_track.done:
+            null_dev = self.null_track.deviance
+        return IrlsState(
+            beta=self.beta,
+            sums=self.sums,
+            solution=self.sol,
+            converged=self.converged,
+            iterations=self.iterations,
+            stalled=self.stalled and not self.converged,
+        ), null_dev
+
+    def start(self, start: np.ndarray | None) -> None:
+        """The first coefficients: solved from a scan at the starting means, or given."""
+        spec = self.spec
+        t0 = time.perf_counter()
+        if start is None:
+            sums = self.scan(None)
+            if sums.bad:
+                raise SpecError(
+                    f"cannot find valid starting values for family {spec.family.name!r} with "
+                    f"link {spec.link.describe()!r} ({sums.bad} rows give an invalid mean); "
+                    "try another link or starting values"
+                )
+            self.sums = sums
+            self.beta_prev = _fallback_beta(self.ctx, self.design, self.ybar)
+            self.run.record(sums.deviance, math.nan, 0, time.perf_counter() - t0)
+            self.sol = solver.solve(sums.xtwx, sums.xtwz)
+            self.beta = self.sol.beta
+            self.budget = spec.max_iter - 1  # the start scan counts as an iteration
+        else:
+            self.beta = np.asarray(start, float)
+            self.beta_prev = self.beta.copy()
+            self.budget = spec.max_iter
+
+    def step(self) -> bool:
+        """One iteration: an accepted scan, its update, the convergence test. True: stop."""
+        self.iterations += 1
+        t0 = time.perf_counter()
+        halvings = self.scan_accepted()
+        if self.stalled:
+            self.finish_stalled()
+            return True
+        sums = self.sums
+        assert sums is not None
+        self.sums_prev = sums
+        change = (
+            solver.relative_change(sums.deviance, self.dev_old)
+            if math.isfinite(self.dev_old)
+            else math.inf
+        )
+        self.run.record(sums.deviance, change, halvings, time.perf_counter() - t0)
+        self.sol = solver.solve(sums.xtwx, sums.xtwz)
+        if change < self.spec.tol and self.step_size() < self.step_tol:
+            self.converged = True
+            return True
+        self.dev_old = sums.deviance
+        self.beta_prev = self.beta
+        self.beta = self.sol.beta
+        return False
+
+    def scan_accepted(self) -> int:
+        """Scan at ``beta``, halving the step toward ``beta_prev`` and scanning again while
+        a mean is invalid or the deviance rises; sets ``stalled`` when the rise is too small
+        to see. Returns the halvings."""
+        spec = self.spec
+        halvings = 0
+        while True:
+            sums = self.sums = self.scan(self.beta)
+            valid = sums.bad == 0 and math.isfinite(sums.deviance)
+            # A rise is relative to the deviance only: deviance terms are >= 0, so their
+            # sum's rounding error is a small multiple of eps times the sum (1e-9 covers
+            # parallel partial sums over ~10^7 rows). No absolute slack: at a boundary MLE
+            # the deviance itself falls towards 0 (~5e-9 after 20 iterations on 4 rows),
+            # where a fixed 1e-12 accepted steps that raised it, over and over.
+            rises = math.isfinite(self.dev_old) and sums.deviance > self.dev_old * (1 + 1e-9)
+            if valid and not rises:
+                return halvings
+            if (
+                valid
+                and halvings >= STALL_HALVINGS
+                and solver.relative_change(sums.deviance, self.dev_old) < spec.tol
+            ):
+                # Flat: a quarter of the Newton step still does not lower the deviance and
+                # the rise is below what the convergence test can see. Along the step the
+                # deviance is ~ D0 - a t + b t^2; had its minimum t* been >= 1/4, t = 1/2
+                # or 1/4 would have lowered it, and with t* < 1/4 the full step's rise
+                # b (1 - 2 t*) >= b / 2 bounds the best gain b t*^2 below tol / 8 in the
+                # same measure. Nothing measurable is left: keep the last accepted step.
+                self.stalled = True
+                return halvings
+            if halvings >= MAX_HALVINGS:
+                self.check_repeatable()
+                raise SpecError(_halving_failure(spec, sums, self.run.scaling))
+            self.beta = 0.5 * (self.beta + self.beta_prev)
+            halvings += 1
+
+    def check_repeatable(self) -> None:
+        """Before blaming the model for a failed step-halving: scan the last accepted
+        coefficients again. A deviance other than the one they gave (beyond the rounding of
+        a parallel sum) means the source's values change between reads, with the same rows."""
+        run, deviance = self.run, self.dev_old
+        if not math.isfinite(deviance) or run.phase == "sample":
+            return
+        again = self.scan(self.beta_prev).deviance
+        if abs(again - deviance) <= 1e-9 * abs(deviance) + 1e-300:
+            return
+        raise NondeterministicSourceError(
+            "the source is not deterministic: the same coefficients gave the deviance "
+            f"{run.scaling.unscale(deviance):.10g} in one IRLS scan and "
+            f"{run.scaling.unscale(again):.10g} in the next, so its values change between "
+            "reads (random(), a sample such as USING SAMPLE or TABLESAMPLE, or a table written "
+            "to during the fit). indb reads the source once per iteration; store the rows "
+            "first (CREATE TABLE ... AS SELECT ...) or make the sample repeatable "
+            "(REPEATABLE (seed))"
+        )
+
+    def finish_stalled(self) -> None:
+        """Go back to the last accepted step (its scan and its solved update)."""
+        self.iterations -= 1
+        assert self.sums_prev is not None and self.sol is not None
+        self.sums, self.beta = self.sums_prev, self.beta_prev
+        # the deviance has settled; converged if the remaining step is invisible too
+        self.converged = self.step_size() < self.step_tol
+
+    def step_size(self) -> float:
+        """The solved update's step from ``beta``, in standard errors (largest over the
+        coefficients), with the dispersion of the scan it was solved from."""
+        sums, sol = self.sums, self.sol
+        assert sums is not None and sol is not None
+        phi = working_dispersion(self.spec.family, sums, sol)
+        return solver.step_in_se(self.beta, sol.beta, sol.inv_info, phi)
+
+    # -- one scan ------------------------------------------------------------------------------
+
+    def scan(self, beta: np.ndarray | None) -> solver.Sums:
+        """The sums of one scan at ``beta`` (None: at the family's starting means)."""
+        if beta is not None and self.log_scan:
+            sums = self.log_scan_sums(beta)
+            if sums is not None:
+                return sums
+            # the model fits so closely that the split deviance lost too many digits:
+            # per-row deviances from here on (this scan is run again below)
+            self.log_scan = False
+        return self.gram_scan_sums(beta)
+
+    def wants_null(self) -> bool:
+        """Whether this scan should also answer for the null model."""
+        track = self.null_track
+        return (self.null_mu is not None and self.null_dev is None) or (
+            track is not None and not track.done
+        )
+
+    def log_scan_sums(self, beta: np.ndarray) -> solver.Sums | None:
+        """The log-link scan at ``beta`` (:mod:`indb.logsums`), with the null model in closed
+        form; None when its split deviance lost more than ``MAX_DIGITS_LOST`` digits."""
+        ctx, design, power = self.ctx, self.design, self.power
+        gram, response, constants = logsums.scan_parts(power, self.log_cache)
+        tree = log_scan_query(
+            ctx,
+            design,
+            beta,
+            gram=gram,
+            response=response,
+            constants=constants,
+            off_center=self.off_center,
+        )
+        got = logsums.assemble_log_scan(
+            design, self.run.query(tree), beta, power, self.log_cache, self.off_center
+        )
+        self.run.check_rows(got.sums)
+        wants_null = self.wants_null()
+        b0, dev0 = logsums.null_model(power, got.cache) if wants_null else (0.0, 0.0)
+        if got.digits_lost <= logsums.MAX_DIGITS_LOST and math.isfinite(dev0):
+            self.log_cache = got.cache
+            if wants_null and self.null_track is not None:
+                self.null_track.finish(b0, dev0)
+            elif wants_null:
+                self.null_dev = dev0
+            return got.sums
+        return None
+
+    def gram_scan_sums(self, beta: np.ndarray | None) -> solver.Sums:
+        """The IRLS scan at ``beta`` (:func:`indb.plan.irls_scan.gram_query`), carrying the
+        null model: its deviance at ``null_mu``, or one step of ``null_track``."""
+        null_mu, null_track = self.null_mu, self.null_track
+        with_mu = null_mu is not None and self.null_dev is None
+        track = null_track is not None and not null_track.done
+        tree = gram_query(
+            self.ctx,
+            self.design,
+            beta,
+            ybar=self.ybar,
+            null_mu=null_mu if with_mu else None,
+            cells=self.cells,
+            null_intercept=null_track.b0 if track else None,
+        )
+        extra = ("nullw", "nullwz", "nulldev") if track else ("nulldev",) if with_mu else ()
+        if self.spec.family.unit_mean:
+            extra += ("edge", "near")
+        out = solver.assemble(self.design, self.run.query(tree), extra)
+        self.run.check_rows(out)
+        self.cells = out.cell_keys
+        if with_mu:
+            self.null_dev = out.extras["nulldev"]
+        if track:
+            null_track.update(out.extras)
+        return out
+
+
+def working_dispersion(family: Family, sums: solver.Sums, sol: solver.Solution) -> float:
+    """The dispersion that measures a step in standard errors while IRLS runs: Pearson's
+    chi-squared of the scan over its rows less the coefficients, at least one (a sample or
+    an early scan may have no rows to spare)."""
+    rank = int((~sol.aliased).sum())
+    return solver.dispersion(
+        sums.pearson, max(sums.n_weighted - rank, 1.0), family.dispersion_fixed
+    )
+
+
+def _halving_failure(spec: ModelSpec, sums: solver.Sums, scaling: Scaling) -> str:
+    msg = (
+        f"IRLS step-halving failed after {MAX_HALVINGS} halvings (deviance "
+        f"{scaling.unscale(sums.deviance):g}, {sums.bad} rows with invalid means); the model "
+        "may be unsuitable for the data (check the link and family)"
+    )
+    if spec.offset is not None:
+        # an offset is added to every row's linear predictor unscaled: one on the wrong
+        # scale (exposure instead of ln(exposure)) or spanning more than ~1400 on the log
+        # scale (exp overflows past ~709) leaves no coefficients with representable means
+        msg += (
+            f", and the offset expression {spec.offset!r}: it enters the linear predictor "
+            "as is, so with a log link values spanning more than ~700 overflow the fitted "
+            "means; check that it is on the link scale (ln(exposure), not exposure) and "
+            "rescale it"
+        )
+    return msg
