@@ -67,7 +67,7 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
             checks.append(
                 (
                     f"family {fam.name!r} needs a response {rel} {fam.y_min:g}; "
-                    f"column {name!r} has values outside",
+                    f"column {name!r} has values out of that range",
                     op(y, S.num(fam.y_min)),
                 )
             )
@@ -75,7 +75,7 @@ def domain_checks(ctx: PlanContext) -> list[tuple[str, Expr]]:
             checks.append(
                 (
                     f"family {fam.name!r} needs a response <= {fam.y_max:g}; "
-                    f"column {name!r} has values outside",
+                    f"column {name!r} has values out of that range",
                     S.gt(y, S.num(fam.y_max)),
                 )
             )
