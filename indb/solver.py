@@ -11,7 +11,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import sparse, special, stats
+from scipy import sparse, special
 from scipy.sparse import linalg as splinalg
 
 from indb.design import ColumnGroup, Design, cell_columns, column_groups, level_codes
@@ -308,6 +308,10 @@ def wald(
 ) -> Inference:
     """Wald statistics: z (df None) or t with ``df`` degrees of freedom, from the
     coefficients' variances (``cov``, when given, is passed on with NaN at aliased ones)."""
+    # imported here: scipy.stats takes a third of a second to import, which every command
+    # (indb --help too) paid when it was imported with this module
+    from scipy import stats
+
     se = np.sqrt(np.clip(np.asarray(variance, float), 0.0, None))
     est = beta.astype(float).copy()
     est[aliased] = np.nan
