@@ -144,6 +144,9 @@ def spark_local(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Any]:
         "spark.driver.host": "127.0.0.1",
         "spark.driver.bindAddress": "127.0.0.1",
         "spark.driver.extraJavaOptions": TEST_JVM_OPTIONS,
+        # the default 1 GiB heap ran out late in a full run, planning the scoring views with
+        # intervals (their guarded quadratic forms are long SQL); the machine has 24 GiB
+        "spark.driver.memory": "3g",
         # catalog tables (the write-back tests' registries) go here, not into the cwd
         "spark.sql.warehouse.dir": str(tmp_path_factory.mktemp("spark-warehouse")),
     }
