@@ -282,20 +282,7 @@ class Registry(ViewPlacement):
             "intervals": bool(intervals) if intervals is not None else False,
         }
         if current is not None:
-            model_row.update(
-                {
-                    k: current[k]
-                    for k in (
-                        "created_at",
-                        "live_version",
-                        "view_schema",
-                        "view_name",
-                        "macro_name",
-                        "score_source",
-                        "intervals",
-                    )
-                }
-            )
+            model_row.update({"created_at": current["created_at"], **model_updates(current)})
             if view_schema is not None:
                 model_row["view_schema"] = view_schema
             if score_source is not None:

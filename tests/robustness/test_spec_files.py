@@ -27,12 +27,12 @@ from pathlib import Path
 from typing import Any
 
 import duckdb
-import numpy as np
 import pandas as pd
 import pytest
 import robust_support as R
 import statsmodels
 from click.testing import CliRunner, Result
+from reference_cases import ships_registry_frame as _ships
 
 import indb
 from indb.cli import main
@@ -53,21 +53,6 @@ reference = { type = "A", built = "1960-64", operated = "1960-74" }
 DEPLOY = '[deploy]\nname = "ship_damage"\n'
 ENGINE = '[engine]\ndb = "models.duckdb"\n'
 GOOD = MODEL + DEPLOY + ENGINE
-
-
-def _ships() -> pd.DataFrame:
-    raw = pd.read_csv(SHIPS_CSV)
-    raw = raw[raw["service"] > 0].reset_index(drop=True)  # no months at risk: left out
-    return pd.DataFrame(
-        {
-            "row_id": np.arange(len(raw)),
-            "type": raw["ship"].map(dict(zip(range(1, 6), "ABCDE", strict=True))),
-            "built": raw["yr_con"].map({1: "1960-64", 2: "1965-69", 3: "1970-74", 4: "1975-79"}),
-            "operated": raw["yr_op"].map({1: "1960-74", 2: "1975-79"}),
-            "service": raw["service"].astype(float),
-            "accident": raw["accident"].astype(float),
-        }
-    )
 
 
 def _write(db: Path, frame: pd.DataFrame) -> None:

@@ -573,49 +573,57 @@ def _fit_error(values: list[float], family: str, **kw) -> str | None:
             "gamma",
             {},
             [0.0, 1.0, 2.5],
-            "needs a response > 0; column 'y' has values out of that range in 1 of 3 rows (min 0, max 2.5)",
+            "needs a response > 0; column 'y' has values out of that range"
+            " in 1 of 3 rows (min 0, max 2.5)",
         ),
         (
             "inverse_gaussian",
             {},
             [2.0, 0.0, 1.0],
-            "needs a response > 0; column 'y' has values out of that range in 1 of 3 rows (min 0, max 2)",
+            "needs a response > 0; column 'y' has values out of that range"
+            " in 1 of 3 rows (min 0, max 2)",
         ),
         (
             "poisson",
             {},
             [-1.0, 1.0, 2.0, 0.0],
-            "needs a response >= 0; column 'y' has values out of that range in 1 of 4 rows (min -1, max 2)",
+            "needs a response >= 0; column 'y' has values out of that range"
+            " in 1 of 4 rows (min -1, max 2)",
         ),
         (
             "negative_binomial",
             {"theta": 2.0},
             [3.0, -2.0, -1.0],
-            "needs a response >= 0; column 'y' has values out of that range in 2 of 3 rows (min -2, max 3)",
+            "needs a response >= 0; column 'y' has values out of that range"
+            " in 2 of 3 rows (min -2, max 3)",
         ),
         (
             "binomial",
             {},
             [0.0, 1.5, 1.0],
-            "needs a response <= 1; column 'y' has values out of that range in 1 of 3 rows (min 0, max 1.5)",
+            "needs a response <= 1; column 'y' has values out of that range"
+            " in 1 of 3 rows (min 0, max 1.5)",
         ),
         (
             "binomial",
             {},
             [-0.5, 0.5, 1.0],
-            "needs a response >= 0; column 'y' has values out of that range in 1 of 3 rows (min -0.5, max 1)",
+            "needs a response >= 0; column 'y' has values out of that range"
+            " in 1 of 3 rows (min -0.5, max 1)",
         ),
         (
             "tweedie",
             {"power": 1.5},
             [-0.1, 0.0, 2.0],
-            "needs a response >= 0; column 'y' has values out of that range in 1 of 3 rows (min -0.1, max 2)",
+            "needs a response >= 0; column 'y' has values out of that range"
+            " in 1 of 3 rows (min -0.1, max 2)",
         ),
         (
             "tweedie",
             {"power": 2.5},
             [0.0, 1.0, 2.0],
-            "needs a response > 0; column 'y' has values out of that range in 1 of 3 rows (min 0, max 2)",
+            "needs a response > 0; column 'y' has values out of that range"
+            " in 1 of 3 rows (min 0, max 2)",
         ),
     ],
 )
