@@ -134,7 +134,7 @@ def run_indb(job: dict[str, Any]) -> dict[str, Any]:
         + sum(1 for sql, _ in engine.executed if not sql.startswith(("SET", "DROP")))
         - (1 if sample_copy else 0),
         "terms": res.terms,
-        "params": [float(v) for v in res.params],
+        "params": [float(v) for v in res.estimates],
         "deviance": res.deviance,
         "peak_kib": peak,
         "start_kib": rss_before,

@@ -193,7 +193,7 @@ def child(job: dict[str, Any]) -> dict[str, Any]:
     if job.get("save"):
         import numpy as np
 
-        np.savez(job["save"], terms=np.array(res.terms), params=res.params, se=res.std_errors)
+        np.savez(job["save"], terms=np.array(res.terms), params=res.estimates, se=res.std_errors)
         out["params_file"] = job["save"]
     return out
 
@@ -204,7 +204,7 @@ def score_equations(con: Any, res: Any) -> float:
     the coefficients (KKT of the maximum likelihood estimate: 0 up to rounding)."""
     import pandas as pd
 
-    coef = pd.DataFrame({"term": res.terms, "b": [0.0 if b != b else b for b in res.params]})
+    coef = pd.DataFrame({"term": res.terms, "b": [0.0 if b != b else b for b in res.estimates]})
     con.register("coef", coef)
     sql = """
         WITH m AS (

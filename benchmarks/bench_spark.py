@@ -364,7 +364,7 @@ def measure_fit(
         "s_per_iter": float(np.mean([r.seconds for r in fit_recs])) if fit_recs else math.nan,
         "p": len(res.terms),
         "terms": res.terms,
-        "params": [float(v) for v in res.params],
+        "params": [float(v) for v in res.estimates],
         "std_errors": [float(v) for v in res.std_errors],
         "deviance": res.deviance,
         "n_used": res.n_used,

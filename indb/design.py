@@ -459,7 +459,9 @@ def plan_values(inputs: Inputs, intercept: bool) -> tuple[Value, ...]:
         if key in keys:
             continue
         keys[key] = len(out)
-        label = TERM_JOIN.join(t.numerics) if t.basis is None else f"{t.numerics[0]}#{t.basis}"
+        label = (
+            TERM_JOIN.join(t.numerics) if t.basis is None else f"{t.numerics[0]} spline {t.basis}"
+        )
         out.append(
             Value(
                 alias=f"v{len(out)}",

@@ -50,15 +50,15 @@ def result(
     sums = state.sums  # on the scale of the internally rescaled fit (run.scaling)
     sc = run.scaling
     rank = int((~sol.aliased).sum())
-    df_resid = summary.n_df - rank
-    if df_resid <= 0:
-        msg = _residual_df_message(ctx, summary, rank, df_resid)
+    residual_df = summary.n_df - rank
+    if residual_df <= 0:
+        msg = _residual_df_message(ctx, summary, rank, residual_df)
         warnings.warn(msg, ResidualDfWarning, stacklevel=3)
         warn_msgs.append(msg)
     # the dispersion of the rescaled fit (a fixed dispersion 1 becomes the rescaling's
     # power of two there), and the covariance of its coefficients, coef_factor times the
     # source's: both stay finite where the source's overflow (a response near 1e200)
-    phi = solver.dispersion(sums.pearson, df_resid, fam.dispersion_fixed)
+    phi = solver.dispersion(sums.pearson, residual_df, fam.dispersion_fixed)
     phi_fit = sc.rescale(phi) if fam.dispersion_fixed else phi
     dispersion = 1.0 if fam.dispersion_fixed else sc.unscale(phi_fit)
     beta_std = sc.to_original(np.where(sol.aliased, 0.0, state.beta), design.intercept)
@@ -68,7 +68,7 @@ def result(
         beta_std,
         sc.coef_factor,
         phi_fit,
-        None if fam.dispersion_fixed else df_resid,
+        None if fam.dispersion_fixed else residual_df,
         spec.confidence,
     )
     coefs = tuple(
@@ -78,10 +78,10 @@ def result(
             levels=tuple(_levels_for(design, c)),
             estimate=float(inf.estimate[j]),
             std_error=float(inf.std_error[j]),
-            statistic=float(inf.statistic[j]),
-            p_value=float(inf.p_value[j]),
-            ci_low=float(inf.ci_low[j]),
-            ci_high=float(inf.ci_high[j]),
+            wald=float(inf.wald[j]),
+            p_two_sided=float(inf.p_two_sided[j]),
+            lower_bound=float(inf.lower_bound[j]),
+            upper_bound=float(inf.upper_bound[j]),
             aliased=bool(sol.aliased[j]),
         )
         for j, c in enumerate(design.columns)
@@ -153,8 +153,8 @@ def result(
         log_likelihood=ll,
         aic=aic,
         bic=bic,
-        df_model=rank - (1 if design.intercept else 0),
-        df_resid=df_resid,
+        model_df=rank - (1 if design.intercept else 0),
+        residual_df=residual_df,
         n_used=n_kept,
         n_excluded=n_total - n_kept,
         n_weighted=summary.sum_f,
@@ -226,8 +226,8 @@ def _inference(
             inf,
             estimate=np.where(sol.aliased, np.nan, est),
             std_error=inf.std_error * units,
-            ci_low=inf.ci_low * units,
-            ci_high=inf.ci_high * units,
+            lower_bound=inf.lower_bound * units,
+            upper_bound=inf.upper_bound * units,
             covariance=None
             if inf.covariance is None
             else inf.covariance * units[:, None] * units[None, :],

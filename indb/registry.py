@@ -94,6 +94,15 @@ class Registry(ViewPlacement):
         """Create the registry schema and tables if missing."""
         for stmt in W.registry_ddl(self.schema, self.d):
             self._run(stmt)
+        self._rename_earlier_columns()
+
+    def _rename_earlier_columns(self) -> None:
+        """Give a registry written by indb 0.1 today's column names (one ALTER each)."""
+        for table, renames in W.RENAMED_REGISTRY_COLUMNS.items():
+            columns = self._columns_of(W.table_ref(self.schema, table)) or []
+            for old, new in renames.items():
+                if old in columns and new not in columns:
+                    self._run(W.rename_column(self.schema, table, old, new))
 
     # -- reading ---------------------------------------------------------------------------
     def models(self) -> list[dict[str, Any]]:
@@ -327,7 +336,7 @@ class Registry(ViewPlacement):
             "log_likelihood": result.log_likelihood,
             "aic": result.aic,
             "bic": result.bic,
-            "df_resid": result.df_resid,
+            "residual_df": result.residual_df,
             "n_used": result.n_used,
             "n_excluded": result.n_excluded,
             "iterations": result.iterations,
@@ -349,8 +358,8 @@ class Registry(ViewPlacement):
                 "term": c.term,
                 "estimate": c.estimate,
                 "std_error": c.std_error,
-                "statistic": c.statistic,
-                "p_value": c.p_value,
+                "wald": c.wald,
+                "p_two_sided": c.p_two_sided,
                 "aliased": c.aliased,
             }
             for i, c in enumerate(result.coefficients)
@@ -377,6 +386,8 @@ class Registry(ViewPlacement):
             with self.engine.transaction():
                 if fresh:  # registry tables are created in the same transaction
                     self.ensure()
+                else:
+                    self._rename_earlier_columns()
                 # a version's details before its row, and the row before the model's: an
                 # engine without transactions (Spark) then never shows a half-written version
                 self._insert("version_term", terms)

@@ -169,6 +169,22 @@ class AppendOnlyRegistry(Registry):
                     f"registry across applications, or move that folder away: {err}"
                 ) from err
             raise
+        self._rename_earlier_columns()
+
+    def _rename_earlier_columns(self) -> None:
+        # Spark's file tables cannot rename a column in place, so say how to move on.
+        for table, renames in W.RENAMED_REGISTRY_COLUMNS.items():
+            target = _RECORDS.get(table, (table, None))[0]
+            columns = Registry._columns_of(self, W.table_ref(self.schema, target)) or []
+            stale = [old for old in renames if old in columns]
+            if stale:
+                raise RegistryError(
+                    f"registry table {self.schema}.{target} was written by indb 0.1 and has "
+                    f"columns {stale} that are now named "
+                    f"{[renames[old] for old in stale]}; Spark cannot rename columns of "
+                    "parquet tables, so keep using indb 0.1 for this registry or start a new "
+                    "one with --registry-schema"
+                )
 
     def exists(self) -> bool:
         # catalog listings instead of a failing probe query (pyspark logs every failed query)

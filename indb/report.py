@@ -119,18 +119,15 @@ def _quality_block(result: FitResult, width: int) -> str:
     else:
         disp_note = "fixed by the family"
     rows: list[tuple[str, str, str]] = [
-        ("deviance", _fmt_value(result.deviance), f"on {_fmt_df(result.df_resid)} residual df"),
-        (
-            "null deviance",
-            _fmt_value(result.null_deviance),
-            f"on {_fmt_df(_null_df(result))} df",
-        ),
+        ("deviance", _fmt_value(result.deviance), ""),
+        ("null deviance", _fmt_value(result.null_deviance), _null_note(result)),
+        ("residual df", _fmt_df(result.residual_df), "rows (or frequency weights) less rank"),
         ("Pearson chi-square", _fmt_value(result.pearson_chi2), ""),
         ("dispersion", _fmt_value(result.dispersion), disp_note),
         ("log-likelihood", _fmt_value(result.log_likelihood), ""),
         ("AIC", _fmt_value(result.aic), ""),
         ("BIC", _fmt_value(result.bic), ""),
-        ("model df", _fmt_count(result.df_model), ""),
+        ("model df", _fmt_count(result.model_df), ""),
     ]
     for name, value in result.family_params.items():
         text = f"{float(value):.6g}" if _finite(value) else NA
@@ -144,11 +141,12 @@ def _terms_block(result: FitResult, width: int) -> str:
     test = _test_label(result)
     level = _level_label(result.confidence)
     exp_name = _exp_column_name(result.link)
+    legend = f"std error = standard error; Wald {test} = estimate / std error"
     if test == "t":
-        test_note = f"Wald t ratios on {_fmt_df(result.df_resid)} residual df"
+        legend += f", referred to t on {_fmt_df(result.residual_df)} residual df"
     else:
-        test_note = "Wald z ratios"
-    legend = f"s.e. = standard error; {test_note}; {level} confidence intervals"
+        legend += ", referred to the normal distribution"
+    legend += f"; {level} interval = estimate -/+ quantile x std error"
     if exp_name is not None:
         legend += f"; {exp_name} = exp(estimate)"
     lines = ["TERMS", "-" * len("TERMS"), *_wrap(legend + ".", width, indent="  "), ""]
@@ -156,7 +154,7 @@ def _terms_block(result: FitResult, width: int) -> str:
     if not coefs:
         lines.append("  (the model has no terms)")
         return "\n".join(lines)
-    lines.extend(_coefficient_table(coefs, test, level, exp_name, width))
+    lines.extend(_coefficient_table(coefs, test, level, exp_name, width, result.residual_df))
     aliased = [c.term for c in coefs if c.aliased]
     for term in result.aliased_terms:
         if term not in aliased:
@@ -198,15 +196,15 @@ def _coefficient_table(
     level: str,
     exp_name: str | None,
     width: int,
+    df: float = math.nan,
 ) -> list[str]:
     live = [c for c in coefs if not c.aliased]
     numeric: list[tuple[str, list[str]]] = [
         ("estimate", _fmt_column([c.estimate for c in live])),
-        ("s.e.", _fmt_column([c.std_error for c in live])),
-        (f"{test} ratio", [_fmt_fixed(c.statistic, 2) for c in live]),
-        ("p-value", [_fmt_p(c.p_value) for c in live]),
-        (f"{level} low", _fmt_column([c.ci_low for c in live])),
-        (f"{level} high", _fmt_column([c.ci_high for c in live])),
+        ("std error", _fmt_column([c.std_error for c in live])),
+        (f"Wald {test}", [_fmt_fixed(c.wald, 2) for c in live]),
+        ("two-sided p", [_fmt_p(c.p_two_sided, c.wald, test, df) for c in live]),
+        (f"{level} interval", _interval_column(live)),
     ]
     if exp_name is not None:
         numeric.append((exp_name, _fmt_column([_safe_exp(c.estimate) for c in live])))
@@ -350,16 +348,35 @@ def _fmt_fixed(value: Any, decimals: int) -> str:
     return f"{float(value):.{decimals}f}" if _finite(value) else NA
 
 
-def _fmt_p(value: Any) -> str:
+def _fmt_p(value: Any, wald: Any = math.nan, test: str = "z", df: Any = math.nan) -> str:
+    """A two-sided p-value: four decimals, then two significant digits, and past the
+    smallest double (where the stored value is 0) the power of ten from the Wald value."""
     if not _finite(value):
         return NA
     p = float(value)
-    # Below about 1e-16 a double-precision tail probability is mostly rounding noise.
-    if p < 1e-16:
-        return "<1e-16"
-    if p < 1e-4:
+    if p >= 1e-4:
+        return f"{p:.4f}"
+    if p > 0.0 or not _finite(wald):
         return f"{p:.1e}"
-    return f"{p:.4f}"
+    return _tiny_p(float(wald), test, df)
+
+
+def _tiny_p(wald: float, test: str, df: Any) -> str:
+    from scipy import stats  # only for p-values below the smallest double
+
+    dist = stats.t(float(df)) if test == "t" and _finite(df) else stats.norm
+    log10_p = (math.log(2.0) + float(dist.logsf(abs(wald)))) / math.log(10.0)
+    power = math.floor(log10_p)
+    return f"{10 ** (log10_p - power):.1f}e{power:d}"
+
+
+def _interval_column(coefs: Sequence[Coefficient]) -> list[str]:
+    """``low .. high`` cells, each end aligned on its decimal point."""
+    lows = _fmt_column([c.lower_bound for c in coefs])
+    highs = _fmt_column([c.upper_bound for c in coefs])
+    low_w = max((len(v) for v in lows), default=0)
+    high_w = max((len(v) for v in highs), default=0)
+    return [f"{lo.rjust(low_w)} .. {hi.ljust(high_w)}" for lo, hi in zip(lows, highs, strict=True)]
 
 
 def _safe_exp(value: Any) -> float:
@@ -386,10 +403,11 @@ def _exp_column_name(link: str) -> str | None:
     return None
 
 
-def _null_df(result: FitResult) -> float:
-    if not _finite(result.df_resid):
-        return math.nan
-    return float(result.df_resid) + float(result.df_model)
+def _null_note(result: FitResult) -> str:
+    if not _finite(result.residual_df):
+        return "intercept-only model"
+    null_df = float(result.residual_df) + float(result.model_df)
+    return f"intercept-only model, {_fmt_df(null_df)} residual df"
 
 
 def _exclusion_note(result: FitResult) -> str:

@@ -44,10 +44,10 @@ class Coefficient:
     levels: tuple[str | None, ...]
     estimate: float
     std_error: float
-    statistic: float
-    p_value: float
-    ci_low: float
-    ci_high: float
+    wald: float
+    p_two_sided: float
+    lower_bound: float
+    upper_bound: float
     aliased: bool = False
 
 
@@ -73,8 +73,8 @@ TEXT_RENDERER: dict[str, Callable[[FitResult], str]] = {}
 class FitResult:
     """The outcome of fitting one model.
 
-    Attributes are named in the trade's terms. ``statistic`` in the coefficient table is a
-    z statistic when the dispersion is fixed and a t statistic (``df_resid`` degrees of
+    Attributes are named in the trade's terms. ``wald`` in the coefficient table is a
+    z statistic when the dispersion is fixed and a t statistic (``residual_df`` degrees of
     freedom) when it is estimated; ``test`` says which. ``covariance`` is the coefficients'
     covariance matrix (NaN rows and columns at aliased terms) for models of up to
     :data:`COVARIANCE_MAX_TERMS` coefficients and ``None`` above; a result read back from
@@ -95,8 +95,8 @@ class FitResult:
     log_likelihood: float
     aic: float
     bic: float
-    df_model: int
-    df_resid: float
+    model_df: int
+    residual_df: float
     n_used: int
     n_excluded: int
     n_weighted: float
@@ -138,7 +138,7 @@ class FitResult:
         return [c.term for c in self.coefficients]
 
     @property
-    def params(self) -> np.ndarray:
+    def estimates(self) -> np.ndarray:
         """Estimates in design order (NaN for aliased terms)."""
         return np.array([c.estimate for c in self.coefficients])
 
@@ -188,8 +188,8 @@ class FitResult:
             "log_likelihood": _num(self.log_likelihood),
             "aic": _num(self.aic),
             "bic": _num(self.bic),
-            "df_model": self.df_model,
-            "df_resid": _num(self.df_resid),
+            "model_df": self.model_df,
+            "residual_df": _num(self.residual_df),
             "n_used": self.n_used,
             "n_excluded": self.n_excluded,
             "excluded_by_column": dict(self.excluded_by_column),
@@ -230,10 +230,10 @@ class FitResult:
                 levels=tuple(c["levels"]),
                 estimate=f(c["estimate"]),
                 std_error=f(c["std_error"]),
-                statistic=f(c["statistic"]),
-                p_value=f(c["p_value"]),
-                ci_low=f(c["ci_low"]),
-                ci_high=f(c["ci_high"]),
+                wald=f(_stored(c, "wald")),
+                p_two_sided=f(_stored(c, "p_two_sided")),
+                lower_bound=f(_stored(c, "lower_bound")),
+                upper_bound=f(_stored(c, "upper_bound")),
                 aliased=bool(c.get("aliased", False)),
             )
             for c in d["coefficients"]
@@ -272,8 +272,8 @@ class FitResult:
             log_likelihood=f(d["log_likelihood"]),
             aic=f(d["aic"]),
             bic=f(d["bic"]),
-            df_model=int(d["df_model"]),
-            df_resid=f(d["df_resid"]),
+            model_df=int(_stored(d, "model_df")),
+            residual_df=f(_stored(d, "residual_df")),
             n_used=int(d["n_used"]),
             n_excluded=int(d["n_excluded"]),
             n_weighted=f(d["n_weighted"]),
@@ -293,6 +293,23 @@ class FitResult:
             design=d.get("design", {}),
             fingerprint=d.get("fingerprint", {}),
         )
+
+
+#: Keys under which results stored by indb 0.1 (registry versions written before the
+#: coefficient table got its own names) hold these fields; read back, never written.
+_STORED_BEFORE = {
+    "wald": "statistic",
+    "p_two_sided": "p_value",
+    "lower_bound": "ci_low",
+    "upper_bound": "ci_high",
+    "model_df": "df_model",
+    "residual_df": "df_resid",
+}
+
+
+def _stored(d: dict[str, Any], key: str) -> Any:
+    """``d[key]``, or the value under the key an earlier indb stored it as."""
+    return d[key] if key in d else d[_STORED_BEFORE[key]]
 
 
 def _num(v: Any) -> Any:

@@ -274,12 +274,12 @@ def step_in_se(old: np.ndarray, new: np.ndarray, inv_info: InverseInfo, dispersi
     return float(np.max(np.abs(new[ok] - old[ok]) / np.sqrt(var[ok])))
 
 
-def dispersion(pearson: float, df_resid: float, fixed: bool) -> float:
+def dispersion(pearson: float, residual_df: float, fixed: bool) -> float:
     """The dispersion phi: 1 where the family fixes it (``fixed``), otherwise Pearson's
     chi-squared over the residual degrees of freedom (NaN when none are left)."""
     if fixed:
         return 1.0
-    return pearson / df_resid if df_resid > 0 else math.nan
+    return pearson / residual_df if residual_df > 0 else math.nan
 
 
 def relative_change(new: float, old: float) -> float:
@@ -291,10 +291,10 @@ def relative_change(new: float, old: float) -> float:
 class Inference:
     estimate: np.ndarray
     std_error: np.ndarray
-    statistic: np.ndarray
-    p_value: np.ndarray
-    ci_low: np.ndarray
-    ci_high: np.ndarray
+    wald: np.ndarray
+    p_two_sided: np.ndarray
+    lower_bound: np.ndarray
+    upper_bound: np.ndarray
     covariance: np.ndarray | None
 
 

@@ -3,4 +3,4 @@ importing the package's ``__init__`` (which imports the API). ``pyproject.toml``
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"

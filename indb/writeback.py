@@ -251,7 +251,7 @@ def scoring_query(
         q = (
             stats.norm.ppf(0.5 + res.confidence / 2)
             if res.test == "z"
-            else stats.t.ppf(0.5 + res.confidence / 2, max(res.df_resid, 1e-12))
+            else stats.t.ppf(0.5 + res.confidence / 2, max(res.residual_df, 1e-12))
         )
         # NULL where the row has no mean, by adding a CASE that is 0 or NULL rather than by
         # putting the quadratic form inside a CASE branch: DuckDB shares the common parts
@@ -335,7 +335,7 @@ REGISTRY_TABLES: dict[str, list[tuple[str, str]]] = {
         ("log_likelihood", "DOUBLE"),
         ("aic", "DOUBLE"),
         ("bic", "DOUBLE"),
-        ("df_resid", "DOUBLE"),
+        ("residual_df", "DOUBLE"),
         ("n_used", "BIGINT"),
         ("n_excluded", "BIGINT"),
         ("iterations", "INT"),
@@ -356,8 +356,8 @@ REGISTRY_TABLES: dict[str, list[tuple[str, str]]] = {
         ("term", "TEXT"),
         ("estimate", "DOUBLE"),
         ("std_error", "DOUBLE"),
-        ("statistic", "DOUBLE"),
-        ("p_value", "DOUBLE"),
+        ("wald", "DOUBLE"),
+        ("p_two_sided", "DOUBLE"),
         ("aliased", "BOOLEAN"),
     ],
     "version_iteration": [
@@ -388,6 +388,23 @@ PRIMARY_KEYS = {
 
 def table_ref(schema: str, table: str) -> exp.Table:
     return exp.Table(this=S.ident(table), db=S.ident(schema))
+
+
+#: Registry columns that indb 0.1 named otherwise: ``{table: {old name: new name}}``.
+#: :meth:`indb.registry.Registry.ensure` renames them in a registry written by it.
+RENAMED_REGISTRY_COLUMNS: dict[str, dict[str, str]] = {
+    "model_version": {"df_resid": "residual_df"},
+    "version_term": {"statistic": "wald", "p_value": "p_two_sided"},
+}
+
+
+def rename_column(schema: str, table: str, old: str, new: str) -> exp.Alter:
+    """ALTER TABLE schema.table RENAME COLUMN old TO new."""
+    return exp.Alter(
+        this=table_ref(schema, table),
+        kind="TABLE",
+        actions=[exp.RenameColumn(this=S.col(old), to=S.col(new))],
+    )
 
 
 def registry_ddl(schema: str, dialect: Dialect | None = None) -> list[exp.Expression]:

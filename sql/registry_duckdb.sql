@@ -12,9 +12,9 @@ CREATE SCHEMA IF NOT EXISTS "indb_registry";
 
 CREATE TABLE IF NOT EXISTS "indb_registry"."model" ("model_name" TEXT, "created_at" TIMESTAMP, "live_version" INT, "view_schema" TEXT, "view_name" TEXT, "macro_name" TEXT, "score_source" TEXT, "intervals" BOOLEAN, PRIMARY KEY ("model_name"));
 
-CREATE TABLE IF NOT EXISTS "indb_registry"."model_version" ("model_name" TEXT, "version" INT, "created_at" TIMESTAMP, "status" TEXT, "family" TEXT, "link" TEXT, "response" TEXT, "source" TEXT, "deviance" DOUBLE, "null_deviance" DOUBLE, "pearson_chi2" DOUBLE, "dispersion" DOUBLE, "log_likelihood" DOUBLE, "aic" DOUBLE, "bic" DOUBLE, "df_resid" DOUBLE, "n_used" BIGINT, "n_excluded" BIGINT, "iterations" INT, "converged" BOOLEAN, "seconds" DOUBLE, "spec_hash" TEXT, "spec_json" TEXT, "fingerprint_json" TEXT, "result_json" TEXT, "package_version" TEXT, "parent_version" INT, "note" TEXT, PRIMARY KEY ("model_name", "version"));
+CREATE TABLE IF NOT EXISTS "indb_registry"."model_version" ("model_name" TEXT, "version" INT, "created_at" TIMESTAMP, "status" TEXT, "family" TEXT, "link" TEXT, "response" TEXT, "source" TEXT, "deviance" DOUBLE, "null_deviance" DOUBLE, "pearson_chi2" DOUBLE, "dispersion" DOUBLE, "log_likelihood" DOUBLE, "aic" DOUBLE, "bic" DOUBLE, "residual_df" DOUBLE, "n_used" BIGINT, "n_excluded" BIGINT, "iterations" INT, "converged" BOOLEAN, "seconds" DOUBLE, "spec_hash" TEXT, "spec_json" TEXT, "fingerprint_json" TEXT, "result_json" TEXT, "package_version" TEXT, "parent_version" INT, "note" TEXT, PRIMARY KEY ("model_name", "version"));
 
-CREATE TABLE IF NOT EXISTS "indb_registry"."version_term" ("model_name" TEXT, "version" INT, "position" INT, "term" TEXT, "estimate" DOUBLE, "std_error" DOUBLE, "statistic" DOUBLE, "p_value" DOUBLE, "aliased" BOOLEAN, PRIMARY KEY ("model_name", "version", "position"));
+CREATE TABLE IF NOT EXISTS "indb_registry"."version_term" ("model_name" TEXT, "version" INT, "position" INT, "term" TEXT, "estimate" DOUBLE, "std_error" DOUBLE, "wald" DOUBLE, "p_two_sided" DOUBLE, "aliased" BOOLEAN, PRIMARY KEY ("model_name", "version", "position"));
 
 CREATE TABLE IF NOT EXISTS "indb_registry"."version_iteration" ("model_name" TEXT, "version" INT, "iteration" INT, "phase" TEXT, "deviance" DOUBLE, "relative_change" DOUBLE, "step_halvings" INT, "seconds" DOUBLE, PRIMARY KEY ("model_name", "version", "iteration"));
 

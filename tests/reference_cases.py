@@ -243,7 +243,7 @@ def _glm_oracle(
             "dispersion_estimated": isinstance(fam, _ESTIMATED_SCALE),
             "llf": llf,
             "llf_statsmodels": float(res.llf),
-            "df_resid": float(res.df_resid),
+            "residual_df": float(res.df_resid),
             "nobs": float(res.model.wnobs),  # sum of frequency weights; rows otherwise
             "rows": len(frame),
             "rank": rank,
@@ -642,7 +642,7 @@ CASES: list[ReferenceCase] = [
             # whether "most frequent" counts rows or frequency weights).
             "reference": {"rate_marriage": "5", "religious": "3"},
         },
-        notes="40 rows with counts; df_resid and BIC use n = 6366 (statsmodels freq_weights); "
+        notes="40 rows with counts; residual_df and BIC use n = 6366 (statsmodels freq_weights); "
         "same estimates as the uncollapsed data",
         freq_weights=lambda df: df["respondents"].to_numpy(dtype=float),
     ),

@@ -89,7 +89,7 @@ def _grunfeld_oracle() -> tuple[list[str], Any]:
     exog = pd.DataFrame({"intercept": 1.0, "value": data["value"], "capital": data["capital"]})
     for level in levels[1:]:
         exog[f"firm={level}"] = (data["firm"] == level).astype(float)
-    # use_t=True: the dispersion is estimated, so intervals and p-values use t on df_resid
+    # use_t=True: the dispersion is estimated, so intervals and p-values use t on residual_df
     # (API contract); statsmodels GLM uses the normal distribution unless asked.
     fitted = sm.GLM(data["invest"], exog, family=sm.families.Gaussian()).fit(use_t=True)
     return list(exog.columns), fitted
@@ -250,10 +250,10 @@ def test_db_file_with_table_source_and_confidence(tmp_path: Path, grunfeld_parqu
     )
     terms, oracle = _grunfeld_oracle()
     _assert_matches_oracle(out, terms, oracle)
-    # 90% intervals from statsmodels (t quantiles on df_resid, as the API contract says).
+    # 90% intervals from statsmodels (t quantiles on residual_df, as the API contract says).
     bounds = oracle.conf_int(alpha=0.10).to_numpy()
-    assert_allclose([c["ci_low"] for c in out["coefficients"]], bounds[:, 0], rtol=1e-6)
-    assert_allclose([c["ci_high"] for c in out["coefficients"]], bounds[:, 1], rtol=1e-6)
+    assert_allclose([c["lower_bound"] for c in out["coefficients"]], bounds[:, 0], rtol=1e-6)
+    assert_allclose([c["upper_bound"] for c in out["coefficients"]], bounds[:, 1], rtol=1e-6)
     assert out["confidence"] == 0.9
 
 
@@ -303,7 +303,7 @@ def test_installed_console_script_runs_end_to_end(tmp_path: Path, grunfeld_parqu
         [*args, str(grunfeld_parquet)], capture_output=True, text=True, timeout=120
     )
     assert text.returncode == 0, text.stderr
-    assert "t ratio" in text.stdout and "firm=General Motors" in text.stdout
+    assert "Wald t" in text.stdout and "firm=General Motors" in text.stdout
     assert "indb: iteration" in text.stderr
 
     bad = subprocess.run(

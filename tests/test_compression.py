@@ -76,9 +76,11 @@ def test_compressed_equals_row_by_row_and_statsmodels(fair: pd.DataFrame, name: 
     # Both routes stop within the convergence tolerance of the same optimum (the folded
     # route takes other steps), so coefficients agree to ~1e-7 of a standard error; the
     # deviance is stationary there and agrees much more closely.
-    assert_allclose(folded.params, rows.params, rtol=0, atol=1e-6 * float(rows.std_errors.min()))
+    assert_allclose(
+        folded.estimates, rows.estimates, rtol=0, atol=1e-6 * float(rows.std_errors.min())
+    )
     assert_allclose(folded.std_errors, rows.std_errors, rtol=1e-7)
-    for attr in ("deviance", "null_deviance", "df_resid"):
+    for attr in ("deviance", "null_deviance", "residual_df"):
         assert_allclose(getattr(folded, attr), getattr(rows, attr), rtol=1e-10, err_msg=attr)
     for attr in ("pearson_chi2", "dispersion"):
         assert_allclose(getattr(folded, attr), getattr(rows, attr), rtol=1e-7, err_msg=attr)
@@ -98,7 +100,7 @@ def test_compressed_equals_row_by_row_and_statsmodels(fair: pd.DataFrame, name: 
     if weight:
         kw["var_weights"] = frame[weight]
     ref = sm.GLM(frame[response], X, family=smfam, **kw).fit(tol=1e-13, maxiter=300)
-    assert_allclose(folded.params, ref.params.to_numpy(), rtol=1e-6, atol=1e-9)
+    assert_allclose(folded.estimates, ref.params.to_numpy(), rtol=1e-6, atol=1e-9)
     assert_allclose(folded.std_errors, ref.bse.to_numpy(), rtol=1e-6)
     assert_allclose(folded.deviance, ref.deviance, rtol=1e-8)
     assert_allclose(folded.pearson_chi2, ref.pearson_chi2, rtol=1e-6)
@@ -136,7 +138,9 @@ def test_folded_profile_counts_exclusions_like_the_row_route(fair: pd.DataFrame)
     assert folded.to_dict()["excluded_by_column"] == rows.to_dict()["excluded_by_column"]
     for attr in ("deviance", "null_deviance", "log_likelihood", "aic"):
         assert_allclose(getattr(folded, attr), getattr(rows, attr), rtol=1e-10, err_msg=attr)
-    assert_allclose(folded.params, rows.params, rtol=0, atol=1e-6 * float(rows.std_errors.min()))
+    assert_allclose(
+        folded.estimates, rows.estimates, rtol=0, atol=1e-6 * float(rows.std_errors.min())
+    )
     # pandas drops the same rows (the external count): a row is used when it has no NULL
     keep = fair.copy()
     keep.loc[keep.index[::97], "rating"] = None

@@ -90,7 +90,7 @@ def test_log_scan_matches_the_per_row_scan_and_statsmodels(
     assert fast.converged and per_row.converged
     assert fast.terms == per_row.terms
     # the two routes: the same sums, up to summation order and the split deviance
-    assert_allclose(fast.params, per_row.params, rtol=1e-9, atol=1e-11)
+    assert_allclose(fast.estimates, per_row.estimates, rtol=1e-9, atol=1e-11)
     assert_allclose(fast.std_errors, per_row.std_errors, rtol=1e-9)
     assert_allclose(fast.deviance, per_row.deviance, rtol=1e-10)
     assert_allclose(fast.null_deviance, per_row.null_deviance, rtol=1e-10)
@@ -112,7 +112,7 @@ def test_log_scan_matches_the_per_row_scan_and_statsmodels(
         offset=np.log(frame["age"]),
         var_weights=frame["wt"],
     ).fit(tol=1e-13, maxiter=200)
-    assert_allclose(fast.params, ref.params, rtol=1e-6, atol=1e-9)
+    assert_allclose(fast.estimates, ref.params, rtol=1e-6, atol=1e-9)
     assert_allclose(fast.std_errors, ref.bse, rtol=1e-6)
     assert_allclose(fast.deviance, ref.deviance, rtol=1e-8)
     assert_allclose(fast.null_deviance, ref.null_deviance, rtol=1e-8)
@@ -132,7 +132,7 @@ def test_a_factor_by_numeric_slope_keeps_the_per_row_scan(
         interactions=[("rating", "educ")],
     )
     assert used == 0
-    assert_allclose(fast.params, per_row.params, rtol=1e-12)
+    assert_allclose(fast.estimates, per_row.estimates, rtol=1e-12)
 
 
 # the deviance is rounding noise, so the stall test of IRLS (and statsmodels' own check)
@@ -159,14 +159,14 @@ def test_a_near_perfect_fit_returns_to_per_row_deviances(
     )
     scans = sum(1 + r.step_halvings for r in fast.iteration_log)
     assert 1 <= used < scans - 1, (used, scans)  # the last scans ran per row
-    assert_allclose(fast.params, per_row.params, rtol=1e-9, atol=1e-12)
+    assert_allclose(fast.estimates, per_row.estimates, rtol=1e-9, atol=1e-12)
     assert abs(fast.deviance - per_row.deviance) < 1e-11
     X = design_matrix(frame, ["rating", "educ"], categorical=["rating"])[fast.terms]
     ref = sm.GLM(frame["close"], X, family=sm.families.Gamma(sm.families.links.Log())).fit(
         tol=1e-15, maxiter=200
     )
     # coefficients that are 0 up to the ripple: both fits agree to 1e-11 absolute there
-    assert_allclose(fast.params, ref.params, rtol=1e-8, atol=1e-11)
+    assert_allclose(fast.estimates, ref.params, rtol=1e-8, atol=1e-11)
     # the deviance itself (~1e-14) is rounding noise of the per-row formula on any engine:
     # 6366 terms of (y/mu - 1)^2 ~ 1e-18, each computed from ln(y/mu) to ~1e-16
     assert abs(fast.deviance - ref.deviance) < 1e-11

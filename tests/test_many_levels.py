@@ -106,7 +106,7 @@ def test_three_hundred_levels_match_statsmodels():
     x, ref = _sm_poisson(frame, ["big", "region", "x1", "x2"])
     assert res.terms == list(x.columns)
     # source: statsmodels GLM Poisson with offset (test-only oracle)
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
     assert_allclose(res.deviance, ref.deviance, rtol=1e-9)
     # p = 309 <= COVARIANCE_MAX_TERMS: the whole covariance is there and matches
@@ -125,7 +125,7 @@ def test_factor_after_the_long_one_and_factor_x_numeric_terms_match_statsmodels(
     ).fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=500)
     assert res.terms == list(x.columns)
     # source: statsmodels GLM (test-only oracle)
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
 
 
@@ -146,7 +146,7 @@ def test_no_intercept_run_first_matches_statsmodels():
     ).fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=500)
     assert res.terms[0].startswith("big=") and len(res.terms) == 150 + 7 + 2
     # source: statsmodels GLM (test-only oracle)
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
 
 
@@ -170,7 +170,7 @@ def test_level_with_zero_weight_is_set_aside_and_the_rest_matches_statsmodels():
         family=sm.families.Poisson(),
         offset=np.log(frame["exposure"][kept]),
     ).fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=500)
-    got = pd.Series(res.params, index=res.terms).drop("big=B00017")
+    got = pd.Series(res.estimates, index=res.terms).drop("big=B00017")
     se = pd.Series(res.std_errors, index=res.terms).drop("big=B00017")
     # source: statsmodels GLM on the rows with weight > 0 (a zero prior weight drops a row
     # from the estimating equations)
@@ -193,7 +193,7 @@ def test_collinear_levels_across_two_factors_set_aside_the_later_one(big_first: 
         res = _fit(con)
     assert res.aliased_terms == (later,)
     x, ref = _sm_poisson(frame, [*order, "x1", "x2"], drop=[later])
-    got = pd.Series(res.params, index=res.terms).drop(later)
+    got = pd.Series(res.estimates, index=res.terms).drop(later)
     # source: statsmodels GLM on the design without the duplicated column
     assert_allclose(got[x.columns].to_numpy(), ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
 
@@ -216,7 +216,7 @@ def test_reference_level_with_zero_weight_sets_aside_the_last_level():
     ref = sm.GLM(
         kept["claims"], x, family=sm.families.Poisson(), offset=np.log(kept["exposure"])
     ).fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=500)
-    got = pd.Series(res.params, index=res.terms).drop(last)
+    got = pd.Series(res.estimates, index=res.terms).drop(last)
     # source: statsmodels GLM on the rows with weight > 0, last level's column left out
     assert_allclose(got[x.columns].to_numpy(), ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
 
@@ -360,7 +360,7 @@ def test_registry_stores_no_covariance_above_the_limit_and_intervals_name_it(tmp
     got = con.execute(
         "SELECT big, region, x1, x2, exposure, score_mean FROM many ORDER BY ALL LIMIT 50"
     ).df()
-    coef = dict(zip(res.terms, res.params, strict=True))
+    coef = dict(zip(res.terms, res.estimates, strict=True))
     eta = (
         coef["intercept"]
         + got["big"].map(lambda v: coef.get(f"big={v}", 0.0))
@@ -442,7 +442,7 @@ def test_three_thousand_levels_satisfy_the_score_equations():
     con = duckdb_table(frame, "book")
     res = _fit(con, max_levels=3_000)
     assert res.converged and len(res.terms) == 3_000 + 7 + 2
-    coef = pd.DataFrame({"term": res.terms, "b": res.params})
+    coef = pd.DataFrame({"term": res.terms, "b": res.estimates})
     con.register("coef", coef)
     # KKT of the Poisson likelihood (log link, canonical): sum over the rows of every
     # design column of y - mu is 0. mu from the coefficients by DuckDB, not by indb.
@@ -474,7 +474,7 @@ def test_three_thousand_levels_satisfy_the_score_equations():
     # standard errors at two levels against scipy's sparse LU of the same information
     # matrix X' diag(mu) X, built here from the data and the fitted means
     x = sparse.csc_array(_sparse_design(frame, res.terms))
-    eta = x @ np.nan_to_num(res.params) + np.log(frame["exposure"].to_numpy())
+    eta = x @ np.nan_to_num(res.estimates) + np.log(frame["exposure"].to_numpy())
     info = (x.T @ sparse.diags_array(np.exp(eta)) @ x).tocsc()
     lu = splinalg.splu(info)
     for term in ("big=B00003", "big=B02999", "x1", "intercept"):

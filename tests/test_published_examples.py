@@ -508,7 +508,7 @@ def test_fit_matches_published_values(case: Case, con: duckdb.DuckDBPyConnection
         _assert_printed(res.coef(term).std_error, printed, f"{case.id}: {term} std error")
     if case.published_deviance is not None:
         _assert_printed(res.deviance, case.published_deviance, f"{case.id}: deviance")
-    assert res.df_resid == case.published_df_resid
+    assert res.residual_df == case.published_df_resid
     for attribute, printed in case.published_extra.items():
         _assert_printed(getattr(res, attribute), printed, f"{case.id}: {attribute}")
 
@@ -520,7 +520,7 @@ def test_fit_matches_statsmodels(case: Case, con: duckdb.DuckDBPyConnection) -> 
     ref = case.statsmodels()
     assert res.converged
     assert res.terms == list(case.terms)
-    assert_allclose(res.params, ref.params, rtol=COEF_RTOL, atol=COEF_ATOL)
+    assert_allclose(res.estimates, ref.params, rtol=COEF_RTOL, atol=COEF_ATOL)
     assert_allclose(res.std_errors, ref.bse, rtol=COEF_RTOL)
     assert_allclose(res.covariance, ref.cov_params(), rtol=COEF_RTOL, atol=1e-14)
     assert_allclose(res.deviance, ref.deviance, rtol=DEVIANCE_RTOL)
@@ -528,10 +528,10 @@ def test_fit_matches_statsmodels(case: Case, con: duckdb.DuckDBPyConnection) -> 
     # the convention indb promises (api contract).
     assert_allclose(res.null_deviance, ref.null_deviance, rtol=DEVIANCE_RTOL)
     assert_allclose(res.pearson_chi2, ref.pearson_chi2, rtol=DEVIANCE_RTOL)
-    # Gamma: dispersion = Pearson chi2 / df_resid, statsmodels' default scale.
+    # Gamma: dispersion = Pearson chi2 / residual_df, statsmodels' default scale.
     # Poisson/binomial: fixed at 1, as in statsmodels.
     assert_allclose(res.dispersion, ref.scale, rtol=DEVIANCE_RTOL)
-    assert res.df_resid == ref.df_resid
+    assert res.residual_df == ref.df_resid
     assert res.n_used == ref.nobs
     assert res.n_excluded == 0
     # Log-likelihood: same definition as statsmodels' llf for these families (for gamma
@@ -603,15 +603,15 @@ def test_clotting_both_lots_with_interaction(con: duckdb.DuckDBPyConnection) -> 
     lot2_indicator = _indicator(lot, "2")
     exog = _design(lot2_indicator, log_u, lot2_indicator * log_u)
     ref = _sm_fit(seconds, exog, sm.families.Gamma(link=L.InversePower()))
-    assert_allclose(res.params, ref.params, rtol=COEF_RTOL)
+    assert_allclose(res.estimates, ref.params, rtol=COEF_RTOL)
     assert_allclose(res.std_errors, ref.bse, rtol=COEF_RTOL)
     assert_allclose(res.deviance, ref.deviance, rtol=DEVIANCE_RTOL)
     assert_allclose(res.dispersion, ref.scale, rtol=DEVIANCE_RTOL)
-    assert res.df_resid == 14
+    assert res.residual_df == 14
 
 
 def test_ships_structural_zeros_left_out(con: duckdb.DuckDBPyConnection) -> None:
     """The book fits 34 of the 40 cells (six have no ships): 34 - 9 = 25 residual df."""
     res = _fit_case(SHIPS, con)
     assert res.n_used == len(_ships_used()) == 34
-    assert res.df_resid == 25
+    assert res.residual_df == 25

@@ -126,17 +126,17 @@ def test_pearson_chi2(fitted: tuple[ReferenceCase, Any, dict[str, Any]]) -> None
 
 def test_dispersion(fitted: tuple[ReferenceCase, Any, dict[str, Any]]) -> None:
     # Same as statsmodels' default scale: 1 for binomial/poisson/negative binomial, Pearson
-    # chi2 / df_resid otherwise.
+    # chi2 / residual_df otherwise.
     _, res, want = fitted
     assert res.dispersion_estimated == want["dispersion_estimated"]
     assert_allclose(res.dispersion, want["scale"], rtol=RTOL_STAT)
 
 
 def test_degrees_of_freedom(fitted: tuple[ReferenceCase, Any, dict[str, Any]]) -> None:
-    # statsmodels: df_resid = sum of frequency weights (or rows) - rank.
+    # statsmodels: residual_df = sum of frequency weights (or rows) - rank.
     _, res, want = fitted
     assert res.n_used == want["rows"]
-    assert res.df_resid == pytest.approx(want["df_resid"], abs=1e-9)
+    assert res.residual_df == pytest.approx(want["residual_df"], abs=1e-9)
 
 
 def test_log_likelihood(fitted: tuple[ReferenceCase, Any, dict[str, Any]]) -> None:

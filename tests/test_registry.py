@@ -9,6 +9,7 @@ statsmodels GLM on the same data. Every test gets a fresh DuckDB file in ``tmp_p
 
 from __future__ import annotations
 
+import json
 import signal
 import subprocess
 import sys
@@ -155,7 +156,7 @@ def test_round_trip_versions_compare_promote_rollback_drop(db: str):
         for fitted, k in ((v1, 1), (v2, 2)):
             loaded = reg.load("ship_damage", k)
             assert loaded.terms == fitted.terms
-            assert_array_equal(loaded.params, fitted.params)
+            assert_array_equal(loaded.estimates, fitted.estimates)
             assert_array_equal(loaded.std_errors, fitted.std_errors)
             assert_array_equal(loaded.covariance, fitted.covariance)
             assert loaded.deviance == fitted.deviance and loaded.n_used == fitted.n_used
@@ -163,7 +164,7 @@ def test_round_trip_versions_compare_promote_rollback_drop(db: str):
         for frame, k in ((full, 1), (reduced, 2)):
             loaded = reg.load("ship_damage", k)
             oracle = _oracle(frame, loaded)
-            assert_allclose(loaded.params, oracle.params.to_numpy(), rtol=COEF_RTOL)
+            assert_allclose(loaded.estimates, oracle.params.to_numpy(), rtol=COEF_RTOL)
             assert_allclose(loaded.std_errors, oracle.bse.to_numpy(), rtol=COEF_RTOL)
             assert_allclose(loaded.deviance, oracle.deviance, rtol=COEF_RTOL)
 
@@ -233,7 +234,7 @@ def test_idempotent_refit_and_new_version_on_request(db: str):
     again = _fit_ships(db, name="ship_damage")
     assert again.deployment["created"] is False
     assert again.deployment["version"] == first.deployment["version"] == 1
-    assert_array_equal(again.params, first.params)  # same spec, same data: same numbers
+    assert_array_equal(again.estimates, first.estimates)  # same spec, same data: same numbers
     assert snapshot(db) == before  # nothing recorded, view untouched
 
     forced = _fit_ships(db, name="ship_damage", new_version=True)
@@ -241,7 +242,7 @@ def test_idempotent_refit_and_new_version_on_request(db: str):
     with _registry(db) as reg:
         assert [v["version"] for v in reg.versions("ship_damage")] == [1, 2]
         assert reg.model("ship_damage")["live_version"] == 2
-        assert_array_equal(reg.load("ship_damage", 2).params, first.params)
+        assert_array_equal(reg.load("ship_damage", 2).estimates, first.estimates)
 
 
 # -- atomicity ------------------------------------------------------------------------
@@ -511,3 +512,45 @@ def test_a_changed_spec_is_held_unless_promoted(tmp_path: Path) -> None:
             db, name="ship_damage", predictors=["type"], reference={"type": "A"}, promote=True
         )
     assert asked.deployment["promoted"] is True and live() == 4
+
+
+def test_a_registry_written_by_indb_0_1_gets_todays_names(db: str) -> None:
+    # indb 0.1 named three registry columns and six result keys otherwise: rebuild that
+    # layout from a version written today, then record a second version over it.
+    _write(db, "ships", _ships())
+    v1 = _fit_ships(db, name="ship_damage")
+    earlier = {"wald": "statistic", "p_two_sided": "p_value", "residual_df": "df_resid"}
+    stored = v1.to_dict()
+    for c in stored["coefficients"]:
+        for new, old in (("wald", "statistic"), ("p_two_sided", "p_value")):
+            c[old] = c.pop(new)
+        c["ci_low"], c["ci_high"] = c.pop("lower_bound"), c.pop("upper_bound")
+    stored["df_model"], stored["df_resid"] = stored.pop("model_df"), stored.pop("residual_df")
+    with duckdb.connect(db) as con:
+        for table, new in (("version_term", "wald"), ("version_term", "p_two_sided")):
+            con.execute(f"ALTER TABLE indb_registry.{table} RENAME {new} TO {earlier[new]}")
+        con.execute("ALTER TABLE indb_registry.model_version RENAME residual_df TO df_resid")
+        con.execute("UPDATE indb_registry.model_version SET result_json = ?", [json.dumps(stored)])
+
+    with _registry(db) as reg:  # reading needs no change to the tables
+        old = reg.load("ship_damage", 1)
+    assert_array_equal(old.estimates, v1.estimates)
+    assert [c.lower_bound for c in old.coefficients] == [c.lower_bound for c in v1.coefficients]
+    assert (old.residual_df, old.model_df) == (v1.residual_df, v1.model_df)
+
+    v2 = _fit_ships(db, name="ship_damage", new_version=True)
+    assert v2.deployment["version"] == 2
+    columns = _query(
+        db,
+        "SELECT table_name, column_name FROM information_schema.columns "
+        "WHERE table_schema = 'indb_registry' AND table_name IN ('version_term', "
+        "'model_version')",
+    )
+    names = set(columns["column_name"])
+    assert {"wald", "p_two_sided", "residual_df"} <= names
+    assert not names & set(earlier.values())
+    terms = _query(db, "SELECT version, wald FROM indb_registry.version_term ORDER BY 1")
+    # version 1's row was renamed in place: its Wald values are still there
+    assert_allclose(
+        terms[terms["version"] == 1]["wald"].to_numpy(), [c.wald for c in v1.coefficients]
+    )

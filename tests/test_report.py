@@ -17,9 +17,10 @@ import duckdb
 import pandas as pd
 import pytest
 import statsmodels.api as sm
+from scipy import stats
 
 import indb
-from indb.report import CAUTION, render_json, render_report
+from indb.report import CAUTION, _fmt_p, render_json, render_report
 
 # Printed numbers carry at least five significant digits (indb/report.py); 1e-4 leaves room
 # for the rounding of the last printed digit.
@@ -95,16 +96,21 @@ def test_poisson_log_report_has_z_ratios_relativities_and_caution(con):
     oracle = sm.GLM(data["EXECUTIONS"], exog, family=sm.families.Poisson()).fit()
 
     header = _header(report)
-    assert "z ratio" in header and "t ratio" not in header
+    assert "Wald z" in header and "Wald t" not in header
     assert "relativity" in header and "odds factor" not in header
-    assert "95% low" in header and "95% high" in header
-    assert "Wald z ratios" in _flat(report)
+    assert "95% interval" in header and "two-sided p" in header
+    assert "referred to the normal distribution" in _flat(report)
     for term in exog.columns:
         cells = _row(report, term)
         estimate, std_error, relativity = float(cells[0]), float(cells[1]), float(cells[-1])
         assert estimate == pytest.approx(oracle.params[term], rel=PRINT_RTOL), term
         assert std_error == pytest.approx(oracle.bse[term], rel=PRINT_RTOL), term
         assert relativity == pytest.approx(math.exp(oracle.params[term]), rel=PRINT_RTOL), term
+        # the interval cell is "low .. high", oracle statsmodels' conf_int (normal quantiles)
+        low, dots, high = cells[4:7]
+        assert dots == ".."
+        assert float(low) == pytest.approx(oracle.conf_int().loc[term, 0], rel=PRINT_RTOL), term
+        assert float(high) == pytest.approx(oracle.conf_int().loc[term, 1], rel=PRINT_RTOL), term
     assert "fixed by the family" in _kv(report, "dispersion")
     assert float(_kv(report, "deviance").split()[0]) == pytest.approx(
         oracle.deviance, rel=PRINT_RTOL
@@ -124,9 +130,9 @@ def test_gaussian_report_has_t_ratios_estimated_dispersion_and_tiny_p_values(con
     report = render_report(res)
 
     header = _header(report)
-    assert "t ratio" in header and "z ratio" not in header
+    assert "Wald t" in header and "Wald z" not in header
     assert "relativity" not in header and "odds factor" not in header
-    assert f"Wald t ratios on {int(res.df_resid)} residual df" in _flat(report)
+    assert f"referred to t on {int(res.residual_df)} residual df" in _flat(report)
     assert "estimated" in _kv(report, "dispersion")
 
     # Oracle: statsmodels GLM Gaussian; firm in treatment coding against the reference
@@ -135,16 +141,29 @@ def test_gaussian_report_has_t_ratios_estimated_dispersion_and_tiny_p_values(con
     exog = pd.DataFrame({"intercept": 1.0, "value": data["value"], "capital": data["capital"]})
     for level in levels[1:]:
         exog[f"firm={level}"] = (data["firm"] == level).astype(float)
-    # use_t=True: statsmodels GLM reports normal p-values unless asked for t (df_resid).
+    # use_t=True: statsmodels GLM reports normal p-values unless asked for t (residual_df).
     oracle = sm.GLM(data["invest"], exog, family=sm.families.Gaussian()).fit(use_t=True)
     for term in exog.columns:
         cells = _row(report, term)
         assert float(cells[0]) == pytest.approx(oracle.params[term], rel=PRINT_RTOL), term
         p_cell = cells[3]
-        if oracle.pvalues[term] < 1e-16:
-            assert p_cell == "<1e-16", term
+        if oracle.pvalues[term] < 1e-4:  # two significant digits: 1.2e-34
+            assert float(p_cell) == pytest.approx(oracle.pvalues[term], rel=0.05), term
         else:
             assert float(p_cell) == pytest.approx(oracle.pvalues[term], rel=0.05, abs=1e-4)
+    assert min(oracle.pvalues) < 1e-16  # the case has tiny p-values, printed in full
+
+
+def test_p_values_below_the_smallest_double_keep_their_power_of_ten():
+    # Oracle: scipy.stats.norm.logsf (log tail area, no underflow); a Wald z of 50 has
+    # two-sided p = 2.2e-545, far below the smallest double, so the stored p is 0.
+
+    log10_p = (math.log(2) + stats.norm.logsf(50.0)) / math.log(10)
+    power = math.floor(log10_p)
+    assert _fmt_p(0.0, 50.0, "z") == f"{10 ** (log10_p - power):.1f}e{power}"
+    assert _fmt_p(0.0, -50.0, "z").endswith("e-545")
+    assert _fmt_p(0.0, 60.0, "t", 30.0) == _fmt_p(0.0, -60.0, "t", 30.0)
+    assert _fmt_p(3.2e-7) == "3.2e-07" and _fmt_p(0.04567) == "0.0457"
 
 
 def test_logit_report_shows_odds_factor(con):
@@ -154,7 +173,7 @@ def test_logit_report_shows_odds_factor(con):
     report = render_report(res)
     header = _header(report)
     assert "odds factor" in header and "relativity" not in header
-    assert "z ratio" in header
+    assert "Wald z" in header
     exog = sm.add_constant(data[["GPA", "TUCE", "PSI"]]).rename(columns={"const": "intercept"})
     # Oracle: statsmodels GLM Binomial (logit) on the same data.
     oracle = sm.GLM(data["GRADE"], exog, family=sm.families.Binomial()).fit()
@@ -217,7 +236,7 @@ def test_missing_numbers_print_as_na_and_json_stays_strict(con):
     assert parsed["log_likelihood"] is None and parsed["aic"] is None
     assert parsed["family"] == "tweedie"
     assert [c["term"] for c in parsed["coefficients"]] == res.terms
-    assert parsed["coefficients"][1]["estimate"] == pytest.approx(res.params[1], rel=1e-15)
+    assert parsed["coefficients"][1]["estimate"] == pytest.approx(res.estimates[1], rel=1e-15)
 
 
 def test_width_sets_the_rules_and_wrapping(con):

@@ -86,12 +86,12 @@ def test_sample_start_reaches_statsmodels_and_the_standard_start(
     )[sampled.terms]
     kw = {"offset": np.log(fair[offset])} if offset else {}
     ref = sm.GLM(fair[response].astype(float), X, family=family, **kw).fit(tol=1e-13)
-    assert_allclose(sampled.params, ref.params, rtol=1e-7, atol=1e-10)
+    assert_allclose(sampled.estimates, ref.params, rtol=1e-7, atol=1e-10)
     assert_allclose(sampled.std_errors, ref.bse, rtol=1e-7)
     assert_allclose(sampled.deviance, ref.deviance, rtol=1e-10)
     assert_allclose(sampled.null_deviance, ref.null_deviance, rtol=1e-10)
     assert_allclose(sampled.pearson_chi2, ref.pearson_chi2, rtol=1e-8)
-    assert_allclose(sampled.params, standard.params, rtol=1e-9, atol=1e-12)
+    assert_allclose(sampled.estimates, standard.estimates, rtol=1e-9, atol=1e-12)
     assert_allclose(sampled.aic, standard.aic, rtol=1e-12)
     # the sample table is gone
     left = con.execute("SELECT table_name FROM duckdb_tables() WHERE temporary").fetchall()
@@ -116,7 +116,7 @@ def test_a_sample_missing_levels_still_starts_the_fit(
     ref = indb.fit("fair", "children", "poisson", offset="ln(years)", sample_start="never", **opts)
     assert "sample fit" in res.path
     assert res.converged
-    assert_allclose(res.params, ref.params, rtol=1e-8, atol=1e-10)
+    assert_allclose(res.estimates, ref.estimates, rtol=1e-8, atol=1e-10)
     assert_allclose(res.std_errors, ref.std_errors, rtol=1e-8)
     assert_allclose(res.deviance, ref.deviance, rtol=1e-11)
 

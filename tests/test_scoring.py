@@ -217,7 +217,7 @@ def test_gamma_log_view_matches_statsmodels_with_t_intervals(db: str):
     )
     assert res.test == "t"
     view = _query(db, "SELECT * FROM yes_vote ORDER BY row_id")
-    # use_t=True: the dispersion is estimated, so indb's intervals use t on df_resid (API
+    # use_t=True: the dispersion is estimated, so indb's intervals use t on residual_df (API
     # contract); statsmodels uses the normal distribution unless asked.
     oracle = _oracle(data, res, "YES", sm.families.Gamma(sm.families.links.Log()), use_t=True)
     _assert_view_matches(view, oracle, _exog(data, res))

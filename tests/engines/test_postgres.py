@@ -99,7 +99,7 @@ def test_enum_and_numeric_columns_fit_like_duckdb(pg_url: str, engine: PostgresE
     con.close()
     # enum levels are categorical like VARCHAR (reference: the most frequent, 'no')
     assert res.terms == ref.terms == ["intercept", "gpa", "tuce", "psi=yes"]
-    assert_allclose(res.params, ref.params, rtol=1e-9)
+    assert_allclose(res.estimates, ref.estimates, rtol=1e-9)
     assert_allclose(res.std_errors, ref.std_errors, rtol=1e-9)
 
 
@@ -121,7 +121,7 @@ def test_compressed_fit_uses_a_temporary_table(engine: PostgresEngine) -> None:
     ref = indb.fit("fair_pg", "had_affair", "binomial", db=con, compress="never", **kw)
     con.close()
     assert res.terms == ref.terms
-    assert_allclose(res.params, ref.params, rtol=1e-9)
+    assert_allclose(res.estimates, ref.estimates, rtol=1e-9)
     assert_allclose(res.std_errors, ref.std_errors, rtol=1e-9)
     assert_allclose(res.deviance, ref.deviance, rtol=1e-9)
     assert np.isfinite(res.log_likelihood)
@@ -156,7 +156,7 @@ def test_compressed_poisson_with_offset_and_nulls(engine: PostgresEngine) -> Non
     assert res.terms == ref.terms
     assert res.n_excluded == ref.n_excluded == frame["children"].isna().sum()
     assert res.excluded_by_column == ref.excluded_by_column == {"children": res.n_excluded}
-    assert_allclose(res.params, ref.params, rtol=1e-8)
+    assert_allclose(res.estimates, ref.estimates, rtol=1e-8)
     for attr in ("deviance", "null_deviance", "log_likelihood", "pearson_chi2"):
         assert_allclose(getattr(res, attr), getattr(ref, attr), rtol=1e-9, err_msg=attr)
 
@@ -186,7 +186,7 @@ def test_nearly_separated_probit_and_cloglog(engine: PostgresEngine, link: str) 
     con.close()
     pg_load(engine.con, "cancer_bc", frame)
     res = indb.fit("cancer_bc", "malignant", "binomial", link, db=engine, tol=1e-13)
-    assert_allclose(res.params, ref.params, rtol=1e-9)
+    assert_allclose(res.estimates, ref.estimates, rtol=1e-9)
 
 
 # -- a psycopg connection of the caller's ---------------------------------------------------------
@@ -290,7 +290,7 @@ def test_outside_a_transaction_the_fit_commits_and_puts_everything_back(
     before = _settings(caller)
     res = _named_fit(caller)
     ref = _statsmodels_spector()
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-9)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=1e-9)
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=1e-8)
     # the connection is as it was: autocommit off, no transaction left open, same settings
     assert caller.autocommit is False
@@ -320,7 +320,7 @@ def test_an_autocommit_connection_keeps_its_settings(pg_con: Any) -> None:
     before = _settings(pg_con)
     pg_load(pg_con, "spector_caller_ac", smd.spector.load_pandas().data)
     res = indb.fit("spector_caller_ac", "GRADE", "binomial", db=pg_con, tol=1e-13)
-    assert_allclose(res.params, _statsmodels_spector().params.to_numpy(), rtol=1e-9)
+    assert_allclose(res.estimates, _statsmodels_spector().params.to_numpy(), rtol=1e-9)
     assert pg_con.autocommit is True
     assert _settings(pg_con) == before
     pg_con.execute("DROP TABLE spector_caller_ac")

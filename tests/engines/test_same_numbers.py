@@ -208,7 +208,7 @@ def test_same_numbers(
     assert res.n_used == ref.n_used and res.n_excluded == ref.n_excluded
 
     pairs = {
-        "coef": (res.params, ref.params),
+        "coef": (res.estimates, ref.estimates),
         "se": (res.std_errors, ref.std_errors),
         "deviance": (res.deviance, ref.deviance),
         "null_deviance": (res.null_deviance, ref.null_deviance),
@@ -221,8 +221,8 @@ def test_same_numbers(
         record_spread(engine, quantity, _rel(got, want), case.id)
     # a coefficient near 0 next to its standard error (grunfeld: firm=Goodyear 0.43 with SE 58,
     # cond(X'WX) ~ 6e5) meets 1e-9 relative only by luck; 1e-10 SE is statistically invisible
-    off = np.abs(res.params - ref.params) > (
-        RTOL_ENGINE * np.abs(ref.params) + ATOL_ENGINE_IN_SE * ref.std_errors
+    off = np.abs(res.estimates - ref.estimates) > (
+        RTOL_ENGINE * np.abs(ref.estimates) + ATOL_ENGINE_IN_SE * ref.std_errors
     )
     assert not off.any(), f"coefficients vs DuckDB: {np.array(res.terms)[off]}"
     for quantity, (got, want) in pairs.items():
@@ -232,7 +232,7 @@ def test_same_numbers(
     want = oracle(case.id)
     se = np.array([want["bse"][t] for t in res.terms])
     coef = np.array([want["params"][t] for t in res.terms])
-    off = np.abs(res.params - coef) > RTOL_ORACLE * np.abs(coef) + ATOL_COEF_IN_SE * se
+    off = np.abs(res.estimates - coef) > RTOL_ORACLE * np.abs(coef) + ATOL_COEF_IN_SE * se
     assert not off.any(), f"coefficients vs statsmodels: {np.array(res.terms)[off]}"
     assert_allclose(res.std_errors, se, rtol=RTOL_ORACLE, err_msg="standard errors vs statsmodels")
     assert_allclose(res.deviance, want["deviance"], rtol=RTOL_ORACLE_DEVIANCE)

@@ -78,7 +78,7 @@ def test_parquet_glob_source_matches_duckdb(engine: SparkEngine, tmp_path: Path)
     ref = indb.fit(source, "cancer", "poisson", db=duckdb.connect(), **kw)
     assert res.n_used == ref.n_used == 301
     assert res.terms == ref.terms
-    assert_allclose(res.params, ref.params, rtol=1e-9)
+    assert_allclose(res.estimates, ref.estimates, rtol=1e-9)
     assert_allclose(res.std_errors, ref.std_errors, rtol=1e-9)
     assert_allclose(res.log_likelihood, ref.log_likelihood, rtol=1e-9)
 
@@ -104,7 +104,7 @@ def test_compressed_fit_uses_a_cached_view(engine: SparkEngine, tmp_path: Path) 
     assert not [v for v in views if v.startswith("indb_fold_")]  # dropped after the fit
     ref = indb.fit(str(path), "had_affair", "binomial", db=duckdb.connect(), **kw)
     assert res.terms == ref.terms
-    assert_allclose(res.params, ref.params, rtol=1e-9)
+    assert_allclose(res.estimates, ref.estimates, rtol=1e-9)
     assert_allclose(res.std_errors, ref.std_errors, rtol=1e-9)
 
 
@@ -124,7 +124,7 @@ def test_a_callers_session_keeps_its_settings_and_views(spark_local: Any, tmp_pa
     )
     ref = sm.GLM(d["GRADE"], sm.add_constant(d[["GPA", "TUCE", "PSI"]]), sm.families.Binomial())
     ref = ref.fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=200)
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-9)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=1e-9)
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=1e-8)
     assert spark_local.conf.getAll == conf
     assert {t.name for t in spark_local.catalog.listTables() if t.isTemporary} == views

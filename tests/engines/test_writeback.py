@@ -129,7 +129,7 @@ def test_postgres_registry_views_promote_and_rollback(pg_url: str, pg_con: Any) 
         pg_con, f'SELECT term, estimate FROM "{schema}".version_term ORDER BY position'
     )
     assert terms["term"].tolist() == r1.terms
-    assert_allclose(terms["estimate"].to_numpy(float), r1.params, rtol=0)  # exact round trip
+    assert_allclose(terms["estimate"].to_numpy(float), r1.estimates, rtol=0)  # exact round trip
     check_scores(pg_frame(pg_con, "SELECT * FROM ships_m"), frame, r1)
 
     # version 2 adds interval columns: PostgreSQL cannot change a view's columns with
@@ -171,7 +171,7 @@ def test_postgres_registry_views_promote_and_rollback(pg_url: str, pg_con: Any) 
             reg.drop("ships_m", 1)
         cmp = reg.compare("ships_m", 1, 2)
         assert [t["term"] for t in cmp["terms"]] == r1.terms
-        assert_allclose(reg.load("ships_m", 2).params, r2.params, rtol=0)
+        assert_allclose(reg.load("ships_m", 2).estimates, r2.estimates, rtol=0)
         events = [e["action"] for e in reg.events("ships_m")]
         assert events.count("promote") == 3 and events[-1] == "drop"
     finally:
@@ -258,7 +258,7 @@ def test_spark_temporary_views_and_append_only_registry(spark_ships: Any) -> Non
     assert {v["version"]: v["status"] for v in reg.versions("ships_t")}[2] == "dropped"
     with pytest.raises(RegistryError, match="is live; promote another version first"):
         reg.drop("ships_t", 1)
-    assert_allclose(reg.load("ships_t", 2).params, r2.params, rtol=0)
+    assert_allclose(reg.load("ships_t", 2).estimates, r2.estimates, rtol=0)
     assert [t["term"] for t in reg.compare("ships_t", 1, 2)["terms"]] == r1.terms
     # nothing was ever updated: one record per version, the statuses come from events
     records = spark_frame(session, f"SELECT version, status FROM {schema}.version_record")
@@ -315,7 +315,7 @@ def _refit_asking_for_intervals(db: Any, kw: dict[str, Any]) -> FitResult:
     assert fit_ships(db, **kw).deployment["created"] is False
     r2 = fit_ships(db, intervals=True, **kw)
     assert (r2.deployment["version"], r2.deployment["created"]) == (2, True)
-    assert_allclose(r2.params, r1.params, rtol=0)  # same spec, same data, same estimate
+    assert_allclose(r2.estimates, r1.estimates, rtol=0)  # same spec, same data, same estimate
     again = fit_ships(db, intervals=True, **kw)
     assert (again.deployment["version"], again.deployment["created"]) == (2, False)
     return r2

@@ -264,15 +264,15 @@ def test_one_row_intercept_only_gaussian_and_poisson(con: duckdb.DuckDBPyConnect
     # (statsmodels cannot start IRLS on one gaussian row: its first deviance is NaN; the
     # least-squares estimate of a mean from one observation is that observation.)
     res, caught = fit_quiet(one, "GPA", db=con, exclude=["TUCE"])
-    assert_allclose(res.params, row["GPA"].to_numpy(), rtol=1e-12)
-    assert res.df_resid == 0 and math.isnan(res.dispersion) and math.isnan(res.std_errors[0])
+    assert_allclose(res.estimates, row["GPA"].to_numpy(), rtol=1e-12)
+    assert res.residual_df == 0 and math.isnan(res.dispersion) and math.isnan(res.std_errors[0])
     # issue 11: zero residual df is said, not left to the NaNs (was: no warning at all)
     assert res.n_used == 1 and [w.category for w in caught] == [ResidualDfWarning]
     assert re.search(q("residual degrees of freedom are 0", "NaN"), str(caught[0].message))
 
     res, caught = fit_quiet(one, "TUCE", "poisson", db=con, exclude=["GPA"], tol=TOL)
     ref = R.sm_fit(row["TUCE"], X, "poisson")
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-12)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=1e-12)
     # Poisson: dispersion fixed at 1, so the SE exists: 1 / sqrt(y) on the log scale
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=1e-9)
     assert res.deviance == pytest.approx(0.0, abs=1e-12)
@@ -300,11 +300,11 @@ def test_more_terms_than_rows_aliases_the_surplus(
     with pytest.warns(AliasingWarning, match=q("3 design column(s)", "'s1', 's2', 's3'")):
         res = indb.fit("tiny", "target", family, link, db=con, tol=TOL)
     assert res.aliased_terms == ("s1", "s2", "s3")
-    assert res.df_resid == 0
+    assert res.residual_df == 0
     X = R.design(frame, ["age", "bmi", "bp"])
     ref = R.sm_fit(frame["target"], X, family, R.sm.families.links.Log() if link else None)
     # exact interpolation: both solve a square system; conditioning (~1e5) limits agreement
-    assert_allclose(res.params[:4], ref.params.to_numpy(), rtol=1e-6)
+    assert_allclose(res.estimates[:4], ref.params.to_numpy(), rtol=1e-6)
     assert all(math.isnan(res.coef(t).estimate) for t in ("s1", "s2", "s3"))
 
 
@@ -324,7 +324,7 @@ def test_categorical_with_more_levels_than_rows(con: duckdb.DuckDBPyConnection) 
     ref = R.sm_fit(frame["GPA"], X, "gaussian")
     # a saturated fit: the group values themselves (statsmodels interpolates exactly too)
     assert_allclose([res.coef(t).estimate for t in X.columns], ref.params, rtol=1e-9)
-    assert res.df_resid == 0
+    assert res.residual_df == 0
 
 
 def test_zero_frequency_weights_drop_rows_exactly(con: duckdb.DuckDBPyConnection) -> None:
@@ -372,7 +372,7 @@ def test_zero_weights_leave_a_single_informative_row(con: duckdb.DuckDBPyConnect
             weight="w",
         )
     assert_allclose(res.coef("intercept").estimate, gpa, rtol=1e-12)
-    assert res.df_resid == 0 and math.isnan(res.dispersion)
+    assert res.residual_df == 0 and math.isnan(res.dispersion)
 
 
 # =============================================================================================
@@ -421,7 +421,7 @@ def test_constant_huge_offset_gives_the_shifted_fit(
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
     # intercept: b0 - shift, to the precision a double holds next to |shift|
     assert_allclose(
-        res.params[0] + shift, ref.params["intercept"], rtol=RTOL, atol=1e-12 * abs(shift)
+        res.estimates[0] + shift, ref.params["intercept"], rtol=RTOL, atol=1e-12 * abs(shift)
     )
     assert_allclose(res.deviance, ref.deviance, rtol=1e-8)
 
@@ -509,7 +509,7 @@ def test_varying_offset_beyond_exp_range_converges_to_the_right_answer(
         frame[["GRADE", "PSI"]].to_numpy(float),
         300 * frame["GPA"].to_numpy(float),
     )
-    assert_allclose(res.params, ref, rtol=1e-6)
+    assert_allclose(res.estimates, ref, rtol=1e-6)
 
 
 # =============================================================================================
@@ -781,7 +781,7 @@ def test_predictors_at_1e_minus_12_and_1e12_in_one_model(
     X = pd.DataFrame({"intercept": 1.0, "tiny": d["bmi"], "huge": d["bp"], "s5": d["s5"]})
     ref = R.sm_fit(y, X, family, R.sm.families.links.Log() if link else None)
     factor = np.array([1.0, 1e12, 1e-12, 1.0])
-    assert_allclose(res.params, ref.params.to_numpy() * factor, rtol=RTOL)
+    assert_allclose(res.estimates, ref.params.to_numpy() * factor, rtol=RTOL)
     assert_allclose(res.std_errors, ref.bse.to_numpy() * factor, rtol=RTOL)
     # standardisation keeps the information matrix well conditioned despite the scales
     assert res.condition_number < 100
@@ -795,7 +795,7 @@ def test_response_at_extreme_scale(con: duckdb.DuckDBPyConnection, scale: float)
     R.load(con, "yscaled", frame)
     res = indb.fit("yscaled", "y", db=con, tol=TOL)
     ref = R.sm_fit(d["target"], R.design(frame, ["bmi", "bp"]), "gaussian")
-    assert_allclose(res.params, ref.params.to_numpy() * scale, rtol=RTOL)
+    assert_allclose(res.estimates, ref.params.to_numpy() * scale, rtol=RTOL)
     assert_allclose(res.std_errors, ref.bse.to_numpy() * scale, rtol=RTOL)
 
 

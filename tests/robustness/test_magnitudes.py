@@ -133,9 +133,9 @@ def test_gaussian_response_far_from_zero_keeps_its_digits(
     assert_allclose(res.dispersion, disp, rtol=RTOL)
     assert_allclose(res.deviance, float(oracle["rss"]), rtol=RTOL)
     assert_allclose(res.std_errors, exact_se(oracle), rtol=RTOL)
-    assert_allclose(res.params[1:], beta[1:], rtol=RTOL)
+    assert_allclose(res.estimates[1:], beta[1:], rtol=RTOL)
     # the intercept is base + a small number: exact up to the rounding of that sum
-    assert_allclose(res.params[0], beta[0], rtol=RTOL, atol=2 * np.spacing(abs(base) + 1.0))
+    assert_allclose(res.estimates[0], beta[0], rtol=RTOL, atol=2 * np.spacing(abs(base) + 1.0))
     # second oracle, statsmodels on the shifted response (exact in doubles: y - base)
     ols = sm.OLS(np.asarray(y - base), sm.add_constant(d[["GPA", "TUCE"]])).fit()
     assert_allclose(res.std_errors, ols.bse.to_numpy(), rtol=1e-8)
@@ -163,15 +163,15 @@ def test_gaussian_response_near_1e200_gives_exact_standard_errors(
         q("response column 'y' is so large", "reported as infinite"), str(caught[0].message)
     )
     oracle = exact_ols(list(y), [d["GPA"], d["PSI"]])
-    assert_allclose(res.params, [float(b) for b in oracle["beta"]], rtol=RTOL)
+    assert_allclose(res.estimates, [float(b) for b in oracle["beta"]], rtol=RTOL)
     assert_allclose(res.std_errors, exact_se(oracle), rtol=RTOL)
     assert all(1e190 < se < 1e200 for se in res.std_errors)
     assert math.isinf(res.deviance) and math.isinf(res.dispersion)
     # t statistics and p-values are scale-free: statsmodels OLS on y / 1e200 (a rounding
     # per value, far below the rtol)
     ols = sm.OLS(np.asarray(y / 1e200), sm.add_constant(d[["GPA", "PSI"]])).fit()
-    assert_allclose([c.statistic for c in res.coefficients], ols.tvalues.to_numpy(), rtol=1e-8)
-    assert_allclose([c.p_value for c in res.coefficients], ols.pvalues.to_numpy(), rtol=1e-6)
+    assert_allclose([c.wald for c in res.coefficients], ols.tvalues.to_numpy(), rtol=1e-8)
+    assert_allclose([c.p_two_sided for c in res.coefficients], ols.pvalues.to_numpy(), rtol=1e-6)
     n = oracle["n"]
     ll = -0.5 * n * (math.log(2 * math.pi) + frac_log(oracle["rss"] / n) + 1.0)
     assert_allclose(res.log_likelihood, ll, rtol=RTOL)
@@ -223,7 +223,7 @@ def test_predictor_near_1e160(con: duckdb.DuckDBPyConnection, transform, unscale
     assert_allclose(res.coef("PSI").estimate, b[2], rtol=RTOL_SM)
     assert_allclose(res.dispersion, ref.scale, rtol=RTOL_SM)
     # the source's intercept extrapolates to x = 0: b0 - slope * level
-    assert_allclose(res.params[0], b[0] - b[1] * level / factor, rtol=1e-6)
+    assert_allclose(res.estimates[0], b[0] - b[1] * level / factor, rtol=1e-6)
 
 
 def test_uncentred_predictor_near_1e160_in_an_interaction(
@@ -247,7 +247,7 @@ def test_uncentred_predictor_near_1e160_in_an_interaction(
     )
     ref = R.sm_fit(d["TUCE"], X, "gaussian")
     scale = np.array([1.0, 1e-160, 1.0, 1e-160])
-    assert_allclose(res.params, ref.params.to_numpy() * scale, rtol=RTOL_SM)
+    assert_allclose(res.estimates, ref.params.to_numpy() * scale, rtol=RTOL_SM)
     assert_allclose(res.std_errors, ref.bse.to_numpy() * scale, rtol=RTOL_SM)
 
 
@@ -322,7 +322,7 @@ def test_family_at_extreme_response_magnitude(
     if p == 1.0:
         se = se * scale ** (p / 2.0 - 1.0)
     # statsmodels' IRLS stops within ~1e-7 of the optimum on the non-canonical links
-    assert_allclose(res.params, b, rtol=RTOL_SM, atol=1e-9 * np.abs(b).max())
+    assert_allclose(res.estimates, b, rtol=RTOL_SM, atol=1e-9 * np.abs(b).max())
     assert_allclose(res.std_errors, se, rtol=RTOL_SM)
     ln_dev = math.log(ref.deviance) + (2.0 - p) * math.log(scale)
     overflow = not math.log(sys.float_info.min) < ln_dev < math.log(sys.float_info.max)
@@ -366,7 +366,7 @@ def test_constant_weights_of_any_size_give_unit_weight_estimates(
     n_df_positive = size * len(d) > len(predictors) + 1
     expected = [] if kind == "weight" or n_df_positive else [ResidualDfWarning]
     assert [w.category for w in caught] == expected, [str(w.message) for w in caught]
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-10)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=1e-10)
     assert_allclose(res.std_errors, ref.bse.to_numpy() / math.sqrt(size), rtol=1e-8)
     assert_allclose(res.deviance, ref.deviance * size, rtol=1e-10)
     assert_allclose(res.log_likelihood, ref.llf * size, rtol=1e-10)
@@ -381,7 +381,7 @@ def test_gaussian_prior_weights_of_any_size(con: duckdb.DuckDBPyConnection, size
     res, caught = fit_caught("gw", "TUCE", db=con, predictors=["GPA", "PSI"], weight="c", tol=TOL)
     assert not caught
     ref = R.sm_fit(d["TUCE"], R.design(d, ["GPA", "PSI"]), "gaussian")
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-10)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=1e-10)
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=1e-10)
     assert_allclose(res.dispersion, ref.scale * size, rtol=1e-10)
     assert_allclose(res.log_likelihood, ref.llf, rtol=1e-10)
@@ -392,7 +392,7 @@ def test_fractional_frequency_weights_count_fractional_rows(
 ) -> None:
     # Documented meaning: a frequency weight is a (possibly fractional) count of rows; the
     # residual df are their sum minus the coefficients. Oracle: statsmodels GLM with the same
-    # freq_weights (its df_resid is sum(freq_weights) - rank, the same convention).
+    # freq_weights (its residual_df is sum(freq_weights) - rank, the same convention).
     d = R.spector()
     f = 0.5 + 0.25 * d["PSI"]
     R.load(con, "fw", d.assign(f=f))
@@ -401,8 +401,8 @@ def test_fractional_frequency_weights_count_fractional_rows(
     )
     assert not caught
     ref = R.sm_fit(d["TUCE"], R.design(d, ["GPA", "PSI"]), "gaussian", freq_weights=f)
-    assert_allclose(res.df_resid, ref.df_resid, rtol=1e-12)
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-10)
+    assert_allclose(res.residual_df, ref.df_resid, rtol=1e-12)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=1e-10)
     assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=1e-8)
     assert_allclose(res.dispersion, ref.scale, rtol=1e-8)
 
@@ -429,7 +429,7 @@ def test_small_fractional_frequency_weights_warn_of_negative_residual_df(
     assert math.isnan(res.dispersion) and all(math.isnan(c.std_error) for c in res.coefficients)
     # the estimates themselves are those of the unweighted data (statsmodels)
     ref = R.sm_fit(d["TUCE"], R.design(d, ["GPA", "PSI"]), "gaussian")
-    assert_allclose(res.params, ref.params.to_numpy(), rtol=1e-10)
+    assert_allclose(res.estimates, ref.params.to_numpy(), rtol=1e-10)
 
 
 # =============================================================================================
