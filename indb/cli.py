@@ -40,6 +40,7 @@ from indb.cli_errors import (
 from indb.engines.backends import DIALECT_NAMES, SCORING_DIALECTS, dialect_for
 from indb.engines.base_dialect import Dialect
 from indb.errors import (
+    NonConvergenceError,
     RegistryError,
     SpecError,
 )
@@ -60,7 +61,8 @@ Exit codes (stable; for schedulers and scripts):
   2  input error: an option, spec file, column or data value to fix
   3  engine error: the database failed while running the generated SQL
   4  the engine cannot express something the model needs
-  5  IRLS did not converge and strict mode was asked (--strict)
+  5  IRLS did not converge (with --strict: nothing printed or recorded; without: the
+     report is printed and a --name version is recorded held)
   {EXIT_HELD}  retrain: new version recorded but held back by a gate; the scoring
      view still serves the live version
   7  registry conflict: unknown model or version, dropping the live version,
@@ -216,6 +218,9 @@ def _emit_result(result: FitResult, as_json: bool, db: str | None) -> None:
         click.echo(R.fit_json(result))
     else:
         click.echo(R.fit_text(result, db), nl=False)
+    if not result.converged:
+        # printed in full, and a version recorded held, but a scheduler must notice
+        click.get_current_context().exit(dict(EXIT_CODES)[NonConvergenceError])
 
 
 def _shown_warnings(result: FitResult, as_json: bool) -> tuple[str, ...]:

@@ -155,16 +155,15 @@ def _terms_block(result: FitResult, width: int) -> str:
         lines.append("  (the model has no terms)")
         return "\n".join(lines)
     lines.extend(_coefficient_table(coefs, test, level, exp_name, width, result.residual_df))
-    aliased = [c.term for c in coefs if c.aliased]
-    for term in result.aliased_terms:
-        if term not in aliased:
-            aliased.append(term)
-    if aliased:
+    # An aliased term in the table says so on its row, and the notes say it once more; a
+    # term set aside before the table was built gets its line here.
+    shown = {c.term for c in coefs}
+    unshown = [term for term in result.aliased_terms if term not in shown]
+    if unshown:
         lines.append("")
         lines.extend(
             _wrap(
-                "aliased terms (each is a linear combination of earlier terms, so it was set "
-                "aside and has no estimate): " + ", ".join(aliased),
+                "also set aside as linear combinations of earlier terms: " + ", ".join(unshown),
                 width,
                 indent="  ",
             )
