@@ -10,6 +10,7 @@ from indb.engines.duckdb import DuckDBEngine
 from indb.errors import (
     AliasingWarning,
     ConvergenceWarning,
+    DesignWarning,
     EngineError,
     IndbError,
     NonConvergenceError,
@@ -28,6 +29,7 @@ __all__ = [
     "AliasingWarning",
     "Coefficient",
     "ConvergenceWarning",
+    "DesignWarning",
     "DuckDBEngine",
     "Engine",
     "EngineError",

@@ -65,6 +65,11 @@ class AliasingWarning(IndbWarning):
     """Some design columns are linear combinations of others and were set aside."""
 
 
+class DesignWarning(IndbWarning):
+    """A column the default design took as a predictor looks like something else (an
+    identifier: distinct whole numbers on every row)."""
+
+
 class DeploymentWarning(IndbWarning):
     """A deployment setting was not applied (for example a held version cannot move the
     live scoring view to another schema)."""

@@ -6,6 +6,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import math
+import time
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -30,7 +31,27 @@ class FitRun:
     log: list[IterationRecord]
 
     def query(self, tree) -> dict[str, np.ndarray]:
-        return self.engine.fetch_columns(self.engine.dialect.render(tree))
+        t0 = time.perf_counter()
+        out = self.engine.fetch_columns(self.engine.dialect.render(tree))
+        if self.phase == "prepare":
+            self.prepared(time.perf_counter() - t0)
+        return out
+
+    def prepared(self, seconds: float) -> None:
+        """Tell ``progress`` that one pre-fit scan (profile, levels, fold...) took
+        ``seconds``; the iteration log keeps the fit's own scans only."""
+        self.prepare_scans += 1
+        if self.progress is not None:
+            self.progress(
+                IterationRecord(
+                    iteration=self.prepare_scans,
+                    deviance=math.nan,
+                    relative_change=math.nan,
+                    step_halvings=0,
+                    seconds=seconds,
+                    phase="prepare",
+                )
+            )
 
     def one_row(self, tree) -> dict[str, object]:
         cols = self.query(tree)
@@ -48,6 +69,10 @@ class FitRun:
     scaling: Scaling = dataclasses.field(default_factory=Scaling)
     #: warnings found before the fit (digits lost to magnitudes), given with the result
     notes: list[str] = dataclasses.field(default_factory=list)
+    #: doubts about the design found before the fit (an identifier taken as a predictor)
+    design_notes: list[str] = dataclasses.field(default_factory=list)
+    #: pre-fit scans so far (phase ``prepare``: told to ``progress``, not logged)
+    prepare_scans: int = 0
     #: (rows, frequency-weighted rows) every IRLS scan of the fit's table must count
     expected: tuple[int, float] | None = None
 

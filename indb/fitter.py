@@ -21,6 +21,7 @@ from indb.design import build_design, plan_values
 from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
     ConvergenceWarning,
+    DesignWarning,
     NonConvergenceError,
     PrecisionWarning,
     SeparationWarning,
@@ -43,6 +44,7 @@ from indb.theta import estimate_theta
 def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
     """Pre-fit scans (read only): columns, knots, the profile (on the compressed route, the
     fold and its profile in one scan), levels and combinations."""
+    run.phase = "prepare"
     inputs = prefit.describe(spec, engine)
     ctx = PlanContext(spec, inputs, engine.dialect)
     knots = prefit.knots(ctx, run)
@@ -57,6 +59,7 @@ def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
     summary = prefit.summarize(ctx, row, values, shifts)
     run.scaling = magnitudes.weight_scaling(ctx, summary)
     run.notes += magnitudes.precision_notes(ctx, row, shifts, summary)
+    run.design_notes += prefit.identifier_notes(ctx, run, head, values)
     ctx = dataclasses.replace(ctx, scaling=run.scaling)
     if folded:
         ctx = folding.folded_context(ctx, run, folded[1], n_kept)
@@ -67,6 +70,7 @@ def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
     solver.check_size(design)
+    run.phase = "fit"
     return ctx, design, summary, n_total, n_kept, by_col
 
 
@@ -132,6 +136,9 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
     warn_msgs: list[str] = []
     for msg in run.notes:
         warnings.warn(msg, PrecisionWarning, stacklevel=2)
+        warn_msgs.append(msg)
+    for msg in run.design_notes:
+        warnings.warn(msg, DesignWarning, stacklevel=2)
         warn_msgs.append(msg)
     # every scan of the fit's table must see the rows the profile saw
     rows = run.compressed[1] if run.compressed is not None else n_kept

@@ -81,8 +81,10 @@ def folded_context(ctx: PlanContext, run: FitRun, groups: str, n_kept: int) -> P
     name = f"indb_rows_{uuid.uuid4().hex[:12]}"
     stmts = ctx.dialect.materialize(name, folded_rows_query(ctx, ctx.dialect.table(groups)))
     run.temp_tables.append(name)
+    t_fold = time.perf_counter()
     for stmt in stmts:
         run.engine.execute(stmt)
+    run.prepared(time.perf_counter() - t_fold)
     table = ctx.dialect.table(name)
     sums = run.one_row(
         S.select(

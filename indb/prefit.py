@@ -6,6 +6,8 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import re
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 from indb.design import Factor, Inputs, Value, factor_sets, resolve_inputs
@@ -15,9 +17,11 @@ from indb.fitrun import FitRun, fetched_count
 from indb.plan.context import PlanContext
 from indb.plan.fold import FOLD_BAD, FOLD_NK_NULL, detail_items, grouped_profile_query
 from indb.plan.profile import (
+    HEAD_COUNT,
     HEAD_ROWS,
     ProfileItem,
     describe_query,
+    distinct_head_query,
     domain_checks,
     knots_query,
     levels_query,
@@ -320,3 +324,43 @@ def profile(ctx: PlanContext, run: FitRun, items: list[ProfileItem]) -> dict[str
     if bad:
         row.update(run.one_row(profile_query(ctx, detail_items(ctx, items, keys=()))))
     return row
+
+
+#: Head rows from which a column of distinct whole numbers is taken for an identifier
+#: (common practice: below that, distinct values prove little).
+ID_LIKE_MIN_ROWS = 100
+_INTEGER_TYPE = re.compile(r"u?(tiny|small|big|huge)?int(eger)?", re.IGNORECASE)
+
+
+def identifier_notes(
+    ctx: PlanContext, run: FitRun, head: dict[str, object], values: Sequence[Value]
+) -> list[str]:
+    """A note for a design taken by default (no ``predictors`` given) that uses an
+    integer column as it is whose values are all distinct over the head rows: a key, not a
+    predictor, most likely. Continuous columns are distinct on every row too, so only
+    integer-typed ones are looked at, and only those whose range over the head rows leaves
+    room for that many distinct values get the (one, small) COUNT(DISTINCT) scan."""
+    rows = int(head.get(HEAD_COUNT) or 0)
+    if ctx.spec.predictors is not None or rows < ID_LIKE_MIN_ROWS:
+        return []
+    types = {name: kind for name, kind in ctx.inputs.columns}
+    candidates = []
+    for v in values[1:]:
+        if v.basis is not None or len(v.numerics) != 1:
+            continue
+        lo, hi = head.get(f"{v.alias}_lo"), head.get(f"{v.alias}_hi")
+        integer = _INTEGER_TYPE.fullmatch(str(types.get(v.numerics[0], "")).strip())
+        if integer and lo is not None and hi is not None and float(hi) - float(lo) + 1 >= rows:
+            candidates.append(v.numerics[0])
+    if not candidates:
+        return []
+    counts = run.one_row(distinct_head_query(ctx, candidates))
+    ids = [c for i, c in enumerate(candidates) if fetched_count(counts[f"nd_{i}"]) == rows]
+    if not ids:
+        return []
+    return [
+        f"column(s) {ids} entered the model as numeric predictors by default, but their "
+        f"values are distinct whole numbers in all of the first {rows:,} rows, as an "
+        "identifier's are; if a column is a key, not a predictor, leave it out "
+        "(--exclude COL, exclude=[...]) or name the predictors (--predictors)"
+    ]

@@ -36,6 +36,8 @@ _PHASE_LABELS = {"theta": "theta-estimation", "null": "null-model", "sample": "s
 def format_iteration(record: IterationRecord) -> str:
     """One progress line for one IRLS iteration (written to stderr by ``indb fit``)."""
     phase = getattr(record, "phase", "fit")
+    if phase == "prepare":  # a pre-fit scan: no deviance yet
+        return f"indb: pre-fit scan {record.iteration:>3}  {_fmt_number(record.seconds, '.3f')} s"
     label = "iteration" if phase == "fit" else f"{_PHASE_LABELS.get(phase, phase)} iteration"
     return (
         f"indb: {label} {record.iteration:>3}"

@@ -517,3 +517,23 @@ def test_bad_input_leaves_the_database_unchanged(con: duckdb.DuckDBPyConnection)
     after = con.execute("SELECT table_name FROM information_schema.tables").fetchall()
     assert before == after
     assert con.execute("SELECT count(*) FROM spector").fetchone()[0] == 32
+
+
+def test_identifier_like_column_in_a_default_design_is_named() -> None:
+    # statsmodels.datasets.fair (6,366 marriages, shipped with statsmodels) with a row key
+    # added: whole numbers, distinct on every row. fair's own columns all repeat values,
+    # and yrs_married has fractions, so only the key is named.
+    frame = smd.fair.load_pandas().data.reset_index(drop=True)
+    frame.insert(0, "marriage_id", range(100_001, 100_001 + len(frame)))
+    with duckdb.connect() as c:
+        c.register("fair_frame", frame)
+        c.execute("CREATE TABLE fair AS SELECT * FROM fair_frame")
+        res = indb.fit("fair", "children", "poisson", db=c, exclude=["affairs"])
+        notes = [w for w in res.warnings if "identifier" in w]
+        assert len(notes) == 1 and "['marriage_id']" in notes[0] and "--exclude" in notes[0]
+        # named predictors are the user's choice: no note
+        named = indb.fit("fair", "children", "poisson", db=c, predictors=["marriage_id", "age"])
+        assert not [w for w in named.warnings if "identifier" in w]
+        # without the key, a default design gets no note (continuous columns never do)
+        clean = indb.fit("fair", "children", "poisson", db=c, exclude=["affairs", "marriage_id"])
+        assert not [w for w in clean.warnings if "identifier" in w]

@@ -263,6 +263,11 @@ def test_text_report_with_progress_lines(cpunish_parquet: Path):
     progress = [line for line in result.stderr.splitlines() if line.startswith("indb: iteration")]
     assert progress, result.stderr
     assert all("deviance" in line and "relative change" in line for line in progress)
+    # before them, a line per pre-fit scan (describe, profile, levels...), so a long
+    # profile on a big table is not silent
+    lines = result.stderr.splitlines()
+    prefit = [line for line in lines if line.startswith("indb: pre-fit scan")]
+    assert prefit and lines.index(prefit[-1]) < lines.index(progress[0])
     assert "relativity" in result.stdout and "CAUTION" in result.stdout
     iterations_line = next(line for line in result.stdout.splitlines() if "IRLS iterations" in line)
     assert int(iterations_line.split()[2]) == len(progress)

@@ -159,7 +159,14 @@ def test_fit_progress_json_lines(tmp_path: Path):
     _write(path, "ships", _ships())
     result = _ok(_run(*FIT, "--db", path, "--progress-json", "--json", "-q", "ships"))
     out = json.loads(result.stdout)
-    records = [json.loads(line) for line in result.stderr.splitlines()]
+    lines = [json.loads(line) for line in result.stderr.splitlines()]
+    # the pre-fit scans (profile, levels...) come first, numbered, with no deviance yet;
+    # the iteration log keeps the fit's own scans
+    prepare = [r for r in lines if r["phase"] == "prepare"]
+    assert prepare == lines[: len(prepare)] and len(prepare) >= 3
+    assert [r["iteration"] for r in prepare] == list(range(1, len(prepare) + 1))
+    assert all(r["deviance"] is None and r["seconds"] >= 0 for r in prepare)
+    records = lines[len(prepare) :]
     assert len(records) == len(out["iteration_log"]) >= 2
     assert [r["iteration"] for r in records] == [r["iteration"] for r in out["iteration_log"]]
     assert set(records[0]) == {

@@ -214,18 +214,35 @@ def head_query(
 ) -> exp.Select:
     """The range (``<alias>_lo``, ``<alias>_hi``) of every value and of the observed
     response (alias ``y``) over the first ``HEAD_ROWS`` kept rows (any rows: engines stop
-    reading there). The low end is a value of a kept row, the point the profile takes
-    moments about; the width sets the power of two that keeps those moments (and, for the
-    response, the fit) far from overflow."""
+    reading there) and their count (``head_rows``). The low
+    end is a value of a kept row, the point the profile takes moments about; the width
+    sets the power of two that keeps those moments (and, for the response, the fit) far
+    from overflow."""
     cols = [S.alias(ctx.value_sql(v, knots, standardized=False), v.alias) for v in values[1:]]
     cols.append(S.alias(ctx.observed_response(), RESPONSE_KEY))
     head = S.select(cols, ctx.source(), where=ctx.kept()).limit(HEAD_ROWS, copy=False)
-    out: list[Expr] = []
+    out: list[Expr] = [S.alias(S.count_star(), HEAD_COUNT)]
     for alias in [*(v.alias for v in values[1:]), RESPONSE_KEY]:
         out += [
             S.alias(S.min_(S.col(alias)), f"{alias}_lo"),
             S.alias(S.max_(S.col(alias)), f"{alias}_hi"),
         ]
+    return S.select(out, S.subquery(head, "head"))
+
+
+#: The head scan's row count (:func:`head_query`).
+HEAD_COUNT = "head_rows"
+
+
+def distinct_head_query(ctx: PlanContext, columns: Sequence[str]) -> exp.Select:
+    """Distinct values (``nd_<i>``) of ``columns`` over the head scan's rows: the check
+    for identifier-like predictors, asked only of the few columns that could be one."""
+    cols = [S.alias(S.col(c), f"c{i}") for i, c in enumerate(columns)]
+    head = S.select(cols, ctx.source(), where=ctx.kept()).limit(HEAD_ROWS, copy=False)
+    out = [
+        S.alias(exp.Count(this=exp.Distinct(expressions=[S.col(f"c{i}")])), f"nd_{i}")
+        for i in range(len(columns))
+    ]
     return S.select(out, S.subquery(head, "head"))
 
 
