@@ -13,6 +13,7 @@ from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
 from indb.errors import ConvergenceWarning, SpecError
 from indb.fitter import fit_spec, plan_spec
+from indb.prefit import scoring_inputs
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
 from indb.registry_append import open_registry
 from indb.results import FitResult
@@ -128,7 +129,11 @@ def fit(
     try:
         if name is not None:  # a name the deployment cannot take is refused before any scan
             open_registry(engine, registry_schema).check_before_fit(
-                name, view_schema=view_schema, promote=promote
+                name,
+                view_schema=view_schema,
+                promote=promote,
+                inputs=scoring_inputs(spec, engine),
+                score_source=score_source,
             )
         result = fit_spec(spec, engine, progress)
         if name is not None:

@@ -431,7 +431,8 @@ OPTIONS: tuple[Option, ...] = (
         "progress",
         CALLBACK,
         None,
-        "Called with each iteration record as the fit runs.",
+        "Called with each scan's IterationRecord as the fit runs: the pre-fit scans (phase "
+        "'prepare', no deviance yet), then every IRLS scan (as in the iteration log).",
         "run",
         cli=False,  # the command line has --progress-json and its text lines
         in_file=False,

@@ -29,6 +29,7 @@ from indb.plan.profile import (
 )
 from indb.spec import ModelSpec
 from indb.splines import knot_quantiles
+from indb.sqlexpr import referenced_columns
 
 
 def describe(spec: ModelSpec, engine: Engine) -> Inputs:
@@ -364,3 +365,13 @@ def identifier_notes(
         "identifier's are; if a column is a key, not a predictor, leave it out "
         "(--exclude COL, exclude=[...]) or name the predictors (--predictors)"
     ]
+
+
+def scoring_inputs(spec: ModelSpec, engine: Engine) -> list[str]:
+    """Source columns a scoring view of ``spec`` will read (predictors, then the offset's
+    columns), from a describe of the source: what a deployment can check before a fit."""
+    inputs = describe(spec, engine)
+    out = list(dict.fromkeys([*inputs.factors, *inputs.numerics]))
+    if inputs.offset is not None:
+        out += [c for c in referenced_columns(inputs.offset) if c not in out]
+    return out

@@ -13,6 +13,7 @@ import hashlib
 import json
 import math
 import warnings
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -423,18 +424,28 @@ class Registry(ViewPlacement):
         )
 
     def check_before_fit(
-        self, name: str, *, view_schema: str | None = None, promote: bool | None = True
+        self,
+        name: str,
+        *,
+        view_schema: str | None = None,
+        promote: bool | None = True,
+        inputs: Sequence[str] = (),
+        score_source: str | None = None,
     ) -> None:
         """The checks of :meth:`save` that need no fitted result, run before a fit's first
         scan so that a name it cannot take costs no scans: names of the engine's own
         objects, a name differing only in case from a model's, and (for a version to be made
-        live) a view or macro of that name which indb did not create for this model."""
+        live) a view or macro of that name which indb did not create for this model, and
+        a scoring source without the model's ``inputs`` when the version is sure to go live."""
         self.check_model_name(name)
         if view_schema is not None:
             W.check_name(view_schema, "view schema")
         current = self._current_or_twin(name)
         if promote is False:  # None may promote: checked as if it will
             return
+        live = current is not None and current.get("live_version") is not None
+        if inputs and (promote or not live):
+            self._check_scoring_inputs(current, inputs, score_source)
         target = {"view_schema": view_schema, "view_name": name, "macro_name": f"{name}_score"}
         if current is not None:
             target = {
@@ -443,6 +454,26 @@ class Registry(ViewPlacement):
                 "macro_name": current["macro_name"],
             }
         self._check_not_foreign(name, target, current)
+
+    def _check_scoring_inputs(
+        self, current: dict[str, Any] | None, inputs: Sequence[str], score_source: str | None
+    ) -> None:
+        """Refuse, before any scan, a scoring source that lacks columns the model reads
+        (the view would otherwise fail to build after the whole fit)."""
+        row = {"score_source": score_source} if score_source else current
+        if row is None or not row.get("score_source"):
+            return  # a new model scores its own source
+        types = self._source_types(row)
+        if types is None:
+            return  # unreadable: the write-back's own check says why
+        missing = [c for c in inputs if c not in types]
+        if missing:
+            raise SpecError(
+                f"the scoring source {Source.parse(row['score_source']).label()!r} lacks "
+                f"model input column(s) {missing}; give a scoring source that has them "
+                "(score_source=, CLI --score-source) or leave them out of the model "
+                "(exclude=, --exclude); checked before the fit, nothing was read or written"
+            )
 
     def _live_result(self, name: str, current: dict[str, Any] | None) -> FitResult | None:
         """The live version's result (None without a model or a live version)."""

@@ -29,6 +29,7 @@ from numpy.testing import assert_allclose, assert_array_equal
 from reference_cases import ships_registry_frame as _ships
 
 import indb
+from indb.engines.duckdb import DuckDBEngine
 from indb.errors import RegistryError, SpecError
 from indb.registry import Registry
 from indb.results import FitResult
@@ -65,7 +66,7 @@ def _registry(db: str) -> Iterator[Registry]:
         reg.engine.close()
 
 
-def _fit_ships(db: str, reference: dict[str, str] | None = None, **kwargs: Any) -> FitResult:
+def _fit_ships(db: Any, reference: dict[str, str] | None = None, **kwargs: Any) -> FitResult:
     return indb.fit(
         "ships",
         "accident",
@@ -255,6 +256,8 @@ CHILD = textwrap.dedent(
     import indb
 
     def pause(record):
+        if record.phase == "prepare":  # pre-fit scans: the IRLS loop has not started
+            return
         print(f"iteration {record.iteration} {record.phase}", flush=True)
         sys.stdin.readline()
 
@@ -391,7 +394,8 @@ def test_failures_during_write_back_leave_nothing_written(db: str):
     # a held version deploys nothing, so it may take the name
     held = _fit_ships(db, name="clash", promote=False, progress=scans.append)
     assert held.deployment["promoted"] is False
-    assert len(scans) == held.iterations  # the callback sees every IRLS scan
+    fit_scans = [r for r in scans if r.phase != "prepare"]  # then the pre-fit scans
+    assert len(fit_scans) == held.iterations  # the callback sees every IRLS scan
     assert _query(db, "SELECT x FROM clash")["x"].tolist() == [1]
 
 
@@ -554,3 +558,38 @@ def test_a_registry_written_by_indb_0_1_gets_todays_names(db: str) -> None:
     assert_allclose(
         terms[terms["version"] == 1]["wald"].to_numpy(), [c.wald for c in v1.coefficients]
     )
+
+
+def test_a_scoring_source_without_the_inputs_is_refused_before_the_fit(db: str) -> None:
+    # version 1 scores from a query with only its own inputs; a promoted refit that also
+    # reads 'operated' would fail to build its view after the whole fit: refused first.
+    _write(db, "ships", _ships())
+    scored = "SELECT type, built, service FROM ships"
+    v1 = _fit_ships(
+        db,
+        name="ship_damage",
+        predictors=["type", "built"],
+        score_source=scored,
+        reference={"type": "A", "built": "1960-64"},
+    )
+    assert v1.deployment["promoted"]
+    calls: list[str] = []
+
+    class Counting(DuckDBEngine):
+        def fetch_columns(self, sql: str):  # every scan goes through here
+            calls.append(sql)
+            return super().fetch_columns(sql)
+
+    engine = Counting(db)
+    try:
+        with pytest.raises(SpecError, match=r"lacks model input column\(s\) \['operated'\]"):
+            _fit_ships(engine, name="ship_damage", promote=True)
+    finally:
+        engine.close()
+    # the registry's own catalog reads went through, but no query read the data
+    assert calls and not [sql for sql in calls if '"ships"' in sql]
+    with _registry(db) as reg:
+        assert [v["version"] for v in reg.versions("ship_damage")] == [1]
+    # held (promote=False) needs no view, so nothing to check
+    held = _fit_ships(db, name="ship_damage", promote=False)
+    assert held.deployment == {**held.deployment, "version": 2, "promoted": False}

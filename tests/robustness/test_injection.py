@@ -491,7 +491,7 @@ def test_offset_and_weight_payloads(deployed: Deployed, expr: Expr) -> None:
     plain = dict(kwargs, **{expr.option: expr.plain})
     res = fit_baseline(deployed.path, name="expr_model", **kwargs)
     ref = fit_baseline(deployed.path, **plain)
-    assert_allclose(res.estimates, ref.params, rtol=1e-12, atol=1e-12)  # thread order: ~1e-15
+    assert_allclose(res.estimates, ref.estimates, rtol=1e-12, atol=1e-12)  # thread order: ~1e-15
     # deployed: the view and macro (with the expression rendered inside) score like the
     # plain expression's model, and only they were added
     after = R.dump_file(deployed.path)
