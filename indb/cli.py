@@ -604,6 +604,79 @@ def scoring_sql_command(
         click.echo(R.scoring_sql_text(sql))
 
 
+@main.command("assess", short_help="Judge a stored model on rows it has not seen.")
+@registry_database_option
+@registry_schema_option
+@click.option(
+    "--on",
+    "on",
+    required=True,
+    metavar="SOURCE",
+    help="Table, query or Parquet/CSV file of --db with the model's columns and its "
+    "response (a holdout period, a held-out slice).",
+)
+@click.option(
+    "--version", "version", type=int, default=None, metavar="K", help="Version (default: live)."
+)
+@click.option(
+    "--by",
+    "by",
+    multiple=True,
+    metavar="COL",
+    help="Also show actual against expected by this column of SOURCE (repeatable; a "
+    "numeric column in bands of equal exposure along its values).",
+)
+@click.option(
+    "--bands",
+    "bands",
+    type=click.IntRange(min=2, max=1_000),
+    default=10,
+    show_default=True,
+    metavar="N",
+    help="Bands of equal exposure along the score (and along a numeric --by column).",
+)
+@execution_options
+@output_options
+@click.argument("name")
+def assess_command(
+    name: str,
+    db: str,
+    registry_schema: str | None,
+    on: str,
+    version: int | None,
+    by: tuple[str, ...],
+    bands: int,
+    as_json: bool,
+    quiet: bool,
+    **engine: Any,
+) -> None:
+    """Judge model NAME on the rows of --on SOURCE, inside the database: deviance, actual
+    and expected, Gini, bands of the score, actual against expected by level, and for a
+    binomial model its calibration. Nothing is written; a DuckDB file is opened read-only.
+    """
+    # imported here, as the demo is: `indb fit` does not need them
+    from indb import assess_report
+    from indb.api import assess
+
+    with library_errors(quiet) as caught:
+        _check_database_path(db, hint="the registry lives in the file a named fit wrote to")
+        result = assess(
+            name,
+            on,
+            db=db,
+            version=version,
+            by=list(by),
+            bands=bands,
+            registry_schema=registry_schema or DEFAULT_SCHEMA,
+            **{k: v for k, v in engine.items() if v is not None},
+        )
+    echo_warnings(caught, quiet=quiet, already_shown=())
+    if as_json:
+        click.echo(assess_report.assess_json(result))
+    else:
+        click.echo(assess_report.assess_text(result), nl=False)
+
+
 @main.command("demo", short_help="Run the worked example on invented data.")
 @click.option(
     "--rows",
