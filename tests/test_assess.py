@@ -320,7 +320,10 @@ def test_rows_without_a_valid_mean_are_counted(models: dict[str, Any]) -> None:
     aside and reported, and the constant-rate model is refitted on the rows used."""
     res = models["results"]["educ"]
     sign = 1.0 if res.coef("age").estimate > 0 else -1.0
-    on = f"SELECT * FROM fair_hold UNION ALL SELECT * REPLACE ({sign * 1e9} AS age) FROM fair_hold WHERE row_id = 0"
+    on = (
+        f"SELECT * FROM fair_hold UNION ALL "
+        f"SELECT * REPLACE ({sign * 1e9} AS age) FROM fair_hold WHERE row_id = 0"
+    )
     a = indb.assess("educ", on=on, db=str(models["db"]))
     base = _assess(models, "educ")
     assert a.excluded == {"NULL in age": 3, "no valid mean": 1}
