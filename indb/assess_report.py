@@ -10,12 +10,15 @@ from __future__ import annotations
 
 import json
 import math
+import textwrap
 from collections.abc import Sequence
 from typing import Any
 
 from indb.assessment import CAUTION, AssessResult, Band, CalibrationBand, Level
 
 NA = "n/a"
+#: width of wrapped prose
+WIDTH = 100
 
 
 def assess_json(result: AssessResult) -> str:
@@ -31,7 +34,7 @@ def assess_text(result: AssessResult) -> str:
         blocks.append(_calibration(result))
     if result.notes:
         blocks.append("\n".join(f"note: {n}" for n in result.notes))
-    blocks.append(CAUTION)
+    blocks.append(textwrap.fill(CAUTION, width=WIDTH))
     return "\n\n".join(blocks) + "\n"
 
 
@@ -136,8 +139,8 @@ def _totals(r: AssessResult) -> str:
 
 def _bands(bands: Sequence[Band]) -> str:
     title = (
-        f"Score in {len(bands)} bands of equal exposure, lowest first (the score is the "
-        "predicted mean without the offset; a tie is never split)"
+        f"Score in {len(bands)} bands of equal exposure, lowest first\n"
+        "(score: the predicted mean without the offset; rows of one score share a band)"
     )
     headers = ["band", "rows", "exposure", "actual", "expected", "A/E", "score from", "to"]
     columns = [
@@ -146,7 +149,7 @@ def _bands(bands: Sequence[Band]) -> str:
         _column([b.exposure for b in bands]),
         _whole([b.actual for b in bands]),
         _column([b.expected for b in bands]),
-        _column([_ratio(b.actual, b.expected) for b in bands], 3),
+        _column([_ratio(b.actual, b.expected) for b in bands], 4),
         _column([b.score_low for b in bands]),
         _column([b.score_high for b in bands]),
     ]
@@ -169,7 +172,7 @@ def _levels(column: str, levels: Sequence[Level]) -> str:
         _column([lv.exposure for lv in levels]),
         _whole([lv.actual for lv in levels]),
         _column([lv.expected for lv in levels]),
-        _column([_ratio(lv.actual, lv.expected) for lv in levels], 3),
+        _column([_ratio(lv.actual, lv.expected) for lv in levels], 4),
     ]
     text = title + "\n" + _table(headers, columns, left=1)
     if any(lv.unseen for lv in levels):

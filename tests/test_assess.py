@@ -38,6 +38,7 @@ from assess_cases import (
     SUM_RTOL,
     Case,
     Oracle,
+    design,
     fair_count_frames,
     fair_frames,
     hosmer_lemeshow,
@@ -54,7 +55,7 @@ from scipy import stats
 from sklearn.metrics import mean_gamma_deviance, mean_poisson_deviance, roc_auc_score
 
 import indb
-from indb.assessment import AssessResult
+from indb.assessment import CAUTION, AssessResult
 from indb.cli import main
 from indb.errors import RegistryError, SpecError
 
@@ -369,7 +370,8 @@ def test_cli_text_and_json(models: dict[str, Any]) -> None:
     assert any(ln.startswith("9 *") for ln in lines)  # the unseen rating, marked
     assert "*" not in text.stdout.replace("9 *", "").replace("* not a level", "")
     assert "Hosmer" not in text.stdout  # a Poisson model has no calibration table
-    assert lines[-1].startswith("These figures support, but do not replace")
+    # the closing caution (wrapped)
+    assert " ".join(lines[-2:]) == CAUTION
     hl = _run("assess", "had", "--db", db, "--on", "fair_hold", "--bands", "8")
     assert hl.exit_code == 0
     assert "Hosmer-Lemeshow statistic" in hl.stdout and "on 6 df" in hl.stdout
@@ -474,3 +476,54 @@ def test_assess_text_has_no_borrowed_layout(models: dict[str, Any]) -> None:
     # our own words: no significance stars, no section rules of a statistics package
     assert "***" not in out and "===" not in out and "Results" not in out
     assert math.isfinite(text.gini) and 0 < text.gini_normalized < 1
+
+
+def test_binomial_with_offset_calibrates_on_the_mean(models: dict[str, Any]) -> None:
+    """With an offset the predicted probability and the score differ: the calibration bands
+    follow the probability (equal weight), the lift bands the score; the constant-rate model
+    (logit, offset) has no closed form and is iterated. Oracles: statsmodels (the fit, its
+    predictions, its intercept-only GLM with the offset) and the grouping written out."""
+    db = str(models["db"])
+    train, hold = models["frames"]["fair"]
+    res = indb.fit(
+        "SELECT rating, religious, had, years FROM fair_train",
+        "had",
+        "binomial",
+        offset="years / 10",
+        db=db,
+        name="had_offset",
+        tol=1e-14,
+    )
+    case = Case("had_offset", "fair", {"response": "had"}, sm.families.Binomial())
+    fit = sm.GLM(
+        train["had"].to_numpy(float),
+        design(train, res),
+        family=case.family,
+        offset=train["years"].to_numpy(float) / 10,
+    ).fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=500)
+    assert_allclose([fit.params[t] for t in res.terms], res.params, rtol=COEF_RTOL)
+    eta = np.zeros(len(hold))
+    xh = design(hold, res)
+    for term in xh.columns:
+        eta = eta + xh[term].to_numpy() * fit.params[term]
+    off = hold["years"].to_numpy(float) / 10
+    mu, score = case.family.link.inverse(eta + off), case.family.link.inverse(eta)
+    y = hold["had"].to_numpy(float)
+    a = indb.assess("had_offset", on="fair_hold", db=db, bands=6)
+    assert a.rows == len(hold) and a.scans > 2
+    assert_allclose(a.expected, mu.sum(), rtol=SUM_RTOL)
+    assert_allclose(a.deviance, case.family.deviance(y, mu), rtol=SUM_RTOL)
+    null = sm.GLM(y, np.ones((len(y), 1)), family=case.family, offset=off).fit(
+        tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=500
+    )
+    assert_allclose(a.null_deviance, null.deviance, rtol=SUM_RTOL)
+    # the lift bands along the score (exposure = weight: no log link), the calibration
+    # bands along the probability
+    lift = midpoint_bands(score, np.ones(len(y)), 6)
+    assert [b.rows for b in a.bands] == np.bincount(lift)[1:].tolist()
+    cal = midpoint_bands(mu, np.ones(len(y)), 6)
+    assert [c.rows for c in a.calibration] == np.bincount(cal)[1:].tolist()
+    assert_allclose([c.actual for c in a.calibration], np.bincount(cal, y)[1:], rtol=1e-12)
+    stat, df = hosmer_lemeshow(mu, y, np.ones(len(y)), n=6)
+    assert a.hosmer_lemeshow.df == df == 4
+    assert_allclose(a.hosmer_lemeshow.statistic, stat, rtol=1e-6)
