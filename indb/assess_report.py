@@ -75,6 +75,14 @@ def _column(values: Sequence[float], significant: int = 5) -> list[str]:
     return [f"{v:,.{places}f}" if _finite(v) else NA for v in values]
 
 
+def _shared(
+    low: Sequence[float], high: Sequence[float], significant: int = 5
+) -> tuple[list[str], list[str]]:
+    """Two columns (a range's ends) with the same decimals."""
+    both = _column([*low, *high], significant)
+    return both[: len(low)], both[len(low) :]
+
+
 def _whole(values: Sequence[float]) -> list[str]:
     """A column of sums that are whole numbers shown without decimals (counts of claims)."""
     if all(not _finite(v) or float(v).is_integer() for v in values):
@@ -150,8 +158,7 @@ def _bands(bands: Sequence[Band]) -> str:
         _whole([b.actual for b in bands]),
         _column([b.expected for b in bands]),
         _column([_ratio(b.actual, b.expected) for b in bands], 4),
-        _column([b.score_low for b in bands]),
-        _column([b.score_high for b in bands]),
+        *_shared([b.score_low for b in bands], [b.score_high for b in bands]),
     ]
     return title + "\n" + _table(headers, columns)
 
@@ -190,8 +197,7 @@ def _calibration(r: AssessResult) -> str:
         _column([b.weight for b in bands]),
         _column([b.predicted for b in bands], 4),
         _column([b.observed for b in bands], 4),
-        _column([b.p_low for b in bands], 4),
-        _column([b.p_high for b in bands], 4),
+        *_shared([b.p_low for b in bands], [b.p_high for b in bands], 4),
     ]
     text = title + "\n" + _table(headers, columns)
     hl = r.hosmer_lemeshow
