@@ -609,72 +609,43 @@ def scoring_sql_command(
 @registry_schema_option
 @click.option(
     "--on",
-    "on",
     required=True,
     metavar="SOURCE",
-    help="Table, query or Parquet/CSV file of --db with the model's columns and its "
-    "response (a holdout period, a held-out slice).",
+    help="Table, query or Parquet/CSV file of --db with the model's columns and response.",
 )
-@click.option(
-    "--version", "version", type=int, default=None, metavar="K", help="Version (default: live)."
-)
+@click.option("--version", type=int, default=None, metavar="K", help="Version (default: live).")
 @click.option(
     "--by",
-    "by",
     multiple=True,
     metavar="COL",
-    help="Also show actual against expected by this column of SOURCE (repeatable; a "
-    "numeric column in bands of equal exposure along its values).",
+    help="Also by this column of SOURCE (repeatable; a numeric one in bands of its values).",
 )
 @click.option(
     "--bands",
-    "bands",
     type=click.IntRange(min=2, max=1_000),
     default=10,
     show_default=True,
     metavar="N",
-    help="Bands of equal exposure along the score (and along a numeric --by column).",
+    help="Bands of equal exposure along the score (and a numeric --by column).",
 )
 @execution_options
 @output_options
 @click.argument("name")
-def assess_command(
-    name: str,
-    db: str,
-    registry_schema: str | None,
-    on: str,
-    version: int | None,
-    by: tuple[str, ...],
-    bands: int,
-    as_json: bool,
-    quiet: bool,
-    **engine: Any,
-) -> None:
-    """Judge model NAME on the rows of --on SOURCE, inside the database: deviance, actual
-    and expected, Gini, bands of the score, actual against expected by level, and for a
-    binomial model its calibration. Nothing is written; a DuckDB file is opened read-only.
-    """
-    # imported here, as the demo is: `indb fit` does not need them
-    from indb import assess_report
+def assess_command(name: str, db: str, registry_schema: str | None, **options: Any) -> None:
+    """Judge model NAME on the rows of --on SOURCE inside the database: deviance, actual
+    against expected, Gini, bands, levels and a binomial model's calibration. Nothing is
+    written; a DuckDB file is opened read-only."""
+    from indb import assess_report  # imported here, as the demo is: `fit` needs neither
     from indb.api import assess
 
+    as_json, quiet = options.pop("as_json"), options.pop("quiet")
     with library_errors(quiet) as caught:
         _check_database_path(db, hint="the registry lives in the file a named fit wrote to")
-        result = assess(
-            name,
-            on,
-            db=db,
-            version=version,
-            by=list(by),
-            bands=bands,
-            registry_schema=registry_schema or DEFAULT_SCHEMA,
-            **{k: v for k, v in engine.items() if v is not None},
-        )
+        given = {k: v for k, v in options.items() if v is not None}
+        result = assess(name, db=db, registry_schema=registry_schema or DEFAULT_SCHEMA, **given)
     echo_warnings(caught, quiet=quiet, already_shown=())
-    if as_json:
-        click.echo(assess_report.assess_json(result))
-    else:
-        click.echo(assess_report.assess_text(result), nl=False)
+    render = assess_report.assess_json if as_json else assess_report.assess_text
+    click.echo(render(result), nl=as_json)
 
 
 @main.command("demo", short_help="Run the worked example on invented data.")
