@@ -527,3 +527,50 @@ def test_binomial_with_offset_calibrates_on_the_mean(models: dict[str, Any]) -> 
     stat, df = hosmer_lemeshow(mu, y, np.ones(len(y)), n=6)
     assert a.hosmer_lemeshow.df == df == 4
     assert_allclose(a.hosmer_lemeshow.statistic, stat, rtol=1e-6)
+
+
+def test_quotes_and_unicode_in_names_and_levels(tmp_path: Path) -> None:
+    """Column names and levels with quotes, a semicolon and non-ASCII letters reach the SQL
+    only as quoted identifiers and literals; zero prior weights count as rows with no
+    weight. Oracle: statsmodels' predictions summed with pandas."""
+    rng = np.random.default_rng(14)
+    n = 600
+    region = rng.choice(["it's", 'say "hi"', "Zürich; DROP TABLE t"], n)
+    size = rng.uniform(1.0, 3.0, n)
+    effect = pd.Series(region).map({"it's": 0.0, 'say "hi"': 0.4, "Zürich; DROP TABLE t": -0.3})
+    y = rng.poisson(np.exp(0.2 + 0.3 * size + effect.to_numpy())).astype(float)
+    w = np.where(np.arange(n) % 10 == 0, 0.0, 1.0 + (np.arange(n) % 3))
+    frame = pd.DataFrame({'ré"gion': region, "größe": size, "y": y, "w w": w, "by'col": region})
+    train, hold = frame.iloc[0::2], frame.iloc[1::2].reset_index(drop=True)
+    db = tmp_path / "hostile.duckdb"
+    with duckdb.connect(str(db)) as con:
+        for name, part in (("train", train), ("hold", hold)):
+            con.register("frame", part)
+            con.execute(f"CREATE TABLE {name} AS SELECT * FROM frame")
+            con.unregister("frame")
+    res = indb.fit(
+        'SELECT "ré""gion", "größe", y, "w w" FROM train',
+        "y",
+        "poisson",
+        weight='"w w"',
+        db=str(db),
+        name="hostile",
+        tol=1e-12,
+    )
+    a = indb.assess("hostile", on="hold", db=str(db), by=["by'col"])
+    fit = sm.GLM(
+        train["y"], design(train, res), family=sm.families.Poisson(), var_weights=train["w w"]
+    ).fit(tol_criterion="params", atol=1e-14, rtol=1e-13, maxiter=500)
+    assert_allclose([fit.params[t] for t in res.terms], res.params, rtol=COEF_RTOL)
+    mu = np.asarray(fit.predict(design(hold, res)))
+    hw = hold["w w"].to_numpy()
+    assert a.rows == len(hold) and a.rows_excluded == 0
+    assert_allclose(a.weight, hw.sum(), rtol=1e-12)
+    assert_allclose(a.expected, (hw * mu).sum(), rtol=SUM_RTOL)
+    want = pd.DataFrame({"lv": hold["by'col"], "ep": hw * mu, "n": 1}).groupby("lv").sum()
+    for column in ('ré"gion', "by'col"):
+        got = {lv.level: lv for lv in a.levels[column]}
+        assert sorted(got) == sorted(want.index)
+        for level, row in want.iterrows():
+            assert got[level].rows == row["n"]
+            assert_allclose(got[level].expected, row["ep"], rtol=SUM_RTOL)
