@@ -190,15 +190,18 @@ def holdout_assessment(
     engine: DuckDBEngine, out_dir: str, n: int, echo: Callable[[str], None]
 ) -> str:
     """Judge the frequency model on held-out policies (a quarter as many, another seed),
-    inside the database; the text and JSON are saved beside the reports."""
+    inside the database; the text and JSON are saved in ``assessments/``."""
     path = os.path.join(out_dir, "holdout.parquet")
     demo_data.write_policies(path, max(n // 4, 1), seed=HOLDOUT_SEED)
     echo(f"Held-out policies: {max(n // 4, 1):,} more invented policy-years in {path}\n")
     result = assess("frequency", path, db=engine, by=["driver_age"])
     text = assess_text(result)
-    with open(os.path.join(out_dir, "frequency_holdout.txt"), "w", encoding="utf-8") as fh:
+    # apart from the fits' reports: a folder of their own
+    folder = os.path.join(out_dir, "assessments")
+    os.makedirs(folder, exist_ok=True)
+    with open(os.path.join(folder, "frequency.txt"), "w", encoding="utf-8") as fh:
         fh.write(text)
-    with open(os.path.join(out_dir, "frequency_holdout.json"), "w", encoding="utf-8") as fh:
+    with open(os.path.join(folder, "frequency.json"), "w", encoding="utf-8") as fh:
         fh.write(assess_json(result))
     return (
         f"indb assess frequency --db {os.path.join(out_dir, 'demo.duckdb')} --on {path} "
