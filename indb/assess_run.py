@@ -15,6 +15,7 @@ database and nothing is written.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import time
 from collections.abc import Sequence
@@ -25,6 +26,7 @@ from indb import sqlexpr as S
 from indb import writeback as W
 from indb.assessment import AssessResult, Header, PartRows, finish, split_parts
 from indb.design import RESERVED_PREFIX, Inputs
+from indb.engines.base_dialect import Dialect
 from indb.engines.base_engine import Engine
 from indb.errors import EngineError, NondeterministicSourceError, SpecError
 from indb.fitrun import fetched_count
@@ -77,6 +79,12 @@ def assess_version(
     d = engine.dialect
     source = Source.parse(on)
     columns = describe_source(engine, source)
+    if not result.design.get("column_types"):
+        # a version stored before fits recorded the types its expressions read: the
+        # SOURCE's (as the scoring SQL takes the scoring source's)
+        result = dataclasses.replace(
+            result, design={**result.design, "column_types": dict(columns)}
+        )
     inputs = model_inputs(result, model, source, columns, d)
     spec = ModelSpec.build(
         on,
@@ -156,7 +164,11 @@ def _columns_hint(names: Sequence[str]) -> str:
 
 
 def model_inputs(
-    result: FitResult, model: str, source: Source, columns: Sequence[tuple[str, str]], d
+    result: FitResult,
+    model: str,
+    source: Source,
+    columns: Sequence[tuple[str, str]],
+    d: Dialect,
 ) -> Inputs:
     """The model's response, predictors and stored expressions checked against the SOURCE's
     columns (the expressions read in the dialect they were written in, as for scoring)."""
@@ -222,7 +234,7 @@ def model_inputs(
 
 
 def by_columns(
-    result: FitResult, by: Sequence[str], columns: Sequence[tuple[str, str]], d
+    result: FitResult, by: Sequence[str], columns: Sequence[tuple[str, str]], d: Dialect
 ) -> tuple[tuple[str, ...], tuple[str, ...]]:
     """(columns reported by level, numeric columns cut into bands): the model's categorical
     predictors, then the ``by`` columns (a numeric one in bands of its values)."""

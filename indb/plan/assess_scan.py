@@ -408,7 +408,10 @@ def assess_query(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
     # running sums along each ordered part's key; a NULL key (a NULL in a banded column)
     # adds nothing, wherever the engine sorts NULLs
     has_key = S.not_(S.is_null(S.col("k")))
-    only_keyed = lambda c: S.case([(has_key.copy(), S.col(c))])  # noqa: E731
+
+    def only_keyed(column: str) -> Expr:
+        return S.case([(has_key.copy(), S.col(column))])
+
     running = S.select(
         [
             *_cols("g", "k", "lv", *names, "bw", "nb"),
