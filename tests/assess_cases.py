@@ -147,6 +147,12 @@ def design(frame: pd.DataFrame, res: FitResult) -> pd.DataFrame:
     return pd.DataFrame(cols, index=frame.index)
 
 
+def estimates(res: FitResult) -> list[float]:
+    """indb's estimates in design order (read from the coefficient table, whatever the
+    result's convenience properties are called)."""
+    return [c.estimate for c in res.coefficients]
+
+
 def weights(case: Case, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     """(frequency weight, prior weight incl. trials) per row."""
     n = len(frame)
