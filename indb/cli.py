@@ -618,7 +618,7 @@ def scoring_sql_command(
     "--by",
     multiple=True,
     metavar="COL",
-    help="Also by this column of SOURCE (repeatable; a numeric one in bands of its values).",
+    help="Actual against expected by this column of SOURCE too (repeatable; numeric: in bands).",
 )
 @click.option(
     "--bands",
