@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 from indb import report as _report  # noqa: F401  (registers str(result), the text report)
-from indb.api import deploy, fit, scoring_sql
+from indb.api import assess, deploy, fit, scoring_sql
+from indb.assessment import AssessResult
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
 from indb.engines.duckdb import DuckDBEngine
@@ -27,6 +28,7 @@ from indb.version import __version__
 
 __all__ = [
     "AliasingWarning",
+    "AssessResult",
     "Coefficient",
     "ConvergenceWarning",
     "DesignWarning",
@@ -44,6 +46,7 @@ __all__ = [
     "SeparationWarning",
     "SpecError",
     "UnsupportedError",
+    "assess",
     "connect",
     "deploy",
     "fit",

@@ -9,9 +9,10 @@ from typing import Any
 
 from indb import options as O
 from indb import writeback as W
+from indb.assessment import AssessResult
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
-from indb.errors import ConvergenceWarning, SpecError
+from indb.errors import ConvergenceWarning, RegistryError, SpecError
 from indb.fitter import fit_spec, plan_spec
 from indb.prefit import scoring_inputs
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
@@ -229,6 +230,67 @@ def scoring_sql(
             view_name=view_name or name,
         )
         return sql + ";"
+    finally:
+        if engine is not db:
+            engine.close()
+
+
+def assess(
+    name: str,
+    on: str,
+    *,
+    db: Any,
+    version: int | None = None,
+    by: Sequence[str] = (),
+    bands: int = 10,
+    registry_schema: str = DEFAULT_SCHEMA,
+    memory_limit: str | None = None,
+    temp_directory: str | None = None,
+    threads: int | None = None,
+) -> AssessResult:
+    """Judge a stored model version on the rows of ``on`` (a table, query or file of the
+    database ``db`` that holds the registry), inside the database.
+
+    Returns the totals (rows, weight, actual, expected, deviance, deviance explained), the
+    Gini of the ordered Lorenz curve, ``bands`` bands of equal exposure along the score,
+    actual and expected by level of the model's categorical predictors and of each ``by``
+    column (a numeric one in bands of its values) and, for a binomial model, a calibration
+    table with the Hosmer-Lemeshow statistic. A few grouped scans; nothing per row comes
+    back and nothing is written (a DuckDB file is opened read-only).
+    """
+    from indb.assess_run import assess_version
+
+    O.check_options(
+        {"name": name, "on": on, "by": by, "bands": bands, "version": version},
+        {"name": O.TEXT, "on": O.TEXT, "by": O.NAMES, "bands": O.WHOLE, "version": O.WHOLE},
+    )
+    O.check_options({"registry_schema": registry_schema}, DEPLOY_OPTIONS)
+    O.check_options(
+        {"memory_limit": memory_limit, "temp_directory": temp_directory, "threads": threads},
+        ENGINE_OPTIONS,
+    )
+    if db is None or (isinstance(db, str) and db.strip() in ("", ":memory:")):
+        raise SpecError(
+            "assess reads the model from the registry of a database: give db= the database "
+            "(file or URL) the model was written to"
+        )
+    engine = connect(
+        db,
+        read_only=True,
+        memory_limit=memory_limit,
+        temp_directory=temp_directory,
+        threads=threads,
+    )
+    try:
+        reg = open_registry(engine, registry_schema)
+        if version is None:
+            version = reg.model(name)["live_version"]
+            if version is None:
+                raise RegistryError(f"model {name!r} has no live version; give version=K")
+        result = reg.load(name, version)
+        return assess_version(
+            engine, result, model=name, version=int(version), on=on, by=list(by), bands=bands
+        )
     finally:
         if engine is not db:
             engine.close()

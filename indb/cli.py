@@ -609,6 +609,50 @@ def scoring_sql_command(
         click.echo(R.scoring_sql_text(sql))
 
 
+@main.command("assess", short_help="Judge a stored model on rows it has not seen.")
+@registry_database_option
+@registry_schema_option
+@click.option(
+    "--on",
+    required=True,
+    metavar="SOURCE",
+    help="Table, query or Parquet/CSV file of --db with the model's columns and response.",
+)
+@click.option("--version", type=int, default=None, metavar="K", help="Version (default: live).")
+@click.option(
+    "--by",
+    multiple=True,
+    metavar="COL",
+    help="Actual against expected by this column of SOURCE too (repeatable; numeric: in bands).",
+)
+@click.option(
+    "--bands",
+    type=click.IntRange(min=2, max=1_000),
+    default=10,
+    show_default=True,
+    metavar="N",
+    help="Bands of equal exposure along the score (and a numeric --by column).",
+)
+@execution_options
+@output_options
+@click.argument("name")
+def assess_command(name: str, db: str, registry_schema: str | None, **options: Any) -> None:
+    """Judge model NAME on the rows of --on SOURCE inside the database: deviance, actual
+    against expected, Gini, bands, levels and a binomial model's calibration. Nothing is
+    written; a DuckDB file is opened read-only."""
+    from indb import assess_report  # imported here, as the demo is: `fit` needs neither
+    from indb.api import assess
+
+    as_json, quiet = options.pop("as_json"), options.pop("quiet")
+    with library_errors(quiet) as caught:
+        _check_database_path(db, hint="the registry lives in the file a named fit wrote to")
+        given = {k: v for k, v in options.items() if v is not None}
+        result = assess(name, db=db, registry_schema=registry_schema or DEFAULT_SCHEMA, **given)
+    echo_warnings(caught, quiet=quiet, already_shown=())
+    render = assess_report.assess_json if as_json else assess_report.assess_text
+    click.echo(render(result), nl=as_json)
+
+
 @main.command("demo", short_help="Run the worked example on invented data.")
 @click.option(
     "--rows",

@@ -4,7 +4,8 @@
 four models on it without loading the table into Python: claim frequency (Poisson with an
 exposure offset), claim severity (gamma, log link, weighted by claim count), pure premium
 (Tweedie) and lapse (logistic). It prints each report and, because the data are invented
-with known true coefficients, how close the fitted frequency model comes to the truth.
+with known true coefficients, how close the fitted frequency model comes to the truth. It
+ends by judging the frequency model on held-out policies (``indb assess``).
 """
 
 from __future__ import annotations
@@ -18,7 +19,8 @@ from dataclasses import dataclass
 from typing import Any
 
 from indb import demo_data
-from indb.api import fit
+from indb.api import assess, fit
+from indb.assess_report import assess_json, assess_text
 from indb.engines.duckdb import DuckDBEngine
 from indb.report import render_json, render_report
 from indb.results import FitResult
@@ -139,6 +141,8 @@ def run(
         )
         echo("")
         echo(scoring_tour(engine, results))
+        echo("=" * 100)
+        echo(holdout_assessment(engine, out_dir, n, echo))
     finally:
         engine.close()
     echo(f"\nindb demo: done in {time.perf_counter() - t0:.1f} s; reports in {out_dir}/")
@@ -176,6 +180,33 @@ def scoring_tour(engine: DuckDBEngine, results: dict[str, FitResult]) -> str:
         f"\n  -> {one:.5f} expected claims in a policy-year"
     )
     return "\n".join(lines)
+
+
+#: seed of the held-out policies: the same invented book, policies the fits never saw
+HOLDOUT_SEED = 2027
+
+
+def holdout_assessment(
+    engine: DuckDBEngine, out_dir: str, n: int, echo: Callable[[str], None]
+) -> str:
+    """Judge the frequency model on held-out policies (a quarter as many, another seed),
+    inside the database; the text and JSON are saved in ``assessments/``."""
+    path = os.path.join(out_dir, "holdout.parquet")
+    demo_data.write_policies(path, max(n // 4, 1), seed=HOLDOUT_SEED)
+    echo(f"Held-out policies: {max(n // 4, 1):,} more invented policy-years in {path}\n")
+    result = assess("frequency", path, db=engine, by=["driver_age"])
+    text = assess_text(result)
+    # apart from the fits' reports: a folder of their own
+    folder = os.path.join(out_dir, "assessments")
+    os.makedirs(folder, exist_ok=True)
+    with open(os.path.join(folder, "frequency.txt"), "w", encoding="utf-8") as fh:
+        fh.write(text)
+    with open(os.path.join(folder, "frequency.json"), "w", encoding="utf-8") as fh:
+        fh.write(assess_json(result))
+    return (
+        f"indb assess frequency --db {os.path.join(out_dir, 'demo.duckdb')} --on {path} "
+        f"--by driver_age\n\n{text}"
+    )
 
 
 def truth_table(res: FitResult, truth: dict[str, float], title: str) -> str:

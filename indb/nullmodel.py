@@ -9,7 +9,9 @@ import numpy as np
 
 from indb import solver
 from indb.design import INTERCEPT, Design, DesignColumn
+from indb.families import Family
 from indb.fitrun import FitRun
+from indb.links import Link
 from indb.plan.context import PlanContext
 from indb.prefit import Summary
 from indb.sqlexpr import Expr
@@ -70,11 +72,16 @@ def null_deviance(
 
 def null_start(ctx: PlanContext, summary: Summary) -> float:
     """Starting intercept of the null model with an offset: g(mean y) - mean offset."""
-    fam, link = ctx.spec.family, ctx.spec.link
-    mu = min(max(summary.ybar, 1e-6), 1 - 1e-6) if fam.unit_mean else summary.ybar
+    return start_intercept(ctx.spec.family, ctx.spec.link, summary.ybar, summary.off_mean)
+
+
+def start_intercept(fam: Family, link: Link, ybar: float, off_mean: float) -> float:
+    """g(ybar) - off_mean (ybar kept inside (0, 1) for a binomial; 0 where g is not finite):
+    where IRLS of the intercept-only model with an offset starts."""
+    mu = min(max(ybar, 1e-6), 1 - 1e-6) if fam.unit_mean else ybar
     with np.errstate(all="ignore"):
         g = float(link.link(np.array([mu]))[0])
-    return (g if math.isfinite(g) else 0.0) - summary.off_mean
+    return (g if math.isfinite(g) else 0.0) - off_mean
 
 
 def intercept_only(design: Design) -> Design:

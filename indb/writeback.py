@@ -125,14 +125,21 @@ def written_in(res: FitResult, default: Dialect) -> Dialect:
 def offset_sql(res: FitResult, dialect: Dialect) -> Expr | None:
     """The stored offset, read in the dialect it was written in, for ``dialect``
     (:func:`indb.portable.portable_expression`); None without an offset."""
+    return stored_expression_sql(res, "offset", dialect)
+
+
+def stored_expression_sql(res: FitResult, role: str, dialect: Dialect) -> Expr | None:
+    """A stored user expression of the model (``offset``, ``weight``, ``frequency_weight``
+    or ``trials``), read in the dialect it was written in, for ``dialect``; None when the
+    model has none."""
     from indb.portable import portable_expression
 
-    offset = res.spec.get("offset")
-    if not offset:
+    text = res.spec.get(role)
+    if not text:
         return None
     source = written_in(res, dialect)
     types = res.design.get("column_types")
-    return portable_expression(offset, "offset", source, dialect, types)
+    return portable_expression(text, role, source, dialect, types)
 
 
 def eta_sql(res: FitResult, dialect: Dialect, *, include_offset: bool = True) -> Expr:

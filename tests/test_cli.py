@@ -672,6 +672,11 @@ def test_demo_command_writes_reports(tmp_path: Path):
             assert n == ids > 0, view
         terms = json.loads((out_dir / "frequency.json").read_text())["coefficients"]
         assert not [t for t in terms if "policy_id" in t["term"]]
+        # issue 14: the demo ends by judging the frequency model on held-out policies
+        judged = json.loads((out_dir / "assessments" / "frequency.json").read_text())
+        assert judged["rows"] == 500 and judged["model"] == "frequency"
+        assert {"deviance", "gini", "bands", "levels"} <= judged.keys()
+        assert "judged on" in result.stdout
     finally:
         con.close()
 

@@ -11,4 +11,6 @@ Nothing here touches a connection. One module per query family:
 * :mod:`~indb.plan.irls_scan`: the IRLS scan (X'WX, X'Wz, deviance, Pearson) and the
   per-row stages it shares with the log-likelihood and theta queries;
 * :mod:`~indb.plan.log_scan`: the log-link scan with the factor effects multiplied in later.
+* :mod:`~indb.plan.assess_scan`: a stored model judged on new rows (the check items, the
+  GROUPING SETS scan with window sums over tie groups, the constant-rate model's scan).
 """

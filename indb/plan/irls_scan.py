@@ -22,6 +22,8 @@ from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.design import Design, cell_columns, column_groups, level_codes
+from indb.families import Family
+from indb.links import Link
 from indb.plan.context import FOLD_DCONST, FOLD_Q, ROWS, PlanContext
 from indb.sqlexpr import Expr
 
@@ -254,8 +256,7 @@ def _null_stage(ctx: PlanContext, design: Design, mean_stage: exp.Select, b0: fl
     """Add the intercept-only model's mean (eta = offset + b0) next to the fitted model's,
     so the null model with an offset is fitted in the same scans."""
     fam, link = ctx.spec.family, ctx.spec.link
-    e0 = S.add(S.col("off"), S.num(b0))
-    mu0 = fam.clamp_mu_sql(link.inverse_sql(e0))
+    mu0 = null_mean_sql(fam, link, S.col("off"), b0)
     keep = _passthrough(design, [*_extra_row_cols(ctx), "eta", "seta", "bad", "mu"])
     inner = S.select([*keep, S.alias(mu0, "n_mu")], S.subquery(mean_stage, "nm"))
     keep = _passthrough(design, [*_extra_row_cols(ctx), "eta", "seta", "bad", "mu", "n_mu"])
@@ -270,19 +271,31 @@ def _null_stage(ctx: PlanContext, design: Design, mean_stage: exp.Select, b0: fl
     )
 
 
-def _null_extras(ctx: PlanContext, b0: float) -> list[tuple[str, Expr]]:
-    """Per-row sums of the intercept-only IRLS step and its deviance."""
-    fam = ctx.spec.family
-    y, pw, fw = S.col("y"), S.col("pw"), S.col("fw")
-    n_mu, n_dmu, n_var = S.col("n_mu"), S.col("n_dmu"), S.col("n_var")
+def null_mean_sql(fam: Family, link: Link, off: Expr, b0: float) -> Expr:
+    """The intercept-only model's mean at intercept ``b0``: g^-1(off + b0), clamped into the
+    family's range as the fitted model's mean is."""
+    return fam.clamp_mu_sql(link.inverse_sql(S.add(off, S.num(b0))))
+
+
+def null_step_terms(
+    fam: Family, b0: float, y: Expr, pw: Expr, fw: Expr, n_mu: Expr, n_dmu: Expr, n_var: Expr
+) -> tuple[Expr, Expr, Expr]:
+    """Per-row terms of one IRLS step of the intercept-only model with the offset at
+    intercept ``b0``: f w0, f w0 z0 and f pw d(y, mu0), from the model's mean ``n_mu``,
+    dmu/deta ``n_dmu`` and variance ``n_var`` (columns of a stage); the next intercept is
+    sum(f w0 z0) / sum(f w0) (:class:`indb.nullmodel.NullTrack`)."""
     w0 = S.div(S.mul(pw, n_dmu, n_dmu), n_var)
     step = S.case([(S.ne(n_dmu, S.num(0.0)), S.div(S.sub(y, n_mu), n_dmu))], S.num(0.0))
     z0 = S.add(S.num(b0), step)
-    return [
-        ("fnullw", S.mul(fw, w0)),
-        ("fnullwz", S.mul(fw, w0.copy(), z0)),
-        ("fnulldev", _folded_dev(ctx, S.mul(fw, pw, fam.unit_deviance_sql(y, n_mu)))),
-    ]
+    return S.mul(fw, w0), S.mul(fw, w0.copy(), z0), S.mul(fw, pw, fam.unit_deviance_sql(y, n_mu))
+
+
+def _null_extras(ctx: PlanContext, b0: float) -> list[tuple[str, Expr]]:
+    """Per-row sums of the intercept-only IRLS step and its deviance."""
+    y, pw, fw = S.col("y"), S.col("pw"), S.col("fw")
+    n_mu, n_dmu, n_var = S.col("n_mu"), S.col("n_dmu"), S.col("n_var")
+    w, wz, dev = null_step_terms(ctx.spec.family, b0, y, pw, fw, n_mu, n_dmu, n_var)
+    return [("fnullw", w), ("fnullwz", wz), ("fnulldev", _folded_dev(ctx, dev))]
 
 
 NULL_COLUMNS = ("n_mu", "n_dmu", "n_var")

@@ -1,0 +1,387 @@
+"""Run an assessment: a stored model version judged on the rows of a SOURCE, in a few scans.
+
+1. The check scan (:func:`indb.plan.assess_scan.check_items`): rows, NULLs per model input,
+   the family's domain checks and the weights; every input mistake is refused here, before
+   a deviance is computed (PostgreSQL would raise on the logarithm of a bad value).
+2. The assessment scan (:func:`indb.plan.assess_scan.assess_query`): totals, bands, Gini,
+   levels and calibration in one GROUP BY GROUPING SETS, with the constant-rate model's
+   deviance at the constant the check scan found.
+3. Only when that constant is not exact for the rows used: null scans
+   (:func:`indb.plan.assess_scan.null_query`), one per IRLS step of the one-parameter model.
+
+The numbers are finished in numpy (:func:`indb.assessment.finish`); nothing per row leaves the
+database and nothing is written.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import time
+from collections.abc import Sequence
+
+from sqlglot import exp
+
+from indb import sqlexpr as S
+from indb import writeback as W
+from indb.assessment import AssessResult, Header, PartRows, finish, split_parts
+from indb.design import RESERVED_PREFIX, Inputs
+from indb.engines.base_dialect import Dialect
+from indb.engines.base_engine import Engine
+from indb.errors import EngineError, NondeterministicSourceError, SpecError
+from indb.fitrun import fetched_count
+from indb.nullmodel import NullTrack, start_intercept
+from indb.plan.assess_scan import (
+    LEVELS,
+    SCORE,
+    AssessPlan,
+    NullModel,
+    assess_query,
+    check_items,
+    closed_form_power,
+    null_query,
+)
+from indb.plan.context import SRC, PlanContext
+from indb.plan.profile import domain_checks, profile_query
+from indb.results import FitResult
+from indb.spec import ModelSpec, Source
+
+#: IRLS steps of the constant-rate model with an offset, when it has no closed form
+NULL_MAX_STEPS = 30
+NULL_TOL = 1e-10
+#: most bands of the score (and of a numeric --by column)
+MAX_BANDS = 1_000
+#: most levels a column may show
+MAX_LEVELS = 10_000
+_EXPRESSIONS = ("offset", "weight", "frequency_weight", "trials")
+
+
+def assess_version(
+    engine: Engine,
+    result: FitResult,
+    *,
+    model: str,
+    version: int,
+    on: str,
+    by: Sequence[str] = (),
+    bands: int = 10,
+) -> AssessResult:
+    """Judge ``result`` (version ``version`` of ``model``) on the rows of ``on``.
+
+    Raises
+    ------
+    SpecError
+        A source without the response or a model input, NULL or out-of-domain values that
+        leave nothing to judge, zero exposure, a bad ``by`` column or ``bands``.
+    """
+    t0 = time.perf_counter()
+    check_bands(bands)
+    d = engine.dialect
+    source = Source.parse(on)
+    columns = describe_source(engine, source)
+    if not result.design.get("column_types"):
+        # a version stored before fits recorded the types its expressions read: the
+        # SOURCE's (as the scoring SQL takes the scoring source's)
+        result = dataclasses.replace(
+            result, design={**result.design, "column_types": dict(columns)}
+        )
+    inputs = model_inputs(result, model, source, columns, d)
+    spec = ModelSpec.build(
+        on,
+        result.response,
+        result.family_object,
+        result.link_object,
+        **{role: result.spec.get(role) for role in _EXPRESSIONS},
+    )
+    ctx = PlanContext(spec, inputs, d)
+    levels, banded = by_columns(result, by, columns, d)
+    plan = AssessPlan(
+        ctx,
+        score_eta=W.eta_sql(result, d, include_offset=False),
+        unseen=W.unseen_sql(result),
+        levels=levels,
+        banded=banded,
+        bands=bands,
+        max_levels=MAX_LEVELS,
+    )
+    check = _one_row(engine, profile_query(ctx, check_items(plan)))
+    kept, nulls = checked_rows(plan, check)
+    null = start_null_model(plan, check)
+    cols = engine.fetch_columns(d.render(assess_query(plan, null)))
+    parts = split_parts(plan.parts, cols)
+    score = next(p for p in parts if p.part.role == SCORE)
+    rows = int(score.total("n"))
+    check_scored(plan, parts, rows, kept)
+    null_dev, extra, notes = null_deviance(engine, plan, null, score, exact=rows == kept)
+    header = Header(
+        model=model,
+        version=version,
+        source=source.label(),
+        engine=d.name,
+        family=result.family_object.describe(),
+        link=result.link_object.describe(),
+        offset=result.spec.get("offset"),
+        rows_read=fetched_count(check["n_total"]),
+        rows_kept=kept,
+        nulls=nulls,
+        training_levels={f["column"]: tuple(f["levels"]) for f in result.design["factors"]},
+    )
+    return finish(
+        header,
+        parts,
+        null_dev,
+        scans=2 + extra,
+        seconds=time.perf_counter() - t0,
+        notes=notes,
+    )
+
+
+def check_bands(bands: int) -> None:
+    if not (isinstance(bands, int) and not isinstance(bands, bool) and 2 <= bands <= MAX_BANDS):
+        raise SpecError(f"bands must be a whole number from 2 to {MAX_BANDS:,}; got {bands!r}")
+
+
+# -- the source and the model's inputs ---------------------------------------------------------
+
+
+def describe_source(engine: Engine, source: Source) -> list[tuple[str, str]]:
+    """The SOURCE's columns and types (described, not run)."""
+    d = engine.dialect
+    rel = d.relation(source).copy()
+    rel.set("alias", exp.TableAlias(this=S.ident(SRC)))
+    try:
+        return engine.describe(d.render(S.select([exp.Star()], rel)))
+    except EngineError as err:
+        raise SpecError(
+            f"cannot read the source {source.label()!r}: {err}; check the table name, file "
+            "path or query"
+        ) from err
+
+
+def _columns_hint(names: Sequence[str]) -> str:
+    shown = ", ".join(names[:12]) + (", ..." if len(names) > 12 else "")
+    return f"its columns are {shown}"
+
+
+def model_inputs(
+    result: FitResult,
+    model: str,
+    source: Source,
+    columns: Sequence[tuple[str, str]],
+    d: Dialect,
+) -> Inputs:
+    """The model's response, predictors and stored expressions checked against the SOURCE's
+    columns (the expressions read in the dialect they were written in, as for scoring)."""
+    types = dict(columns)
+    names = list(types)
+    reserved = [n for n in names if n.lower().startswith(RESERVED_PREFIX)]
+    if reserved:
+        raise SpecError(
+            f"source column {reserved[0]!r} starts with {RESERVED_PREFIX!r}, which indb "
+            "reserves for the columns it adds to its scans; rename it in a SELECT"
+        )
+    where = f"the source {source.label()!r}"
+
+    def need(column: str, role: str) -> None:
+        if column not in types:
+            raise SpecError(
+                f"{where} has no column {column!r} ({role} of model {model!r}); "
+                f"{_columns_hint(names)}; select it in the source query"
+            )
+
+    response = result.response
+    need(response, "the response")
+    kind = d.type_kind(types[response])
+    if kind == "boolean" and result.family == "binomial":
+        response_kind = "boolean"
+    elif kind == "numeric":
+        response_kind = "numeric"
+    else:
+        raise SpecError(
+            f"response column {response!r} of {where} has type {types[response]}; model "
+            f"{model!r} needs it numeric{' or BOOLEAN' if result.family == 'binomial' else ''}"
+        )
+    factors = [f["column"] for f in result.design["factors"]]
+    numerics: list[str] = []
+    for c in result.design["columns"]:
+        numerics += [n for n in c["numerics"] if n not in numerics]
+    for c in factors:
+        need(c, "a categorical predictor")
+    for c in numerics:
+        need(c, "a numeric predictor")
+        if d.type_kind(types[c]) != "numeric":
+            raise SpecError(
+                f"predictor column {c!r} of {where} has type {types[c]}; model {model!r} "
+                "reads it as a number: cast it in the source query"
+            )
+    exprs = {role: W.stored_expression_sql(result, role, d) for role in _EXPRESSIONS}
+    used: list[str] = []
+    for role, tree in exprs.items():
+        for c in S.referenced_columns(tree) if tree is not None else []:
+            need(c, f"read by its {role} expression {result.spec.get(role)!r}")
+            used.append(c)
+    model_columns = list(dict.fromkeys([response, *factors, *numerics, *used]))
+    return Inputs(
+        response=response,
+        response_kind=response_kind,
+        columns=tuple(columns),
+        factors=tuple(factors),
+        numerics=tuple(numerics),
+        terms=(),
+        model_columns=tuple(model_columns),
+        **exprs,
+    )
+
+
+def by_columns(
+    result: FitResult, by: Sequence[str], columns: Sequence[tuple[str, str]], d: Dialect
+) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """(columns reported by level, numeric columns cut into bands): the model's categorical
+    predictors, then the ``by`` columns (a numeric one in bands of its values)."""
+    types = dict(columns)
+    factors = [f["column"] for f in result.design["factors"]]
+    levels, banded = list(factors), []
+    seen: set[str] = set()
+    for c in by:
+        if not isinstance(c, str) or c not in types:
+            raise SpecError(f"by column {c!r} is not in the source; {_columns_hint(list(types))}")
+        if c in seen:
+            raise SpecError(f"by column {c!r} is given twice; give each column once")
+        seen.add(c)
+        if c in factors:
+            continue  # reported by level already (as the model reads it)
+        (banded if d.type_kind(types[c]) == "numeric" else levels).append(c)
+    return tuple(levels), tuple(banded)
+
+
+# -- checks ------------------------------------------------------------------------------------
+
+
+def _one_row(engine: Engine, tree) -> dict[str, object]:
+    cols = engine.fetch_columns(engine.dialect.render(tree))
+    return {k: (v[0] if len(v) else None) for k, v in cols.items()}
+
+
+def _num(v: object) -> float:
+    return math.nan if v is None else float(v)
+
+
+def checked_rows(plan: AssessPlan, row: dict[str, object]) -> tuple[int, dict[str, int]]:
+    """(rows kept, NULL counts per model input) from the check scan; a SpecError where
+    nothing can be judged or a value is out of the family's domain."""
+    ctx = plan.ctx
+    where = f"the source {ctx.spec.source.label()!r}"
+    n_total, n_kept = fetched_count(row["n_total"]), fetched_count(row["n_kept"])
+    nulls = {
+        label: fetched_count(row[f"null_{i}"]) for i, (label, _) in enumerate(ctx.null_items())
+    }
+    if n_total == 0:
+        raise SpecError(f"{where} has no rows: nothing to assess")
+    if n_kept == 0:
+        counts = {k: v for k, v in nulls.items() if v}
+        raise SpecError(
+            f"every one of the {n_total:,} rows of {where} has a NULL in a column the model "
+            f"reads (NULL counts: {counts}); nothing to assess"
+        )
+    for i, (stem, _) in enumerate(domain_checks(ctx)):
+        bad = fetched_count(row[f"chk_{i}"])
+        if bad:
+            detail = ""
+            if "response" in stem and "NaN" not in stem:
+                detail = f" (min {_num(row['y_min']):.6g}, max {_num(row['y_max']):.6g})"
+            raise SpecError(
+                f"{stem} in {bad:,} of {n_kept:,} rows of {where}{detail}; filter or fix "
+                "those rows in the source query"
+            )
+    exposure = _num(row.get("sum_fe", row["sum_fpw"]))
+    if not (_num(row["sum_fpw"]) > 0 and exposure > 0):
+        what = "frequency weight x exp(offset)" if plan.log_exposure else "weight x trials"
+        raise SpecError(
+            f"the {n_kept:,} rows of {where} have zero exposure (sum of {what} is "
+            f"{exposure:.6g}): nothing to assess; check the weight and offset columns"
+        )
+    return n_kept, nulls
+
+
+def check_scored(plan: AssessPlan, parts: Sequence[PartRows], rows: int, kept: int) -> None:
+    """The assessment scan's counts against the check scan's; too many levels."""
+    where = f"the source {plan.ctx.spec.source.label()!r}"
+    if rows > kept:
+        raise NondeterministicSourceError(
+            f"{where} is not deterministic: the assessment scan counted {rows:,} rows where "
+            f"the check scan counted {kept:,}; store the rows first (CREATE TABLE ... AS)"
+        )
+    if rows == 0:
+        raise SpecError(
+            f"none of the {kept:,} rows of {where} gets a valid mean from the model (eta "
+            "outside the link's range); check the offset and the predictors' scale"
+        )
+    for p in parts:
+        if p.part.role == LEVELS and len(p) > plan.max_levels:
+            raise SpecError(
+                f"column {p.part.column!r} has more than {plan.max_levels:,} levels in "
+                f"{where}; group them in the source query or give a numeric column"
+            )
+
+
+# -- the constant-rate model ---------------------------------------------------------------------
+
+
+def start_null_model(plan: AssessPlan, row: dict[str, object]) -> NullModel:
+    """The constant-rate model as the check scan gives it: the weighted mean response
+    without an offset; with one, the closed form of a log link with V(mu) = mu^p, else the
+    start of its IRLS (g(mean y) - mean offset)."""
+    ybar = _num(row["sum_fpwy"]) / _num(row["sum_fpw"])
+    if plan.ctx.spec.offset is None:
+        return NullModel(mean=ybar)
+    if closed_form_power(plan) is not None:
+        s1, s2 = _num(row["null_s1"]), _num(row["null_s2"])
+        if s1 > 0 and s2 > 0 and math.isfinite(s1) and math.isfinite(s2):
+            return NullModel(intercept=math.log(s1) - math.log(s2))
+    spec = plan.ctx.spec
+    b0 = start_intercept(spec.family, spec.link, ybar, _num(row["off_mean"]))
+    return NullModel(intercept=b0, step=True)
+
+
+def null_deviance(
+    engine: Engine, plan: AssessPlan, null: NullModel, score: PartRows, *, exact: bool
+) -> tuple[float, int, list[str]]:
+    """(the constant-rate model's deviance, extra scans run, notes).
+
+    The assessment scan summed it at the check scan's constant; that is the answer when the
+    constant has a closed form and every kept row got a mean (``exact``). Otherwise the
+    weighted mean of the rows used (no offset) is scanned once more, or the one-parameter
+    model with the offset is fitted by IRLS (:class:`indb.nullmodel.NullTrack`), a null scan
+    per step.
+    """
+    if not null.step and exact:
+        return score.total("nd"), 0, []
+    if null.mean is not None:
+        mean = score.total("ac") / score.total("wt")
+        return _null_scan(engine, plan, NullModel(mean=mean))["nd"], 1, []
+    track = NullTrack(float(null.intercept), NULL_TOL)
+    scans = 0
+    if null.step:
+        track.update(
+            {
+                "nulldev": score.total("nd"),
+                "nullw": score.total("nw0"),
+                "nullwz": score.total("nwz0"),
+            }
+        )
+    while not track.done and scans < NULL_MAX_STEPS:
+        sums = _null_scan(engine, plan, NullModel(intercept=track.b0, step=True))
+        scans += 1
+        track.update({"nulldev": sums["nd"], "nullw": sums["nw0"], "nullwz": sums["nwz0"]})
+    if track.done:
+        return track.deviance, scans, []
+    note = (
+        f"the constant-rate model with the offset did not settle in {NULL_MAX_STEPS} IRLS "
+        "steps, so deviance_explained is not given"
+    )
+    return math.nan, scans, [note]
+
+
+def _null_scan(engine: Engine, plan: AssessPlan, null: NullModel) -> dict[str, float]:
+    row = _one_row(engine, null_query(plan, null))
+    return {k: _num(v) for k, v in row.items()}

@@ -1,0 +1,470 @@
+"""The scans that judge a stored model on rows of a SOURCE (``indb assess``).
+
+Every query reads the same per-row stages (:func:`scored_rows`): the model's mean ``mu``
+(offset included) and score (the mean without the offset) from the scoring view's own
+expressions, and per row the weight f pw, the actual f pw y, the expected f pw mu, the
+deviance f pw d(y, mu) and the exposure (f exp(offset) for a log link with an offset, else
+f pw). Three queries:
+
+* the check scan: :func:`indb.plan.profile.profile_query` over :func:`check_items` (rows,
+  NULLs per model input, the family's domain checks, weights, and the sums that give the
+  constant-rate model in closed form);
+* the assessment scan (:func:`assess_query`): one GROUP BY GROUPING SETS over the scored
+  rows, one grouping set per :class:`Part`: the tie groups of the score, of the actual rate
+  (the best possible ordering), of the predicted mean (a binomial model with an offset), of
+  each numeric column cut into bands, and the levels of each categorical column. Window sums
+  over each ordered part's tie groups in key order give every group its cumulative exposure
+  and actual, hence its band (equal exposure, a tie group never split) and its trapezoid
+  under the ordered Lorenz curve. One row per band and per level comes back;
+* the null scan (:func:`null_query`): the constant-rate model's deviance, and one IRLS step
+  of it where it has no closed form, over the same rows.
+
+Adding a second model to the same scan (a challenger, a double-lift table) means adding its
+score, mean and sums to :func:`scored_rows` and the aggregates, and its score and the ratio
+of the two scores as further ordered parts.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from sqlglot import exp
+
+from indb import sqlexpr as S
+from indb.plan.context import PlanContext
+from indb.plan.irls_scan import null_mean_sql, null_step_terms
+from indb.plan.profile import ProfileItem, domain_checks
+from indb.sqlexpr import Expr
+
+#: roles of the grouping sets (:class:`Part`)
+SCORE, BEST, MEAN, LEVELS, BANDS = "score", "best", "mean", "levels", "bands"
+
+#: the aggregates every grouping set sums (alias -> stage column), and the null model's
+NUMBERS = ("n", "nw", "wt", "ex", "ac", "ep", "dv", "nu")
+NULL_SUMS = ("nd", "nw0", "nwz0")
+
+
+@dataclass(frozen=True)
+class Part:
+    """One grouping set of the assessment scan.
+
+    ``role`` is ``score`` (tie groups of the score), ``best`` (of the actual rate, whose
+    Lorenz curve bounds the score's), ``mean`` (of the predicted mean: a binomial model's
+    calibration when an offset makes it differ from the score), ``bands`` (a numeric column
+    cut into bands of its values) or ``levels`` (a column's levels). The ordered roles are
+    cut into ``bands`` bands of equal exposure (of equal weight f pw when ``by_weight``).
+    """
+
+    role: str
+    column: str | None = None
+    bands: int = 1
+    by_weight: bool = False
+
+    @property
+    def ordered(self) -> bool:
+        return self.role != LEVELS
+
+
+def part_mask(index: int, count: int) -> int:
+    """The GROUPING bitmask of part ``index`` among ``count``: a bit per key, the first key
+    the most significant, set where the set does not group by the key."""
+    return (1 << count) - 1 - (1 << (count - 1 - index))
+
+
+@dataclass(frozen=True)
+class NullModel:
+    """The constant-rate model on the same rows (what ``deviance_explained`` compares with):
+    a constant ``mean`` (a model without an offset), or eta = offset + ``intercept``, with
+    the sums of one IRLS step of it when ``step`` is set."""
+
+    mean: float | None = None
+    intercept: float | None = None
+    step: bool = False
+
+
+@dataclass(frozen=True)
+class AssessPlan:
+    """What the assessment scans need: the SOURCE with the model's inputs (``ctx``, whose
+    spec holds the stored family, link and expressions), the model's linear predictor
+    without the offset and its unseen-level count (the scoring view's expressions), the
+    columns reported by level and in bands, and the number of bands."""
+
+    ctx: PlanContext
+    score_eta: Expr
+    unseen: Expr
+    levels: tuple[str, ...] = ()
+    banded: tuple[str, ...] = ()
+    bands: int = 10
+    #: level rows fetched per column at most (one more tells that there are too many)
+    max_levels: int = 10_000
+
+    @property
+    def log_exposure(self) -> bool:
+        """Exposure is f exp(offset): a log-link model with an offset."""
+        return self.ctx.spec.offset is not None and self.ctx.spec.link.name == "log"
+
+    @property
+    def calibration(self) -> str | None:
+        """The part a binomial model's calibration table comes from: the score's tie groups
+        (equal-weight bands, since exposure is f pw there) or, with an offset, the mean's."""
+        if self.ctx.spec.family.name != "binomial":
+            return None
+        return MEAN if self.ctx.spec.offset is not None else SCORE
+
+    @property
+    def parts(self) -> tuple[Part, ...]:
+        out = [Part(SCORE, bands=self.bands), Part(BEST)]
+        if self.calibration == MEAN:
+            out.append(Part(MEAN, bands=self.bands, by_weight=True))
+        out += [Part(BANDS, c, bands=self.bands) for c in self.banded]
+        out += [Part(LEVELS, c) for c in self.levels]
+        return tuple(out)
+
+
+# -- the check scan ----------------------------------------------------------------------------
+
+
+def closed_form_power(plan: AssessPlan) -> float | None:
+    """p of V(mu) = mu^p when the constant-rate model with the offset has a closed form
+    (a log link): e^b = sum(f pw y e^((1-p) off)) / sum(f pw e^((2-p) off)). None otherwise."""
+    spec = plan.ctx.spec
+    if spec.offset is None or spec.link.name != "log":
+        return None
+    return spec.family.variance_power
+
+
+def _exp(x: Expr) -> Expr:
+    # IEEE-754's +inf where exp overflows (PostgreSQL raises): a caller sees a sum that is
+    # not finite and takes another route, instead of the scan failing
+    return S.IeeeExp(this=x)
+
+
+def check_items(plan: AssessPlan) -> list[ProfileItem]:
+    """The check scan's aggregates (for :func:`indb.plan.profile.profile_query`): rows, rows
+    kept (no NULL in a model input), NULLs per input, weight sums, the response's range and
+    the domain checks over kept rows, and the sums of the constant-rate model."""
+    ctx = plan.ctx
+    one = exp.Literal.number(1)
+    fw = ctx.raw_freq() or S.num(1.0)
+    pw, y = ctx.prior_weight(), ctx.observed_response()
+    items = [ProfileItem("n_total", "count", one, kept=False), ProfileItem("n_kept", "count", one)]
+    items += [
+        ProfileItem(f"null_{i}", "nulls", e, kept=False)
+        for i, (_, e) in enumerate(ctx.null_items())
+    ]
+    items += [
+        ProfileItem("sum_f", "psum", fw),
+        ProfileItem("sum_fpw", "psum", S.mul(fw.copy(), pw)),
+        ProfileItem("sum_fpwy", "psum", S.mul(fw.copy(), pw.copy(), y)),
+        ProfileItem("y_min", "min", y.copy(), detail=True),
+        ProfileItem("y_max", "max", y.copy(), detail=True),
+    ]
+    items += [
+        ProfileItem(f"chk_{i}", "sum", S.flag(cond), detail=True)
+        for i, (_, cond) in enumerate(domain_checks(ctx))
+    ]
+    off = ctx.raw_offset()
+    if off is not None:
+        items.append(ProfileItem("off_mean", "mean", off))
+    if plan.log_exposure and off is not None:
+        items.append(ProfileItem("sum_fe", "psum", S.mul(fw.copy(), _exp(off.copy()))))
+    p = closed_form_power(plan)
+    if p is not None and off is not None:
+        k1, k2 = 1.0 - p, 2.0 - p
+        e1 = _exp(S.mul(S.num(k1), off.copy())) if k1 != 0.0 else S.num(1.0)
+        e2 = _exp(S.mul(S.num(k2), off.copy())) if k2 != 0.0 else S.num(1.0)
+        items += [
+            ProfileItem("null_s1", "psum", S.mul(fw.copy(), pw.copy(), y.copy(), e1)),
+            ProfileItem("null_s2", "psum", S.mul(fw.copy(), pw.copy(), e2)),
+        ]
+    return items
+
+
+# -- the scored rows ---------------------------------------------------------------------------
+
+
+def _key(i: int) -> str:
+    return f"k{i}"
+
+
+def _cols(*names: str) -> list[Expr]:
+    return [S.col(n) for n in names]
+
+
+def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
+    """The SOURCE's rows that have no NULL in a model input and get a valid mean, each with
+    the keys of the parts and its weight, actual, expected, deviance, exposure, unseen flag
+    (and the null model's terms)."""
+    ctx = plan.ctx
+    fam, link = ctx.spec.family, ctx.spec.link
+    parts = plan.parts
+    has_off = ctx.spec.offset is not None
+    # stage a: the inputs, the level and band keys, eta without the offset
+    keys = []
+    for i, part in enumerate(parts):
+        if part.role == LEVELS:
+            keys.append(S.alias(S.level_text(S.col(part.column)), _key(i)))
+        elif part.role == BANDS:
+            keys.append(S.alias(S.as_double(S.col(part.column)), _key(i)))
+    key_names = [k.alias for k in keys]
+    cols: list[Expr] = [
+        *keys,
+        S.alias(ctx.observed_response(), "y"),
+        S.alias(ctx.prior_weight(), "pw"),
+        S.alias(ctx.raw_freq() or S.num(1.0), "fw"),
+        S.alias(plan.score_eta.copy(), "seta"),
+        S.alias(plan.unseen.copy(), "nu"),
+    ]
+    if has_off:
+        cols.append(S.alias(ctx.raw_offset(), "off"))
+    inputs = S.select(cols, ctx.source(), where=ctx.kept())
+    carry = [*key_names, "y", "pw", "fw", "nu", *(["off"] if has_off else [])]
+    # stage b: the mean (offset included) and the score (without it), NULL where eta is
+    # not valid (Link.mean_sql, as in the scoring view)
+    eta = S.add(S.col("off"), S.col("seta")) if has_off else S.col("seta")
+    means = S.select(
+        [
+            *_cols(*carry),
+            S.alias(link.mean_sql(eta), "mu"),
+            S.alias(link.mean_sql(S.col("seta")), "sc"),
+        ],
+        S.subquery(inputs, "a"),
+    )
+    # stage c: rows with a valid mean inside the family's range; their sums
+    mu, fw, pw, y = S.col("mu"), S.col("fw"), S.col("pw"), S.col("y")
+    valid = [S.not_(S.is_null(mu)), S.not_(S.is_null(S.col("sc")))]
+    in_range = fam.mu_ok(mu.copy(), link)
+    if in_range is not None:
+        valid.append(in_range)
+    expo = (
+        S.mul(fw.copy(), _exp(S.col("off"))) if plan.log_exposure else S.mul(fw.copy(), pw.copy())
+    )
+    sums = S.select(
+        [
+            *_cols(*carry, "mu", "sc"),
+            S.alias(S.mul(fw.copy(), pw.copy()), "wt"),
+            S.alias(S.mul(fw.copy(), pw.copy(), y.copy()), "ac"),
+            S.alias(S.mul(fw.copy(), pw.copy(), mu.copy()), "ep"),
+            S.alias(
+                S.mul(fw.copy(), pw.copy(), fam.unit_deviance_sql(y.copy(), fam.clamp_mu_sql(mu))),
+                "dv",
+            ),
+            S.alias(expo, "ex"),
+        ],
+        S.subquery(means, "b"),
+        where=S.and_(*valid),
+    )
+    # stage d: the actual rate (the best ordering's key) and the null model's mean
+    ac, ex = S.col("ac"), S.col("ex")
+    rate = S.case(
+        [
+            (S.gt(ex, S.num(0.0)), S.div(ac, ex.copy())),
+            # exposure 0 with claims: the steepest part of any curve, last in the order
+            (S.gt(ac.copy(), S.num(0.0)), S.double_const("Infinity")),
+        ],
+        S.num(0.0),
+    )
+    kept = [*carry, "mu", "sc", "wt", "ac", "ep", "dv", "ex"]
+    rows: list[Expr] = [*_cols(*kept), S.alias(rate, "rt")]
+    if null is not None:
+        rows.append(S.alias(_null_mean(plan, null), "n_mu"))
+    staged = S.select(rows, S.subquery(sums, "c"))
+    if null is None or not null.step:
+        return staged
+    # stage e: dmu/deta and the variance at the null model's mean (one IRLS step of it)
+    e0 = S.add(S.col("off") if has_off else S.num(0.0), S.num(null.intercept))
+    n_mu = S.col("n_mu")
+    return S.select(
+        [
+            *_cols(*kept, "rt", "n_mu"),
+            S.alias(link.mu_eta_sql(e0, n_mu), "n_dmu"),
+            S.alias(fam.variance_sql(n_mu.copy()), "n_var"),
+        ],
+        S.subquery(staged, "d"),
+    )
+
+
+def _null_mean(plan: AssessPlan, null: NullModel) -> Expr:
+    fam, link = plan.ctx.spec.family, plan.ctx.spec.link
+    if null.mean is not None:
+        return fam.clamp_mu_sql(S.num(null.mean))
+    off = S.col("off") if plan.ctx.spec.offset is not None else S.num(0.0)
+    return null_mean_sql(fam, link, off, float(null.intercept))
+
+
+def _null_terms(plan: AssessPlan, null: NullModel) -> list[tuple[str, Expr]]:
+    """(alias, per-row term) of the null model's sums over the scored rows."""
+    fam = plan.ctx.spec.family
+    y, pw, fw, n_mu = S.col("y"), S.col("pw"), S.col("fw"), S.col("n_mu")
+    if not null.step:
+        return [("nd", S.mul(fw, pw, fam.unit_deviance_sql(y, n_mu)))]
+    w, wz, dev = null_step_terms(
+        fam, float(null.intercept), y, pw, fw, n_mu, S.col("n_dmu"), S.col("n_var")
+    )
+    return [("nd", dev), ("nw0", w), ("nwz0", wz)]
+
+
+def null_query(plan: AssessPlan, null: NullModel) -> exp.Select:
+    """The null scan: the constant-rate model's deviance (``nd``) over the scored rows, the
+    sums of one IRLS step of it (``nw0``, ``nwz0``) with ``null.step``, and the rows (``n``)."""
+    rows = scored_rows(plan, null)
+    cols = [S.alias(S.psum(term), alias) for alias, term in _null_terms(plan, null)]
+    cols.append(S.alias(S.count_star(), "n"))
+    return S.select(cols, S.subquery(rows, "s"))
+
+
+# -- the assessment scan -----------------------------------------------------------------------
+
+
+def _window(agg: Expr, partition: str, order: str | None) -> exp.Window:
+    """``agg`` OVER (PARTITION BY partition [ORDER BY order, running total])."""
+    if order is None:
+        return exp.Window(this=agg, partition_by=[S.col(partition)], over="OVER")
+    return exp.Window(
+        this=agg,
+        partition_by=[S.col(partition)],
+        order=exp.Order(expressions=[exp.Ordered(this=S.col(order), nulls_first=False)]),
+        spec=exp.WindowSpec(
+            kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW"
+        ),
+        over="OVER",
+    )
+
+
+def _by_part(parts: tuple[Part, ...], pick: list[int], values: list[Expr], else_: Expr) -> Expr:
+    """CASE g WHEN <mask of part i> THEN values[i] ... ELSE else_ END (``pick``: the parts)."""
+    whens = [
+        (S.eq(S.col("g"), S.integer(part_mask(i, len(parts)))), v)
+        for i, v in zip(pick, values, strict=True)
+    ]
+    return S.case(whens, else_) if whens else else_
+
+
+def assess_query(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
+    """The assessment scan: per part, one row per band (ordered parts) or per level.
+
+    Columns: ``g`` (the part's GROUPING bitmask, :func:`part_mask`), ``band``, ``lv`` (the
+    level), ``lo``/``hi`` (the band's lowest and highest key), ``n`` (rows), ``nw``
+    (frequency-weighted rows), ``wt`` (sum f pw), ``ex`` (exposure), ``ac`` (actual), ``ep``
+    (expected), ``dv`` (deviance), ``nu`` (rows with an unseen level), ``ar`` (twice the
+    band's area under the ordered Lorenz curve, times total exposure and actual), ``ng`` (tie
+    groups) and, with ``null``, the null model's sums. At most ``max_levels + 1`` rows per
+    part come back.
+    """
+    parts = plan.parts
+    count = len(parts)
+    rows = scored_rows(plan, null)
+    # the key of each part in the grouped rows: the score, the rate, the mean, or a column's
+    src_key = {SCORE: S.col("sc"), BEST: S.col("rt"), MEAN: S.col("mu")}
+    keyed = [
+        S.alias(src_key[p.role] if p.role in src_key else S.col(_key(i)), _key(i))
+        for i, p in enumerate(parts)
+    ]
+    numbers: list[tuple[str, Expr]] = [
+        ("n", S.count_star()),
+        ("nw", S.psum(S.col("fw"))),
+        *((a, S.psum(S.col(a))) for a in ("wt", "ex", "ac", "ep", "dv")),
+        ("nu", S.sum_(S.flag(S.gt(S.col("nu"), exp.Literal.number(0))))),
+    ]
+    if null is not None:
+        numbers += [(a, S.psum(term)) for a, term in _null_terms(plan, null)]
+    inner = S.select(
+        [*keyed, *(S.col(n) for n in ("fw", "wt", "ex", "ac", "ep", "dv", "nu"))]
+        + _null_inputs(plan, null),
+        S.subquery(rows, "s"),
+    )
+    keys = [S.col(_key(i)) for i in range(count)]
+    grouped = exp.Select(
+        expressions=[
+            S.alias(exp.Anonymous(this="GROUPING", expressions=[k.copy() for k in keys]), "g"),
+            *(k.copy() for k in keys),
+            *(S.alias(agg, a) for a, agg in numbers),
+        ]
+    ).from_(S.subquery(inner, "r"), copy=False)
+    sets = exp.GroupingSets(expressions=[exp.Tuple(expressions=[k.copy()]) for k in keys])
+    grouped.set("group", exp.Group(grouping_sets=[sets]))
+    names = [a for a, _ in numbers]
+    # one key per row: the ordered parts' (a double) and the level parts' (text)
+    ordered = [i for i, p in enumerate(parts) if p.ordered]
+    leveled = [i for i, p in enumerate(parts) if not p.ordered]
+    k = _by_part(parts, ordered, [S.col(_key(i)) for i in ordered], exp.Null())
+    lv = _by_part(parts, leveled, [S.col(_key(i)) for i in leveled], S.as_text(exp.Null()))
+    weighted = [i for i, p in enumerate(parts) if p.by_weight]
+    bw = _by_part(parts, weighted, [S.col("wt") for _ in weighted], S.col("ex"))
+    nb = _by_part(
+        parts, ordered, [exp.Literal.number(parts[i].bands) for i in ordered], exp.Literal.number(1)
+    )
+    keyed_rows = S.select(
+        [
+            S.col("g"),
+            S.alias(k, "k"),
+            S.alias(lv, "lv"),
+            *_cols(*names),
+            S.alias(bw, "bw"),
+            S.alias(nb, "nb"),
+        ],
+        S.subquery(grouped, "gr"),
+    )
+    # running sums along each ordered part's key; a NULL key (a NULL in a banded column)
+    # adds nothing, wherever the engine sorts NULLs
+    has_key = S.not_(S.is_null(S.col("k")))
+
+    def only_keyed(column: str) -> Expr:
+        return S.case([(has_key.copy(), S.col(column))])
+
+    running = S.select(
+        [
+            *_cols("g", "k", "lv", *names, "bw", "nb"),
+            S.alias(_window(S.sum_(only_keyed("bw")), "g", "k"), "cb"),
+            S.alias(_window(S.sum_(only_keyed("ac")), "g", "k"), "cy"),
+            S.alias(_window(S.sum_(only_keyed("bw")), "g", None), "tb"),
+        ],
+        S.subquery(keyed_rows, "kr"),
+    )
+    # a tie group's band holds the midpoint of its exposure; its trapezoid under the
+    # Lorenz curve, times twice the totals: ex (2 cy - ac) = ex (cy before + cy after)
+    mid = S.sub(S.col("cb"), S.div(S.col("bw"), S.num(2.0)))
+    cut = S.add(S.floor_(S.div(S.mul(S.col("nb"), mid), S.col("tb"))), exp.Literal.number(1))
+    band = S.case(
+        [(S.and_(has_key.copy(), S.gt(S.col("tb"), S.num(0.0))), S.least(S.col("nb"), cut))]
+    )
+    area = S.case(
+        [
+            (
+                has_key.copy(),
+                S.mul(S.col("ex"), S.sub(S.mul(S.num(2.0), S.col("cy")), S.col("ac"))),
+            )
+        ]
+    )
+    banded = S.select(
+        [*_cols("g", "k", "lv", *names), S.alias(band, "band"), S.alias(area, "ar")],
+        S.subquery(running, "cr"),
+    )
+    per_band = exp.Select(
+        expressions=[
+            *_cols("g", "band", "lv"),
+            S.alias(S.min_(S.col("k")), "lo"),
+            S.alias(S.max_(S.col("k")), "hi"),
+            *(S.alias(S.sum_(S.col(a)), a) for a in names),
+            S.alias(S.sum_(S.col("ar")), "ar"),
+            S.alias(S.count_star(), "ng"),
+        ]
+    ).from_(S.subquery(banded, "bd"), copy=False)
+    per_band = per_band.group_by(*_cols("g", "band", "lv"), copy=False)
+    order = exp.Order(expressions=[exp.Ordered(this=S.col("band")), exp.Ordered(this=S.col("lv"))])
+    rank = exp.Window(this=exp.RowNumber(), partition_by=[S.col("g")], order=order, over="OVER")
+    ranked = S.select([exp.Star(), S.alias(rank, "rk")], S.subquery(per_band, "pb"))
+    out = [*_cols("g", "band", "lv", "lo", "hi", *names, "ar", "ng")]
+    return S.select(
+        out,
+        S.subquery(ranked, "rb"),
+        where=S.le(S.col("rk"), exp.Literal.number(plan.max_levels + 1)),
+    )
+
+
+def _null_inputs(plan: AssessPlan, null: NullModel | None) -> list[Expr]:
+    """The scored rows' columns the null model's terms read."""
+    if null is None:
+        return []
+    names = ["y", "pw", "n_mu", *(["n_dmu", "n_var"] if null.step else [])]
+    return _cols(*names)
