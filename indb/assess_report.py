@@ -203,7 +203,7 @@ def _calibration(r: AssessResult) -> str:
     hl = r.hosmer_lemeshow
     if hl is not None:
         text += (
-            f"\nHosmer-Lemeshow statistic {_general(hl.statistic, 5)} on {hl.df} df, "
-            f"p-value {_general(hl.p_value, 3)} ({hl.groups} bands)"
+            f"\nHosmer-Lemeshow chi-square {_general(hl.statistic, 5)}, {hl.df} df, "
+            f"p = {_general(hl.p_value, 3)} ({hl.groups} bands)"
         )
     return text

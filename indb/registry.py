@@ -455,26 +455,6 @@ class Registry(ViewPlacement):
             }
         self._check_not_foreign(name, target, current)
 
-    def _check_scoring_inputs(
-        self, current: dict[str, Any] | None, inputs: Sequence[str], score_source: str | None
-    ) -> None:
-        """Refuse, before any scan, a scoring source that lacks columns the model reads
-        (the view would otherwise fail to build after the whole fit)."""
-        row = {"score_source": score_source} if score_source else current
-        if row is None or not row.get("score_source"):
-            return  # a new model scores its own source
-        types = self._source_types(row)
-        if types is None:
-            return  # unreadable: the write-back's own check says why
-        missing = [c for c in inputs if c not in types]
-        if missing:
-            raise SpecError(
-                f"the scoring source {Source.parse(row['score_source']).label()!r} lacks "
-                f"model input column(s) {missing}; give a scoring source that has them "
-                "(score_source=, CLI --score-source) or leave them out of the model "
-                "(exclude=, --exclude); checked before the fit, nothing was read or written"
-            )
-
     def _live_result(self, name: str, current: dict[str, Any] | None) -> FitResult | None:
         """The live version's result (None without a model or a live version)."""
         if current is None or current.get("live_version") is None:

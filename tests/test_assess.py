@@ -376,7 +376,7 @@ def test_cli_text_and_json(models: dict[str, Any]) -> None:
     assert " ".join(lines[-2:]) == CAUTION
     hl = _run("assess", "had", "--db", db, "--on", "fair_hold", "--bands", "8")
     assert hl.exit_code == 0
-    assert "Hosmer-Lemeshow statistic" in hl.stdout and "on 6 df" in hl.stdout
+    assert "Hosmer-Lemeshow chi-square" in hl.stdout and ", 6 df," in hl.stdout
     assert _digest(db) == before  # nothing written: the file is opened read-only
 
 
