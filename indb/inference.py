@@ -13,7 +13,7 @@ import warnings
 import numpy as np
 from scipy import sparse
 
-from indb import solver
+from indb import solver, termtests
 from indb import sqlexpr as S
 from indb.design import Design, DesignColumn, Inputs, Scaling
 from indb.errors import AliasingWarning, PrecisionWarning, ResidualDfWarning, SeparationWarning
@@ -145,6 +145,8 @@ def result(
         source=spec.source.label(),
         coefficients=coefs,
         covariance=inf.covariance,
+        term_tests=termtests.term_tests(coefs, inf.covariance),
+        collinearity=termtests.collinearity(coefs, inf.covariance),
         deviance=deviance,
         null_deviance=sc.unscale(null_dev),
         pearson_chi2=sc.unscale(sums.pearson),

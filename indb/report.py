@@ -61,10 +61,11 @@ def render_report(result: FitResult, *, width: int = 100) -> str:
         _model_block(result, width),
         _quality_block(result, width),
         _terms_block(result, width),
+        _whole_terms_block(result, width),
         _notes_block(result, width),
         _caution_block(width),
     ]
-    return "\n\n".join(b.rstrip("\n") for b in blocks) + "\n"
+    return "\n\n".join(b.rstrip("\n") for b in blocks if b) + "\n"
 
 
 def render_json(result: FitResult) -> str:
@@ -168,6 +169,43 @@ def _terms_block(result: FitResult, width: int) -> str:
                 indent="  ",
             )
         )
+    return "\n".join(lines)
+
+
+def _whole_terms_block(result: FitResult, width: int) -> str:
+    """Each term as a whole: its Wald chi-square (all its coefficients zero) and its
+    generalized VIF; empty when the model has no terms."""
+    if not result.term_tests:
+        return ""
+    title = "WHOLE TERMS"
+    legend = (
+        "Wald chi-square of all the term's coefficients at once, its df and chi-square tail "
+        "probability; GVIF = generalized variance-inflation factor (Fox and Monette), "
+        "GVIF^(1/2df) comparable across terms."
+    )
+    lines = [title, "-" * len(title), *_wrap(legend, width, indent="  "), ""]
+    gvif = {c.term: c for c in result.collinearity}
+    rows = [
+        (
+            t.term,
+            str(t.df),
+            _fmt_value(t.wald_chi2),
+            _chi2_p(t.p_value, t.wald_chi2, t.df),
+            _fmt_value(gvif[t.term].gvif) if t.term in gvif else NA,
+            _fmt_fixed(gvif[t.term].gvif_scaled, 3) if t.term in gvif else NA,
+        )
+        for t in result.term_tests
+    ]
+    heads = ("term", "df", "Wald chi-square", "p", "GVIF", "GVIF^(1/2df)")
+    widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(heads)]
+    lines.append(
+        "  "
+        + heads[0].ljust(widths[0])
+        + "".join(_GAP + h.rjust(w) for h, w in zip(heads[1:], widths[1:], strict=True))
+    )
+    for r in rows:
+        cells = "".join(_GAP + v.rjust(w) for v, w in zip(r[1:], widths[1:], strict=True))
+        lines.append("  " + r[0].ljust(widths[0]) + cells)
     return "\n".join(lines)
 
 
@@ -364,7 +402,28 @@ def _tiny_p(wald: float, test: str, df: Any) -> str:
     from scipy import stats  # only for p-values below the smallest double
 
     dist = stats.t(float(df)) if test == "t" and _finite(df) else stats.norm
-    log10_p = (math.log(2.0) + float(dist.logsf(abs(wald)))) / math.log(10.0)
+    return _from_log(math.log(2.0) + float(dist.logsf(abs(wald))))
+
+
+def _chi2_p(p: float, chi2: float, df: int) -> str:
+    """A chi-square tail probability, past the smallest double from its logarithm."""
+    if not (p == 0.0 and _finite(chi2)):
+        return _fmt_p(p)
+    from scipy import stats
+
+    log_p = float(stats.chi2.logsf(chi2, df))
+    if not math.isfinite(log_p):
+        # far tail: Q(a, x) ~ x^(a-1) e^-x / Gamma(a) (1 + (a-1)/x + (a-1)(a-2)/x^2),
+        # a = df/2, x = chi2/2 (Abramowitz & Stegun 6.5.32)
+        a, x = df / 2.0, chi2 / 2.0
+        series = 1.0 + (a - 1.0) / x + (a - 1.0) * (a - 2.0) / x**2
+        log_p = (a - 1.0) * math.log(x) - x - math.lgamma(a) + math.log(series)
+    return _from_log(log_p)
+
+
+def _from_log(log_p: float) -> str:
+    """``m.me-k`` from the natural logarithm of a probability."""
+    log10_p = log_p / math.log(10.0)
     power = math.floor(log10_p)
     return f"{10 ** (log10_p - power):.1f}e{power:d}"
 

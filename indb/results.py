@@ -52,6 +52,28 @@ class Coefficient:
 
 
 @dataclass(frozen=True)
+class TermTest:
+    """The Wald test of one whole model term (all its coefficients are zero): ``wald_chi2``
+    on ``df`` degrees of freedom, ``p_value`` its chi-square tail probability."""
+
+    term: str
+    df: int
+    wald_chi2: float
+    p_value: float
+
+
+@dataclass(frozen=True)
+class Collinearity:
+    """The generalized variance-inflation factor of one model term (Fox and Monette, 1992)
+    and ``gvif_scaled`` = gvif^(1/(2 df)), which compares terms of different df."""
+
+    term: str
+    df: int
+    gvif: float
+    gvif_scaled: float
+
+
+@dataclass(frozen=True)
 class IterationRecord:
     """What one IRLS iteration (one aggregate scan) produced."""
 
@@ -116,6 +138,10 @@ class FitResult:
     design: dict[str, Any] = field(default_factory=dict)
     fingerprint: dict[str, Any] = field(default_factory=dict)
     deployment: dict[str, Any] = field(default_factory=dict)
+    #: one Wald test per whole term, and each term's generalized VIF (no scan; NaN where
+    #: the covariance is not kept)
+    term_tests: tuple[TermTest, ...] = ()
+    collinearity: tuple[Collinearity, ...] = ()
 
     # -- the model as objects ------------------------------------------------------------
     @property
@@ -209,6 +235,8 @@ class FitResult:
             "spec": self.spec,
             "design": self.design,
             "fingerprint": self.fingerprint,
+            "term_tests": [_clean(asdict(t)) for t in self.term_tests],
+            "collinearity": [_clean(asdict(t)) for t in self.collinearity],
         }
         if self.deployment:
             out["deployment"] = dict(self.deployment)
@@ -292,6 +320,14 @@ class FitResult:
             spec=d.get("spec", {}),
             design=d.get("design", {}),
             fingerprint=d.get("fingerprint", {}),
+            term_tests=tuple(
+                TermTest(t["term"], int(t["df"]), f(t["wald_chi2"]), f(t["p_value"]))
+                for t in d.get("term_tests", [])
+            ),
+            collinearity=tuple(
+                Collinearity(t["term"], int(t["df"]), f(t["gvif"]), f(t["gvif_scaled"]))
+                for t in d.get("collinearity", [])
+            ),
         )
 
 
