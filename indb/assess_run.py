@@ -42,7 +42,8 @@ from indb.plan.assess_scan import (
     null_query,
 )
 from indb.plan.context import SRC, PlanContext
-from indb.plan.profile import domain_checks, profile_query
+from indb.plan.profile import profile_query
+from indb.prefit import check_domain
 from indb.results import FitResult
 from indb.spec import ModelSpec, Source
 
@@ -283,16 +284,7 @@ def checked_rows(plan: AssessPlan, row: dict[str, object]) -> tuple[int, dict[st
             f"every one of the {n_total:,} rows of {where} has a NULL in a column the model "
             f"reads (NULL counts: {counts}); nothing to assess"
         )
-    for i, (stem, _) in enumerate(domain_checks(ctx)):
-        bad = fetched_count(row[f"chk_{i}"])
-        if bad:
-            detail = ""
-            if "response" in stem and "NaN" not in stem:
-                detail = f" (min {_num(row['y_min']):.6g}, max {_num(row['y_max']):.6g})"
-            raise SpecError(
-                f"{stem} in {bad:,} of {n_kept:,} rows of {where}{detail}; filter or fix "
-                "those rows in the source query"
-            )
+    check_domain(ctx, row, n_kept, where)
     exposure = _num(row.get("sum_fe", row["sum_fpw"]))
     if not (_num(row["sum_fpw"]) > 0 and exposure > 0):
         what = "frequency weight x exp(offset)" if plan.log_exposure else "weight x trials"

@@ -102,6 +102,23 @@ def _fmt(v: object) -> str:
     return "NULL" if v is None else f"{float(v):.6g}"
 
 
+def check_domain(ctx: PlanContext, row: dict[str, object], n: int, where: str = "") -> None:
+    """Refuse kept rows whose values are out of the family's domain, from the ``chk_<i>``
+    counts of :func:`~indb.plan.profile.domain_checks` in ``row`` (a fit's profile or an
+    assessment's check scan; ``where`` names the source in the message)."""
+    for i, (stem, _) in enumerate(domain_checks(ctx)):
+        bad = fetched_count(row[f"chk_{i}"])
+        if bad:
+            detail = ""
+            if "response" in stem and "NaN" not in stem:
+                detail = f" (min {_fmt(row['y_min'])}, max {_fmt(row['y_max'])})"
+            of = f" of {where}" if where else ""
+            raise SpecError(
+                f"{stem} in {bad:,} of {n:,} rows{of}{detail}; filter or fix those rows in "
+                "the source query"
+            )
+
+
 def _what(label: str) -> str:
     return label if label.endswith("expression") else f"column {label!r}"
 
@@ -159,15 +176,7 @@ def summarize(
     """The profile row checked (domain, weights, a response with both outcomes, constant
     predictors) and turned into a :class:`Summary`; values centred and scaled."""
     n = int(row["n_kept"])
-    for i, (stem, _) in enumerate(domain_checks(ctx)):
-        bad = int(row[f"chk_{i}"] or 0)
-        if bad:
-            detail = ""
-            if "response" in stem and "NaN" not in stem:
-                detail = f" (min {_fmt(row['y_min'])}, max {_fmt(row['y_max'])})"
-            raise SpecError(
-                f"{stem} in {bad} of {n} rows{detail}; filter or fix those rows in the source query"
-            )
+    check_domain(ctx, row, n)
     sum_fpw = float(row["sum_fpw"] or 0.0)
     if not sum_fpw > 0:
         raise SpecError(
