@@ -143,12 +143,18 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
     # every scan of the fit's table must see the rows the profile saw
     rows = run.compressed[1] if run.compressed is not None else n_kept
     run.expected = (rows, summary.sum_f * run.scaling.freq_factor)
+    theta_est = None
     if spec.estimate_theta:
-        theta, beta0 = estimate_theta(ctx, design, run, summary)
-        spec = dataclasses.replace(spec, family=NegativeBinomial(theta=theta))
+        theta_est = estimate_theta(ctx, design, run, summary)
+        if theta_est.note is not None:
+            if not theta_est.converged and spec.strict:
+                raise NonConvergenceError(theta_est.note)
+            warnings.warn(theta_est.note, ConvergenceWarning, stacklevel=2)
+            warn_msgs.append(theta_est.note)
+        spec = dataclasses.replace(spec, family=NegativeBinomial(theta=theta_est.theta))
         report_spec = dataclasses.replace(report_spec, family=spec.family)
         ctx = dataclasses.replace(ctx, spec=spec)
-        start = beta0
+        start = theta_est.beta
     else:
         start = start_from(spec, design, run.scaling)
     null_mu, refit_null = null_deviance(ctx, design, run, summary.ybar)
@@ -202,7 +208,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
             raise NonConvergenceError(msg)
         warnings.warn(msg, ConvergenceWarning, stacklevel=2)
         warn_msgs.append(msg)
-    return result(
+    res = result(
         ctx,
         design,
         run,
@@ -215,4 +221,11 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         warn_msgs,
         t_start,
         report_spec,
+    )
+    if theta_est is None:
+        return res
+    return dataclasses.replace(
+        res,
+        converged=res.converged and theta_est.converged,
+        family_param_errors={"theta": theta_est.std_error},
     )

@@ -36,6 +36,13 @@ _PHASE_LABELS = {"theta": "theta-estimation", "null": "null-model", "sample": "s
 def format_iteration(record: IterationRecord) -> str:
     """One progress line for one IRLS iteration (written to stderr by ``indb fit``)."""
     phase = getattr(record, "phase", "fit")
+    if phase == "theta":  # relative_change is theta's here (its Poisson start: deviance's)
+        return (
+            f"indb: theta-estimation scan {record.iteration:>3}"
+            f"  deviance {_fmt_number(record.deviance, '.10g')}"
+            f"  relative change {_fmt_number(record.relative_change, '.3e')}"
+            f"  {_fmt_number(record.seconds, '.3f')} s"
+        )
     if phase == "prepare":  # a pre-fit scan: no deviance yet
         return f"indb: pre-fit scan {record.iteration:>3}  {_fmt_number(record.seconds, '.3f')} s"
     label = "iteration" if phase == "fit" else f"{_PHASE_LABELS.get(phase, phase)} iteration"

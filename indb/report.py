@@ -132,7 +132,9 @@ def _quality_block(result: FitResult, width: int) -> str:
     ]
     for name, value in result.family_params.items():
         text = f"{float(value):.6g}" if _finite(value) else NA
-        rows.append((f"family: {name}", text, ""))
+        error = result.family_param_errors.get(name)
+        note = f"estimated, std error {error:.4g}" if error is not None and _finite(error) else ""
+        rows.append((f"family: {name}", text, note))
     if _finite(result.condition_number):
         rows.append(("condition number", _fmt_value(result.condition_number), "of X'WX"))
     return _kv_block("FIT QUALITY", rows, width)

@@ -129,6 +129,8 @@ class FitResult:
     path: str
     seconds: float
     family_params: dict[str, float] = field(default_factory=dict)
+    #: standard errors of estimated family parameters (the negative binomial theta)
+    family_param_errors: dict[str, float] = field(default_factory=dict)
     excluded_by_column: dict[str, int] = field(default_factory=dict)
     aliased_terms: tuple[str, ...] = ()
     condition_number: float = math.nan
@@ -228,6 +230,7 @@ class FitResult:
             "test": self.test,
             "path": self.path,
             "family_params": {k: _num(v) for k, v in self.family_params.items()},
+            "family_param_errors": {k: _num(v) for k, v in self.family_param_errors.items()},
             "aliased_terms": list(self.aliased_terms),
             "condition_number": _num(self.condition_number),
             "warnings": list(self.warnings),
@@ -312,6 +315,7 @@ class FitResult:
             path=d["path"],
             seconds=f(d["seconds"]),
             family_params={k: f(v) for k, v in d.get("family_params", {}).items()},
+            family_param_errors={k: f(v) for k, v in d.get("family_param_errors", {}).items()},
             excluded_by_column=dict(d.get("excluded_by_column", {})),
             aliased_terms=tuple(d.get("aliased_terms", [])),
             condition_number=f(d.get("condition_number")),

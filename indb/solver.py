@@ -332,6 +332,19 @@ def wald(
     return Inference(est, se, stat, pv, est - q * se, est + q * se, cov)
 
 
+def theta_score(
+    theta: float, hist_y: np.ndarray, hist_c: np.ndarray, total_c: float, a: float, b: float
+) -> tuple[float, float]:
+    """The profile log-likelihood's derivative in theta at fixed means, and its second
+    derivative (see :func:`theta_step` for the sums); minus the second is theta's observed
+    information, whose inverse square root is theta's standard error."""
+    score = float(hist_c @ (special.digamma(hist_y + theta) - special.digamma(theta)))
+    score += total_c * (math.log(theta) + 1.0) - a
+    hess = float(hist_c @ (special.polygamma(1, hist_y + theta) - special.polygamma(1, theta)))
+    hess += total_c / theta - b
+    return score, hess
+
+
 def theta_step(
     theta: float, hist_y: np.ndarray, hist_c: np.ndarray, total_c: float, a: float, b: float
 ) -> float:
@@ -341,15 +354,15 @@ def theta_step(
     sum_y c_y [psi'(y+theta) - psi'(theta)] + C / theta - b. Steps are taken on log(theta)
     so theta stays positive.
     """
-    score = float(hist_c @ (special.digamma(hist_y + theta) - special.digamma(theta)))
-    score += total_c * (math.log(theta) + 1.0) - a
-    hess = float(hist_c @ (special.polygamma(1, hist_y + theta) - special.polygamma(1, theta)))
-    hess += total_c / theta - b
+    score, hess = theta_score(theta, hist_y, hist_c, total_c, a, b)
     # d/d(log theta): g = theta * score; H = theta^2 * hess + theta * score
     g = theta * score
     h = theta * theta * hess + g
     if not (math.isfinite(g) and math.isfinite(h)) or h >= 0:
-        step = 0.5 if g > 0 else -0.5  # not concave here: move by a fixed factor
+        # not concave here: move by a fixed factor, a bigger one far out in the Poisson
+        # limit, where only the overdispersion check (theta past 1e8) ends the walk
+        size = 2.0 if theta >= 1e4 else 0.5
+        step = size if g > 0 else -size
     else:
         step = -g / h
     step = max(min(step, 2.0), -2.0)

@@ -356,13 +356,16 @@ def gram_query(
     null_mu: Expr | None = None,
     cells: Sequence[tuple[str, ...]] | None = None,
     null_intercept: float | None = None,
+    theta: float | None = None,
 ) -> exp.Select:
     """The IRLS scan: all sums for X'WX, X'Wz, deviance and Pearson, grouped by factor cells.
 
     ``beta`` are the standardized coefficients (None: the family's starting means).
     ``null_mu`` adds ``nulldev``, the deviance at a per-row null-model mean;
     ``null_intercept`` adds ``nullw``, ``nullwz`` and ``nulldev``: one IRLS step of the
-    intercept-only model with the offset, at that intercept.
+    intercept-only model with the offset, at that intercept. ``theta`` adds ``thetaa`` and
+    ``thetab``, the sums of :func:`theta_terms` for a Newton step on the negative binomial
+    theta at this scan's means (so the step costs no scan of its own).
     """
     eta = (
         _eta_start(ctx, design, ybar) if beta is None else _eta_from_beta(ctx, design, beta, cells)
@@ -386,6 +389,8 @@ def gram_query(
         )
     if ctx.spec.family.unit_mean:
         extra += edge_counts()
+    if theta is not None:
+        extra += theta_terms(theta)
     work = _work_stage(ctx, design, mean, extra, keep)
     vals = [None, *(S.col(v.alias) for v in design.values[1:])]
     aggs: list[Expr] = []
@@ -444,11 +449,31 @@ def loglik_query(
     return S.select([S.alias(S.psum(guarded), "ll")], S.subquery(mean, "m"))
 
 
+def theta_terms(theta: float) -> list[tuple[str, Expr]]:
+    """Per-row terms of the sums ``a`` = sum(c [ln(theta+mu) + (y+theta)/(theta+mu)]) and
+    ``b`` = sum(c [1/(theta+mu) + (mu-y)/(theta+mu)^2]), c = f * pw: with the response
+    histogram, the score of theta and its derivative at fixed means
+    (:func:`indb.solver.theta_score`)."""
+    y, mu = S.col("y"), S.col("mu")
+    c = S.mul(S.col("fw"), S.col("pw"))
+    th = S.num(theta)
+    tm = S.add(th, mu)
+    a = S.mul(c, S.add(S.ln(tm), S.div(S.add(y, th.copy()), tm.copy())))
+    b = S.mul(
+        c.copy(),
+        S.add(
+            S.div(S.num(1.0), tm.copy()), S.div(S.sub(mu.copy(), y.copy()), S.mul(tm, tm.copy()))
+        ),
+    )
+    return [("fthetaa", a), ("fthetab", b)]
+
+
 def theta_query(ctx: PlanContext, design: Design, beta: np.ndarray, theta: float) -> exp.Select:
     """Sums for a Newton step on the negative binomial theta at fixed means.
 
     ``a`` = sum(c [ln(theta+mu) + (y+theta)/(theta+mu)]), ``b`` = sum(c [1/(theta+mu) +
-    (mu-y)/(theta+mu)^2]) and ``mom`` = sum(c (y/mu - 1)^2), with c = f * pw.
+    (mu-y)/(theta+mu)^2]), ``mom`` = sum(c (y/mu - 1)^2) and ``inv`` = sum(c / mu), with
+    c = f * pw: E[(y/mu - 1)^2] = 1/mu + 1/theta gives theta's moment estimate.
     """
     mean = _mean_stage(ctx, design, _eta_from_beta(ctx, design, beta))
     y, mu = S.col("y"), S.col("mu")
@@ -459,8 +484,14 @@ def theta_query(ctx: PlanContext, design: Design, beta: np.ndarray, theta: float
     b = S.mul(c, S.add(S.div(S.num(1.0), tm), S.div(S.sub(mu, y), S.mul(tm, tm))))
     r = S.sub(S.div(y, mu), S.num(1.0))
     mom = S.mul(c, r, r)
+    inv = S.div(c.copy(), mu.copy())
     return S.select(
-        [S.alias(S.psum(a), "a"), S.alias(S.psum(b), "b"), S.alias(S.psum(mom), "mom")],
+        [
+            S.alias(S.psum(a), "a"),
+            S.alias(S.psum(b), "b"),
+            S.alias(S.psum(mom), "mom"),
+            S.alias(S.psum(inv), "inv"),
+        ],
         S.subquery(mean, "m"),
     )
 
