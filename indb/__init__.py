@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from indb import report as _report  # noqa: F401  (registers str(result), the text report)
-from indb.api import deploy, fit, scoring_sql
+from indb.api import deploy, explore, fit, scoring_sql
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
 from indb.engines.duckdb import DuckDBEngine
@@ -20,6 +20,7 @@ from indb.errors import (
     SpecError,
     UnsupportedError,
 )
+from indb.exploration import Exploration
 from indb.results import Coefficient, FitResult, IterationRecord
 from indb.spec import ModelSpec
 from indb.version import __version__
@@ -31,6 +32,7 @@ __all__ = [
     "DuckDBEngine",
     "Engine",
     "EngineError",
+    "Exploration",
     "FitResult",
     "IndbError",
     "IterationRecord",
@@ -44,6 +46,7 @@ __all__ = [
     "UnsupportedError",
     "connect",
     "deploy",
+    "explore",
     "fit",
     "scoring_sql",
     "__version__",

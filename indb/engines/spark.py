@@ -134,6 +134,19 @@ class SparkDialect(Dialect):
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         return exp.Anonymous(this="PERCENTILE", expressions=[x, S.num(q)])
 
+    def quantiles(self, x: exp.Expression, qs: Sequence[float]) -> list[exp.Expression]:
+        # PERCENTILE(x, ARRAY(q1, ...)) counts the values once for all of them (separate
+        # PERCENTILE calls would each keep a map of every distinct value); Spark computes the
+        # repeated identical aggregate once and [i] picks one (0-based; offset=0 tells
+        # sqlglot the literal is counted from 0 already)
+        listed = exp.Anonymous(
+            this="PERCENTILE", expressions=[x, exp.Array(expressions=[S.num(q) for q in qs])]
+        )
+        return [
+            exp.Bracket(this=listed.copy(), expressions=[exp.Literal.number(i)], offset=0)
+            for i in range(len(qs))
+        ]
+
     # Spark's `/` is true division and returns NULL for a zero divisor (an error in ANSI mode,
     # the default from Spark 4); ln and log return NULL for x <= 0; sqrt and exp follow Java's
     # Math (IEEE-754), and so does pow except 1 ^ NaN and (-1) ^ +/-inf (NaN in Java, 1 in C).
