@@ -90,7 +90,8 @@ class Column:
 
     @property
     def level_count(self) -> int:
-        """Distinct levels (NULL counted as one) or bands with rows."""
+        """Distinct levels, NULL counted as one; for a numeric column the bands with rows,
+        and one each for NaN/infinite values and NULL when there are such rows."""
         return len(self.levels) + self.other_levels
 
 

@@ -48,7 +48,8 @@ def _head(found: Exploration) -> str:
         "weight": weight,
         "rows": "1 per row",
     }[found.exposure_basis]
-    actual = f"{found.weight} x {found.response}" if found.weight else found.response
+    weighted = found.weight if found.weight and found.weight.isidentifier() else f"({found.weight})"
+    actual = f"{weighted} x {found.response}" if found.weight else found.response
     return "\n".join(
         [
             f"{found.response} on {found.source}: {rows}",
@@ -62,7 +63,8 @@ def _column_block(column: Column, found: Exploration, base: float) -> str:
     if column.kind == "numeric":
         if column.cuts or column.low is not None:
             span = f"{_short(column.low)} to {_short(column.high)}"
-            about = f"numeric {span}, {len(column.levels)} bands (quantile cuts at k/{found.bands})"
+            bands = sum(1 for lv in column.levels if lv.band)
+            about = f"numeric {span}, {bands} bands (quantile cuts at k/{found.bands})"
         else:
             about = "numeric, no finite values"
     else:

@@ -186,8 +186,11 @@ def explore_grouped_query(
     )
     grouped = _grouping_sets(keys, n_cat, len(columns))
     grouped = grouped.from_(S.subquery(rows, "xr"), copy=False)
+    # the NULL level ranks last, so the first ``cap`` ranks go to levels with a value
+    missing = S.and_(S.is_null(S.col(LEVEL)), S.is_null(S.col(BAND)))
     order = exp.Order(
         expressions=[
+            exp.Ordered(this=S.flag(missing.copy())),
             exp.Ordered(this=S.col(EXPOSURE), desc=True),
             exp.Ordered(this=S.col(ROWS), desc=True),
             exp.Ordered(this=S.col(LEVEL)),
@@ -196,7 +199,6 @@ def explore_grouped_query(
     )
     rank = exp.Window(this=exp.RowNumber(), partition_by=[S.col(SET)], order=order)
     ranked = S.select([exp.Star(), S.alias(rank, "rk")], S.subquery(grouped, "xg"))
-    missing = S.and_(S.is_null(S.col(LEVEL)), S.is_null(S.col(BAND)))
     shown = S.or_(S.le(S.col("rk"), S.integer(cap)), S.ge(S.col(SET), S.integer(n_cat)), missing)
     slotted = S.select(
         [exp.Star(), S.alias(S.case([(shown, S.col("rk"))], S.integer(OTHER_SLOT)), SLOT)],
