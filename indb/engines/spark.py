@@ -89,7 +89,9 @@ class SparkDialect(Dialect):
             # GROUPING(a, b, ...) -- the bitmask over several grouping columns, as in
             # DuckDB and PostgreSQL -- is GROUPING_ID(a, b, ...) in Spark, whose GROUPING
             # takes one column (same bit order: the first column is the most significant).
-            if str(node.this).upper() == "GROUPING":
+            # GROUPING(a) of one column stays: Spark's GROUPING_ID must list every column of
+            # the GROUP BY (GROUPING_ID_COLUMN_MISMATCH)
+            if str(node.this).upper() == "GROUPING" and len(node.expressions) > 1:
                 node.set("this", "GROUPING_ID")
         return super().render(tree)
 

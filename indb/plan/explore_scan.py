@@ -246,8 +246,7 @@ def _grouping_sets(keys: Sequence[str], n_cat: int, n_sets: int) -> exp.Select:
 
 
 def _grouping(column: Expr) -> Expr:
-    # GROUPING(c): 1 where c is not grouped in the row's set (Spark's dialect renders it
-    # GROUPING_ID, the same for one column)
+    # GROUPING(c): 1 where c is not grouped in the row's set
     return exp.Anonymous(this="GROUPING", expressions=[column])
 
 
