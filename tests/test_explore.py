@@ -29,7 +29,7 @@ from indb import options as O
 from indb.cli import main
 from indb.demo_data import policies_table
 from indb.engines.duckdb import DuckDBEngine
-from indb.errors import SpecError
+from indb.errors import EngineError, SpecError
 
 ROWS = 6_000
 
@@ -455,3 +455,37 @@ def test_cli_bad_input_exit_2_one_line(db_file: str, args: list[str], needle: st
 def test_cli_missing_database_file(tmp_path) -> None:
     out = _run("explore", "t", "--db", str(tmp_path / "nope.duckdb"), "--response", "y")
     assert out.exit_code == 2 and "no such database file" in out.stderr
+
+
+# -- hostile names and expressions ---------------------------------------------------------------
+
+PAYLOADS = [
+    "'; DROP TABLE t; --",
+    '" OR 1=1 --',
+    "x\n; DROP TABLE t",
+    "1); DROP TABLE t; --",
+    "$$; DROP TABLE t; $$",
+]
+
+
+def test_payloads_stay_names_levels_or_refused_expressions(con: duckdb.DuckDBPyConnection) -> None:
+    # a payload as a level is data (shown as written), as a --by name a missing column, as an
+    # offset or weight expression a parse error or a refused statement: never run
+    levels = [*PAYLOADS, "plain"]
+    df = pd.DataFrame(
+        {"y": np.arange(12, dtype=float), "k": [levels[i % len(levels)] for i in range(12)]}
+    )
+    load(con, df, "t")
+    found = indb.explore("t", "y", db=con)
+    assert_matches(found, one_way(df, "y", categorical=["k"]))
+    assert {lv.level for lv in found.column("k").levels} == set(levels)
+    for payload in PAYLOADS:
+        with pytest.raises(SpecError):
+            indb.explore("t", "y", by=[payload], db=con)
+        for option in ("offset", "weight"):
+            # '$$...$$' parses as a text literal, which the engine then fails to cast to a
+            # number (EngineError, as in a fit): refused either way, nothing else runs
+            with pytest.raises((SpecError, EngineError)):
+                indb.explore("t", "y", db=con, **{option: payload})
+    assert con.execute("SELECT count(*) FROM t").fetchone() == (12,)
+    assert con.execute("SELECT count(*) FROM duckdb_tables()").fetchone() == (1,)
