@@ -57,7 +57,9 @@ def exposure_sql(ctx: PlanContext) -> Expr:
     w, off = ctx.raw_weight(), ctx.raw_offset()
     if off is None:
         return w if w is not None else S.num(1.0)
-    return S.mul(w, S.exp_(off)) if w is not None else S.exp_(off)
+    # IEEE exp: PostgreSQL raises on underflow (exp(-800)), where the exposure is just 0
+    e = S.IeeeExp(this=off)
+    return S.mul(w, e) if w is not None else e
 
 
 def actual_sql(ctx: PlanContext) -> Expr:

@@ -112,3 +112,13 @@ def test_boolean_response_and_dataset_on_every_engine(loader) -> None:
         level_text=lambda v: str(int(v)),
     )
     assert_matches(found, want)
+
+
+def test_tiny_exposure_underflows_to_zero(loader) -> None:
+    # exp(offset) below the smallest double is an exposure of 0 (PostgreSQL's exp raises on
+    # underflow; the plan asks for IEEE's 0); by hand: exposures 1 + 0, actual 1 + 2
+    frame = pd.DataFrame({"y": [1.0, 2.0], "off": [0.0, -800.0], "k": ["a", "a"]})
+    loader.load("tiny", frame)
+    found = indb.explore("tiny", "y", offset="off", db=loader.engine)
+    level = found.column("k").levels[0]
+    assert (level.rows, level.exposure, level.actual) == (2, 1.0, 3.0)
