@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from indb import report as _report  # noqa: F401  (registers str(result), the text report)
-from indb.api import assess, deploy, fit, scoring_sql
+from indb.api import assess, deploy, explore, fit, scoring_sql
 from indb.assessment import AssessResult
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
@@ -22,6 +22,7 @@ from indb.errors import (
     SpecError,
     UnsupportedError,
 )
+from indb.exploration import Exploration
 from indb.results import Coefficient, FitResult, IterationRecord
 from indb.spec import ModelSpec
 from indb.version import __version__
@@ -35,6 +36,7 @@ __all__ = [
     "DuckDBEngine",
     "Engine",
     "EngineError",
+    "Exploration",
     "FitResult",
     "IndbError",
     "IterationRecord",
@@ -49,6 +51,7 @@ __all__ = [
     "assess",
     "connect",
     "deploy",
+    "explore",
     "fit",
     "scoring_sql",
     "__version__",

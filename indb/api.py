@@ -13,6 +13,7 @@ from indb.assessment import AssessResult
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
 from indb.errors import ConvergenceWarning, RegistryError, SpecError
+from indb.exploration import Exploration, explore_source
 from indb.fitter import fit_spec, plan_spec
 from indb.prefit import scoring_inputs
 from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
@@ -367,6 +368,69 @@ def dry_run(
     )
     try:
         return plan_spec(spec, engine)
+    finally:
+        if engine is not db:
+            engine.close()
+
+
+def explore(
+    source: str,
+    response: str,
+    *,
+    offset: str | None = None,
+    weight: str | None = None,
+    by: Sequence[str] | None = None,
+    bands: int = 10,
+    max_shown: int = 20,
+    exclude: Sequence[str] = (),
+    categorical: Sequence[str] = (),
+    db: Any = None,
+    memory_limit: str | None = None,
+    temp_directory: str | None = None,
+    threads: int | None = None,
+) -> Exploration:
+    """One-way figures of ``response`` before a model: per level of each categorical column
+    and per quantile band of each numeric column, the rows, exposure, Σ weight x response
+    and the observed rate, in two scans of ``source`` inside the database.
+
+    The columns explored are ``by`` or, by default, those a fit would take as predictors
+    (every column but the response and the columns the offset and weight read, less
+    ``exclude``; ``categorical`` treats numeric columns as categorical). A row's exposure is
+    weight x exp(offset): the offset is read as the log of exposure, as a log-link model
+    reads it (without an offset the weight, without either 1). The observed rate is
+    Σ weight x response / Σ exposure. Rows with a NULL response, offset or weight are set
+    aside and counted; a NULL in an explored column is a level of its own. Numeric columns
+    are cut at their quantiles k/bands (linear interpolation, numpy's default) over the rows
+    used; a categorical column shows its ``max_shown`` levels with the most exposure and
+    sums the rest in one row. Nothing is written.
+
+    Returns
+    -------
+    Exploration
+        The figures per column and in all; ``to_dict()`` is the JSON form.
+    """
+    # every parameter is a local here, before any other name is bound
+    O.check_options(locals(), O.EXPLORE_KINDS)
+    engine = connect(
+        db,
+        read_only=True,
+        memory_limit=memory_limit,
+        temp_directory=temp_directory,
+        threads=threads,
+    )
+    try:
+        return explore_source(
+            engine,
+            source,
+            response,
+            offset=offset,
+            weight=weight,
+            by=by,
+            exclude=exclude,
+            categorical=categorical,
+            bands=bands,
+            max_shown=max_shown,
+        )
     finally:
         if engine is not db:
             engine.close()

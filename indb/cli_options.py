@@ -155,6 +155,8 @@ def _click_option(sp: Spelling, help: str | None) -> Callable[[F], F]:
         return click.option(switch, sp.dest, **common)
     required = not sp.hidden and (option.required or option.cli_required)
     kw: dict[str, Any] = {**common, "metavar": option.metavar, "required": required}
+    if required:
+        kw["callback"] = _required
     if option.kind in _REPEATED:
         return click.option(sp.flag, sp.dest, **{**kw, "default": (), "multiple": True})
     if option.choices and not option.resolved:
@@ -164,6 +166,15 @@ def _click_option(sp: Spelling, help: str | None) -> Callable[[F], F]:
     else:
         kind_type = _SCALAR_TYPES[option.kind]
     return click.option(sp.flag, sp.dest, type=kind_type, **kw)
+
+
+def _required(ctx: click.Context, param: click.Parameter, value: Any) -> Any:
+    # click 8.3 and later take the explicit default None (kept so that the library's
+    # defaults stay the only ones) as a value given, so required=True alone let a missing
+    # --response through: the call failed with a TypeError (exit 1), not a usage error (2)
+    if value is None:
+        raise click.MissingParameter(ctx=ctx, param=param)
+    return value
 
 
 def click_options(*options: Option, help: str | None = None) -> Callable[[F], F]:

@@ -279,11 +279,7 @@ def resolve_inputs(
         )
 
     def need(col: str, role: str) -> None:
-        if col not in types:
-            raise SpecError(
-                f"{role} column {col!r} is not in the source{_did_you_mean(col, names)}; "
-                f"columns are {_short(names)}"
-            )
+        require_column(col, role, names)
 
     need(spec.response, "response")
     rkind = type_kind(types[spec.response])
@@ -432,6 +428,17 @@ def resolve_inputs(
         model_columns=tuple(model_cols),
         spline_columns=tuple(spec.splines),
     )
+
+
+def require_column(name: str, role: str, names: Sequence[str], fix: str = "") -> None:
+    """Raise :class:`SpecError` when ``name`` is not among the source's column ``names``:
+    "``role`` column 'x' is not in the source (did you mean 'y'?); columns are ...", then
+    ``fix`` (how to put it right) when given."""
+    if name not in names:
+        raise SpecError(
+            f"{role} column {name!r} is not in the source{_did_you_mean(name, names)}; "
+            f"columns are {_short(names)}" + (f"; {fix}" if fix else "")
+        )
 
 
 def _short(names: Sequence[str], limit: int = 12) -> str:

@@ -167,8 +167,9 @@ REQUIRED: Any = _Required()
 #: capped by indb.normal_eq.MAX_REST_COLUMNS. ``ModelSpec.build`` checks the range.
 MAX_LEVELS_LIMIT = 50_000
 
-#: The groups of options; the first three are also the tables of a spec file.
-GROUPS = ("model", "deploy", "engine", "run")
+#: The groups of options; the first three are also the tables of a spec file. ``explore``
+#: holds the options only ``indb explore`` has (:data:`EXPLORE_OPTIONS`), outside ``OPTIONS``.
+GROUPS = ("model", "deploy", "engine", "run", "explore")
 
 
 @dataclass(frozen=True)
@@ -556,6 +557,58 @@ SPEC_OPTIONS: dict[str, Kind] = kinds(o for o in group("model") if not o.positio
 DEPLOY_OPTIONS: dict[str, Kind] = kinds(group("deploy"))
 ENGINE_OPTIONS: dict[str, Kind] = kinds(o for o in group("engine") if o.name != "db")
 FIT_OPTIONS: dict[str, Kind] = kinds(OPTIONS)
+
+
+# -- the options of indb.explore --------------------------------------------------------------
+
+#: Most quantile bands per numeric column ``indb explore`` cuts (each a WHEN of one CASE).
+MAX_BANDS = 1_000
+
+#: The options only ``indb.explore`` has; ``OPTIONS`` (the fit's) does not hold them.
+EXPLORE_OWN: tuple[Option, ...] = (
+    Option(
+        "by",
+        NAMES,
+        None,
+        "Explore this column (repeatable; default: every column but the response and the "
+        "columns the offset and weight read).",
+        "explore",
+        metavar="COL",
+    ),
+    Option(
+        "bands",
+        WHOLE,
+        10,
+        f"Quantile bands each numeric column is cut into (2 to {MAX_BANDS:,}).",
+        "explore",
+        metavar="N",
+        minimum=2,
+    ),
+    Option(
+        "max_shown",
+        WHOLE,
+        20,
+        "Most levels of a categorical column shown, those with the most exposure first; "
+        "the rest are summed in one row.",
+        "explore",
+        metavar="N",
+        minimum=1,
+    ),
+)
+
+#: The options of :func:`indb.explore` in its signature's order: those it shares with the
+#: fit (the same declarations: spelling, kind and default) and its own.
+EXPLORE_OPTIONS: tuple[Option, ...] = (
+    OPTION["source"],
+    OPTION["response"],
+    OPTION["offset"],
+    OPTION["weight"],
+    *EXPLORE_OWN,
+    OPTION["exclude"],
+    OPTION["categorical"],
+    *group("engine"),
+)
+EXPLORE_KINDS: dict[str, Kind] = kinds(EXPLORE_OPTIONS)
 
 
 def file_keys(table: str) -> dict[str, Kind]:

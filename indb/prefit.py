@@ -35,16 +35,21 @@ from indb.sqlexpr import referenced_columns
 def describe(spec: ModelSpec, engine: Engine) -> Inputs:
     """The source's columns and types (described, not run), checked against the spec."""
     d = engine.dialect
+    return resolve_inputs(spec, source_columns(spec, engine), d.type_kind, d.sqlglot_name)
+
+
+def source_columns(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
+    """(name, type name) of the source's columns, described without running it."""
+    d = engine.dialect
     probe = PlanContext(spec, _empty_inputs(spec), d)
     try:
-        columns = engine.describe(d.render(describe_query(probe)))
+        return engine.describe(d.render(describe_query(probe)))
     except EngineError as err:
         # a missing table, file or column is the user's input, not an engine fault
         raise SpecError(
             f"cannot read the source {spec.source.label()!r}: {err}; check the "
             "table name, file path or query"
         ) from err
-    return resolve_inputs(spec, columns, d.type_kind, d.sqlglot_name)
 
 
 def _empty_inputs(spec: ModelSpec) -> Inputs:

@@ -692,3 +692,14 @@ def test_usage_errors_and_json_errors_are_one_line(tmp_path: Path):
     out = json.loads(missing.stdout)
     assert out["exit_code"] == missing.exit_code and out["error"]
     _assert_one_error_line(missing, missing.exit_code)
+
+
+def test_required_options_are_asked_for(tmp_path: Path):
+    # click 8.3 and later took the options' explicit default None as given, so a missing
+    # --response or --family reached indb.fit and failed with a TypeError (exit 1) instead of
+    # the one-line usage error (exit 2)
+    source = str(tmp_path / "x.parquet")
+    no_response = _run("fit", "--family", "poisson", source)
+    _assert_one_error_line(no_response, 2, "Missing option '--response'", "indb fit --help")
+    no_family = _run("fit", "--response", "y", source)
+    _assert_one_error_line(no_family, 2, "Missing option '--family'")

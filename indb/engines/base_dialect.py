@@ -98,6 +98,14 @@ class Dialect:
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         raise UnsupportedError(f"engine {self.name!r} has no quantile aggregate")
 
+    def quantiles(self, x: exp.Expression, qs: Sequence[float]) -> list[exp.Expression]:
+        """The quantiles ``qs`` of ``x`` (linear interpolation, as :meth:`quantile`), one
+        expression each. Exact quantiles hold every value of ``x``; engines whose
+        quantile aggregates would each keep a copy override this to read all of them from one
+        aggregate (PostgreSQL shares one sort among ordered-set aggregates over the same
+        input, so the base form costs it one copy)."""
+        return [self.quantile(x.copy(), q) for q in qs]
+
     def row_pick(self, values: list[exp.Expression], fraction: float) -> exp.Expression:
         """A condition TRUE on about ``fraction`` of the rows, from a hash of ``values``
         (deterministic: the same rows on every run)."""

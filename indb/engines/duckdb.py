@@ -27,6 +27,12 @@ from indb.errors import EngineError, SpecError
 # -- the dialect ------------------------------------------------------------------------------
 
 
+def _element(array: exp.Expression, index: int) -> exp.Expression:
+    """``array[index]`` with the index as DuckDB counts (from 1); ``offset=1`` tells sqlglot
+    the literal is already 1-based, so it renders it unchanged."""
+    return exp.Bracket(this=array, expressions=[exp.Literal.number(index)], offset=1)
+
+
 class DuckDBDialect(Dialect):
     """DuckDB: lgamma, isfinite, read_parquet/read_csv_auto; IEEE doubles (1/0 = inf)."""
 
@@ -51,6 +57,15 @@ class DuckDBDialect(Dialect):
 
     def quantile(self, x, q):
         return exp.Anonymous(this="QUANTILE_CONT", expressions=[x, S.num(q)])
+
+    def quantiles(self, x, qs):
+        # QUANTILE_CONT(x, [q1, q2, ...]) keeps one copy of the values for all of them;
+        # DuckDB's binder computes the repeated identical aggregate once (one state per
+        # column, as EXPLAIN shows), and [i] picks one (1-based lists)
+        listed = exp.Anonymous(
+            this="QUANTILE_CONT", expressions=[x, exp.Array(expressions=[S.num(q) for q in qs])]
+        )
+        return [_element(listed.copy(), i + 1) for i in range(len(qs))]
 
     # DuckDB's `//` divides integers (truncating) and divides anything else exactly
     # (7.5 // 2 = 3.75); its `/` is true division, and ln, sqrt, exp, pow and division by

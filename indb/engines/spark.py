@@ -89,7 +89,9 @@ class SparkDialect(Dialect):
             # GROUPING(a, b, ...) -- the bitmask over several grouping columns, as in
             # DuckDB and PostgreSQL -- is GROUPING_ID(a, b, ...) in Spark, whose GROUPING
             # takes one column (same bit order: the first column is the most significant).
-            if str(node.this).upper() == "GROUPING":
+            # GROUPING(a) of one column stays: Spark's GROUPING_ID must list every column of
+            # the GROUP BY (GROUPING_ID_COLUMN_MISMATCH)
+            if str(node.this).upper() == "GROUPING" and len(node.expressions) > 1:
                 node.set("this", "GROUPING_ID")
         return super().render(tree)
 
@@ -133,6 +135,19 @@ class SparkDialect(Dialect):
 
     def quantile(self, x: exp.Expression, q: float) -> exp.Expression:
         return exp.Anonymous(this="PERCENTILE", expressions=[x, S.num(q)])
+
+    def quantiles(self, x: exp.Expression, qs: Sequence[float]) -> list[exp.Expression]:
+        # PERCENTILE(x, ARRAY(q1, ...)) counts the values once for all of them (separate
+        # PERCENTILE calls would each keep a map of every distinct value); Spark computes the
+        # repeated identical aggregate once and [i] picks one (0-based; offset=0 tells
+        # sqlglot the literal is counted from 0 already)
+        listed = exp.Anonymous(
+            this="PERCENTILE", expressions=[x, exp.Array(expressions=[S.num(q) for q in qs])]
+        )
+        return [
+            exp.Bracket(this=listed.copy(), expressions=[exp.Literal.number(i)], offset=0)
+            for i in range(len(qs))
+        ]
 
     # Spark's `/` is true division and returns NULL for a zero divisor (an error in ANSI mode,
     # the default from Spark 4); ln and log return NULL for x <= 0; sqrt and exp follow Java's

@@ -31,8 +31,8 @@ def knots_query(ctx: PlanContext) -> exp.Select:
         # finite values only (NULL otherwise; quantiles skip NULLs): NaN/inf rows are
         # reported, with their count, by the profile's domain checks that need these knots
         finite_x = S.case([(S.is_finite(x), x.copy())])
-        for i, q in enumerate(knot_quantiles(k)):
-            cols.append(S.alias(ctx.dialect.quantile(finite_x.copy(), q), f"k_{c}_{i}"))
+        for i, q in enumerate(ctx.dialect.quantiles(finite_x, knot_quantiles(k))):
+            cols.append(S.alias(q, f"k_{c}_{i}"))
     return S.select(cols, ctx.source(), where=ctx.kept())
 
 

@@ -129,6 +129,50 @@ def test_quantile_interpolates_like_numpy(engine: Engine) -> None:
     assert_allclose([got[f"q{i}"][0] for i in range(len(qs))], np.quantile(xs, qs), rtol=1e-15)
 
 
+def test_quantiles_from_one_state_interpolate_like_numpy(engine: Engine) -> None:
+    # Dialect.quantiles: several quantiles of one column read from one aggregate (DuckDB's
+    # list form, Spark's array form, PostgreSQL's shared sort); NULLs are skipped
+    xs = [3.0, 1.0, 4.0, 1.0, 5.0, 9.0, 2.0, 6.0, 5.0, 3.5, None]
+    rows = [[S.num(x) if x is not None else S.null()] for x in xs]
+    qs = [0.1, 0.25, 0.5, 0.9]
+    quantiles = engine.dialect.quantiles(S.col("x"), qs)
+    cols = [S.alias(q, f"q{i}") for i, q in enumerate(quantiles)]
+    got = run(engine, cols, values_source(rows, ["x"]))
+    finite = [x for x in xs if x is not None]
+    # numpy.quantile's default 'linear' method (test-only oracle), as for one quantile
+    want = np.quantile(finite, qs)
+    assert_allclose([got[f"q{i}"][0] for i in range(len(qs))], want, rtol=1e-15)
+
+
+def test_grouping_sets_with_one_column_grouping(engine: Engine) -> None:
+    # GROUPING(c) of one column tells the sets of GROUP BY GROUPING SETS apart on every
+    # engine (Spark keeps it: its GROUPING_ID must list all grouping columns); counts by hand
+    rows = [[S.text(a), S.text(b)] for a, b in [("x", "p"), ("x", "q"), ("y", "q")]]
+    a, b = S.col("a"), S.col("b")
+
+    def grouping(c: exp.Expression) -> exp.Expression:
+        return exp.Anonymous(this="GROUPING", expressions=[c])
+
+    q = exp.Select(
+        expressions=[
+            S.alias(grouping(a.copy()), "ga"),
+            S.alias(grouping(b.copy()), "gb"),
+            a.copy(),
+            b.copy(),
+            S.alias(S.count_star(), "n"),
+        ]
+    ).from_(values_source(rows, ["a", "b"]))
+    sets = [exp.Tuple(expressions=[a.copy()]), exp.Tuple(expressions=[b.copy()])]
+    q.set("group", exp.Group(grouping_sets=[exp.GroupingSets(expressions=sets)]))
+    got = engine.fetch_columns(engine.dialect.render(q))
+    found = sorted(
+        (int(ga), int(gb), str(x) if ga == 0 else None, str(y) if gb == 0 else None, int(n))
+        for ga, gb, x, y, n in zip(got["ga"], got["gb"], got["a"], got["b"], got["n"], strict=True)
+    )
+    assert found == [(0, 1, "x", None, 2), (0, 1, "y", None, 1), (1, 0, None, "p", 1),
+                     (1, 0, None, "q", 2)]  # fmt: skip
+
+
 # -- text of levels --------------------------------------------------------------------------------
 
 LEVELS = ["plain", "it's", 'say "hi"', "back\\slash", "both \\' end", "Zürich", "日本", "%s_%%"]
