@@ -403,8 +403,17 @@ def _fmt_p(value: Any, wald: Any = math.nan, test: str = "z", df: Any = math.nan
 def _tiny_p(wald: float, test: str, df: Any) -> str:
     from scipy import stats  # only for p-values below the smallest double
 
-    dist = stats.t(float(df)) if test == "t" and _finite(df) else stats.norm
-    return _from_log(math.log(2.0) + float(dist.logsf(abs(wald))))
+    x = abs(wald)
+    if test == "t" and _finite(df):
+        nu = float(df)
+        log_tail = float(stats.t.logsf(x, nu))
+        if not math.isfinite(log_tail):
+            # far tail, where scipy's logsf underflows: sf(x) ~ pdf(x) (x^2 + nu) / (nu x)
+            # (the leading term of the t tail's expansion; relative error O(1/x^2))
+            log_tail = float(stats.t.logpdf(x, nu)) + math.log((x * x + nu) / (nu * x))
+    else:
+        log_tail = float(stats.norm.logsf(x))
+    return _from_log(math.log(2.0) + log_tail)
 
 
 def _chi2_p(p: float, chi2: float, df: int) -> str:
@@ -425,6 +434,8 @@ def _chi2_p(p: float, chi2: float, df: int) -> str:
 
 def _from_log(log_p: float) -> str:
     """``m.me-k`` from the natural logarithm of a probability."""
+    if not math.isfinite(log_p):
+        return "0"
     log10_p = log_p / math.log(10.0)
     power = math.floor(log10_p)
     return f"{10 ** (log10_p - power):.1f}e{power:d}"

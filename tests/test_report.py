@@ -251,3 +251,20 @@ def test_width_sets_the_rules_and_wrapping(con):
     narrow = render_report(res, width=72)
     caution = narrow.split("CAUTION")[1]
     assert all(len(line) <= 72 for line in caution.splitlines())
+
+
+def test_t_p_values_in_the_far_tail_do_not_overflow():
+    # A Wald t of 100 on 60,000 df (the demo's gamma model at 10^5 rows): scipy's t.logsf
+    # underflows to -inf there. Oracle: mpmath (30 digits), the t density integrated from
+    # |t| to infinity with mpmath.quad, doubled.
+    import mpmath
+
+    for wald, df in ((100.0, 60000.0), (300.0, 5000.0)):
+        with mpmath.workdps(30):
+            nu = mpmath.mpf(df)
+            c = mpmath.gamma((nu + 1) / 2) / (mpmath.sqrt(nu * mpmath.pi) * mpmath.gamma(nu / 2))
+            density = lambda t, c=c, nu=nu: c * (1 + t**2 / nu) ** (-(nu + 1) / 2)  # noqa: E731
+            exact = 2 * mpmath.quad(density, [wald, wald + 1, wald + 10, mpmath.inf])
+        mantissa, power = _fmt_p(0.0, wald, "t", df).split("e")
+        assert int(power) == int(mpmath.floor(mpmath.log10(exact)))
+        assert abs(float(mantissa) - float(exact / mpmath.mpf(10) ** int(power))) <= 0.06
