@@ -633,13 +633,19 @@ def scoring_sql_command(
     metavar="N",
     help="Bands of equal exposure along the score (and a numeric --by column).",
 )
+@click.option(
+    "--against",
+    metavar="NAME2[:K]",
+    help="Score this model too, in the same scans: its figures and the double-lift table.",
+)
+@click.option("--record", is_flag=True, default=None, help="Keep the figures in the registry.")
 @execution_options
 @output_options
 @click.argument("name")
 def assess_command(name: str, db: str, registry_schema: str | None, **options: Any) -> None:
     """Judge model NAME on the rows of --on SOURCE inside the database: deviance, actual
     against expected, Gini, bands, levels and a binomial model's calibration. Nothing is
-    written; a DuckDB file is opened read-only."""
+    written (a DuckDB file is opened read-only) unless --record."""
     from indb import assess_report  # imported here, as the demo is: `fit` needs neither
     from indb.api import assess
 
