@@ -345,8 +345,7 @@ def _model_and_version(text: str) -> tuple[str, int | None]:
     name, sep, k = text.strip().partition(":")
     if not name or (sep and not (k.strip().isdigit() and int(k) >= 1)):
         raise SpecError(
-            f"against must be a model name, or NAME:K with a version number K >= 1; got "
-            f"{text!r}"
+            f"against must be a model name, or NAME:K with a version number K >= 1; got {text!r}"
         )
     return name, int(k) if sep else None
 

@@ -214,10 +214,10 @@ def comparison_refusal(
         return f"model {m[0]!r}" + (f" version {m[1]}" if m[1] is not None else "")
 
     (a, b), (sa, sb) = (label(first), label(second)), (first[2], second[2])
-    for key, what in (("family", "family"), ("response", "response")):
+    for key, what in (("family", "families"), ("response", "responses")):
         if sa.get(key) != sb.get(key):
             return (
-                f"cannot compare {a} with {b}: their {what}s differ ({sa.get(key)!r} and "
+                f"cannot compare {a} with {b}: their {what} differ ({sa.get(key)!r} and "
                 f"{sb.get(key)!r}); compare models of the same family and response"
             )
     if sa.get("family") == "tweedie" and sa.get("family_params") != sb.get("family_params"):

@@ -317,6 +317,42 @@ def _ratio(a: float, b: float) -> float:
     return a / b if b != 0 and math.isfinite(a) and math.isfinite(b) else math.nan
 
 
+@dataclass(frozen=True)
+class LevelDeviation:
+    """The worst |actual / expected - 1| over the levels (and bands of values) of every
+    column an assessment reports, among those with an exposure of at least ``min_exposure``
+    and an expected above 0; NaN, with ``column`` None, when no level qualifies."""
+
+    value: float
+    column: str | None
+    level: str | None
+    min_exposure: float
+    levels: int  # levels that qualified
+
+    def describe(self) -> str:
+        if self.column is None:
+            return f"no level has an exposure of at least {self.min_exposure:g}"
+        level = "NULL" if self.level is None else self.level
+        return f"{self.column} = {level}"
+
+
+def worst_level_deviation(
+    result: AssessResult, min_exposure: float = 0.0, *, against: bool = False
+) -> LevelDeviation:
+    """:class:`LevelDeviation` of the first model (of the second with ``against``)."""
+    worst, where, count = math.nan, (None, None), 0
+    for column, levels in result.levels.items():
+        for lv in levels:
+            expected = lv.expected_against if against else lv.expected
+            if expected is None or not (expected > 0 and lv.exposure >= min_exposure):
+                continue
+            count += 1
+            dev = abs(lv.actual / expected - 1.0)
+            if count == 1 or dev > worst:
+                worst, where = dev, (column, lv.level)
+    return LevelDeviation(worst, where[0], where[1], float(min_exposure), count)
+
+
 # -- the numpy step --------------------------------------------------------------------------
 
 

@@ -41,6 +41,8 @@ def assessment_rows(
         "actual": result.actual,
     }
     two = result.against
+    if two is not None and (two.model, two.version) == (result.model, first):
+        two = None  # a version judged against itself (a refit that changed nothing)
     rows = [
         {
             **common,
@@ -89,7 +91,10 @@ def _numbered(row: dict[str, Any], version: int | None) -> dict[str, Any]:
 
 
 def _json(doc: dict[str, Any]) -> str:
-    return json.dumps(doc, allow_nan=False, sort_keys=True)
+    # the row's own columns say which model and version (a retrain's new version has no
+    # number until it is saved)
+    rest = {k: v for k, v in doc.items() if k not in ("model", "version")}
+    return json.dumps(rest, allow_nan=False, sort_keys=True)
 
 
 class AssessmentLog:

@@ -451,8 +451,9 @@ def versions_command(
 ) -> None:
     """List the versions of model NAME, one line each."""
     with library_errors(quiet), _open_registry(db, registry_schema) as reg:
-        versions = reg.versions(name)
-    click.echo(R.versions_json(name, versions) if as_json else R.versions_text(versions))
+        versions, done = reg.versions(name), reg.assessments(name)
+    render = R.versions_json(name, versions, done) if as_json else R.versions_text(versions, done)
+    click.echo(render)
 
 
 @main.command("show", short_help="Print the stored report of a version.")
@@ -479,10 +480,11 @@ def show_command(
                 raise RegistryError(f"model {name!r} has no live version; give --version K")
         result = reg.load(name, version)
         row = next(v for v in reg.versions(name) if v["version"] == version)
+        done = reg.assessments(name, version)
     if as_json:
-        click.echo(R.show_json(name, version, row, result))
+        click.echo(R.show_json(name, version, row, result, done))
     else:
-        click.echo(R.show_text(name, version, row, result), nl=False)
+        click.echo(R.show_text(name, version, row, result, done), nl=False)
 
 
 @main.command("compare", short_help="Compare two versions of a model.")
