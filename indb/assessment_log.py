@@ -146,4 +146,8 @@ class AssessmentLog:
             return []
         for r in rows:
             r.pop("figures_json", None)
+            # whole numbers with a NULL among them come back from numpy as floats
+            for key in ("version", "compared_version", "n_used"):
+                if r[key] is not None:
+                    r[key] = int(r[key])
         return rows

@@ -31,7 +31,9 @@ import pytest
 import statsmodels.api as sm
 from assess_cases import (
     CASES,
+    CHALLENGERS,
     COEF_RTOL,
+    PREDICTORS_B,
     SM_FIT,
     SUM_RTOL,
     Case,
@@ -51,26 +53,6 @@ import indb
 from indb.assessment import AssessResult
 from indb.cli import main
 from indb.errors import SpecError
-
-COLUMNS = "rating, religious, age, educ, years, children, had, affairs, wt"
-#: the second models: Poisson with the offset but other predictors (no age: it scores the
-#: three rows with a NULL age, which the comparison still sets aside), and a probit model
-CHALLENGERS = {
-    "children_b": Case(
-        "children_b",
-        "fair",
-        {"response": "children", "family": "poisson", "offset": "ln(years)"},
-        sm.families.Poisson(),
-        offset="years",
-    ),
-    "had_b": Case(
-        "had_b",
-        "fair",
-        {"response": "had", "family": "binomial", "link": "probit"},
-        sm.families.Binomial(sm.families.links.Probit()),
-    ),
-}
-PREDICTORS_B = "rating, educ"
 
 
 @pytest.fixture(scope="module")
@@ -94,7 +76,7 @@ def models(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
         )
     for name, case in CHALLENGERS.items():
         results[name] = indb.fit(
-            f"SELECT {PREDICTORS_B}, children, had, years FROM fair_train",
+            f"SELECT {', '.join(PREDICTORS_B)}, children, had, years FROM fair_train",
             db=str(db),
             name=name,
             tol=1e-12,
@@ -106,7 +88,7 @@ def models(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
         ("children_w", {"response": "children", "offset": "ln(years)", "weight": "wt"}),
     ):
         indb.fit(
-            f"SELECT {PREDICTORS_B}, children, affairs, years, wt FROM fair_train",
+            f"SELECT {', '.join(PREDICTORS_B)}, children, affairs, years, wt FROM fair_train",
             family="poisson",
             db=str(db),
             name=name,

@@ -23,18 +23,14 @@ from pathlib import Path
 from typing import Any
 
 import duckdb
-import numpy as np
 import pandas as pd
 import pytest
-import statsmodels.api as sm
-import statsmodels.datasets as smd
-from assess_cases import SM_FIT, lorenz_gini
+from assess_cases import drifted, randhie_frames, visits_oracle
 from click.testing import CliRunner, Result
 from numpy.testing import assert_allclose
 
 import indb
 from indb.cli import main
-from indb.results import FitResult
 from indb.retrain import EXIT_HELD, retrain
 from indb.specfile import load_spec_file
 
@@ -69,25 +65,6 @@ db = "models.duckdb"
 """
 
 
-def randhie() -> pd.DataFrame:
-    d = smd.randhie.load_pandas().data.reset_index(drop=True)
-    d = d.astype({"idp": int, "hlthg": int, "hlthp": int, "mdvis": float})
-    d.insert(0, "row_id", np.arange(len(d), dtype=np.int64))
-    return d
-
-
-def halves() -> tuple[pd.DataFrame, pd.DataFrame]:
-    d = randhie()
-    return d[d.row_id % 2 == 0].reset_index(drop=True), d[d.row_id % 2 == 1].reset_index(drop=True)
-
-
-def drifted(train: pd.DataFrame) -> pd.DataFrame:
-    """The training rows after a feed lost the visits of 70% of the idp = 1 rows."""
-    out = train.copy()
-    out.loc[(out.idp == 1) & (out.row_id % 10 < 7), "mdvis"] = 0.0
-    return out
-
-
 def _write(db: Path, tables: dict[str, pd.DataFrame]) -> None:
     with duckdb.connect(str(db)) as con:
         for name, frame in tables.items():
@@ -97,7 +74,7 @@ def _write(db: Path, tables: dict[str, pd.DataFrame]) -> None:
 
 
 def _setup(tmp_path: Path, gates: str = GATES, spec: str = SPEC) -> tuple[Path, Path]:
-    train, hold = halves()
+    train, hold = randhie_frames()
     db = tmp_path / "models.duckdb"
     _write(db, {"visits": train, "visits_holdout": hold})
     path = tmp_path / "visits.toml"
@@ -109,39 +86,9 @@ def _run(*args: Any) -> Result:
     return CliRunner().invoke(main, [str(a) for a in args])
 
 
-def design(frame: pd.DataFrame, res: FitResult) -> pd.DataFrame:
-    """indb's design (its terms) on ``frame``: 1, a numeric column or a level indicator."""
-    cols = {}
-    for c in res.coefficients:
-        if not c.columns:
-            cols[c.term] = np.ones(len(frame))
-        elif c.levels[0] is None:
-            cols[c.term] = frame[c.columns[0]].to_numpy(float)
-        else:
-            cols[c.term] = (frame[c.columns[0]].astype(str) == c.levels[0]).to_numpy(float)
-    return pd.DataFrame(cols, index=frame.index)
-
-
-def _oracle(train: pd.DataFrame, hold: pd.DataFrame, res: FitResult) -> dict[str, Any]:
-    """statsmodels on ``train`` with indb's design: in-sample deviance per row, holdout
-    predictions and their figures."""
-    fit = sm.GLM(train["mdvis"], design(train, res), family=sm.families.Poisson()).fit(**SM_FIT)
-    assert_allclose(fit.params[res.terms], [c.estimate for c in res.coefficients], rtol=1e-7)
-    x = design(hold, res)
-    mu = np.exp(x.to_numpy() @ fit.params[x.columns].to_numpy())
-    y = hold["mdvis"].to_numpy()
-    by_idp = pd.DataFrame({"idp": hold["idp"], "y": y, "mu": mu}).groupby("idp").sum()
-    return {
-        "per_row": fit.deviance / len(train),
-        "deviance": sm.families.Poisson().deviance(y, mu),
-        "gini": lorenz_gini(mu, np.ones(len(y)), y),
-        "ae_idp": (by_idp["y"] / by_idp["mu"]).to_dict(),
-    }
-
-
 def test_a_drifted_refit_is_held_by_the_holdout(tmp_path: Path) -> None:
     spec, db = _setup(tmp_path)
-    train, hold = halves()
+    train, hold = randhie_frames()
     first = _run("retrain", spec, "--json")
     assert first.exit_code == 0, first.stderr
     doc1 = json.loads(first.stdout)
@@ -150,7 +97,7 @@ def test_a_drifted_refit_is_held_by_the_holdout(tmp_path: Path) -> None:
     assert [g["gate"] for g in doc1["gates"]] == ["require_converged", "max_level_ae_deviation"]
     assert [v["role"] for v in doc1["holdout"]["versions"]] == ["new"]
     v1 = indb.api.registry(str(db)).load("doctor_visits", 1)
-    orc1 = _oracle(train, hold, v1)
+    orc1 = visits_oracle(train, hold, v1)
     assert_allclose(doc1["holdout"]["versions"][0]["deviance"], orc1["deviance"], rtol=RTOL)
 
     _write(db, {"visits": drifted(train)})
@@ -159,7 +106,7 @@ def test_a_drifted_refit_is_held_by_the_holdout(tmp_path: Path) -> None:
     doc = json.loads(out.stdout)
     assert doc["status"] == "held" and doc["version"] == 2 and doc["previous_version"] == 1
     v2 = indb.api.registry(str(db)).load("doctor_visits", 2)
-    orc2 = _oracle(drifted(train), hold, v2)
+    orc2 = visits_oracle(drifted(train), hold, v2)
     # the premise, by statsmodels: better in sample, worse out of sample
     assert orc2["per_row"] < orc1["per_row"] and orc2["deviance"] > 1.1 * orc1["deviance"]
     gates = {g["gate"]: g for g in doc["gates"]}
@@ -204,7 +151,7 @@ def test_a_drifted_refit_is_held_by_the_holdout(tmp_path: Path) -> None:
 
 def test_retrain_prints_both_versions(tmp_path: Path) -> None:
     spec, db = _setup(tmp_path)
-    train, _ = halves()
+    train, _ = randhie_frames()
     assert _run("retrain", spec).exit_code == 0
     _write(db, {"visits": drifted(train)})
     out = _run("retrain", spec)
@@ -226,7 +173,7 @@ def test_retrain_prints_both_versions(tmp_path: Path) -> None:
 def test_a_refit_that_holds_up_is_promoted(tmp_path: Path) -> None:
     """Fewer training rows, no drift: the holdout figures barely move, every gate passes."""
     spec, db = _setup(tmp_path)
-    train, _ = halves()
+    train, _ = randhie_frames()
     assert _run("retrain", spec).exit_code == 0
     _write(db, {"visits": train[train.row_id % 6 != 0]})
     out = _run("retrain", spec, "--json")
@@ -318,7 +265,7 @@ def test_holdout_mistakes_write_nothing(
     """A first version with plain gates, then a retrain whose holdout cannot be judged: one
     line, exit 2, the registry as it was."""
     spec, db = _setup(tmp_path, gates="")
-    train, hold = halves()
+    train, hold = randhie_frames()
     assert _run("retrain", spec).exit_code == 0
     # the holdout lacks a column only the changed spec reads
     _write(db, {"visits_holdout": hold.drop(columns=["fmde"]), "visits": train.iloc[:-5]})
