@@ -233,9 +233,18 @@ def test_against_and_double_lift(loader: Loader, fitted: dict[str, Any], tmp_pat
         db=loader.engine,
         registry_schema=schema,
         against=f"children_b_{tag}",
+        record=True,
         **kw,
     )
     ref = _reference(fitted, "children", tmp_path, against="children_b", **kw)
+    # --record: a row per version judged, appended on Spark, each naming the other
+    reg = open_registry(loader.engine, schema)
+    kept = reg.assessments(f"children_{tag}") + reg.assessments(f"children_b_{tag}")
+    assert [(r["compared_model"], r["purpose"], r["n_used"]) for r in kept] == [
+        (f"children_b_{tag}", "assess", a.rows),
+        (f"children_{tag}", "assess", a.rows),
+    ]
+    assert_allclose([r["deviance"] for r in kept], [a.deviance, a.against.deviance], rtol=1e-15)
     _same(loader, a, ref, "children against")
     assert a.scans == 2
     for key in ("expected", "deviance", "gini", "gini_normalized", "deviance_explained"):
