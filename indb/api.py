@@ -244,6 +244,8 @@ def assess(
     version: int | None = None,
     by: Sequence[str] = (),
     bands: int = 10,
+    against: str | None = None,
+    record: bool = False,
     registry_schema: str = DEFAULT_SCHEMA,
     memory_limit: str | None = None,
     temp_directory: str | None = None,
@@ -256,14 +258,35 @@ def assess(
     Gini of the ordered Lorenz curve, ``bands`` bands of equal exposure along the score,
     actual and expected by level of the model's categorical predictors and of each ``by``
     column (a numeric one in bands of its values) and, for a binomial model, a calibration
-    table with the Hosmer-Lemeshow statistic. A few grouped scans; nothing per row comes
-    back and nothing is written (a DuckDB file is opened read-only).
+    table with the Hosmer-Lemeshow statistic. ``against="NAME2"`` or ``"NAME2:K"`` (the
+    live version, or version K; ``"NAME:K"`` compares two versions of one model) scores a
+    second model of the same family and response in the same scans: its figures
+    (``against``) and the double-lift table (``ratio_bands``). A few grouped scans; nothing
+    per row comes back. Nothing is written (a DuckDB file is opened read-only) unless
+    ``record``: then the registry keeps the assessment (``Registry.assessments``).
     """
-    from indb.assess_run import assess_version
+    from indb.assess_run import StoredVersion, assess_version
+    from indb.registry import _now
 
     O.check_options(
-        {"name": name, "on": on, "by": by, "bands": bands, "version": version},
-        {"name": O.TEXT, "on": O.TEXT, "by": O.NAMES, "bands": O.WHOLE, "version": O.WHOLE},
+        {
+            "name": name,
+            "on": on,
+            "by": by,
+            "bands": bands,
+            "version": version,
+            "against": against,
+            "record": record,
+        },
+        {
+            "name": O.TEXT,
+            "on": O.TEXT,
+            "by": O.NAMES,
+            "bands": O.WHOLE,
+            "version": O.WHOLE,
+            "against": O.TEXT,
+            "record": O.BOOLEAN,
+        },
     )
     O.check_options({"registry_schema": registry_schema}, DEPLOY_OPTIONS)
     O.check_options(
@@ -275,26 +298,57 @@ def assess(
             "assess reads the model from the registry of a database: give db= the database "
             "(file or URL) the model was written to"
         )
+    second = _model_and_version(against) if against is not None else None
     engine = connect(
         db,
-        read_only=True,
+        read_only=not record,
         memory_limit=memory_limit,
         temp_directory=temp_directory,
         threads=threads,
     )
     try:
         reg = open_registry(engine, registry_schema)
-        if version is None:
-            version = reg.model(name)["live_version"]
-            if version is None:
-                raise RegistryError(f"model {name!r} has no live version; give version=K")
+        version = _chosen_version(reg, name, version)
         result = reg.load(name, version)
-        return assess_version(
-            engine, result, model=name, version=int(version), on=on, by=list(by), bands=bands
+        other = None
+        if second is not None:
+            v2 = _chosen_version(reg, second[0], second[1])
+            other = StoredVersion(second[0], v2, reg.load(second[0], v2))
+        out = assess_version(
+            engine,
+            result,
+            model=name,
+            version=version,
+            on=on,
+            by=list(by),
+            bands=bands,
+            against=other,
         )
+        if record:
+            reg.record_assessment(out, purpose="assess", at=_now())
+        return out
     finally:
         if engine is not db:
             engine.close()
+
+
+def _chosen_version(reg: Registry, name: str, version: int | None) -> int:
+    """``version``, or the live version of ``name`` (a RegistryError when it has none)."""
+    if version is None:
+        version = reg.model(name)["live_version"]
+        if version is None:
+            raise RegistryError(f"model {name!r} has no live version; give version=K")
+    return int(version)
+
+
+def _model_and_version(text: str) -> tuple[str, int | None]:
+    """``NAME`` or ``NAME:K`` (a model name holds no colon) as (name, version or None)."""
+    name, sep, k = text.strip().partition(":")
+    if not name or (sep and not (k.strip().isdigit() and int(k) >= 1)):
+        raise SpecError(
+            f"against must be a model name, or NAME:K with a version number K >= 1; got {text!r}"
+        )
+    return name, int(k) if sep else None
 
 
 def with_deployment(result: FitResult, outcome: SaveOutcome) -> FitResult:

@@ -1,9 +1,11 @@
 """Text and JSON renderings of an assessment (:class:`~indb.assessment.AssessResult`).
 
 The layout is indb's own: a head of two lines (what was judged, on what), a block of
-totals, the score's bands, a table per column by level, the calibration of a binomial model,
-notes and the closing caution. Numbers in a table column share their decimals; missing or
-non-finite numbers print as ``n/a``.
+totals, with a second model its figures side by side and the double-lift table, the score's
+bands, a table per column by level, the calibration of a binomial model, notes and the
+closing caution. With a second model every table of bands and levels gains its expected and
+A/E (columns ``against`` and ``A/E against``). Numbers in a table column share their
+decimals; missing or non-finite numbers print as ``n/a``.
 """
 
 from __future__ import annotations
@@ -14,7 +16,15 @@ import textwrap
 from collections.abc import Sequence
 from typing import Any
 
-from indb.assessment import CAUTION, AssessResult, Band, CalibrationBand, Level
+from indb.assessment import (
+    CAUTION,
+    AgainstFigures,
+    AssessResult,
+    Band,
+    CalibrationBand,
+    Level,
+    RatioBand,
+)
 
 NA = "n/a"
 #: width of wrapped prose
@@ -28,7 +38,10 @@ def assess_json(result: AssessResult) -> str:
 
 def assess_text(result: AssessResult) -> str:
     """The assessment as plain text, ending with a newline."""
-    blocks = [_head(result), _totals(result), _bands(result.bands)]
+    blocks = [_head(result), _totals(result)]
+    if result.against is not None:
+        blocks += [_side_by_side(result, result.against), _ratio_bands(result)]
+    blocks.append(_bands(result.bands))
     blocks += [_levels(column, levels) for column, levels in result.levels.items()]
     if result.calibration is not None:
         blocks.append(_calibration(result))
@@ -145,19 +158,85 @@ def _totals(r: AssessResult) -> str:
     return "\n".join(f"{k.ljust(width)}  {v}" for k, v in pairs)
 
 
-def _bands(bands: Sequence[Band]) -> str:
+def _label(model: str, version: int) -> str:
+    return f"{model} v{version}" if version else f"{model} (new)"
+
+
+def _side_by_side(r: AssessResult, two: AgainstFigures) -> str:
+    offset = f", offset {two.offset}" if two.offset else ""
     title = (
-        f"Score in {len(bands)} bands of equal exposure, lowest first\n"
-        "(score: the predicted mean without the offset; rows of one score share a band)"
+        f"Against {_label(two.model, two.version)} ({two.family} family, {two.link} link"
+        f"{offset}): the same scans, the same rows"
     )
-    headers = ["band", "rows", "exposure", "actual", "expected", "A/E", "score from", "to"]
+    pairs = [
+        ("expected", r.expected, two.expected, _general),
+        ("actual / expected", r.actual_over_expected, two.actual_over_expected, _general),
+        ("deviance", r.deviance, two.deviance, _general),
+        ("mean deviance", r.mean_deviance, two.mean_deviance, _general),
+        ("deviance explained", r.deviance_explained, two.deviance_explained, _percent),
+        ("Gini", r.gini, two.gini, _general),
+        ("Gini normalized", r.gini_normalized, two.gini_normalized, _general),
+        ("rows with unseen levels", r.rows_unseen, two.rows_unseen, _count),
+    ]
+    headers = ["", _label(r.model, r.version), _label(two.model, two.version)]
+    columns = [[k for k, *_ in pairs], [f(a) for _, a, _, f in pairs]]
+    columns.append([f(b) for _, _, b, f in pairs])
+    return title + "\n" + _table(headers, columns, left=1)
+
+
+def _ratio_bands(r: AssessResult) -> str:
+    bands: Sequence[RatioBand] = r.ratio_bands or ()
+    two = r.against
+    assert two is not None
+    title = (
+        f"Double lift: {len(bands)} bands of equal exposure along the ratio of the scores, "
+        f"{_label(two.model, two.version)} over {_label(r.model, r.version)}, lowest first"
+    )
+    headers = ["band", "rows", "exposure", "actual", "expected", "A/E", "against"]
+    headers += ["A/E against", "ratio from", "to"]
     columns = [
         [str(b.band) for b in bands],
         [_count(b.rows) for b in bands],
         _column([b.exposure for b in bands]),
         _whole([b.actual for b in bands]),
-        _column([b.expected for b in bands]),
-        _column([_ratio(b.actual, b.expected) for b in bands], 4),
+        *_expected_columns(bands),
+        *_shared([b.ratio_low for b in bands], [b.ratio_high for b in bands], 4),
+    ]
+    return title + "\n" + _table(headers, columns)
+
+
+def _expected_columns(rows: Sequence[Band | Level | RatioBand]) -> list[list[str]]:
+    """expected and A/E, and the second model's where there is one."""
+    out = [
+        _column([b.expected for b in rows]),
+        _column([_ratio(b.actual, b.expected) for b in rows], 4),
+    ]
+    if rows and rows[0].expected_against is not None:
+        against = [math.nan if b.expected_against is None else b.expected_against for b in rows]
+        out += [
+            _column(against),
+            _column([_ratio(b.actual, e) for b, e in zip(rows, against, strict=True)], 4),
+        ]
+    return out
+
+
+def _against_headers(rows: Sequence[Band | Level]) -> list[str]:
+    return ["against", "A/E against"] if rows and rows[0].expected_against is not None else []
+
+
+def _bands(bands: Sequence[Band]) -> str:
+    title = (
+        f"Score in {len(bands)} bands of equal exposure, lowest first\n"
+        "(score: the predicted mean without the offset; rows of one score share a band)"
+    )
+    headers = ["band", "rows", "exposure", "actual", "expected", "A/E", *_against_headers(bands)]
+    headers += ["score from", "to"]
+    columns = [
+        [str(b.band) for b in bands],
+        [_count(b.rows) for b in bands],
+        _column([b.exposure for b in bands]),
+        _whole([b.actual for b in bands]),
+        *_expected_columns(bands),
         *_shared([b.score_low for b in bands], [b.score_high for b in bands]),
     ]
     return title + "\n" + _table(headers, columns)
@@ -173,13 +252,13 @@ def _levels(column: str, levels: Sequence[Level]) -> str:
         ("NULL" if lv.level is None else lv.level) + (" *" if lv.unseen else "") for lv in levels
     ]
     headers = ["values" if banded else "level", "rows", "exposure", "actual", "expected", "A/E"]
+    headers += _against_headers(levels)
     columns = [
         shown,
         [_count(lv.rows) for lv in levels],
         _column([lv.exposure for lv in levels]),
         _whole([lv.actual for lv in levels]),
-        _column([lv.expected for lv in levels]),
-        _column([_ratio(lv.actual, lv.expected) for lv in levels], 4),
+        *_expected_columns(levels),
     ]
     text = title + "\n" + _table(headers, columns, left=1)
     if any(lv.unseen for lv in levels):

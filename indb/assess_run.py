@@ -9,8 +9,9 @@
 3. Only when that constant is not exact for the rows used: null scans
    (:func:`indb.plan.assess_scan.null_query`), one per IRLS step of the one-parameter model.
 
-The numbers are finished in numpy (:func:`indb.assessment.finish`); nothing per row leaves the
-database and nothing is written.
+With a second model (``against``) both are scored in the same scans, on the rows where both
+give a mean. The numbers are finished in numpy (:func:`indb.assessment.finish`); nothing per
+row leaves the database and nothing is written.
 """
 
 from __future__ import annotations
@@ -18,7 +19,8 @@ from __future__ import annotations
 import dataclasses
 import math
 import time
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from typing import Any, NamedTuple
 
 from sqlglot import exp
 
@@ -34,6 +36,7 @@ from indb.nullmodel import NullTrack, start_intercept
 from indb.plan.assess_scan import (
     LEVELS,
     SCORE,
+    Against,
     AssessPlan,
     NullModel,
     assess_query,
@@ -55,6 +58,17 @@ MAX_BANDS = 1_000
 #: most levels a column may show
 MAX_LEVELS = 10_000
 _EXPRESSIONS = ("offset", "weight", "frequency_weight", "trials")
+#: the expressions that define what is summed (weight, actual): two models compared on the
+#: same rows must share them
+_WEIGHTS = ("weight", "frequency_weight", "trials")
+
+
+class StoredVersion(NamedTuple):
+    """A version of a model as the registry holds it (the second model of a comparison)."""
+
+    model: str
+    version: int
+    result: FitResult
 
 
 def assess_version(
@@ -66,27 +80,49 @@ def assess_version(
     on: str,
     by: Sequence[str] = (),
     bands: int = 10,
+    against: StoredVersion | None = None,
 ) -> AssessResult:
-    """Judge ``result`` (version ``version`` of ``model``) on the rows of ``on``.
+    """Judge ``result`` (version ``version`` of ``model``) on the rows of ``on``; with
+    ``against``, judge that version too in the same scans, on the rows where both models
+    give a mean, and build the double-lift table.
 
     Raises
     ------
     SpecError
         A source without the response or a model input, NULL or out-of-domain values that
-        leave nothing to judge, zero exposure, a bad ``by`` column or ``bands``.
+        leave nothing to judge, zero exposure, a bad ``by`` column or ``bands``, a second
+        model of another family, response or weights.
     """
     t0 = time.perf_counter()
     check_bands(bands)
+    if against is not None:
+        refusal = comparison_refusal(
+            (model, version, result.spec), (against.model, against.version, against.result.spec)
+        )
+        if refusal:
+            raise SpecError(refusal)
     d = engine.dialect
     source = Source.parse(on)
     columns = describe_source(engine, source)
-    if not result.design.get("column_types"):
-        # a version stored before fits recorded the types its expressions read: the
-        # SOURCE's (as the scoring SQL takes the scoring source's)
-        result = dataclasses.replace(
-            result, design={**result.design, "column_types": dict(columns)}
-        )
+    result = _with_types(result, columns)
     inputs = model_inputs(result, model, source, columns, d)
+    second = None
+    if against is not None:
+        against = against._replace(result=_with_types(against.result, columns))
+        inputs2 = model_inputs(against.result, against.model, source, columns, d)
+        inputs = dataclasses.replace(
+            inputs,
+            factors=_union(inputs.factors, inputs2.factors),
+            numerics=_union(inputs.numerics, inputs2.numerics),
+            model_columns=_union(inputs.model_columns, inputs2.model_columns),
+        )
+        second = Against(
+            family=against.result.family_object,
+            link=against.result.link_object,
+            score_eta=W.eta_sql(against.result, d, include_offset=False),
+            unseen=W.unseen_sql(against.result),
+            offset=inputs2.offset,
+        )
     spec = ModelSpec.build(
         on,
         result.response,
@@ -95,7 +131,7 @@ def assess_version(
         **{role: result.spec.get(role) for role in _EXPRESSIONS},
     )
     ctx = PlanContext(spec, inputs, d)
-    levels, banded = by_columns(result, by, columns, d)
+    levels, banded = by_columns(result, by, columns, d, against)
     plan = AssessPlan(
         ctx,
         score_eta=W.eta_sql(result, d, include_offset=False),
@@ -104,6 +140,7 @@ def assess_version(
         banded=banded,
         bands=bands,
         max_levels=MAX_LEVELS,
+        against=second,
     )
     check = _one_row(engine, profile_query(ctx, check_items(plan)))
     kept, nulls = checked_rows(plan, check)
@@ -126,6 +163,7 @@ def assess_version(
         rows_kept=kept,
         nulls=nulls,
         training_levels={f["column"]: tuple(f["levels"]) for f in result.design["factors"]},
+        against=_against_header(against),
     )
     return finish(
         header,
@@ -135,6 +173,68 @@ def assess_version(
         seconds=time.perf_counter() - t0,
         notes=notes,
     )
+
+
+def _with_types(result: FitResult, columns: Sequence[tuple[str, str]]) -> FitResult:
+    """A version stored before fits recorded the types its expressions read takes the
+    SOURCE's (as the scoring SQL takes the scoring source's)."""
+    if result.design.get("column_types"):
+        return result
+    return dataclasses.replace(result, design={**result.design, "column_types": dict(columns)})
+
+
+def _union(a: Sequence[str], b: Sequence[str]) -> tuple[str, ...]:
+    return tuple(dict.fromkeys([*a, *b]))
+
+
+def _against_header(against: StoredVersion | None) -> dict[str, Any] | None:
+    if against is None:
+        return None
+    r = against.result
+    return {
+        "model": against.model,
+        "version": against.version,
+        "family": r.family_object.describe(),
+        "link": r.link_object.describe(),
+        "offset": r.spec.get("offset"),
+    }
+
+
+def comparison_refusal(
+    first: tuple[str, int | None, Mapping[str, Any]],
+    second: tuple[str, int | None, Mapping[str, Any]],
+) -> str | None:
+    """Why two models cannot be judged side by side on the same rows (None: they can).
+
+    Each is (model, version or None for a version not yet recorded, its spec as plain data:
+    ``FitResult.spec`` or ``ModelSpec.to_dict()``). Their deviances and actuals are only
+    comparable with the same family (a Tweedie's power included), response and weights.
+    """
+
+    def label(m: tuple[str, int | None, Mapping[str, Any]]) -> str:
+        return f"model {m[0]!r}" + (f" version {m[1]}" if m[1] is not None else "")
+
+    (a, b), (sa, sb) = (label(first), label(second)), (first[2], second[2])
+    for key, what in (("family", "families"), ("response", "responses")):
+        if sa.get(key) != sb.get(key):
+            return (
+                f"cannot compare {a} with {b}: their {what} differ ({sa.get(key)!r} and "
+                f"{sb.get(key)!r}); compare models of the same family and response"
+            )
+    if sa.get("family") == "tweedie" and sa.get("family_params") != sb.get("family_params"):
+        return (
+            f"cannot compare {a} with {b}: their Tweedie powers differ "
+            f"({sa.get('family_params')} and {sb.get('family_params')}), so their deviances "
+            "are on different scales; compare models of the same power"
+        )
+    for key in _WEIGHTS:
+        if sa.get(key) != sb.get(key):
+            return (
+                f"cannot compare {a} with {b}: their {key} expressions differ "
+                f"({sa.get(key)!r} and {sb.get(key)!r}), so their actuals and deviances weigh "
+                "rows differently; compare models with the same weights"
+            )
+    return None
 
 
 def check_bands(bands: int) -> None:
@@ -235,12 +335,19 @@ def model_inputs(
 
 
 def by_columns(
-    result: FitResult, by: Sequence[str], columns: Sequence[tuple[str, str]], d: Dialect
+    result: FitResult,
+    by: Sequence[str],
+    columns: Sequence[tuple[str, str]],
+    d: Dialect,
+    against: StoredVersion | None = None,
 ) -> tuple[tuple[str, ...], tuple[str, ...]]:
     """(columns reported by level, numeric columns cut into bands): the model's categorical
-    predictors, then the ``by`` columns (a numeric one in bands of its values)."""
+    predictors (and the second model's), then the ``by`` columns (a numeric one in bands of
+    its values)."""
     types = dict(columns)
     factors = [f["column"] for f in result.design["factors"]]
+    if against is not None:
+        factors = list(_union(factors, [f["column"] for f in against.result.design["factors"]]))
     levels, banded = list(factors), []
     seen: set[str] = set()
     for c in by:

@@ -16,6 +16,11 @@ Definitions (``indb assess``; see docs/assessing-models.md):
   their actual rate (the best possible ordering);
 * ``bands``: bands of equal exposure along the same order, a tie group going whole to the
   band that holds the midpoint of its exposure;
+* ``against`` (a second model of the same family and response, scored in the same scans on
+  the same rows: those where both models give a mean): its expected, deviance and Gini as
+  above (along its own score, with the first model's exposure), and ``ratio_bands``, the
+  double-lift table: bands of equal exposure along the ratio of the two scores (the second
+  model's over the first's), each with actual, expected and expected_against;
 * binomial models: a calibration table (the same bands along the predicted probability, of
   equal weight) and the Hosmer-Lemeshow statistic over its bands: sum (O - E)^2 /
   (E (1 - E / n)), n the band's weight, O and E its actual and expected, on G - 2 degrees
@@ -31,7 +36,17 @@ from typing import Any
 
 import numpy as np
 
-from indb.plan.assess_scan import BANDS, BEST, LEVELS, MEAN, SCORE, Part, part_mask
+from indb.plan.assess_scan import (
+    AGAINST,
+    BANDS,
+    BEST,
+    LEVELS,
+    MEAN,
+    RATIO,
+    SCORE,
+    Part,
+    part_mask,
+)
 
 #: the caution every rendering of an assessment ends with
 CAUTION = (
@@ -52,6 +67,25 @@ class Band:
     expected: float
     score_low: float
     score_high: float
+    #: the second model's expected (``--against``)
+    expected_against: float | None = None
+
+
+@dataclass(frozen=True)
+class RatioBand:
+    """A band of the double-lift table: equal exposure along the ratio of the second
+    model's score to the first model's (ascending: where the second predicts least relative
+    to the first come first)."""
+
+    band: int
+    rows: int
+    weight: float
+    exposure: float
+    actual: float
+    expected: float
+    expected_against: float
+    ratio_low: float
+    ratio_high: float
 
 
 @dataclass(frozen=True)
@@ -70,6 +104,8 @@ class Level:
     band: int | None = None
     low: float | None = None
     high: float | None = None
+    #: the second model's expected (``--against``)
+    expected_against: float | None = None
 
 
 @dataclass(frozen=True)
@@ -99,6 +135,61 @@ class HosmerLemeshow:
         "bands of equal weight along the predicted probability, a tie group going whole to "
         "the band holding the midpoint of its weight"
     )
+
+
+@dataclass(frozen=True)
+class AgainstFigures:
+    """The second model's figures on the same rows (``--against``): what differs from the
+    first model's (rows, weight, exposure and actual are the same)."""
+
+    model: str
+    version: int
+    family: str
+    link: str
+    offset: str | None
+    weight: float
+    actual: float
+    expected: float
+    deviance: float
+    null_deviance: float
+    gini: float
+    gini_normalized: float
+    rows_unseen: int
+    bands: tuple[Band, ...]
+
+    @property
+    def mean_deviance(self) -> float:
+        return _ratio(self.deviance, self.weight)
+
+    @property
+    def deviance_explained(self) -> float:
+        return 1.0 - _ratio(self.deviance, self.null_deviance)
+
+    @property
+    def actual_over_expected(self) -> float:
+        return _ratio(self.actual, self.expected)
+
+    def to_dict(self) -> dict[str, Any]:
+        out: dict[str, Any] = {
+            k: getattr(self, k)
+            for k in (
+                "model",
+                "version",
+                "family",
+                "link",
+                "offset",
+                "expected",
+                "actual_over_expected",
+                "deviance",
+                "mean_deviance",
+                "deviance_explained",
+                "gini",
+                "gini_normalized",
+                "rows_unseen",
+            )
+        }
+        out["bands"] = [_band_dict(b) for b in self.bands]
+        return _clean(out)
 
 
 @dataclass(frozen=True)
@@ -134,6 +225,9 @@ class AssessResult:
     scans: int = 0
     seconds: float = math.nan
     notes: tuple[str, ...] = field(default_factory=tuple)
+    #: the second model's figures and the double-lift table (``--against``)
+    against: AgainstFigures | None = None
+    ratio_bands: tuple[RatioBand, ...] | None = None
 
     @property
     def mean_deviance(self) -> float:
@@ -177,8 +271,11 @@ class AssessResult:
                 "gini_normalized",
             )
         }
-        out["bands"] = [asdict(b) for b in self.bands]
+        out["bands"] = [_band_dict(b) for b in self.bands]
         out["levels"] = {c: [_level_dict(lv) for lv in lvs] for c, lvs in self.levels.items()}
+        if self.against is not None:
+            out["against"] = self.against.to_dict()
+            out["ratio_bands"] = [asdict(b) for b in self.ratio_bands or ()]
         if self.calibration is not None:
             out["calibration"] = [asdict(b) for b in self.calibration]
         if self.hosmer_lemeshow is not None:
@@ -192,6 +289,15 @@ def _level_dict(level: Level) -> dict[str, Any]:
     if level.band is None:
         for k in ("band", "low", "high"):
             d.pop(k)
+    if level.expected_against is None:
+        d.pop("expected_against")
+    return d
+
+
+def _band_dict(band: Band) -> dict[str, Any]:
+    d = asdict(band)
+    if band.expected_against is None:
+        d.pop("expected_against")
     return d
 
 
@@ -209,6 +315,42 @@ def _clean(v: Any) -> Any:
 
 def _ratio(a: float, b: float) -> float:
     return a / b if b != 0 and math.isfinite(a) and math.isfinite(b) else math.nan
+
+
+@dataclass(frozen=True)
+class LevelDeviation:
+    """The worst |actual / expected - 1| over the levels (and bands of values) of every
+    column an assessment reports, among those with an exposure of at least ``min_exposure``
+    and an expected above 0; NaN, with ``column`` None, when no level qualifies."""
+
+    value: float
+    column: str | None
+    level: str | None
+    min_exposure: float
+    levels: int  # levels that qualified
+
+    def describe(self) -> str:
+        if self.column is None:
+            return f"no level has an exposure of at least {self.min_exposure:g}"
+        level = "NULL" if self.level is None else self.level
+        return f"{self.column} = {level}"
+
+
+def worst_level_deviation(
+    result: AssessResult, min_exposure: float = 0.0, *, against: bool = False
+) -> LevelDeviation:
+    """:class:`LevelDeviation` of the first model (of the second with ``against``)."""
+    worst, where, count = math.nan, (None, None), 0
+    for column, levels in result.levels.items():
+        for lv in levels:
+            expected = lv.expected_against if against else lv.expected
+            if expected is None or not (expected > 0 and lv.exposure >= min_exposure):
+                continue
+            count += 1
+            dev = abs(lv.actual / expected - 1.0)
+            if count == 1 or dev > worst:
+                worst, where = dev, (column, lv.level)
+    return LevelDeviation(worst, where[0], where[1], float(min_exposure), count)
 
 
 # -- the numpy step --------------------------------------------------------------------------
@@ -273,6 +415,12 @@ def gini_of(rows: PartRows) -> float:
     return 1.0 - 2.0 * area
 
 
+def _against(rows: PartRows, j: int) -> float | None:
+    """The second model's expected in row ``j`` (None without a second model)."""
+    ep2 = rows.cols.get("ep2")
+    return None if ep2 is None else float(ep2[j])
+
+
 def bands_of(rows: PartRows) -> tuple[Band, ...]:
     c = rows.cols
     return tuple(
@@ -285,10 +433,41 @@ def bands_of(rows: PartRows) -> tuple[Band, ...]:
             expected=float(c["ep"][j]),
             score_low=float(c["lo"][j]),
             score_high=float(c["hi"][j]),
+            expected_against=_against(rows, j),
         )
         for j in range(len(rows))
         if not _missing(c["band"][j])
     )
+
+
+def ratio_bands_of(rows: PartRows) -> tuple[RatioBand, ...]:
+    """The double-lift table from the ratio part (its key is ln of the ratio)."""
+    c = rows.cols
+    return tuple(
+        RatioBand(
+            band=int(c["band"][j]),
+            rows=int(c["n"][j]),
+            weight=float(c["wt"][j]),
+            exposure=float(c["ex"][j]),
+            actual=float(c["ac"][j]),
+            expected=float(c["ep"][j]),
+            expected_against=float(c["ep2"][j]),
+            ratio_low=_exp(float(c["lo"][j])),
+            ratio_high=_exp(float(c["hi"][j])),
+        )
+        for j in range(len(rows))
+        if not _missing(c["band"][j])
+    )
+
+
+def _exp(x: float) -> float:
+    return math.exp(x) if x < 709.0 else math.inf
+
+
+def unordered_rows(rows: PartRows) -> int:
+    """Rows of an ordered part with no key (NULL: no ratio of the scores)."""
+    c = rows.cols
+    return sum(int(c["n"][j]) for j in range(len(rows)) if _missing(c["band"][j]))
 
 
 def levels_of(rows: PartRows, training_levels: Sequence[str] | None) -> tuple[Level, ...]:
@@ -304,6 +483,7 @@ def levels_of(rows: PartRows, training_levels: Sequence[str] | None) -> tuple[Le
             "exposure": float(c["ex"][j]),
             "actual": float(c["ac"][j]),
             "expected": float(c["ep"][j]),
+            "expected_against": _against(rows, j),
         }
         if rows.part.role == BANDS:
             if _missing(c["band"][j]):
@@ -388,6 +568,8 @@ class Header:
     nulls: dict[str, int]
     #: each level part's column -> the model's training levels (None: not a model factor)
     training_levels: dict[str, Sequence[str] | None]
+    #: the second model (``--against``): model, version, family, link, offset
+    against: Mapping[str, Any] | None = None
 
 
 def finish(
@@ -402,7 +584,7 @@ def finish(
     """The assessment from the scan's rows per part (:func:`split_parts`)."""
     by_role: dict[str, PartRows] = {}
     for p in parts:
-        if p.part.role in (SCORE, BEST, MEAN):
+        if p.part.role in (SCORE, BEST, MEAN, AGAINST, RATIO):
             by_role[p.part.role] = p
     score = by_role[SCORE]
     gini = gini_of(score)
@@ -421,6 +603,29 @@ def finish(
     if header.family == "binomial":
         calibration = calibration_of(by_role.get(MEAN, score))
         hl = hosmer_lemeshow(calibration)
+    against = ratio = None
+    if header.against is not None:
+        second = by_role[AGAINST]
+        against = AgainstFigures(
+            **header.against,
+            weight=score.total("wt"),
+            actual=score.total("ac"),
+            expected=score.total("ep2"),
+            deviance=score.total("dv2"),
+            null_deviance=null_deviance,
+            gini=gini_of(second),
+            gini_normalized=_ratio(gini_of(second), best),
+            rows_unseen=int(score.total("nu2")),
+            bands=bands_of(second),
+        )
+        ratio = ratio_bands_of(by_role[RATIO])
+        no_ratio = unordered_rows(by_role[RATIO])
+        if no_ratio:
+            notes = [
+                *notes,
+                f"{no_ratio:,} rows have a score of 0 or less under one of the models: they "
+                "have no ratio of the scores and are left out of the double-lift table",
+            ]
     return AssessResult(
         model=header.model,
         version=header.version,
@@ -449,4 +654,6 @@ def finish(
         scans=scans,
         seconds=seconds,
         notes=tuple(notes),
+        against=against,
+        ratio_bands=ratio,
     )

@@ -385,8 +385,9 @@ def versions_command(
 ) -> None:
     """List the versions of model NAME, one line each."""
     with library_errors(quiet), _open_registry(db, registry_schema) as reg:
-        versions = reg.versions(name)
-    click.echo(R.versions_json(name, versions) if as_json else R.versions_text(versions))
+        versions, done = reg.versions(name), reg.assessments(name)
+    render = R.versions_json(name, versions, done) if as_json else R.versions_text(versions, done)
+    click.echo(render)
 
 
 @main.command("show", short_help="Print the stored report of a version.")
@@ -413,10 +414,11 @@ def show_command(
                 raise RegistryError(f"model {name!r} has no live version; give --version K")
         result = reg.load(name, version)
         row = next(v for v in reg.versions(name) if v["version"] == version)
+        done = reg.assessments(name, version)
     if as_json:
-        click.echo(R.show_json(name, version, row, result))
+        click.echo(R.show_json(name, version, row, result, done))
     else:
-        click.echo(R.show_text(name, version, row, result), nl=False)
+        click.echo(R.show_text(name, version, row, result, done), nl=False)
 
 
 @main.command("compare", short_help="Compare two versions of a model.")
@@ -567,13 +569,19 @@ def scoring_sql_command(
     metavar="N",
     help="Bands of equal exposure along the score (and a numeric --by column).",
 )
+@click.option(
+    "--against",
+    metavar="NAME2[:K]",
+    help="Score this model too, in the same scans: its figures and the double-lift table.",
+)
+@click.option("--record", is_flag=True, default=None, help="Keep the figures in the registry.")
 @execution_options
 @output_options
 @click.argument("name")
 def assess_command(name: str, db: str, registry_schema: str | None, **options: Any) -> None:
     """Judge model NAME on the rows of --on SOURCE inside the database: deviance, actual
     against expected, Gini, bands, levels and a binomial model's calibration. Nothing is
-    written; a DuckDB file is opened read-only."""
+    written (a DuckDB file is opened read-only) unless --record."""
     from indb import assess_report  # imported here, as the demo is: `fit` needs neither
     from indb.api import assess
 

@@ -19,6 +19,7 @@ from typing import Any
 
 from indb import sqlexpr as S
 from indb import writeback as W
+from indb.assessment_log import AssessmentLog
 from indb.engines.base_dialect import Dialect
 from indb.engines.base_engine import Engine
 from indb.errors import DeploymentWarning, EngineError, RegistryError, SpecError, UnsupportedError
@@ -62,7 +63,7 @@ class SaveOutcome:
     warnings: tuple[str, ...] = ()
 
 
-class Registry(ViewPlacement):
+class Registry(ViewPlacement, AssessmentLog):
     """Registry operations on one engine (schema ``indb_registry`` unless told otherwise).
 
     Open one with :func:`indb.registry_append.open_registry`, which gives an engine without
@@ -231,6 +232,7 @@ class Registry(ViewPlacement):
         intervals: bool | None = None,
         note: str | None = None,
         parent_version: int | None = None,
+        assessments: Sequence[dict[str, Any]] = (),
     ) -> SaveOutcome:
         """Record ``result`` as the next version of ``name`` and (by default) make it live.
 
@@ -244,6 +246,8 @@ class Registry(ViewPlacement):
         newest version) keeps that version unless ``force_new`` or a deployment setting
         (``view_schema``, ``score_source``, ``intervals``; None keeps the model's own) differs
         from the model's: then a new version is recorded so the change takes effect.
+        ``assessments``: rows of ``version_assessment`` recorded with a new version (a
+        ``version`` of None is this one's).
         """
         self.check_model_name(name)
         if view_schema is not None:
@@ -394,6 +398,7 @@ class Registry(ViewPlacement):
                 self._insert("version_term", terms)
                 if iters:
                     self._insert("version_iteration", iters)
+                self._insert_assessments(assessments, version)
                 self._insert("model_version", [vrow])
                 if current is None:
                     self._insert("model", [model_row])

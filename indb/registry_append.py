@@ -141,6 +141,7 @@ def append_registry_ddl(schema: str, dialect: Any) -> list[exp.Expression]:
         VERSION_RECORD: W.REGISTRY_TABLES["model_version"],
         **{t: W.REGISTRY_TABLES[t] for t in ("version_term", "version_iteration")},
         "registry_event": W.REGISTRY_TABLES["registry_event"],
+        "version_assessment": W.REGISTRY_TABLES["version_assessment"],
     }
     for table, cols in tables.items():
         out.append(W.create_table(schema, table, cols, None, dialect))

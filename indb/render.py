@@ -20,7 +20,7 @@ from typing import Any
 
 from indb.report import render_json, render_report
 from indb.results import FitResult, IterationRecord
-from indb.retrain import RetrainOutcome
+from indb.retrain import RetrainOutcome, holdout_figures
 
 Statements = Sequence[tuple[str, str]]
 
@@ -216,13 +216,42 @@ def retrain_text(outcome: RetrainOutcome, db: str | None) -> str:
             f"(version {prev} took {outcome.previous_iterations})."
         )
     lines = [head, iters]
+    holdout = holdout_figures(outcome.holdout, outcome.min_level_exposure)
+    if holdout is not None:
+        lines += ["", holdout_text(holdout)]
     if outcome.checks:
         rows = [
             [c.gate, _gate_num(c.value), _gate_num(c.limit), "pass" if c.passed else "FAIL"]
+            + ([c.detail] if any(x.detail for x in outcome.checks) else [])
             for c in outcome.checks
         ]
-        lines += ["", _table(["gate", "value", "limit", "result"], rows, right=(1, 2))]
+        headers = ["gate", "value", "limit", "result"]
+        headers += ["where"] if len(rows[0]) > len(headers) else []
+        lines += ["", _table(headers, rows, right=(1, 2))]
     return "\n".join(lines)
+
+
+def holdout_text(h: dict[str, Any]) -> str:
+    """Both versions' figures on the holdout rows (:func:`indb.retrain.holdout_figures`)."""
+    both = "both versions" if len(h["versions"]) > 1 else "the new version"
+    head = (
+        f"Holdout {h['source']}: {h['rows']:,} of {h['rows_read']:,} rows, {both} in the same "
+        f"{h['scans']} scan{'s' if h['scans'] != 1 else ''}"
+    )
+    rows = [
+        [
+            f"{v['version']} ({v['role']})",
+            _num(v["deviance"], ",.6g"),
+            _num(v["mean_deviance"], ".5g"),
+            _num(v["actual_over_expected"], ".4f"),
+            _num(v["gini"], ".4f"),
+            _num(v["worst_level_ae_deviation"], ".4f"),
+            v["worst_level"] or "",
+        ]
+        for v in h["versions"]
+    ]
+    headers = ["version", "deviance", "mean deviance", "A/E", "Gini", "worst level |A/E-1|", "at"]
+    return head + "\n" + _table(headers, rows, right=(1, 2, 3, 4, 5))
 
 
 # -- one renderer per command output ---------------------------------------------------
@@ -289,7 +318,43 @@ def models_json(models: ModelListing) -> str:
     )
 
 
-def versions_text(versions: Sequence[dict[str, Any]]) -> str:
+def assessments_text(rows: Sequence[dict[str, Any]]) -> str:
+    """The recorded assessments (registry table ``version_assessment``), oldest first."""
+    table = [
+        [
+            str(r["version"]),
+            _when(r["assessed_at"]),
+            str(r["purpose"]),
+            str(r["source"]),
+            _num(r["n_used"]),
+            _num(r["deviance"], ".10g"),
+            _num(_ratio(r["actual"], r["expected"]), ".4f"),
+            _num(r["gini"], ".4f"),
+            _beside(r),
+        ]
+        for r in rows
+    ]
+    headers = ["version", "assessed (UTC)", "for", "on", "rows", "deviance", "A/E", "Gini"]
+    headers.append("beside")
+    return "Assessments, oldest first\n" + _table(headers, table, right=(0, 4, 5, 6, 7))
+
+
+def _beside(row: dict[str, Any]) -> str:
+    """The version judged in the same scans, if any."""
+    if row["compared_model"] is None:
+        return ""
+    return f"{row['compared_model']} v{row['compared_version']}"
+
+
+def _ratio(a: Any, b: Any) -> float | None:
+    if a is None or b is None or not b:
+        return None
+    return float(a) / float(b)
+
+
+def versions_text(
+    versions: Sequence[dict[str, Any]], assessments: Sequence[dict[str, Any]] = ()
+) -> str:
     rows = [
         [
             str(v["version"]),
@@ -315,25 +380,43 @@ def versions_text(versions: Sequence[dict[str, Any]]) -> str:
         "iterations",
         "converged",
     ]
-    return _table(headers, rows, right=(0, 5, 6, 7))
+    text = _table(headers, rows, right=(0, 5, 6, 7))
+    return text + ("\n\n" + assessments_text(assessments) if assessments else "")
 
 
-def versions_json(name: str, versions: Sequence[dict[str, Any]]) -> str:
-    return to_json({"model": name, "versions": versions})
+def versions_json(
+    name: str, versions: Sequence[dict[str, Any]], assessments: Sequence[dict[str, Any]] = ()
+) -> str:
+    return to_json({"model": name, "versions": versions, "assessments": list(assessments)})
 
 
-def show_text(name: str, version: int, row: dict[str, Any], result: FitResult) -> str:
-    """The stored report of one version under a line saying which version it is."""
+def show_text(
+    name: str,
+    version: int,
+    row: dict[str, Any],
+    result: FitResult,
+    assessments: Sequence[dict[str, Any]] = (),
+) -> str:
+    """The stored report of one version under a line saying which version it is, and the
+    assessments recorded of it."""
     head = (
         f"Model {name}, version {version} ({row['status']}), recorded "
         f"{_when(row['created_at'])} UTC\n\n"
     )
-    return head + render_report(result)
+    tail = "\n" + assessments_text(assessments) + "\n" if assessments else ""
+    return head + render_report(result) + tail
 
 
-def show_json(name: str, version: int, row: dict[str, Any], result: FitResult) -> str:
+def show_json(
+    name: str,
+    version: int,
+    row: dict[str, Any],
+    result: FitResult,
+    assessments: Sequence[dict[str, Any]] = (),
+) -> str:
     out = result.to_dict()
     out.update({"model": name, "version": version, "status": row["status"]})
+    out["assessments"] = list(assessments)
     return to_json(out)
 
 

@@ -1,19 +1,31 @@
 """Scheduled retraining: refit a spec file warm-started from the live version, compare, and
-promote only when the gates pass."""
+promote only when the gates pass.
+
+With ``[gates] holdout = "SOURCE"`` the new version and the live one are judged on the
+holdout's rows in the same scans (:func:`indb.assess_run.assess_version` with the live
+version as the second model) before anything is written; the holdout gates read those
+figures, and the assessment is recorded with the new version (``version_assessment``).
+"""
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from typing import Any
 
 from indb.api import with_deployment
+from indb.assess_run import StoredVersion, assess_version, comparison_refusal, describe_source
+from indb.assessment import AssessResult, worst_level_deviation
+from indb.assessment_log import assessment_rows
 from indb.engines.backends import connect
+from indb.engines.base_engine import Engine
+from indb.errors import SpecError
 from indb.fitter import fit_spec, plan_spec
-from indb.registry import DEFAULT_SCHEMA
+from indb.registry import DEFAULT_SCHEMA, _now
 from indb.registry_append import open_registry
 from indb.results import FitResult
-from indb.spec import ModelSpec
+from indb.spec import ModelSpec, Source
 from indb.specfile import Gates, SpecFile
 
 #: Exit codes of ``indb retrain`` (documented in the README for schedulers).
@@ -27,6 +39,8 @@ class GateCheck:
     value: float
     limit: float
     passed: bool
+    #: where the value comes from, when it is one of many (a level: "region = north")
+    detail: str = ""
 
 
 @dataclass(frozen=True)
@@ -43,6 +57,9 @@ class RetrainOutcome:
     result: FitResult | None = None
     sql: tuple[tuple[str, str], ...] = ()
     comparison: dict[str, Any] = field(default_factory=dict)
+    #: the new version (and the live one, as its second model) judged on the holdout
+    holdout: AssessResult | None = None
+    min_level_exposure: float = 0.0
 
     @property
     def exit_code(self) -> int:
@@ -57,9 +74,16 @@ class RetrainOutcome:
             "iterations": self.iterations,
             "previous_iterations": self.previous_iterations,
             "gates": [
-                {"gate": c.gate, "value": _num(c.value), "limit": c.limit, "passed": c.passed}
+                {
+                    "gate": c.gate,
+                    "value": _num(c.value),
+                    "limit": c.limit,
+                    "passed": c.passed,
+                    **({"detail": c.detail} if c.detail else {}),
+                }
                 for c in self.checks
             ],
+            "holdout": holdout_figures(self.holdout, self.min_level_exposure),
             "exit_code": self.exit_code,
             "comparison": self.comparison,
             "scoring_view": (
@@ -70,6 +94,67 @@ class RetrainOutcome:
 
 def _num(v: float) -> float | None:
     return v if math.isfinite(v) else None
+
+
+def holdout_figures(a: AssessResult | None, min_exposure: float = 0.0) -> dict[str, Any] | None:
+    """Both versions' holdout figures, the new version first (JSON-ready)."""
+    if a is None:
+        return None
+    versions = [_version_figures(a, a, "new", min_exposure)]
+    if a.against is not None:
+        versions.append(_version_figures(a, a.against, "live", min_exposure))
+    return {
+        "source": a.source,
+        "rows": a.rows,
+        "rows_read": a.rows_read,
+        "scans": a.scans,
+        "versions": versions,
+    }
+
+
+def _version_figures(a: AssessResult, figures: Any, role: str, min_exposure: float) -> dict:
+    worst = worst_level_deviation(a, min_exposure, against=role == "live")
+    out = {"version": figures.version, "role": role}
+    for key in (
+        "expected",
+        "actual_over_expected",
+        "deviance",
+        "mean_deviance",
+        "deviance_explained",
+        "gini",
+        "gini_normalized",
+    ):
+        out[key] = _num(float(getattr(figures, key)))
+    out["worst_level_ae_deviation"] = _num(worst.value)
+    out["worst_level"] = None if worst.column is None else worst.describe()
+    return out
+
+
+def holdout_checks(gates: Gates, a: AssessResult | None) -> list[GateCheck]:
+    """The holdout gates on an assessment of the new version (with the live version as its
+    second model; without one, only ``max_level_ae_deviation`` applies)."""
+    out: list[GateCheck] = []
+    if a is None:
+        return out
+    if gates.max_level_ae_deviation is not None:
+        worst = worst_level_deviation(a, gates.min_level_exposure or 0.0)
+        limit = gates.max_level_ae_deviation
+        out.append(
+            GateCheck(
+                "max_level_ae_deviation", worst.value, limit, worst.value <= limit, worst.describe()
+            )
+        )
+    live = a.against
+    if live is None:
+        return out
+    if gates.max_holdout_deviance_increase is not None:
+        inc = (a.deviance - live.deviance) / abs(live.deviance) if live.deviance else 0.0
+        limit = gates.max_holdout_deviance_increase
+        out.append(GateCheck("max_holdout_deviance_increase", inc, limit, inc <= limit))
+    if gates.max_gini_drop is not None:
+        drop, limit = live.gini - a.gini, gates.max_gini_drop
+        out.append(GateCheck("max_gini_drop", drop, limit, drop <= limit))
+    return out
 
 
 def check_gates(gates: Gates, new: FitResult, old: FitResult | None) -> list[GateCheck]:
@@ -170,6 +255,7 @@ def retrain(
             start=start,
             **options,
         )
+        check_holdout(engine, spec_file.gates, name, spec, live_version, live)
         if dry_run:
             sql = plan_spec(spec, engine)
             return RetrainOutcome(
@@ -182,8 +268,14 @@ def retrain(
                 sql=tuple(sql),
             )
         result = fit_spec(spec, engine, progress)
-        checks = check_gates(spec_file.gates, result, live)
+        gates = spec_file.gates
+        # judged before anything is written: a holdout the new version cannot read is an
+        # input error that leaves the registry as it was
+        holdout = judge_holdout(engine, gates, name, result, live_version, live)
+        checks = [*check_gates(gates, result, live), *holdout_checks(gates, holdout)]
         passed = all(c.passed for c in checks)
+        now = _now()
+        pending = assessment_rows(holdout, purpose="holdout gates", at=now) if holdout else []
         outcome = reg.save(
             name,
             result,
@@ -193,7 +285,12 @@ def retrain(
             score_source=deploy.get("score_source"),
             intervals=deploy.get("intervals"),
             parent_version=live_version,
+            assessments=pending,
         )
+        if holdout is not None:
+            holdout = dataclasses.replace(holdout, version=outcome.version)
+            if not outcome.created:  # no new version to record it with: on its own
+                reg.record_assessment(holdout, purpose="holdout gates", at=now)
         result = with_deployment(result, outcome)
         if not outcome.created and outcome.promoted:
             status = "unchanged"
@@ -224,7 +321,69 @@ def retrain(
             tuple(checks),
             result,
             comparison=comparison,
+            holdout=holdout,
+            min_level_exposure=gates.min_level_exposure or 0.0,
         )
     finally:
         if engine is not db:
             engine.close()
+
+
+# -- holdout gates ------------------------------------------------------------------------------
+
+
+def check_holdout(
+    engine: Engine,
+    gates: Gates,
+    name: str,
+    spec: ModelSpec,
+    live_version: int | None,
+    live: FitResult | None,
+) -> None:
+    """Before the fit: the holdout can be read, and the new version can be judged beside
+    the live one (same family, response and weights); a SpecError otherwise."""
+    if gates.holdout is None:
+        return
+    describe_source(engine, Source.parse(gates.holdout))
+    if live is None:
+        return
+    refusal = comparison_refusal((name, None, spec.to_dict()), (name, live_version, live.spec))
+    if refusal:
+        raise SpecError(
+            f"holdout gates: {refusal}; remove holdout and its gates from [gates] for a "
+            "refit that changes them"
+        )
+
+
+def judge_holdout(
+    engine: Engine,
+    gates: Gates,
+    name: str,
+    result: FitResult,
+    live_version: int | None,
+    live: FitResult | None,
+) -> AssessResult | None:
+    """The new version (numbered 0 until it is saved) judged on the holdout, with the live
+    version as its second model in the same scans."""
+    if gates.holdout is None:
+        return None
+    against = (
+        StoredVersion(name, live_version, live)
+        if live is not None and live_version is not None
+        else None
+    )
+    assessed = assess_version(
+        engine,
+        result,
+        model=name,
+        version=0,
+        on=gates.holdout,
+        by=list(gates.holdout_by or ()),
+        against=against,
+    )
+    if gates.max_level_ae_deviation is not None and not assessed.levels:
+        raise SpecError(
+            f"gate max_level_ae_deviation has no levels to judge: model {name!r} has no "
+            "categorical predictor; name columns of the holdout in holdout_by"
+        )
+    return assessed

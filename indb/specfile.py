@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import os
 import tomllib
+from collections.abc import Sequence
 from dataclasses import dataclass, field, fields
 from typing import Any
 
@@ -37,6 +38,14 @@ class Gates:
     ``max_change_in_se``: largest |new - old| / (old standard error);
     ``max_deviance_per_row_increase``: relative increase of deviance per row allowed;
     ``min_rows``: fewest rows used; ``max_excluded_share``: largest share of rows excluded.
+
+    Holdout gates judge the new and the live version on the rows of ``holdout`` (a table,
+    query or file), both in the same scans (:func:`indb.assess_run.assess_version`):
+    ``max_holdout_deviance_increase``: (new - live) / live holdout deviance;
+    ``max_gini_drop``: live Gini - new Gini on the holdout; ``max_level_ae_deviation``:
+    the new version's worst |actual / expected - 1| over the levels (of its categorical
+    predictors and the ``holdout_by`` columns) with an exposure of at least
+    ``min_level_exposure`` (default 0).
     """
 
     require_converged: bool = _gate(O.BOOLEAN, True)
@@ -45,6 +54,12 @@ class Gates:
     max_deviance_per_row_increase: float | None = _gate(O.NUMBER)
     min_rows: int | None = _gate(O.WHOLE)
     max_excluded_share: float | None = _gate(O.NUMBER)
+    holdout: str | None = _gate(O.TEXT)
+    holdout_by: Sequence[str] | None = _gate(O.NAMES)
+    max_holdout_deviance_increase: float | None = _gate(O.NUMBER)
+    max_gini_drop: float | None = _gate(O.NUMBER)
+    max_level_ae_deviation: float | None = _gate(O.NUMBER)
+    min_level_exposure: float | None = _gate(O.NUMBER)
 
     def __post_init__(self) -> None:
         # a gate of the wrong kind would otherwise fail only after the whole refit
@@ -53,6 +68,28 @@ class Gates:
             gate_kinds(),
             label=lambda key: f"gate {key}",
         )
+        if self.holdout is not None and not self.holdout.strip():
+            raise SpecError('gate holdout must name a table, query or file; got ""')
+        for name in HOLDOUT_GATES:
+            if getattr(self, name) is not None and self.holdout is None:
+                raise SpecError(
+                    f'gate {name} judges rows the fit did not see: give holdout = "SOURCE" '
+                    "in [gates] (a table, query or file with the model's columns)"
+                )
+        for name in ("max_level_ae_deviation", "min_level_exposure"):
+            value = getattr(self, name)
+            if value is not None and not value >= 0:
+                raise SpecError(f"gate {name} must be 0 or more; got {value!r}")
+
+
+#: the gates (and settings) that need ``holdout``
+HOLDOUT_GATES = (
+    "holdout_by",
+    "max_holdout_deviance_increase",
+    "max_gini_drop",
+    "max_level_ae_deviation",
+    "min_level_exposure",
+)
 
 
 def gate_kinds() -> dict[str, Kind]:
@@ -147,9 +184,10 @@ def load_spec_file(path: str) -> SpecFile:
     if engine.get("db", "").strip() and not _is_engine_url(engine["db"]):
         # normalised, so a message about the file shows where it was looked for
         engine["db"] = os.path.normpath(_relative_to(base, engine["db"]))
-    src = Source.parse(model["source"])
-    if src.kind == "file":
-        model["source"] = _relative_to(base, model["source"])
+    for table, key in (("model", "source"), ("gates", "holdout")):
+        text = tables[table].get(key)
+        if isinstance(text, str) and text.strip() and Source.parse(text).kind == "file":
+            tables[table][key] = _relative_to(base, text)
     return SpecFile(
         path=path,
         model=model,

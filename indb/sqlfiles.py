@@ -26,6 +26,8 @@ HEADER = """-- indb model registry: tables created on first use (schema {schema}
 -- version_term       coefficients with standard errors, one row per term and version
 -- version_iteration  the IRLS iteration log of each version
 -- registry_event     audit log: fit, promote, drop (UTC timestamps)
+-- version_assessment each time a version was judged on a source (retrain's holdout gates,
+--                    indb assess --record): when, on what, beside which version, the figures
 """
 APPEND_ONLY_NOTE = """--
 -- {engine} tables cannot be updated: model and model_version are views over the append-only

@@ -384,12 +384,34 @@ REGISTRY_TABLES: dict[str, list[tuple[str, str]]] = {
         ("action", "TEXT"),
         ("detail", "TEXT"),
     ],
+    # a version judged on a SOURCE (indb.assessment_log): when, for what, on which rows,
+    # compared with which version in the same scan, the headline figures and all of them
+    "version_assessment": [
+        ("model_name", "TEXT"),
+        ("version", "INT"),
+        ("assessed_at", "TIMESTAMP"),
+        ("purpose", "TEXT"),
+        ("source", "TEXT"),
+        ("engine", "TEXT"),
+        ("compared_model", "TEXT"),
+        ("compared_version", "INT"),
+        ("n_used", "BIGINT"),
+        ("weight", "DOUBLE"),
+        ("actual", "DOUBLE"),
+        ("expected", "DOUBLE"),
+        ("deviance", "DOUBLE"),
+        ("deviance_explained", "DOUBLE"),
+        ("gini", "DOUBLE"),
+        ("gini_normalized", "DOUBLE"),
+        ("figures_json", "TEXT"),
+    ],
 }
 PRIMARY_KEYS = {
     "model": ("model_name",),
     "model_version": ("model_name", "version"),
     "version_term": ("model_name", "version", "position"),
     "version_iteration": ("model_name", "version", "iteration"),
+    "version_assessment": ("model_name", "version", "assessed_at"),
 }
 
 

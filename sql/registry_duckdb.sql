@@ -7,6 +7,8 @@
 -- version_term       coefficients with standard errors, one row per term and version
 -- version_iteration  the IRLS iteration log of each version
 -- registry_event     audit log: fit, promote, drop (UTC timestamps)
+-- version_assessment each time a version was judged on a source (retrain's holdout gates,
+--                    indb assess --record): when, on what, beside which version, the figures
 
 CREATE SCHEMA IF NOT EXISTS "indb_registry";
 
@@ -19,3 +21,5 @@ CREATE TABLE IF NOT EXISTS "indb_registry"."version_term" ("model_name" TEXT, "v
 CREATE TABLE IF NOT EXISTS "indb_registry"."version_iteration" ("model_name" TEXT, "version" INT, "iteration" INT, "phase" TEXT, "deviance" DOUBLE, "relative_change" DOUBLE, "step_halvings" INT, "seconds" DOUBLE, PRIMARY KEY ("model_name", "version", "iteration"));
 
 CREATE TABLE IF NOT EXISTS "indb_registry"."registry_event" ("model_name" TEXT, "version" INT, "at" TIMESTAMP, "action" TEXT, "detail" TEXT);
+
+CREATE TABLE IF NOT EXISTS "indb_registry"."version_assessment" ("model_name" TEXT, "version" INT, "assessed_at" TIMESTAMP, "purpose" TEXT, "source" TEXT, "engine" TEXT, "compared_model" TEXT, "compared_version" INT, "n_used" BIGINT, "weight" DOUBLE, "actual" DOUBLE, "expected" DOUBLE, "deviance" DOUBLE, "deviance_explained" DOUBLE, "gini" DOUBLE, "gini_normalized" DOUBLE, "figures_json" TEXT, PRIMARY KEY ("model_name", "version", "assessed_at"));

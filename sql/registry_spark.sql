@@ -7,6 +7,8 @@
 -- version_term       coefficients with standard errors, one row per term and version
 -- version_iteration  the IRLS iteration log of each version
 -- registry_event     audit log: fit, promote, drop (UTC timestamps)
+-- version_assessment each time a version was judged on a source (retrain's holdout gates,
+--                    indb assess --record): when, on what, beside which version, the figures
 --
 -- Spark tables cannot be updated: model and model_version are views over the append-only
 -- tables model_record and version_record; a version's status and the live version are
@@ -23,6 +25,8 @@ CREATE TABLE IF NOT EXISTS `indb_registry`.`version_term` (`model_name` STRING, 
 CREATE TABLE IF NOT EXISTS `indb_registry`.`version_iteration` (`model_name` STRING, `version` INT, `iteration` INT, `phase` STRING, `deviance` DOUBLE, `relative_change` DOUBLE, `step_halvings` INT, `seconds` DOUBLE) USING PARQUET;
 
 CREATE TABLE IF NOT EXISTS `indb_registry`.`registry_event` (`model_name` STRING, `version` INT, `at` TIMESTAMP, `action` STRING, `detail` STRING) USING PARQUET;
+
+CREATE TABLE IF NOT EXISTS `indb_registry`.`version_assessment` (`model_name` STRING, `version` INT, `assessed_at` TIMESTAMP, `purpose` STRING, `source` STRING, `engine` STRING, `compared_model` STRING, `compared_version` INT, `n_used` BIGINT, `weight` DOUBLE, `actual` DOUBLE, `expected` DOUBLE, `deviance` DOUBLE, `deviance_explained` DOUBLE, `gini` DOUBLE, `gini_normalized` DOUBLE, `figures_json` STRING) USING PARQUET;
 
 CREATE OR REPLACE VIEW `indb_registry`.`model` AS SELECT `r`.`model_name` AS `model_name`, `r`.`created_at` AS `created_at`, `p`.`version` AS `live_version`, `r`.`view_schema` AS `view_schema`, `r`.`view_name` AS `view_name`, `r`.`macro_name` AS `macro_name`, `r`.`score_source` AS `score_source`, `r`.`intervals` AS `intervals` FROM (SELECT *, ROW_NUMBER() OVER (PARTITION BY `model_name` ORDER BY `recorded_at` DESC) AS `indb_rank` FROM `indb_registry`.`model_record`) AS `r` LEFT JOIN (SELECT *, ROW_NUMBER() OVER (PARTITION BY `model_name` ORDER BY `at` DESC) AS `indb_rank` FROM `indb_registry`.`registry_event` WHERE `action` = 'promote') AS `p` ON (`p`.`model_name` = `r`.`model_name`) AND (`p`.`indb_rank` = 1) WHERE `r`.`indb_rank` = 1;
 

@@ -10,6 +10,12 @@ Data shipped inside statsmodels (nothing downloaded):
   to one per rating x religious x outcome, frequency weight ``respondents``).
 * ``statsmodels.datasets.star98`` (303 school districts): ``above`` (binomial with trials,
   NABOVE of NABOVE + NBELOW pupils), even districts train, odd ones are the holdout.
+* second models for ``--against`` (``CHALLENGERS``): ``children_b`` (Poisson, the offset,
+  rating and education) and ``had_b`` (binomial with a probit link, the same predictors).
+* ``statsmodels.datasets.randhie`` (RAND Health Insurance Experiment, 20,190 person-years):
+  medical visits as a Poisson response for the holdout gates of a scheduled refit; even rows
+  train, odd rows are the holdout, and :func:`drifted` makes the training rows lose the
+  visits of 70% of the rows with an individual deductible (``idp = 1``).
 
 Oracle: statsmodels GLM (test-only) fitted on the training rows with indb's design (the
 term names of the result), at a tight tolerance; its coefficients are checked against
@@ -28,6 +34,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import statsmodels.api as sm
+from numpy.testing import assert_allclose
 from reference_cases import fair_rated, level_text, star98
 
 from indb.results import FitResult
@@ -124,6 +131,26 @@ CASES = {
         trials="pupils",
     ),
 }
+
+
+#: the second models of a comparison (``--against``): other predictors than the first's
+#: (no age, which has NULLs in the holdout), a probit link for the binomial one
+CHALLENGERS = {
+    "children_b": Case(
+        "children_b",
+        "fair",
+        {"response": "children", "family": "poisson", "offset": "ln(years)"},
+        sm.families.Poisson(),
+        offset="years",
+    ),
+    "had_b": Case(
+        "had_b",
+        "fair",
+        {"response": "had", "family": "binomial", "link": "probit"},
+        sm.families.Binomial(sm.families.links.Probit()),
+    ),
+}
+PREDICTORS_B = ["rating", "educ"]
 
 
 def predictors(case: Case) -> list[str]:
@@ -251,3 +278,43 @@ def hosmer_lemeshow(
 
 def finite(values: Sequence[float]) -> list[float]:
     return [v for v in values if v is not None and math.isfinite(v)]
+
+
+# -- randhie: holdout gates of a scheduled refit ------------------------------------------------
+
+
+def randhie_frames() -> tuple[pd.DataFrame, pd.DataFrame]:
+    """(train, holdout) of statsmodels' randhie: even and odd rows, with a ``row_id``."""
+    import statsmodels.datasets as smd
+
+    d = smd.randhie.load_pandas().data.reset_index(drop=True)
+    d = d.astype({"idp": int, "hlthg": int, "hlthp": int, "mdvis": float})
+    d.insert(0, "row_id", np.arange(len(d), dtype=np.int64))
+    train, hold = d[d.row_id % 2 == 0], d[d.row_id % 2 == 1]
+    return train.reset_index(drop=True), hold.reset_index(drop=True)
+
+
+def drifted(train: pd.DataFrame) -> pd.DataFrame:
+    """The training rows after a feed lost the visits of 70% of the idp = 1 rows."""
+    out = train.copy()
+    out.loc[(out.idp == 1) & (out.row_id % 10 < 7), "mdvis"] = 0.0
+    return out
+
+
+def visits_oracle(train: pd.DataFrame, hold: pd.DataFrame, res: FitResult) -> dict[str, Any]:
+    """statsmodels' Poisson GLM on ``train`` with indb's design (its coefficients checked
+    against indb's): in-sample deviance per row, and on the holdout the deviance (its
+    ``family.deviance``), the Gini (the Lorenz curve written out) and A/E per idp level."""
+    x = design(train, res)
+    fit = sm.GLM(train["mdvis"], x, family=sm.families.Poisson()).fit(**SM_FIT)
+    assert_allclose(fit.params[res.terms], estimates(res), rtol=COEF_RTOL)
+    xh = design(hold, res)
+    mu = np.exp(xh.to_numpy() @ fit.params[xh.columns].to_numpy())
+    y = hold["mdvis"].to_numpy()
+    by_idp = pd.DataFrame({"idp": hold["idp"], "y": y, "mu": mu}).groupby("idp").sum()
+    return {
+        "per_row": fit.deviance / len(train),
+        "deviance": sm.families.Poisson().deviance(y, mu),
+        "gini": lorenz_gini(mu, np.ones(len(y)), y),
+        "ae_idp": (by_idp["y"] / by_idp["mu"]).to_dict(),
+    }

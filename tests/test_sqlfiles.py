@@ -37,4 +37,5 @@ def test_registry_ddl_runs_twice_on_duckdb() -> None:
         "version_term",
         "version_iteration",
         "registry_event",
+        "version_assessment",
     }

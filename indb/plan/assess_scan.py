@@ -19,9 +19,10 @@ f pw). Three queries:
 * the null scan (:func:`null_query`): the constant-rate model's deviance, and one IRLS step
   of it where it has no closed form, over the same rows.
 
-Adding a second model to the same scan (a challenger, a double-lift table) means adding its
-score, mean and sums to :func:`scored_rows` and the aggregates, and its score and the ratio
-of the two scores as further ordered parts.
+A second model (``--against``, :class:`Against`) is scored in the same scans: its mean and
+score sit beside the first model's in :func:`scored_rows`, its expected and deviance are
+summed by every grouping set, and two more ordered parts order the rows by its score (its
+Gini and bands) and by the log-ratio of the two scores (the double-lift table).
 """
 
 from __future__ import annotations
@@ -31,6 +32,8 @@ from dataclasses import dataclass
 from sqlglot import exp
 
 from indb import sqlexpr as S
+from indb.families import Family
+from indb.links import Link
 from indb.plan.context import PlanContext
 from indb.plan.irls_scan import null_mean_sql, null_step_terms
 from indb.plan.profile import ProfileItem, domain_checks
@@ -38,9 +41,13 @@ from indb.sqlexpr import Expr
 
 #: roles of the grouping sets (:class:`Part`)
 SCORE, BEST, MEAN, LEVELS, BANDS = "score", "best", "mean", "levels", "bands"
+#: the second model's roles: its score's tie groups, and the log-ratio of the two scores'
+AGAINST, RATIO = "against", "ratio"
 
 #: the aggregates every grouping set sums (alias -> stage column), and the null model's
 NUMBERS = ("n", "nw", "wt", "ex", "ac", "ep", "dv", "nu")
+#: with a second model, also its expected, deviance and rows with an unseen level
+AGAINST_NUMBERS = ("ep2", "dv2", "nu2")
 NULL_SUMS = ("nd", "nw0", "nwz0")
 
 
@@ -50,8 +57,10 @@ class Part:
 
     ``role`` is ``score`` (tie groups of the score), ``best`` (of the actual rate, whose
     Lorenz curve bounds the score's), ``mean`` (of the predicted mean: a binomial model's
-    calibration when an offset makes it differ from the score), ``bands`` (a numeric column
-    cut into bands of its values) or ``levels`` (a column's levels). The ordered roles are
+    calibration when an offset makes it differ from the score), ``against`` (of the second
+    model's score), ``ratio`` (of ln(its score) - ln(the first model's score): the
+    double-lift table), ``bands`` (a numeric column cut into bands of its values) or
+    ``levels`` (a column's levels). The ordered roles are
     cut into ``bands`` bands of equal exposure (of equal weight f pw when ``by_weight``).
     """
 
@@ -83,6 +92,19 @@ class NullModel:
 
 
 @dataclass(frozen=True)
+class Against:
+    """A second model judged in the same scans: its family and link (the family's name and
+    the response are the first model's), its linear predictor without the offset, its
+    unseen-level count and its offset (a double, or None), as the scoring view has them."""
+
+    family: Family
+    link: Link
+    score_eta: Expr
+    unseen: Expr
+    offset: Expr | None = None
+
+
+@dataclass(frozen=True)
 class AssessPlan:
     """What the assessment scans need: the SOURCE with the model's inputs (``ctx``, whose
     spec holds the stored family, link and expressions), the model's linear predictor
@@ -97,6 +119,8 @@ class AssessPlan:
     bands: int = 10
     #: level rows fetched per column at most (one more tells that there are too many)
     max_levels: int = 10_000
+    #: a second model scored in the same scans (``--against``)
+    against: Against | None = None
 
     @property
     def log_exposure(self) -> bool:
@@ -116,6 +140,8 @@ class AssessPlan:
         out = [Part(SCORE, bands=self.bands), Part(BEST)]
         if self.calibration == MEAN:
             out.append(Part(MEAN, bands=self.bands, by_weight=True))
+        if self.against is not None:
+            out += [Part(AGAINST, bands=self.bands), Part(RATIO, bands=self.bands)]
         out += [Part(BANDS, c, bands=self.bands) for c in self.banded]
         out += [Part(LEVELS, c) for c in self.levels]
         return tuple(out)
@@ -192,13 +218,16 @@ def _cols(*names: str) -> list[Expr]:
 
 
 def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
-    """The SOURCE's rows that have no NULL in a model input and get a valid mean, each with
-    the keys of the parts and its weight, actual, expected, deviance, exposure, unseen flag
-    (and the null model's terms)."""
+    """The SOURCE's rows that have no NULL in a model input and get a valid mean (from both
+    models, with ``plan.against``), each with the keys of the parts and its weight, actual,
+    expected, deviance, exposure, unseen flag (the second model's expected, deviance and
+    unseen flag, and the log-ratio of the scores) and the null model's terms."""
     ctx = plan.ctx
     fam, link = ctx.spec.family, ctx.spec.link
+    two = plan.against
     parts = plan.parts
     has_off = ctx.spec.offset is not None
+    off2 = two is not None and two.offset is not None
     # stage a: the inputs, the level and band keys, eta without the offset
     keys = []
     for i, part in enumerate(parts):
@@ -217,19 +246,28 @@ def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
     ]
     if has_off:
         cols.append(S.alias(ctx.raw_offset(), "off"))
+    if two is not None:
+        cols += [S.alias(two.score_eta.copy(), "seta2"), S.alias(two.unseen.copy(), "nu2")]
+        if off2:
+            cols.append(S.alias(S.as_double(two.offset.copy()), "off2"))
     inputs = S.select(cols, ctx.source(), where=ctx.kept())
     carry = [*key_names, "y", "pw", "fw", "nu", *(["off"] if has_off else [])]
+    if two is not None:
+        carry.append("nu2")
     # stage b: the mean (offset included) and the score (without it), NULL where eta is
     # not valid (Link.mean_sql, as in the scoring view)
     eta = S.add(S.col("off"), S.col("seta")) if has_off else S.col("seta")
-    means = S.select(
-        [
-            *_cols(*carry),
-            S.alias(link.mean_sql(eta), "mu"),
-            S.alias(link.mean_sql(S.col("seta")), "sc"),
-        ],
-        S.subquery(inputs, "a"),
-    )
+    means: list[Expr] = [
+        *_cols(*carry),
+        S.alias(link.mean_sql(eta), "mu"),
+        S.alias(link.mean_sql(S.col("seta")), "sc"),
+    ]
+    if two is not None:
+        eta2 = S.add(S.col("off2"), S.col("seta2")) if off2 else S.col("seta2")
+        means += [
+            S.alias(two.link.mean_sql(eta2), "mu2"),
+            S.alias(two.link.mean_sql(S.col("seta2")), "sc2"),
+        ]
     # stage c: rows with a valid mean inside the family's range; their sums
     mu, fw, pw, y = S.col("mu"), S.col("fw"), S.col("pw"), S.col("y")
     valid = [S.not_(S.is_null(mu)), S.not_(S.is_null(S.col("sc")))]
@@ -239,22 +277,31 @@ def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
     expo = (
         S.mul(fw.copy(), _exp(S.col("off"))) if plan.log_exposure else S.mul(fw.copy(), pw.copy())
     )
-    sums = S.select(
-        [
-            *_cols(*carry, "mu", "sc"),
-            S.alias(S.mul(fw.copy(), pw.copy()), "wt"),
-            S.alias(S.mul(fw.copy(), pw.copy(), y.copy()), "ac"),
-            S.alias(S.mul(fw.copy(), pw.copy(), mu.copy()), "ep"),
-            S.alias(
-                S.mul(fw.copy(), pw.copy(), fam.unit_deviance_sql(y.copy(), fam.clamp_mu_sql(mu))),
-                "dv",
-            ),
-            S.alias(expo, "ex"),
-        ],
-        S.subquery(means, "b"),
-        where=S.and_(*valid),
+    summed = ["mu", "sc"]
+    sums: list[Expr] = [
+        S.alias(S.mul(fw.copy(), pw.copy()), "wt"),
+        S.alias(S.mul(fw.copy(), pw.copy(), y.copy()), "ac"),
+        S.alias(S.mul(fw.copy(), pw.copy(), mu.copy()), "ep"),
+        S.alias(_deviance(fam, fw, pw, y, mu), "dv"),
+        S.alias(expo, "ex"),
+    ]
+    if two is not None:
+        mu2 = S.col("mu2")
+        valid += [S.not_(S.is_null(mu2.copy())), S.not_(S.is_null(S.col("sc2")))]
+        in_range2 = two.family.mu_ok(mu2.copy(), two.link)
+        if in_range2 is not None:
+            valid.append(in_range2)
+        summed += ["mu2", "sc2"]
+        sums += [
+            S.alias(S.mul(fw.copy(), pw.copy(), mu2.copy()), "ep2"),
+            S.alias(_deviance(two.family, fw, pw, y, mu2), "dv2"),
+        ]
+    stage_b = S.select(means, S.subquery(inputs, "a"))
+    stage_c = S.select(
+        [*_cols(*carry, *summed), *sums], S.subquery(stage_b, "b"), where=S.and_(*valid)
     )
-    # stage d: the actual rate (the best ordering's key) and the null model's mean
+    # stage d: the actual rate (the best ordering's key), the log-ratio of the two scores
+    # (the double-lift table's key: no overflow where a ratio would) and the null model's mean
     ac, ex = S.col("ac"), S.col("ex")
     rate = S.case(
         [
@@ -264,11 +311,14 @@ def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
         ],
         S.num(0.0),
     )
-    kept = [*carry, "mu", "sc", "wt", "ac", "ep", "dv", "ex"]
+    kept = [*carry, *summed, "wt", "ac", "ep", "dv", "ex", *(["ep2", "dv2"] if two else [])]
     rows: list[Expr] = [*_cols(*kept), S.alias(rate, "rt")]
+    if two is not None:
+        rows.append(S.alias(_log_ratio(), "lr"))
+        kept.append("lr")
     if null is not None:
         rows.append(S.alias(_null_mean(plan, null), "n_mu"))
-    staged = S.select(rows, S.subquery(sums, "c"))
+    staged = S.select(rows, S.subquery(stage_c, "c"))
     if null is None or not null.step:
         return staged
     # stage e: dmu/deta and the variance at the null model's mean (one IRLS step of it)
@@ -282,6 +332,19 @@ def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
         ],
         S.subquery(staged, "d"),
     )
+
+
+def _deviance(fam: Family, fw: Expr, pw: Expr, y: Expr, mu: Expr) -> Expr:
+    """f pw d(y, mu) with the family's unit deviance (the mean clamped into its range)."""
+    return S.mul(fw.copy(), pw.copy(), fam.unit_deviance_sql(y.copy(), fam.clamp_mu_sql(mu)))
+
+
+def _log_ratio() -> Expr:
+    """ln(sc2) - ln(sc) where both scores are positive, else NULL (a gaussian score of 0 or
+    less has no ratio: such rows stay out of the double-lift table, and are counted)."""
+    sc, sc2 = S.col("sc"), S.col("sc2")
+    both = S.and_(S.gt(sc, S.num(0.0)), S.gt(sc2, S.num(0.0)))
+    return S.case([(both, S.sub(S.ln(sc2.copy()), S.ln(sc.copy())))])
 
 
 def _null_mean(plan: AssessPlan, null: NullModel) -> Expr:
@@ -355,7 +418,13 @@ def assess_query(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
     count = len(parts)
     rows = scored_rows(plan, null)
     # the key of each part in the grouped rows: the score, the rate, the mean, or a column's
-    src_key = {SCORE: S.col("sc"), BEST: S.col("rt"), MEAN: S.col("mu")}
+    src_key = {
+        SCORE: S.col("sc"),
+        BEST: S.col("rt"),
+        MEAN: S.col("mu"),
+        AGAINST: S.col("sc2"),
+        RATIO: S.col("lr"),
+    }
     keyed = [
         S.alias(src_key[p.role] if p.role in src_key else S.col(_key(i)), _key(i))
         for i, p in enumerate(parts)
@@ -364,13 +433,17 @@ def assess_query(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
         ("n", S.count_star()),
         ("nw", S.psum(S.col("fw"))),
         *((a, S.psum(S.col(a))) for a in ("wt", "ex", "ac", "ep", "dv")),
-        ("nu", S.sum_(S.flag(S.gt(S.col("nu"), exp.Literal.number(0))))),
+        ("nu", _unseen_rows("nu")),
     ]
+    read = ["fw", "wt", "ex", "ac", "ep", "dv", "nu"]
+    if plan.against is not None:
+        numbers += [("ep2", S.psum(S.col("ep2"))), ("dv2", S.psum(S.col("dv2")))]
+        numbers.append(("nu2", _unseen_rows("nu2")))
+        read += ["ep2", "dv2", "nu2"]
     if null is not None:
         numbers += [(a, S.psum(term)) for a, term in _null_terms(plan, null)]
     inner = S.select(
-        [*keyed, *(S.col(n) for n in ("fw", "wt", "ex", "ac", "ep", "dv", "nu"))]
-        + _null_inputs(plan, null),
+        [*keyed, *(S.col(n) for n in read)] + _null_inputs(plan, null),
         S.subquery(rows, "s"),
     )
     keys = [S.col(_key(i)) for i in range(count)]
@@ -460,6 +533,11 @@ def assess_query(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
         S.subquery(ranked, "rb"),
         where=S.le(S.col("rk"), exp.Literal.number(plan.max_levels + 1)),
     )
+
+
+def _unseen_rows(column: str) -> Expr:
+    """Rows with an unseen level (a positive count in ``column``)."""
+    return S.sum_(S.flag(S.gt(S.col(column), exp.Literal.number(0))))
 
 
 def _null_inputs(plan: AssessPlan, null: NullModel | None) -> list[Expr]:

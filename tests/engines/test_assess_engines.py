@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any
 
 import duckdb
+import numpy as np
 import pytest
 from engine_support import Loader, record_spread
 from numpy.testing import assert_allclose
@@ -24,17 +25,26 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))  # tests/: asses
 
 from assess_cases import (  # noqa: E402
     CASES,
+    CHALLENGERS,
+    PREDICTORS_B,
     SUM_RTOL,
+    drifted,
     fair_frames,
+    midpoint_bands,
     oracle,
     predictors,
+    randhie_frames,
     star_frames,
+    visits_oracle,
 )
 from sklearn.metrics import roc_auc_score  # noqa: E402
 
 import indb  # noqa: E402
 from indb.assessment import AssessResult  # noqa: E402
 from indb.errors import SpecError  # noqa: E402
+from indb.registry_append import open_registry  # noqa: E402
+from indb.retrain import EXIT_HELD, RetrainOutcome, retrain  # noqa: E402
+from indb.specfile import Gates, SpecFile  # noqa: E402
 
 #: sums over thousands of rows in another order (and PostgreSQL's exact numeric sums) agree
 #: to a few ulps per row; the band a tie group falls in is decided on exact cumulative sums
@@ -61,6 +71,13 @@ def fitted() -> dict[str, Any]:
             tol=1e-12,
             **case.fit,
         )
+    # the second model of a comparison: other predictors, the same family and offset
+    results["children_b"] = indb.fit(
+        f"SELECT {', '.join(PREDICTORS_B)}, children, years FROM fair_train",
+        db=con,
+        tol=1e-12,
+        **CHALLENGERS["children_b"].fit,
+    )
     con.close()
     return {"frames": frames, "results": results}
 
@@ -105,14 +122,16 @@ def _same(loader: Loader, a: AssessResult, ref: AssessResult, case: str) -> None
 
 
 def _reference(fitted: dict[str, Any], name: str, tmp_path: Path, **kw: Any) -> AssessResult:
-    """DuckDB's own assessment of the same recorded model (a registry file of its own)."""
+    """DuckDB's own assessment of the same recorded model (a registry file of its own; with
+    ``against``, that model recorded too)."""
     db = tmp_path / f"ref_{name}.duckdb"
     case = CASES[name]
     with duckdb.connect(str(db)) as con:
         con.register("frame", fitted["frames"][case.table][1])
         con.execute("CREATE TABLE hold AS SELECT * FROM frame")
         con.unregister("frame")
-    indb.deploy(fitted["results"][name], name, db=str(db), score_source="hold")
+    for model in (name, *([kw["against"]] if "against" in kw else [])):
+        indb.deploy(fitted["results"][model], model, db=str(db), score_source="hold")
     return indb.assess(name, on="hold", db=str(db), **kw)
 
 
@@ -186,3 +205,159 @@ def test_bad_input_is_refused_before_any_deviance(loader: Loader, fitted: dict[s
     # refused as the fit refuses it, where PostgreSQL's own ln would raise
     with pytest.raises(SpecError, match=r"offset expression 'ln\(years\)' is NaN or infinite"):
         run(f"SELECT rating, religious, age, 0.0 * years AS years, children FROM {table}")
+
+
+# -- a second model in the same scans (--against) -----------------------------------------------
+
+
+def test_against_and_double_lift(loader: Loader, fitted: dict[str, Any], tmp_path: Path) -> None:
+    """Both models recorded in the engine's registry and judged in the same scans: the same
+    figures and double-lift table as on DuckDB, and the double-lift sums of statsmodels'
+    predictions of both models (pandas, the grouping of ``assess_cases.midpoint_bands``)."""
+    tag = uuid.uuid4().hex[:8]
+    hold = fitted["frames"]["fair"][1]
+    table = loader.load(f"fair_hold_{tag}", hold)
+    schema = f"reg_{tag}"
+    for name in ("children", "children_b"):
+        indb.deploy(
+            fitted["results"][name],
+            f"{name}_{tag}",
+            db=loader.engine,
+            registry_schema=schema,
+            score_source=table,
+        )
+    kw = {"by": ["religious"], "bands": 8}
+    a = indb.assess(
+        f"children_{tag}",
+        on=table,
+        db=loader.engine,
+        registry_schema=schema,
+        against=f"children_b_{tag}",
+        record=True,
+        **kw,
+    )
+    ref = _reference(fitted, "children", tmp_path, against="children_b", **kw)
+    # --record: a row per version judged, appended on Spark, each naming the other
+    reg = open_registry(loader.engine, schema)
+    kept = reg.assessments(f"children_{tag}") + reg.assessments(f"children_b_{tag}")
+    assert [(r["compared_model"], r["purpose"], r["n_used"]) for r in kept] == [
+        (f"children_b_{tag}", "assess", a.rows),
+        (f"children_{tag}", "assess", a.rows),
+    ]
+    assert_allclose([r["deviance"] for r in kept], [a.deviance, a.against.deviance], rtol=1e-15)
+    _same(loader, a, ref, "children against")
+    assert a.scans == 2
+    for key in ("expected", "deviance", "gini", "gini_normalized", "deviance_explained"):
+        got, want = getattr(a.against, key), getattr(ref.against, key)
+        assert_allclose(got, want, rtol=SAME_RTOL, err_msg=key)
+        record_spread(loader.name, f"against {key}", abs(got - want) / abs(want), "children")
+    rows = [(r.band, r.rows) for r in a.ratio_bands]
+    assert rows == [(r.band, r.rows) for r in ref.ratio_bands]
+    for key in ("expected", "expected_against", "actual", "ratio_low", "ratio_high"):
+        assert_allclose(
+            [getattr(r, key) for r in a.ratio_bands],
+            [getattr(r, key) for r in ref.ratio_bands],
+            rtol=1e-11,
+            err_msg=key,
+        )
+    # the outside oracle: statsmodels' predictions of both models, summed with pandas
+    train = fitted["frames"]["fair"][0]
+    one = oracle(CASES["children"], fitted["results"]["children"], train, hold)
+    two = oracle(CHALLENGERS["children_b"], fitted["results"]["children_b"], train, hold)
+    band = midpoint_bands(np.log(two.score) - np.log(one.score), one.exposure, 8)
+    assert [r.rows for r in a.ratio_bands] == np.bincount(band)[1:].tolist()
+    assert_allclose(
+        [r.expected_against for r in a.ratio_bands], np.bincount(band, two.mu)[1:], rtol=SUM_RTOL
+    )
+    assert_allclose(
+        a.against.deviance, CASES["children"].family.deviance(one.y, two.mu), rtol=SUM_RTOL
+    )
+
+
+# -- holdout gates of a scheduled refit -----------------------------------------------------------
+
+HOLDOUT_GATES = {
+    "max_deviance_per_row_increase": 0.0,
+    "max_holdout_deviance_increase": 0.01,
+    "max_gini_drop": 0.01,
+    "max_level_ae_deviation": 0.10,
+    "min_level_exposure": 500.0,
+}
+
+
+def _visits_spec(source: str, holdout: str, name: str, schema: str, db: Any) -> SpecFile:
+    model = {
+        "source": source,
+        "response": "mdvis",
+        "family": "poisson",
+        "exclude": ["row_id", "fmde", "hlthf", "hlthp"],
+        "categorical": ["idp", "hlthg"],
+        "tol": 1e-12,
+    }
+    return SpecFile(
+        path="visits.toml",
+        model=model,
+        deploy={"name": name, "registry_schema": schema},
+        engine={"db": db},
+        gates=Gates(holdout=holdout, holdout_by=["hlthp"], **HOLDOUT_GATES),
+    )
+
+
+def _two_retrains(load: Any, db: Any, tag: str) -> tuple[RetrainOutcome, RetrainOutcome]:
+    """A first version on the clean training rows, then a refit on the drifted ones."""
+    train, hold = randhie_frames()
+    clean, bad, holdout = (
+        load(f"visits_{tag}", train),
+        load(f"visits_drift_{tag}", drifted(train)),
+        load(f"visits_hold_{tag}", hold),
+    )
+    name, schema = f"doctor_visits_{tag}", f"reg_{tag}"
+    first = retrain(_visits_spec(clean, holdout, name, schema, db))
+    second = retrain(_visits_spec(bad, holdout, name, schema, db))
+    return first, second
+
+
+def test_holdout_gates_hold_a_drifted_refit(loader: Loader, tmp_path: Path) -> None:
+    """The refit on drifted rows improves its in-sample deviance per row and is held by
+    the holdout gates (exit 6) on every engine, with DuckDB's figures and statsmodels'."""
+    tag = uuid.uuid4().hex[:8]
+    first, second = _two_retrains(loader.load, loader.engine, tag)
+    ref_db = duckdb.connect(str(tmp_path / "ref.duckdb"))
+
+    def load_ref(table: str, frame: Any) -> str:
+        ref_db.register("frame", frame)
+        ref_db.execute(f'CREATE TABLE "{table}" AS SELECT * FROM frame')
+        ref_db.unregister("frame")
+        return table
+
+    ref_first, ref_second = _two_retrains(load_ref, ref_db, tag)
+    assert (first.status, second.status, second.exit_code) == ("first", "held", EXIT_HELD)
+    assert [(c.gate, c.passed, c.detail) for c in second.checks] == [
+        (c.gate, c.passed, c.detail) for c in ref_second.checks
+    ]
+    failed = {c.gate for c in second.checks if not c.passed}
+    assert {"max_holdout_deviance_increase", "max_level_ae_deviation"} <= failed
+    assert "max_deviance_per_row_increase" not in failed
+    for got, want in zip(second.checks, ref_second.checks, strict=True):
+        assert_allclose(got.value, want.value, rtol=1e-9, err_msg=got.gate)
+    a, ref = second.holdout, ref_second.holdout
+    assert a.scans == 2 and (a.version, a.against.version) == (2, 1)
+    for key in ("deviance", "gini", "expected"):
+        assert_allclose(getattr(a, key), getattr(ref, key), rtol=SAME_RTOL, err_msg=key)
+        assert_allclose(
+            getattr(a.against, key), getattr(ref.against, key), rtol=SAME_RTOL, err_msg=key
+        )
+    # statsmodels on the same training rows: the holdout deviance of both versions
+    train, hold = randhie_frames()
+    assert_allclose(
+        a.against.deviance, visits_oracle(train, hold, first.result)["deviance"], rtol=1e-7
+    )
+    assert_allclose(
+        a.deviance, visits_oracle(drifted(train), hold, second.result)["deviance"], rtol=1e-7
+    )
+    # the registry keeps each assessment, on every engine (Spark: appended rows)
+    reg = open_registry(loader.engine, f"reg_{tag}")
+    rows = reg.assessments(f"doctor_visits_{tag}")
+    got = {(r["version"], r["compared_version"]) for r in rows}
+    assert len(rows) == 3 and got == {(1, None), (1, 2), (2, 1)}
+    assert reg.model(f"doctor_visits_{tag}")["live_version"] == 1

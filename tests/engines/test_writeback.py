@@ -589,7 +589,14 @@ def test_printed_sql_on_spark(duck_model: Any, spark_local: Any, tmp_path: Path)
 # -- the reviewed registry DDL files run on their engines ---------------------------------------
 
 SQL_DIR = Path(__file__).resolve().parents[2] / "sql"
-REGISTRY_NAMES = {"model", "model_version", "version_term", "version_iteration", "registry_event"}
+REGISTRY_NAMES = {
+    "model",
+    "model_version",
+    "version_term",
+    "version_iteration",
+    "registry_event",
+    "version_assessment",
+}
 
 
 def statements(dialect: str) -> list[str]:

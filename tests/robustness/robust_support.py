@@ -31,7 +31,14 @@ SM_FIT = {"tol_criterion": "params", "atol": 1e-14, "rtol": 1e-13, "maxiter": 20
 # the registry's schema and tables as the README documents them (checked by name, not read
 # from indb, so a renamed or extra table shows up as a difference)
 DEFAULT_REGISTRY = "indb_registry"
-REGISTRY_TABLES = ("model", "model_version", "version_term", "version_iteration", "registry_event")
+REGISTRY_TABLES = (
+    "model",
+    "model_version",
+    "version_term",
+    "version_iteration",
+    "registry_event",
+    "version_assessment",
+)
 FAMILIES = {
     "gaussian": sm.families.Gaussian,
     "poisson": sm.families.Poisson,
