@@ -229,6 +229,7 @@ class Design:
                     "label": v.label,
                     "numerics": list(v.numerics),
                     "basis": v.basis,
+                    "centered": v.centered,
                     "center": v.center,
                     "scale": v.scale,
                 }
@@ -242,6 +243,7 @@ class Design:
                     "levels": list(c.levels),
                     "numerics": list(self.values[c.value].numerics),
                     "basis": self.values[c.value].basis,
+                    "value": c.value,
                 }
                 for c in self.columns
             ],

@@ -52,6 +52,37 @@ class Coefficient:
 
 
 @dataclass(frozen=True)
+class InverseEntries:
+    """(X'WX)^-1 at the pairs of design columns one row can use together
+    (:func:`indb.colpairs.compatible_pairs`): ``values[i]`` at (``rows[i]``, ``cols[i]``),
+    rows <= cols, 0 at aliased columns.
+
+    On the fit's standardized design (each value centred and scaled as ``design["values"]``
+    says) and at unit dispersion, on the source's scale: a row's leverage is its working
+    weight times x'Ax there, whatever the covariance kind of the standard errors.
+    """
+
+    rows: np.ndarray
+    cols: np.ndarray
+    values: np.ndarray
+
+    def to_dict(self) -> dict[str, list]:
+        return {
+            "rows": self.rows.tolist(),
+            "cols": self.cols.tolist(),
+            "values": [_num(v) for v in self.values.tolist()],
+        }
+
+    @staticmethod
+    def from_dict(d: dict[str, list]) -> InverseEntries:
+        return InverseEntries(
+            np.asarray(d["rows"], dtype=np.int64),
+            np.asarray(d["cols"], dtype=np.int64),
+            np.array([math.nan if v is None else float(v) for v in d["values"]], dtype=float),
+        )
+
+
+@dataclass(frozen=True)
 class IterationRecord:
     """What one IRLS iteration (one aggregate scan) produced."""
 
@@ -116,6 +147,9 @@ class FitResult:
     design: dict[str, Any] = field(default_factory=dict)
     fingerprint: dict[str, Any] = field(default_factory=dict)
     deployment: dict[str, Any] = field(default_factory=dict)
+    #: (X'WX)^-1 where the diagnostics view's leverage reads it (None: more pairs than
+    #: ``indb.colpairs.MAX_PAIRS``, or a result stored before results carried it)
+    inverse_entries: InverseEntries | None = None
 
     # -- the model as objects ------------------------------------------------------------
     @property
@@ -210,6 +244,8 @@ class FitResult:
             "design": self.design,
             "fingerprint": self.fingerprint,
         }
+        if self.inverse_entries is not None:
+            out["inverse_entries"] = self.inverse_entries.to_dict()
         if self.deployment:
             out["deployment"] = dict(self.deployment)
             out["scoring_view"] = self.deployment.get("scoring_view")
@@ -292,6 +328,9 @@ class FitResult:
             spec=d.get("spec", {}),
             design=d.get("design", {}),
             fingerprint=d.get("fingerprint", {}),
+            inverse_entries=(
+                InverseEntries.from_dict(d["inverse_entries"]) if d.get("inverse_entries") else None
+            ),
         )
 
 
