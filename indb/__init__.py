@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from indb import report as _report  # noqa: F401  (registers str(result), the text report)
-from indb.api import deploy, fit, scoring_sql
+from indb.api import deploy, fit, nested, scoring_sql
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
 from indb.engines.duckdb import DuckDBEngine
@@ -47,6 +47,7 @@ __all__ = [
     "connect",
     "deploy",
     "fit",
+    "nested",
     "scoring_sql",
     "__version__",
 ]

@@ -110,4 +110,3 @@ def _group_pairs(
         r += [j] * len(hits)
         c += hits
     return np.asarray(r, dtype=np.int64), np.asarray(c, dtype=np.int64)
-

@@ -90,7 +90,9 @@ def quadratic_form_sql(
     lookups: list[tuple[exp.Values, Expr]] = []
     for t, (union, cells) in enumerate(tables.items()):
         alias = f"{name}{t}"
-        pairs = sorted({p for cell in cells.values() for p in cell}, key=lambda p: [order[v] for v in p])
+        pairs = sorted(
+            {p for cell in cells.values() for p in cell}, key=lambda p: [order[v] for v in p]
+        )
         keys = [f"{RESERVED_PREFIX}l{i}" for i in range(len(union))]
         entries = [f"{RESERVED_PREFIX}e{i}" for i in range(len(pairs))]
         table_rows = [
@@ -104,7 +106,10 @@ def quadratic_form_sql(
             alias=exp.TableAlias(this=S.ident(alias), columns=[S.ident(c) for c in keys + entries]),
         )
         on = S.and_(
-            *(S.eq(S.level_text(S.col(f)), S.col(k, alias)) for f, k in zip(union, keys, strict=True))
+            *(
+                S.eq(S.level_text(S.col(f)), S.col(k, alias))
+                for f, k in zip(union, keys, strict=True)
+            )
         )
         lookups.append((table, on))
         for p, e in zip(pairs, entries, strict=True):

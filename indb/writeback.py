@@ -20,8 +20,8 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.engines.backends import dialect_for
 from indb.colpairs import PairColumn, compatible_pairs
+from indb.engines.backends import dialect_for
 from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError
 from indb.quadform import QuadraticForm, quadratic_form_sql
@@ -98,11 +98,19 @@ def _text(column: str) -> Expr:
 
 
 def _value(c: _Col, knots: dict[str, list[float]]) -> Expr | None:
-    if not c.numerics:
+    return value_sql(c.numerics, c.basis, knots)
+
+
+def value_sql(
+    numerics: Sequence[str], basis: int | None, knots: dict[str, list[float]]
+) -> Expr | None:
+    """A design value on the source's scale: the product of ``numerics``, or spline basis
+    function ``basis`` of the one numeric (None: the constant 1)."""
+    if not numerics:
         return None
-    if c.basis is not None:
-        return spline_basis_sql(S.as_double(S.col(c.numerics[0])), knots[c.numerics[0]], c.basis)
-    return S.mul(*(S.as_double(S.col(n)) for n in c.numerics))
+    if basis is not None:
+        return spline_basis_sql(S.as_double(S.col(numerics[0])), knots[numerics[0]], basis)
+    return S.mul(*(S.as_double(S.col(n)) for n in numerics))
 
 
 def _indicator(c: _Col) -> Expr | None:
@@ -129,14 +137,20 @@ def written_in(res: FitResult, default: Dialect) -> Dialect:
 def offset_sql(res: FitResult, dialect: Dialect) -> Expr | None:
     """The stored offset, read in the dialect it was written in, for ``dialect``
     (:func:`indb.portable.portable_expression`); None without an offset."""
+    return user_expression(res, "offset", dialect)
+
+
+def user_expression(res: FitResult, key: str, dialect: Dialect) -> Expr | None:
+    """The stored expression ``spec[key]`` (offset, weight, frequency_weight, trials), read
+    in the dialect it was written in, for ``dialect``; None when the model has none."""
     from indb.portable import portable_expression
 
-    offset = res.spec.get("offset")
-    if not offset:
+    text = res.spec.get(key)
+    if not text:
         return None
     source = written_in(res, dialect)
     types = res.design.get("column_types")
-    return portable_expression(offset, "offset", source, dialect, types)
+    return portable_expression(text, key, source, dialect, types)
 
 
 def eta_sql(res: FitResult, dialect: Dialect, *, include_offset: bool = True) -> Expr:
@@ -197,9 +211,7 @@ def pair_columns(res: FitResult, value_key: str = "raw") -> list[PairColumn]:
     if value_key == "raw":
         return [PairColumn(c.factors, c.levels, (c.numerics, c.basis)) for c in _columns(res)]
     stored = res.design.get("columns") or []
-    return [
-        PairColumn(tuple(c["factors"]), tuple(c["levels"]), int(c["value"])) for c in stored
-    ]
+    return [PairColumn(tuple(c["factors"]), tuple(c["levels"]), int(c["value"])) for c in stored]
 
 
 def se_eta_form(res: FitResult) -> QuadraticForm:
@@ -334,6 +346,7 @@ REGISTRY_TABLES: dict[str, list[tuple[str, str]]] = {
         ("macro_name", "TEXT"),
         ("score_source", "TEXT"),
         ("intervals", "BOOLEAN"),
+        ("diagnostics", "BOOLEAN"),
     ],
     "model_version": [
         ("model_name", "TEXT"),
@@ -412,6 +425,22 @@ RENAMED_REGISTRY_COLUMNS: dict[str, dict[str, str]] = {
     "model_version": {"df_resid": "residual_df"},
     "version_term": {"statistic": "wald", "p_value": "p_two_sided"},
 }
+
+
+#: Registry columns added since indb 0.2.0: ``{table: [(column, type), ...]}``;
+#: :meth:`indb.registry.Registry.ensure` adds them to a registry written before.
+ADDED_REGISTRY_COLUMNS: dict[str, list[tuple[str, str]]] = {
+    "model": [("diagnostics", "BOOLEAN")],
+}
+
+
+def add_column(schema: str, table: str, column: str, kind: str) -> exp.Alter:
+    """ALTER TABLE schema.table ADD COLUMN column kind."""
+    return exp.Alter(
+        this=table_ref(schema, table),
+        kind="TABLE",
+        actions=[exp.ColumnDef(this=S.ident(column), kind=exp.DataType.build(kind))],
+    )
 
 
 def rename_column(schema: str, table: str, old: str, new: str) -> exp.Alter:
