@@ -34,9 +34,9 @@ from collections.abc import Sequence
 
 from sqlglot import exp
 
+from indb import colpairs
 from indb import sqlexpr as S
 from indb import writeback as W
-from indb.colpairs import MAX_PAIRS, compatible_pairs
 from indb.design import RESERVED_PREFIX
 from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError
@@ -77,9 +77,9 @@ def unsupported(res: FitResult) -> str | None:
     described = bool(stored) and all("value" in c for c in stored)
     if described and res.inverse_entries is not None:
         return None
-    if described and compatible_pairs(W.pair_columns(res, "design")) is None:
+    if described and colpairs.compatible_pairs(W.pair_columns(res, "design")) is None:
         return (
-            f"its leverage needs (X'WX)^-1 at more than {MAX_PAIRS:,} pairs of design "
+            f"its leverage needs (X'WX)^-1 at more than {colpairs.MAX_PAIRS:,} pairs of design "
             "columns (factors of many levels crossed with each other or with many other "
             "columns); merge levels or leave a factor out"
         )
@@ -243,8 +243,12 @@ def _nonzero(e: Expr) -> Expr:
 
 
 def _signed_root(sign_of: Expr, square: Expr) -> Expr:
+    """sign(``sign_of``) sqrt(``square``), NULL where ``sign_of`` is: no ELSE branch, since
+    GREATEST(NULL, 0) would make a row the fit did not use a 0."""
     root = S.sqrt(S.greatest(square, S.num(0.0)))
-    return S.case([(S.lt(sign_of, S.num(0.0)), S.neg(root))], root.copy())
+    return S.case(
+        [(S.lt(sign_of, S.num(0.0)), S.neg(root)), (S.ge(sign_of.copy(), S.num(0.0)), root.copy())]
+    )
 
 
 def _cooks(res: FitResult, pearson2: Expr, h: Expr) -> Expr:

@@ -335,6 +335,8 @@ class Registry(ViewPlacement):
                 f"promote {name} {version} --view-schema {view_schema})"
             )
             model_row["view_schema"] = current["view_schema"]
+        if not promote and current is not None and current.get("live_version") is not None:
+            notes += self._keep_live_diagnostics(name, version, model_row, current)
         status = "live" if promote else "held"
         vrow = {
             "model_name": name,
@@ -438,6 +440,22 @@ class Registry(ViewPlacement):
             tuple(notes),
             self.diagnostics_label(model_row if promote else (current or {})),
         )
+
+    def _keep_live_diagnostics(
+        self, name: str, version: int, model_row: dict[str, Any], current: dict[str, Any]
+    ) -> list[str]:
+        """A held version leaves the live diagnostics view as it is: the model row says
+        whether there is one (its drop and the check for foreign objects read it)."""
+        live = bool(current.get("diagnostics"))
+        if bool(model_row.get("diagnostics")) == live:
+            return []
+        model_row["diagnostics"] = live
+        return [
+            f"diagnostics={not live} was not applied: version {version} of {name!r} is held, "
+            f"and the live version {current['live_version']} keeps "
+            f"{'its' if live else 'no'} diagnostics view; refit with promote=True (CLI: "
+            f"--promote) and diagnostics={not live} to change it"
+        ]
 
     def _live_result(self, name: str, current: dict[str, Any] | None) -> FitResult | None:
         """The live version's result (None without a model or a live version)."""
