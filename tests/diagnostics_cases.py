@@ -104,10 +104,9 @@ def fair_counts() -> pd.DataFrame:
 def star98() -> pd.DataFrame:
     # statsmodels.datasets.star98: 303 California school districts, NABOVE of NABOVE + NBELOW
     # pupils above the national median in maths
-    d = _sm("star98")
-    return d[["NABOVE", "NBELOW", "LOWINC", "PERASIAN", "PERBLACK", "PERHISP"]].assign(
-        row_id=np.arange(len(d), dtype=np.int64)
-    )
+    # (lower-case names: the trials expression is written unquoted, which PostgreSQL folds)
+    d = _sm("star98")[["NABOVE", "NBELOW", "LOWINC", "PERASIAN", "PERBLACK", "PERHISP"]]
+    return d.rename(columns=str.lower).assign(row_id=np.arange(len(d), dtype=np.int64))
 
 
 def grunfeld() -> pd.DataFrame:
@@ -213,17 +212,17 @@ CASES = [
         "binomial-grouped-cloglog-star98",
         star98,
         {
-            "response": "NABOVE",
+            "response": "nabove",
             "family": "binomial",
             "link": "cloglog",
-            "trials": "NABOVE + NBELOW",
-            "predictors": ["LOWINC", "PERASIAN", "PERBLACK", "PERHISP"],
+            "trials": "nabove + nbelow",
+            "predictors": ["lowinc", "perasian", "perblack", "perhisp"],
         },
         lambda: sm.families.Binomial(links.CLogLog()),
         observed=False,
         trials=lambda f: (
-            f["NABOVE"].to_numpy(float),
-            (f["NABOVE"] + f["NBELOW"]).to_numpy(float),
+            f["nabove"].to_numpy(float),
+            (f["nabove"] + f["nbelow"]).to_numpy(float),
         ),
     ),
     DiagCase(
