@@ -195,6 +195,21 @@ def test_rows_the_fit_did_not_use_get_null(tmp_path: Path) -> None:
     compare(used, oracle(case, sm_model(case, frame, res), res.estimates), SAME_BETA_RTOL)
 
 
+def test_levels_with_quotes_backslashes_and_unicode(tmp_path: Path) -> None:
+    # statsmodels.datasets.grunfeld with two firm names rewritten: the lookup tables' level
+    # literals must match the rows' levels on the text the fit saw
+    base = CASE["gamma-log-firm-grunfeld"]
+    names = {"General Electric": "Gen. 'Electric' \\ Co.", "US Steel": 'U.S. "Steel" Über'}
+    frame = base.frame().assign(firm=lambda f: f["firm"].replace(names))
+    case = DiagCase("quoted", lambda: frame, base.fit_kwargs, base.family, observed=False)
+    path = database(tmp_path, frame)
+    res = fit_case(case, path, name="m", diagnostics=True)
+    assert {"firm=Gen. 'Electric' \\ Co.", 'firm=U.S. "Steel" Über'} <= set(res.terms)
+    compare(
+        view_rows(path), oracle(case, sm_model(case, frame, res), res.estimates), SAME_BETA_RTOL
+    )
+
+
 def test_weights_and_response_far_from_one(tmp_path: Path) -> None:
     # The fit divides prior weights near 1e6 and a response near 1e9 by powers of two
     # internally (design.Scaling); the stored (X'WX)^-1 is mapped back to the source's scale
