@@ -83,7 +83,10 @@ def unsupported(res: FitResult) -> str | None:
             "columns (factors of many levels crossed with each other or with many other "
             "columns); merge levels or leave a factor out"
         )
-    return "the version was stored without what its leverage needs (fitted by an earlier indb)"
+    return (
+        "the result carries no (X'WX)^-1 for its leverage (a version stored by an earlier indb, "
+        "or a result read back from the JSON output)"
+    )
 
 
 def check_supported(res: FitResult, model: str) -> None:

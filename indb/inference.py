@@ -207,9 +207,11 @@ def inverse_entries(design: Design, sol: solver.Solution, sc: Scaling) -> Invers
     if pairs is None:
         return None
     rows, cols = pairs
-    e = sc.log2_deviance_factor
+    # in powers of two: d and coef_factor^2 can each be far outside the doubles (a response
+    # near 1e200) where their ratio is 1
+    e = sc.log2_deviance_factor - 2.0 * math.log2(sc.coef_factor)
     with np.errstate(over="ignore", under="ignore"):
-        factor = float(np.ldexp(1.0, round(e)) * 2.0 ** (e - round(e))) / sc.coef_factor**2
+        factor = float(np.ldexp(1.0, round(e)) * 2.0 ** (e - round(e)))
         values = sol.inv_info.entries(rows, cols) * factor
     return InverseEntries(rows, cols, values)
 

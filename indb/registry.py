@@ -363,7 +363,7 @@ class Registry(ViewPlacement):
             "spec_hash": h,
             "spec_json": json.dumps(result.spec, sort_keys=True),
             "fingerprint_json": json.dumps(_jsonable(result.fingerprint), sort_keys=True),
-            "result_json": json.dumps(result.to_dict(), allow_nan=False),
+            "result_json": json.dumps(result.to_dict(storage=True), allow_nan=False),
             "package_version": __version__,
             "parent_version": parent_version,
             "note": note,

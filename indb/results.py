@@ -200,8 +200,11 @@ class FitResult:
         render = TEXT_RENDERER.get("report")
         return render(self) if render is not None else repr(self)
 
-    def to_dict(self) -> dict[str, Any]:
-        """A JSON-ready dictionary (non-finite numbers become ``None``)."""
+    def to_dict(self, *, storage: bool = False) -> dict[str, Any]:
+        """A JSON-ready dictionary (non-finite numbers become ``None``).
+
+        ``storage=True`` (a registry version) adds what only the write-back reads:
+        ``inverse_entries``, thousands of numbers for a model of many levels."""
         out: dict[str, Any] = {
             "family": self.family,
             "link": self.link,
@@ -244,7 +247,7 @@ class FitResult:
             "design": self.design,
             "fingerprint": self.fingerprint,
         }
-        if self.inverse_entries is not None:
+        if storage and self.inverse_entries is not None:
             out["inverse_entries"] = self.inverse_entries.to_dict()
         if self.deployment:
             out["deployment"] = dict(self.deployment)

@@ -228,6 +228,18 @@ def test_weights_and_response_far_from_one(tmp_path: Path) -> None:
     compare(view_rows(path), oracle(case, sm_model(case, frame, res), res.estimates), 1e-8)
 
 
+def test_gaussian_response_rescaled_and_shifted(tmp_path: Path) -> None:
+    # A Gaussian identity response near 1e13 with a spread near 1e12 is centred and divided by
+    # a power of two inside the fit (the coefficients scale with it, coef_factor); the stored
+    # (X'WX)^-1 is the source's all the same
+    base = CASE["gaussian-sex-by-bmi-diabetes"]
+    frame = base.frame().assign(target=lambda f: 1e13 + 1e10 * f["target"])
+    case = DiagCase("gaussian-big", lambda: frame, base.fit_kwargs, base.family)
+    path = database(tmp_path, frame)
+    res = fit_case(case, path, name="m", diagnostics=True)
+    compare(view_rows(path), oracle(case, sm_model(case, frame, res), res.estimates), 1e-8)
+
+
 # -- deployment ---------------------------------------------------------------------------------
 
 
