@@ -40,7 +40,7 @@ from indb import writeback as W
 from indb.design import RESERVED_PREFIX
 from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError
-from indb.quadform import quadratic_form_sql
+from indb.quadform import QuadraticForm, quadratic_form_sql
 from indb.results import FitResult
 from indb.sqlexpr import Expr
 
@@ -112,13 +112,26 @@ def _c(name: str) -> exp.Column:
 
 
 def diagnostics_query(
-    res: FitResult, dialect: Dialect, source: Expr, source_columns: Sequence[str]
+    res: FitResult,
+    dialect: Dialect,
+    source: Expr,
+    source_columns: Sequence[str],
+    *,
+    model: str = "",
 ) -> exp.Select:
     """SELECT the training source's columns plus :data:`COLUMNS` (see the module notes).
 
     ``source`` is the training source's relation and ``source_columns`` its columns, in
-    order (the view lists them by name, leaving out the internal columns of its stages).
+    order (the view lists them by name, leaving out the internal columns of its stages);
+    ``model`` names the model in messages.
+
+    Raises
+    ------
+    SpecError
+        When the result cannot give the view (:func:`unsupported`) or the source has a
+        column of one of :data:`COLUMNS`' names.
     """
+    check_supported(res, model)
     clash = sorted(set(COLUMNS) & set(source_columns))
     if clash:
         raise SpecError(
@@ -179,10 +192,11 @@ def diagnostics_query(
     return S.select(out, S.subquery(weights, "d4"))
 
 
-def _leverage_form(res: FitResult):
+def _leverage_form(res: FitResult) -> QuadraticForm:
     """x'(X'WX)^-1 x on the fit's standardized design, through the categorical blocks."""
     entries = res.inverse_entries
-    assert entries is not None  # check_supported came first
+    if entries is None:  # diagnostics_query checked it
+        raise SpecError("this result carries no (X'WX)^-1 for the leverage")
     knots = res.design.get("knots", {})
     multipliers: dict[int, Expr | None] = {0: None}
     for i, v in enumerate(res.design.get("values", []), start=1):

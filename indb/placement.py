@@ -177,8 +177,8 @@ class ViewPlacement:
             # the diagnostics view is this model's own only where its live version has one
             checks.append((DG.view_name(view), None))
         found: list[tuple[str, str]] = []
-        for name_, macro in checks:
-            for obj in self._existing(schema, name_, macro):
+        for object_name, macro in checks:
+            for obj in self._existing(schema, object_name, macro):
                 if obj not in found:
                     found.append(obj)
         if found:
@@ -283,7 +283,6 @@ class ViewPlacement:
             if had and live.get("diagnostics") and self._same_place(live, model_row):
                 return [self.d.render(W.drop_view(schema, view))]
             return []  # (a move dropped it with the other objects at the old place)
-        DG.check_supported(result, name)
         source = Source.parse(result.spec["source"]["text"])
         rel = self.d.relation(source)
         try:
@@ -295,7 +294,7 @@ class ViewPlacement:
                 "source readable again"
             ) from err
         cols = [c for c, _ in described]
-        query = DG.diagnostics_query(result, self.d, rel, cols)
+        query = DG.diagnostics_query(result, self.d, rel, cols, model=name)
         create = W.create_view(schema, view, query)
         return self.d.replace_view(create, [*cols, *DG.COLUMNS], self._columns_of(create.this))
 

@@ -565,12 +565,12 @@ class Registry(ViewPlacement):
     def nested(self, small: str, big: str) -> NestedTest:
         """The deviance test of model ``small`` within model ``big`` (each ``NAME``, its
         live version, or ``NAME:VERSION``): same rows, ``small``'s terms among ``big``'s."""
-        results = []
+        found = []
         for ref in (small, big):
             name, version = parse_reference(ref)
-            results.append((f"{name}:{self._version_row(name, version)['version']}", name, version))
-        (ls, ns, vs), (lb, nb, vb) = results
-        return nested_test(ls, self.load(ns, vs), lb, self.load(nb, vb))
+            row = self._version_row(name, version)
+            found += [f"{name}:{row['version']}", self._result(row)]
+        return nested_test(*found)
 
     def check_model_name(self, name: str) -> str:
         """Refuse a model name that is not a plain name, or whose scoring view or macro

@@ -231,7 +231,11 @@ def se_eta_form(res: FitResult) -> QuadraticForm:
     cov = np.nan_to_num(np.asarray(res.covariance, dtype=float), nan=0.0)
     pcs = pair_columns(res)
     pairs = compatible_pairs(pcs)
-    assert pairs is not None  # p <= MAX_SE_TERMS columns have at most p (p + 1) / 2 pairs
+    if pairs is None:  # not with p <= MAX_SE_TERMS: at most p (p + 1) / 2 pairs
+        raise SpecError(
+            "intervals: the standard error's quadratic form of this model needs more pairs of "
+            "coefficients than indb writes into a view; score without intervals"
+        )
     rows, cols = pairs
     knots = res.design.get("knots", {})
     multipliers = {pc.value: _value(c, knots) for pc, c in zip(pcs, columns, strict=True)}
