@@ -32,6 +32,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 
+import numpy as np
 from sqlglot import exp
 
 from indb import colpairs
@@ -40,7 +41,7 @@ from indb import writeback as W
 from indb.design import RESERVED_PREFIX
 from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError
-from indb.quadform import QuadraticForm, quadratic_form_sql
+from indb.quadform import Linear, QuadraticForm, quadratic_form_sql
 from indb.results import FitResult
 from indb.sqlexpr import Expr
 
@@ -139,17 +140,21 @@ def diagnostics_query(
             "adds; rename them in the source (a view over it) to deploy with diagnostics"
         )
     fam, link = res.family_object, res.link_object
-    form = _leverage_form(res)
+    form = _row_form(res)
+    eta = form.linear if form.linear is not None else S.num(0.0)
+    offset = W.offset_sql(res, dialect)
+    if offset is not None:
+        eta = S.add(S.as_double(offset), eta)
     src = source.copy()
     src.set("alias", exp.TableAlias(this=S.ident(W.SRC)))
     first = S.select(
         [
             exp.Column(this=exp.Star(), table=S.ident(W.SRC)),
-            S.alias(W.eta_sql(res, dialect), _internal("eta")),
+            S.alias(eta, _internal("eta")),
             S.alias(form.value, _internal("q")),
             S.alias(_response(res, dialect), _internal("y")),
             S.alias(_prior_weight(res, dialect), _internal("pw")),
-            S.alias(S.flag(_kept(res, dialect)), _internal("kept")),
+            S.alias(S.flag(_kept(res, dialect, form.known)), _internal("kept")),
         ],
         src,
     )
@@ -192,25 +197,32 @@ def diagnostics_query(
     return S.select(out, S.subquery(weights, "d4"))
 
 
-def _leverage_form(res: FitResult) -> QuadraticForm:
-    """x'(X'WX)^-1 x on the fit's standardized design, through the categorical blocks."""
+def _row_form(res: FitResult) -> QuadraticForm:
+    """x'(X'WX)^-1 x on the fit's standardized design, through the categorical blocks, with
+    x'beta on the original one (eta less the offset: one lookup per factor set instead of a
+    CASE of one branch per level) and whether every level of the row is a known one."""
     entries = res.inverse_entries
     if entries is None:  # diagnostics_query checked it
         raise SpecError("this result carries no (X'WX)^-1 for the leverage")
     knots = res.design.get("knots", {})
-    multipliers: dict[int, Expr | None] = {0: None}
+    standardized: dict[int, Expr | None] = {0: None}
+    original: dict[int, Expr | None] = {0: None}
     for i, v in enumerate(res.design.get("values", []), start=1):
         raw = W.value_sql(v["numerics"], v["basis"], knots)
+        original[i] = raw
         if v["center"]:  # 0 for a value the fit did not centre
-            raw = S.sub(raw, S.num(v["center"]))
-        multipliers[i] = S.div(raw, S.num(v["scale"])) if v["scale"] != 1.0 else raw
+            raw = S.sub(raw.copy(), S.num(v["center"]))
+        standardized[i] = S.div(raw, S.num(v["scale"])) if v["scale"] != 1.0 else raw
+    beta = np.array([0.0 if c.aliased else c.estimate for c in res.coefficients])
     return quadratic_form_sql(
         W.pair_columns(res, "design"),
         entries.rows,
         entries.cols,
         entries.values,
-        multipliers,
+        standardized,
         LOOKUP,
+        linear=Linear(np.nan_to_num(beta), original),
+        levels={f["column"]: f["levels"] for f in res.design.get("factors", [])},
     )
 
 
@@ -240,8 +252,9 @@ def _prior_weight(res: FitResult, dialect: Dialect) -> Expr:
     return S.mul(*parts) if parts else S.num(1.0)
 
 
-def _kept(res: FitResult, dialect: Dialect) -> Expr:
-    """The rows the fit used: no NULL in a model column or expression, no unseen level."""
+def _kept(res: FitResult, dialect: Dialect, known: Expr | None) -> Expr:
+    """The rows the fit used: no NULL in a model column or expression, no unseen level
+    (``known``: every factor's level has a row in its lookup)."""
     conds = [
         S.not_(S.is_null(S.col(c)))
         for c in dict.fromkeys([res.response, *W.model_inputs(res, dialect)])
@@ -250,7 +263,8 @@ def _kept(res: FitResult, dialect: Dialect) -> Expr:
         e = W.user_expression(res, key, dialect)
         if e is not None:
             conds.append(S.not_(S.is_null(e)))
-    conds.append(S.eq(W.unseen_sql(res), exp.Literal.number(0)))
+    if known is not None:
+        conds.append(known)
     return S.and_(*conds)
 
 

@@ -21,7 +21,7 @@ from indb import colpairs
 from indb import sqlexpr as S
 from indb.colpairs import PairColumn, compatible_pairs
 from indb.engines.duckdb import DuckDBDialect
-from indb.quadform import quadratic_form_sql
+from indb.quadform import Linear, quadratic_form_sql
 
 # A: levels a0 (reference) a1 a2 with a quote; B: b0 (reference) b1; x numeric
 A_LEVELS = ["a0", "a1", "it's a2"]
@@ -73,8 +73,17 @@ def test_sql_form_is_x_a_x() -> None:
     m = rng.normal(size=(len(COLUMNS), len(COLUMNS)))
     a = m @ m.T  # symmetric, full: entries a row never uses are never read
     rows, cols = compatible_pairs(COLUMNS)
+    b = rng.normal(size=len(COLUMNS))
+    b[3] = 0.0  # a zero coefficient's lookup entry is left out: a miss reads 0
     form = quadratic_form_sql(
-        COLUMNS, rows, cols, a[rows, cols], {"one": None, "x": S.col("x")}, "q"
+        COLUMNS,
+        rows,
+        cols,
+        a[rows, cols],
+        {"one": None, "x": S.col("x")},
+        "q",
+        linear=Linear(b, {"one": None, "x": S.mul(S.col("x"), S.num(1.0))}),
+        levels={"A": A_LEVELS, "B": B_LEVELS},
     )
     data = [
         (a_, b_, float(x))
@@ -89,9 +98,14 @@ def test_sql_form_is_x_a_x() -> None:
     con.executemany("INSERT INTO t VALUES (?, ?, ?, ?)", [(*r, i) for i, r in enumerate(data)])
     d = DuckDBDialect()
     src = exp.Table(this=S.ident("t"))
-    query = form.joined(S.select([S.col("id"), S.alias(form.value, "q")], src))
-    got = dict(con.execute(d.render(query)).fetchall())
+    select = [S.col("id"), S.alias(form.value, "q"), S.alias(form.linear, "xb")]
+    query = form.joined(S.select([*select, S.alias(form.known, "known")], src))
+    got = {r[0]: r[1:] for r in con.execute(d.render(query)).fetchall()}
     want = [design_row(*r) @ a @ design_row(*r) for r in data]
-    assert_allclose([got[i] for i in range(len(data))], want, rtol=1e-12)
+    assert_allclose([got[i][0] for i in range(len(data))], want, rtol=1e-12)
+    assert_allclose([got[i][1] for i in range(len(data))], [design_row(*r) @ b for r in data])
+    # known: both levels are levels of their factor, the references included
+    known = [r[0] in A_LEVELS and r[1] in B_LEVELS for r in data]
+    assert [bool(got[i][2]) for i in range(len(data))] == known
     # one lookup per set of factors two columns meet on: {A}, {B}, {A, B}
     assert len(form.lookups) == 3
