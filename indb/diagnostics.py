@@ -85,8 +85,9 @@ def unsupported(res: FitResult) -> str | None:
             "columns); merge levels or leave a factor out"
         )
     return (
-        "the result carries no (X'WX)^-1 for its leverage (a version stored by an earlier indb, "
-        "or a result read back from the JSON output)"
+        "the result carries no (X'WX)^-1 for its leverage (a version saved while the model "
+        "had no diagnostics view or by an earlier indb, or a result read back from the JSON "
+        "output)"
     )
 
 

@@ -363,7 +363,11 @@ class Registry(ViewPlacement):
             "spec_hash": h,
             "spec_json": json.dumps(result.spec, sort_keys=True),
             "fingerprint_json": json.dumps(_jsonable(result.fingerprint), sort_keys=True),
-            "result_json": json.dumps(result.to_dict(storage=True), allow_nan=False),
+            # (X'WX)^-1 for the diagnostics view only where the model has one (up to
+            # colpairs.MAX_PAIRS numbers, megabytes for a model of many levels)
+            "result_json": json.dumps(
+                result.to_dict(storage=bool(model_row.get("diagnostics"))), allow_nan=False
+            ),
             "package_version": __version__,
             "parent_version": parent_version,
             "note": note,
