@@ -10,6 +10,7 @@ from typing import Any
 from indb import options as O
 from indb import writeback as W
 from indb.assessment import AssessResult
+from indb.comparison import NestedTest
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
 from indb.errors import ConvergenceWarning, RegistryError, SpecError
@@ -67,6 +68,7 @@ def fit(
     view_schema: str | None = None,
     score_source: str | None = None,
     intervals: bool | None = None,
+    diagnostics: bool | None = None,
     registry_schema: str = DEFAULT_SCHEMA,
     memory_limit: str | None = None,
     temp_directory: str | None = None,
@@ -119,6 +121,11 @@ def fit(
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)
+    elif diagnostics:
+        raise SpecError(
+            "diagnostics=True writes the view NAME_diagnostics next to the scoring view, so it "
+            "needs the model written back: give name= (CLI: --name) and db="
+        )
     engine = connect(
         db,
         # without write-back nothing is written: a database file opens read-only, so a fit
@@ -136,6 +143,7 @@ def fit(
                 promote=promote,
                 inputs=scoring_inputs(spec, engine),
                 score_source=score_source,
+                diagnostics=diagnostics,
             )
         result = fit_spec(spec, engine, progress)
         if name is not None:
@@ -151,6 +159,7 @@ def fit(
                 view_schema=view_schema,
                 score_source=score_source,
                 intervals=intervals,
+                diagnostics=diagnostics,
             )
             result = with_deployment(result, outcome)
             if hold and not outcome.promoted:
@@ -365,6 +374,7 @@ def with_deployment(result: FitResult, outcome: SaveOutcome) -> FitResult:
             "scoring_view": outcome.scoring_view,
             "mean_column": outcome.mean_column,
             "macro": outcome.macro,
+            **({"diagnostics_view": outcome.diagnostics_view} if outcome.diagnostics_view else {}),
         },
     )
 
@@ -379,6 +389,7 @@ def deploy(
     view_schema: str | None = None,
     score_source: str | None = None,
     intervals: bool | None = None,
+    diagnostics: bool | None = None,
     registry_schema: str = DEFAULT_SCHEMA,
 ) -> FitResult:
     """Write an already fitted result to the registry (and its scoring view) of ``db``."""
@@ -393,6 +404,7 @@ def deploy(
             view_schema=view_schema,
             score_source=score_source,
             intervals=intervals,
+            diagnostics=diagnostics,
         )
         return with_deployment(result, outcome)
     finally:
@@ -485,6 +497,21 @@ def explore(
             bands=bands,
             max_shown=max_shown,
         )
+    finally:
+        if engine is not db:
+            engine.close()
+
+
+def nested(small: str, big: str, *, db: Any, registry_schema: str = DEFAULT_SCHEMA) -> NestedTest:
+    """Test registered model ``small`` within ``big`` (each ``NAME``, its live version, or
+    ``NAME:VERSION``): the deviance change on the coefficients ``big`` adds, against
+    chi-squared where the family fixes the dispersion and F with ``big``'s dispersion
+    otherwise. Both must have been fitted on the same rows with the same family, link,
+    weights and offset, ``small``'s terms among ``big``'s; otherwise a
+    :class:`~indb.errors.SpecError` names the difference. Reads only the registry."""
+    engine = connect(db, read_only=True)
+    try:
+        return open_registry(engine, registry_schema).nested(small, big)
     finally:
         if engine is not db:
             engine.close()

@@ -10,7 +10,7 @@ gate.
 
 Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` and
 ``retrain`` (TOML spec files), the registry commands ``models``, ``versions``, ``show``,
-``compare``, ``promote``, ``drop``, ``scoring-sql``, and ``demo``.
+``compare``, ``nested``, ``promote``, ``drop``, ``scoring-sql``, and ``demo``.
 """
 
 from __future__ import annotations
@@ -436,6 +436,25 @@ def compare_command(
     with library_errors(quiet), _open_registry(db, registry_schema) as reg:
         cmp = reg.compare(name, a, b)
     click.echo(R.compare_json(cmp) if as_json else R.compare_text(cmp))
+
+
+@main.command("nested", short_help="Test a model within a larger one.")
+@registry_database_option
+@registry_schema_option
+@output_options
+@click.argument("small", metavar="SMALL")
+@click.argument("big", metavar="BIG")
+def nested_command(
+    small: str, big: str, db: str, registry_schema: str | None, as_json: bool, quiet: bool
+) -> None:
+    """Test registered model SMALL within BIG, each NAME (its live version) or NAME:VERSION:
+    the deviance change on the coefficients BIG adds, against chi-squared (fixed
+    dispersion) or F with BIG's dispersion. Both must be fitted on the same rows with the
+    same family, link, weights and offset, SMALL's terms among BIG's (exit code 2
+    otherwise). Nothing is written."""
+    with library_errors(quiet), _open_registry(db, registry_schema) as reg:
+        test = reg.nested(small, big)
+    click.echo(R.nested_json(test) if as_json else R.nested_text(test))
 
 
 @main.command("promote", short_help="Make a version live (also the roll-back).")

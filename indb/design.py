@@ -29,11 +29,8 @@ TERM_JOIN = " & "
 
 @dataclass(frozen=True)
 class TermSpec:
-    """A model term before expansion: a product of factors and numeric columns.
-
-    ``basis`` names a spline basis function ``k`` of the single numeric column
-    (``None`` for plain products).
-    """
+    """A model term before expansion: a product of factors and numeric columns; ``basis``
+    names a spline basis function ``k`` of the single numeric column (None: plain products)."""
 
     factors: tuple[str, ...]
     numerics: tuple[str, ...]
@@ -229,6 +226,7 @@ class Design:
                     "label": v.label,
                     "numerics": list(v.numerics),
                     "basis": v.basis,
+                    "centered": v.centered,
                     "center": v.center,
                     "scale": v.scale,
                 }
@@ -242,6 +240,7 @@ class Design:
                     "levels": list(c.levels),
                     "numerics": list(self.values[c.value].numerics),
                     "basis": self.values[c.value].basis,
+                    "value": c.value,
                 }
                 for c in self.columns
             ],

@@ -15,13 +15,14 @@ from scipy import sparse
 
 from indb import solver, termtests
 from indb import sqlexpr as S
+from indb.colpairs import PairColumn, compatible_pairs
 from indb.design import Design, DesignColumn, Inputs, Scaling
 from indb.errors import AliasingWarning, PrecisionWarning, ResidualDfWarning, SeparationWarning
 from indb.fitrun import FitRun
 from indb.plan.context import PlanContext
 from indb.plan.irls_scan import EDGE, NEAR_EDGE, loglik_query
 from indb.prefit import Summary
-from indb.results import COVARIANCE_MAX_TERMS, Coefficient, FitResult
+from indb.results import COVARIANCE_MAX_TERMS, Coefficient, FitResult, InverseEntries
 
 SEPARATION_STD_SE = 100.0
 
@@ -190,7 +191,31 @@ def result(
                 f.column: dict(zip(f.levels, f.counts, strict=True)) for f in design.factors
             },
         },
+        inverse_entries=inverse_entries(design, sol, sc),
     )
+
+
+def inverse_entries(design: Design, sol: solver.Solution, sc: Scaling) -> InverseEntries | None:
+    """(X'WX)^-1 of the source's problem on the standardized design, at the column pairs
+    one row can use together (None beyond ``colpairs.MAX_PAIRS`` of them).
+
+    The rescaled fit's information is the source's times coef_factor^2 / d
+    (:class:`~indb.design.Scaling`), so its inverse is the source's times d / coef_factor^2."""
+    columns = [
+        PairColumn(tuple(design.factors[i].column for i in c.factors), c.levels, c.value)
+        for c in design.columns
+    ]
+    pairs = compatible_pairs(columns)
+    if pairs is None:
+        return None
+    rows, cols = pairs
+    # in powers of two: d and coef_factor^2 can each be far outside the doubles (a response
+    # near 1e200) where their ratio is 1
+    e = sc.log2_deviance_factor - 2.0 * math.log2(sc.coef_factor)
+    with np.errstate(over="ignore", under="ignore"):
+        factor = float(np.ldexp(1.0, round(e)) * 2.0 ** (e - round(e)))
+        values = sol.inv_info.entries(rows, cols) * factor
+    return InverseEntries(rows, cols, values)
 
 
 def _inference(

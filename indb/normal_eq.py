@@ -180,6 +180,24 @@ class InverseInfo:
         """The whole p x p inverse (callers keep p small)."""
         return self.block(np.arange(self.p))
 
+    def entries(self, rows: np.ndarray, cols: np.ndarray) -> np.ndarray:
+        """V at the index pairs (``rows[i]``, ``cols[i]``), in slices of pairs: k_j' S^-1 k_k
+        plus Delta's 1 where j = k lies in E, over d_j d_k (0 at aliased columns)."""
+        rows = np.asarray(rows, dtype=np.int64)
+        cols = np.asarray(cols, dtype=np.int64)
+        out = np.zeros(len(rows))
+        step = max(1, CHUNK // max(len(self.rest), 1))
+        for a in range(0, len(rows), step):
+            r, c = rows[a : a + step], cols[a : a + step]
+            kr, dr = self._k_columns(r)
+            kc, _ = self._k_columns(c)
+            out[a : a + step] = np.einsum("ij,ij->j", kr, self.s_inv @ kc) + np.where(
+                r == c, dr, 0.0
+            )
+        with np.errstate(divide="ignore", invalid="ignore"):
+            scaled = out / (self.scale[rows] * self.scale[cols])
+        return np.where(np.isfinite(scaled), scaled, 0.0)
+
     def scaled_operator(self, kept: np.ndarray) -> splinalg.LinearOperator:
         """V_s on the kept columns as an operator (x -> V_s x), for eigenvalue estimates."""
         n = len(kept)

@@ -500,6 +500,17 @@ OPTIONS: tuple[Option, ...] = (
         "deploy",
     ),
     Option(
+        "diagnostics",
+        BOOLEAN,
+        None,
+        _with(
+            "also write the view NAME_diagnostics over the training source: fitted values, "
+            "response, Pearson, deviance and working residuals, leverage and Cook's distance "
+            "per row."
+        ),
+        "deploy",
+    ),
+    Option(
         "registry_schema",
         TEXT,
         "indb_registry",  # indb.registry.DEFAULT_SCHEMA (a test holds them together)

@@ -12,6 +12,7 @@ from typing import Any
 
 from sqlglot import exp
 
+from indb import diagnostics as DG
 from indb import sqlexpr as S
 from indb import writeback as W
 from indb.engines.base_dialect import Dialect
@@ -35,6 +36,70 @@ class ViewPlacement:
 
     def _columns_of(self, relation: Any) -> list[str] | None:  # provided by the registry
         raise NotImplementedError
+
+    def check_model_name(self, name: str) -> str:  # provided by the registry
+        raise NotImplementedError
+
+    def _current_or_twin(self, name: str) -> dict[str, Any] | None:  # provided by the registry
+        raise NotImplementedError
+
+    def _source_types(self, model: dict[str, Any]) -> dict[str, str] | None:  # by the registry
+        raise NotImplementedError
+
+    def check_before_fit(
+        self,
+        name: str,
+        *,
+        view_schema: str | None = None,
+        promote: bool | None = True,
+        inputs: Sequence[str] = (),
+        score_source: str | None = None,
+        diagnostics: bool | None = None,
+    ) -> None:
+        """The checks of :meth:`save` that need no fitted result, run before a fit's first
+        scan so that a name it cannot take costs no scans: names of the engine's own
+        objects, a name differing only in case from a model's, and (for a version to be made
+        live) a view or macro of that name which indb did not create for this model, and
+        a scoring source without the model's ``inputs`` when the version is sure to go live."""
+        self.check_model_name(name)
+        if view_schema is not None:
+            W.check_name(view_schema, "view schema")
+        current = self._current_or_twin(name)
+        if promote is False:  # None may promote: checked as if it will
+            return
+        live = current is not None and current.get("live_version") is not None
+        if inputs and (promote or not live):
+            self._check_scoring_inputs(current, inputs, score_source)
+        target = {"view_schema": view_schema, "view_name": name, "macro_name": f"{name}_score"}
+        if current is not None:
+            target = {
+                "view_schema": current["view_schema"] if view_schema is None else view_schema,
+                "view_name": current["view_name"],
+                "macro_name": current["macro_name"],
+            }
+        keep = current is not None and diagnostics is None
+        target["diagnostics"] = bool(current.get("diagnostics")) if keep else bool(diagnostics)
+        self._check_not_foreign(name, target, current)
+
+    def _check_scoring_inputs(
+        self, current: dict[str, Any] | None, inputs: Sequence[str], score_source: str | None
+    ) -> None:
+        """Refuse, before any scan, a scoring source that lacks columns the model reads
+        (the view would otherwise fail to build after the whole fit)."""
+        row = {"score_source": score_source} if score_source else current
+        if row is None or not row.get("score_source"):
+            return  # a new model scores its own source
+        types = self._source_types(row)
+        if types is None:
+            return  # unreadable: the write-back's own check says why
+        missing = [c for c in inputs if c not in types]
+        if missing:
+            raise SpecError(
+                f"the scoring source {Source.parse(row['score_source']).label()!r} lacks "
+                f"model input column(s) {missing}; give a scoring source that has them "
+                "(score_source=, CLI --score-source) or leave them out of the model "
+                "(exclude=, --exclude); checked before the fit, nothing was read or written"
+            )
 
     def scoring_source_for(self, model_row: dict[str, Any], dialect: Dialect) -> str | None:
         """The model's scoring source as SQL for ``dialect`` should name it: as stored for
@@ -127,19 +192,13 @@ class ViewPlacement:
             and current.get("live_version") is not None
             and self._same_place(current, model_row)
         )
-        if ours:
-            return
+        checks = [] if ours else [(view, macro) for macro in macros]
+        if model_row.get("diagnostics") and not (ours and current and current.get("diagnostics")):
+            # the diagnostics view is this model's own only where its live version has one
+            checks.append((DG.view_name(view), None))
         found: list[tuple[str, str]] = []
-        for macro in macros:
-            try:
-                cols = self.engine.fetch_columns(self.d.existing_objects_sql(schema, view, macro))
-            except EngineError:
-                if schema is None:
-                    raise
-                # a schema that does not exist yet holds nothing to replace (Spark's SHOW
-                # TABLES IN a missing schema fails; information_schema just has no rows)
-                cols = None
-            for obj in self.d.existing_objects(cols, view, macro) if cols else []:
+        for object_name, macro in checks:
+            for obj in self._existing(schema, object_name, macro):
                 if obj not in found:
                     found.append(obj)
         if found:
@@ -150,6 +209,18 @@ class ViewPlacement:
                 "create for this model; choose another model name (or view_schema), or "
                 "drop that object first; nothing was written"
             )
+
+    def _existing(self, schema: str | None, view: str, macro: str | None) -> list[tuple[str, str]]:
+        """(kind, name) of the catalog objects named ``view`` (or ``macro``) in ``schema``."""
+        try:
+            cols = self.engine.fetch_columns(self.d.existing_objects_sql(schema, view, macro))
+        except EngineError:
+            if schema is None:
+                raise
+            # a schema that does not exist yet holds nothing to replace (Spark's SHOW
+            # TABLES IN a missing schema fails; information_schema just has no rows)
+            return []
+        return self.d.existing_objects(cols, view, macro) if cols else []
 
     def _deploy_statements(
         self, name: str, result: FitResult, model_row: dict[str, Any]
@@ -214,7 +285,38 @@ class ViewPlacement:
                     W.unseen_expression(result, self.d),
                 )
             )
-        return stmts
+        return stmts + self._diagnostics_statements(name, result, model_row, live)
+
+    def _diagnostics_statements(
+        self,
+        name: str,
+        result: FitResult,
+        model_row: dict[str, Any],
+        live: dict[str, Any] | None,
+    ) -> list[str]:
+        """(Re)create the view ``NAME_diagnostics`` over the training source, or drop the
+        one this model had when a deployment switches it off."""
+        schema = model_row.get("view_schema")
+        view = DG.view_name(model_row["view_name"])
+        if not model_row.get("diagnostics"):
+            had = live is not None and live.get("live_version") is not None
+            if had and live.get("diagnostics") and self._same_place(live, model_row):
+                return [self.d.render(W.drop_view(schema, view))]
+            return []  # (a move dropped it with the other objects at the old place)
+        source = Source.parse(result.spec["source"]["text"])
+        rel = self.d.relation(source)
+        try:
+            described = self.engine.describe(self.d.render(S.select([star()], aliased(rel))))
+        except EngineError as err:
+            raise SpecError(
+                f"cannot read the training source {source.label()!r} of model {name!r} for "
+                f"its diagnostics view: {err}; deploy without diagnostics, or make the "
+                "source readable again"
+            ) from err
+        cols = [c for c, _ in described]
+        query = DG.diagnostics_query(result, self.d, rel, cols, model=name)
+        create = W.create_view(schema, view, query)
+        return self.d.replace_view(create, [*cols, *DG.COLUMNS], self._columns_of(create.this))
 
     def _drop_statements(self, model_row: dict[str, Any]) -> list[str]:
         """DROP the scoring view and macro a model row names."""
@@ -223,7 +325,18 @@ class ViewPlacement:
         if self.d.supports_macros and model_row.get("macro_name"):
             stmts.append(self.d.drop_macro(schema, model_row["macro_name"]))
             stmts.append(self.d.drop_macro(schema, W.unseen_macro_name(model_row["macro_name"])))
+        if model_row.get("diagnostics"):
+            view = DG.view_name(model_row["view_name"])
+            stmts.append(self.d.render(W.drop_view(schema, view)))
         return stmts
+
+    def diagnostics_label(self, model_row: dict[str, Any]) -> str | None:
+        """Where the model's diagnostics view is (None when it has none)."""
+        if not model_row.get("diagnostics"):
+            return None
+        schema = model_row.get("view_schema")
+        view = DG.view_name(model_row["view_name"])
+        return f"{schema}.{view}" if schema else view
 
 
 def star() -> exp.Star:
@@ -242,29 +355,36 @@ def _create_schema(schema: str) -> exp.Create:
     return exp.Create(kind="SCHEMA", this=exp.Table(db=S.ident(schema)), exists=True)
 
 
+#: the deployment settings that are switches (compared as booleans; None in a row: off)
+SWITCHES = ("intervals", "diagnostics")
+
+
 def deployment_changes(
-    current: dict[str, Any], view_schema: str | None, score_source: str | None, intervals: Any
+    current: dict[str, Any],
+    view_schema: str | None,
+    score_source: str | None,
+    intervals: Any,
+    diagnostics: Any = None,
 ) -> list[str]:
     """The deployment settings a save asks to change on a model (None keeps the current)."""
-    asked = {"view_schema": view_schema, "score_source": score_source, "intervals": intervals}
+    asked = {
+        "view_schema": view_schema,
+        "score_source": score_source,
+        "intervals": intervals,
+        "diagnostics": diagnostics,
+    }
     return [
         key
         for key, value in asked.items()
         if value is not None
-        and (bool(value) != bool(current[key]) if key == "intervals" else value != current[key])
+        and (
+            bool(value) != bool(current.get(key)) if key in SWITCHES else value != current.get(key)
+        )
     ]
 
 
 def model_updates(row: dict[str, Any]) -> dict[str, Any]:
     """The columns of a model row that a deployment sets (where and how it is served)."""
-    return {
-        k: row[k]
-        for k in (
-            "live_version",
-            "view_schema",
-            "view_name",
-            "macro_name",
-            "score_source",
-            "intervals",
-        )
-    }
+    keys = ("live_version", "view_schema", "view_name", "macro_name", "score_source")
+    # a row of a registry written before a switch existed has no column for it: off
+    return {**{k: row[k] for k in keys}, **{k: bool(row.get(k)) for k in SWITCHES}}

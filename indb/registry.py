@@ -17,9 +17,11 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from indb import diagnostics as DG
 from indb import sqlexpr as S
 from indb import writeback as W
 from indb.assessment_log import AssessmentLog
+from indb.comparison import NestedTest, nested_test, parse_reference, version_changes
 from indb.engines.base_dialect import Dialect
 from indb.engines.base_engine import Engine
 from indb.errors import DeploymentWarning, EngineError, RegistryError, SpecError, UnsupportedError
@@ -61,6 +63,8 @@ class SaveOutcome:
     macro: str | None
     #: deployment settings that were not applied, and why (also issued as warnings)
     warnings: tuple[str, ...] = ()
+    #: the view of residuals and influence (``--diagnostics``), where it is
+    diagnostics_view: str | None = None
 
 
 class Registry(ViewPlacement, AssessmentLog):
@@ -96,15 +100,21 @@ class Registry(ViewPlacement, AssessmentLog):
         """Create the registry schema and tables if missing."""
         for stmt in W.registry_ddl(self.schema, self.d):
             self._run(stmt)
-        self._rename_earlier_columns()
+        self._upgrade_earlier_layout()
 
-    def _rename_earlier_columns(self) -> None:
-        """Give a registry written by indb 0.1 today's column names (one ALTER each)."""
+    def _upgrade_earlier_layout(self) -> None:
+        """Give a registry written by an earlier indb today's columns: renamed (0.1) and
+        added ones (one ALTER each)."""
         for table, renames in W.RENAMED_REGISTRY_COLUMNS.items():
             columns = self._columns_of(W.table_ref(self.schema, table)) or []
             for old, new in renames.items():
                 if old in columns and new not in columns:
                     self._run(W.rename_column(self.schema, table, old, new))
+        for table, added in W.ADDED_REGISTRY_COLUMNS.items():
+            columns = self._columns_of(W.table_ref(self.schema, table)) or []
+            for column, kind in added:
+                if columns and column not in columns:
+                    self._run(W.add_column(self.schema, table, column, kind))
 
     # -- reading ---------------------------------------------------------------------------
     def models(self) -> list[dict[str, Any]]:
@@ -233,6 +243,7 @@ class Registry(ViewPlacement, AssessmentLog):
         note: str | None = None,
         parent_version: int | None = None,
         assessments: Sequence[dict[str, Any]] = (),
+        diagnostics: bool | None = None,
     ) -> SaveOutcome:
         """Record ``result`` as the next version of ``name`` and (by default) make it live.
 
@@ -244,7 +255,8 @@ class Registry(ViewPlacement, AssessmentLog):
 
         An identical spec on unchanged data (same spec hash and data fingerprint as the
         newest version) keeps that version unless ``force_new`` or a deployment setting
-        (``view_schema``, ``score_source``, ``intervals``; None keeps the model's own) differs
+        (``view_schema``, ``score_source``, ``intervals``, ``diagnostics``; None keeps the
+        model's own) differs
         from the model's: then a new version is recorded so the change takes effect.
         ``assessments``: rows of ``version_assessment`` recorded with a new version (a
         ``version`` of None is this one's).
@@ -262,7 +274,7 @@ class Registry(ViewPlacement, AssessmentLog):
         if (
             match is not None
             and not force_new
-            and not deployment_changes(current, view_schema, score_source, intervals)
+            and not deployment_changes(current, view_schema, score_source, intervals, diagnostics)
         ):
             return SaveOutcome(
                 name,
@@ -272,6 +284,7 @@ class Registry(ViewPlacement, AssessmentLog):
                 self._view_label(current),
                 "score_mean",
                 self._macro_label(current) if self.d.supports_macros else None,
+                diagnostics_view=self.diagnostics_label(current),
             )
         version = 1
         if current is not None:  # numbers are never reused, dropped versions included
@@ -294,6 +307,7 @@ class Registry(ViewPlacement, AssessmentLog):
             "macro_name": f"{name}_score",
             "score_source": source_text,
             "intervals": bool(intervals) if intervals is not None else False,
+            "diagnostics": bool(diagnostics),
         }
         if current is not None:
             model_row.update({"created_at": current["created_at"], **model_updates(current)})
@@ -303,6 +317,8 @@ class Registry(ViewPlacement, AssessmentLog):
                 model_row["score_source"] = score_source
             if intervals is not None:
                 model_row["intervals"] = bool(intervals)
+            if diagnostics is not None:
+                model_row["diagnostics"] = bool(diagnostics)
         if model_row["score_source"]:
             model_row["score_source"] = self._qualified_source(model_row["score_source"])
         notes: list[str] = []
@@ -324,6 +340,8 @@ class Registry(ViewPlacement, AssessmentLog):
                 f"promote {name} {version} --view-schema {view_schema})"
             )
             model_row["view_schema"] = current["view_schema"]
+        if not promote and current is not None and current.get("live_version") is not None:
+            notes += self._keep_live_diagnostics(name, version, model_row, current)
         status = "live" if promote else "held"
         vrow = {
             "model_name": name,
@@ -350,7 +368,11 @@ class Registry(ViewPlacement, AssessmentLog):
             "spec_hash": h,
             "spec_json": json.dumps(result.spec, sort_keys=True),
             "fingerprint_json": json.dumps(_jsonable(result.fingerprint), sort_keys=True),
-            "result_json": json.dumps(result.to_dict(), allow_nan=False),
+            # (X'WX)^-1 for the diagnostics view only where the model has one (up to
+            # colpairs.MAX_PAIRS numbers, megabytes for a model of many levels)
+            "result_json": json.dumps(
+                result.to_dict(storage=bool(model_row.get("diagnostics"))), allow_nan=False
+            ),
             "package_version": __version__,
             "parent_version": parent_version,
             "note": note,
@@ -392,7 +414,7 @@ class Registry(ViewPlacement, AssessmentLog):
                 if fresh:  # registry tables are created in the same transaction
                     self.ensure()
                 else:
-                    self._rename_earlier_columns()
+                    self._upgrade_earlier_layout()
                 # a version's details before its row, and the row before the model's: an
                 # engine without transactions (Spark) then never shows a half-written version
                 self._insert("version_term", terms)
@@ -426,39 +448,24 @@ class Registry(ViewPlacement, AssessmentLog):
             "score_mean",
             self._macro_label(model_row) if self.d.supports_macros else None,
             tuple(notes),
+            self.diagnostics_label(model_row if promote else (current or {})),
         )
 
-    def check_before_fit(
-        self,
-        name: str,
-        *,
-        view_schema: str | None = None,
-        promote: bool | None = True,
-        inputs: Sequence[str] = (),
-        score_source: str | None = None,
-    ) -> None:
-        """The checks of :meth:`save` that need no fitted result, run before a fit's first
-        scan so that a name it cannot take costs no scans: names of the engine's own
-        objects, a name differing only in case from a model's, and (for a version to be made
-        live) a view or macro of that name which indb did not create for this model, and
-        a scoring source without the model's ``inputs`` when the version is sure to go live."""
-        self.check_model_name(name)
-        if view_schema is not None:
-            W.check_name(view_schema, "view schema")
-        current = self._current_or_twin(name)
-        if promote is False:  # None may promote: checked as if it will
-            return
-        live = current is not None and current.get("live_version") is not None
-        if inputs and (promote or not live):
-            self._check_scoring_inputs(current, inputs, score_source)
-        target = {"view_schema": view_schema, "view_name": name, "macro_name": f"{name}_score"}
-        if current is not None:
-            target = {
-                "view_schema": current["view_schema"] if view_schema is None else view_schema,
-                "view_name": current["view_name"],
-                "macro_name": current["macro_name"],
-            }
-        self._check_not_foreign(name, target, current)
+    def _keep_live_diagnostics(
+        self, name: str, version: int, model_row: dict[str, Any], current: dict[str, Any]
+    ) -> list[str]:
+        """A held version leaves the live diagnostics view as it is: the model row says
+        whether there is one (its drop and the check for foreign objects read it)."""
+        live = bool(current.get("diagnostics"))
+        if bool(model_row.get("diagnostics")) == live:
+            return []
+        model_row["diagnostics"] = live
+        return [
+            f"diagnostics={not live} was not applied: version {version} of {name!r} is held, "
+            f"and the live version {current['live_version']} keeps "
+            f"{'its' if live else 'no'} diagnostics view; refit with promote=True (CLI: "
+            f"--promote) and diagnostics={not live} to change it"
+        ]
 
     def _live_result(self, name: str, current: dict[str, Any] | None) -> FitResult | None:
         """The live version's result (None without a model or a live version)."""
@@ -528,11 +535,23 @@ class Registry(ViewPlacement, AssessmentLog):
         result = self._result(row)
         if model_row.get("score_source"):
             model_row["score_source"] = self._qualified_source(model_row["score_source"])
+        why = DG.unsupported(result) if model_row.get("diagnostics") else None
+        if why is not None:
+            # a roll-back must not be blocked by the diagnostics view: it goes, and says so
+            model_row["diagnostics"] = False
         self._check_not_foreign(name, model_row, current)
         deploy = self._deploy_statements(name, result, model_row)
         now = _now()
         with self.engine.transaction():
+            self._upgrade_earlier_layout()
             self._make_live(name, int(version), model_row, deploy, now)
+        if why is not None:
+            warnings.warn(
+                f"version {version} of {name!r} is live without its diagnostics view: {why}; "
+                "the view was dropped (a refit deployed with diagnostics brings it back)",
+                DeploymentWarning,
+                stacklevel=2,
+            )
 
     def drop(self, name: str, version: int) -> None:
         """Mark a version dropped (its rows stay for audit); the live version cannot be dropped."""
@@ -551,39 +570,17 @@ class Registry(ViewPlacement, AssessmentLog):
 
     def compare(self, name: str, a: int, b: int) -> dict[str, Any]:
         """Coefficient changes between two versions, in standard errors of version ``a``."""
-        ra, rb = self.load(name, a), self.load(name, b)
-        terms = []
-        tb = {c.term: c for c in rb.coefficients}
-        for c in ra.coefficients:
-            other = tb.get(c.term)
-            change = other.estimate - c.estimate if other else math.nan
-            terms.append(
-                {
-                    "term": c.term,
-                    "estimate_a": c.estimate,
-                    "estimate_b": other.estimate if other else math.nan,
-                    "change": change,
-                    "change_in_se": change / c.std_error
-                    if c.std_error and c.std_error > 0
-                    else math.nan,
-                    "relative_change": change / abs(c.estimate) if c.estimate else math.nan,
-                }
-            )
-        only_b = [
-            c.term for c in rb.coefficients if c.term not in {x.term for x in ra.coefficients}
-        ]
-        return {
-            "model": name,
-            "a": a,
-            "b": b,
-            "terms": terms,
-            "terms_only_in_b": only_b,
-            "deviance": [ra.deviance, rb.deviance],
-            "deviance_per_row": [ra.deviance / max(ra.n_used, 1), rb.deviance / max(rb.n_used, 1)],
-            "rows": [ra.n_used, rb.n_used],
-            "aic": [ra.aic, rb.aic],
-            "converged": [ra.converged, rb.converged],
-        }
+        return version_changes(name, a, b, self.load(name, a), self.load(name, b))
+
+    def nested(self, small: str, big: str) -> NestedTest:
+        """The deviance test of model ``small`` within model ``big`` (each ``NAME``, its
+        live version, or ``NAME:VERSION``): same rows, ``small``'s terms among ``big``'s."""
+        found = []
+        for ref in (small, big):
+            name, version = parse_reference(ref)
+            row = self._version_row(name, version)
+            found += [f"{name}:{row['version']}", self._result(row)]
+        return nested_test(*found)
 
     def check_model_name(self, name: str) -> str:
         """Refuse a model name that is not a plain name, or whose scoring view or macro

@@ -170,10 +170,19 @@ class AppendOnlyRegistry(Registry):
                     f"registry across applications, or move that folder away: {err}"
                 ) from err
             raise
-        self._rename_earlier_columns()
+        self._upgrade_earlier_layout()
 
-    def _rename_earlier_columns(self) -> None:
-        # Spark's file tables cannot rename a column in place, so say how to move on.
+    def _upgrade_earlier_layout(self) -> None:
+        # Spark's file tables cannot rename a column in place, so say how to move on; an
+        # added column is appended to the record table and the view over it made again.
+        for table, added in W.ADDED_REGISTRY_COLUMNS.items():
+            target = _RECORDS.get(table, (table, None))[0]
+            columns = Registry._columns_of(self, W.table_ref(self.schema, target)) or []
+            missing = [(c, kind) for c, kind in added if columns and c not in columns]
+            for column, kind in missing:
+                self._run(W.add_column(self.schema, target, column, kind))
+            if missing and table == "model":
+                self._run(W.create_view(self.schema, "model", model_view_query(self.schema)))
         for table, renames in W.RENAMED_REGISTRY_COLUMNS.items():
             target = _RECORDS.get(table, (table, None))[0]
             columns = Registry._columns_of(self, W.table_ref(self.schema, target)) or []

@@ -18,6 +18,7 @@ import math
 from collections.abc import Sequence
 from typing import Any
 
+from indb.comparison import NestedTest
 from indb.report import render_json, render_report
 from indb.results import FitResult, IterationRecord
 from indb.retrain import RetrainOutcome, holdout_figures
@@ -130,9 +131,11 @@ def deployment_text(deployment: dict[str, Any], db: str | None) -> str:
             f"`indb promote {name} {version} --db {db}`."
         )
     macro = f", scoring macro {deployment['macro']}" if deployment.get("macro") else ""
+    diagnostics = deployment.get("diagnostics_view")
+    residuals = f"; residuals and influence in view {diagnostics}" if diagnostics else ""
     return (
         f"Model {name}: version {version} is live; scoring view {deployment['scoring_view']} "
-        f"(predicted mean in column {deployment['mean_column']}){macro}."
+        f"(predicted mean in column {deployment['mean_column']}){macro}{residuals}."
     )
 
 
@@ -310,6 +313,7 @@ def models_json(models: ModelListing) -> str:
                     "macro": m["macro_name"],
                     "score_source": m["score_source"],
                     "intervals": m["intervals"],
+                    "diagnostics": bool(m.get("diagnostics")),
                     "created_at": m["created_at"],
                 }
                 for m, vs in models
@@ -422,6 +426,43 @@ def show_json(
 
 def compare_json(cmp: dict[str, Any]) -> str:
     return to_json(cmp)
+
+
+def nested_text(test: NestedTest) -> str:
+    """A model within a larger one (``indb nested``): the two deviances, their change and
+    its test, one fact per line."""
+    small, big = test.small, test.big
+    width = max(len(small), len(big), 12)
+    lines = [
+        f"{small} within {big}: {test.family}, {test.rows:,} rows used by both",
+        "",
+        f"{'':<18}{small:>{width}}  {big:>{width}}",
+        f"{'deviance':<18}{_num(test.deviance_small, '.10g'):>{width}}  "
+        f"{_num(test.deviance_big, '.10g'):>{width}}",
+        f"{'converged':<18}{_num(test.converged[0]):>{width}}  {_num(test.converged[1]):>{width}}",
+        "",
+        f"deviance change   {_num(test.deviance_change, '.8g')} on {test.df} df "
+        f"({_added(test.terms_added)})",
+    ]
+    if test.test == "chi2":
+        lines.append(f"chi-squared       {_num(test.statistic, '.6g')} on {test.df} df")
+    else:
+        lines.append(
+            f"F                 {_num(test.statistic, '.6g')} on {test.df} and "
+            f"{_num(test.residual_df, '.6g')} df (dispersion of {big}: "
+            f"{_num(test.dispersion, '.6g')})"
+        )
+    lines.append(f"p-value           {_num(test.p_value, '.4g')}")
+    return "\n".join(lines)
+
+
+def _added(terms: Sequence[str]) -> str:
+    shown = ", ".join(terms[:6]) + (f" and {len(terms) - 6} more" if len(terms) > 6 else "")
+    return f"added: {shown}" if terms else "no terms added by name"
+
+
+def nested_json(test: NestedTest) -> str:
+    return to_json({"nested": test.to_dict()})
 
 
 def retrain_json(outcome: RetrainOutcome) -> str:

@@ -74,6 +74,37 @@ class Collinearity:
 
 
 @dataclass(frozen=True)
+class InverseEntries:
+    """(X'WX)^-1 at the pairs of design columns one row can use together
+    (:func:`indb.colpairs.compatible_pairs`): ``values[i]`` at (``rows[i]``, ``cols[i]``),
+    rows <= cols, 0 at aliased columns.
+
+    On the fit's standardized design (each value centred and scaled as ``design["values"]``
+    says) and at unit dispersion, on the source's scale: a row's leverage is its working
+    weight times x'Ax there, whatever the covariance kind of the standard errors.
+    """
+
+    rows: np.ndarray
+    cols: np.ndarray
+    values: np.ndarray
+
+    def to_dict(self) -> dict[str, list]:
+        return {
+            "rows": self.rows.tolist(),
+            "cols": self.cols.tolist(),
+            "values": [_num(v) for v in self.values.tolist()],
+        }
+
+    @staticmethod
+    def from_dict(d: dict[str, list]) -> InverseEntries:
+        return InverseEntries(
+            np.asarray(d["rows"], dtype=np.int64),
+            np.asarray(d["cols"], dtype=np.int64),
+            np.array([math.nan if v is None else float(v) for v in d["values"]], dtype=float),
+        )
+
+
+@dataclass(frozen=True)
 class IterationRecord:
     """What one IRLS iteration (one aggregate scan) produced."""
 
@@ -144,6 +175,9 @@ class FitResult:
     #: the covariance is not kept)
     term_tests: tuple[TermTest, ...] = ()
     collinearity: tuple[Collinearity, ...] = ()
+    #: (X'WX)^-1 where the diagnostics view's leverage reads it (None: more pairs than
+    #: ``indb.colpairs.MAX_PAIRS``, or a result stored before results carried it)
+    inverse_entries: InverseEntries | None = None
 
     # -- the model as objects ------------------------------------------------------------
     @property
@@ -194,8 +228,11 @@ class FitResult:
         render = TEXT_RENDERER.get("report")
         return render(self) if render is not None else repr(self)
 
-    def to_dict(self) -> dict[str, Any]:
-        """A JSON-ready dictionary (non-finite numbers become ``None``)."""
+    def to_dict(self, *, storage: bool = False) -> dict[str, Any]:
+        """A JSON-ready dictionary (non-finite numbers become ``None``).
+
+        ``storage=True`` (a registry version) adds what only the write-back reads:
+        ``inverse_entries``, thousands of numbers for a model of many levels."""
         out: dict[str, Any] = {
             "family": self.family,
             "link": self.link,
@@ -241,6 +278,8 @@ class FitResult:
             "term_tests": [_clean(asdict(t)) for t in self.term_tests],
             "collinearity": [_clean(asdict(t)) for t in self.collinearity],
         }
+        if storage and self.inverse_entries is not None:
+            out["inverse_entries"] = self.inverse_entries.to_dict()
         if self.deployment:
             out["deployment"] = dict(self.deployment)
             out["scoring_view"] = self.deployment.get("scoring_view")
@@ -331,6 +370,9 @@ class FitResult:
             collinearity=tuple(
                 Collinearity(t["term"], int(t["df"]), f(t["gvif"]), f(t["gvif_scaled"]))
                 for t in d.get("collinearity", [])
+            ),
+            inverse_entries=(
+                InverseEntries.from_dict(d["inverse_entries"]) if d.get("inverse_entries") else None
             ),
         )
 

@@ -284,6 +284,7 @@ def retrain(
             view_schema=deploy.get("view_schema"),
             score_source=deploy.get("score_source"),
             intervals=deploy.get("intervals"),
+            diagnostics=deploy.get("diagnostics"),
             parent_version=live_version,
             assessments=pending,
         )

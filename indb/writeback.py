@@ -20,9 +20,11 @@ import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
+from indb.colpairs import PairColumn, compatible_pairs
 from indb.engines.backends import dialect_for
 from indb.engines.base_dialect import Dialect
 from indb.errors import SpecError
+from indb.quadform import QuadraticForm, quadratic_form_sql
 from indb.results import STORED_COVARIANCE_MAX_TERMS, FitResult
 from indb.splines import spline_basis_sql
 from indb.sqlexpr import Expr
@@ -31,6 +33,8 @@ SRC = "indb_src"
 #: the standard-error quadratic form has p^2 terms; beyond this many coefficients it is
 #: refused (and the registry stores no covariance, results.STORED_COVARIANCE_MAX_TERMS)
 MAX_SE_TERMS = STORED_COVARIANCE_MAX_TERMS
+#: alias prefix of the lookup tables the standard error's quadratic form joins
+SE_LOOKUP = "indb__se"
 NAME_RE = re.compile(r"[A-Za-z][A-Za-z0-9_]{0,62}")
 
 
@@ -94,11 +98,19 @@ def _text(column: str) -> Expr:
 
 
 def _value(c: _Col, knots: dict[str, list[float]]) -> Expr | None:
-    if not c.numerics:
+    return value_sql(c.numerics, c.basis, knots)
+
+
+def value_sql(
+    numerics: Sequence[str], basis: int | None, knots: dict[str, list[float]]
+) -> Expr | None:
+    """A design value on the source's scale: the product of ``numerics``, or spline basis
+    function ``basis`` of the one numeric (None: the constant 1)."""
+    if not numerics:
         return None
-    if c.basis is not None:
-        return spline_basis_sql(S.as_double(S.col(c.numerics[0])), knots[c.numerics[0]], c.basis)
-    return S.mul(*(S.as_double(S.col(n)) for n in c.numerics))
+    if basis is not None:
+        return spline_basis_sql(S.as_double(S.col(numerics[0])), knots[numerics[0]], basis)
+    return S.mul(*(S.as_double(S.col(n)) for n in numerics))
 
 
 def _indicator(c: _Col) -> Expr | None:
@@ -193,13 +205,24 @@ def unseen_sql(res: FitResult) -> Expr:
     return S.add(*flags) if flags else exp.Literal.number(0)
 
 
-def se_eta_sql(res: FitResult) -> Expr:
-    """Standard error of the linear predictor: sqrt(x' V x) as a SQL quadratic form.
+def pair_columns(res: FitResult, value_key: str = "raw") -> list[PairColumn]:
+    """The result's design columns as :mod:`indb.colpairs` sees them. ``value_key`` "raw":
+    columns multiplying the same source value share a key (numerics, basis); "design": the
+    fit's value index, which also tells a centred value from the scaled one."""
+    if value_key == "raw":
+        return [PairColumn(c.factors, c.levels, (c.numerics, c.basis)) for c in _columns(res)]
+    stored = res.design.get("columns") or []
+    return [PairColumn(tuple(c["factors"]), tuple(c["levels"]), int(c["value"])) for c in stored]
 
-    GREATEST(q, 0) takes away rounding below 0 only on rows whose eta is valid, where every
-    x is a number; :func:`scoring_query` guards the rest (GREATEST(NULL, 0) would be 0)."""
-    terms = _design_terms(res)
-    p = len(terms)
+
+def se_eta_form(res: FitResult) -> QuadraticForm:
+    """x' V x, V the covariance, as a SQL quadratic form through the categorical blocks
+    (:func:`indb.quadform.quadratic_form_sql`); the standard error of eta is its root.
+
+    :func:`scoring_query` takes its square root only on rows whose eta is valid, where every
+    x is a number; GREATEST(q, 0) takes away rounding below 0 there."""
+    columns = _columns(res)
+    p = len(columns)
     if p > MAX_SE_TERMS or res.covariance is None:
         raise SpecError(
             f"intervals (score_se_eta and the confidence limits) are available for models of "
@@ -207,17 +230,17 @@ def se_eta_sql(res: FitResult) -> Expr:
             "intervals (leave out --intervals / intervals=True) or merge levels"
         )
     cov = np.nan_to_num(np.asarray(res.covariance, dtype=float), nan=0.0)
-    xs: list[Expr] = []
-    for _c, ind, val in terms:
-        base = val if val is not None else S.num(1.0)
-        xs.append(base if ind is None else S.case([(ind, base)], S.num(0.0)))
-    quad: list[Expr] = []
-    for j in range(p):
-        if cov[j, j] == 0.0:
-            continue
-        inner = [S.mul(S.num(cov[j, k]), xs[k]) for k in range(p) if cov[j, k] != 0.0]
-        quad.append(S.mul(xs[j], S.add(*inner)))
-    return S.sqrt(S.greatest(S.add(*quad), S.num(0.0)))
+    pcs = pair_columns(res)
+    pairs = compatible_pairs(pcs)
+    if pairs is None:  # not with p <= MAX_SE_TERMS: at most p (p + 1) / 2 pairs
+        raise SpecError(
+            "intervals: the standard error's quadratic form of this model needs more pairs of "
+            "coefficients than indb writes into a view; score without intervals"
+        )
+    rows, cols = pairs
+    knots = res.design.get("knots", {})
+    multipliers = {pc.value: _value(c, knots) for pc, c in zip(pcs, columns, strict=True)}
+    return quadratic_form_sql(pcs, rows, cols, cov[rows, cols], multipliers, SE_LOOKUP)
 
 
 def scoring_query(
@@ -243,6 +266,7 @@ def scoring_query(
         )
     link = res.link_object
     eta = eta_sql(res, dialect, include_offset=include_offset)
+    form: QuadraticForm | None = None
     # A row gets a mean only where eta is a finite number the inverse link takes; NULL,
     # NaN and +/-inf inputs (a NULL age, ln of a negative exposure) give NULL eta, mean,
     # standard error and bounds, and count 1 in the unseen column.
@@ -263,7 +287,8 @@ def scoring_query(
         # NULL where the row has no mean, by adding a CASE that is 0 or NULL rather than by
         # putting the quadratic form inside a CASE branch: DuckDB shares the common parts
         # of an expression only outside conditional branches (3x faster at 10^6 rows)
-        se = S.add(se_eta_sql(res), S.case([(valid.copy(), S.num(0.0))]))
+        form = se_eta_form(res)
+        se = S.add(S.sqrt(S.greatest(form.value, S.num(0.0))), S.case([(valid.copy(), S.num(0.0))]))
         down = link.mean_sql(S.sub(eta.copy(), S.mul(S.num(q), se.copy())))
         up = link.mean_sql(S.add(eta.copy(), S.mul(S.num(q), se.copy())))
         # ordered by the link's direction, not LEAST/GREATEST, which would skip a NULL bound
@@ -273,7 +298,8 @@ def scoring_query(
     cols.append(S.alias(S.add(unseen_sql(res), unscored), names.unseen))
     src = source.copy()
     src.set("alias", exp.TableAlias(this=S.ident(SRC)))
-    return S.select(cols, src)
+    query = S.select(cols, src)
+    return form.joined(query) if form is not None else query
 
 
 def model_inputs(res: FitResult, dialect: Dialect, include_offset: bool = True) -> list[str]:
@@ -325,6 +351,7 @@ REGISTRY_TABLES: dict[str, list[tuple[str, str]]] = {
         ("macro_name", "TEXT"),
         ("score_source", "TEXT"),
         ("intervals", "BOOLEAN"),
+        ("diagnostics", "BOOLEAN"),
     ],
     "model_version": [
         ("model_name", "TEXT"),
@@ -425,6 +452,22 @@ RENAMED_REGISTRY_COLUMNS: dict[str, dict[str, str]] = {
     "model_version": {"df_resid": "residual_df"},
     "version_term": {"statistic": "wald", "p_value": "p_two_sided"},
 }
+
+
+#: Registry columns added since indb 0.2.0: ``{table: [(column, type), ...]}``;
+#: :meth:`indb.registry.Registry.ensure` adds them to a registry written before.
+ADDED_REGISTRY_COLUMNS: dict[str, list[tuple[str, str]]] = {
+    "model": [("diagnostics", "BOOLEAN")],
+}
+
+
+def add_column(schema: str, table: str, column: str, kind: str) -> exp.Alter:
+    """ALTER TABLE schema.table ADD COLUMN column kind."""
+    return exp.Alter(
+        this=table_ref(schema, table),
+        kind="TABLE",
+        actions=[exp.ColumnDef(this=S.ident(column), kind=exp.DataType.build(kind))],
+    )
 
 
 def rename_column(schema: str, table: str, old: str, new: str) -> exp.Alter:

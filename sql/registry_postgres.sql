@@ -12,7 +12,7 @@
 
 CREATE SCHEMA IF NOT EXISTS "indb_registry";
 
-CREATE TABLE IF NOT EXISTS "indb_registry"."model" ("model_name" TEXT, "created_at" TIMESTAMP, "live_version" INT, "view_schema" TEXT, "view_name" TEXT, "macro_name" TEXT, "score_source" TEXT, "intervals" BOOLEAN, PRIMARY KEY ("model_name"));
+CREATE TABLE IF NOT EXISTS "indb_registry"."model" ("model_name" TEXT, "created_at" TIMESTAMP, "live_version" INT, "view_schema" TEXT, "view_name" TEXT, "macro_name" TEXT, "score_source" TEXT, "intervals" BOOLEAN, "diagnostics" BOOLEAN, PRIMARY KEY ("model_name"));
 
 CREATE TABLE IF NOT EXISTS "indb_registry"."model_version" ("model_name" TEXT, "version" INT, "created_at" TIMESTAMP, "status" TEXT, "family" TEXT, "link" TEXT, "response" TEXT, "source" TEXT, "deviance" DOUBLE PRECISION, "null_deviance" DOUBLE PRECISION, "pearson_chi2" DOUBLE PRECISION, "dispersion" DOUBLE PRECISION, "log_likelihood" DOUBLE PRECISION, "aic" DOUBLE PRECISION, "bic" DOUBLE PRECISION, "residual_df" DOUBLE PRECISION, "n_used" BIGINT, "n_excluded" BIGINT, "iterations" INT, "converged" BOOLEAN, "seconds" DOUBLE PRECISION, "spec_hash" TEXT, "spec_json" TEXT, "fingerprint_json" TEXT, "result_json" TEXT, "package_version" TEXT, "parent_version" INT, "note" TEXT, PRIMARY KEY ("model_name", "version"));
 

@@ -276,6 +276,7 @@ KEY_CASES = [
     ("deploy", "score_source", "1979-05-27", TEXT),
     ("deploy", "intervals", '"no"', BOOLEAN),
     ("deploy", "intervals", "0", BOOLEAN),
+    ("deploy", "diagnostics", '"yes"', BOOLEAN),
     ("deploy", "registry_schema", "false", TEXT),
     ("gates", "require_converged", '"true"', BOOLEAN),
     ("gates", "max_relative_change", '"10%"', NUMBER),
