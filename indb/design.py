@@ -61,6 +61,8 @@ class Inputs:
     trials: Expr | None
     model_columns: tuple[str, ...]  # every source column the model reads
     spline_columns: tuple[tuple[str, int], ...] = ()
+    #: the rows' cluster (covariance 'cluster'): a NULL sets the row aside, as a NULL offset
+    cluster: Expr | None = None
 
 
 @dataclass(frozen=True)
@@ -303,7 +305,7 @@ def resolve_inputs(
 
     used_by_exprs: list[str] = [spec.response]
 
-    def parse(expr_text: str | None, role: str) -> Expr | None:
+    def parse(expr_text: str | None, role: str, used: list[str] = used_by_exprs) -> Expr | None:
         if expr_text is None:
             return None
         try:
@@ -322,13 +324,17 @@ def resolve_inputs(
         refs = S.referenced_columns(tree)
         for r in refs:
             need(r, f"{role} expression {expr_text!r} uses")
-            used_by_exprs.append(r)
+            used.append(r)
         return tree
 
     offset = parse(spec.offset, "offset")
     weight = parse(spec.weight, "weight")
     freq = parse(spec.frequency_weight, "frequency_weight")
     trials = parse(spec.trials, "trials")
+    # the cluster's columns stay out of the default predictors (an identifier would become
+    # one), but one may be a predictor too when named (clusters of a categorical term)
+    cluster_columns: list[str] = []
+    cluster = parse(spec.cluster, "cluster", cluster_columns)
 
     for c in spec.exclude:
         need(c, "exclude option's")
@@ -353,7 +359,7 @@ def resolve_inputs(
                 )
         main = [c for c in names if c in set(spec.predictors) and c not in excluded]
     else:
-        main = [c for c in names if c not in excluded]
+        main = [c for c in names if c not in excluded and c not in cluster_columns]
 
     kind: dict[str, str] = {}
     involved = set(main) | {c for g in spec.interactions for c in g} | {c for c, _ in spec.splines}
@@ -415,7 +421,7 @@ def resolve_inputs(
     factors = tuple(c for c in names if kind.get(c) == "categorical")
     numerics = tuple(c for c in names if kind.get(c) == "numeric")
     model_cols = [spec.response, *(c for c in names if c in kind)]
-    for c in used_by_exprs:
+    for c in [*used_by_exprs, *cluster_columns]:
         if c not in model_cols:
             model_cols.append(c)
     return Inputs(
@@ -431,6 +437,7 @@ def resolve_inputs(
         trials=trials,
         model_columns=tuple(model_cols),
         spline_columns=tuple(spec.splines),
+        cluster=cluster,
     )
 
 

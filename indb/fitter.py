@@ -16,7 +16,7 @@ import warnings
 
 import numpy as np
 
-from indb import folding, magnitudes, prefit, solver
+from indb import covariance, folding, magnitudes, prefit, solver
 from indb.design import build_design, plan_values
 from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
@@ -70,6 +70,7 @@ def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
     solver.check_size(design)
+    covariance.check_size(spec, design)
     run.phase = "fit"
     return ctx, design, summary, n_total, n_kept, by_col
 
@@ -166,6 +167,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         null_mu=null_mu,
         null_track=track,
         off_mean=summary.off_mean,
+        covariance=covariance.carried_sums(spec),
     )
     if track is not None and null_dev is None:
         # the fitted model settled first: finish the intercept-only model on its own
@@ -202,6 +204,10 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
             raise NonConvergenceError(msg)
         warnings.warn(msg, ConvergenceWarning, stacklevel=2)
         warn_msgs.append(msg)
+    sandwich = covariance.sandwich_at(ctx, design, run, state, n_kept)
+    if sandwich is not None and sandwich.bread_note:
+        warnings.warn(sandwich.bread_note, ConvergenceWarning, stacklevel=2)
+        warn_msgs.append(sandwich.bread_note)
     return result(
         ctx,
         design,
@@ -215,4 +221,5 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         warn_msgs,
         t_start,
         report_spec,
+        sandwich,
     )

@@ -1,0 +1,114 @@
+"""The covariance kinds of a fit (``covariance`` option): which sums the IRLS scans carry,
+the cluster scan, and the sandwich at the final coefficients (:mod:`indb.sandwich`).
+
+``model`` needs nothing beyond IRLS. ``robust`` needs the meat sum(f u^2 x x') and, for a
+non-canonical link, the observed information, both at the final coefficients: they ride
+in the last IRLS scans (``irls.CARRY_STEP``), and one scan at the final coefficients adds
+them only when the last scan did not carry them. ``cluster`` needs the observed
+information the same way and one scan of its own, grouped by cluster inside the engine
+(:func:`indb.plan.cluster_scan.cluster_query`).
+"""
+
+from __future__ import annotations
+
+import math
+import time
+
+from indb import sandwich, solver
+from indb.design import Design
+from indb.errors import SpecError
+from indb.fitrun import FitRun
+from indb.irls import IrlsState
+from indb.plan.cluster_scan import cluster_query
+from indb.plan.context import PlanContext
+from indb.plan.irls_scan import gram_query
+from indb.results import COVARIANCE_MAX_TERMS
+from indb.spec import ModelSpec
+
+#: the iteration log's phase of a scan that only serves the covariance
+PHASE = "covariance"
+
+
+def carried_sums(spec: ModelSpec) -> tuple[str, ...]:
+    """The covariance sums (``plan.irls_scan.COVARIANCE_SUMS``) the last IRLS scan should
+    carry for ``spec``'s kind: the meat for ``robust``, the observed information wherever
+    a sandwich is taken with a non-canonical link."""
+    if spec.covariance == "model":
+        return ()
+    meat = ("meat",) if spec.covariance == "robust" else ()
+    observed = () if spec.family.is_canonical(spec.link) else ("observed",)
+    return meat + observed
+
+
+def check_size(spec: ModelSpec, design: Design) -> None:
+    """Refuse, before any IRLS scan, a sandwich for a design too large to hold its whole
+    covariance matrix (the many-levels route keeps only the inverse's factors)."""
+    if spec.covariance == "model" or design.p <= COVARIANCE_MAX_TERMS:
+        return
+    raise SpecError(
+        f"covariance {spec.covariance!r} needs the whole covariance matrix, which indb forms "
+        f"for at most {COVARIANCE_MAX_TERMS:,} coefficients; this design has {design.p:,}: "
+        "use covariance='model' (CLI --covariance model), or merge levels"
+    )
+
+
+def sandwich_at(
+    ctx: PlanContext, design: Design, run: FitRun, state: IrlsState, rows: int
+) -> sandwich.Sandwich | None:
+    """The sandwich covariance of ``ctx.spec``'s kind at the final coefficients
+    (``state.beta``), in the units of the fit's standardized coefficients and of its
+    internal rescaling; None for the ``model`` kind. ``rows`` are the rows used (N)."""
+    spec = ctx.spec
+    if spec.covariance == "model":
+        return None
+    sums = _with_carried(ctx, design, run, state)
+    b, note = sandwich.bread(state.solution, sums.matrices.get("observed"))
+    aliased = state.solution.aliased
+    if spec.covariance == "robust":
+        # the internal rescaling multiplies frequency weights by freq_factor: the meat
+        # (one f per row) by it, the bread by its inverse twice; weights' and response's
+        # factors cancel as they do in the model-based covariance
+        factor = run.scaling.freq_factor
+        cov = sandwich.covariance(b, sums.matrices["meat"].toarray(), aliased, factor)
+        return sandwich.Sandwich(cov, None, note)
+    meat, clusters = _cluster_meat(ctx, design, run, state)
+    if clusters < 2:
+        raise SpecError(
+            f"cluster expression {spec.cluster!r} takes {clusters} value(s) over the {rows:,} "
+            "rows used; cluster-robust errors need two clusters or more (more than a few "
+            "dozen to be trusted): use a finer cluster, or covariance='robust'"
+        )
+    rank = int((~aliased).sum())
+    factor = sandwich.cluster_factor(clusters, rows, rank)
+    return sandwich.Sandwich(sandwich.covariance(b, meat, aliased, factor), clusters, note)
+
+
+def _with_carried(ctx: PlanContext, design: Design, run: FitRun, state: IrlsState) -> solver.Sums:
+    """The final scan's sums with the carried covariance sums: the last IRLS scan's, or,
+    when it carried none, one IRLS scan at the final coefficients that does."""
+    wanted = carried_sums(ctx.spec)
+    if all(name in state.sums.matrices for name in wanted):
+        return state.sums
+    t0 = time.perf_counter()
+    tree = gram_query(
+        ctx, design, state.beta, ybar=math.nan, cells=state.sums.cell_keys, covariance=wanted
+    )
+    sums = solver.assemble(design, run.query(tree))
+    run.check_rows(sums)
+    _record(run, sums.deviance, time.perf_counter() - t0)
+    return sums
+
+
+def _cluster_meat(ctx: PlanContext, design: Design, run: FitRun, state: IrlsState):
+    t0 = time.perf_counter()
+    rows = run.query(cluster_query(ctx, design, state.beta, state.sums.cell_keys))
+    _record(run, math.nan, time.perf_counter() - t0)
+    return sandwich.cluster_meat(design, rows)
+
+
+def _record(run: FitRun, deviance: float, seconds: float) -> None:
+    phase, run.phase = run.phase, PHASE
+    try:
+        run.record(deviance, math.nan, 0, seconds)
+    finally:
+        run.phase = phase
