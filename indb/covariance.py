@@ -13,13 +13,16 @@ from __future__ import annotations
 
 import math
 import time
+import uuid
+
+import numpy as np
 
 from indb import sandwich, solver
 from indb.design import Design
 from indb.errors import SpecError
 from indb.fitrun import FitRun
 from indb.irls import IrlsState
-from indb.plan.cluster_scan import cluster_query
+from indb.plan.cluster_scan import pairs_query, scores_query, totals_query
 from indb.plan.context import PlanContext
 from indb.plan.irls_scan import gram_query
 from indb.results import COVARIANCE_MAX_TERMS
@@ -99,9 +102,28 @@ def _with_carried(ctx: PlanContext, design: Design, run: FitRun, state: IrlsStat
     return sums
 
 
-def _cluster_meat(ctx: PlanContext, design: Design, run: FitRun, state: IrlsState):
+def _cluster_meat(
+    ctx: PlanContext, design: Design, run: FitRun, state: IrlsState
+) -> tuple[np.ndarray, int]:
+    """The cluster scan: the clusters' scores per cell summed in one read of the source,
+    their outer products summed in the engine (:mod:`indb.plan.cluster_scan`).
+
+    Without factors that is one query. With factors the scores per cluster and cell are
+    joined with themselves on the cluster, so they are stored first (a temporary table,
+    dropped at once): the source is read once on every engine (Spark would read it again
+    for each side of the join)."""
     t0 = time.perf_counter()
-    rows = run.query(cluster_query(ctx, design, state.beta, state.sums.cell_keys))
+    scores = scores_query(ctx, design, state.beta, state.sums.cell_keys)
+    if not design.factors:
+        rows = run.query(totals_query(design, scores))
+    else:
+        name = f"indb_scores_{uuid.uuid4().hex[:12]}"
+        run.temp_tables.append(name)
+        for stmt in ctx.dialect.materialize(name, scores):
+            run.engine.execute(stmt)
+        rows = run.query(pairs_query(design, ctx.dialect.table(name)))
+        run.engine.execute(ctx.dialect.drop_materialized(name))
+        run.temp_tables.remove(name)
     _record(run, math.nan, time.perf_counter() - t0)
     return sandwich.cluster_meat(design, rows)
 

@@ -38,61 +38,72 @@ from indb.plan.irls_scan import (
 CLUSTERS = "clusters"
 
 
-def cluster_query(
+def scores_query(
     ctx: PlanContext,
     design: Design,
     beta: np.ndarray,
     cells: list[tuple[str, ...]] | None = None,
 ) -> exp.Select:
-    """The cluster-robust meat at the standardized coefficients ``beta`` (see the module
-    docstring for the columns returned)."""
+    """Each cluster's score per factor cell at the standardized coefficients ``beta``:
+    the kept rows grouped by cluster (``clu``) and cell, ``u_a`` = sum(f u v_a)."""
     ctx = dataclasses.replace(ctx, row_extras=(*ctx.row_extras, "clu"))
     mean = _mean_stage(ctx, design, _eta_from_beta(ctx, design, beta, cells))
     fu = covariance_terms(ctx)["fu"]
     work = _work_stage(ctx, design, mean, [("clu", S.col("clu")), ("fu", fu)])
-    factors = [f.alias for f in design.factors]
     values = [None, *(v.alias for v in design.values[1:])]
     sums = [
         S.alias(S.psum(S.mul(S.col("fu"), *([S.col(v)] if v else []))), f"u_{a}")
         for a, v in enumerate(values)
     ]
-    keys = [S.col("clu"), *(S.col(f) for f in factors)]
-    per = S.select([*keys, *sums], S.subquery(work, "w"), group_by=[k.copy() for k in keys])
-    m = len(values)
-    pairs = [(a, b) for a in range(m) for b in range(a, m)]
-    if not factors:
-        products = [
-            S.alias(S.psum(S.mul(S.col(f"u_{a}"), S.col(f"u_{b}"))), f"c_{a}_{b}") for a, b in pairs
-        ]
-        return S.select([S.alias(S.count_star(), CLUSTERS), *products], S.subquery(per, "per"))
-    return _pairs_query(per, factors, pairs)
+    keys = [S.col("clu"), *(S.col(f.alias) for f in design.factors)]
+    return S.select([*keys, *sums], S.subquery(work, "w"), group_by=[k.copy() for k in keys])
 
 
-def _pairs_query(per: exp.Select, factors: list[str], pairs: list[tuple[int, int]]) -> exp.Select:
-    """``per`` joined with itself on the cluster, summed by the pair of cells."""
+def _pairs(design: Design) -> list[tuple[int, int]]:
+    m = len(design.values)
+    return [(a, b) for a in range(m) for b in range(a, m)]
+
+
+def totals_query(design: Design, scores: exp.Select) -> exp.Select:
+    """The meat of a design without factors, from :func:`scores_query` (one row per
+    cluster, read once): the count of clusters and ``c_a_b`` = sum(u_a u_b)."""
+    products = [
+        S.alias(S.psum(S.mul(S.col(f"u_{a}"), S.col(f"u_{b}"))), f"c_{a}_{b}")
+        for a, b in _pairs(design)
+    ]
+    return S.select([S.alias(S.count_star(), CLUSTERS), *products], S.subquery(scores, "per"))
+
+
+def pairs_query(design: Design, table: exp.Expression) -> exp.Select:
+    """The meat of a design with factors, from the stored rows of :func:`scores_query` in
+    ``table``: joined with themselves on the cluster and summed by the pair of cells
+    (``l*``, ``r*``), ``c_a_b`` = sum(left u_a * right u_b) for a <= b, and the count of
+    clusters beside every pair."""
     left, right = "a", "b"
+    factors = [f.alias for f in design.factors]
+
+    def rel(alias: str | None) -> exp.Expression:
+        t = table.copy()
+        t.set("alias", exp.TableAlias(this=S.ident(alias)) if alias else None)
+        return t
+
     cells = [S.alias(S.col(f, left), f"l{i}") for i, f in enumerate(factors)]
     cells += [S.alias(S.col(f, right), f"r{i}") for i, f in enumerate(factors)]
     products = [
         S.alias(S.psum(S.mul(S.col(f"u_{a}", left), S.col(f"u_{b}", right))), f"c_{a}_{b}")
-        for a, b in pairs
+        for a, b in _pairs(design)
     ]
-    # the cluster count rides along: one value, beside every pair
-    distinct = S.select([S.col("clu")], exp.Table(this=S.ident("per")), group_by=[S.col("clu")])
+    distinct = S.select([S.col("clu")], rel(None), group_by=[S.col("clu")])
     count = S.select([S.alias(S.count_star(), CLUSTERS)], S.subquery(distinct, "d"))
     query = S.select(
         [*cells, *products, S.alias(S.max_(S.col(CLUSTERS, "g")), CLUSTERS)],
-        exp.Table(this=S.ident("per"), alias=exp.TableAlias(this=S.ident(left))),
-        group_by=[
-            *(S.col(f, left) for f in factors),
-            *(S.col(f, right) for f in factors),
-        ],
+        rel(left),
+        group_by=[*(S.col(f, left) for f in factors), *(S.col(f, right) for f in factors)],
     )
     query = query.join(
-        exp.Table(this=S.ident("per"), alias=exp.TableAlias(this=S.ident(right))),
+        rel(right),
         on=S.eq(S.col("clu", left), S.col("clu", right)),
         join_type="inner",
         copy=False,
     )
-    query = query.join(S.subquery(count, "g"), join_type="cross", copy=False)
-    return query.with_("per", as_=per, copy=False)
+    return query.join(S.subquery(count, "g"), join_type="cross", copy=False)
