@@ -21,8 +21,8 @@ import pytest
 from covariance_cases import (
     CASES,
     CASES_BY_ID,
-    F,
     CovCase,
+    F,
     covariance_gap,
     design,
     numpy_sandwich,
@@ -309,8 +309,8 @@ def test_cli_cluster_errors_are_one_line_exit_2(tmp_path: Any) -> None:
     ok = runner.invoke(
         main,
         [
-            "fit", str(path), "--response", "invest", "--family", "gaussian", "--predictors", "value",
-            "--covariance", "cluster", "--cluster", "firm", "--json",
+            "fit", str(path), "--response", "invest", "--family", "gaussian",
+            "--predictors", "value", "--covariance", "cluster", "--cluster", "firm", "--json",
         ],
     )  # fmt: skip
     assert ok.exit_code == 0, ok.output
