@@ -16,6 +16,7 @@ import time
 import uuid
 
 import numpy as np
+from sqlglot import exp
 
 from indb import sandwich, solver
 from indb.design import Design
@@ -30,6 +31,7 @@ from indb.spec import ModelSpec
 
 #: the iteration log's phase of a scan that only serves the covariance
 PHASE = "covariance"
+_SUM_NAMES = {"meat": "robust meat", "observed": "observed information"}
 
 
 def carried_sums(spec: ModelSpec) -> tuple[str, ...]:
@@ -113,19 +115,52 @@ def _cluster_meat(
     dropped at once): the source is read once on every engine (Spark would read it again
     for each side of the join)."""
     t0 = time.perf_counter()
-    scores = scores_query(ctx, design, state.beta, state.sums.cell_keys)
-    if not design.factors:
-        rows = run.query(totals_query(design, scores))
-    else:
-        name = f"indb_scores_{uuid.uuid4().hex[:12]}"
+    name, stored, meat = cluster_plan(ctx, design, state.beta, state.sums.cell_keys)
+    if name is not None:
         run.temp_tables.append(name)
-        for stmt in ctx.dialect.materialize(name, scores):
-            run.engine.execute(stmt)
-        rows = run.query(pairs_query(design, ctx.dialect.table(name)))
+    for stmt in stored:
+        run.engine.execute(stmt)
+    rows = run.query(meat)
+    if name is not None:
         run.engine.execute(ctx.dialect.drop_materialized(name))
         run.temp_tables.remove(name)
     _record(run, math.nan, time.perf_counter() - t0)
     return sandwich.cluster_meat(design, rows)
+
+
+def cluster_plan(
+    ctx: PlanContext,
+    design: Design,
+    beta: np.ndarray,
+    cells: list[tuple[str, ...]] | None = None,
+) -> tuple[str | None, list[str], exp.Select]:
+    """The cluster scan at ``beta``: the temporary table it stores the scores per cluster
+    and cell in (None without factors), the statements that store them, and the query that
+    returns the meat's sums."""
+    scores = scores_query(ctx, design, beta, cells)
+    if not design.factors:
+        return None, [], totals_query(design, scores)
+    name = f"indb_scores_{uuid.uuid4().hex[:12]}"
+    stored = ctx.dialect.materialize(name, scores)
+    return name, stored, pairs_query(design, ctx.dialect.table(name))
+
+
+def dry_run_sql(ctx: PlanContext, design: Design, beta: np.ndarray) -> list[tuple[str, str]]:
+    """What the covariance adds to a fit's SQL, for a dry run: the last IRLS scans with the
+    sums they carry, and the cluster scan."""
+    out: list[tuple[str, str]] = []
+    carried = carried_sums(ctx.spec)
+    if carried:
+        tree = gram_query(ctx, design, beta, ybar=math.nan, covariance=carried)
+        what = " and the ".join(_SUM_NAMES[name] for name in carried)
+        label = f"the last IRLS scans, with the {what} (no scan added)"
+        out.append((label, ctx.dialect.render(tree)))
+    if ctx.spec.covariance == "cluster":
+        _, stored, meat = cluster_plan(ctx, design, beta)
+        label = "cluster scan (once, at the final coefficients)"
+        out += [(f"{label}: the clusters' scores per cell, stored", sql) for sql in stored]
+        out.append((label, ctx.dialect.render(meat)))
+    return out
 
 
 def _record(run: FitRun, deviance: float, seconds: float) -> None:

@@ -89,6 +89,8 @@ def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
     start = start_from(spec, design, run.scaling)
     tree = gram_query(ctx, design, start, ybar=summary.ybar)
     sent.append(("IRLS scan (one per iteration; coefficients change)", engine.dialect.render(tree)))
+    # at the final coefficients in a fit; any coefficients show the SQL
+    sent += covariance.dry_run_sql(ctx, design, start if start is not None else np.zeros(design.p))
     return sent
 
 

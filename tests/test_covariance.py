@@ -431,3 +431,26 @@ def test_cluster_column_is_no_default_predictor_but_may_be_named() -> None:
         cluster="religious",
     )
     assert "religious=2" in named.terms and named.clusters == 4
+
+
+def test_dry_run_shows_the_covariance_scans() -> None:
+    con = duckdb_table(grunfeld(), "data")
+    cluster = indb.api.dry_run(
+        "data", "invest", db=con, predictors=["value", "firm"], covariance="cluster",
+        cluster="firm",
+    )  # fmt: skip
+    labels = [label for label, _ in cluster]
+    assert labels[-2:] == [
+        "cluster scan (once, at the final coefficients): the clusters' scores per cell, stored",
+        "cluster scan (once, at the final coefficients)",
+    ]
+    assert 'firm AS "clu"' in cluster[-2][1] and 'JOIN "indb_scores_' in cluster[-1][1]
+    robust = indb.api.dry_run(
+        "data", "invest", "gamma", "log", db=con, predictors=["value"], covariance="robust"
+    )
+    assert robust[-1][0] == (
+        "the last IRLS scans, with the robust meat and the observed information (no scan added)"
+    )
+    assert '"r_0_0"' in robust[-1][1] and '"o_0_0"' in robust[-1][1]
+    model = indb.api.dry_run("data", "invest", db=con, predictors=["value"])
+    assert model[-1][0] == "IRLS scan (one per iteration; coefficients change)"
