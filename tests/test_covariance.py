@@ -454,3 +454,18 @@ def test_dry_run_shows_the_covariance_scans() -> None:
     assert '"r_0_0"' in robust[-1][1] and '"o_0_0"' in robust[-1][1]
     model = indb.api.dry_run("data", "invest", db=con, predictors=["value"])
     assert model[-1][0] == "IRLS scan (one per iteration; coefficients change)"
+
+
+def test_an_aliased_column_is_left_out_of_bread_meat_and_k() -> None:
+    # statsmodels.datasets.grunfeld with a copy of `value` in other units: aliased, set
+    # aside; the other terms' covariance is the fit's without it (statsmodels, as above)
+    case = CASES_BY_ID["gaussian-grunfeld-firm-effects-cluster-firm"]
+    frame = case.load()
+    with_copy = frame.assign(value_k=frame["value"] / 1000.0)
+    with pytest.warns(indb.AliasingWarning):
+        res = fit(case, with_copy, predictors=["value", "value_k", "capital", "firm"])
+    assert res.coef("value_k").aliased
+    ref = statsmodels_fit(case, frame)
+    kept = [t != "value_k" for t in res.terms]
+    assert_allclose(res.std_errors[kept], ref["bse"], rtol=RTOL)
+    assert np.isnan(res.covariance[:, ~np.array(kept)]).all()
