@@ -469,3 +469,29 @@ def test_an_aliased_column_is_left_out_of_bread_meat_and_k() -> None:
     kept = [t != "value_k" for t in res.terms]
     assert_allclose(res.std_errors[kept], ref["bse"], rtol=RTOL)
     assert np.isnan(res.covariance[:, ~np.array(kept)]).all()
+
+
+def test_a_refit_with_another_kind_is_a_new_live_version(tmp_path: Any) -> None:
+    # the estimates are the same model's: a new version (the spec hash differs, so it is no
+    # repeat of version 1) that goes live by default (the kind is no change of model)
+    db = str(tmp_path / "m.duckdb")
+    con = duckdb.connect(db)
+    con.register("f", grunfeld())
+    con.execute("CREATE TABLE data AS SELECT * FROM f")
+    con.close()
+    first = indb.fit("data", "invest", db=db, predictors=["value"], name="inv")
+    second = indb.fit(
+        "data", "invest", db=db, predictors=["value"], name="inv", covariance="cluster",
+        cluster="firm",
+    )  # fmt: skip
+    assert first.deployment["version"] == 1 and second.deployment["version"] == 2
+    assert second.deployment["promoted"]
+    reg = indb.api.registry(db)
+    try:
+        live = reg.load("inv")
+    finally:
+        reg.engine.close()
+    assert live.covariance_kind == "cluster" and live.clusters == 11
+    assert live.spec["cluster"] == "firm"
+    assert_allclose(live.estimates, first.estimates, rtol=1e-12)
+    assert not np.allclose(live.std_errors, first.std_errors)
