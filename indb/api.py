@@ -61,6 +61,8 @@ def fit(
     start: Mapping[str, float] | None = None,
     compress: str = "auto",
     sample_start: str = "auto",
+    covariance: str = "model",
+    cluster: str | None = None,
     progress: Any = None,
     name: str | None = None,
     promote: bool | None = None,
@@ -118,6 +120,8 @@ def fit(
         start=start,
         compress=compress,
         sample_start=sample_start,
+        covariance=covariance,
+        cluster=cluster,
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)

@@ -61,6 +61,15 @@ class Family:
     def variance_sql(self, mu: Expr) -> Expr:
         raise NotImplementedError
 
+    def variance_deriv_sql(self, mu: Expr) -> Expr:
+        """dV/dmu, which the observed information of a non-canonical link reads."""
+        raise NotImplementedError
+
+    def is_canonical(self, link: Link) -> bool:
+        """Whether ``link`` is the canonical link of this family, g'(mu) = 1 / V(mu): then
+        the observed information equals the expected one (X'WX) at every coefficient."""
+        return link.describe() == self.canonical
+
     def unit_deviance_sql(self, y: Expr, mu: Expr) -> Expr:
         raise NotImplementedError
 
@@ -137,6 +146,9 @@ class Gaussian(Family):
     def variance_sql(self, mu):
         return S.num(1.0)
 
+    def variance_deriv_sql(self, mu):
+        return S.num(0.0)
+
     def unit_deviance_sql(self, y, mu):
         r = S.sub(y, mu)
         return S.mul(r, r)
@@ -188,6 +200,9 @@ class Binomial(Family):
 
     def variance_sql(self, mu):
         return S.mul(mu, S.sub(S.num(1.0), mu))
+
+    def variance_deriv_sql(self, mu):
+        return S.sub(S.num(1.0), S.mul(S.num(2.0), mu))
 
     def unit_deviance_sql(self, y, mu):
         one = S.num(1.0)
@@ -248,6 +263,9 @@ class Poisson(Family):
     def variance_sql(self, mu):
         return mu
 
+    def variance_deriv_sql(self, mu):
+        return S.num(1.0)
+
     def unit_deviance_sql(self, y, mu):
         return S.mul(S.num(2.0), S.sub(_xlogy_ratio(y, mu), S.sub(y, mu)))
 
@@ -287,6 +305,9 @@ class Gamma(Family):
 
     def variance_sql(self, mu):
         return S.mul(mu, mu)
+
+    def variance_deriv_sql(self, mu):
+        return S.mul(S.num(2.0), mu)
 
     def unit_deviance_sql(self, y, mu):
         return S.mul(S.num(2.0), S.add(S.neg(S.ln(S.div(y, mu))), S.div(S.sub(y, mu), mu)))
@@ -330,6 +351,9 @@ class InverseGaussian(Family):
 
     def variance_sql(self, mu):
         return S.mul(mu, mu, mu)
+
+    def variance_deriv_sql(self, mu):
+        return S.mul(S.num(3.0), mu, mu)
 
     def unit_deviance_sql(self, y, mu):
         r = S.sub(y, mu)
@@ -398,6 +422,24 @@ class Tweedie(Family):
     def variance_sql(self, mu):
         return S.power(mu, S.num(self.var_power))
 
+    def variance_deriv_sql(self, mu):
+        p = self.var_power
+        if p == 0:
+            return S.num(0.0)
+        if p == 1:
+            return S.num(1.0)
+        return S.mul(S.num(p), S.power(mu, S.num(p - 1.0)))
+
+    def is_canonical(self, link):
+        # g(mu) = mu^(1-p) / (1-p), the log at p = 1 (the "canonical" attribute is the
+        # default link, log, which is canonical only for p = 1)
+        p = self.var_power
+        if p == 1:
+            return link.name == "log"
+        if p == 0:
+            return link.name == "identity"
+        return isinstance(link, PowerLink) and link.exponent == 1.0 - p
+
     def unit_deviance_sql(self, y, mu):
         p = self.var_power
         if p == 1:
@@ -453,6 +495,14 @@ class NegativeBinomial(Family):
 
     def variance_sql(self, mu):
         return S.add(mu, S.div(S.mul(mu, mu), S.num(self.theta)))
+
+    def variance_deriv_sql(self, mu):
+        return S.add(S.num(1.0), S.div(S.mul(S.num(2.0), mu), S.num(self.theta)))
+
+    def is_canonical(self, link):
+        # the canonical link ln(mu / (mu + theta)) is not offered ("canonical" names the
+        # default link, log)
+        return False
 
     def unit_deviance_sql(self, y, mu):
         th = S.num(self.theta)

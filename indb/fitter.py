@@ -16,7 +16,7 @@ import warnings
 
 import numpy as np
 
-from indb import folding, magnitudes, prefit, solver
+from indb import covariance, folding, magnitudes, prefit, solver
 from indb.design import build_design, plan_values
 from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
@@ -70,6 +70,7 @@ def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
     if design.p == 0:
         raise SpecError("the model has no coefficients to estimate")
     solver.check_size(design)
+    covariance.check_size(spec, design)
     run.phase = "fit"
     return ctx, design, summary, n_total, n_kept, by_col
 
@@ -88,6 +89,8 @@ def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
     start = start_from(spec, design, run.scaling)
     tree = gram_query(ctx, design, start, ybar=summary.ybar)
     sent.append(("IRLS scan (one per iteration; coefficients change)", engine.dialect.render(tree)))
+    # at the final coefficients in a fit; any coefficients show the SQL
+    sent += covariance.dry_run_sql(ctx, design, start if start is not None else np.zeros(design.p))
     return sent
 
 
@@ -172,6 +175,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         null_mu=null_mu,
         null_track=track,
         off_mean=summary.off_mean,
+        covariance=covariance.carried_sums(spec),
     )
     if track is not None and null_dev is None:
         # the fitted model settled first: finish the intercept-only model on its own
@@ -208,6 +212,10 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
             raise NonConvergenceError(msg)
         warnings.warn(msg, ConvergenceWarning, stacklevel=2)
         warn_msgs.append(msg)
+    sandwich = covariance.sandwich_at(ctx, design, run, state, n_kept)
+    if sandwich is not None and sandwich.bread_note:
+        warnings.warn(sandwich.bread_note, ConvergenceWarning, stacklevel=2)
+        warn_msgs.append(sandwich.bread_note)
     res = result(
         ctx,
         design,
@@ -221,6 +229,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         warn_msgs,
         t_start,
         report_spec,
+        sandwich,
     )
     if theta_est is None:
         return res

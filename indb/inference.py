@@ -23,6 +23,7 @@ from indb.plan.context import PlanContext
 from indb.plan.irls_scan import EDGE, NEAR_EDGE, loglik_query
 from indb.prefit import Summary
 from indb.results import COVARIANCE_MAX_TERMS, Coefficient, FitResult, InverseEntries
+from indb.sandwich import Sandwich
 
 SEPARATION_STD_SE = 100.0
 
@@ -40,11 +41,13 @@ def result(
     warn_msgs,
     t_start,
     report_spec,
+    sandwich: Sandwich | None = None,
 ) -> FitResult:
     """The :class:`~indb.results.FitResult` of a converged (or stopped) IRLS ``state``:
-    estimates back on the original scale, Wald inference with the dispersion, warnings
-    about aliased columns, separation, residual degrees of freedom and magnitudes,
-    log-likelihood, AIC and BIC, the fingerprint."""
+    estimates back on the original scale, Wald inference with the dispersion (or the
+    ``sandwich`` covariance of the spec's kind), warnings about aliased columns,
+    separation, residual degrees of freedom and magnitudes, log-likelihood, AIC and BIC,
+    the fingerprint."""
     spec = report_spec
     fam = spec.family
     sol = state.solution
@@ -63,14 +66,16 @@ def result(
     phi_fit = sc.rescale(phi) if fam.dispersion_fixed else phi
     dispersion = 1.0 if fam.dispersion_fixed else sc.unscale(phi_fit)
     beta_std = sc.to_original(np.where(sol.aliased, 0.0, state.beta), design.intercept)
+    clusters = sandwich.clusters if sandwich is not None else None
     inf = _inference(
         design,
         sol,
         beta_std,
         sc.coef_factor,
         phi_fit,
-        None if fam.dispersion_fixed else residual_df,
+        None if fam.dispersion_fixed else wald_df(residual_df, clusters),
         spec.confidence,
+        None if sandwich is None else sandwich.covariance,
     )
     coefs = tuple(
         Coefficient(
@@ -173,6 +178,8 @@ def result(
         condition_number=solver.condition_number(sums.xtwx, sol),
         warnings=tuple(warn_msgs),
         confidence=spec.confidence,
+        covariance_kind=spec.covariance,
+        clusters=clusters,
         # the dialect and column types the user's expressions (offset, weights) were
         # written against: scoring SQL for another engine reads them in that dialect
         # (indb.portable)
@@ -226,6 +233,7 @@ def _inference(
     phi_fit: float,
     df: float | None,
     confidence: float,
+    sandwich: np.ndarray | None = None,
 ) -> solver.Inference:
     """Wald inference on the source's scale, computed in units where nothing overflows.
 
@@ -235,16 +243,23 @@ def _inference(
     near 1e160 (its variance, ~1e-325, underflows where its standard error does not). So
     the statistics are taken on coefficients divided by u_j' (the power of two nearest
     u_j / ``coef_factor``), exactly, and estimates, standard errors and limits multiplied
-    back; only the covariance matrix itself over- or underflows where it must."""
+    back; only the covariance matrix itself over- or underflows where it must.
+
+    ``sandwich``, when given, is the covariance of the rescaled fit's standardized
+    coefficients (:mod:`indb.sandwich`) in place of ``phi_fit`` times the inverse
+    information."""
     t = solver.back_transform(design)
     est = t @ beta_std
     units = np.array([_nearest_power_of_two(abs(d) / coef_factor) for d in t.diagonal()])
     # t_u maps the rescaled fit's coefficients to est / units: t / coef_factor, row-scaled
     t_u = sparse.csr_array(sparse.diags_array(1.0 / (units * coef_factor)) @ t)
     # the whole covariance only while it is small; standard errors need its diagonal only
-    var_u, cov_u = solver.original_scale(
-        sol.inv_info, t_u, phi_fit, full=design.p <= COVARIANCE_MAX_TERMS
-    )
+    if sandwich is None:
+        var_u, cov_u = solver.original_scale(
+            sol.inv_info, t_u, phi_fit, full=design.p <= COVARIANCE_MAX_TERMS
+        )
+    else:
+        var_u, cov_u = solver.mapped_covariance(sandwich, t_u)
     inf = solver.wald(est / units, var_u, sol.aliased, df, confidence, cov_u)
     if np.all(units == 1.0):
         return inf
@@ -259,6 +274,13 @@ def _inference(
             if inf.covariance is None
             else inf.covariance * units[:, None] * units[None, :],
         )
+
+
+def wald_df(residual_df: float, clusters: int | None) -> float:
+    """Degrees of freedom of a t-referred Wald statistic: the residual df, or with
+    cluster-robust errors the clusters less one (statsmodels' ``df_correction``, on by
+    default for ``cov_type="cluster"``; common practice)."""
+    return residual_df if clusters is None else clusters - 1.0
 
 
 def _nearest_power_of_two(x: float) -> float:

@@ -23,6 +23,13 @@ from indb.sqlexpr import Expr
 MAX_HALVINGS = 30
 # halvings (step 1/4) after which a rise too small for the convergence test ends IRLS
 STALL_HALVINGS = 2
+# A scan carries the covariance sums (the robust meat, the observed information) when the
+# step that leads to it is below this many standard errors. IRLS stops at a scan whose next
+# step is below sqrt(tol) ~ 1e-4 standard errors; converging quadratically, the step into
+# that scan is about the square root of that times the problem's constant, well below 0.1,
+# so the last scan carries them and no scan is added. Where it does not (a fit that jumps
+# to its optimum from further away), one scan at the final coefficients adds them.
+CARRY_STEP = 0.1
 
 
 @dataclass(frozen=True)
@@ -60,15 +67,25 @@ def irls(
     null_mu: Expr | None = None,
     null_track: NullTrack | None = None,
     off_mean: float = 0.0,
+    covariance: tuple[str, ...] = (),
 ) -> tuple[IrlsState, float | None]:
     """Iterate scans until the deviance settles and the next step is negligible.
 
     Returns the state at the last scanned coefficients and the null deviance: from the
     first scan when ``null_mu`` (a per-row null mean) is given, or from ``null_track`` (the
     intercept-only model with the offset, iterated in the same scans) when it converged.
+    ``covariance`` names the covariance sums (``plan.irls_scan.COVARIANCE_SUMS``) the last
+    scans carry (see :data:`CARRY_STEP`); the state's sums have them when the last did.
     """
     loop = IrlsSolver(
-        ctx, design, run, ybar, null_mu=null_mu, null_track=null_track, off_mean=off_mean
+        ctx,
+        design,
+        run,
+        ybar,
+        null_mu=null_mu,
+        null_track=null_track,
+        off_mean=off_mean,
+        covariance=covariance,
     )
     return loop.fit(start)
 
@@ -88,7 +105,8 @@ class IrlsSolver:
        negligible.
 
     :meth:`scan` is one query: the log-link scan where it applies (:meth:`log_scan_sums`),
-    else the IRLS scan (:meth:`gram_scan_sums`); the null model rides along in either. Each
+    else the IRLS scan (:meth:`gram_scan_sums`); the null model rides along in either, and
+    the covariance sums in the IRLS scan once the steps are small (:data:`CARRY_STEP`). Each
     scan's row counts are checked against the profile's
     (:meth:`indb.fitrun.FitRun.check_rows`).
     """
@@ -107,8 +125,14 @@ class IrlsSolver:
         null_mu: Expr | None = None,
         null_track: NullTrack | None = None,
         off_mean: float = 0.0,
+        covariance: tuple[str, ...] = (),
     ) -> None:
         self.ctx, self.design, self.run, self.ybar = ctx, design, run, ybar
+        self.covariance = covariance
+        # whether the next scan carries the covariance sums, and the step (in standard
+        # errors) that leads to it
+        self.carry = False
+        self.next_step = math.inf
         self.spec = ctx.spec
         self.null_mu = null_mu
         self.null_track = null_track
@@ -183,6 +207,7 @@ class IrlsSolver:
         """One iteration: an accepted scan, its update, the convergence test. True: stop."""
         self.iterations += 1
         t0 = time.perf_counter()
+        self.carry = bool(self.covariance) and self.next_step < CARRY_STEP
         halvings = self.scan_accepted()
         if self.stalled:
             self.finish_stalled()
@@ -197,7 +222,10 @@ class IrlsSolver:
         )
         self.run.record(sums.deviance, change, halvings, time.perf_counter() - t0)
         self.sol = solver.solve(sums.xtwx, sums.xtwz)
-        if change < self.spec.tol and self.step_size() < self.step_tol:
+        settled = change < self.spec.tol
+        if settled or self.covariance:
+            self.next_step = self.step_size()
+        if settled and self.next_step < self.step_tol:
             # The update solved from this scan is already paid for: taking it brings the
             # estimates to the numerical limit (Newton converges quadratically, Fisher
             # scoring by its rate) at no scan. Deviance, dispersion and X'WX stay the scan's;
@@ -287,7 +315,7 @@ class IrlsSolver:
 
     def scan(self, beta: np.ndarray | None) -> solver.Sums:
         """The sums of one scan at ``beta`` (None: at the family's starting means)."""
-        if beta is not None and self.log_scan:
+        if beta is not None and self.log_scan and not self.carry:
             sums = self.log_scan_sums(beta)
             if sums is not None:
                 return sums
@@ -346,6 +374,7 @@ class IrlsSolver:
             null_mu=null_mu if with_mu else None,
             cells=self.cells,
             null_intercept=null_track.b0 if track else None,
+            covariance=self.covariance if self.carry and beta is not None else (),
         )
         extra = ("nullw", "nullwz", "nulldev") if track else ("nulldev",) if with_mu else ()
         if self.spec.family.unit_mean:

@@ -108,6 +108,11 @@ class Link:
         """dmu/deta at eta (``mu`` is the already computed inverse)."""
         raise NotImplementedError
 
+    def mu_eta_deriv_sql(self, eta: Expr, mu: Expr) -> Expr:
+        """d^2 mu / deta^2 at eta, over the same clamped eta as :meth:`mu_eta_sql` (the
+        observed information of a non-canonical link reads it)."""
+        raise NotImplementedError
+
     def eta_ok(self, eta: Expr) -> Expr | None:
         """Condition for a valid eta (None: every finite eta is valid)."""
         return None
@@ -148,6 +153,9 @@ class Link:
     def mu_eta(self, eta: np.ndarray) -> np.ndarray:
         raise NotImplementedError
 
+    def mu_eta_deriv(self, eta: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
+
     def describe(self) -> str:
         return self.name
 
@@ -172,6 +180,9 @@ class IdentityLink(Link):
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
         return S.num(1.0)
 
+    def mu_eta_deriv_sql(self, eta: Expr, mu: Expr) -> Expr:
+        return S.num(0.0)
+
     def link(self, mu):
         return np.asarray(mu, float)
 
@@ -180,6 +191,9 @@ class IdentityLink(Link):
 
     def mu_eta(self, eta):
         return np.ones_like(np.asarray(eta, float))
+
+    def mu_eta_deriv(self, eta):
+        return np.zeros_like(np.asarray(eta, float))
 
 
 @dataclass(frozen=True)
@@ -199,6 +213,9 @@ class LogLink(Link):
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
         return mu
 
+    def mu_eta_deriv_sql(self, eta: Expr, mu: Expr) -> Expr:
+        return mu
+
     def eta_ok(self, eta: Expr) -> Expr | None:
         return S.le(eta, S.num(EXP_CAP))
 
@@ -209,6 +226,9 @@ class LogLink(Link):
         return np.exp(eta)
 
     def mu_eta(self, eta):
+        return np.exp(eta)
+
+    def mu_eta_deriv(self, eta):
         return np.exp(eta)
 
 
@@ -229,6 +249,10 @@ class LogitLink(Link):
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
         return S.mul(mu, S.sub(S.num(1.0), mu))
 
+    def mu_eta_deriv_sql(self, eta: Expr, mu: Expr) -> Expr:
+        # d/deta mu (1 - mu) = mu (1 - mu) (1 - 2 mu)
+        return S.mul(mu, S.sub(S.num(1.0), mu), S.sub(S.num(1.0), S.mul(S.num(2.0), mu)))
+
     def link(self, mu):
         return special.logit(mu)
 
@@ -238,6 +262,10 @@ class LogitLink(Link):
     def mu_eta(self, eta):
         m = special.expit(eta)
         return m * (1 - m)
+
+    def mu_eta_deriv(self, eta):
+        m = special.expit(eta)
+        return m * (1 - m) * (1 - 2 * m)
 
 
 @dataclass(frozen=True)
@@ -265,6 +293,11 @@ class ProbitLink(Link):
         e = S.clamp(eta, -26.0, 26.0)
         return S.div(S.exp_(S.div(S.neg(S.mul(e, e)), S.num(2.0))), S.num(math.sqrt(2.0 * math.pi)))
 
+    def mu_eta_deriv_sql(self, eta: Expr, mu: Expr) -> Expr:
+        # the density's slope -eta phi(eta), over the same clamp
+        e = S.clamp(eta, -26.0, 26.0)
+        return S.neg(S.mul(e, self.mu_eta_sql(eta.copy(), mu)))
+
     def link(self, mu):
         return special.ndtri(mu)
 
@@ -275,6 +308,9 @@ class ProbitLink(Link):
         # the standard normal density, written out: importing scipy.stats for it alone cost
         # every command (indb --help too) a third of a second
         return np.exp(-0.5 * np.square(eta)) / math.sqrt(2.0 * math.pi)
+
+    def mu_eta_deriv(self, eta):
+        return -np.asarray(eta, float) * self.mu_eta(eta)
 
 
 @dataclass(frozen=True)
@@ -306,6 +342,11 @@ class CLogLogLink(Link):
         e = S.clamp(eta, -340.0, 5.8)
         return S.exp_(S.sub(e, S.exp_(e)))
 
+    def mu_eta_deriv_sql(self, eta: Expr, mu: Expr) -> Expr:
+        # d/deta exp(eta - exp(eta)) = exp(eta - exp(eta)) (1 - exp(eta)), same clamp
+        e = S.clamp(eta, -340.0, 5.8)
+        return S.mul(self.mu_eta_sql(eta.copy(), mu), S.sub(S.num(1.0), S.exp_(e)))
+
     def link(self, mu):
         return np.log(-np.log1p(-np.asarray(mu, float)))
 
@@ -314,6 +355,9 @@ class CLogLogLink(Link):
 
     def mu_eta(self, eta):
         return np.exp(eta - np.exp(eta))
+
+    def mu_eta_deriv(self, eta):
+        return np.exp(eta - np.exp(eta)) * (1.0 - np.exp(eta))
 
 
 @dataclass(frozen=True)
@@ -336,6 +380,12 @@ class CauchitLink(Link):
     def mu_eta_sql(self, eta: Expr, mu: Expr) -> Expr:
         return S.div(S.num(1.0), S.mul(S.num(math.pi), S.add(S.num(1.0), S.mul(eta, eta))))
 
+    def mu_eta_deriv_sql(self, eta: Expr, mu: Expr) -> Expr:
+        # -2 eta / (pi (1 + eta^2)^2) = -2 eta h / (1 + eta^2)
+        one_plus = S.add(S.num(1.0), S.mul(eta.copy(), eta.copy()))
+        h = self.mu_eta_sql(eta.copy(), mu)
+        return S.div(S.mul(S.num(-2.0), eta.copy(), h), one_plus)
+
     def link(self, mu):
         return np.tan(np.pi * (np.asarray(mu, float) - 0.5))
 
@@ -344,6 +394,10 @@ class CauchitLink(Link):
 
     def mu_eta(self, eta):
         return 1.0 / (np.pi * (1.0 + np.asarray(eta, float) ** 2))
+
+    def mu_eta_deriv(self, eta):
+        e = np.asarray(eta, float)
+        return -2.0 * e / (np.pi * (1.0 + e**2) ** 2)
 
 
 @dataclass(frozen=True)
@@ -380,6 +434,14 @@ class PowerLink(Link):
         q = 1.0 / self.exponent
         return S.mul(S.num(q), S.power(eta, S.num(q - 1.0)))
 
+    def mu_eta_deriv_sql(self, eta: Expr, mu: Expr) -> Expr:
+        if self.exponent == -1.0:
+            return S.div(S.num(2.0), S.mul(eta, eta.copy(), eta.copy()))
+        if self.exponent == 0.5:
+            return S.num(2.0)
+        q = 1.0 / self.exponent
+        return S.mul(S.num(q * (q - 1.0)), S.power(eta, S.num(q - 2.0)))
+
     def eta_ok(self, eta: Expr) -> Expr | None:
         return S.gt(eta, S.num(0.0))
 
@@ -396,6 +458,10 @@ class PowerLink(Link):
     def mu_eta(self, eta):
         q = 1.0 / self.exponent
         return q * np.power(np.asarray(eta, float), q - 1.0)
+
+    def mu_eta_deriv(self, eta):
+        q = 1.0 / self.exponent
+        return q * (q - 1.0) * np.power(np.asarray(eta, float), q - 2.0)
 
     def describe(self) -> str:
         named = {-1.0: "inverse", -2.0: "inverse_squared", 0.5: "sqrt"}

@@ -29,7 +29,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from indb.design import Design, cell_columns, column_groups
+from indb.cells import cell_columns, column_groups
+from indb.design import Design
 from indb.solver import Sums, assemble, in_cell_order, zero_nulls
 
 #: digits the split deviance or Pearson sum may lose before the fitter stops using it

@@ -167,6 +167,9 @@ REQUIRED: Any = _Required()
 #: capped by indb.normal_eq.MAX_REST_COLUMNS. ``ModelSpec.build`` checks the range.
 MAX_LEVELS_LIMIT = 50_000
 
+#: The covariance kinds of the ``covariance`` option (see :mod:`indb.sandwich`).
+COVARIANCE_KINDS = ("model", "robust", "cluster")
+
 #: The groups of options; the first three are also the tables of a spec file. ``explore``
 #: holds the options only ``indb explore`` has (:data:`EXPLORE_OPTIONS`), outside ``OPTIONS``.
 GROUPS = ("model", "deploy", "engine", "run", "explore")
@@ -426,6 +429,25 @@ OPTIONS: tuple[Option, ...] = (
         "model",
         choices=("auto", "always", "never"),
         metavar="WHEN",
+    ),
+    Option(
+        "covariance",
+        TEXT,
+        "model",
+        "Where the standard errors come from: the model's information (model), a sandwich "
+        "of the rows' scores with no small-sample factor (robust), or scores summed within "
+        "each --cluster value first (cluster).",
+        "model",
+        choices=COVARIANCE_KINDS,
+        metavar="KIND",
+    ),
+    Option(
+        "cluster",
+        TEXT,
+        None,
+        "With --covariance cluster: the rows' cluster, a SQL expression, e.g. 'policy_id'.",
+        "model",
+        metavar="EXPR",
     ),
     # -- run: Python only --------------------------------------------------------------------
     Option(

@@ -17,9 +17,21 @@ def jsonable(obj: Any) -> Any:
 
 
 #: spec keys that say how a fit ran, not which model it is (a changed tolerance or warm start
-#: does not make a refit another model)
+#: does not make a refit another model, nor do standard errors of another covariance kind:
+#: the estimates are the same)
 _RUN_KEYS = frozenset(
-    {"start", "tol", "max_iter", "strict", "compress", "sample_start", "confidence", "sql_dialect"}
+    {
+        "start",
+        "tol",
+        "max_iter",
+        "strict",
+        "compress",
+        "sample_start",
+        "confidence",
+        "sql_dialect",
+        "covariance",
+        "cluster",
+    }
 )
 
 

@@ -100,6 +100,7 @@ def _model_block(result: FitResult, width: int) -> str:
         value = result.spec.get(key) if isinstance(result.spec, dict) else None
         if value not in (None, ""):
             rows.append((label, _one_line(str(value)), ""))
+    rows.append(("standard errors", *_covariance_text(result)))
     rows.append(("rows used", _fmt_count(result.n_used), ""))
     rows.append(("rows set aside", _fmt_count(result.n_excluded), _exclusion_note(result)))
     if _finite(result.n_weighted) and result.n_weighted != result.n_used:
@@ -112,6 +113,18 @@ def _model_block(result: FitResult, width: int) -> str:
         timing = f"{result.seconds_per_iteration:.3f} s per scan"
     rows.append(("wall time", _fmt_seconds(result.seconds), timing))
     return _kv_block("MODEL", rows, width)
+
+
+def _covariance_text(result: FitResult) -> tuple[str, str]:
+    """The standard errors' source, in two parts: a name and how it is formed."""
+    kind = result.covariance_kind
+    if kind == "robust":
+        return "robust", "each row's score squared, no small-sample factor (HC0)"
+    if kind == "cluster":
+        cluster = result.spec.get("cluster") if isinstance(result.spec, dict) else None
+        over = f"{_fmt_count(result.clusters)} clusters of {_one_line(str(cluster))}"
+        return "cluster-robust", f"scores summed in {over}, x G/(G-1)(N-1)/(N-K)"
+    return "model-based", "inverse information times the dispersion"
 
 
 def _quality_block(result: FitResult, width: int) -> str:
@@ -145,7 +158,9 @@ def _terms_block(result: FitResult, width: int) -> str:
     level = _level_label(result.confidence)
     exp_name = _exp_column_name(result.link)
     legend = f"std error = standard error; Wald {test} = estimate / std error"
-    if test == "t":
+    if test == "t" and result.covariance_kind == "cluster":
+        legend += f", referred to t on {_fmt_df(result.wald_df)} df (clusters less one)"
+    elif test == "t":
         legend += f", referred to t on {_fmt_df(result.residual_df)} residual df"
     else:
         legend += ", referred to the normal distribution"
@@ -157,7 +172,7 @@ def _terms_block(result: FitResult, width: int) -> str:
     if not coefs:
         lines.append("  (the model has no terms)")
         return "\n".join(lines)
-    lines.extend(_coefficient_table(coefs, test, level, exp_name, width, result.residual_df))
+    lines.extend(_coefficient_table(coefs, test, level, exp_name, width, result.wald_df))
     # An aliased term in the table says so on its row, and the notes say it once more; a
     # term set aside before the table was built gets its line here.
     shown = {c.term for c in coefs}

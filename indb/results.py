@@ -132,6 +132,12 @@ class FitResult:
     covariance matrix (NaN rows and columns at aliased terms) for models of up to
     :data:`COVARIANCE_MAX_TERMS` coefficients and ``None`` above; a result read back from
     JSON or the registry has it up to :data:`STORED_COVARIANCE_MAX_TERMS` coefficients.
+
+    ``covariance_kind`` says where ``covariance`` and the standard errors, Wald
+    statistics, p-values and intervals come from: ``model`` (the inverse information times
+    the dispersion), ``robust`` (a sandwich of the rows' scores, no small-sample factor) or
+    ``cluster`` (of the scores summed by cluster, over ``clusters`` clusters; a t statistic
+    is then referred to ``clusters - 1`` degrees of freedom, :attr:`wald_df`).
     """
 
     family: str
@@ -178,6 +184,8 @@ class FitResult:
     #: (X'WX)^-1 where the diagnostics view's leverage reads it (None: more pairs than
     #: ``indb.colpairs.MAX_PAIRS``, or a result stored before results carried it)
     inverse_entries: InverseEntries | None = None
+    covariance_kind: str = "model"
+    clusters: int | None = None
 
     # -- the model as objects ------------------------------------------------------------
     @property
@@ -215,6 +223,17 @@ class FitResult:
             if c.term == term:
                 return c
         raise KeyError(f"no term named {term!r}; terms are {self.terms}")
+
+    @property
+    def wald_df(self) -> float:
+        """Degrees of freedom of the t distribution the Wald statistics are referred to
+        (``test == "t"``): the residual df, or the clusters less one with cluster-robust
+        errors; NaN for z statistics."""
+        if self.test != "t":
+            return math.nan
+        if self.covariance_kind == "cluster" and self.clusters is not None:
+            return self.clusters - 1.0
+        return self.residual_df
 
     @property
     def seconds_per_iteration(self) -> float:
@@ -272,6 +291,8 @@ class FitResult:
             "condition_number": _num(self.condition_number),
             "warnings": list(self.warnings),
             "confidence": self.confidence,
+            "covariance_kind": self.covariance_kind,
+            "clusters": self.clusters,
             "spec": self.spec,
             "design": self.design,
             "fingerprint": self.fingerprint,
@@ -360,6 +381,9 @@ class FitResult:
             condition_number=f(d.get("condition_number")),
             warnings=tuple(d.get("warnings", [])),
             confidence=float(d.get("confidence", 0.95)),
+            # results stored before covariance kinds existed are model-based
+            covariance_kind=d.get("covariance_kind", "model"),
+            clusters=None if d.get("clusters") is None else int(d["clusters"]),
             spec=d.get("spec", {}),
             design=d.get("design", {}),
             fingerprint=d.get("fingerprint", {}),

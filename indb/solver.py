@@ -8,13 +8,14 @@ factors); :mod:`indb.normal_eq` solves it through that structure.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import sparse, special
 from scipy.sparse import linalg as splinalg
 
-from indb.design import ColumnGroup, Design, cell_columns, column_groups, level_codes
+from indb.cells import ColumnGroup, cell_columns, column_groups, level_codes
+from indb.design import Design
 from indb.errors import SpecError
 from indb.normal_eq import (
     ALIAS_TOL,
@@ -24,7 +25,7 @@ from indb.normal_eq import (
     condition_number,
     solve,
 )
-from indb.plan.irls_scan import MAX_CELL_JOIN
+from indb.plan.irls_scan import COVARIANCE_SUMS, MAX_CELL_JOIN
 
 __all__ = [
     "ALIAS_TOL",
@@ -37,6 +38,7 @@ __all__ = [
     "condition_number",
     "dispersion",
     "in_cell_order",
+    "mapped_covariance",
     "original_scale",
     "solve",
     "standardize",
@@ -60,6 +62,9 @@ class Sums:
     extras: dict[str, float]
     cells: int
     cell_keys: list[tuple[str, ...]] | None = None
+    #: the covariance matrices the scan carried (``plan.irls_scan.COVARIANCE_SUMS``):
+    #: ``meat`` (the robust meat) and ``observed`` (the observed information), as X'WX
+    matrices: dict[str, sparse.csr_array] = field(default_factory=dict)
 
 
 def check_size(design: Design) -> None:
@@ -139,34 +144,19 @@ def assemble(
         else [np.full(rows, g.columns[0], dtype=np.int64) for g in groups]
     )
     xtwz = np.zeros(p)
-    parts_i: list[np.ndarray] = []
-    parts_j: list[np.ndarray] = []
-    parts_v: list[np.ndarray] = []
     for ga, g in enumerate(groups):
         ia = where[ga]
         has_a = ia >= 0
         xtwz += np.bincount(
             ia[has_a], weights=zero_nulls(cells[f"t_{g.value}"])[has_a], minlength=p
         )
-        for gb in range(ga, len(groups)):
-            h = groups[gb]
-            ib = where[gb]
-            lo, hi = min(g.value, h.value), max(g.value, h.value)
-            s = zero_nulls(cells[f"s_{lo}_{hi}"])
-            i, j, v = _block_entries(g, h, ia, ib, s, p)
-            parts_i.append(i)
-            parts_j.append(j)
-            parts_v.append(v)
-            if ga != gb:
-                parts_i.append(j)
-                parts_j.append(i)
-                parts_v.append(v)
-    xtwx = sparse.coo_array(
-        (np.concatenate(parts_v), (np.concatenate(parts_i), np.concatenate(parts_j))),
-        shape=(p, p),
-    ).tocsr()  # sums the duplicates
+    matrices = {
+        name: cell_matrix(design, cells, where, prefix)
+        for name, (prefix, _) in COVARIANCE_SUMS.items()
+        if f"{prefix}_0_0" in cells
+    }
     return Sums(
-        xtwx=xtwx,
+        xtwx=cell_matrix(design, cells, where, "s"),
         xtwz=xtwz,
         deviance=float(zero_nulls(cells["dev"]).sum()),
         pearson=float(zero_nulls(cells["pear"]).sum()),
@@ -182,7 +172,39 @@ def assemble(
             if design.factors and rows <= MAX_CELL_JOIN
             else None
         ),
+        matrices=matrices,
     )
+
+
+def cell_matrix(
+    design: Design, cells: dict[str, np.ndarray], where: list[np.ndarray], prefix: str
+) -> sparse.csr_array:
+    """A symmetric matrix in X'WX's form from the per-cell sums ``prefix_a_b`` (a <= b the
+    values' indices), ``where`` each column group's column per cell."""
+    p = design.p
+    groups = column_groups(design)
+    parts_i: list[np.ndarray] = []
+    parts_j: list[np.ndarray] = []
+    parts_v: list[np.ndarray] = []
+    for ga, g in enumerate(groups):
+        ia = where[ga]
+        for gb in range(ga, len(groups)):
+            h = groups[gb]
+            ib = where[gb]
+            lo, hi = min(g.value, h.value), max(g.value, h.value)
+            s = zero_nulls(cells[f"{prefix}_{lo}_{hi}"])
+            i, j, v = _block_entries(g, h, ia, ib, s, p)
+            parts_i.append(i)
+            parts_j.append(j)
+            parts_v.append(v)
+            if ga != gb:
+                parts_i.append(j)
+                parts_j.append(i)
+                parts_v.append(v)
+    return sparse.coo_array(
+        (np.concatenate(parts_v), (np.concatenate(parts_i), np.concatenate(parts_j))),
+        shape=(p, p),
+    ).tocsr()  # sums the duplicates
 
 
 def _block_entries(
@@ -263,6 +285,13 @@ def original_scale(
         idx, w = t.indices[lo:hi], t.data[lo:hi]
         var[i] = float(w @ inv.block(idx) @ w)
     return dispersion * var, None
+
+
+def mapped_covariance(cov: np.ndarray, t: sparse.csr_array) -> tuple[np.ndarray, np.ndarray]:
+    """Variances and covariance of T beta from the covariance ``cov`` of beta (p x p)."""
+    out = np.asarray(t @ (t @ cov).T).T
+    out = 0.5 * (out + out.T)
+    return np.diag(out).copy(), out
 
 
 def step_in_se(old: np.ndarray, new: np.ndarray, inv_info: InverseInfo, dispersion: float) -> float:

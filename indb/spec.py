@@ -64,6 +64,9 @@ class ModelSpec:
         Resolved family and link objects (use :meth:`build` to resolve names).
     offset, weight, frequency_weight, trials:
         SQL expressions over the source's columns, or None.
+    covariance, cluster:
+        Where the standard errors come from (``model``, ``robust`` or ``cluster``) and, for
+        ``cluster``, the SQL expression whose value names each row's cluster.
     """
 
     source: Source
@@ -91,6 +94,8 @@ class ModelSpec:
     start: tuple[tuple[str, float], ...] = field(default=())
     compress: str = "auto"
     sample_start: str = "auto"
+    covariance: str = "model"
+    cluster: str | None = None
 
     @staticmethod
     def build(
@@ -122,6 +127,8 @@ class ModelSpec:
         start: Mapping[str, float] | None = None,
         compress: str = "auto",
         sample_start: str = "auto",
+        covariance: str = "model",
+        cluster: str | None = None,
     ) -> ModelSpec:
         """Validate user options and resolve family/link names into a spec."""
         if not isinstance(response, str) or not response:
@@ -162,9 +169,11 @@ class ModelSpec:
             ("weight", weight),
             ("frequency_weight", frequency_weight),
             ("trials", trials),
+            ("cluster", cluster),
         ):
             if expr is not None and (not isinstance(expr, str) or not expr.strip()):
                 raise SpecError(f"{name} must be a non-empty SQL expression; got {expr!r}")
+        _check_covariance(covariance, cluster)
         inter: list[tuple[str, ...]] = []
         for group in interactions:
             cols = tuple(group.split(",")) if isinstance(group, str) else tuple(group)
@@ -208,6 +217,8 @@ class ModelSpec:
             start=st,
             compress=compress,
             sample_start=sample_start,
+            covariance=covariance,
+            cluster=cluster,
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -234,4 +245,25 @@ class ModelSpec:
             "on_null": self.on_null,
             "tol": self.tol,
             "max_iter": self.max_iter,
+            # only when asked for: registry versions hash their spec (registry.spec_hash),
+            # and a default written out would make every version stored before it differ
+            **(
+                {"covariance": self.covariance, "cluster": self.cluster}
+                if self.covariance != "model"
+                else {}
+            ),
         }
+
+
+def _check_covariance(covariance: str, cluster: str | None) -> None:
+    """A cluster expression goes with covariance 'cluster', and that kind needs one."""
+    if covariance == "cluster" and cluster is None:
+        raise SpecError(
+            "covariance 'cluster' needs the cluster expression: cluster='policy_id' (CLI "
+            "--cluster EXPR), any per-row SQL expression whose value names the row's cluster"
+        )
+    if cluster is not None and covariance != "cluster":
+        raise SpecError(
+            f"cluster={cluster!r} is read only with covariance='cluster' (CLI --covariance "
+            f"cluster); got covariance={covariance!r}: add it, or leave the cluster out"
+        )

@@ -282,7 +282,8 @@ def scoring_query(
         q = (
             stats.norm.ppf(0.5 + res.confidence / 2)
             if res.test == "z"
-            else stats.t.ppf(0.5 + res.confidence / 2, max(res.residual_df, 1e-12))
+            # the covariance and the t's degrees of freedom of the fit's covariance kind
+            else stats.t.ppf(0.5 + res.confidence / 2, max(res.wald_df, 1e-12))
         )
         # NULL where the row has no mean, by adding a CASE that is 0 or NULL rather than by
         # putting the quadratic form inside a CASE branch: DuckDB shares the common parts

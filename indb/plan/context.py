@@ -32,6 +32,9 @@ class PlanContext:
     folded: bool = False
     #: the internal rescaling of response, offset and weights (identity: none)
     scaling: Scaling = Scaling()
+    #: per-row columns a covariance scan adds to the rows (``irls_scan.rows_select``):
+    #: ``clu`` the cluster, ``r2`` a folded row's sums for the robust meat
+    row_extras: tuple[str, ...] = ()
 
     def count_rows(self) -> Expr:
         """COUNT(*) of source rows (SUM of the row-count column on a compressed table)."""
@@ -73,6 +76,7 @@ class PlanContext:
             self.inputs.weight,
             self.inputs.frequency_weight,
             self.inputs.trials,
+            self.inputs.cluster,
         ):
             if e is not None:
                 conds.append(S.not_(S.is_null(e.copy())))
@@ -98,6 +102,7 @@ class PlanContext:
             ("weight", self.inputs.weight),
             ("frequency_weight", self.inputs.frequency_weight),
             ("trials", self.inputs.trials),
+            ("cluster", self.inputs.cluster),
         ):
             if e is not None:
                 items.append((f"{label} expression", e.copy()))
@@ -171,3 +176,6 @@ def reserved(name: str) -> str:
 
 FOLD_Y, FOLD_PW, FOLD_F = (RESERVED_PREFIX + n for n in ("y", "pw", "f"))
 FOLD_DCONST, FOLD_Q = RESERVED_PREFIX + "dconst", RESERVED_PREFIX + "q"
+#: a folded row's sums for the robust meat, sum(f pw^2 (y - mu)^2) =
+#: R2A (R2Y - mu)^2 + R2Q: R2A = sum(f pw^2), R2Y their mean response, R2Q the spread about it
+FOLD_R2A, FOLD_R2Y, FOLD_R2Q = (RESERVED_PREFIX + n for n in ("r2a", "r2y", "r2q"))

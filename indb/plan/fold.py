@@ -14,6 +14,9 @@ from indb.plan.context import (
     FOLD_F,
     FOLD_PW,
     FOLD_Q,
+    FOLD_R2A,
+    FOLD_R2Q,
+    FOLD_R2Y,
     FOLD_Y,
     KEPT,
     ROWCOUNT,
@@ -40,11 +43,15 @@ def folds_offset(ctx: PlanContext) -> bool:
 
 def key_columns(ctx: PlanContext) -> list[str]:
     """Columns that define a distinct design row: the predictors, plus the offset's
-    columns when the offset cannot be folded into the weights."""
+    columns when the offset cannot be folded into the weights, plus the cluster's columns
+    (covariance 'cluster'): rows of one design row are merged only within a cluster, so
+    the sum of a cluster's scores is a sum over its folded rows."""
     inputs = ctx.inputs
     out = [*inputs.factors, *inputs.numerics]
     if inputs.offset is not None and not folds_offset(ctx):
         out += S.referenced_columns(inputs.offset)
+    if inputs.cluster is not None:
+        out += S.referenced_columns(inputs.cluster)
     seen: list[str] = []
     for c in out:
         if c not in seen:
@@ -147,6 +154,7 @@ def fold_query(
     ]
     if folding:
         fw_row = S.mul(f, pw) if f is not None else pw
+        robust = ctx.spec.covariance == "robust"
         stage = S.select(
             [
                 exp.Star(),
@@ -154,6 +162,13 @@ def fold_query(
                 S.alias(rewrite(y), reserved("fy")),
                 # y for h(y) only where the row is inside the domain (ln of y <= 0 is an error)
                 S.alias(S.case([(ok.copy(), rewrite(y))]), reserved("hy")),
+                # the robust meat squares each row's score: f pw^2 (y - mu)^2 summed over
+                # the rows a folded row stands for (folded_rows_query)
+                *(
+                    [S.alias(rewrite(S.mul(fw_row.copy(), pw.copy())), reserved("fw2"))]
+                    if robust
+                    else []
+                ),
             ],
             S.subquery(stage, "fold_c"),
         )
@@ -166,6 +181,13 @@ def fold_query(
             S.alias(S.psum(S.mul(w.copy(), yf.copy(), yf.copy())), reserved("sy2")),
             S.alias(S.psum(S.mul(w.copy(), h)), reserved("sh")),
         ]
+        if robust:
+            w2 = S.col(reserved("fw2"))
+            cols += [
+                S.alias(S.psum(w2), reserved("s2")),
+                S.alias(S.psum(S.mul(w2.copy(), yf.copy())), reserved("s2y")),
+                S.alias(S.psum(S.mul(w2.copy(), yf.copy(), yf.copy())), reserved("s2y2")),
+            ]
     for i, it in enumerate(items):
         if it.agg == "count" or it.detail or _key_only(it.arg, keys):
             continue
@@ -285,11 +307,27 @@ def folded_rows_query(ctx: PlanContext, table: Expr) -> exp.Select:
             S.alias(ybar, FOLD_Y),
             S.alias(S.case([(pos.copy(), dconst)], S.num(0.0)), FOLD_DCONST),
             S.alias(S.case([(pos.copy(), q)], S.num(0.0)), FOLD_Q),
+            *(_robust_columns() if ctx.spec.covariance == "robust" else []),
             S.alias(S.col(FOLD_ROWS), ROWCOUNT),
         ],
         table,
         where=S.and_(key_cond, S.col(FOLD_OK)),
     )
+
+
+def _robust_columns() -> list[Expr]:
+    """A folded row's sums for the robust meat: sum(f pw^2 (y - mu)^2) over its rows is
+    R2A (R2Y - mu)^2 + R2Q, with R2A = sum(f pw^2), R2Y = sum(f pw^2 y) / R2A and
+    R2Q = sum(f pw^2 y^2) - R2A R2Y^2 (centred as FOLD_Q is, so the fit's mu enters only
+    through a difference from the rows' own mean)."""
+    s2, s2y = S.col(reserved("s2")), S.col(reserved("s2y"))
+    pos = S.gt(s2, S.num(0.0))
+    spread = S.sub(S.col(reserved("s2y2")), S.div(S.mul(s2y.copy(), s2y.copy()), s2.copy()))
+    return [
+        S.alias(S.case([(pos.copy(), s2.copy())], S.num(0.0)), FOLD_R2A),
+        S.alias(S.case([(pos.copy(), S.div(s2y.copy(), s2.copy()))], S.num(0.0)), FOLD_R2Y),
+        S.alias(S.case([(pos.copy(), spread)], S.num(0.0)), FOLD_R2Q),
+    ]
 
 
 def detail_items(

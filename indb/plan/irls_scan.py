@@ -7,6 +7,9 @@ grouped by the factor cells, every sum the solver needs:
 * ``t_a``   = sum(f w z v_a),
 * ``dev``, ``pear`` (deviance and Pearson chi-squared contributions), ``bad`` (rows whose
   eta left the valid domain), ``n`` (rows) and ``nw`` (frequency-weighted rows),
+* when asked (:data:`COVARIANCE_SUMS`), the matrices of a sandwich covariance in the same
+  form as X'WX: ``r_a_b`` = sum(f u^2 v_a v_b), the meat (u the row's score factor,
+  :func:`covariance_terms`), and ``o_a_b`` = sum(f w_o v_a v_b), the observed information,
 
 where f is the frequency weight, w the working weight and z the working response. Dummy
 columns are never multiplied out per row: factor blocks of X'WX come from the GROUP BY.
@@ -15,16 +18,26 @@ Stable aliases keep the generated text reproducible for snapshot tests.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 
 import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.design import Design, cell_columns, column_groups, level_codes
+from indb.cells import cell_columns, column_groups, level_codes
+from indb.design import Design
 from indb.families import Family
 from indb.links import Link
-from indb.plan.context import FOLD_DCONST, FOLD_Q, ROWS, PlanContext
+from indb.plan.context import (
+    FOLD_DCONST,
+    FOLD_Q,
+    FOLD_R2A,
+    FOLD_R2Q,
+    FOLD_R2Y,
+    ROWS,
+    PlanContext,
+)
 from indb.sqlexpr import Expr
 
 # -- the per-row stages of the IRLS scan -------------------------------------------------------
@@ -51,6 +64,17 @@ def rows_select(ctx: PlanContext, design: Design) -> exp.Select:
         if wf != 1.0:
             consts = [S.mul(c, S.num(wf)) for c in consts]
         cols += [S.alias(consts[0], "dconst"), S.alias(consts[1], "q")]
+    if "clu" in ctx.row_extras:
+        assert ctx.inputs.cluster is not None
+        cols.append(S.alias(ctx.inputs.cluster.copy(), "clu"))
+    if "r2" in ctx.row_extras:
+        # sums of f pw^2 (...): rescaled with the frequency weight and the square of the
+        # prior weight's factor
+        f2 = ctx.scaling.weight_factor**2 * ctx.scaling.freq_factor
+        a, q = S.col(FOLD_R2A), S.col(FOLD_R2Q)
+        if f2 != 1.0:
+            a, q = S.mul(a, S.num(f2)), S.mul(q, S.num(f2))
+        cols += [S.alias(a, "r2a"), S.alias(S.col(FOLD_R2Y), "r2y"), S.alias(q, "r2q")]
     return S.select(cols, ctx.source(), where=ctx.kept())
 
 
@@ -181,7 +205,9 @@ def _eta_from_beta(
 
 def _extra_row_cols(ctx: PlanContext) -> list[str]:
     out = ["nt"] if ctx.raw_trials() is not None else []
-    return out + (["dconst", "q"] if ctx.folded else [])
+    out += ["dconst", "q"] if ctx.folded else []
+    out += ["clu"] if "clu" in ctx.row_extras else []
+    return out + (["r2a", "r2y", "r2q"] if "r2" in ctx.row_extras else [])
 
 
 def _folded_dev(ctx: PlanContext, dev: Expr) -> Expr:
@@ -307,16 +333,28 @@ def _work_stage(
     mean_stage: exp.Select,
     extra: Sequence[tuple[str, Expr]] = (),
     keep: Sequence[str] = (),
+    slopes: bool = False,
 ) -> exp.Select:
-    """Stage w: working weight and response, deviance and Pearson contributions."""
+    """Stage w: working weight and response, deviance and Pearson contributions; ``extra``
+    are computed here from the columns y, mu, pw, fw, dmu, var (and, with ``slopes``, dmu2
+    = d^2 mu / deta^2 and dvar = dV/dmu)."""
     fam, link = ctx.spec.family, ctx.spec.link
     y, mu, pw, fw = S.col("y"), S.col("mu"), S.col("pw"), S.col("fw")
     dmu = link.mu_eta_sql(S.col("seta"), mu)
+    slope_cols = (
+        [
+            S.alias(link.mu_eta_deriv_sql(S.col("seta"), mu.copy()), "dmu2"),
+            S.alias(fam.variance_deriv_sql(mu.copy()), "dvar"),
+        ]
+        if slopes
+        else []
+    )
     inner = S.select(
         [
             *_passthrough(design, [*_extra_row_cols(ctx), "eta", "bad", "mu", *keep]),
             S.alias(dmu, "dmu"),
             S.alias(fam.variance_sql(mu), "var"),
+            *slope_cols,
         ],
         S.subquery(mean_stage, "m"),
     )
@@ -347,6 +385,65 @@ def _work_stage(
     return S.select(cols, S.subquery(inner, "w0"))
 
 
+#: The covariance matrices an IRLS scan can carry, by name: the prefix of their sums and
+#: the per-row term (:func:`covariance_terms`) they sum against the values.
+COVARIANCE_SUMS = {"meat": ("r", "fuu"), "observed": ("o", "fwo")}
+
+
+def covariance_terms(ctx: PlanContext) -> dict[str, Expr]:
+    """Per-row terms of the covariance scans, over the work stage's columns.
+
+    A row's score (the log-likelihood's gradient, times the dispersion) is u x with
+    u = pw (y - mu) (dmu/deta) / V(mu), the score factor; ``fu`` = f u. ``fuu`` = f u^2 is
+    its share of the robust meat; on folded rows, whose y and pw are sums over the rows
+    they stand for, it is (dmu/deta / V)^2 sum(f pw^2 (y - mu)^2) from the fold's
+    ``r2*`` columns. ``fwo`` = f w (1 + (y - mu) c), c = V'(mu) / V(mu) - mu'' / mu'^2
+    (mu' and mu'' the derivatives in eta), is the row's share of the observed information
+    (minus the log-likelihood's Hessian); c is 0 for a canonical link. Folded rows give
+    ``fu`` and ``fwo`` as they are: both are linear in y and pw.
+    """
+    y, mu, pw, fw = S.col("y"), S.col("mu"), S.col("pw"), S.col("fw")
+    dmu, var = S.col("dmu"), S.col("var")
+    resid = S.sub(y, mu)
+    fu = S.div(S.mul(fw, pw, resid, dmu), var)
+    if ctx.folded and "r2" in ctx.row_extras:
+        gap = S.sub(S.col("r2y"), mu.copy())
+        spread = S.add(S.mul(S.col("r2a"), gap, gap.copy()), S.col("r2q"))
+        ratio = S.div(dmu.copy(), var.copy())
+        fuu = S.mul(ratio, ratio.copy(), spread)
+    else:
+        u = S.div(S.mul(pw.copy(), resid.copy(), dmu.copy()), var.copy())
+        fuu = S.mul(fw.copy(), u, u.copy())
+    w = S.div(S.mul(pw.copy(), dmu.copy(), dmu.copy()), var.copy())
+    slope = S.case(
+        [
+            (
+                S.ne(dmu.copy(), S.num(0.0)),
+                S.sub(
+                    S.div(S.col("dvar"), var.copy()),
+                    S.div(S.col("dmu2"), S.mul(dmu.copy(), dmu.copy())),
+                ),
+            )
+        ],
+        S.num(0.0),
+    )
+    fwo = S.mul(fw.copy(), w, S.add(S.num(1.0), S.mul(resid.copy(), slope)))
+    return {"fu": fu, "fuu": fuu, "fwo": fwo}
+
+
+def value_products(design: Design, column: str, prefix: str) -> list[Expr]:
+    """sum(column v_a v_b) for value pairs a <= b (v_0 = 1), aliased ``prefix_a_b``: a
+    matrix in the form of X'WX (:func:`indb.solver.assemble`)."""
+    vals = [None, *(S.col(v.alias) for v in design.values[1:])]
+    m = len(vals)
+    out: list[Expr] = []
+    for a in range(m):
+        for b in range(a, m):
+            prod = [S.col(column)] + [vals[i] for i in (a, b) if i]
+            out.append(S.alias(S.psum(S.mul(*prod)), f"{prefix}_{a}_{b}"))
+    return out
+
+
 def gram_query(
     ctx: PlanContext,
     design: Design,
@@ -357,6 +454,7 @@ def gram_query(
     cells: Sequence[tuple[str, ...]] | None = None,
     null_intercept: float | None = None,
     theta: float | None = None,
+    covariance: Sequence[str] = (),
 ) -> exp.Select:
     """The IRLS scan: all sums for X'WX, X'Wz, deviance and Pearson, grouped by factor cells.
 
@@ -365,8 +463,11 @@ def gram_query(
     ``null_intercept`` adds ``nullw``, ``nullwz`` and ``nulldev``: one IRLS step of the
     intercept-only model with the offset, at that intercept. ``theta`` adds ``thetaa`` and
     ``thetab``, the sums of :func:`theta_terms` for a Newton step on the negative binomial
-    theta at this scan's means (so the step costs no scan of its own).
+    theta at this scan's means (so the step costs no scan of its own). ``covariance`` names
+    the matrices of :data:`COVARIANCE_SUMS` to add (the robust meat, the observed information).
     """
+    if "meat" in covariance and ctx.folded:
+        ctx = dataclasses.replace(ctx, row_extras=(*ctx.row_extras, "r2"))
     eta = (
         _eta_start(ctx, design, ybar) if beta is None else _eta_from_beta(ctx, design, beta, cells)
     )
@@ -391,14 +492,19 @@ def gram_query(
         extra += edge_counts()
     if theta is not None:
         extra += theta_terms(theta)
-    work = _work_stage(ctx, design, mean, extra, keep)
+    terms = covariance_terms(ctx)
+    matrices = [COVARIANCE_SUMS[name] for name in covariance]
+    work = _work_stage(
+        ctx,
+        design,
+        mean,
+        [*extra, *((column, terms[column]) for _, column in matrices)],
+        keep,
+        slopes="observed" in covariance,
+    )
     vals = [None, *(S.col(v.alias) for v in design.values[1:])]
-    aggs: list[Expr] = []
+    aggs: list[Expr] = value_products(design, "fww", "s")
     m = len(design.values)
-    for a in range(m):
-        for b in range(a, m):
-            prod = [S.col("fww")] + [vals[i] for i in (a, b) if i]
-            aggs.append(S.alias(S.psum(S.mul(*prod)), f"s_{a}_{b}"))
     for a in range(m):
         prod = [S.col("fwwz")] + ([vals[a]] if a else [])
         aggs.append(S.alias(S.psum(S.mul(*prod)), f"t_{a}"))
@@ -411,6 +517,8 @@ def gram_query(
     ]
     for name, _ in extra:
         aggs.append(S.alias(S.psum(S.col(name)), name.replace("f", "", 1)))
+    for prefix, column in matrices:
+        aggs += value_products(design, column, prefix)
     groups = [S.col(f.alias) for f in design.factors]
     return S.select([*groups, *aggs], S.subquery(work, "w"), group_by=groups)
 

@@ -871,3 +871,55 @@ def test_every_link_name_is_known_to_some_family() -> None:
         for f in FAMILY_NAMES
         for n in (make_family(f, power=1.5) if f == "tweedie" else make_family(f)).links
     }
+
+
+# -- dV/dmu and canonical links (the observed information of a sandwich) ---------------------
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_variance_deriv_matches_statsmodels(name: str) -> None:
+    c = CASES[name]
+    mu = c.mus
+    got = evaluate({"mu": mu}, {"dv": c.family.variance_deriv_sql})["dv"]
+    # statsmodels.genmod.families.<Family>.variance.deriv(mu) (test-only oracle)
+    assert_allclose(got, c.sm.variance.deriv(mu), rtol=1e-13, atol=0)
+
+
+@pytest.mark.parametrize("name", NAMES)
+def test_is_canonical_where_the_observed_information_is_the_expected(name: str) -> None:
+    """A link is canonical exactly where g'(mu) V(mu) = 1, i.e. V'/V = mu''/mu'^2 (mu' and
+    mu'' the derivatives in eta): the correction to X'WX of the observed information is then
+    0 for every mu. Checked with statsmodels' link and variance derivatives (test-only
+    oracle) on the family's means."""
+    c = CASES[name]
+    fam = c.family
+    links = [make_link(n, 0.3 if n == "power" else None) for n in fam.links]
+    p = fam.variance_power
+    if "power" in fam.links and p is not None and p != 1.0:
+        links.append(make_link("power", 1.0 - p))  # mu^(1-p): Tweedie's canonical link
+    for link in links:
+        link_name = link.describe()
+        sm_link = _SM_LINKS[link.name if link.name == "power" else link_name](link)
+        mu = c.mus[(c.mus > 1e-6) & (c.mus < 1e6)]
+        if fam.unit_mean:
+            mu = mu[mu < 1.0]
+        eta = sm_link(mu)
+        d1, d2 = sm_link.inverse_deriv(eta), sm_link.inverse_deriv2(eta)
+        v, dv = c.sm.variance(mu), c.sm.variance.deriv(mu)
+        gap = dv / v - d2 / d1**2
+        vanishes = bool(np.all(np.abs(gap) <= 1e-9 * (np.abs(dv / v) + np.abs(d2 / d1**2))))
+        assert fam.is_canonical(link) == vanishes, (name, link_name)
+
+
+_SM_LINKS = {
+    "identity": lambda lk: smf.links.Identity(),
+    "log": lambda lk: smf.links.Log(),
+    "logit": lambda lk: smf.links.Logit(),
+    "probit": lambda lk: smf.links.Probit(),
+    "cloglog": lambda lk: smf.links.CLogLog(),
+    "cauchit": lambda lk: smf.links.Cauchy(),
+    "inverse": lambda lk: smf.links.InversePower(),
+    "inverse_squared": lambda lk: smf.links.InverseSquared(),
+    "sqrt": lambda lk: smf.links.Sqrt(),
+    "power": lambda lk: smf.links.Power(power=lk.exponent),
+}
