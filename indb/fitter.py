@@ -16,7 +16,7 @@ import warnings
 
 import numpy as np
 
-from indb import folding, magnitudes, prefit, solver
+from indb import folding, magnitudes, pathfit, prefit, solver
 from indb.design import build_design, plan_values
 from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
@@ -156,6 +156,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
     if start is None:
         start, null_b0 = sample_start(ctx, design, run, summary, n_kept, null_b0)
     run.phase = "fit"
+    penalty = pathfit.make_penalty(ctx, design, run, summary) if spec.penalised else None
     track = NullTrack(null_b0, spec.tol) if null_b0 is not None else None
     state, null_dev = irls(
         ctx,
@@ -166,7 +167,13 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         null_mu=null_mu,
         null_track=track,
         off_mean=summary.off_mean,
+        penalty=penalty,
     )
+    records: list = []
+    lam_max = None
+    if penalty is not None and spec.path is not None:
+        state, records, lam_max = pathfit.path(ctx, design, run, summary, penalty, state)
+        penalty = penalty.at(records[-1]["penalty"])
     if track is not None and null_dev is None:
         # the fitted model settled first: finish the intercept-only model on its own
         run.phase = "null"
@@ -202,7 +209,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
             raise NonConvergenceError(msg)
         warnings.warn(msg, ConvergenceWarning, stacklevel=2)
         warn_msgs.append(msg)
-    return result(
+    fitted = result(
         ctx,
         design,
         run,
@@ -216,3 +223,6 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         t_start,
         report_spec,
     )
+    if penalty is None:
+        return fitted
+    return pathfit.penalised_result(fitted, penalty, records, lam_max)

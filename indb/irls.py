@@ -14,6 +14,7 @@ from indb.errors import NondeterministicSourceError, SpecError
 from indb.families import Family
 from indb.fitrun import FitRun
 from indb.nullmodel import NullTrack
+from indb.penalty import Penalty
 from indb.plan.context import PlanContext
 from indb.plan.irls_scan import gram_query
 from indb.plan.log_scan import log_scan_applies, log_scan_query
@@ -60,17 +61,29 @@ def irls(
     null_mu: Expr | None = None,
     null_track: NullTrack | None = None,
     off_mean: float = 0.0,
+    penalty: Penalty | None = None,
+    warm: IrlsState | None = None,
 ) -> tuple[IrlsState, float | None]:
     """Iterate scans until the deviance settles and the next step is negligible.
 
     Returns the state at the last scanned coefficients and the null deviance: from the
     first scan when ``null_mu`` (a per-row null mean) is given, or from ``null_track`` (the
     intercept-only model with the offset, iterated in the same scans) when it converged.
+    With ``penalty`` each update is the penalised Newton step (:mod:`indb.penalty`) and the
+    deviance the loop watches is the penalised objective; ``warm`` (a converged state of a
+    neighbouring penalty) starts from its sums without a scan.
     """
     loop = IrlsSolver(
-        ctx, design, run, ybar, null_mu=null_mu, null_track=null_track, off_mean=off_mean
+        ctx,
+        design,
+        run,
+        ybar,
+        null_mu=null_mu,
+        null_track=null_track,
+        off_mean=off_mean,
+        penalty=penalty,
     )
-    return loop.fit(start)
+    return loop.fit(start, warm)
 
 
 class IrlsSolver:
@@ -107,8 +120,10 @@ class IrlsSolver:
         null_mu: Expr | None = None,
         null_track: NullTrack | None = None,
         off_mean: float = 0.0,
+        penalty: Penalty | None = None,
     ) -> None:
         self.ctx, self.design, self.run, self.ybar = ctx, design, run, ybar
+        self.penalty = penalty
         self.spec = ctx.spec
         self.null_mu = null_mu
         self.null_track = null_track
@@ -137,9 +152,15 @@ class IrlsSolver:
 
     # -- the loop ------------------------------------------------------------------------------
 
-    def fit(self, start: np.ndarray | None = None) -> tuple[IrlsState, float | None]:
-        """Run IRLS from ``start`` (None: the family's starting means); see :func:`irls`."""
-        self.start(start)
+    def fit(
+        self, start: np.ndarray | None = None, warm: IrlsState | None = None
+    ) -> tuple[IrlsState, float | None]:
+        """Run IRLS from ``start`` (None: the family's starting means) or from the sums of
+        ``warm``; see :func:`irls`."""
+        if warm is not None:
+            self.start_warm(warm)
+        else:
+            self.start(start)
         for _ in range(max(self.budget, 0)):
             if self.step():
                 break
@@ -171,13 +192,36 @@ class IrlsSolver:
             self.sums = sums
             self.beta_prev = _fallback_beta(self.ctx, self.design, self.ybar)
             self.run.record(sums.deviance, math.nan, 0, time.perf_counter() - t0)
-            self.sol = solver.solve(sums.xtwx, sums.xtwz)
+            self.sol = self.solve(sums, self.beta_prev)
             self.beta = self.sol.beta
             self.budget = spec.max_iter - 1  # the start scan counts as an iteration
         else:
             self.beta = np.asarray(start, float)
             self.beta_prev = self.beta.copy()
             self.budget = spec.max_iter
+
+    def start_warm(self, warm: IrlsState) -> None:
+        """Start from a converged state's scan: its sums give the first (penalised) update
+        with no scan of its own (a path's next lambda)."""
+        self.sums = warm.sums
+        self.beta_prev = warm.beta
+        self.sol = self.solve(warm.sums, warm.beta)
+        self.beta = self.sol.beta
+        self.dev_old = self.objective(warm.sums, warm.beta)
+        self.budget = self.spec.max_iter
+
+    def solve(self, sums: solver.Sums, beta: np.ndarray) -> solver.Solution:
+        """The update from one scan's sums: the Newton step, or the penalised one from
+        ``beta`` (where the scan was taken)."""
+        if self.penalty is None:
+            return solver.solve(sums.xtwx, sums.xtwz)
+        return self.penalty.step(sums.xtwx, sums.xtwz, beta)
+
+    def objective(self, sums: solver.Sums, beta: np.ndarray) -> float:
+        """What the loop lowers: the deviance, plus the penalty in deviance units."""
+        if self.penalty is None:
+            return sums.deviance
+        return sums.deviance + self.penalty.cost(beta)
 
     def step(self) -> bool:
         """One iteration: an accepted scan, its update, the convergence test. True: stop."""
@@ -190,17 +234,18 @@ class IrlsSolver:
         sums = self.sums
         assert sums is not None
         self.sums_prev = sums
+        current = self.objective(sums, self.beta)
         change = (
-            solver.relative_change(sums.deviance, self.dev_old)
+            solver.relative_change(current, self.dev_old)
             if math.isfinite(self.dev_old)
             else math.inf
         )
         self.run.record(sums.deviance, change, halvings, time.perf_counter() - t0)
-        self.sol = solver.solve(sums.xtwx, sums.xtwz)
+        self.sol = self.solve(sums, self.beta)
         if change < self.spec.tol and self.step_size() < self.step_tol:
             self.converged = True
             return True
-        self.dev_old = sums.deviance
+        self.dev_old = current
         self.beta_prev = self.beta
         self.beta = self.sol.beta
         return False
@@ -213,19 +258,20 @@ class IrlsSolver:
         halvings = 0
         while True:
             sums = self.sums = self.scan(self.beta)
+            current = self.objective(sums, self.beta)
             valid = sums.bad == 0 and math.isfinite(sums.deviance)
             # A rise is relative to the deviance only: deviance terms are >= 0, so their
             # sum's rounding error is a small multiple of eps times the sum (1e-9 covers
             # parallel partial sums over ~10^7 rows). No absolute slack: at a boundary MLE
             # the deviance itself falls towards 0 (~5e-9 after 20 iterations on 4 rows),
             # where a fixed 1e-12 accepted steps that raised it, over and over.
-            rises = math.isfinite(self.dev_old) and sums.deviance > self.dev_old * (1 + 1e-9)
+            rises = math.isfinite(self.dev_old) and current > self.dev_old * (1 + 1e-9)
             if valid and not rises:
                 return halvings
             if (
                 valid
                 and halvings >= STALL_HALVINGS
-                and solver.relative_change(sums.deviance, self.dev_old) < spec.tol
+                and solver.relative_change(current, self.dev_old) < spec.tol
             ):
                 # Flat: a quarter of the Newton step still does not lower the deviance and
                 # the rise is below what the convergence test can see. Along the step the
@@ -248,7 +294,7 @@ class IrlsSolver:
         run, deviance = self.run, self.dev_old
         if not math.isfinite(deviance) or run.phase == "sample":
             return
-        again = self.scan(self.beta_prev).deviance
+        again = self.objective(self.scan(self.beta_prev), self.beta_prev)
         if abs(again - deviance) <= 1e-9 * abs(deviance) + 1e-300:
             return
         raise NondeterministicSourceError(

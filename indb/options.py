@@ -426,6 +426,60 @@ OPTIONS: tuple[Option, ...] = (
         choices=("auto", "always", "never"),
         metavar="WHEN",
     ),
+    # -- the elastic net (indb.penalty) --------------------------------------------------------
+    Option(
+        "penalty",
+        NUMBER,
+        None,
+        "Elastic-net strength lambda: minimise deviance / (2 x weight total) + lambda x "
+        "[a sum|b| + (1-a)/2 sum b^2]; the intercept is never penalised. Penalised estimates "
+        "carry no standard errors.",
+        "model",
+        metavar="LAMBDA",
+    ),
+    Option(
+        "l1_share",
+        NUMBER,
+        0.0,
+        "Share a of the L1 part of the penalty: 0 ridge, 1 lasso.",
+        "model",
+        metavar="A",
+    ),
+    Option(
+        "standardize",
+        BOOLEAN,
+        False,
+        "Penalise coefficients of columns scaled to weighted standard deviation 1 (estimates "
+        "stay on the original scale).",
+        "model",
+    ),
+    Option(
+        "penalty_for",
+        VALUES,
+        None,
+        "Multiply the penalty of a column's coefficients by FACTOR (0: unpenalised) "
+        "(repeatable).",
+        "model",
+        metavar="COL=FACTOR",
+    ),
+    Option(
+        "path",
+        WHOLE,
+        None,
+        "Fit N values of lambda from lambda_max (all penalised coefficients 0) down to "
+        "path_ratio x lambda_max, each started from the previous; the result is the last.",
+        "model",
+        metavar="N",
+        minimum=2,
+    ),
+    Option(
+        "path_ratio",
+        NUMBER,
+        1e-3,
+        "Smallest lambda of --path as a share of lambda_max.",
+        "model",
+        metavar="R",
+    ),
     # -- run: Python only --------------------------------------------------------------------
     Option(
         "progress",

@@ -142,6 +142,12 @@ class FitResult:
     #: the covariance is not kept)
     term_tests: tuple[TermTest, ...] = ()
     collinearity: tuple[Collinearity, ...] = ()
+    #: a penalised fit (indb.pathfit): lambda, the L1 share, lambda_max of a path, the
+    #: penalised coefficients left non-zero and the note that no standard errors are
+    #: reported; empty for an unpenalised fit
+    penalty: dict[str, Any] = field(default_factory=dict)
+    #: a lambda path: one {penalty, deviance, nonzero, coefficients} per lambda, largest first
+    penalty_path: tuple[dict[str, Any], ...] = ()
 
     # -- the model as objects ------------------------------------------------------------
     @property
@@ -238,6 +244,13 @@ class FitResult:
             "term_tests": [_clean(asdict(t)) for t in self.term_tests],
             "collinearity": [_clean(asdict(t)) for t in self.collinearity],
         }
+        if self.penalty:
+            out["penalty"] = _clean(dict(self.penalty))
+            out["penalty_path"] = [
+                {**_clean({k: v for k, v in r.items() if k != "coefficients"}),
+                 "coefficients": _clean(dict(r["coefficients"]))}
+                for r in self.penalty_path
+            ]
         if self.deployment:
             out["deployment"] = dict(self.deployment)
             out["scoring_view"] = self.deployment.get("scoring_view")
@@ -328,6 +341,8 @@ class FitResult:
                 Collinearity(t["term"], int(t["df"]), f(t["gvif"]), f(t["gvif_scaled"]))
                 for t in d.get("collinearity", [])
             ),
+            penalty={k: (math.nan if v is None else v) for k, v in d.get("penalty", {}).items()},
+            penalty_path=tuple(d.get("penalty_path", [])),
         )
 
 
