@@ -457,8 +457,7 @@ OPTIONS: tuple[Option, ...] = (
         "penalty_for",
         VALUES,
         None,
-        "Multiply the penalty of a column's coefficients by FACTOR (0: unpenalised) "
-        "(repeatable).",
+        "Multiply the penalty of a column's coefficients by FACTOR (0: unpenalised) (repeatable).",
         "model",
         metavar="COL=FACTOR",
     ),

@@ -47,16 +47,14 @@ def make_penalty(ctx: PlanContext, design: Design, run: FitRun, summary: Summary
     sc = run.scaling
     # W' d' = (sum of f pw on the fit's scale) x (internal deviance / source deviance over
     # the weight factors) = sum_fpw x 2^log2_deviance_factor (indb.design.Scaling)
-    total = summary.sum_fpw * 2.0 ** sc.log2_deviance_factor
+    total = summary.sum_fpw * 2.0**sc.log2_deviance_factor
     spread = _weighted_spread(ctx, design, run, summary) if spec.standardize else None
     unit = column_units(design, sc, dict(spec.penalty_for), spread)
     strength = math.inf if spec.path is not None else float(spec.penalty or 0.0)
     return Penalty(strength, spec.l1_share, unit, total)
 
 
-def _weighted_spread(
-    ctx: PlanContext, design: Design, run: FitRun, summary: Summary
-) -> np.ndarray:
+def _weighted_spread(ctx: PlanContext, design: Design, run: FitRun, summary: Summary) -> np.ndarray:
     """Each internal column's standard deviation weighted by prior x frequency weight: X'WX
     of one scan whose working weights are those (the gaussian family, identity link)."""
     if not design.intercept:
@@ -90,9 +88,7 @@ def path(
     lambdas = lam_max * spec.path_ratio ** (np.arange(n) / (n - 1))
     records = [_record(design, run, state, penalty.at(lam_max))]
     for lam in lambdas[1:]:
-        state, _ = irls(
-            ctx, design, run, summary.ybar, penalty=penalty.at(float(lam)), warm=state
-        )
+        state, _ = irls(ctx, design, run, summary.ybar, penalty=penalty.at(float(lam)), warm=state)
         records.append(_record(design, run, state, penalty.at(float(lam))))
     return state, records, lam_max
 

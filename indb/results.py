@@ -247,8 +247,10 @@ class FitResult:
         if self.penalty:
             out["penalty"] = _clean(dict(self.penalty))
             out["penalty_path"] = [
-                {**_clean({k: v for k, v in r.items() if k != "coefficients"}),
-                 "coefficients": _clean(dict(r["coefficients"]))}
+                {
+                    **_clean({k: v for k, v in r.items() if k != "coefficients"}),
+                    "coefficients": _clean(dict(r["coefficients"])),
+                }
                 for r in self.penalty_path
             ]
         if self.deployment:
