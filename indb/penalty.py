@@ -148,11 +148,8 @@ def coordinate_descent(
             if denom[j] <= 0:
                 continue
             rho = grad[j] + diag[j] * b[j]
-            lj = l1[j]
-            if math.isinf(lj):
-                new = 0.0
-            else:
-                new = math.copysign(max(abs(rho) - lj, 0.0), rho) / denom[j]
+            # soft-thresholding; an infinite l1 (a coefficient held at 0) gives 0
+            new = math.copysign(max(abs(rho) - l1[j], 0.0), rho) / denom[j]
             delta = new - b[j]
             if delta != 0.0:
                 grad[:] -= column(j) * delta
