@@ -287,3 +287,114 @@ def test_bad_penalty_input_is_refused(kw, words) -> None:
     with pytest.raises(SpecError) as err:
         indb.fit("d", "y", db=_con(frame), **kw)
     assert words in str(err.value)
+
+
+# -- command line, spec file, registry ----------------------------------------------------
+
+
+def _diabetes_parquet(tmp_path) -> str:
+    _, _, frame = _diabetes()
+    path = tmp_path / "diabetes.parquet"
+    frame.to_parquet(path)
+    return str(path)
+
+
+def _cli(*args: str):
+    from click.testing import CliRunner
+
+    from indb.cli import main
+
+    return CliRunner().invoke(main, list(args))
+
+
+def test_cli_penalty_options_and_path_json(tmp_path) -> None:
+    import json
+
+    x, y, _ = _diabetes()
+    src = _diabetes_parquet(tmp_path)
+    out = _cli(
+        "fit",
+        src,
+        "--response",
+        "y",
+        "--family",
+        "gaussian",
+        "--penalty",
+        "0.1",
+        "--l1-share",
+        "0.5",
+        "--penalty-for",
+        "x0=0",
+        "--tol",
+        "1e-14",
+        "--json",
+    )
+    assert out.exit_code == 0, out.stderr
+    got = json.loads(out.stdout)
+    est = np.array([c["estimate"] for c in got["coefficients"]])
+    xd = np.column_stack([np.ones(len(y)), x])
+    f = np.r_[0.0, 0.0, np.ones(9)]  # x0 unpenalised
+    # the KKT conditions of the objective (module docstring)
+    assert kkt_residual(xd, y, est, 0.1, 0.5, f, family="gaussian") < 1e-8
+    assert all(c["std_error"] is None for c in got["coefficients"])
+    assert got["spec"]["penalty"] == 0.1 and got["spec"]["penalty_for"] == {"x0": 0.0}
+    path = _cli(
+        "fit",
+        src,
+        "--response",
+        "y",
+        "--family",
+        "gaussian",
+        "--path",
+        "4",
+        "--l1-share",
+        "1",
+        "--json",
+    )
+    assert path.exit_code == 0, path.stderr
+    rows = json.loads(path.stdout)["penalty_path"]
+    assert [r["nonzero"] for r in rows][0] == 0 and len(rows) == 4
+    text = _cli("fit", src, "--response", "y", "--family", "gaussian", "--penalty", "0.1", "-q")
+    assert "PENALTY" in text.stdout and "not reported" in text.stdout
+
+
+@pytest.mark.parametrize(
+    ("args", "words"),
+    [
+        (["--penalty", "-1"], "penalty must be a number >= 0"),
+        (["--penalty", "1", "--l1-share", "2"], "l1_share must be in [0, 1]"),
+        (["--penalty", "1", "--penalty-for", "zz=0"], "penalty_for names 'zz'"),
+        (["--penalty", "1", "--penalty-for", "x1=much"], "--penalty-for expects COLUMN=NUMBER"),
+    ],
+)
+def test_cli_bad_penalty_input_is_one_line_exit_2(tmp_path, args, words) -> None:
+    src = _diabetes_parquet(tmp_path)
+    out = _cli("fit", src, "--response", "y", "--family", "gaussian", *args)
+    assert out.exit_code == 2, (out.stdout, out.stderr)
+    lines = [ln for ln in out.stderr.splitlines() if ln.startswith("indb: error:")]
+    assert len(lines) == 1 and words in lines[0] and "Traceback" not in out.stderr
+
+
+def test_spec_file_and_registry_record_the_penalty(tmp_path) -> None:
+    import json
+
+    src = _diabetes_parquet(tmp_path)
+    db = tmp_path / "m.duckdb"
+    spec = tmp_path / "m.toml"
+    spec.write_text(
+        f'[model]\nsource = "{src}"\nresponse = "y"\nfamily = "gaussian"\npenalty = 0.2\n'
+        "l1_share = 0.5\npenalty_for = {{ x1 = 0.0 }}\n".replace("{{", "{").replace("}}", "}")
+        + f'[deploy]\nname = "pen"\n[engine]\ndb = "{db}"\n'
+    )
+    out = _cli("run", "--json", str(spec))
+    assert out.exit_code == 0, out.stderr
+    stored = indb.api.registry(str(db), read_only=True)
+    try:
+        loaded = stored.load("pen", 1)
+    finally:
+        stored.engine.close()
+    assert loaded.spec["penalty"] == 0.2 and loaded.spec["l1_share"] == 0.5
+    assert loaded.penalty["penalty"] == 0.2 and np.isnan(loaded.std_errors).all()
+    direct = indb.fit(src, "y", penalty=0.2, l1_share=0.5, penalty_for={"x1": 0.0})
+    assert_allclose(loaded.estimates, direct.estimates, rtol=1e-10)
+    assert json.loads(out.stdout)["penalty"]["l1_share"] == 0.5
