@@ -55,9 +55,7 @@ def measure(path: str, n_lambdas: int, threads: int | None) -> dict:
     plain_wall = time.perf_counter() - t0
     scan = plain.seconds_per_iteration
     t0 = time.perf_counter()
-    pen = indb.fit(
-        path, model.response, model.family, path=n_lambdas, l1_share=0.5, **kw
-    )
+    pen = indb.fit(path, model.response, model.family, path=n_lambdas, l1_share=0.5, **kw)
     wall = time.perf_counter() - t0
     con.close()
     phases = Counter(r.phase for r in pen.iteration_log)
@@ -86,7 +84,7 @@ def markdown(rows: list[dict], when: str) -> str:
         "",
         f"Measured {when}. Poisson + offset, p = 55 (`bench_data.py`), elastic net "
         "l1_share 0.5, a path of 20 lambdas from lambda_max to 10^-3 lambda_max, DuckDB "
-        "reading the Parquet file. \"One plain scan\" is the mean IRLS scan of the "
+        'reading the Parquet file. "One plain scan" is the mean IRLS scan of the '
         "unpenalised fit in the same process; the path's time includes its pre-fit scans "
         "(profile, levels, sample start) and the held-at-0 fit that gives lambda_max.",
         "",
@@ -112,7 +110,10 @@ def markdown(rows: list[dict], when: str) -> str:
 
 
 def write(out: str, text: str) -> None:
-    old = open(out).read() if os.path.exists(out) else ""
+    old = ""
+    if os.path.exists(out):
+        with open(out) as fh:
+            old = fh.read()
     if BEGIN in old and END in old:
         head, rest = old.split(BEGIN, 1)
         new = head + text.rstrip("\n") + rest.split(END, 1)[1]
