@@ -200,6 +200,12 @@ def se_eta_sql(res: FitResult) -> Expr:
     x is a number; :func:`scoring_query` guards the rest (GREATEST(NULL, 0) would be 0)."""
     terms = _design_terms(res)
     p = len(terms)
+    if res.penalty:
+        raise SpecError(
+            "intervals need the coefficients' standard errors, and a penalised fit (penalty "
+            f"{res.penalty.get('penalty')!r}) reports none (docs/penalised-fits.md): score "
+            "without intervals (leave out --intervals / intervals=True)"
+        )
     if p > MAX_SE_TERMS or res.covariance is None:
         raise SpecError(
             f"intervals (score_se_eta and the confidence limits) are available for models of "

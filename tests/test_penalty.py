@@ -398,3 +398,53 @@ def test_spec_file_and_registry_record_the_penalty(tmp_path) -> None:
     direct = indb.fit(src, "y", penalty=0.2, l1_share=0.5, penalty_for={"x1": 0.0})
     assert_allclose(loaded.estimates, direct.estimates, rtol=1e-10)
     assert json.loads(out.stdout)["penalty"]["l1_share"] == 0.5
+
+
+def test_standardize_with_weights_satisfies_kkt_on_the_weighted_sd_scale() -> None:
+    # the KKT conditions with each column's penalty on b_j x sd_j, sd_j its standard
+    # deviation weighted by the frequency weights (the definition of --standardize)
+    frame = _claims_frame()
+    lam, a = 0.02, 0.5
+    got = indb.fit(
+        "d",
+        "claims",
+        "poisson",
+        db=_con(frame),
+        offset="ln(expo)",
+        frequency_weight="fw",
+        predictors=["x0", "x2", "x3", "x8"],
+        penalty=lam,
+        l1_share=a,
+        standardize=True,
+        **TIGHT,
+    )
+    w = frame["fw"].to_numpy()
+    xs = frame[["x0", "x2", "x3", "x8"]].to_numpy()
+    mean = w @ xs / w.sum()
+    sd = np.sqrt(w @ (xs - mean) ** 2 / w.sum())
+    xd = np.column_stack([np.ones(len(frame)), xs])
+    res = kkt_residual(
+        xd,
+        frame["claims"].to_numpy(float),
+        got.estimates,
+        lam,
+        a,
+        np.r_[0.0, np.ones(4)],
+        family="poisson",
+        w=w,
+        offset=np.log(frame["expo"].to_numpy()),
+        scale=np.r_[1.0, sd],
+    )
+    assert res < 1e-7
+
+
+def test_deploying_a_penalised_fit_with_intervals_is_refused(tmp_path) -> None:
+    _, _, frame = _diabetes()
+    src = tmp_path / "d.parquet"
+    frame.to_parquet(src)
+    with pytest.raises(SpecError, match="reports none"):
+        indb.fit(
+            str(src), "y", db=str(tmp_path / "m.duckdb"), penalty=0.1, name="m", intervals=True
+        )
+    with duckdb.connect(str(tmp_path / "m.duckdb")) as con:  # nothing written
+        assert con.execute("SELECT count(*) FROM information_schema.tables").fetchone() == (0,)
