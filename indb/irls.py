@@ -200,6 +200,15 @@ class IrlsSolver:
             self.beta_prev = self.beta.copy()
             self.budget = spec.max_iter
 
+    def with_penalty(self, penalty: Penalty) -> IrlsSolver:
+        """This loop ready for another penalty (a path's next lambda), keeping what the
+        scans cache (the log-link scan's constants, the cells)."""
+        self.penalty = penalty
+        self.iterations = 0
+        self.converged = self.stalled = False
+        self.null_mu = self.null_track = None
+        return self
+
     def start_warm(self, warm: IrlsState) -> None:
         """Start from a converged state's scan: its sums give the first (penalised) update
         with no scan of its own (a path's next lambda)."""

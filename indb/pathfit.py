@@ -26,7 +26,7 @@ from indb import solver
 from indb.design import Design
 from indb.families import Gaussian
 from indb.fitrun import FitRun
-from indb.irls import IrlsState, irls
+from indb.irls import IrlsSolver, IrlsState
 from indb.links import IdentityLink
 from indb.penalty import Penalty, column_units, weighted_spread
 from indb.plan.context import PlanContext
@@ -87,8 +87,10 @@ def path(
     n = int(spec.path or 2)
     lambdas = lam_max * spec.path_ratio ** (np.arange(n) / (n - 1))
     records = [_record(design, run, state, penalty.at(lam_max))]
+    # one loop for the whole path: the scans' caches carry over from lambda to lambda
+    loop = IrlsSolver(ctx, design, run, summary.ybar, off_mean=summary.off_mean)
     for lam in lambdas[1:]:
-        state, _ = irls(ctx, design, run, summary.ybar, penalty=penalty.at(float(lam)), warm=state)
+        state, _ = loop.with_penalty(penalty.at(float(lam))).fit(warm=state)
         records.append(_record(design, run, state, penalty.at(float(lam))))
     return state, records, lam_max
 
