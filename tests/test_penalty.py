@@ -48,12 +48,14 @@ def _design(result: indb.FitResult, frame: pd.DataFrame) -> np.ndarray:
     """The fit's design matrix rebuilt with numpy from its coefficient table (main effects)."""
     cols = []
     for c in result.coefficients:
-        if c.term == "intercept":
-            cols.append(np.ones(len(frame)))
-        elif c.levels and c.levels[0] is not None:
-            cols.append((frame[c.columns[0]].astype(str) == c.levels[0]).to_numpy(float))
-        else:
-            cols.append(frame[c.columns[0]].to_numpy(float))
+        col = np.ones(len(frame))
+        # a product over the term's columns: a level's indicator or a numeric value
+        for name, level in zip(c.columns, c.levels, strict=True):
+            if level is not None:
+                col = col * (frame[name].astype(str) == level).to_numpy(float)
+            else:
+                col = col * frame[name].to_numpy(float)
+        cols.append(col)
     return np.column_stack(cols)
 
 
@@ -108,6 +110,48 @@ def test_gaussian_elastic_net_matches_scikit_learn(lam: float, a: float) -> None
     assert all(np.isnan(c.p_two_sided) and np.isnan(c.lower_bound) for c in got.coefficients)
     assert got.term_tests == () and got.collinearity == () and got.covariance is None
     assert "not reported" in got.penalty["note"] and "not reported" in str(got)
+
+
+def test_gaussian_elastic_net_with_prior_weights_matches_scikit_learn() -> None:
+    # scikit-learn ElasticNet with sample_weight: (1/(2 sum w)) sum w (y - Xb)^2 + penalty,
+    # indb's objective with prior weights w
+    x, y, frame = _diabetes()
+    w = np.random.default_rng(3).uniform(0.2, 3.0, len(y))
+    frame["w"] = w
+    lam, a = 0.05, 0.5
+    got = indb.fit(
+        "d", "y", db=_con(frame), weight="w", penalty=lam, l1_share=a, exclude=["w"], **TIGHT
+    )
+    ref = ElasticNet(alpha=lam, l1_ratio=a, tol=1e-15, max_iter=10**6).fit(x, y, sample_weight=w)
+    want = np.r_[ref.intercept_, ref.coef_]
+    xd = np.column_stack([np.ones(len(y)), x])
+    f = np.r_[0.0, np.ones(10)]
+    assert kkt_residual(xd, y, want, lam, a, f, family="gaussian", w=w) < 1e-9  # the oracle
+    assert_allclose(got.estimates, want, rtol=0, atol=1e-6 * np.abs(want).max())
+
+
+def test_interaction_terms_are_penalised_each_on_its_own() -> None:
+    # KKT conditions with the design rebuilt in numpy: x2 x region dummies and x0 x x8
+    frame = _claims_frame()
+    lam, a = 0.03, 0.5
+    got = indb.fit(
+        "d",
+        "claims",
+        "poisson",
+        db=_con(frame),
+        offset="ln(expo)",
+        predictors=["x0", "x2", "x8", "region"],
+        interactions=[["x2", "region"], ["x0", "x8"]],
+        penalty=lam,
+        l1_share=a,
+        **TIGHT,
+    )
+    assert any(len(c.columns) == 2 for c in got.coefficients)
+    xd = _design(got, frame)
+    f = np.r_[0.0, np.ones(xd.shape[1] - 1)]
+    y = frame["claims"].to_numpy(float)
+    off = np.log(frame["expo"].to_numpy())
+    assert kkt_residual(xd, y, got.estimates, lam, a, f, family="poisson", offset=off) < 1e-7
 
 
 def test_standardize_penalises_columns_of_weighted_sd_one() -> None:
