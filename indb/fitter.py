@@ -157,6 +157,8 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         start, null_b0 = sample_start(ctx, design, run, summary, n_kept, null_b0)
     run.phase = "fit"
     penalty = pathfit.make_penalty(ctx, design, run, summary) if spec.penalised else None
+    if penalty is not None and start is not None and spec.path is not None:
+        start = np.where(penalty.penalised, 0.0, start)  # the path's first fit holds them at 0
     track = NullTrack(null_b0, spec.tol) if null_b0 is not None else None
     state, null_dev = irls(
         ctx,

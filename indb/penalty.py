@@ -80,7 +80,10 @@ class Penalty:
     def cost(self, beta: np.ndarray) -> float:
         """The penalty in deviance units (twice half-deviance units) at internal ``beta``."""
         if math.isinf(self.strength):
-            return 0.0  # penalised coefficients are held at 0
+            # penalised coefficients are held at 0: anywhere else is infinitely worse (a
+            # start from an unpenalised fit must not be halved back towards)
+            held = np.nan_to_num(beta)[self.penalised]
+            return 0.0 if not held.any() else math.inf
         l1, l2 = self.weights()
         b = np.nan_to_num(beta)
         return float(2.0 * (l1 @ np.abs(b)) + l2 @ (b * b))

@@ -492,3 +492,20 @@ def test_deploying_a_penalised_fit_with_intervals_is_refused(tmp_path) -> None:
         )
     with duckdb.connect(str(tmp_path / "m.duckdb")) as con:  # nothing written
         assert con.execute("SELECT count(*) FROM information_schema.tables").fetchone() == (0,)
+
+
+def test_path_from_a_sample_start_holds_the_first_fit_at_zero() -> None:
+    # a sample start (an unpenalised fit on a sample) must not leak into the held-at-0 fit:
+    # the same path as without it (regression: at 10^7 rows lambda_max had 54 non-zero)
+    frame = _claims_frame()
+    kw = {"offset": "ln(expo)", "path": 5, "l1_share": 0.5, "tol": 1e-12}
+    con = _con(frame)
+    sampled = indb.fit("d", "claims", "poisson", db=con, sample_start="always", **kw)
+    plain = indb.fit("d", "claims", "poisson", db=con, sample_start="never", **kw)
+    assert sampled.penalty_path[0]["nonzero"] == 0
+    assert any(r.phase == "sample" for r in sampled.iteration_log)
+    for a, b in zip(sampled.penalty_path, plain.penalty_path, strict=True):
+        assert_allclose(a["penalty"], b["penalty"], rtol=1e-8)
+        assert_allclose(
+            list(a["coefficients"].values()), list(b["coefficients"].values()), atol=1e-7
+        )
