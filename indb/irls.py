@@ -62,7 +62,6 @@ def irls(
     null_track: NullTrack | None = None,
     off_mean: float = 0.0,
     penalty: Penalty | None = None,
-    warm: IrlsState | None = None,
 ) -> tuple[IrlsState, float | None]:
     """Iterate scans until the deviance settles and the next step is negligible.
 
@@ -70,8 +69,7 @@ def irls(
     first scan when ``null_mu`` (a per-row null mean) is given, or from ``null_track`` (the
     intercept-only model with the offset, iterated in the same scans) when it converged.
     With ``penalty`` each update is the penalised Newton step (:mod:`indb.penalty`) and the
-    deviance the loop watches is the penalised objective; ``warm`` (a converged state of a
-    neighbouring penalty) starts from its sums without a scan.
+    deviance the loop watches is the penalised objective.
     """
     loop = IrlsSolver(
         ctx,
@@ -83,7 +81,7 @@ def irls(
         off_mean=off_mean,
         penalty=penalty,
     )
-    return loop.fit(start, warm)
+    return loop.fit(start)
 
 
 class IrlsSolver:

@@ -56,13 +56,14 @@ def make_penalty(ctx: PlanContext, design: Design, run: FitRun, summary: Summary
 
 def _weighted_spread(ctx: PlanContext, design: Design, run: FitRun, summary: Summary) -> np.ndarray:
     """Each internal column's standard deviation weighted by prior x frequency weight: X'WX
-    of one scan whose working weights are those (the gaussian family, identity link)."""
-    if not design.intercept:
-        # about 0, as the model without an intercept measures its columns
-        flat = _plain_gram(ctx, design, run, summary)
-        return np.sqrt(np.clip(flat.xtwx.diagonal() / flat.xtwx.diagonal()[0:1].sum(), 0, None))
+    of one scan whose working weights are those (the gaussian family, identity link). Without
+    an intercept the spread is taken about 0, as that model measures its columns."""
     sums = _plain_gram(ctx, design, run, summary)
-    return weighted_spread(sums.xtwx, float(sums.xtwx.diagonal()[0]))
+    if design.intercept:
+        return weighted_spread(sums.xtwx, float(sums.xtwx.diagonal()[0]))
+    sc = run.scaling
+    total = summary.sum_fpw * sc.weight_factor * sc.freq_factor
+    return np.sqrt(np.clip(sums.xtwx.diagonal() / total, 0.0, None))
 
 
 def _plain_gram(ctx: PlanContext, design: Design, run: FitRun, summary: Summary) -> solver.Sums:

@@ -509,3 +509,26 @@ def test_path_from_a_sample_start_holds_the_first_fit_at_zero() -> None:
         assert_allclose(
             list(a["coefficients"].values()), list(b["coefficients"].values()), atol=1e-7
         )
+
+
+def test_standardize_without_intercept_scales_about_zero() -> None:
+    # scikit-learn ElasticNet(fit_intercept=False) on columns divided by their root mean
+    # square (the spread about 0 a model without intercept measures), coefficients divided back
+    x, y, frame = _diabetes()
+    x = x + 0.05  # not centred
+    frame[[f"x{i}" for i in range(10)]] = x
+    lam, a = 0.2, 0.5
+    got = indb.fit(
+        "d",
+        "y",
+        db=_con(frame),
+        intercept=False,
+        penalty=lam,
+        l1_share=a,
+        standardize=True,
+        **TIGHT,
+    )
+    rms = np.sqrt((x * x).mean(0))
+    ref = ElasticNet(alpha=lam, l1_ratio=a, fit_intercept=False, tol=1e-15, max_iter=10**6)
+    want = ref.fit(x / rms, y).coef_ / rms
+    assert_allclose(got.estimates, want, rtol=0, atol=1e-6 * np.abs(want).max())
