@@ -532,3 +532,21 @@ def test_standardize_without_intercept_scales_about_zero() -> None:
     ref = ElasticNet(alpha=lam, l1_ratio=a, fit_intercept=False, tol=1e-15, max_iter=10**6)
     want = ref.fit(x / rms, y).coef_ / rms
     assert_allclose(got.estimates, want, rtol=0, atol=1e-6 * np.abs(want).max())
+
+
+@pytest.mark.parametrize("a", [0.0, 1.0])
+def test_penalty_follows_the_internal_rescaling_of_response_and_weights(a: float) -> None:
+    # The objective's own invariances (algebra, not a program): with y -> s y (s = 2^40)
+    # for ridge b(s y) = s b(y)
+    # at the same lambda; for the lasso b(s y, s lambda) = s b(y, lambda). Prior weights times
+    # 2^30 change nothing (W divides them out). The fit rescales such responses and weights
+    # internally (DEVELOPERS.md, Magnitudes), and the penalty must follow.
+    x, y, frame = _diabetes()
+    s = 2.0**40
+    frame["w"] = np.random.default_rng(4).uniform(0.5, 2.0, len(y))
+    big = frame.assign(y=frame["y"] * s, w=frame["w"] * 2.0**30)
+    lam = 0.05
+    kw = {"weight": "w", "exclude": ["w"], "l1_share": a, **TIGHT}
+    base = indb.fit("d", "y", db=_con(frame), penalty=lam, **kw)
+    scaled = indb.fit("d", "y", db=_con(big), penalty=lam * (s if a > 0 else 1.0), **kw)
+    assert_allclose(scaled.estimates / s, base.estimates, rtol=1e-8, atol=1e-9)
