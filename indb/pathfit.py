@@ -90,8 +90,9 @@ def path(
     records = [_record(design, run, state, penalty.at(lam_max))]
     # one loop for the whole path: the scans' caches carry over from lambda to lambda
     loop = IrlsSolver(ctx, design, run, summary.ybar, off_mean=summary.off_mean)
-    for lam in lambdas[1:]:
-        state, _ = loop.with_penalty(penalty.at(float(lam))).fit(warm=state)
+    for k, lam in enumerate(lambdas[1:], start=2):
+        loop.with_penalty(penalty.at(float(lam)), predicted_settle=k < n)
+        state, _ = loop.fit(warm=state)
         records.append(_record(design, run, state, penalty.at(float(lam))))
     return state, records, lam_max
 

@@ -102,6 +102,20 @@ class Penalty:
         aliased = plain.aliased & ~self.penalised
         return Solution(beta=np.where(aliased, 0.0, new), aliased=aliased, inv_info=plain.inv_info)
 
+    def gain(
+        self, xtwx: sparse.sparray, xtwz: np.ndarray, beta: np.ndarray, new: np.ndarray
+    ) -> float:
+        """What the step from ``beta`` to ``new`` lowers the penalised objective by, in
+        deviance units, as the scan's quadratic model predicts it (the penalised analogue of
+        the Newton decrement; 0 for no step)."""
+        a = sparse.csr_array(xtwx)
+
+        def model(b: np.ndarray) -> float:
+            b = np.nan_to_num(b)
+            return float(b @ (a @ b) - 2.0 * (xtwz @ b)) + self.cost(b)
+
+        return model(beta) - model(new)
+
     def lambda_max(self, xtwx: sparse.sparray, xtwz: np.ndarray, beta: np.ndarray) -> float:
         """The smallest lambda that keeps every penalised coefficient at 0, from the gradient
         X'Wz - X'WX b at a fit with them held at 0 (the KKT condition |g_j| <= W' d' lambda a
