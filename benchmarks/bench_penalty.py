@@ -50,13 +50,14 @@ def measure(path: str, n_lambdas: int, threads: int | None) -> dict:
         "offset": model.offset,
         "predictors": list(model.predictors),
     }
-    t0 = time.perf_counter()
+    load0 = os.getloadavg()[0]
+    t0, c0 = time.perf_counter(), time.process_time()
     plain = indb.fit(path, model.response, model.family, **kw)
-    plain_wall = time.perf_counter() - t0
+    plain_wall, plain_cpu = time.perf_counter() - t0, time.process_time() - c0
     scan = plain.seconds_per_iteration
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     pen = indb.fit(path, model.response, model.family, path=n_lambdas, l1_share=0.5, **kw)
-    wall = time.perf_counter() - t0
+    wall, cpu = time.perf_counter() - t0, time.process_time() - c0
     con.close()
     phases = Counter(r.phase for r in pen.iteration_log)
     fit_scans = phases.get("fit", 0)
@@ -74,6 +75,9 @@ def measure(path: str, n_lambdas: int, threads: int | None) -> dict:
         "ratio": wall / scan,
         "nonzero": [r["nonzero"] for r in pen.penalty_path],
         "peak_gib": _peak_gib(),
+        "plain_cpu": plain_cpu,
+        "path_cpu": cpu,
+        "load": (load0, os.getloadavg()[0]),
     }
 
 
@@ -89,14 +93,16 @@ def markdown(rows: list[dict], when: str) -> str:
         "(profile, levels, sample start) and the held-at-0 fit that gives lambda_max.",
         "",
         "| rows | plain fit (s, iterations) | one plain scan (s) | path wall (s) | IRLS scans "
-        "in the path | path / plain scan | scans per lambda | peak RSS (GiB) |",
-        "|---|---|---|---|---|---|---|---|",
+        "in the path | path / plain scan | scans per lambda | CPU s: plain fit, path | "
+        "load before, after | peak RSS (GiB) |",
+        "|---|---|---|---|---|---|---|---|---|---|",
     ]
     for r in rows:
         lines.append(
             f"| {r['rows']:,} | {r['plain_wall']:.1f} ({r['plain_iterations']}) | "
             f"{r['scan']:.3f} | {r['path_wall']:.1f} | {r['path_fit_scans']} | "
             f"{r['ratio']:.1f} | {r['path_fit_scans'] / r['lambdas']:.2f} | "
+            f"{r['plain_cpu']:.0f}, {r['path_cpu']:.0f} | {r['load'][0]:.1f}, {r['load'][1]:.1f} | "
             f"{r['peak_gib']:.2f} |"
         )
     lines += [
