@@ -110,6 +110,10 @@ def markdown(rows: list[dict], when: str) -> str:
         "Non-zero penalised coefficients along the path: "
         + "; ".join(f"{r['rows']:,} rows: {r['nonzero']}" for r in rows),
         "",
+        "Scans per lambda counts the path's IRLS scans over its lambdas (the held-at-0 fit's "
+        "included; lambda_max itself costs none). The ratio is wall against wall in one "
+        "process; on a shared machine (see the load column) both are inflated alike.",
+        "",
         END,
     ]
     return "\n".join(lines) + "\n"
