@@ -63,6 +63,12 @@ def fit(
     sample_start: str = "auto",
     covariance: str = "model",
     cluster: str | None = None,
+    penalty: float | None = None,
+    l1_share: float = 0.0,
+    standardize: bool = False,
+    penalty_for: Mapping[str, float] | None = None,
+    path: int | None = None,
+    path_ratio: float = 1e-3,
     progress: Any = None,
     name: str | None = None,
     promote: bool | None = None,
@@ -122,6 +128,12 @@ def fit(
         sample_start=sample_start,
         covariance=covariance,
         cluster=cluster,
+        penalty=penalty,
+        l1_share=l1_share,
+        standardize=standardize,
+        penalty_for=penalty_for,
+        path=path,
+        path_ratio=path_ratio,
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)

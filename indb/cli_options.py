@@ -69,6 +69,20 @@ def _parse_splines(values: Sequence[str], option: str) -> dict[str, int]:
     return knots
 
 
+def _parse_factors(values: Sequence[str], option: str) -> dict[str, float]:
+    factors: dict[str, float] = {}
+    for raw, (column, text) in zip(
+        values, _parse_pairs(values, option, "age=0.5", "COLUMN=NUMBER").items(), strict=True
+    ):
+        try:
+            factors[column] = float(text)
+        except ValueError:
+            raise SpecError(
+                f"{option} expects COLUMN=NUMBER, got {raw!r}; write it like {option} {column}=0.5"
+            ) from None
+    return factors
+
+
 def _parse_interactions(values: Sequence[str], option: str) -> list[tuple[str, ...]]:
     out: list[tuple[str, ...]] = []
     for raw in values:
@@ -93,6 +107,7 @@ _REPEATED: dict[O.Kind, Callable[[Sequence[str], str], Any]] = {
     O.LEVELS: _parse_levels,
     O.COLUMN_GROUPS: _parse_interactions,
     O.KNOTS: _parse_splines,
+    O.VALUES: _parse_factors,
 }
 _SCALAR_TYPES: dict[O.Kind, Any] = {
     O.TEXT: click.STRING,

@@ -16,7 +16,7 @@ import warnings
 
 import numpy as np
 
-from indb import covariance, folding, magnitudes, prefit, solver
+from indb import covariance, folding, magnitudes, pathfit, prefit, solver
 from indb.design import build_design, plan_values
 from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
@@ -165,6 +165,9 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
     if start is None:
         start, null_b0 = sample_start(ctx, design, run, summary, n_kept, null_b0)
     run.phase = "fit"
+    penalty = pathfit.make_penalty(ctx, design, run, summary) if spec.penalised else None
+    if penalty is not None and start is not None and spec.path is not None:
+        start = np.where(penalty.penalised, 0.0, start)  # the path's first fit holds them at 0
     track = NullTrack(null_b0, spec.tol) if null_b0 is not None else None
     state, null_dev = irls(
         ctx,
@@ -176,7 +179,13 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         null_track=track,
         off_mean=summary.off_mean,
         covariance=covariance.carried_sums(spec),
+        penalty=penalty,
     )
+    records: list = []
+    lam_max = None
+    if penalty is not None and spec.path is not None:
+        state, records, lam_max = pathfit.path(ctx, design, run, summary, penalty, state)
+        penalty = penalty.at(records[-1]["penalty"])
     if track is not None and null_dev is None:
         # the fitted model settled first: finish the intercept-only model on its own
         run.phase = "null"
@@ -231,10 +240,12 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         report_spec,
         sandwich,
     )
-    if theta_est is None:
+    if theta_est is not None:
+        res = dataclasses.replace(
+            res,
+            converged=res.converged and theta_est.converged,
+            family_param_errors={"theta": theta_est.std_error},
+        )
+    if penalty is None:
         return res
-    return dataclasses.replace(
-        res,
-        converged=res.converged and theta_est.converged,
-        family_param_errors={"theta": theta_est.std_error},
-    )
+    return pathfit.penalised_result(res, penalty, records, lam_max)

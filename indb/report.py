@@ -60,6 +60,7 @@ def render_report(result: FitResult, *, width: int = 100) -> str:
         _title(result, width),
         _model_block(result, width),
         _quality_block(result, width),
+        _penalty_block(result, width),
         _terms_block(result, width),
         _whole_terms_block(result, width),
         _notes_block(result, width),
@@ -223,6 +224,32 @@ def _whole_terms_block(result: FitResult, width: int) -> str:
     for r in rows:
         cells = "".join(_GAP + v.rjust(w) for v, w in zip(r[1:], widths[1:], strict=True))
         lines.append("  " + r[0].ljust(widths[0]) + cells)
+    return "\n".join(lines)
+
+
+def _penalty_block(result: FitResult, width: int) -> str:
+    """A penalised fit's lambda, share and path, and why no standard errors are shown."""
+    pen = result.penalty
+    if not pen:
+        return ""
+    lines = ["PENALTY (ELASTIC NET)", "-" * len("PENALTY (ELASTIC NET)")]
+    lines.append(
+        f"  lambda {pen['penalty']:.6g}, L1 share {pen['l1_share']:g}; "
+        f"{pen['nonzero']} of {pen['penalised_terms']} penalised coefficients non-zero"
+    )
+    if result.penalty_path:
+        first, last = result.penalty_path[0], result.penalty_path[-1]
+        lines.append(
+            f"  path of {len(result.penalty_path)} lambdas from lambda_max "
+            f"{first['penalty']:.6g} down to {last['penalty']:.6g}; the estimates below are "
+            "the last's"
+        )
+        for r in result.penalty_path:
+            lines.append(
+                f"    lambda {r['penalty']:<12.6g} deviance {r['deviance']:<14.8g} "
+                f"non-zero {r['nonzero']}"
+            )
+    lines.extend(_wrap(str(pen["note"]).upper()[:1] + str(pen["note"])[1:], width, indent="  "))
     return "\n".join(lines)
 
 

@@ -186,6 +186,12 @@ class FitResult:
     inverse_entries: InverseEntries | None = None
     covariance_kind: str = "model"
     clusters: int | None = None
+    #: a penalised fit (indb.pathfit): lambda, the L1 share, lambda_max of a path, the
+    #: penalised coefficients left non-zero and the note that no standard errors are
+    #: reported; empty for an unpenalised fit
+    penalty: dict[str, Any] = field(default_factory=dict)
+    #: a lambda path: one {penalty, deviance, nonzero, coefficients} per lambda, largest first
+    penalty_path: tuple[dict[str, Any], ...] = ()
 
     # -- the model as objects ------------------------------------------------------------
     @property
@@ -301,6 +307,15 @@ class FitResult:
         }
         if storage and self.inverse_entries is not None:
             out["inverse_entries"] = self.inverse_entries.to_dict()
+        if self.penalty:
+            out["penalty"] = _clean(dict(self.penalty))
+            out["penalty_path"] = [
+                {
+                    **_clean({k: v for k, v in r.items() if k != "coefficients"}),
+                    "coefficients": _clean(dict(r["coefficients"])),
+                }
+                for r in self.penalty_path
+            ]
         if self.deployment:
             out["deployment"] = dict(self.deployment)
             out["scoring_view"] = self.deployment.get("scoring_view")
@@ -398,6 +413,8 @@ class FitResult:
             inverse_entries=(
                 InverseEntries.from_dict(d["inverse_entries"]) if d.get("inverse_entries") else None
             ),
+            penalty={k: (math.nan if v is None else v) for k, v in d.get("penalty", {}).items()},
+            penalty_path=tuple(d.get("penalty_path", [])),
         )
 
 

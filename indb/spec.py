@@ -96,6 +96,18 @@ class ModelSpec:
     sample_start: str = "auto"
     covariance: str = "model"
     cluster: str | None = None
+    #: the elastic net (indb.penalty): lambda, the L1 share, standardized columns, per-column
+    #: strengths, and a path of N lambdas down to path_ratio x lambda_max
+    penalty: float | None = None
+    l1_share: float = 0.0
+    standardize: bool = False
+    penalty_for: tuple[tuple[str, float], ...] = ()
+    path: int | None = None
+    path_ratio: float = 1e-3
+
+    @property
+    def penalised(self) -> bool:
+        return self.penalty is not None or self.path is not None
 
     @staticmethod
     def build(
@@ -129,6 +141,12 @@ class ModelSpec:
         sample_start: str = "auto",
         covariance: str = "model",
         cluster: str | None = None,
+        penalty: float | None = None,
+        l1_share: float = 0.0,
+        standardize: bool = False,
+        penalty_for: Mapping[str, float] | None = None,
+        path: int | None = None,
+        path_ratio: float = 1e-3,
     ) -> ModelSpec:
         """Validate user options and resolve family/link names into a spec."""
         if not isinstance(response, str) or not response:
@@ -188,6 +206,13 @@ class ModelSpec:
             if not (isinstance(k, int) and 3 <= k <= 10):
                 raise SpecError(f"spline on column {colname!r} needs 3 to 10 knots; got {k!r}")
             spl.append((colname, k))
+        check_penalty(penalty, l1_share, path, path_ratio, penalty_for)
+        if (penalty is not None or path is not None) and covariance != "model":
+            raise SpecError(
+                f"covariance={covariance!r} gives standard errors, and a penalised fit reports "
+                "none (docs/penalised-fits.md): leave covariance at 'model' (CLI: drop "
+                "--covariance), or fit without penalty/path"
+            )
         st = tuple((str(k), float(v)) for k, v in (start or {}).items())
         if any(not math.isfinite(v) for _, v in st):
             raise SpecError("start values must be finite numbers")
@@ -219,6 +244,12 @@ class ModelSpec:
             sample_start=sample_start,
             covariance=covariance,
             cluster=cluster,
+            penalty=float(penalty) if penalty is not None else None,
+            l1_share=float(l1_share),
+            standardize=bool(standardize),
+            penalty_for=tuple((str(k), float(v)) for k, v in (penalty_for or {}).items()),
+            path=int(path) if path is not None else None,
+            path_ratio=float(path_ratio),
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -252,7 +283,54 @@ class ModelSpec:
                 if self.covariance != "model"
                 else {}
             ),
+            **self._penalty_dict(),
         }
+
+    def _penalty_dict(self) -> dict[str, Any]:
+        """The penalty's keys, only for a penalised fit (unpenalised specs keep their form)."""
+        if not self.penalised:
+            return {}
+        return {
+            "penalty": self.penalty,
+            "l1_share": self.l1_share,
+            "standardize": self.standardize,
+            "penalty_for": dict(self.penalty_for),
+            "path": self.path,
+            "path_ratio": self.path_ratio,
+        }
+
+
+def check_penalty(
+    penalty: float | None,
+    l1_share: float,
+    path: int | None,
+    path_ratio: float,
+    penalty_for: Mapping[str, float] | None,
+) -> None:
+    """One-line input errors for the penalty options (indb.penalty)."""
+    if penalty is not None and not (math.isfinite(penalty) and penalty >= 0):
+        raise SpecError(
+            f"penalty must be a number >= 0 (lambda of the elastic net); got {penalty!r}"
+        )
+    if not (math.isfinite(l1_share) and 0.0 <= l1_share <= 1.0):
+        raise SpecError(f"l1_share must be in [0, 1] (0 = ridge, 1 = lasso); got {l1_share!r}")
+    if path is not None and path < 2:
+        raise SpecError(f"path must be a whole number >= 2 (values of lambda); got {path!r}")
+    if path is not None and penalty is not None:
+        raise SpecError(
+            f"give penalty ({penalty!r}) or path ({path!r}), not both: a path chooses its own "
+            "lambdas from lambda_max down"
+        )
+    if not (math.isfinite(path_ratio) and 0.0 < path_ratio < 1.0):
+        raise SpecError(
+            f"path_ratio must be in (0, 1) (smallest lambda / lambda_max); got {path_ratio!r}"
+        )
+    for column, factor in (penalty_for or {}).items():
+        if not (math.isfinite(factor) and factor >= 0):
+            raise SpecError(
+                f"penalty_for {column!r} must be a number >= 0 (0 leaves it unpenalised); "
+                f"got {factor!r}"
+            )
 
 
 def _check_covariance(covariance: str, cluster: str | None) -> None:

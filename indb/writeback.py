@@ -223,6 +223,12 @@ def se_eta_form(res: FitResult) -> QuadraticForm:
     x is a number; GREATEST(q, 0) takes away rounding below 0 there."""
     columns = _columns(res)
     p = len(columns)
+    if res.penalty:
+        raise SpecError(
+            "intervals need the coefficients' standard errors, and a penalised fit (penalty "
+            f"{res.penalty.get('penalty')!r}) reports none (docs/penalised-fits.md): score "
+            "without intervals (leave out --intervals / intervals=True)"
+        )
     if p > MAX_SE_TERMS or res.covariance is None:
         raise SpecError(
             f"intervals (score_se_eta and the confidence limits) are available for models of "
