@@ -10,7 +10,8 @@ gate.
 
 Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` and
 ``retrain`` (TOML spec files), the registry commands ``models``, ``versions``, ``show``,
-``compare``, ``promote``, ``drop``, ``scoring-sql``, and ``demo``.
+``compare``, ``promote``, ``drop``, ``scoring-sql``, ``assess``, ``report`` (in
+:mod:`indb.cli_report`) and ``demo``.
 """
 
 from __future__ import annotations
@@ -37,6 +38,7 @@ from indb.cli_errors import (
     library_errors,
     one_line,
 )
+from indb.cli_report import report_command
 from indb.engines.backends import DIALECT_NAMES, SCORING_DIALECTS, dialect_for
 from indb.engines.base_dialect import Dialect
 from indb.errors import (
@@ -677,6 +679,9 @@ def demo_command(rows: int | None, out_dir: str, quick: bool) -> None:
     with library_errors(quiet=False) as caught:
         demo.run(quick=quick, out_dir=out_dir, rows=rows, echo=click.echo)
     echo_warnings(caught, quiet=False, already_shown=())
+
+
+main.add_command(report_command)
 
 
 if __name__ == "__main__":  # pragma: no cover
