@@ -64,30 +64,50 @@ _STYLE = {
 # -- public charts ---------------------------------------------------------------------------
 
 
+#: how each phase of the iteration log is drawn: marker, line style, colour, legend label
+PHASES = {
+    "fit": ("o", "-", FITTED, "fit scans"),
+    "theta": ("^", "-.", REFERENCE, "theta scans"),
+    "sample": ("s", ":", GUIDE, "sample-start scans"),
+    "null": ("D", "--", ACTUAL, "null-model scans"),
+}
+#: the phases whose deviance is the model's on all rows (drawn in the upper panel)
+FULL_MODEL = ("fit", "theta")
+
+
 def iteration_chart(
     deviance: Sequence[float],
     change: Sequence[float],
     halvings: Sequence[int],
     phases: Sequence[str],
 ) -> str:
-    """Deviance per scan (markers by phase; a step-halving marked) above the relative change
-    in deviance on a log scale."""
-    fig, (top, bottom) = _figure(4.2, rows=2, ratios=(3, 2), sharex=True)
+    """Above: the deviance of the model's scans on all rows (a step-halving marked); below:
+    the relative change in deviance of every scan, phase by phase, on a log scale. Scans of
+    other phases (a sample start, the intercept-only model) have deviances of another
+    model or of fewer rows, so they are not drawn on the model's deviance axis."""
+    fig, (top, bottom) = _figure(4.4, rows=2, ratios=(3, 2), sharex=True)
     scan = np.arange(1, len(deviance) + 1)
     dev = np.asarray(deviance, dtype=float)
-    top.plot(scan, dev, color=FITTED, linewidth=1.2, zorder=2)
-    for i, phase in enumerate(dict.fromkeys(phases)):
-        at = np.array([p == phase for p in phases])
-        top.plot(
-            scan[at],
-            dev[at],
-            linestyle="none",
-            marker="osD^"[i % 4],
-            color=FITTED,
-            markerfacecolor="white" if i else FITTED,
-            label=f"{phase} scan",
-        )
-    halved = np.asarray(halvings) > 0
+    rel = np.asarray(change, dtype=float)
+    phase = np.asarray(list(phases), dtype=object)
+    known = [p for p in dict.fromkeys(phases)]
+    for name in known:
+        marker, line, colour, label = PHASES.get(name, ("x", "-", INK, f"{name} scans"))
+        at = phase == name
+        if name in FULL_MODEL:
+            top.plot(scan[at], dev[at], marker=marker, linestyle=line, color=colour, label=label)
+        ok = at & np.isfinite(rel) & (rel > 0)
+        if ok.any():
+            bottom.plot(
+                scan[ok],
+                rel[ok],
+                marker=marker,
+                markersize=4,
+                linestyle=line,
+                color=colour,
+                label=label,
+            )
+    halved = (np.asarray(halvings) > 0) & np.isin(phase, FULL_MODEL)
     if halved.any():
         top.plot(
             scan[halved],
@@ -100,11 +120,9 @@ def iteration_chart(
         )
     top.set_ylabel("deviance")
     top.legend(loc="upper right")
-    rel = np.asarray(change, dtype=float)
-    ok = np.isfinite(rel) & (rel > 0)
-    if ok.any():
-        bottom.plot(scan[ok], rel[ok], marker="s", markersize=4, linestyle="--", color=REFERENCE)
+    if bottom.lines:
         bottom.set_yscale("log")
+        bottom.legend(loc="upper right")
     bottom.set_ylabel("relative change\n(log scale)")
     bottom.set_xlabel("scan of the data (number)")
     bottom.xaxis.get_major_locator().set_params(integer=True)
@@ -221,12 +239,13 @@ def curve_chart(
     if bars is not None:
         low, high, heights = (np.asarray(a, dtype=float) for a in bars)
         bottom = axes[1]
-        # a band of one value (an integer column) gets a narrow bar centred on it
-        narrow = 0.01 * float(np.ptp(np.concatenate([low, high]))) or 0.5
-        width = np.where(high > low, high - low, narrow)
-        bottom.bar(
-            (low + high) / 2.0, heights, width=width, color=BARS, edgecolor=BAR_EDGE, linewidth=0.6
-        )
+        # one bar of the same width per band, at the band's middle: bands of equal exposure
+        # have unequal widths (a band of one value has none), and a bar's area would
+        # suggest a density the figure is not
+        mid = (low + high) / 2.0
+        gaps = np.diff(np.sort(mid))
+        width = 0.7 * float(gaps[gaps > 0].min()) if (gaps > 0).any() else 1.0
+        bottom.bar(mid, heights, width=width, color=BARS, edgecolor=BAR_EDGE, linewidth=0.6)
         bottom.set_ylabel(bar_label)
         bottom.set_xlabel(x_label)
         bottom.grid(axis="x", visible=False)

@@ -16,6 +16,8 @@ from dataclasses import dataclass
 from html import escape
 from typing import Any
 
+#: what a cell without a value shows (n/a is a number that is not available)
+NONE = "\u2014"
 #: most rows a table shows (the rest are named in a line under it)
 MAX_TABLE_ROWS = 1_000
 
@@ -65,6 +67,7 @@ th, td { padding: .22rem .55rem; border-bottom: 1px solid var(--rule); text-alig
 thead th { border-bottom: 2px solid var(--ink); font-weight: 600; white-space: nowrap; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
 td.t { overflow-wrap: anywhere; }
+td.nw { white-space: nowrap; }
 tbody tr:nth-child(even) { background: var(--soft); }
 table.kv th { font-weight: 500; color: var(--muted); width: 15rem; }
 code, .code { font-family: ui-monospace, "SFMono-Regular", Menlo, Consolas, monospace;
@@ -146,7 +149,7 @@ def fmt_time(v: Any) -> str:
 @dataclass(frozen=True)
 class Column:
     """A table column: the field (the JSON key) its cells show, its heading and how its
-    numbers print (``num``, ``count``, ``p``, ``share``, ``text``, ``code``)."""
+    numbers print (``num``, ``count``, ``p``, ``share``, ``text``, ``code``, ``time``)."""
 
     field: str
     head: str
@@ -158,11 +161,14 @@ _FORMATS = {"num": fmt_num, "count": fmt_count, "p": fmt_p, "share": fmt_share}
 
 def cell(field: str, value: Any, kind: str = "num") -> str:
     """One ``<td>``: the printed value, and the exact one in ``data-v`` for a number."""
-    if kind in ("text", "code"):
-        text = "(NULL)" if value is None else escape(str(value))
+    if kind in ("text", "code", "time"):
+        text = NONE if value is None else escape(str(value))
         inner = f"<code>{text}</code>" if kind == "code" and value is not None else text
         raw = "" if value is None else f' data-v="{escape(str(value), quote=True)}"'
-        return f'<td class="t" data-field="{field}"{raw}>{inner}</td>'
+        css = "t nw" if kind == "time" else "t"
+        return f'<td class="{css}" data-field="{field}"{raw}>{inner}</td>'
+    if value is None:
+        return f'<td class="n" data-field="{field}">{NONE}</td>'
     raw = ""
     if isinstance(value, bool):
         raw = f' data-v="{str(value).lower()}"'

@@ -159,7 +159,7 @@ def _model_section(page: ReportPage) -> str:
     for name, value in (r.family_params or {}).items():
         rows.append((f"family_params.{name}", f"family: {name}", value, "num"))
     rows += [
-        ("source", "source", r.source, "code"),
+        ("source", "source", _source_text(r), "code"),
         ("n_used", "rows used", r.n_used, "count"),
         ("n_excluded", "rows set aside", r.n_excluded, "count"),
     ]
@@ -186,6 +186,13 @@ def _model_section(page: ReportPage) -> str:
     return body
 
 
+def _source_text(r: FitResult) -> str:
+    source = (r.spec or {}).get("source")
+    if isinstance(source, dict) and source.get("text"):
+        return str(source["text"])
+    return str(r.source)
+
+
 def finite_diff(a: Any, b: Any) -> bool:
     return a is not None and b is not None and math.isfinite(float(a)) and float(a) != float(b)
 
@@ -202,7 +209,7 @@ def _history_table(page: ReportPage) -> str:
             live = v
     cols = [
         Column("version", "version", "count"),
-        Column("created_at", "fitted at", "text"),
+        Column("created_at", "fitted at (UTC)", "time"),
         Column("status", "status", "text"),
         Column("n_used", "rows used", "count"),
         Column("deviance", "deviance"),
@@ -227,7 +234,7 @@ def _history_table(page: ReportPage) -> str:
 
 def _events_table(events: Sequence[Mapping[str, Any]]) -> str:
     cols = [
-        Column("at", "at", "text"),
+        Column("at", "at (UTC)", "time"),
         Column("version", "version", "count"),
         Column("action", "action", "text"),
         Column("detail", "detail", "text"),
@@ -322,10 +329,14 @@ def _iteration_box(r: FitResult) -> str:
     ]
     rows = [(str(i + 1), {"scan": i + 1, **asdict(x)}) for i, x in enumerate(log)]
     halved = sum(1 for x in log if x.step_halvings)
+    counts = {p: sum(1 for x in log if x.phase == p) for p in dict.fromkeys(x.phase for x in log)}
+    phases = ", ".join(f"{n} {p}" for p, n in counts.items())
     caption = (
-        f" {len(log)} scans of the data, each summing the deviance at the coefficients it "
-        "was given (the first at the starting means, which need not be a model of this "
-        f"form); {halved} scan(s) halved the step."
+        f" {len(log)} scans of the data ({phases}), each summing the deviance at the "
+        "coefficients it was given; the first fit scan's is at the starting means. The upper "
+        "panel shows the model's deviance on all rows; sample-start scans (fewer rows) and "
+        "null-model scans (the intercept-only model, for the null deviance) appear in the "
+        f"lower panel and the table. {halved} scan(s) halved the step."
     )
     return chart_box("iterations", "Iteration trace", svg, caption, table("iterations", cols, rows))
 
@@ -491,9 +502,12 @@ def _curve_box(
         f"{fmt_num(e.x_ref, 5)} (its training mean); {band}; drawn over {e.range_note}."
     )
     if bars is not None:
-        caption += " Bars: the holdout's exposure per band of its values."
+        caption += (
+            " Bars: the holdout's exposure in each band of its values, drawn at the band's "
+            "middle (the bands are listed with the holdout's actual against expected)."
+        )
     if e.knots:
-        caption += f" Knots at {', '.join(fmt_num(k, 5) for k in e.knots)}."
+        caption += f" Knots at {', '.join(f'{k:.6g}' for k in e.knots)}."
     caption += _interaction_note(e.column, inside)
     cols = [
         Column("x", e.column),
@@ -557,7 +571,8 @@ def _coefficients_section(r: FitResult) -> str:
     ]
     if scale.exponentiate:
         cols.append(Column("exp_estimate", scale.name))
-    cols.append(Column("aliased", "aliased", "text"))
+    if any(c.aliased for c in r.coefficients):
+        cols.append(Column("aliased", "aliased", "text"))
     rows = []
     for c in r.coefficients:
         values = dict(asdict(c))

@@ -4,6 +4,7 @@ promote only when the gates pass."""
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -70,6 +71,18 @@ class RetrainOutcome:
 
 def _num(v: float) -> float | None:
     return v if math.isfinite(v) else None
+
+
+def gate_note(checks: Sequence[GateCheck]) -> str | None:
+    """The gates' outcomes in one line, recorded as the new version's note in the registry
+    (the version history of ``indb report`` shows it); None without gates."""
+    if not checks:
+        return None
+    parts = [
+        f"{c.gate} {c.value:.6g} (limit {c.limit:.6g}) {'passed' if c.passed else 'FAILED'}"
+        for c in checks
+    ]
+    return "gates: " + "; ".join(parts)
 
 
 def check_gates(gates: Gates, new: FitResult, old: FitResult | None) -> list[GateCheck]:
@@ -193,6 +206,7 @@ def retrain(
             score_source=deploy.get("score_source"),
             intervals=deploy.get("intervals"),
             parent_version=live_version,
+            note=gate_note(checks),
         )
         result = with_deployment(result, outcome)
         if not outcome.created and outcome.promoted:
