@@ -437,6 +437,7 @@ def _short(text: str, limit: int) -> str:
     return text if len(text) <= limit else text[: limit - 1] + "\u2026"
 
 
+_COMMENT = re.compile(r"<!--.*?-->\n?", re.S)
 _ID = re.compile(r'\bid="([^"]+)"')
 _SVG_SIZE = re.compile(r'<svg([^>]*?)\swidth="([\d.]+)pt"\s+height="([\d.]+)pt"')
 
@@ -452,6 +453,9 @@ def _svg(fig: Any, title: str) -> str:
         fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
     text = buf.getvalue()
     text = text[text.index("<svg") :]
+    # matplotlib notes each text as an (escaped) XML comment beside its glyph paths: the
+    # page carries the text in its tables, so the comments only add weight
+    text = _COMMENT.sub("", text)
     # a prefix from the content: the same chart gets the same ids on every run, and two
     # charts share ids only where they are the same drawing
     prefix = "c" + hashlib.sha1(text.encode()).hexdigest()[:8] + "-"
