@@ -439,16 +439,23 @@ def write_report(
 
 
 def _levels_section(path: str) -> str:
-    """The section ``bench_levels.py`` wrote into ``path`` (kept across rewrites)."""
-    from bench_levels import BEGIN, END
+    """The sections ``bench_levels.py`` and ``bench_html_report.py`` wrote into ``path``
+    (kept across rewrites)."""
+    import bench_html_report
+    import bench_levels
 
     if not os.path.exists(path):
         return ""
     with open(path) as fh:
         old = fh.read()
-    if BEGIN not in old or END not in old:
-        return ""
-    return BEGIN + old.split(BEGIN, 1)[1].split(END, 1)[0] + END + "\n"
+    kept = []
+    for begin, end in (
+        (bench_levels.BEGIN, bench_levels.END),
+        (bench_html_report.BEGIN, bench_html_report.END),
+    ):
+        if begin in old and end in old:
+            kept.append(begin + old.split(begin, 1)[1].split(end, 1)[0] + end + "\n")
+    return "\n".join(kept)
 
 
 def report_only(raw: str, out: str) -> int:
