@@ -66,7 +66,7 @@ th, td { padding: .22rem .55rem; border-bottom: 1px solid var(--rule); text-alig
   vertical-align: top; }
 thead th { border-bottom: 2px solid var(--ink); font-weight: 600; white-space: nowrap; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
-td.t { overflow-wrap: anywhere; }
+td.t { overflow-wrap: break-word; }
 td.nw { white-space: nowrap; }
 tbody tr:nth-child(even) { background: var(--soft); }
 table.kv th { font-weight: 500; color: var(--muted); width: 15rem; }
@@ -82,6 +82,11 @@ ul.notes li { margin: .25rem 0; }
   .masthead { background: none; color: var(--ink); border-bottom: 3px solid var(--ink); }
   .kicker, .masthead .lede, .figures .l { color: var(--muted); }
   nav.toc, details { display: none; }
+  .scroll { overflow: visible; }
+  /* a page does not scroll sideways: wide tables get smaller type and padding */
+  table { max-width: 100%; font-size: 7.5pt; }
+  th, td { padding: .12rem .28rem; }
+  thead th { white-space: normal; }
   figure.chart-box, table.kv, .caution { break-inside: avoid; }
   h2, h3 { break-after: avoid; }
   section { margin-top: 1.2rem; }

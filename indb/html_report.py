@@ -213,10 +213,8 @@ def _history_table(page: ReportPage) -> str:
         Column("status", "status", "text"),
         Column("n_used", "rows used", "count"),
         Column("deviance", "deviance"),
-        Column("converged", "converged", "num"),
-        Column("went_live", "went live", "text"),
+        Column("went_live", "went live (UTC)", "text"),
         Column("parent_version", "refit of", "count"),
-        Column("note", "note (gates)", "text"),
     ]
     rows = []
     for v in page.versions:
@@ -229,7 +227,15 @@ def _history_table(page: ReportPage) -> str:
                 f", replacing version {replaced}" if replaced is not None else ""
             )
         rows.append((str(v["version"]), values))
-    return table("versions", cols, rows)
+    out = table("versions", cols, rows)
+    # notes (a retrain's gate outcomes) are long: a table of their own, one line each
+    notes = [(str(v["version"]), v) for v in page.versions if v.get("note")]
+    if notes:
+        cols = [Column("version", "version", "count"), Column("note", "note", "text")]
+        out += "<h3>Notes of the versions (gate outcomes)</h3>" + table(
+            "version_notes", cols, notes
+        )
+    return out
 
 
 def _events_table(events: Sequence[Mapping[str, Any]]) -> str:

@@ -153,7 +153,8 @@ def test_version_history_and_events(built: dict[str, Any]) -> None:
     assert rows["1"]["status"][1] == "retired" and rows["2"]["status"][1] == "live"
     assert exact(rows["2"]["parent_version"]) == 1 and rows["1"]["parent_version"][1] is None
     # the retrain's gates, recorded as version 2's note (indb/retrain.py gate_note)
-    note = rows["2"]["note"][1]
+    assert list(t["version_notes"]) == ["2"]  # version 1 (indb.fit) has no note
+    note = t["version_notes"]["2"]["note"][1]
     assert note == listed[1]["note"]
     assert "min_rows 3183 (limit 100) passed" in note and "max_change_in_se" in note
     assert "replacing version 1" in rows["2"]["went_live"][0]
