@@ -509,3 +509,45 @@ def test_bad_input_is_one_line_and_leaves_no_file(built: dict[str, Any], tmp_pat
         indb.report_html("nope", out, db=db)
     with pytest.raises(SpecError, match="give db= the database"):
         indb.report_html("children", out, db=None)
+
+
+@pytest.mark.slow
+def test_kill_during_a_report_never_leaves_a_half_written_page(
+    built: dict[str, Any], tmp_path: Path
+) -> None:
+    """kill -9 at seeded times while ``indb report`` runs: the target holds the previous
+    report or a whole new page, never a part. (A temporary file of a killed run may stay
+    behind, named ``.r.html.*.tmp``: nothing can remove it after kill -9.)"""
+    import os
+    import random
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    out = tmp_path / "r.html"
+    out.write_text("the previous report")
+    env = {**os.environ, "PYTHONPATH": str(Path(indb.__file__).resolve().parent.parent)}
+    args = [sys.executable, "-m", "indb.cli", "report", "children", "--db", built["db"],
+            "--on", "fair_hold", "--out", str(out)]  # fmt: skip
+    t0 = time.perf_counter()
+    subprocess.run(args, env=env, check=True, capture_output=True, timeout=300)
+    whole = time.perf_counter() - t0
+    complete = out.read_text(encoding="utf-8")
+    assert complete.endswith("</html>\n")
+    rng = random.Random(17)
+    outcomes = []
+    for _ in range(6):
+        out.write_text("the previous report")
+        child = subprocess.Popen(
+            args, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL
+        )
+        time.sleep(rng.uniform(0.3, 1.0) * whole)
+        child.send_signal(signal.SIGKILL)
+        child.wait(timeout=60)
+        text = out.read_text(encoding="utf-8")
+        assert text == "the previous report" or (
+            text.endswith("</html>\n") and len(text) > 0.9 * len(complete)
+        ), text[-200:]
+        outcomes.append(text == "the previous report")
+    assert any(outcomes)  # at least one kill landed before the rename
