@@ -152,6 +152,15 @@ def fmt_time(v: Any) -> str:
 
 
 @dataclass(frozen=True)
+class Shown:
+    """A number and the text a cell shows for it (when the kind's format will not do: a
+    p-value below the smallest double, printed from its statistic)."""
+
+    value: float
+    text: str
+
+
+@dataclass(frozen=True)
 class Column:
     """A table column: the field (the JSON key) its cells show, its heading and how its
     numbers print (``num``, ``count``, ``p``, ``share``, ``text``, ``code``, ``time``)."""
@@ -174,6 +183,9 @@ def cell(field: str, value: Any, kind: str = "num") -> str:
         return f'<td class="{css}" data-field="{field}"{raw}>{inner}</td>'
     if value is None:
         return f'<td class="n" data-field="{field}">{NONE}</td>'
+    if isinstance(value, Shown):
+        raw = f' data-v="{_exact(value.value)}"'
+        return f'<td class="n" data-field="{field}"{raw}>{escape(value.text)}</td>'
     raw = ""
     if isinstance(value, bool):
         raw = f' data-v="{str(value).lower()}"'

@@ -30,6 +30,7 @@ from indb.html_assessment import ASSESSMENT_SECTIONS
 from indb.html_parts import (
     STYLE,
     Column,
+    Shown,
     chart_box,
     fmt_count,
     fmt_num,
@@ -40,7 +41,7 @@ from indb.html_parts import (
     section,
     table,
 )
-from indb.report import CAUTION
+from indb.report import CAUTION, format_chi2_p, format_p
 from indb.results import FitResult
 from indb.term_effects import (
     CoefficientEffect,
@@ -295,7 +296,7 @@ def _quality_section(r: FitResult) -> str:
                     "term": t.term,
                     "df": t.df,
                     "wald_chi2": t.wald_chi2,
-                    "p_value": t.p_value,
+                    "p_value": _p_shown(t.p_value, format_chi2_p(t.p_value, t.wald_chi2, t.df)),
                     "gvif": gvif[t.term].gvif if t.term in gvif else None,
                     "gvif_scaled": gvif[t.term].gvif_scaled if t.term in gvif else None,
                 },
@@ -562,6 +563,12 @@ def _points_box(e: CoefficientEffect, scale: Scale, level: str) -> str:
 # -- coefficients ------------------------------------------------------------------------------
 
 
+def _p_shown(p: float, text: str) -> Shown | float:
+    """A p-value cell: the text report's wording (a p below the smallest double is given
+    from its statistic) with the stored value."""
+    return Shown(float(p), text) if math.isfinite(p) else p
+
+
 def _coefficients_section(r: FitResult) -> str:
     scale = scale_for(r.link)
     test = "t" if str(r.test).strip().lower().startswith("t") else "z"
@@ -582,6 +589,9 @@ def _coefficients_section(r: FitResult) -> str:
     rows = []
     for c in r.coefficients:
         values = dict(asdict(c))
+        values["p_two_sided"] = _p_shown(
+            c.p_two_sided, format_p(c.p_two_sided, c.wald, test, r.residual_df)
+        )
         values["exp_estimate"] = float(scale.apply(c.estimate)) if not c.aliased else None
         values["aliased"] = "aliased: not estimated" if c.aliased else ""
         rows.append((c.term, values))
