@@ -374,9 +374,9 @@ def ratio_chart(
     x = np.arange(len(labels))
     r = np.asarray(ratio, dtype=float)
     top.axhline(1.0, color=GUIDE, linestyle=":", linewidth=1.0)
-    top.plot(x, r, marker="o", color=ACTUAL, linestyle="none", label="actual / expected")
+    # one series, named by its axis: no legend to cover a point
+    top.plot(x, r, marker="o", color=ACTUAL, linestyle="none")
     top.set_ylabel("actual / expected (ratio)")
-    top.legend(loc="best")
     _bars(bottom, x, exposure, exposure_label)
     _level_ticks(bottom, labels)
     return _svg(fig, title)
