@@ -340,11 +340,17 @@ def _iteration_box(r: FitResult) -> str:
     phases = ", ".join(f"{n} {p}" for p, n in counts.items())
     caption = (
         f" {len(log)} scans of the data ({phases}), each summing the deviance at the "
-        "coefficients it was given; the first fit scan's is at the starting means. The upper "
-        "panel shows the model's deviance on all rows; sample-start scans (fewer rows) and "
-        "null-model scans (the intercept-only model, for the null deviance) appear in the "
-        f"lower panel and the table. {halved} scan(s) halved the step."
+        "coefficients it was given; the first fit scan's is at the starting means."
     )
+    others = [p for p in counts if p not in C.FULL_MODEL]
+    if others:
+        caption += (
+            " The upper panel shows the model's deviance on all rows; the "
+            f"{' and '.join(others)} scans (a sample start reads fewer rows, the null "
+            "scans fit the intercept-only model for the null deviance) appear in the lower "
+            "panel and the table."
+        )
+    caption += f" {halved} scan(s) halved the step."
     return chart_box("iterations", "Iteration trace", svg, caption, table("iterations", cols, rows))
 
 
