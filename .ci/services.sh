@@ -1,7 +1,9 @@
 #!/usr/bin/env bash
-# Services for the engine tests (tests/engines): a throwaway PostgreSQL cluster and Java for Spark.
+# Services for the engine tests (tests/engines): a throwaway PostgreSQL cluster and Java for Spark;
+# and Chromium for the HTML report's browser test (tests/test_report_browser.py).
 #
-#   bash .ci/services.sh install        # Debian packages: PostgreSQL server, Java 17 (if missing)
+#   bash .ci/services.sh install        # Debian packages: PostgreSQL server, Java 17, Chromium
+#                                       # (each only if missing)
 #   eval "$(bash .ci/services.sh start)" # start PostgreSQL; prints the export lines to eval
 #   bash .ci/services.sh stop           # stop the cluster named by INDB_SERVICES_DIR, delete it
 #
@@ -33,6 +35,9 @@ install() {
     local pkgs=()
     [[ -n "$(pg_bindir)" ]] || pkgs+=(postgresql)
     command -v java >/dev/null 2>&1 || pkgs+=(openjdk-17-jre-headless)
+    # the report's browser test loads it headless with networking off
+    command -v chromium >/dev/null 2>&1 || command -v chromium-browser >/dev/null 2>&1 \
+        || pkgs+=(chromium)
     if ((${#pkgs[@]})); then
         log "installing ${pkgs[*]}"
         export DEBIAN_FRONTEND=noninteractive

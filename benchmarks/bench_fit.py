@@ -27,6 +27,7 @@ import datetime as dt
 import hashlib
 import json
 import os
+import re
 import resource
 import shlex
 import shutil
@@ -439,25 +440,14 @@ def write_report(
 
 
 def _levels_section(path: str) -> str:
-    """The sections ``bench_levels.py`` and ``bench_penalty.py`` wrote into ``path`` (kept
-    across rewrites)."""
-    import bench_levels
-
-    # bench_penalty.py's markers, spelt out: importing it would import indb here
-    penalty = ("<!-- bench_penalty.py: begin -->", "<!-- bench_penalty.py: end -->")
-
+    """The sections other benchmarks wrote into ``path`` between their markers
+    (``<!-- NAME: begin -->`` ... ``<!-- NAME: end -->``), kept across rewrites."""
     if not os.path.exists(path):
         return ""
     with open(path) as fh:
         old = fh.read()
-    kept = []
-    for begin, end in (
-        (bench_levels.BEGIN, bench_levels.END),
-        penalty,
-    ):
-        if begin in old and end in old:
-            kept.append(begin + old.split(begin, 1)[1].split(end, 1)[0] + end + "\n")
-    return "\n".join(kept)
+    found = re.finditer(r"<!-- ([^>]+?): begin -->.*?<!-- \1: end -->", old, re.S)
+    return "\n".join(m.group(0) + "\n" for m in found)
 
 
 def report_only(raw: str, out: str) -> int:

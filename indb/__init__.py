@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from indb import report as _report  # noqa: F401  (registers str(result), the text report)
-from indb.api import assess, deploy, explore, fit, nested, scoring_sql
+from indb.api import assess, deploy, explore, fit, nested, report_html, scoring_sql
 from indb.assessment import AssessResult
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
@@ -54,6 +54,7 @@ __all__ = [
     "explore",
     "fit",
     "nested",
+    "report_html",
     "scoring_sql",
     "__version__",
 ]

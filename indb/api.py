@@ -3,9 +3,10 @@
 from __future__ import annotations
 
 import dataclasses
+import os
 import warnings
 from collections.abc import Mapping, Sequence
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from indb import options as O
 from indb import writeback as W
@@ -21,6 +22,9 @@ from indb.registry import DEFAULT_SCHEMA, Registry, SaveOutcome
 from indb.registry_append import open_registry
 from indb.results import FitResult
 from indb.spec import ModelSpec
+
+if TYPE_CHECKING:
+    from indb.report_run import ReportFile
 
 # The options of fit() and their kinds, as the checks here read them; declared once in
 # indb.options (OPTIONS), which the spec file and the command line read too.
@@ -374,6 +378,64 @@ def _model_and_version(text: str) -> tuple[str, int | None]:
             f"against must be a model name, or NAME:K with a version number K >= 1; got {text!r}"
         )
     return name, int(k) if sep else None
+
+
+def report_html(
+    name: str,
+    out: str | os.PathLike[str],
+    *,
+    db: Any,
+    version: int | None = None,
+    on: str | None = None,
+    by: Sequence[str] = (),
+    bands: int = 10,
+    registry_schema: str = DEFAULT_SCHEMA,
+    memory_limit: str | None = None,
+    temp_directory: str | None = None,
+    threads: int | None = None,
+) -> ReportFile:
+    """Write the HTML report of a stored model version (the live one by default) to ``out``.
+
+    One self-contained page (styles and charts inline, nothing fetched when it opens): the
+    model and its version history, fit quality and the iteration trace, a chart per term
+    with intervals, the coefficient table and, with ``on`` (a table, query or file of
+    ``db``), the assessment of ``indb assess`` on that holdout as charts (lift, ordered
+    Lorenz curve, actual against expected by level and ``by`` column, calibration). Only
+    grouped results leave the database; nothing is written to it. The file is written
+    under a temporary name and renamed, so it is never half-written.
+    """
+    from indb.report_run import make_report
+
+    O.check_options(
+        {"name": name, "on": on, "by": by, "bands": bands, "version": version},
+        {"name": O.TEXT, "on": O.TEXT, "by": O.NAMES, "bands": O.WHOLE, "version": O.WHOLE},
+    )
+    O.check_options({"registry_schema": registry_schema}, DEPLOY_OPTIONS)
+    O.check_options(
+        {"memory_limit": memory_limit, "temp_directory": temp_directory, "threads": threads},
+        ENGINE_OPTIONS,
+    )
+    if on is None and (by or bands != 10):
+        given = "by" if by else "bands"
+        raise SpecError(f"{given} applies to the holdout assessment only; give on= a holdout")
+    if db is None or (isinstance(db, str) and db.strip() in ("", ":memory:")):
+        raise SpecError(
+            "the report reads the model from the registry of a database: give db= the "
+            "database (file or URL) the model was written to"
+        )
+    engine = connect(
+        db,
+        read_only=True,
+        memory_limit=memory_limit,
+        temp_directory=temp_directory,
+        threads=threads,
+    )
+    try:
+        reg = open_registry(engine, registry_schema)
+        return make_report(engine, reg, name, out, version=version, on=on, by=by, bands=bands)
+    finally:
+        if engine is not db:
+            engine.close()
 
 
 def with_deployment(result: FitResult, outcome: SaveOutcome) -> FitResult:

@@ -10,7 +10,8 @@ gate.
 
 Commands: ``fit`` (optionally writing the model back with ``--name``), ``run`` and
 ``retrain`` (TOML spec files), the registry commands ``models``, ``versions``, ``show``,
-``compare``, ``nested``, ``promote``, ``drop``, ``scoring-sql``, and ``demo``.
+``compare``, ``nested``, ``promote``, ``drop``, ``scoring-sql``, ``assess``, ``report`` (in
+:mod:`indb.cli_report`) and ``demo``.
 """
 
 from __future__ import annotations
@@ -38,6 +39,7 @@ from indb.cli_errors import (
     one_line,
 )
 from indb.cli_explore import explore_command
+from indb.cli_report import report_command
 from indb.cli_shared import (
     _check_database_path,
     _is_memory,
@@ -638,6 +640,9 @@ def demo_command(rows: int | None, out_dir: str, quick: bool) -> None:
     with library_errors(quiet=False) as caught:
         demo.run(quick=quick, out_dir=out_dir, rows=rows, echo=click.echo)
     echo_warnings(caught, quiet=False, already_shown=())
+
+
+main.add_command(report_command)
 
 
 if __name__ == "__main__":  # pragma: no cover

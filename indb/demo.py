@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from indb import demo_data
-from indb.api import assess, fit
+from indb.api import assess, fit, report_html
 from indb.assess_report import assess_json, assess_text
 from indb.engines.duckdb import DuckDBEngine
 from indb.report import render_json, render_report
@@ -143,9 +143,14 @@ def run(
         echo(scoring_tour(engine, results))
         echo("=" * 100)
         echo(holdout_assessment(engine, out_dir, n, echo))
+        pages = html_reports(engine, out_dir, list(results))
     finally:
         engine.close()
-    echo(f"\nindb demo: done in {time.perf_counter() - t0:.1f} s; reports in {out_dir}/")
+    echo(f"\nindb demo: done in {time.perf_counter() - t0:.1f} s; text reports in {out_dir}/")
+    echo("HTML reports (one self-contained file each; open in any browser, works offline):")
+    for name, path in pages.items():
+        extra = "  (with the holdout assessment)" if name in JUDGED else ""
+        echo(f"  {path}{extra}")
     return results
 
 
@@ -207,6 +212,24 @@ def holdout_assessment(
         f"indb assess frequency --db {os.path.join(out_dir, 'demo.duckdb')} --on {path} "
         f"--by driver_age\n\n{text}"
     )
+
+
+#: the models whose HTML report includes their assessment on the held-out policies
+JUDGED = ("frequency", "lapse")
+
+
+def html_reports(engine: DuckDBEngine, out_dir: str, names: list[str]) -> dict[str, str]:
+    """Each model's HTML report in ``reports/``, those of :data:`JUDGED` with their
+    assessment on the held-out policies. Returns the paths by model."""
+    folder = os.path.join(out_dir, "reports")
+    os.makedirs(folder, exist_ok=True)
+    holdout = os.path.join(out_dir, "holdout.parquet")
+    pages = {}
+    for name in names:
+        path = os.path.join(folder, f"{name}.html")
+        report_html(name, path, db=engine, on=holdout if name in JUDGED else None)
+        pages[name] = path
+    return pages
 
 
 def truth_table(res: FitResult, truth: dict[str, float], title: str) -> str:

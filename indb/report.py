@@ -17,7 +17,7 @@ import numpy as np
 
 from indb.results import TEXT_RENDERER, Coefficient, FitResult
 
-__all__ = ["render_report", "render_json", "CAUTION"]
+__all__ = ["render_report", "render_json", "CAUTION", "format_p", "format_chi2_p"]
 
 NA = "n/a"
 
@@ -445,17 +445,51 @@ def _fmt_p(value: Any, wald: Any = math.nan, test: str = "z", df: Any = math.nan
 def _tiny_p(wald: float, test: str, df: Any) -> str:
     from scipy import stats  # only for p-values below the smallest double
 
-    x = abs(wald)
+    z = abs(wald)
     if test == "t" and _finite(df):
-        nu = float(df)
-        log_tail = float(stats.t.logsf(x, nu))
-        if not math.isfinite(log_tail):
-            # far tail, where scipy's logsf underflows: sf(x) ~ pdf(x) (x^2 + nu) / (nu x)
-            # (the leading term of the t tail's expansion; relative error O(1/x^2))
-            log_tail = float(stats.t.logpdf(x, nu)) + math.log((x * x + nu) / (nu * x))
+        log_sf = float(stats.t(float(df)).logsf(z))
+        if not math.isfinite(log_sf):
+            # scipy's t.logsf is log(sf): -inf once sf underflows (t 100 on 6,000 df)
+            log_sf = _t_log_sf(z, float(df))
     else:
-        log_tail = float(stats.norm.logsf(x))
-    return _from_log(math.log(2.0) + log_tail)
+        log_sf = float(stats.norm.logsf(z))
+    return _from_log(math.log(2.0) + log_sf)
+
+
+def _t_log_sf(t: float, df: float) -> float:
+    """ln P(T > t) for Student's t on ``df`` degrees of freedom, far in the tail: P(T > t) =
+    I_x(df/2, 1/2) / 2 with x = df / (df + t^2) (Abramowitz & Stegun 26.7.1), the
+    regularized incomplete beta from its continued fraction (A&S 26.5.8), in logarithms."""
+    a, b = df / 2.0, 0.5
+    log_den = 2.0 * math.log(t) + math.log1p(df / t / t)  # ln(df + t^2), t^2 never formed
+    log_x, log_1mx = math.log(df) - log_den, 2.0 * math.log(t) - log_den
+    log_beta = math.lgamma(a) + math.lgamma(b) - math.lgamma(a + b)
+    front = a * log_x + b * log_1mx - log_beta - math.log(a)
+    return math.log(0.5) + front + math.log(_beta_fraction(a, b, math.exp(log_x)))
+
+
+def _beta_fraction(a: float, b: float, x: float) -> float:
+    """The continued fraction of I_x(a, b) (A&S 26.5.8) by the modified Lentz method
+    (Numerical Recipes, 2nd ed., 6.4); it converges quickly for x < (a + 1) / (a + b + 2),
+    which holds wherever the t tail underflows."""
+    tiny = 1e-300
+
+    def nonzero(v: float) -> float:
+        return v if abs(v) > tiny else tiny
+
+    c, d = 1.0, 1.0 / nonzero(1.0 - (a + b) * x / (a + 1.0))
+    h = d
+    for m in range(1, 10_000):
+        for coef in (
+            m * (b - m) * x / ((a + 2 * m - 1.0) * (a + 2 * m)),
+            -(a + m) * (a + b + m) * x / ((a + 2 * m) * (a + 2 * m + 1.0)),
+        ):
+            d = 1.0 / nonzero(1.0 + coef * d)
+            c = nonzero(1.0 + coef / c)
+            h *= d * c
+        if abs(d * c - 1.0) < 1e-15:
+            break
+    return h
 
 
 def _chi2_p(p: float, chi2: float, df: int) -> str:
@@ -555,5 +589,10 @@ def _json_default(obj: Any) -> Any:
         return sorted(obj, key=str)
     raise TypeError(f"cannot write a {type(obj).__name__} to JSON: {obj!r}")
 
+
+#: a two-sided p-value as this report prints it (past the smallest double, from the Wald
+#: statistic), and a chi-square tail probability: for other renderings (the HTML report)
+format_p = _fmt_p
+format_chi2_p = _chi2_p
 
 TEXT_RENDERER["report"] = render_report

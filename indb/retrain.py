@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -157,6 +158,18 @@ def holdout_checks(gates: Gates, a: AssessResult | None) -> list[GateCheck]:
     return out
 
 
+def gate_note(checks: Sequence[GateCheck]) -> str | None:
+    """The gates' outcomes in one line, recorded as the new version's note in the registry
+    (the version history of ``indb report`` shows it); None without gates."""
+    if not checks:
+        return None
+    parts = [
+        f"{c.gate} {c.value:.6g} (limit {c.limit:.6g}) {'passed' if c.passed else 'FAILED'}"
+        for c in checks
+    ]
+    return "gates: " + "; ".join(parts)
+
+
 def check_gates(gates: Gates, new: FitResult, old: FitResult | None) -> list[GateCheck]:
     """Evaluate the gates of a new version against the live one (None: first version)."""
     out: list[GateCheck] = []
@@ -287,6 +300,7 @@ def retrain(
             diagnostics=deploy.get("diagnostics"),
             parent_version=live_version,
             assessments=pending,
+            note=gate_note(checks),
         )
         if holdout is not None:
             holdout = dataclasses.replace(holdout, version=outcome.version)

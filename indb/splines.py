@@ -47,3 +47,20 @@ def spline_basis_sql(x: Expr, knots: Sequence[float], j: int) -> Expr:
     b = S.mul(cube_plus(tk1), S.num((tk - tj) / (tk - tk1)))
     c = S.mul(cube_plus(tk), S.num((tk1 - tj) / (tk - tk1)))
     return S.div(S.add(S.sub(a, b), c), S.num((tk - t[0]) ** 2))
+
+
+def spline_basis(x: np.ndarray, knots: Sequence[float], j: int) -> np.ndarray:
+    """The numpy form of :func:`spline_basis_sql`: basis function j at the values ``x``
+    (the same truncated-power form and divisor, for drawing a fitted spline's curve)."""
+    t = [float(v) for v in knots]
+    k = len(t)
+    tj, tk1, tk = t[j - 1], t[k - 2], t[k - 1]
+    x = np.asarray(x, dtype=float)
+
+    def cube_plus(c: float) -> np.ndarray:
+        return np.maximum(x - c, 0.0) ** 3
+
+    a = cube_plus(tj)
+    b = cube_plus(tk1) * ((tk - tj) / (tk - tk1))
+    c = cube_plus(tk) * ((tk1 - tj) / (tk - tk1))
+    return (a - b + c) / (tk - t[0]) ** 2

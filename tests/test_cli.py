@@ -677,6 +677,24 @@ def test_demo_command_writes_reports(tmp_path: Path):
         assert judged["rows"] == 500 and judged["model"] == "frequency"
         assert {"deviance", "gini", "bands", "levels"} <= judged.keys()
         assert "judged on" in result.stdout
+        # issue 17: an HTML report per model (two with their holdout assessment), and the
+        # demo's last lines say which files to open
+        reports = out_dir / "reports"
+        assert sorted(p.name for p in reports.glob("*.html")) == [
+            "frequency.html",
+            "lapse.html",
+            "pure_premium.html",
+            "severity.html",
+        ]
+        last = result.stdout.strip().splitlines()[-4:]
+        assert [line.split()[0] for line in last] == [
+            str(reports / f"{m}.html") for m in ("frequency", "severity", "pure_premium", "lapse")
+        ]
+        assert "with the holdout assessment" in last[0]
+        for name, judged_too in (("frequency", True), ("severity", False), ("lapse", True)):
+            page = (reports / f"{name}.html").read_text(encoding="utf-8")
+            assert page.startswith("<!DOCTYPE html>") and ('id="holdout"' in page) == judged_too
+        assert 'data-chart="calibration"' in (reports / "lapse.html").read_text(encoding="utf-8")
     finally:
         con.close()
 

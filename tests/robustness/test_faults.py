@@ -803,7 +803,7 @@ READ_ONLY_CHILD = textwrap.dedent(
     import indb
     from indb.cli import main
 
-    db, commands, spec = sys.argv[1], json.loads(sys.argv[2]), sys.argv[3]
+    db, commands, spec, out = sys.argv[1], json.loads(sys.argv[2]), sys.argv[3], sys.argv[4]
     try:  # the protection is real: DuckDB cannot open the file for writing
         duckdb.connect(db).close()
         protected = "no: opened for writing"
@@ -811,7 +811,8 @@ READ_ONLY_CHILD = textwrap.dedent(
         protected = str(err)
     runs = []
     for args in commands:
-        r = CliRunner().invoke(main, [a.replace("{db}", db).replace("{spec}", spec) for a in args])
+        given = [a.replace("{db}", db).replace("{spec}", spec).replace("{out}", out) for a in args]
+        r = CliRunner().invoke(main, given)
         runs.append({"args": args, "exit_code": r.exit_code, "stdout": r.stdout,
                      "stderr": r.stderr})
     with warnings.catch_warnings():
@@ -835,6 +836,9 @@ READING = {
                       "--name", "grades", "--dry-run", "spector"],
     "run --dry-run": ["run", "{spec}", "--dry-run"],
     "retrain --dry-run": ["retrain", "{spec}", "--dry-run"],
+    # the HTML report (issue 17), judged on the database's own rows, written elsewhere
+    "report": ["report", "visits", "--db", "{db}", "--on", "randhie", "--out",
+               "{out}/visits.html", "--json"],
 }  # fmt: skip
 WRITING = {
     "fit --name": ["fit", "--db", "{db}", "--family", "binomial", "--response", "GRADE",
@@ -889,6 +893,8 @@ def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str)
     folder.chmod(0o755)
     specs = Path(tempfile.mkdtemp(prefix="indb-ro-spec-"))  # the spec file, elsewhere
     specs.chmod(0o755)
+    pages = Path(tempfile.mkdtemp(prefix="indb-ro-out-"))  # where the report may be written
+    pages.chmod(0o777)
     try:
         db = copy_db(setup.path, folder / "db.duckdb")
         spec = specs / "grades.toml"
@@ -912,6 +918,7 @@ def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str)
                 str(db),
                 json.dumps(commands),
                 str(spec),
+                str(pages),
             ],
             capture_output=True,
             text=True,
@@ -921,10 +928,12 @@ def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str)
         )
         assert out.returncode == 0, out.stderr[-3000:]
         after = hashlib.sha256(db.read_bytes()).hexdigest()
+        page = (pages / "visits.html").read_text(encoding="utf-8")
     finally:
         folder.chmod(0o755)
         shutil.rmtree(folder)
         shutil.rmtree(specs)
+        shutil.rmtree(pages)
     report = json.loads(out.stdout)
     reason = "Read-only file system" if way == "read-only filesystem" else "Permission denied"
     assert reason in report["protected"]
@@ -951,6 +960,11 @@ def test_reading_commands_work_on_an_unwritable_database(setup: Setup, way: str)
         frame["mdvis"], R.design(frame, [c for c in frame.columns if c != "mdvis"]), "poisson"
     )
     _assert_matches(json.loads(runs["show"]["stdout"]), visits_ref)
+    # the report's coefficient table holds the stored estimates (statsmodels' above)
+    shown = json.loads(runs["show"]["stdout"])
+    assert json.loads(runs["report"]["stdout"])["scans"] == 2
+    for c in shown["coefficients"]:
+        assert f'data-field="estimate" data-v="{c["estimate"]!r}"' in page, c["term"]
     _assert_matches(json.loads(runs["fit"]["stdout"]), visits_ref)
     assert all(t["change"] == 0 for t in json.loads(runs["compare"]["stdout"])["terms"])
     spector = R.spector()
