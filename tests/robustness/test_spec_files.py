@@ -271,6 +271,8 @@ KEY_CASES = [
     ("model", "confidence", '"95%"', NUMBER),
     ("model", "compress", "true", TEXT),
     ("model", "sample_start", "1", TEXT),
+    ("model", "covariance", "1", TEXT),
+    ("model", "cluster", '["policy_id"]', TEXT),
     ("model", "penalty", '"0.1"', NUMBER),
     ("model", "l1_share", "true", NUMBER),
     ("model", "standardize", '"yes"', BOOLEAN),
