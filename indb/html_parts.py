@@ -170,7 +170,7 @@ class Column:
     kind: str = "num"
 
 
-_FORMATS = {"num": fmt_num, "count": fmt_count, "p": fmt_p, "share": fmt_share}
+FORMATS = {"num": fmt_num, "count": fmt_count, "p": fmt_p, "share": fmt_share}
 
 
 def cell(field: str, value: Any, kind: str = "num") -> str:
@@ -191,7 +191,7 @@ def cell(field: str, value: Any, kind: str = "num") -> str:
         raw = f' data-v="{str(value).lower()}"'
     elif isinstance(value, int | float):
         raw = f' data-v="{_exact(value)}"'
-    return f'<td class="n" data-field="{field}"{raw}>{_FORMATS[kind](value)}</td>'
+    return f'<td class="n" data-field="{field}"{raw}>{FORMATS[kind](value)}</td>'
 
 
 def _exact(value: float | int) -> str:
