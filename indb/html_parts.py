@@ -175,6 +175,8 @@ FORMATS = {"num": fmt_num, "count": fmt_count, "p": fmt_p, "share": fmt_share}
 
 def cell(field: str, value: Any, kind: str = "num") -> str:
     """One ``<td>``: the printed value, and the exact one in ``data-v`` for a number."""
+    # a field can carry a data value (a coefficient's term names a level)
+    field = escape(field, quote=True)
     if kind in ("text", "code", "time"):
         text = NONE if value is None else escape(str(value))
         inner = f"<code>{text}</code>" if kind == "code" and value is not None else text
