@@ -150,7 +150,10 @@ def level_chart(
     ref = np.asarray(reference, dtype=bool)
     top.axhline(guide, color=GUIDE, linestyle=":", linewidth=1.0)
     est = ~ref & np.isfinite(v)
-    if est.any():
+    if est.any() and not np.isfinite(lo[est]).any():
+        # a penalised fit has no intervals: points alone, and a legend that promises none
+        top.plot(x[est], v[est], linestyle="none", marker="o", color=FITTED, label="estimate")
+    elif est.any():
         err = np.vstack([v[est] - lo[est], hi[est] - v[est]])
         err = np.where(np.isfinite(err), err, 0.0)
         top.errorbar(
