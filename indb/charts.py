@@ -291,17 +291,7 @@ def lift_chart(
     fig, ax = _figure(3.4)
     band = np.arange(1, len(actual_rate) + 1)
     ax.plot(band, expected_rate, marker="o", color=FITTED, linewidth=1.6, label="expected")
-    ax.plot(
-        band,
-        actual_rate,
-        marker="s",
-        color=ACTUAL,
-        linestyle="--",
-        linewidth=1.4,
-        markerfacecolor="white",
-        markeredgewidth=1.4,
-        label="actual",
-    )
+    _actual_line(ax, band, actual_rate)
     ax.set_xlabel("band of equal exposure, lowest score first (number)")
     ax.set_ylabel(rate_label)
     ax.xaxis.get_major_locator().set_params(integer=True)
@@ -333,17 +323,7 @@ def double_lift_chart(
         linewidth=1.5,
         label=names[1],
     )
-    ax.plot(
-        band,
-        actual_rate,
-        marker="s",
-        color=ACTUAL,
-        linestyle="--",
-        linewidth=1.4,
-        markerfacecolor="white",
-        markeredgewidth=1.4,
-        label="actual",
-    )
+    _actual_line(ax, band, actual_rate)
     ax.set_xlabel(f"band of equal exposure along {names[1]} / {names[0]}, lowest first (number)")
     ax.set_ylabel(rate_label)
     ax.xaxis.get_major_locator().set_params(integer=True)
@@ -498,6 +478,21 @@ def _figure(
         kw = {"height_ratios": list(ratios)} if ratios else {}
         axes = fig.subplots(rows, 1, sharex=sharex, gridspec_kw=kw)
     return fig, axes
+
+
+def _actual_line(ax: Any, x: np.ndarray, rate: Sequence[float]) -> None:
+    """The actual rate of a lift chart: open squares on a dashed line."""
+    ax.plot(
+        x,
+        rate,
+        marker="s",
+        color=ACTUAL,
+        linestyle="--",
+        linewidth=1.4,
+        markerfacecolor="white",
+        markeredgewidth=1.4,
+        label="actual",
+    )
 
 
 def _bars(ax: Any, x: np.ndarray, heights: Sequence[float], label: str) -> None:

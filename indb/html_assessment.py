@@ -53,6 +53,16 @@ def _assess_totals(a: AssessResult) -> str:
     return head + kv_table("assessment", rows)
 
 
+#: the columns every band table starts with: its number and the sums over its rows
+_BAND_SUMS = (
+    Column("band", "band", "count"),
+    Column("rows", "rows", "count"),
+    Column("weight", "weight"),
+    Column("exposure", "exposure"),
+    Column("actual", "actual"),
+)
+
+
 def _rate(num: float, den: float) -> float:
     return num / den if den and math.isfinite(den) and den != 0 else math.nan
 
@@ -67,11 +77,7 @@ def _lift(a: AssessResult) -> str:
         title="Actual and expected rate by band of the score",
     )
     cols = [
-        Column("band", "band", "count"),
-        Column("rows", "rows", "count"),
-        Column("weight", "weight"),
-        Column("exposure", "exposure"),
-        Column("actual", "actual"),
+        *_BAND_SUMS,
         Column("expected", "expected"),
         Column("actual_rate", "actual rate"),
         Column("expected_rate", "expected rate"),
@@ -267,11 +273,7 @@ def _double_lift(a: AssessResult, two: AgainstFigures, first: str, second: str) 
         title=f"Double lift: {second} against {first}",
     )
     cols = [
-        Column("band", "band", "count"),
-        Column("rows", "rows", "count"),
-        Column("weight", "weight"),
-        Column("exposure", "exposure"),
-        Column("actual", "actual"),
+        *_BAND_SUMS,
         Column("expected", f"expected, {first}"),
         Column("expected_against", f"expected, {second}"),
         Column("actual_over_expected", f"actual / expected, {first}"),
