@@ -14,7 +14,7 @@ from indb.assessment import AssessResult
 from indb.comparison import NestedTest
 from indb.engines.backends import connect
 from indb.engines.base_engine import Engine
-from indb.errors import ConvergenceWarning, RegistryError, SpecError
+from indb.errors import ConvergenceWarning, SpecError
 from indb.exploration import Exploration, explore_source
 from indb.fitter import fit_spec, plan_spec
 from indb.prefit import scoring_inputs
@@ -294,7 +294,7 @@ def assess(
     per row comes back. Nothing is written (a DuckDB file is opened read-only) unless
     ``record``: then the registry keeps the assessment (``Registry.assessments``).
     """
-    from indb.assess_run import StoredVersion, assess_version
+    from indb.assess_run import assess_version, chosen_version, load_against, parse_against
     from indb.registry import _now
 
     O.check_options(
@@ -327,7 +327,8 @@ def assess(
             "assess reads the model from the registry of a database: give db= the database "
             "(file or URL) the model was written to"
         )
-    second = _model_and_version(against) if against is not None else None
+    if against is not None:
+        parse_against(against)  # a malformed NAME:K is refused before connecting
     engine = connect(
         db,
         read_only=not record,
@@ -337,12 +338,9 @@ def assess(
     )
     try:
         reg = open_registry(engine, registry_schema)
-        version = _chosen_version(reg, name, version)
+        version = chosen_version(reg, name, version)
         result = reg.load(name, version)
-        other = None
-        if second is not None:
-            v2 = _chosen_version(reg, second[0], second[1])
-            other = StoredVersion(second[0], v2, reg.load(second[0], v2))
+        other = load_against(reg, against) if against is not None else None
         out = assess_version(
             engine,
             result,
@@ -361,25 +359,6 @@ def assess(
             engine.close()
 
 
-def _chosen_version(reg: Registry, name: str, version: int | None) -> int:
-    """``version``, or the live version of ``name`` (a RegistryError when it has none)."""
-    if version is None:
-        version = reg.model(name)["live_version"]
-        if version is None:
-            raise RegistryError(f"model {name!r} has no live version; give version=K")
-    return int(version)
-
-
-def _model_and_version(text: str) -> tuple[str, int | None]:
-    """``NAME`` or ``NAME:K`` (a model name holds no colon) as (name, version or None)."""
-    name, sep, k = text.strip().partition(":")
-    if not name or (sep and not (k.strip().isdigit() and int(k) >= 1)):
-        raise SpecError(
-            f"against must be a model name, or NAME:K with a version number K >= 1; got {text!r}"
-        )
-    return name, int(k) if sep else None
-
-
 def report_html(
     name: str,
     out: str | os.PathLike[str],
@@ -389,6 +368,7 @@ def report_html(
     on: str | None = None,
     by: Sequence[str] = (),
     bands: int = 10,
+    against: str | None = None,
     registry_schema: str = DEFAULT_SCHEMA,
     memory_limit: str | None = None,
     temp_directory: str | None = None,
@@ -400,24 +380,36 @@ def report_html(
     model and its version history, fit quality and the iteration trace, a chart per term
     with intervals, the coefficient table and, with ``on`` (a table, query or file of
     ``db``), the assessment of ``indb assess`` on that holdout as charts (lift, ordered
-    Lorenz curve, actual against expected by level and ``by`` column, calibration). Only
+    Lorenz curve, actual against expected by level and ``by`` column, calibration) and,
+    with ``against="NAME2"`` or ``"NAME2:K"``, a second model judged in the same scans:
+    both models' figures side by side and the double-lift chart (as ``assess``). Only
     grouped results leave the database; nothing is written to it. The file is written
     under a temporary name and renamed, so it is never half-written.
     """
+    from indb.assess_run import parse_against
     from indb.report_run import make_report
 
     O.check_options(
-        {"name": name, "on": on, "by": by, "bands": bands, "version": version},
-        {"name": O.TEXT, "on": O.TEXT, "by": O.NAMES, "bands": O.WHOLE, "version": O.WHOLE},
+        {"name": name, "on": on, "by": by, "bands": bands, "version": version, "against": against},
+        {
+            "name": O.TEXT,
+            "on": O.TEXT,
+            "by": O.NAMES,
+            "bands": O.WHOLE,
+            "version": O.WHOLE,
+            "against": O.TEXT,
+        },
     )
     O.check_options({"registry_schema": registry_schema}, DEPLOY_OPTIONS)
     O.check_options(
         {"memory_limit": memory_limit, "temp_directory": temp_directory, "threads": threads},
         ENGINE_OPTIONS,
     )
-    if on is None and (by or bands != 10):
-        given = "by" if by else "bands"
+    if on is None and (by or bands != 10 or against is not None):
+        given = "against" if against is not None else "by" if by else "bands"
         raise SpecError(f"{given} applies to the holdout assessment only; give on= a holdout")
+    if against is not None:
+        parse_against(against)  # a malformed NAME:K is refused before connecting
     if db is None or (isinstance(db, str) and db.strip() in ("", ":memory:")):
         raise SpecError(
             "the report reads the model from the registry of a database: give db= the "
@@ -432,7 +424,9 @@ def report_html(
     )
     try:
         reg = open_registry(engine, registry_schema)
-        return make_report(engine, reg, name, out, version=version, on=on, by=by, bands=bands)
+        return make_report(
+            engine, reg, name, out, version=version, on=on, by=by, bands=bands, against=against
+        )
     finally:
         if engine is not db:
             engine.close()

@@ -30,7 +30,7 @@ from indb.assessment import AssessResult, Header, PartRows, finish, split_parts
 from indb.design import RESERVED_PREFIX, Inputs
 from indb.engines.base_dialect import Dialect
 from indb.engines.base_engine import Engine
-from indb.errors import EngineError, NondeterministicSourceError, SpecError
+from indb.errors import EngineError, NondeterministicSourceError, RegistryError, SpecError
 from indb.fitrun import fetched_count
 from indb.nullmodel import NullTrack, start_intercept
 from indb.plan.assess_scan import (
@@ -47,6 +47,7 @@ from indb.plan.assess_scan import (
 from indb.plan.context import SRC, PlanContext
 from indb.plan.profile import profile_query
 from indb.prefit import check_domain
+from indb.registry import Registry
 from indb.results import FitResult
 from indb.spec import ModelSpec, Source
 
@@ -69,6 +70,33 @@ class StoredVersion(NamedTuple):
     model: str
     version: int
     result: FitResult
+
+
+def parse_against(text: str) -> tuple[str, int | None]:
+    """``NAME`` or ``NAME:K`` (a model name holds no colon) as (name, version or None)."""
+    name, sep, k = text.strip().partition(":")
+    if not name or (sep and not (k.strip().isdigit() and int(k) >= 1)):
+        raise SpecError(
+            f"against must be a model name, or NAME:K with a version number K >= 1; got {text!r}"
+        )
+    return name, int(k) if sep else None
+
+
+def chosen_version(reg: Registry, name: str, version: int | None) -> int:
+    """``version``, or the live version of ``name`` (a RegistryError when it has none)."""
+    if version is None:
+        version = reg.model(name)["live_version"]
+        if version is None:
+            raise RegistryError(f"model {name!r} has no live version; give version=K")
+    return int(version)
+
+
+def load_against(reg: Registry, text: str) -> StoredVersion:
+    """The second model of a comparison, ``NAME`` (its live version) or ``NAME:K``, from
+    the registry."""
+    name, version = parse_against(text)
+    version = chosen_version(reg, name, version)
+    return StoredVersion(name, version, reg.load(name, version))
 
 
 def assess_version(

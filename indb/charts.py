@@ -150,7 +150,10 @@ def level_chart(
     ref = np.asarray(reference, dtype=bool)
     top.axhline(guide, color=GUIDE, linestyle=":", linewidth=1.0)
     est = ~ref & np.isfinite(v)
-    if est.any():
+    if est.any() and not np.isfinite(lo[est]).any():
+        # a penalised fit has no intervals: points alone, and a legend that promises none
+        top.plot(x[est], v[est], linestyle="none", marker="o", color=FITTED, label="estimate")
+    elif est.any():
         err = np.vstack([v[est] - lo[est], hi[est] - v[est]])
         err = np.where(np.isfinite(err), err, 0.0)
         top.errorbar(
@@ -288,21 +291,83 @@ def lift_chart(
     fig, ax = _figure(3.4)
     band = np.arange(1, len(actual_rate) + 1)
     ax.plot(band, expected_rate, marker="o", color=FITTED, linewidth=1.6, label="expected")
-    ax.plot(
-        band,
-        actual_rate,
-        marker="s",
-        color=ACTUAL,
-        linestyle="--",
-        linewidth=1.4,
-        markerfacecolor="white",
-        markeredgewidth=1.4,
-        label="actual",
-    )
+    _actual_line(ax, band, actual_rate)
     ax.set_xlabel("band of equal exposure, lowest score first (number)")
     ax.set_ylabel(rate_label)
     ax.xaxis.get_major_locator().set_params(integer=True)
     ax.legend(loc="upper left")
+    return _svg(fig, title)
+
+
+def double_lift_chart(
+    actual_rate: Sequence[float],
+    expected_rate: Sequence[float],
+    against_rate: Sequence[float],
+    *,
+    names: tuple[str, str],
+    rate_label: str,
+    title: str,
+) -> str:
+    """The double lift: per band of equal exposure along the ratio of the second model's
+    score to the first's, the actual rate (squares, dashed) and each model's expected
+    (circles, solid; triangles, dash-dot)."""
+    fig, ax = _figure(3.6)
+    band = np.arange(1, len(actual_rate) + 1)
+    ax.plot(band, expected_rate, marker="o", color=FITTED, linewidth=1.6, label=names[0])
+    ax.plot(
+        band,
+        against_rate,
+        marker="^",
+        color=REFERENCE,
+        linestyle="-.",
+        linewidth=1.5,
+        label=names[1],
+    )
+    _actual_line(ax, band, actual_rate)
+    ax.set_xlabel(f"band of equal exposure along {names[1]} / {names[0]}, lowest first (number)")
+    ax.set_ylabel(rate_label)
+    ax.xaxis.get_major_locator().set_params(integer=True)
+    # above the axes: the lines of a double lift run from corner to corner
+    ax.legend(loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=3)
+    return _svg(fig, title)
+
+
+#: line styles and markers cycled over a path's coefficients (told apart without colour)
+_PATH_STYLES = ("-", "--", "-.", ":")
+_PATH_MARKERS = ("o", "s", "^", "D", "v", "P", "X", "*")
+
+
+def path_chart(
+    log_lambda: Sequence[float],
+    estimates: Sequence[Sequence[float]],
+    labels: Sequence[str],
+    *,
+    chosen: float | None,
+    title: str,
+) -> str:
+    """A lambda path: each coefficient's estimate against log lambda (one line each, its
+    style and marker cycled), the guide at 0 and the reported lambda as a vertical line."""
+    fig, ax = _figure(4.2)
+    x = np.asarray(log_lambda, dtype=float)
+    ax.axhline(0.0, color=GUIDE, linestyle=":", linewidth=1.0)
+    colours = (FITTED, ACTUAL, REFERENCE, INK, BAR_EDGE)
+    for i, (label, ys) in enumerate(zip(labels, estimates, strict=True)):
+        ax.plot(
+            x,
+            np.asarray(ys, dtype=float),
+            linestyle=_PATH_STYLES[i % len(_PATH_STYLES)],
+            marker=_PATH_MARKERS[i % len(_PATH_MARKERS)],
+            markersize=3.5,
+            linewidth=1.2,
+            color=colours[i % len(colours)],
+            label=_short(label, 28),
+        )
+    if chosen is not None and math.isfinite(chosen):
+        ax.axvline(chosen, color=GUIDE, linestyle="--", linewidth=1.0)
+    ax.set_xlabel("log lambda (natural log of the penalty strength)")
+    ax.set_ylabel("coefficient (link units)")
+    if labels:
+        ax.legend(loc="center left", bbox_to_anchor=(1.0, 0.5), fontsize=7.5)
     return _svg(fig, title)
 
 
@@ -413,6 +478,21 @@ def _figure(
         kw = {"height_ratios": list(ratios)} if ratios else {}
         axes = fig.subplots(rows, 1, sharex=sharex, gridspec_kw=kw)
     return fig, axes
+
+
+def _actual_line(ax: Any, x: np.ndarray, rate: Sequence[float]) -> None:
+    """The actual rate of a lift chart: open squares on a dashed line."""
+    ax.plot(
+        x,
+        rate,
+        marker="s",
+        color=ACTUAL,
+        linestyle="--",
+        linewidth=1.4,
+        markerfacecolor="white",
+        markeredgewidth=1.4,
+        label="actual",
+    )
 
 
 def _bars(ax: Any, x: np.ndarray, heights: Sequence[float], label: str) -> None:

@@ -43,6 +43,13 @@ from indb.registry import DEFAULT_SCHEMA
     help="With --on: bands of equal exposure along the score (default 10).",
 )
 @click.option(
+    "--against",
+    default=None,
+    metavar="NAME2[:K]",
+    help="With --on: judge this second model (its live version, or version K) in the same "
+    "scans; the report adds the double-lift chart and both models' figures side by side.",
+)
+@click.option(
     "--out",
     required=True,
     metavar="FILE.html",
@@ -73,6 +80,8 @@ def report_command(name: str, db: str, registry_schema: str | None, **options: A
         click.echo(json.dumps(asdict(written)))
         return
     on = f", judged on {written.assessed_on}" if written.assessed_on else ""
+    if written.compared_with:
+        on += f" against {written.compared_with}"
     click.echo(
         f"Report of {written.model} version {written.version}{on}: {written.path} "
         f"({written.bytes / 1024:,.0f} KB, {written.seconds:.1f} s). Open it in a browser."

@@ -2,8 +2,9 @@
 ``indb assess``) as a table of totals and charts, each with its numbers behind it.
 
 The views are the functions in :data:`ASSESSMENT_SECTIONS`, in page order, each taking the
-assessment and returning HTML ("" when it does not apply): a further view (a double-lift
-chart of two models, when an assessment carries one) is one more function there.
+assessment and returning HTML ("" when it does not apply). With a second model (``indb
+report --against``) two views apply: both models' figures side by side and the double-lift
+chart along the ratio of their scores.
 """
 
 from __future__ import annotations
@@ -11,13 +12,14 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import asdict
+from html import escape
 from typing import Any
 
 import numpy as np
 
 from indb import charts as C
-from indb.assessment import AssessResult, Level
-from indb.html_parts import Column, chart_box, fmt_num, kv_table, note, table
+from indb.assessment import AgainstFigures, AssessResult, Level
+from indb.html_parts import FORMATS, Column, Shown, chart_box, fmt_num, kv_table, note, table
 
 __all__ = ["ASSESSMENT_SECTIONS"]
 
@@ -51,6 +53,16 @@ def _assess_totals(a: AssessResult) -> str:
     return head + kv_table("assessment", rows)
 
 
+#: the columns every band table starts with: its number and the sums over its rows
+_BAND_SUMS = (
+    Column("band", "band", "count"),
+    Column("rows", "rows", "count"),
+    Column("weight", "weight"),
+    Column("exposure", "exposure"),
+    Column("actual", "actual"),
+)
+
+
 def _rate(num: float, den: float) -> float:
     return num / den if den and math.isfinite(den) and den != 0 else math.nan
 
@@ -65,11 +77,7 @@ def _lift(a: AssessResult) -> str:
         title="Actual and expected rate by band of the score",
     )
     cols = [
-        Column("band", "band", "count"),
-        Column("rows", "rows", "count"),
-        Column("weight", "weight"),
-        Column("exposure", "exposure"),
-        Column("actual", "actual"),
+        *_BAND_SUMS,
         Column("expected", "expected"),
         Column("actual_rate", "actual rate"),
         Column("expected_rate", "expected rate"),
@@ -201,9 +209,101 @@ def _calibration(a: AssessResult) -> str:
     return chart_box("calibration", "Calibration", svg, caption, table("calibration", cols, rows))
 
 
+def _name(model: str, version: int) -> str:
+    return f"{model} v{version}"
+
+
+def _side_by_side(a: AssessResult) -> str:
+    """Both models' figures on the same rows of the same scans, one column each."""
+    two = a.against
+    if two is None:
+        return ""
+    first, second = _name(a.model, a.version), _name(two.model, two.version)
+    figures: list[tuple[str, str, str]] = [
+        ("expected", "expected", "num"),
+        ("actual_over_expected", "actual / expected", "num"),
+        ("deviance", "deviance", "num"),
+        ("mean_deviance", "mean deviance (per unit weight)", "num"),
+        ("deviance_explained", "deviance explained", "share"),
+        ("gini", "Gini (ordered Lorenz curve)", "num"),
+        ("gini_normalized", "Gini / best possible Gini", "num"),
+        ("rows_unseen", "rows with a level the fit never saw", "count"),
+    ]
+    cols = [
+        Column("figure", "figure", "text"),
+        Column("first", first, "num"),
+        Column("second", second, "num"),
+    ]
+    rows = [
+        (key, {"figure": label, "first": _shown(a, key, kind), "second": _shown(two, key, kind)})
+        for key, label, kind in figures
+    ]
+    offset = f", offset {two.offset}" if two.offset else ""
+    head = note(
+        f"{second} ({two.family} family, {two.link} link{offset}) was judged in the same "
+        f"scans as {first}, on the same {a.rows:,} rows: the actual ({fmt_num(a.actual)}), "
+        "weight and exposure are shared; the figures below differ."
+    )
+    return (
+        f"<h3>Against {escape(second)}</h3>"
+        + head
+        + table("against", cols, rows)
+        + _double_lift(a, two, first, second)
+    )
+
+
+def _shown(figures: Any, key: str, kind: str) -> Shown | float:
+    """A figure printed its own way (a share, a count) with its exact value behind it."""
+    value = getattr(figures, key)
+    if value is None or not isinstance(value, int | float) or kind == "num":
+        return value
+    return Shown(float(value), FORMATS[kind](value))
+
+
+def _double_lift(a: AssessResult, two: AgainstFigures, first: str, second: str) -> str:
+    bands = a.ratio_bands or ()
+    if not bands:
+        return ""
+    svg = C.double_lift_chart(
+        [_rate(b.actual, b.exposure) for b in bands],
+        [_rate(b.expected, b.exposure) for b in bands],
+        [_rate(b.expected_against, b.exposure) for b in bands],
+        names=(first, second),
+        rate_label="actual or expected per unit of exposure (rate)",
+        title=f"Double lift: {second} against {first}",
+    )
+    cols = [
+        *_BAND_SUMS,
+        Column("expected", f"expected, {first}"),
+        Column("expected_against", f"expected, {second}"),
+        Column("actual_over_expected", f"actual / expected, {first}"),
+        Column("actual_over_against", f"actual / expected, {second}"),
+        Column("ratio_low", "score ratio low"),
+        Column("ratio_high", "score ratio high"),
+    ]
+    rows = [
+        (
+            str(i),
+            {
+                **asdict(b),
+                "actual_over_expected": _rate(b.actual, b.expected),
+                "actual_over_against": _rate(b.actual, b.expected_against),
+            },
+        )
+        for i, b in enumerate(bands)
+    ]
+    caption = (
+        f" {len(bands)} bands of equal exposure along the ratio of the scores ({second} over "
+        f"{first}), lowest first: where the two models disagree, the one whose expected "
+        "line follows the actual rate prices those rows better."
+    )
+    return chart_box("double_lift", "Double lift", svg, caption, table("ratio_bands", cols, rows))
+
+
 #: the views of an assessment, in page order; each returns "" when it does not apply
 ASSESSMENT_SECTIONS: tuple[Callable[[AssessResult], str], ...] = (
     _assess_totals,
+    _side_by_side,
     _lift,
     _lorenz,
     _levels,

@@ -170,11 +170,13 @@ class Column:
     kind: str = "num"
 
 
-_FORMATS = {"num": fmt_num, "count": fmt_count, "p": fmt_p, "share": fmt_share}
+FORMATS = {"num": fmt_num, "count": fmt_count, "p": fmt_p, "share": fmt_share}
 
 
 def cell(field: str, value: Any, kind: str = "num") -> str:
     """One ``<td>``: the printed value, and the exact one in ``data-v`` for a number."""
+    # a field can carry a data value (a coefficient's term names a level)
+    field = escape(field, quote=True)
     if kind in ("text", "code", "time"):
         text = NONE if value is None else escape(str(value))
         inner = f"<code>{text}</code>" if kind == "code" and value is not None else text
@@ -191,7 +193,7 @@ def cell(field: str, value: Any, kind: str = "num") -> str:
         raw = f' data-v="{str(value).lower()}"'
     elif isinstance(value, int | float):
         raw = f' data-v="{_exact(value)}"'
-    return f'<td class="n" data-field="{field}"{raw}>{_FORMATS[kind](value)}</td>'
+    return f'<td class="n" data-field="{field}"{raw}>{FORMATS[kind](value)}</td>'
 
 
 def _exact(value: float | int) -> str:

@@ -27,10 +27,17 @@ from indb import charts as C
 from indb.assessment import CAUTION as ASSESS_CAUTION
 from indb.assessment import AssessResult
 from indb.html_assessment import ASSESSMENT_SECTIONS
+from indb.html_fit import (
+    covariance_note,
+    family_param_rows,
+    p_shown,
+    penalty_block,
+    recorded_assessments,
+    term_tests_block,
+)
 from indb.html_parts import (
     STYLE,
     Column,
-    Shown,
     chart_box,
     fmt_count,
     fmt_num,
@@ -41,7 +48,7 @@ from indb.html_parts import (
     section,
     table,
 )
-from indb.report import CAUTION, format_chi2_p, format_p
+from indb.report import CAUTION, format_p
 from indb.results import FitResult
 from indb.term_effects import (
     CoefficientEffect,
@@ -75,6 +82,8 @@ class ReportPage:
     assessment: AssessResult | None = None
     #: the model's scoring view (schema.name), which serves its live version
     scoring_view: str | None = None
+    #: the assessments the registry recorded for the version (oldest first)
+    recorded: Sequence[Mapping[str, Any]] = ()
 
 
 def render_html(page: ReportPage) -> str:
@@ -157,8 +166,7 @@ def _model_section(page: ReportPage) -> str:
     ):
         if spec.get(key) not in (None, ""):
             rows.append((key, label, spec[key], "code"))
-    for name, value in (r.family_params or {}).items():
-        rows.append((f"family_params.{name}", f"family: {name}", value, "num"))
+    rows += family_param_rows(r)
     rows += [
         ("source", "source", _source_text(r), "code"),
         ("n_used", "rows used", r.n_used, "count"),
@@ -184,6 +192,7 @@ def _model_section(page: ReportPage) -> str:
     body = kv_table("model", rows)
     body += "<h3>Version history</h3>" + _history_table(page)
     body += "<h3>Registry events</h3>" + _events_table(page.events)
+    body += "<h3>Recorded assessments of this version</h3>" + recorded_assessments(page.recorded)
     return body
 
 
@@ -281,38 +290,7 @@ def _quality_section(r: FitResult) -> str:
         ("path", "route", r.path, "text"),
         ("seconds", "wall time (s)", r.seconds, "num"),
     ]
-    body = kv_table("quality", rows) + _iteration_box(r)
-    if r.term_tests:
-        body += "<h3>Whole terms</h3>" + note(
-            "Wald chi-square of all of a term's coefficients at once, its df and tail "
-            "probability; GVIF = generalized variance-inflation factor (Fox and Monette), "
-            "GVIF^(1/(2 df)) comparable across terms."
-        )
-        gvif = {c.term: c for c in r.collinearity}
-        rows_t = [
-            (
-                t.term,
-                {
-                    "term": t.term,
-                    "df": t.df,
-                    "wald_chi2": t.wald_chi2,
-                    "p_value": _p_shown(t.p_value, format_chi2_p(t.p_value, t.wald_chi2, t.df)),
-                    "gvif": gvif[t.term].gvif if t.term in gvif else None,
-                    "gvif_scaled": gvif[t.term].gvif_scaled if t.term in gvif else None,
-                },
-            )
-            for t in r.term_tests
-        ]
-        cols = [
-            Column("term", "term", "text"),
-            Column("df", "df", "count"),
-            Column("wald_chi2", "Wald chi-square"),
-            Column("p_value", "p", "p"),
-            Column("gvif", "GVIF"),
-            Column("gvif_scaled", "GVIF^(1/(2 df))"),
-        ]
-        body += table("term_tests", cols, rows_t)
-    return body
+    return kv_table("quality", rows) + _iteration_box(r) + term_tests_block(r)
 
 
 def _iteration_box(r: FitResult) -> str:
@@ -373,7 +351,8 @@ def holdout_ranges(r: FitResult, a: AssessResult) -> dict[str, ValueRange]:
 
 def _terms_section(r: FitResult, effects: Sequence[Effect], a: AssessResult | None) -> str:
     scale = scale_for(r.link)
-    level = f"{100 * float(r.confidence):g}%"
+    # a penalised fit has no standard errors: its charts say so instead of a level
+    level = "no" if r.penalty else f"{100 * float(r.confidence):g}%"
     weighted = bool((r.spec or {}).get("frequency_weight"))
     rows_label = "frequency-weighted rows in the fit" if weighted else "rows in the fit"
     intro = (
@@ -560,19 +539,14 @@ def _points_box(e: CoefficientEffect, scale: Scale, level: str) -> str:
     cols = _point_columns(scale, Column("label", "coefficient", "text"))
     rows = [(p.label, _point_values(p)) for p in e.points]
     caption = (
-        f" One point per coefficient of the term, with its {level} interval; a coefficient "
+        f" One point per coefficient of the term, with {'no' if level == 'no' else 'its ' + level}"
+        " interval; a coefficient "
         "of a numeric column is per unit of that column."
     )
     return chart_box(f"term:{e.term}", e.term, svg, caption, table(f"term:{e.term}", cols, rows))
 
 
 # -- coefficients ------------------------------------------------------------------------------
-
-
-def _p_shown(p: float, text: str) -> Shown | float:
-    """A p-value cell: the text report's wording (a p below the smallest double is given
-    from its statistic) with the stored value."""
-    return Shown(float(p), text) if math.isfinite(p) else p
 
 
 def _coefficients_section(r: FitResult) -> str:
@@ -595,18 +569,20 @@ def _coefficients_section(r: FitResult) -> str:
     rows = []
     for c in r.coefficients:
         values = dict(asdict(c))
-        values["p_two_sided"] = _p_shown(
-            c.p_two_sided, format_p(c.p_two_sided, c.wald, test, r.residual_df)
+        values["p_two_sided"] = p_shown(
+            c.p_two_sided, format_p(c.p_two_sided, c.wald, test, r.wald_df)
         )
         values["exp_estimate"] = float(scale.apply(c.estimate)) if not c.aliased else None
         values["aliased"] = "aliased: not estimated" if c.aliased else ""
         rows.append((c.term, values))
     text = (
         f"Wald {test} = estimate / std error"
-        + (f", on {fmt_num(r.residual_df)} residual df" if test == "t" else "")
+        + (f", on {fmt_num(r.wald_df)} df" if test == "t" else "")
         + "; interval = estimate -/+ quantile x std error."
     )
-    return note(text) + table("coefficients", cols, rows)
+    if r.penalty:
+        text = "No standard errors, Wald statistics, p-values or intervals: a penalised fit."
+    return penalty_block(r) + covariance_note(r) + note(text) + table("coefficients", cols, rows)
 
 
 # -- notes, caution, provenance ----------------------------------------------------------------

@@ -101,7 +101,7 @@ def _model_block(result: FitResult, width: int) -> str:
         value = result.spec.get(key) if isinstance(result.spec, dict) else None
         if value not in (None, ""):
             rows.append((label, _one_line(str(value)), ""))
-    rows.append(("standard errors", *_covariance_text(result)))
+    rows.append(("standard errors", *covariance_text(result)))
     rows.append(("rows used", _fmt_count(result.n_used), ""))
     rows.append(("rows set aside", _fmt_count(result.n_excluded), _exclusion_note(result)))
     if _finite(result.n_weighted) and result.n_weighted != result.n_used:
@@ -116,7 +116,7 @@ def _model_block(result: FitResult, width: int) -> str:
     return _kv_block("MODEL", rows, width)
 
 
-def _covariance_text(result: FitResult) -> tuple[str, str]:
+def covariance_text(result: FitResult) -> tuple[str, str]:
     """The standard errors' source, in two parts: a name and how it is formed."""
     kind = result.covariance_kind
     if kind == "robust":

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 
-from indb.assess_run import assess_version
+from indb.assess_run import assess_version, chosen_version, load_against
 from indb.engines.base_engine import Engine
 from indb.errors import RegistryError, SpecError
 from indb.html_report import ReportPage, render_html
@@ -40,6 +40,8 @@ class ReportFile:
     model: str
     version: int
     assessed_on: str | None
+    #: the second model judged in the same scans (``NAME2:K``), with ``against``
+    compared_with: str | None
     bytes: int
     seconds: float
     scans: int
@@ -104,26 +106,34 @@ def build_page(
     on: str | None = None,
     by: Sequence[str] = (),
     bands: int = 10,
+    against: str | None = None,
 ) -> ReportPage:
     """Everything the report of ``name`` (version ``version``, default the live one) shows;
-    with ``on``, its assessment on that holdout."""
+    with ``on``, its assessment on that holdout and, with ``against`` (``NAME2`` or
+    ``NAME2:K``), the second model judged in the same scans (:func:`assess_version`)."""
+    if against is not None and on is None:
+        raise SpecError(f"against={against!r} compares two models on a holdout; give on= too")
     model = reg.model(name)
-    if version is None:
-        version = model["live_version"]
-        if version is None:
-            raise RegistryError(f"model {name!r} has no live version; give version=K")
-    version = int(version)
+    version = chosen_version(reg, name, version)
     versions = reg.versions(name)
     row = next((v for v in versions if int(v["version"]) == version), None)
     if row is None:
         known = [int(v["version"]) for v in versions]
         raise RegistryError(f"model {name!r} has no version {version}; versions: {known}")
     result = reg.load(name, version)
+    second = load_against(reg, against) if against is not None else None
     assessment = None
     if on is not None:
         columns = [*numeric_columns(result), *(c for c in by if c not in numeric_columns(result))]
         assessment = assess_version(
-            engine, result, model=name, version=version, on=on, by=columns, bands=bands
+            engine,
+            result,
+            model=name,
+            version=version,
+            on=on,
+            by=columns,
+            bands=bands,
+            against=second,
         )
     return ReportPage(
         name=name,
@@ -132,6 +142,7 @@ def build_page(
         version_row=row,
         versions=versions,
         events=reg.events(name),
+        recorded=reg.assessments(name, version),
         engine=engine.dialect.name,
         made_at=datetime.now(UTC),
         indb_version=__version__,
@@ -161,11 +172,12 @@ def make_report(
     on: str | None = None,
     by: Sequence[str] = (),
     bands: int = 10,
+    against: str | None = None,
 ) -> ReportFile:
     """Check ``out``, gather the page, render it and write it atomically."""
     t0 = time.perf_counter()
     path = check_out_path(out)
-    page = build_page(engine, reg, name, version, on=on, by=by, bands=bands)
+    page = build_page(engine, reg, name, version, on=on, by=by, bands=bands, against=against)
     size = write_atomically(render_html(page), path)
     a = page.assessment
     return ReportFile(
@@ -173,6 +185,11 @@ def make_report(
         model=name,
         version=page.version,
         assessed_on=a.source if a is not None else None,
+        compared_with=(
+            f"{a.against.model}:{a.against.version}"
+            if a is not None and a.against is not None
+            else None
+        ),
         bytes=size,
         seconds=time.perf_counter() - t0,
         scans=a.scans if a is not None else 0,

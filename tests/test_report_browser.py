@@ -3,7 +3,8 @@ with networking disabled.
 
 The test installs nothing: ``.ci/run`` installs Chromium (``bash .ci/services.sh install``);
 without it the test is skipped with a message locally and fails under ``CI=true``. For each
-report (a Poisson model with a spline and a holdout; a binomial model with its calibration)
+report (a Poisson model with a spline and a holdout, alone and against a smaller model; a
+binomial model with its calibration; a penalised fit with its lambda path)
 Chromium
 
 1. loads the page with its console logged to stderr: no console message at all (the page
@@ -15,7 +16,9 @@ Chromium
    (about an A4 page's text width); the page scrolls no wider than the window; nothing was
    fetched;
 3. takes a screenshot that must not be blank (grey-level spread and colours counted with
-   Pillow) and prints the page to PDF (several pages).
+   Pillow) and prints the page to PDF (several pages); the new charts (the double lift, the
+   lambda path) are screenshot on their own too. With ``INDB_SCREENSHOT_DIR`` set, the PNGs
+   are kept there for a person to look at.
 
 Networking is off: every host name resolves to nothing (``--host-resolver-rules``) and every
 request goes to a proxy on a closed port.
@@ -34,7 +37,7 @@ from typing import Any
 
 import numpy as np
 import pytest
-from report_cases import build
+from report_cases import SOURCE, build
 
 import indb
 
@@ -102,7 +105,45 @@ EXPECTED = {
         "ae:age",
         "calibration",
     ],
+    # the Poisson model against a smaller one (--against): the double lift too
+    "children_against": [
+        "iterations",
+        "term:rating",
+        "term:religious",
+        "term:educ",
+        "term:religious & educ",
+        "term:age",
+        "double_lift",
+        "lift",
+        "lorenz",
+        "ae:rating",
+        "ae:religious",
+        "ae:educ",
+        "ae:age",
+    ],
+    # a penalised fit with a lambda path, no holdout
+    "children_pen": [
+        "iterations",
+        "term:rating",
+        "term:religious",
+        "term:age",
+        "term:educ",
+        "penalty_path",
+    ],
 }
+#: how each page is made: (model, report_html's options)
+PAGES = {
+    "children": ("children", {"on": "fair_hold"}),
+    "had": ("had", {"on": "fair_hold"}),
+    "children_against": ("children", {"on": "fair_hold", "against": "children_small"}),
+    "children_pen": ("children_pen", {}),
+}
+#: the further models (fitted on report_cases' training rows)
+MORE = {
+    "children_small": {"predictors": ["rating", "religious"]},
+    "children_pen": {"predictors": ["rating", "religious", "age", "educ"], "path": 6,
+                     "l1_share": 0.5},
+}  # fmt: skip
 WINDOW = 720  # px: about the text width of an A4 page at 96 px an inch
 
 
@@ -125,11 +166,12 @@ def pages(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     browser = _browser()  # skip (or fail under CI) before building anything
     folder = tmp_path_factory.mktemp("browser")
     db = str(build(folder)["db"])
+    for name, options in MORE.items():
+        indb.fit(SOURCE, db=db, name=name, response="children", family="poisson",
+                 offset="ln(years)", **options)  # fmt: skip
     out = {"browser": Path(browser)}
-    for name in EXPECTED:
-        out[name] = Path(
-            indb.report_html(name, folder / f"{name}.html", db=db, on="fair_hold").path
-        )
+    for key, (name, options) in PAGES.items():
+        out[key] = Path(indb.report_html(name, folder / f"{key}.html", db=db, **options).path)
     return out
 
 
@@ -188,14 +230,7 @@ def test_screenshot_is_not_blank_and_the_page_prints(
     image = Image.open(shot).convert("RGB")
     assert image.size == (1100, 2600)
     pixels = np.asarray(image)
-    grey = pixels.mean(axis=2)
-    # a blank (or all-dark) page has one grey level; the report has text, rules, the
-    # masthead and charts: a spread of grey levels, many colours, neither mostly white nor
-    # mostly ink
-    assert grey.std() > 30
-    colours = np.unique(pixels.reshape(-1, 3)[::7], axis=0)
-    assert len(colours) > 200
-    assert 0.02 < (grey < 200).mean() < 0.6
+    _not_blank(pixels, spread=30, colours=200)
     # the masthead band (the report's dark teal) across the top
     top = pixels[10:60, 20:1080].reshape(-1, 3).mean(axis=0)
     assert top[0] < 60 and top[2] < 90
@@ -205,3 +240,44 @@ def test_screenshot_is_not_blank_and_the_page_prints(
     data = pdf.read_bytes()
     assert data.startswith(b"%PDF")
     assert len(re.findall(rb"/Type\s*/Page\b", data)) >= 4
+
+
+def _not_blank(pixels: np.ndarray, *, spread: float, colours: int) -> None:
+    """A blank (or all-dark) image has one grey level; a report has text, rules and
+    charts: a spread of grey levels, many colours, neither mostly white nor mostly ink."""
+    grey = pixels.mean(axis=2)
+    assert grey.std() > spread
+    assert len(np.unique(pixels.reshape(-1, 3)[::7], axis=0)) > colours
+    assert 0.02 < (grey < 200).mean() < 0.6
+
+
+@pytest.mark.parametrize(("page", "chart"), [("children_against", "double_lift"),
+                                             ("children_pen", "penalty_path")])  # fmt: skip
+def test_new_charts_screenshot_on_their_own(
+    pages: dict[str, Path], page: str, chart: str, tmp_path: Path
+) -> None:
+    """The chart's box alone (the page's style sheet, its figure): drawn, not blank."""
+    from PIL import Image
+
+    text = pages[page].read_text(encoding="utf-8")
+    style = re.search(r"<style>.*?</style>", text, re.S)
+    box = re.search(rf'<figure class="chart-box" data-chart="{chart}">.*?</figure>', text, re.S)
+    assert style and box
+    alone = tmp_path / f"{chart}.html"
+    alone.write_text(f"<!DOCTYPE html><html><head>{style.group(0)}</head><body><main>"
+                     f"{box.group(0)}</main></body></html>", encoding="utf-8")  # fmt: skip
+    shot = tmp_path / f"{chart}.png"
+    _chromium(pages["browser"], tmp_path / "p5", "--window-size=900,700",
+              f"--screenshot={shot}", alone.as_uri())  # fmt: skip
+    pixels = np.asarray(Image.open(shot).convert("RGB"))
+    _not_blank(pixels, spread=20, colours=60)
+    # the series' colours are there: dark teal (the first model / fitted), burnt orange
+    # (actual), plum (the second model) in the double lift
+    wanted = {"double_lift": ("#0d5c63", "#b4531f", "#6a3d7c"), "penalty_path": ("#0d5c63",)}
+    flat = pixels.reshape(-1, 3).astype(int)
+    for colour in wanted[chart]:
+        rgb = np.array([int(colour[i : i + 2], 16) for i in (1, 3, 5)])
+        assert (np.abs(flat - rgb).sum(axis=1) < 40).sum() > 50, colour
+    keep = os.environ.get("INDB_SCREENSHOT_DIR")
+    if keep:
+        shutil.copy(shot, Path(keep) / f"{page}-{chart}.png")

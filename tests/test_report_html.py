@@ -35,7 +35,17 @@ import statsmodels.api as sm
 from assess_cases import SM_FIT
 from click.testing import CliRunner, Result
 from numpy.testing import assert_allclose
-from report_cases import LABELS, build, exact, natural_spline_basis, read_tables, same_number
+from report_cases import (
+    FIT_TOL,
+    LABELS,
+    SOURCE,
+    build,
+    exact,
+    frames,
+    natural_spline_basis,
+    read_tables,
+    same_number,
+)
 from scipy import stats
 
 import indb
@@ -551,3 +561,194 @@ def test_kill_during_a_report_never_leaves_a_half_written_page(
         ), text[-200:]
         outcomes.append(text == "the previous report")
     assert any(outcomes)  # at least one kill landed before the rename
+
+
+# -- a second model, and what covariance kinds, penalties and families add ---------------------
+
+#: a smaller Poisson model of the same response and offset (the second model of --against)
+SMALL = {
+    "response": "children",
+    "family": "poisson",
+    "offset": "ln(years)",
+    "predictors": ["rating", "religious"],
+}
+
+
+@pytest.fixture(scope="module")
+def more(built: dict[str, Any]) -> dict[str, Any]:
+    """Further models in the same database: the second model of a comparison, a penalised
+    fit with a lambda path, a negative binomial with cluster-robust errors and a recorded
+    assessment; and the report of each (the first against the second)."""
+    db, folder = built["db"], built["folder"]
+    indb.fit(SOURCE, db=db, name="children_small", tol=FIT_TOL, **SMALL)
+    indb.fit(SOURCE, db=db, name="children_pen", tol=FIT_TOL, path=6, l1_share=0.5,
+             **{**SMALL, "predictors": ["rating", "religious", "age", "educ"]})  # fmt: skip
+    # the survey's children show no overdispersion: theta runs off (a ConvergenceWarning);
+    # the page shows the stored theta and its standard error all the same
+    with pytest.warns(indb.ConvergenceWarning, match="theta runs off"):
+        indb.fit(SOURCE, db=db, name="children_nb", tol=FIT_TOL, covariance="cluster",
+                 cluster="educ", **{**SMALL, "family": "negative_binomial"})  # fmt: skip
+    recorded = _json(_run("assess", "children_nb", "--db", db, "--on", "fair_hold",
+                          "--record", "--json"))  # fmt: skip
+    pages = {}
+    for name, extra in (
+        ("children", ["--on", "fair_hold", "--against", "children_small:1"]),
+        ("children_pen", []),
+        ("children_nb", []),
+    ):
+        path = folder / f"more-{name}.html"
+        result = _run("report", name, "--db", db, "--out", path, *extra, "--json")
+        written = _json(result)
+        if extra:
+            assert written["compared_with"] == "children_small:1" and written["scans"] == 2
+        pages[name] = path.read_text(encoding="utf-8")
+    return {"db": db, "pages": pages, "recorded": recorded}
+
+
+def test_against_figures_and_double_lift_equal_assess_against_json(
+    more: dict[str, Any],
+) -> None:
+    db = more["db"]
+    judged = _json(_run("assess", "children", "--db", db, "--on", "fair_hold", "--by", "age",
+                        "--by", "educ", "--against", "children_small:1", "--json"))  # fmt: skip
+    t = read_tables(more["pages"]["children"]).tables
+    side = t["against"]
+    two = judged["against"]
+    for field in (
+        "expected",
+        "actual_over_expected",
+        "deviance",
+        "mean_deviance",
+        "deviance_explained",
+        "gini",
+        "gini_normalized",
+        "rows_unseen",
+    ):
+        same_number(judged[field], side[field]["first"])
+        same_number(two[field], side[field]["second"])
+    ratio = t["ratio_bands"]
+    assert len(ratio) == len(judged["ratio_bands"]) == 10
+    for i, b in enumerate(judged["ratio_bands"]):
+        row = ratio[str(i)]
+        for field in ("rows", "weight", "exposure", "actual", "expected", "expected_against",
+                      "ratio_low", "ratio_high"):  # fmt: skip
+            same_number(b[field], row[field])
+    # the bands split the same rows: their sums are the totals (numpy)
+    assert sum(b["rows"] for b in judged["ratio_bands"]) == judged["rows"]
+    assert_allclose(sum(b["expected_against"] for b in judged["ratio_bands"]),
+                    two["expected"], rtol=1e-12)  # fmt: skip
+    # the single model's views stay as they were: its totals equal the plain assessment's
+    totals = t["assessment"]
+    for field in ("rows", "actual", "expected", "deviance", "gini"):
+        same_number(judged[field], totals[field]["value"], digits=3)
+    charts = re.findall(r'data-chart="([^"]+)"', more["pages"]["children"])
+    assert charts.index("double_lift") < charts.index("lift")
+
+
+def test_against_second_model_against_statsmodels(more: dict[str, Any]) -> None:
+    # outside oracle: statsmodels GLM (test-only) fitted on the training rows with the
+    # second model's design; its expected on the holdout rows judged, summed, is the
+    # second model's expected (pandas drops the rows with NULL inputs, as the assessment
+    # sets them aside). The oracle's coefficients are checked against indb's first.
+    train, hold = frames()
+    small = _load(more, "children_small")
+    cols = ["children", "years", "rating", "religious", "age", "educ"]
+    tr = train.dropna(subset=["children", "years", "rating", "religious"])
+    x = _design(tr, small)
+    fit = sm.GLM(tr["children"], x, family=sm.families.Poisson(),
+                 offset=np.log(tr["years"])).fit(tol=1e-13)  # fmt: skip
+    assert_allclose(fit.params.to_numpy(), [c.estimate for c in small.coefficients],
+                    rtol=ORACLE_RTOL)  # fmt: skip
+    judged = hold.dropna(subset=cols)
+    # a rating the fit never saw has no indicator: scored as the reference level
+    xh = _design(judged, small)
+    mu = fit.predict(xh, offset=np.log(judged["years"]))
+    t = read_tables(more["pages"]["children"]).tables
+    assert_allclose(exact(t["against"]["expected"]["second"]), float(mu.sum()), rtol=1e-7)
+
+
+def test_covariance_kind_theta_and_recorded_assessments_equal_show_json(
+    more: dict[str, Any],
+) -> None:
+    db, page = more["db"], more["pages"]["children_nb"]
+    shown = _json(_run("show", "children_nb", "--db", db, "--json"))
+    assert shown["covariance_kind"] == "cluster" and shown["clusters"] >= 2
+    found = re.search(r'data-covariance="([^"]+)" data-clusters="(\d+)"', page)
+    assert found and found.groups() == ("cluster", str(shown["clusters"]))
+    assert "cluster-robust" in page
+    t = read_tables(page).tables
+    model = t["model"]
+    same_number(shown["family_params"]["theta"], model["family_params.theta"]["value"])
+    same_number(shown["family_param_errors"]["theta"], model["family_param_errors.theta"]["value"])
+    coefs = t["coefficients"]
+    for c in shown["coefficients"]:
+        same_number(c["std_error"], coefs[c["term"]]["std_error"])
+    # the assessment recorded with --record, as the registry lists it
+    rec = t["recorded_assessments"]
+    assert len(rec) == 1
+    row, judged = rec["0"], more["recorded"]
+    assert row["purpose"][1] == "assess" and row["source"][1] == "fair_hold"
+    for field, key in (("n_used", "rows"), ("actual", "actual"), ("expected", "expected"),
+                       ("deviance", "deviance"), ("gini", "gini")):  # fmt: skip
+        same_number(judged[key], row[field])
+    # a version never assessed says so
+    assert "recorded no assessment" in more["pages"]["children_pen"]
+
+
+def test_penalised_fit_shows_its_penalty_path_and_no_standard_errors(
+    more: dict[str, Any],
+) -> None:
+    db, page = more["db"], more["pages"]["children_pen"]
+    shown = _json(_run("show", "children_pen", "--db", db, "--json"))
+    t = read_tables(page).tables
+    pen = t["penalty"]
+    for field in ("penalty", "l1_share", "lambda_max", "nonzero"):
+        same_number(shown["penalty"][field], pen[field]["value"])
+    path = t["penalty_path"]
+    assert len(path) == len(shown["penalty_path"]) == 6
+    for i, step in enumerate(shown["penalty_path"]):
+        row = path[str(i)]
+        same_number(step["penalty"], row["penalty"])
+        assert_allclose(exact(row["log_lambda"]), math.log(step["penalty"]), rtol=1e-15)
+        same_number(step["deviance"], row["deviance"])
+        for term, value in step["coefficients"].items():
+            same_number(value, row[f"coef:{term}"])
+    assert 'data-chart="penalty_path"' in page and 'data-penalised="1"' in page
+    assert "no standard errors" in page
+    # no standard error anywhere: the coefficient table's are all n/a, no whole-term tests
+    for row in t["coefficients"].values():
+        assert row["std_error"][1] in (None, "nan") and row["lower_bound"][1] in (None, "nan")
+    assert "term_tests" not in t and "data-covariance" not in page
+
+
+def test_against_bad_input_is_one_line_and_leaves_no_file(
+    more: dict[str, Any], tmp_path: Path
+) -> None:
+    db, out = more["db"], tmp_path / "r.html"
+    base = ("--db", db, "--out", out)
+    _one_error_line(
+        _run("report", "children", "--against", "children_small", *base), 2, "against applies"
+    )
+    _one_error_line(
+        _run("report", "children", "--on", "fair_hold", "--against", "nope", *base),
+        7,
+        "no model named 'nope'",
+    )
+    _one_error_line(
+        _run("report", "children", "--on", "fair_hold", "--against", "children_small:9", *base),
+        7,
+        "no version 9",
+    )
+    _one_error_line(
+        _run("report", "children", "--on", "fair_hold", "--against", "children_small:x", *base),
+        2,
+        "NAME:K",
+    )
+    # another family and response: the assessment's own refusal
+    _one_error_line(
+        _run("report", "children", "--on", "fair_hold", "--against", "had", *base), 2, "had"
+    )
+    assert not out.exists() and _leftovers(tmp_path) == []
+    with pytest.raises(SpecError, match="against applies"):
+        indb.report_html("children", out, db=db, against="children_small")
+    assert not out.exists()

@@ -41,8 +41,12 @@ def fitted() -> dict[str, Any]:
     con.unregister("frame")
     source = "SELECT rating, religious, age, educ, years, children FROM fair_train"
     result = indb.fit(source, db=con, tol=FIT_TOL, **CHILDREN)
+    # the second model of ``against``: the same response and offset, fewer predictors
+    small = indb.fit(source, db=con, tol=FIT_TOL,
+                     **{**CHILDREN, "predictors": ["rating", "religious"], "splines": {},
+                        "interactions": []})  # fmt: skip
     con.close()
-    return {"result": result, "hold": hold}
+    return {"result": result, "small": small, "hold": hold}
 
 
 def _reference(fitted: dict[str, Any], tmp_path: Path) -> str:
@@ -93,3 +97,41 @@ def test_report_from_each_engine_shows_duckdb_numbers(
                         float(str(other[1])), float(raw), rtol=SAME_RTOL, err_msg=f"{name} {key}"
                     )
     assert f"on the {loader.engine.dialect.name} engine" in page
+
+
+def test_report_against_a_second_model_on_each_engine(
+    loader: Loader, fitted: dict[str, Any], tmp_path: Path
+) -> None:
+    """``against``: the second model scored in the same two scans on every engine; the
+    side-by-side figures and the double-lift bands are DuckDB's to rounding."""
+    tag = uuid.uuid4().hex[:8]
+    table = loader.load(f"fair_hold_{tag}", fitted["hold"])
+    schema, model = f"reg_{tag}", f"children_{tag}"
+    small = fitted["small"]
+    pages = []
+    for engine, where, hold in ((loader.engine, schema, table), (None, None, "hold")):
+        if engine is None:  # DuckDB's page of the same two recorded models
+            db = tmp_path / "ref.duckdb"
+            with duckdb.connect(str(db)) as con:
+                con.register("frame", fitted["hold"])
+                con.execute("CREATE TABLE hold AS SELECT * FROM frame")
+                con.unregister("frame")
+            engine, where = str(db), "indb"
+        for result, name in ((fitted["result"], model), (small, f"{model}_small")):
+            indb.deploy(result, name, db=engine, registry_schema=where, score_source=hold)
+        written = indb.report_html(model, tmp_path / f"p{len(pages)}.html", db=engine,
+                                   registry_schema=where, on=hold,
+                                   against=f"{model}_small")  # fmt: skip
+        assert written.scans == 2 and written.compared_with == f"{model}_small:1"
+        pages.append(read_tables(Path(written.path).read_text(encoding="utf-8")).tables)
+    got, want = pages
+    for name in ("against", "ratio_bands"):
+        assert list(got[name]) == list(want[name]) and want[name], name
+        for key, cells in want[name].items():
+            for field, (_, raw) in cells.items():
+                other = got[name][key][field]
+                if raw is None or field == "figure":  # the figures' names
+                    assert other[1] == raw, (name, key, field)
+                    continue
+                assert_allclose(float(str(other[1])), float(raw), rtol=SAME_RTOL,
+                                err_msg=f"{name} {key} {field}")  # fmt: skip
