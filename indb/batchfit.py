@@ -1,0 +1,299 @@
+"""Fitting several models on the fit's rows and design in shared scans, and the drop-one
+likelihood-ratio tests built on it.
+
+:func:`fit_batch` runs IRLS for a set of models at once: each iteration is one
+:func:`indb.plan.batch_scan.batch_query`, a single read of the table whose sums are grouped
+by model id; the rows of each model are assembled and solved on their own, over the columns
+that model estimates (the others stay at 0). Each model follows the rules of
+:class:`indb.irls.IrlsSolver`: the step is halved while a mean is invalid or the deviance
+rises, a rise too small to see after :data:`~indb.irls.STALL_HALVINGS` halvings keeps the
+last accepted step, and a model has converged when its deviance settles (relative change
+below ``tol``) and its next step is below sqrt(tol) standard errors; it then leaves the
+batch, so later scans carry only the models still moving.
+
+:func:`drop_one` fits, for each model term, the model without it, warm-started from the full
+fit's coefficients with the term's at 0, and adds to each :class:`~indb.results.TermTest`
+the deviance change, its degrees of freedom (the difference in estimated coefficients) and
+the likelihood-ratio test of :func:`indb.comparison.deviance_test`. Marginality: a term
+whose columns all belong to a larger term (a main effect inside an interaction) is not
+tested, as is common practice (dropping it alone would give a model that depends on the
+coding of the interaction); its entry says why.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import time
+import warnings
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import numpy as np
+
+from indb import solver
+from indb.comparison import deviance_test
+from indb.design import TERM_JOIN, Design
+from indb.errors import ConvergenceWarning, SpecError
+from indb.fitrun import FitRun
+from indb.irls import MAX_HALVINGS, STALL_HALVINGS, working_dispersion
+from indb.plan.batch_scan import batch_query
+from indb.plan.context import PlanContext
+from indb.plan.irls_scan import MODEL_ID
+from indb.results import FitResult, TermTest
+from indb.spec import ModelSpec
+
+
+@dataclass
+class BatchModel:
+    """One model of a batch: the columns it estimates and its IRLS state."""
+
+    keep: np.ndarray  # bool per design column
+    beta: np.ndarray  # standardized coefficients of the whole design, 0 outside ``keep``
+    beta_prev: np.ndarray
+    dev_old: float = math.inf
+    halvings: int = 0
+    iterations: int = 0
+    done: bool = False
+    converged: bool = False
+    deviance: float = math.nan
+    rank: int = 0
+    note: str | None = None
+    last: tuple[float, int] | None = None  # the last accepted scan: deviance and rank
+
+
+@dataclass(frozen=True)
+class BatchOutcome:
+    """Where one model of a batch stopped (deviance on the fit's internal scale)."""
+
+    deviance: float
+    rank: int
+    converged: bool
+    iterations: int
+    note: str | None = None
+
+
+def _solve_kept(sums: solver.Sums, keep: np.ndarray) -> tuple[np.ndarray, solver.Solution]:
+    """The Newton update over the ``keep`` columns only (the others held at 0)."""
+    idx = np.flatnonzero(keep)
+    sol = solver.solve(sums.xtwx[idx][:, idx], sums.xtwz[idx])
+    beta = np.zeros(len(keep))
+    beta[idx] = sol.beta
+    return beta, sol
+
+
+class BatchSolver:
+    """IRLS for several models on one context and design, one scan per iteration for all
+    (see the module docstring for the rules each model follows)."""
+
+    def __init__(self, ctx: PlanContext, design: Design, run: FitRun) -> None:
+        self.ctx, self.design, self.run = ctx, design, run
+        self.spec: ModelSpec = ctx.spec
+        self.step_tol = max(math.sqrt(self.spec.tol), 1e-7)
+
+    def fit(self, starts: Mapping[int, tuple[np.ndarray, np.ndarray]]) -> dict[int, BatchOutcome]:
+        """Fit each model ``id -> (keep, start)`` (``start``: standardized coefficients of
+        the whole design; those outside ``keep`` are set to 0)."""
+        models = {
+            mid: BatchModel(keep=keep, beta=np.where(keep, start, 0.0), beta_prev=start)
+            for mid, (keep, start) in starts.items()
+        }
+        for m in models.values():
+            m.beta_prev = m.beta.copy()
+        while True:
+            active = {mid: m for mid, m in models.items() if not m.done}
+            if not active:
+                break
+            t0 = time.perf_counter()
+            got = self.run.query(
+                batch_query(self.ctx, self.design, {mid: m.beta for mid, m in active.items()})
+            )
+            ids = np.asarray(got[MODEL_ID]).astype(np.int64)
+            changes = []
+            for mid, m in active.items():
+                rows = ids == mid
+                cells = {k: np.asarray(v)[rows] for k, v in got.items() if k != MODEL_ID}
+                sums = solver.assemble(self.design, cells)
+                self.run.check_rows(sums)
+                changes.append(self.advance(m, sums))
+            finite = [c for c in changes if math.isfinite(c)]
+            self.run.record(
+                math.nan, max(finite) if finite else math.nan, 0, time.perf_counter() - t0
+            )
+        return {
+            mid: BatchOutcome(m.deviance, m.rank, m.converged, m.iterations, m.note)
+            for mid, m in models.items()
+        }
+
+    def advance(self, m: BatchModel, sums: solver.Sums) -> float:
+        """Take one model's scan: accept it and solve the next step, or halve the step;
+        marks the model done when it has converged or cannot go on. Returns the relative
+        deviance change (NaN for a halving)."""
+        current = sums.deviance
+        valid = sums.bad == 0 and math.isfinite(current)
+        rises = math.isfinite(m.dev_old) and current > m.dev_old * (1 + 1e-9)
+        if not valid and not math.isfinite(m.dev_old):
+            # no accepted scan to halve towards: the warm start itself gives invalid means
+            m.done = True
+            m.note = f"its start gives {sums.bad} rows an invalid mean"
+            return math.nan
+        if not valid or rises:
+            if (
+                valid
+                and m.halvings >= STALL_HALVINGS
+                and solver.relative_change(current, m.dev_old) < self.spec.tol
+                and m.last is not None
+            ):
+                # flat (see IrlsSolver.scan_accepted): keep the last accepted step
+                m.deviance, m.rank = m.last
+                m.done = m.converged = True
+            elif m.halvings >= MAX_HALVINGS:
+                m.done = True
+                m.note = f"step-halving failed after {MAX_HALVINGS} halvings"
+            else:
+                m.beta = 0.5 * (m.beta + m.beta_prev)
+                m.halvings += 1
+            return math.nan
+        m.halvings = 0
+        m.iterations += 1
+        change = (
+            solver.relative_change(current, m.dev_old) if math.isfinite(m.dev_old) else math.inf
+        )
+        if not m.keep.any():
+            m.deviance, m.rank, m.done, m.converged = current, 0, True, True
+            return change
+        beta, sol = _solve_kept(sums, m.keep)
+        rank = int((~sol.aliased).sum())
+        m.last = (current, rank)
+        if change < self.spec.tol:
+            phi = working_dispersion(self.spec.family, sums, sol)
+            idx = np.flatnonzero(m.keep)
+            step = solver.step_in_se(m.beta[idx], sol.beta, sol.inv_info, phi)
+            if step < self.step_tol:
+                m.deviance, m.rank, m.done, m.converged = current, rank, True, True
+                return change
+        if m.iterations >= self.spec.max_iter:
+            m.deviance, m.rank, m.done = current, rank, True
+            m.note = f"did not converge in {self.spec.max_iter} iterations"
+            return change
+        m.dev_old = current
+        m.beta_prev = m.beta
+        m.beta = beta
+        return change
+
+
+def fit_batch(
+    ctx: PlanContext,
+    design: Design,
+    run: FitRun,
+    starts: Mapping[int, tuple[np.ndarray, np.ndarray]],
+) -> dict[int, BatchOutcome]:
+    """Fit the models ``id -> (keep, start)`` in shared scans (:class:`BatchSolver`)."""
+    return BatchSolver(ctx, design, run).fit(starts)
+
+
+# -- drop-one tests -------------------------------------------------------------------------
+
+
+def term_columns(design: Design) -> dict[str, list[int]]:
+    """Every design column of each model term (aliased ones too), keyed as
+    :func:`indb.termtests.term_blocks` keys the terms; the intercept is no term."""
+    out: dict[str, list[int]] = {}
+    for j, c in enumerate(design.columns):
+        if c.source_columns:
+            out.setdefault(TERM_JOIN.join(c.source_columns), []).append(j)
+    return out
+
+
+def containing_term(design: Design, term: str) -> str | None:
+    """A larger term whose columns include all of ``term``'s (None: the term is in none)."""
+    sources = {
+        TERM_JOIN.join(c.source_columns): set(c.source_columns)
+        for c in design.columns
+        if c.source_columns
+    }
+    mine = sources[term]
+    return next((name for name, cols in sources.items() if mine < cols), None)
+
+
+def check_drop_one(spec: ModelSpec, design: Design) -> None:
+    """drop_one needs a model term to drop (refused before the first IRLS scan)."""
+    if spec.drop_one and not term_columns(design):
+        raise SpecError(
+            "drop_one=True tests each model term by fitting the model without it, and this "
+            "model has only an intercept; add predictors or leave out drop_one (CLI: "
+            "--drop-one)"
+        )
+
+
+def drop_one(
+    ctx: PlanContext, design: Design, run: FitRun, beta: np.ndarray, res: FitResult
+) -> FitResult:
+    """``res`` with each term test extended by the drop-one likelihood-ratio test; the
+    reduced models are fitted in shared scans from the full fit's coefficients ``beta``
+    (standardized, internal scale), each term's set to 0."""
+    run.phase = "drop_one"
+    blocks = term_columns(design)
+    tested = {t: idx for t, idx in blocks.items() if containing_term(design, t) is None}
+    starts = {}
+    for mid, idx in enumerate(tested.values()):
+        keep = np.ones(design.p, dtype=bool)
+        keep[idx] = False
+        starts[mid] = (keep, np.asarray(beta, float))
+    outcomes = fit_batch(ctx, design, run, starts)
+    by_term = dict(zip(tested, (outcomes[mid] for mid in range(len(tested))), strict=True))
+    full_rank = sum(1 for c in res.coefficients if not c.aliased)
+    tests = []
+    notes = []
+    for t in res.term_tests:
+        out = by_term.get(t.term)
+        if out is None:
+            inside = containing_term(design, t.term)
+            tests.append(
+                dataclasses.replace(
+                    t,
+                    drop_note=f"not tested: contained in {inside!r} (marginality)",
+                )
+            )
+            continue
+        change = run.scaling.unscale(out.deviance) - res.deviance
+        df = full_rank - out.rank
+        kind, stat, p = deviance_test(
+            change, df, res.dispersion_estimated, res.dispersion, res.residual_df
+        )
+        note = out.note
+        if df <= 0 and note is None:
+            note = "the term's columns are combinations of the other terms' (no df to test)"
+        if out.note is not None:
+            notes.append(f"drop-one model without {t.term!r}: {out.note}")
+        tests.append(
+            dataclasses.replace(
+                t,
+                drop_deviance=change,
+                drop_df=df,
+                lr_test=kind,
+                lr_statistic=stat,
+                lr_p_value=p,
+                drop_note=note,
+            )
+        )
+    for msg in notes:
+        warnings.warn(msg, ConvergenceWarning, stacklevel=3)
+    run.phase = "fit"
+    return dataclasses.replace(
+        res,
+        term_tests=tuple(tests),
+        iteration_log=tuple(run.log),
+        warnings=(*res.warnings, *notes),
+    )
+
+
+def batch_sql(design: Design, ctx: PlanContext, beta: np.ndarray | None):
+    """The drop-one models' first batch scan at ``beta`` (None: zeros), for a dry run."""
+    start = np.zeros(design.p) if beta is None else np.asarray(beta, float)
+    betas = {}
+    for mid, (term, idx) in enumerate(term_columns(design).items()):
+        if containing_term(design, term) is None:
+            betas[mid] = start.copy()
+            betas[mid][idx] = 0.0
+    return batch_query(ctx, design, betas)
