@@ -40,7 +40,7 @@ from indb.irls import MAX_HALVINGS, STALL_HALVINGS, working_dispersion
 from indb.plan.batch_scan import batch_query
 from indb.plan.context import PlanContext
 from indb.plan.irls_scan import MODEL_ID
-from indb.results import FitResult, TermTest
+from indb.results import FitResult
 from indb.spec import ModelSpec
 
 
