@@ -91,15 +91,22 @@ class BatchSolver:
         self.spec: ModelSpec = ctx.spec
         self.step_tol = max(math.sqrt(self.spec.tol), 1e-7)
 
-    def fit(self, starts: Mapping[int, tuple[np.ndarray, np.ndarray]]) -> dict[int, BatchOutcome]:
+    def fit(
+        self,
+        starts: Mapping[int, tuple[np.ndarray, np.ndarray]],
+        fallbacks: Mapping[int, np.ndarray] | None = None,
+    ) -> dict[int, BatchOutcome]:
         """Fit each model ``id -> (keep, start)`` (``start``: standardized coefficients of
-        the whole design; those outside ``keep`` are set to 0)."""
-        models = {
-            mid: BatchModel(keep=keep, beta=np.where(keep, start, 0.0), beta_prev=start)
-            for mid, (keep, start) in starts.items()
-        }
-        for m in models.values():
-            m.beta_prev = m.beta.copy()
+        the whole design; those outside ``keep`` are set to 0). ``fallbacks``: where a
+        model's step is halved towards when its start gives invalid means (default: the
+        start itself, so such a model stops with a note)."""
+        fallbacks = fallbacks or {}
+        models = {}
+        for mid, (keep, start) in starts.items():
+            beta = np.where(keep, start, 0.0)
+            back = fallbacks.get(mid)
+            prev = beta.copy() if back is None else np.where(keep, back, 0.0)
+            models[mid] = BatchModel(keep=keep, beta=beta, beta_prev=prev)
         while True:
             active = {mid: m for mid, m in models.items() if not m.done}
             if not active:
@@ -132,7 +139,7 @@ class BatchSolver:
         current = sums.deviance
         valid = sums.bad == 0 and math.isfinite(current)
         rises = math.isfinite(m.dev_old) and current > m.dev_old * (1 + 1e-9)
-        if not valid and not math.isfinite(m.dev_old):
+        if not valid and not math.isfinite(m.dev_old) and np.array_equal(m.beta, m.beta_prev):
             # no accepted scan to halve towards: the warm start itself gives invalid means
             m.done = True
             m.note = f"its start gives {sums.bad} rows an invalid mean"
@@ -187,9 +194,26 @@ def fit_batch(
     design: Design,
     run: FitRun,
     starts: Mapping[int, tuple[np.ndarray, np.ndarray]],
+    fallbacks: Mapping[int, np.ndarray] | None = None,
 ) -> dict[int, BatchOutcome]:
     """Fit the models ``id -> (keep, start)`` in shared scans (:class:`BatchSolver`)."""
-    return BatchSolver(ctx, design, run).fit(starts)
+    return BatchSolver(ctx, design, run).fit(starts, fallbacks)
+
+
+def reduced_start(xtwx, beta: np.ndarray, keep: np.ndarray) -> np.ndarray:
+    """Where the full fit's quadratic model puts the model without the columns outside
+    ``keep``: those at 0 and the kept ones moved by A_KK^-1 A_KD b_D (A the full fit's
+    last X'WX, no scan). The deviance is nearly quadratic near the full fit, so this
+    starts each reduced model close to its optimum and saves it iterations; columns
+    aliased in A_KK stay where they were."""
+    k, d = np.flatnonzero(keep), np.flatnonzero(~keep)
+    out = np.where(keep, beta, 0.0)
+    if not len(k) or not len(d):
+        return out
+    shift = solver.solve(xtwx[k][:, k], xtwx[k][:, d] @ beta[d])
+    if np.all(np.isfinite(shift.beta)):
+        out[k] += shift.beta
+    return out
 
 
 # -- drop-one tests -------------------------------------------------------------------------
@@ -227,20 +251,29 @@ def check_drop_one(spec: ModelSpec, design: Design) -> None:
 
 
 def drop_one(
-    ctx: PlanContext, design: Design, run: FitRun, beta: np.ndarray, res: FitResult
+    ctx: PlanContext,
+    design: Design,
+    run: FitRun,
+    beta: np.ndarray,
+    xtwx,
+    res: FitResult,
 ) -> FitResult:
     """``res`` with each term test extended by the drop-one likelihood-ratio test; the
     reduced models are fitted in shared scans from the full fit's coefficients ``beta``
-    (standardized, internal scale), each term's set to 0."""
+    (standardized, internal scale) with each term's set to 0 and the others moved as the
+    full fit's X'WX ``xtwx`` predicts (:func:`reduced_start`); a start that gives invalid
+    means halves back towards the full fit's coefficients."""
     run.phase = "drop_one"
     blocks = term_columns(design)
     tested = {t: idx for t, idx in blocks.items() if containing_term(design, t) is None}
-    starts = {}
+    starts, fallbacks = {}, {}
+    beta = np.asarray(beta, float)
     for mid, idx in enumerate(tested.values()):
         keep = np.ones(design.p, dtype=bool)
         keep[idx] = False
-        starts[mid] = (keep, np.asarray(beta, float))
-    outcomes = fit_batch(ctx, design, run, starts)
+        starts[mid] = (keep, reduced_start(xtwx, beta, keep))
+        fallbacks[mid] = beta
+    outcomes = fit_batch(ctx, design, run, starts, fallbacks)
     by_term = dict(zip(tested, (outcomes[mid] for mid in range(len(tested))), strict=True))
     full_rank = sum(1 for c in res.coefficients if not c.aliased)
     tests = []
