@@ -86,8 +86,16 @@ class BatchSolver:
     """IRLS for several models on one context and design, one scan per iteration for all
     (see the module docstring for the rules each model follows)."""
 
-    def __init__(self, ctx: PlanContext, design: Design, run: FitRun) -> None:
+    def __init__(
+        self,
+        ctx: PlanContext,
+        design: Design,
+        run: FitRun,
+        cells: list[tuple[str, ...]] | None = None,
+    ) -> None:
         self.ctx, self.design, self.run = ctx, design, run
+        #: the observed factor cells (from the full fit's scans, then from each batch scan)
+        self.cells = cells
         self.spec: ModelSpec = ctx.spec
         self.step_tol = max(math.sqrt(self.spec.tol), 1e-7)
 
@@ -113,7 +121,9 @@ class BatchSolver:
                 break
             t0 = time.perf_counter()
             got = self.run.query(
-                batch_query(self.ctx, self.design, {mid: m.beta for mid, m in active.items()})
+                batch_query(
+                    self.ctx, self.design, {mid: m.beta for mid, m in active.items()}, self.cells
+                )
             )
             ids = np.asarray(got[MODEL_ID]).astype(np.int64)
             changes = []
@@ -122,6 +132,7 @@ class BatchSolver:
                 cells = {k: np.asarray(v)[rows] for k, v in got.items() if k != MODEL_ID}
                 sums = solver.assemble(self.design, cells)
                 self.run.check_rows(sums)
+                self.cells = sums.cell_keys
                 changes.append(self.advance(m, sums))
             finite = [c for c in changes if math.isfinite(c)]
             self.run.record(
@@ -131,6 +142,28 @@ class BatchSolver:
             mid: BatchOutcome(m.deviance, m.rank, m.converged, m.iterations, m.note)
             for mid, m in models.items()
         }
+
+    def settled(
+        self,
+        m: BatchModel,
+        sums: solver.Sums,
+        sol: solver.Solution,
+        change: float,
+        current: float,
+    ) -> bool:
+        """A model has converged when its deviance is within ``tol`` (relative) of its
+        minimum as the scan's quadratic model predicts it (the next step's Newton
+        decrement; the deviance is all a drop-one model reports, and this bounds its error
+        as IrlsSolver's test bounds the change, one scan earlier), or by IrlsSolver's rule
+        (the change below ``tol`` and the next step below sqrt(tol) standard errors)."""
+        idx = np.flatnonzero(m.keep)
+        gain = _gain(sums, m.keep, m.beta[idx], sol.beta)
+        if math.isfinite(gain) and abs(gain) / (abs(current) + 0.1) < self.spec.tol:
+            return True
+        if change >= self.spec.tol:
+            return False
+        phi = working_dispersion(self.spec.family, sums, sol)
+        return solver.step_in_se(m.beta[idx], sol.beta, sol.inv_info, phi) < self.step_tol
 
     def advance(self, m: BatchModel, sums: solver.Sums) -> float:
         """Take one model's scan: accept it and solve the next step, or halve the step;
@@ -172,13 +205,9 @@ class BatchSolver:
         beta, sol = _solve_kept(sums, m.keep)
         rank = int((~sol.aliased).sum())
         m.last = (current, rank)
-        if change < self.spec.tol:
-            phi = working_dispersion(self.spec.family, sums, sol)
-            idx = np.flatnonzero(m.keep)
-            step = solver.step_in_se(m.beta[idx], sol.beta, sol.inv_info, phi)
-            if step < self.step_tol:
-                m.deviance, m.rank, m.done, m.converged = current, rank, True, True
-                return change
+        if self.settled(m, sums, sol, change, current):
+            m.deviance, m.rank, m.done, m.converged = current, rank, True, True
+            return change
         if m.iterations >= self.spec.max_iter:
             m.deviance, m.rank, m.done = current, rank, True
             m.note = f"did not converge in {self.spec.max_iter} iterations"
@@ -189,15 +218,26 @@ class BatchSolver:
         return change
 
 
+def _gain(sums: solver.Sums, keep: np.ndarray, old: np.ndarray, new: np.ndarray) -> float:
+    """What the Newton step from ``old`` to ``new`` (kept columns) lowers the deviance by,
+    as the scan's quadratic model predicts it: d' X'WX d (the Newton decrement, in
+    deviance units)."""
+    idx = np.flatnonzero(keep)
+    d = np.nan_to_num(new - old)
+    return float(d @ (sums.xtwx[idx][:, idx] @ d))
+
+
 def fit_batch(
     ctx: PlanContext,
     design: Design,
     run: FitRun,
     starts: Mapping[int, tuple[np.ndarray, np.ndarray]],
     fallbacks: Mapping[int, np.ndarray] | None = None,
+    cells: list[tuple[str, ...]] | None = None,
 ) -> dict[int, BatchOutcome]:
-    """Fit the models ``id -> (keep, start)`` in shared scans (:class:`BatchSolver`)."""
-    return BatchSolver(ctx, design, run).fit(starts, fallbacks)
+    """Fit the models ``id -> (keep, start)`` in shared scans (:class:`BatchSolver`);
+    ``cells``: the observed factor cells, when an earlier scan found them."""
+    return BatchSolver(ctx, design, run, cells).fit(starts, fallbacks)
 
 
 def reduced_start(xtwx, beta: np.ndarray, keep: np.ndarray) -> np.ndarray:
@@ -255,14 +295,15 @@ def drop_one(
     design: Design,
     run: FitRun,
     beta: np.ndarray,
-    xtwx,
+    sums: solver.Sums,
     res: FitResult,
 ) -> FitResult:
     """``res`` with each term test extended by the drop-one likelihood-ratio test; the
     reduced models are fitted in shared scans from the full fit's coefficients ``beta``
     (standardized, internal scale) with each term's set to 0 and the others moved as the
-    full fit's X'WX ``xtwx`` predicts (:func:`reduced_start`); a start that gives invalid
-    means halves back towards the full fit's coefficients."""
+    full fit's last scan's X'WX (in ``sums``, with its cells) predicts
+    (:func:`reduced_start`); a start that gives invalid means halves back towards the full
+    fit's coefficients."""
     run.phase = "drop_one"
     blocks = term_columns(design)
     tested = {t: idx for t, idx in blocks.items() if containing_term(design, t) is None}
@@ -271,9 +312,9 @@ def drop_one(
     for mid, idx in enumerate(tested.values()):
         keep = np.ones(design.p, dtype=bool)
         keep[idx] = False
-        starts[mid] = (keep, reduced_start(xtwx, beta, keep))
+        starts[mid] = (keep, reduced_start(sums.xtwx, beta, keep))
         fallbacks[mid] = beta
-    outcomes = fit_batch(ctx, design, run, starts, fallbacks)
+    outcomes = fit_batch(ctx, design, run, starts, fallbacks, sums.cell_keys)
     by_term = dict(zip(tested, (outcomes[mid] for mid in range(len(tested))), strict=True))
     full_rank = sum(1 for c in res.coefficients if not c.aliased)
     tests = []

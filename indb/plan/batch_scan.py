@@ -14,7 +14,7 @@ model id, then by the factor cells. A model whose design leaves a column out sim
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 from sqlglot import exp
@@ -23,7 +23,9 @@ from indb import sqlexpr as S
 from indb.design import Design
 from indb.plan.context import ROWS, PlanContext
 from indb.plan.irls_scan import (
+    MAX_CELL_JOIN,
     MODEL_ID,
+    _cell_table,
     _extra_row_cols,
     _mean_stage,
     _passthrough,
@@ -115,14 +117,59 @@ def _factor_tables(
     return joins, terms
 
 
-def _batch_eta(ctx: PlanContext, design: Design, betas: Mapping[int, np.ndarray]) -> exp.Select:
+def _cells_table(
+    design: Design, betas: Mapping[int, np.ndarray], cells: Sequence[tuple[str, ...]]
+) -> tuple[list[tuple[exp.Values, Expr]], list[Expr]]:
+    """One table keyed by model id and the whole observed cell (one level of every factor)
+    holding each model's summed factor coefficients by value: one join per row and model
+    where :func:`_factor_tables` takes one per factor set."""
+    rows: list[exp.Tuple] = []
+    vals: list[int] = sorted({c.value for c in design.columns if c.factors})
+    for mid in sorted(betas):
+        got_vals, table_rows = _cell_table(design, betas[mid], cells)
+        pos = {v: i for i, v in enumerate(got_vals)}
+        rows += [
+            exp.Tuple(
+                expressions=[
+                    exp.Literal.number(mid),
+                    *(S.text(lv) for lv in lv_t),
+                    *(S.num(co[pos[v]] if v in pos else 0.0) for v in vals),
+                ]
+            )
+            for lv_t, co in table_rows
+        ]
+    if not rows:
+        return [], []
+    name = "k"
+    colnames = [MODEL_ID, *(f"l{i}" for i in range(len(design.factors))), *(f"c{v}" for v in vals)]
+    on = S.and_(
+        S.eq(S.col(MODEL_ID, MODELS), S.col(MODEL_ID, name)),
+        *(S.eq(S.col(f.alias, ROWS), S.col(f"l{i}", name)) for i, f in enumerate(design.factors)),
+    )
+    terms = []
+    for v in vals:
+        coef = exp.Coalesce(this=S.col(f"c{v}", name), expressions=[S.num(0.0)])
+        terms.append(coef if v == 0 else S.mul(coef, S.col(design.values[v].alias, ROWS)))
+    return [(_values_table(name, colnames, rows), on)], terms
+
+
+def _batch_eta(
+    ctx: PlanContext,
+    design: Design,
+    betas: Mapping[int, np.ndarray],
+    cells: Sequence[tuple[str, ...]] | None,
+) -> exp.Select:
     """Stage e of a batch: each kept row once per model, with that model's eta."""
     terms: list[Expr] = [S.col("off", ROWS)]
     for j in _plain_columns(design):
         b = S.col(f"b{j}", MODELS)
         v = design.columns[j].value
         terms.append(b if v == 0 else S.mul(b, S.col(design.values[v].alias, ROWS)))
-    joins, factor_terms = _factor_tables(design, betas)
+    few = cells is not None and 0 < len(cells) * len(betas) <= MAX_CELL_JOIN
+    if design.factors and few:
+        joins, factor_terms = _cells_table(design, betas, cells)
+    else:
+        joins, factor_terms = _factor_tables(design, betas)
     q = S.select(
         [
             *(S.col(c.name, ROWS) for c in _passthrough(design, _extra_row_cols(ctx))),
@@ -137,11 +184,18 @@ def _batch_eta(ctx: PlanContext, design: Design, betas: Mapping[int, np.ndarray]
     return q
 
 
-def batch_query(ctx: PlanContext, design: Design, betas: Mapping[int, np.ndarray]) -> exp.Select:
+def batch_query(
+    ctx: PlanContext,
+    design: Design,
+    betas: Mapping[int, np.ndarray],
+    cells: Sequence[tuple[str, ...]] | None = None,
+) -> exp.Select:
     """One IRLS scan for every model of ``betas`` (model id -> standardized coefficients on
     ``design``): the sums of :func:`indb.plan.irls_scan.gram_query`, grouped by ``mid``
-    (the model id) and then by the factor cells."""
-    eta = _batch_eta(ctx, design, betas)
+    (the model id) and then by the factor cells. With the observed ``cells`` known (from an
+    earlier scan) and few enough, the factor parts of eta come from one table keyed by
+    model id and cell."""
+    eta = _batch_eta(ctx, design, betas, cells)
     bctx = batch_context(ctx)
     work = _work_stage(bctx, design, _mean_stage(bctx, design, eta))
     keys = group_keys(bctx, design)
