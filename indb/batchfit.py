@@ -6,13 +6,15 @@ likelihood-ratio tests built on it.
 by model id; the rows of each model are assembled and solved on their own, over the columns
 that model estimates (the others stay at 0). Each model follows the rules of
 :class:`indb.irls.IrlsSolver`: the step is halved while a mean is invalid or the deviance
-rises, a rise too small to see after :data:`~indb.irls.STALL_HALVINGS` halvings keeps the
-last accepted step, and a model has converged when its deviance settles (relative change
-below ``tol``) and its next step is below sqrt(tol) standard errors; it then leaves the
-batch, so later scans carry only the models still moving.
+rises, and a rise too small to see after :data:`~indb.irls.STALL_HALVINGS` halvings keeps
+the last accepted step. A model has converged when the scan's quadratic model puts its
+deviance within ``tol`` (relative) of the minimum (the next step's Newton decrement), or by
+IrlsSolver's rule (deviance change below ``tol``, next step below sqrt(tol) standard
+errors); it then leaves the batch, so later scans carry only the models still moving.
 
 :func:`drop_one` fits, for each model term, the model without it, warm-started from the full
-fit's coefficients with the term's at 0, and adds to each :class:`~indb.results.TermTest`
+fit's coefficients with the term's at 0 and the others moved by the full fit's quadratic
+model (:func:`reduced_start`), and adds to each :class:`~indb.results.TermTest`
 the deviance change, its degrees of freedom (the difference in estimated coefficients) and
 the likelihood-ratio test of :func:`indb.comparison.deviance_test`. Marginality: a term
 whose columns all belong to a larger term (a main effect inside an interaction) is not
