@@ -33,15 +33,16 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from indb import solver
+from indb import logsums, solver
 from indb.comparison import deviance_test
 from indb.design import TERM_JOIN, Design
 from indb.errors import ConvergenceWarning, SpecError
 from indb.fitrun import FitRun
-from indb.irls import MAX_HALVINGS, STALL_HALVINGS, working_dispersion
+from indb.irls import MAX_HALVINGS, STALL_HALVINGS, IrlsState, working_dispersion
 from indb.plan.batch_scan import batch_query
 from indb.plan.context import PlanContext
 from indb.plan.irls_scan import MODEL_ID
+from indb.plan.log_scan import log_scan_applies, log_scan_query
 from indb.results import FitResult
 from indb.spec import ModelSpec
 
@@ -94,10 +95,14 @@ class BatchSolver:
         design: Design,
         run: FitRun,
         cells: list[tuple[str, ...]] | None = None,
+        log_cache: logsums.LogCache | None = None,
     ) -> None:
         self.ctx, self.design, self.run = ctx, design, run
         #: the observed factor cells (from the full fit's scans, then from each batch scan)
         self.cells = cells
+        #: the log-link scan's constant sums from the full fit: with them the batch scans
+        #: are log-link scans (no join, no per-row deviance) while that scan applies
+        self.log_cache = log_cache if log_scan_applies(ctx, design) else None
         self.spec: ModelSpec = ctx.spec
         self.step_tol = max(math.sqrt(self.spec.tol), 1e-7)
 
@@ -122,20 +127,9 @@ class BatchSolver:
             if not active:
                 break
             t0 = time.perf_counter()
-            got = self.run.query(
-                batch_query(
-                    self.ctx, self.design, {mid: m.beta for mid, m in active.items()}, self.cells
-                )
-            )
-            ids = np.asarray(got[MODEL_ID]).astype(np.int64)
-            changes = []
-            for mid, m in active.items():
-                rows = ids == mid
-                cells = {k: np.asarray(v)[rows] for k, v in got.items() if k != MODEL_ID}
-                sums = solver.assemble(self.design, cells)
-                self.run.check_rows(sums)
-                self.cells = sums.cell_keys
-                changes.append(self.advance(m, sums))
+            betas = {mid: m.beta for mid, m in active.items()}
+            per_model = self.scan(betas)
+            changes = [self.advance(active[mid], sums) for mid, sums in per_model.items()]
             finite = [c for c in changes if math.isfinite(c)]
             self.run.record(
                 math.nan, max(finite) if finite else math.nan, 0, time.perf_counter() - t0
@@ -144,6 +138,51 @@ class BatchSolver:
             mid: BatchOutcome(m.deviance, m.rank, m.converged, m.iterations, m.note)
             for mid, m in models.items()
         }
+
+    def scan(self, betas: Mapping[int, np.ndarray]) -> dict[int, solver.Sums]:
+        """One batch scan: each model's sums at its coefficients (the log-link scan while it
+        applies and keeps its digits, :mod:`indb.logsums`; else the IRLS sums)."""
+        if self.log_cache is not None:
+            got = self.log_scan(betas)
+            if got is not None:
+                return got
+            self.log_cache = None  # a model fits too closely: per-row deviances from here on
+        got = self.run.query(batch_query(self.ctx, self.design, betas, self.cells))
+        out = {}
+        for mid, cells in _split(got, betas).items():
+            sums = solver.assemble(self.design, cells)
+            self.run.check_rows(sums)
+            self.cells = sums.cell_keys
+            out[mid] = sums
+        return out
+
+    def log_scan(self, betas: Mapping[int, np.ndarray]) -> dict[int, solver.Sums] | None:
+        """The batch as a log-link scan; None when a model's split deviance lost more than
+        ``logsums.MAX_DIGITS_LOST`` digits."""
+        cache = self.log_cache
+        power = float(self.spec.family.variance_power)
+        gram, response, _ = logsums.scan_parts(power, cache)
+        tree = log_scan_query(
+            self.ctx,
+            self.design,
+            np.zeros(self.design.p),
+            gram=gram,
+            response=response,
+            constants=False,
+            off_center=cache.off_center,
+            batch=betas,
+        )
+        got = self.run.query(tree)
+        out = {}
+        for mid, cells in _split(got, betas).items():
+            parts = logsums.assemble_log_scan(
+                self.design, cells, betas[mid], power, cache, cache.off_center
+            )
+            if parts.digits_lost > logsums.MAX_DIGITS_LOST:
+                return None
+            self.run.check_rows(parts.sums)
+            out[mid] = parts.sums
+        return out
 
     def settled(
         self,
@@ -220,6 +259,15 @@ class BatchSolver:
         return change
 
 
+def _split(got: dict[str, np.ndarray], betas: Mapping[int, np.ndarray]) -> dict:
+    """A batch scan's rows by model id: model id -> that model's grouped rows."""
+    ids = np.asarray(got[MODEL_ID]).astype(np.int64)
+    return {
+        mid: {k: np.asarray(v)[ids == mid] for k, v in got.items() if k != MODEL_ID}
+        for mid in betas
+    }
+
+
 def _gain(sums: solver.Sums, keep: np.ndarray, old: np.ndarray, new: np.ndarray) -> float:
     """What the Newton step from ``old`` to ``new`` (kept columns) lowers the deviance by,
     as the scan's quadratic model predicts it: d' X'WX d (the Newton decrement, in
@@ -236,10 +284,12 @@ def fit_batch(
     starts: Mapping[int, tuple[np.ndarray, np.ndarray]],
     fallbacks: Mapping[int, np.ndarray] | None = None,
     cells: list[tuple[str, ...]] | None = None,
+    log_cache: logsums.LogCache | None = None,
 ) -> dict[int, BatchOutcome]:
     """Fit the models ``id -> (keep, start)`` in shared scans (:class:`BatchSolver`);
-    ``cells``: the observed factor cells, when an earlier scan found them."""
-    return BatchSolver(ctx, design, run, cells).fit(starts, fallbacks)
+    ``cells``: the observed factor cells, when an earlier scan found them; ``log_cache``:
+    the full fit's log-link scan constants, when that scan applies."""
+    return BatchSolver(ctx, design, run, cells, log_cache).fit(starts, fallbacks)
 
 
 def reduced_start(xtwx, beta: np.ndarray, keep: np.ndarray) -> np.ndarray:
@@ -296,27 +346,26 @@ def drop_one(
     ctx: PlanContext,
     design: Design,
     run: FitRun,
-    beta: np.ndarray,
-    sums: solver.Sums,
+    state: IrlsState,
     res: FitResult,
 ) -> FitResult:
     """``res`` with each term test extended by the drop-one likelihood-ratio test; the
-    reduced models are fitted in shared scans from the full fit's coefficients ``beta``
-    (standardized, internal scale) with each term's set to 0 and the others moved as the
-    full fit's last scan's X'WX (in ``sums``, with its cells) predicts
+    reduced models are fitted in shared scans from the full fit's coefficients (``state``:
+    standardized, internal scale) with each term's set to 0 and the others moved as the
+    full fit's last scan's X'WX predicts
     (:func:`reduced_start`); a start that gives invalid means halves back towards the full
     fit's coefficients."""
     run.phase = "drop_one"
     blocks = term_columns(design)
     tested = {t: idx for t, idx in blocks.items() if containing_term(design, t) is None}
     starts, fallbacks = {}, {}
-    beta = np.asarray(beta, float)
+    beta, sums = np.asarray(state.beta, float), state.sums
     for mid, idx in enumerate(tested.values()):
         keep = np.ones(design.p, dtype=bool)
         keep[idx] = False
         starts[mid] = (keep, reduced_start(sums.xtwx, beta, keep))
         fallbacks[mid] = beta
-    outcomes = fit_batch(ctx, design, run, starts, fallbacks, sums.cell_keys)
+    outcomes = fit_batch(ctx, design, run, starts, fallbacks, sums.cell_keys, state.log_cache)
     by_term = dict(zip(tested, (outcomes[mid] for mid in range(len(tested))), strict=True))
     full_rank = sum(1 for c in res.coefficients if not c.aliased)
     tests = []

@@ -258,5 +258,5 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
     if penalty is not None:
         return pathfit.penalised_result(res, penalty, records, lam_max)
     if spec.drop_one:
-        res = batchfit.drop_one(ctx, design, run, state.beta, state.sums, res)
+        res = batchfit.drop_one(ctx, design, run, state, res)
     return res

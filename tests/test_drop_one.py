@@ -160,6 +160,37 @@ def test_gamma_takes_the_f_test_on_scotland() -> None:
     assert "F = added deviance" in str(res)
 
 
+def test_gamma_log_link_with_weights_on_fair() -> None:
+    """A log link with V(mu) = mu^2: the batch scans are log-link scans (no join; the full
+    fit's constant sums reused), with an F test."""
+    data = fair_rated().assign(spent=lambda d: d["affairs"] + 0.5)
+    con = duckdb_table(data, "fair")
+    res = indb.fit(
+        "fair",
+        "spent",
+        "gamma",
+        "log",
+        db=con,
+        predictors=["rating", "religious", "age", "educ"],
+        weight="wt",
+        drop_one=True,
+        tol=1e-13,
+    )
+    family = sm.families.Gamma(sm.families.links.Log())
+    _check(
+        res,
+        data,
+        family,
+        "spent ~ C(rating) + C(religious) + age + educ",
+        {
+            "rating": "spent ~ C(religious) + age + educ",
+            "educ": "spent ~ C(rating) + C(religious) + age",
+        },
+        fixed=False,
+        var_weights=data["wt"],
+    )
+
+
 def test_gaussian_interaction_keeps_marginality_on_grunfeld() -> None:
     """Main effects inside an interaction are not tested (marginality, common practice); the
     interaction and the other terms are."""

@@ -48,13 +48,13 @@ def batch_context(ctx: PlanContext) -> PlanContext:
     return dataclasses.replace(ctx, row_extras=(*ctx.row_extras, MODEL_ID))
 
 
-def _plain_columns(design: Design) -> list[int]:
+def plain_columns(design: Design) -> list[int]:
     return [j for j, c in enumerate(design.columns) if not c.factors]
 
 
-def _models_table(design: Design, betas: Mapping[int, np.ndarray]) -> exp.Values:
+def models_table(design: Design, betas: Mapping[int, np.ndarray]) -> exp.Values:
     """One row per model: its id and its coefficients of the columns without factors."""
-    plain = _plain_columns(design)
+    plain = plain_columns(design)
     rows = [
         exp.Tuple(
             expressions=[
@@ -161,7 +161,7 @@ def _batch_eta(
 ) -> exp.Select:
     """Stage e of a batch: each kept row once per model, with that model's eta."""
     terms: list[Expr] = [S.col("off", ROWS)]
-    for j in _plain_columns(design):
+    for j in plain_columns(design):
         b = S.col(f"b{j}", MODELS)
         v = design.columns[j].value
         terms.append(b if v == 0 else S.mul(b, S.col(design.values[v].alias, ROWS)))
@@ -178,7 +178,7 @@ def _batch_eta(
         ],
         S.subquery(rows_select(ctx, design), ROWS),
     )
-    q = q.join(_models_table(design, betas), join_type="cross", copy=False)
+    q = q.join(models_table(design, betas), join_type="cross", copy=False)
     for values, on in joins:
         q = q.join(values, on=on, join_type="left", copy=False)
     return q
