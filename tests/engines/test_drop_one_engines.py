@@ -6,7 +6,8 @@ scans, the factor effects from a VALUES table keyed by model id and cell), each 
 categorical and two numeric terms: the CROSS JOIN with the model ids and the GROUP BY model
 id on each engine. DuckDB's figures are checked against statsmodels refits in
 ``tests/test_drop_one.py``; here PostgreSQL and Spark are held to DuckDB's (the same SQL;
-only summation order differs), and every engine to statsmodels' refit without ``rating`` (test-only oracle).
+only summation order differs), and every engine to statsmodels' refit without ``rating``
+(test-only oracle).
 """
 
 from __future__ import annotations
