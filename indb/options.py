@@ -348,15 +348,6 @@ OPTIONS: tuple[Option, ...] = (
         "model",
         metavar="EXPR",
     ),
-    Option(
-        "drop_one",
-        BOOLEAN,
-        False,
-        "Also test each model term by the likelihood ratio: fit the model without it (all "
-        "such models in shared scans, one read per iteration) and report the deviance "
-        "change and its chi-square or F p-value next to the Wald test.",
-        "model",
-    ),
     # -- the elastic net (indb.penalty) --------------------------------------------------------
     Option(
         "penalty",
@@ -409,6 +400,15 @@ OPTIONS: tuple[Option, ...] = (
         "Smallest lambda of --path as a share of lambda_max.",
         "model",
         metavar="R",
+    ),
+    Option(
+        "drop_one",
+        BOOLEAN,
+        False,
+        "Also test each model term by the likelihood ratio: fit the model without it (all "
+        "such models in shared scans, one read per iteration) and report the deviance "
+        "change and its chi-square or F p-value next to the Wald test.",
+        "model",
     ),
     # -- run: Python only --------------------------------------------------------------------
     Option(
