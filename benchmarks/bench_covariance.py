@@ -180,14 +180,16 @@ def _f(v: Any, fmt: str = ".3g") -> str:
     return "" if v is None else format(v, fmt)
 
 
-def write_section(text: str, out: str) -> None:
+def write_section(text: str, out: str, begin: str = BEGIN, end: str = END) -> None:
+    """Put ``text`` between the markers ``begin`` and ``end`` of ``out`` (appended when they
+    are missing); the other sections are kept."""
     old = ""
     if os.path.exists(out):
         with open(out) as fh:
             old = fh.read()
-    if BEGIN in old and END in old:
-        head, rest = old.split(BEGIN, 1)
-        new = head + text.rstrip("\n") + rest.split(END, 1)[1]
+    if begin in old and end in old:
+        head, rest = old.split(begin, 1)
+        new = head + text.rstrip("\n") + rest.split(end, 1)[1]
     else:
         new = old.rstrip("\n") + "\n\n" + text
     with open(out, "w") as fh:
