@@ -98,11 +98,17 @@ def run_one(
     path: str, model: str, kind: str, cluster: str | None, limit: str | None, timeout: float
 ) -> dict:
     job = {"path": path, "model": model, "kind": kind, "cluster": cluster, "memory_limit": limit}
+    return run_child(os.path.abspath(__file__), job, MARK, timeout)
+
+
+def run_child(script: str, job: dict[str, Any], mark: str, timeout: float) -> dict[str, Any]:
+    """Run ``script --child JOB`` in a fresh process (its peak memory is its own) and return
+    the job with the numbers it printed after ``mark``, or with a status saying why not."""
     env = dict(os.environ, PYTHONPATH=ROOT)
     load = os.getloadavg()[0]
     try:
         proc = subprocess.run(
-            [sys.executable, os.path.abspath(__file__), "--child", json.dumps(job)],
+            [sys.executable, script, "--child", json.dumps(job)],
             capture_output=True,
             text=True,
             env=env,
@@ -112,8 +118,8 @@ def run_one(
     except subprocess.TimeoutExpired:
         return {**job, "status": f"timeout (> {timeout:.0f} s)", "load": load}
     for line in proc.stdout.splitlines():
-        if line.startswith(MARK):
-            return {**job, **json.loads(line[len(MARK) :]), "load": load}
+        if line.startswith(mark):
+            return {**job, **json.loads(line[len(mark) :]), "load": load}
     tail = (proc.stderr.strip().splitlines() or ["no output"])[-1]
     return {**job, "status": f"failed (exit {proc.returncode}): {tail[:200]}", "load": load}
 

@@ -24,7 +24,6 @@ import datetime as _dt
 import json
 import os
 import platform
-import subprocess
 import sys
 import time
 from typing import Any
@@ -34,7 +33,7 @@ ROOT = os.path.dirname(HERE)
 sys.path.insert(0, HERE)
 
 import bench_data  # noqa: E402
-from bench_covariance import write_section  # noqa: E402
+from bench_covariance import run_child, write_section  # noqa: E402
 
 MARK = "DROP_ONE_JSON "
 BEGIN = "<!-- bench_drop_one.py: begin -->"
@@ -77,24 +76,7 @@ def child(job: dict[str, Any]) -> dict[str, Any]:
 
 def run_one(path: str, model: str, drop_one: bool, limit: str | None, timeout: float) -> dict:
     job = {"path": path, "model": model, "drop_one": drop_one, "memory_limit": limit}
-    env = dict(os.environ, PYTHONPATH=ROOT)
-    load = os.getloadavg()[0]
-    try:
-        proc = subprocess.run(
-            [sys.executable, os.path.abspath(__file__), "--child", json.dumps(job)],
-            capture_output=True,
-            text=True,
-            env=env,
-            timeout=timeout,
-            check=False,
-        )
-    except subprocess.TimeoutExpired:
-        return {**job, "status": f"timeout (> {timeout:.0f} s)", "load": load}
-    for line in proc.stdout.splitlines():
-        if line.startswith(MARK):
-            return {**job, **json.loads(line[len(MARK) :]), "load": load}
-    tail = (proc.stderr.strip().splitlines() or ["no output"])[-1]
-    return {**job, "status": f"failed (exit {proc.returncode}): {tail[:200]}", "load": load}
+    return run_child(os.path.abspath(__file__), job, MARK, timeout)
 
 
 def compare(plain: dict[str, Any], drop: dict[str, Any]) -> dict[str, Any]:

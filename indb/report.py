@@ -216,16 +216,22 @@ def _whole_terms_block(result: FitResult, width: int) -> str:
         for t in result.term_tests
     ]
     heads = ("term", "df", "Wald chi-square", "p", "GVIF", "GVIF^(1/2df)")
+    lines += _term_table(heads, rows)
+    return "\n".join(lines)
+
+
+def _term_table(heads: Sequence[str], rows: Sequence[Sequence[str]]) -> list[str]:
+    """A table of one row per term: the term left-aligned, the other cells right-aligned."""
     widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(heads)]
-    lines.append(
+    lines = [
         "  "
         + heads[0].ljust(widths[0])
         + "".join(_GAP + h.rjust(w) for h, w in zip(heads[1:], widths[1:], strict=True))
-    )
+    ]
     for r in rows:
         cells = "".join(_GAP + v.rjust(w) for v, w in zip(r[1:], widths[1:], strict=True))
         lines.append("  " + r[0].ljust(widths[0]) + cells)
-    return "\n".join(lines)
+    return lines
 
 
 def _drop_one_block(result: FitResult, width: int) -> str:
@@ -263,16 +269,8 @@ def _drop_one_block(result: FitResult, width: int) -> str:
     keep = [i for i, h in enumerate(heads) if h or any(r[i] for r in rows)]
     heads = tuple(heads[i] for i in keep)
     rows = [tuple(r[i] for i in keep) for r in rows]
-    widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(heads)]
     if rows:
-        lines.append(
-            "  "
-            + heads[0].ljust(widths[0])
-            + "".join(_GAP + h.rjust(w) for h, w in zip(heads[1:], widths[1:], strict=True))
-        )
-        for r in rows:
-            cells = "".join(_GAP + v.rjust(w) for v, w in zip(r[1:], widths[1:], strict=True))
-            lines.append("  " + r[0].ljust(widths[0]) + cells)
+        lines += _term_table(heads, rows)
     for t in ran:
         if t.drop_note:
             lines.extend(_wrap(f"{t.term}: {t.drop_note}", width, indent="  "))
