@@ -98,11 +98,17 @@ def run_one(
     path: str, model: str, kind: str, cluster: str | None, limit: str | None, timeout: float
 ) -> dict:
     job = {"path": path, "model": model, "kind": kind, "cluster": cluster, "memory_limit": limit}
+    return run_child(os.path.abspath(__file__), job, MARK, timeout)
+
+
+def run_child(script: str, job: dict[str, Any], mark: str, timeout: float) -> dict[str, Any]:
+    """Run ``script --child JOB`` in a fresh process (its peak memory is its own) and return
+    the job with the numbers it printed after ``mark``, or with a status saying why not."""
     env = dict(os.environ, PYTHONPATH=ROOT)
     load = os.getloadavg()[0]
     try:
         proc = subprocess.run(
-            [sys.executable, os.path.abspath(__file__), "--child", json.dumps(job)],
+            [sys.executable, script, "--child", json.dumps(job)],
             capture_output=True,
             text=True,
             env=env,
@@ -112,8 +118,8 @@ def run_one(
     except subprocess.TimeoutExpired:
         return {**job, "status": f"timeout (> {timeout:.0f} s)", "load": load}
     for line in proc.stdout.splitlines():
-        if line.startswith(MARK):
-            return {**job, **json.loads(line[len(MARK) :]), "load": load}
+        if line.startswith(mark):
+            return {**job, **json.loads(line[len(mark) :]), "load": load}
     tail = (proc.stderr.strip().splitlines() or ["no output"])[-1]
     return {**job, "status": f"failed (exit {proc.returncode}): {tail[:200]}", "load": load}
 
@@ -180,14 +186,16 @@ def _f(v: Any, fmt: str = ".3g") -> str:
     return "" if v is None else format(v, fmt)
 
 
-def write_section(text: str, out: str) -> None:
+def write_section(text: str, out: str, begin: str = BEGIN, end: str = END) -> None:
+    """Put ``text`` between the markers ``begin`` and ``end`` of ``out`` (appended when they
+    are missing); the other sections are kept."""
     old = ""
     if os.path.exists(out):
         with open(out) as fh:
             old = fh.read()
-    if BEGIN in old and END in old:
-        head, rest = old.split(BEGIN, 1)
-        new = head + text.rstrip("\n") + rest.split(END, 1)[1]
+    if begin in old and end in old:
+        head, rest = old.split(begin, 1)
+        new = head + text.rstrip("\n") + rest.split(end, 1)[1]
     else:
         new = old.rstrip("\n") + "\n\n" + text
     with open(out, "w") as fh:

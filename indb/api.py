@@ -73,6 +73,7 @@ def fit(
     penalty_for: Mapping[str, float] | None = None,
     path: int | None = None,
     path_ratio: float = 1e-3,
+    drop_one: bool = False,
     progress: Any = None,
     name: str | None = None,
     promote: bool | None = None,
@@ -138,6 +139,7 @@ def fit(
         penalty_for=penalty_for,
         path=path,
         path_ratio=path_ratio,
+        drop_one=drop_one,
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)

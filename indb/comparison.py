@@ -134,23 +134,38 @@ def nested_test(small_label: str, small: FitResult, big_label: str, big: FitResu
         "terms_added": added,
         "converged": (small.converged, big.converged),
     }
-    from scipy import stats  # imported here: only this command needs it
-
-    if not big.dispersion_estimated:
-        return NestedTest(
-            **common, test="chi2", statistic=change, p_value=float(stats.chi2.sf(change, df))
-        )
-    phi, resid_df = big.dispersion, big.residual_df
-    f = change / df / phi if phi > 0 else math.nan
-    p = float(stats.f.sf(f, df, resid_df)) if resid_df > 0 and math.isfinite(f) else math.nan
+    test, statistic, p = deviance_test(
+        change, df, big.dispersion_estimated, big.dispersion, big.residual_df
+    )
+    if test == "chi2":
+        return NestedTest(**common, test=test, statistic=statistic, p_value=p)
     return NestedTest(
         **common,
-        test="F",
-        statistic=f,
+        test=test,
+        statistic=statistic,
         p_value=p,
-        residual_df=resid_df,
-        dispersion=phi,
+        residual_df=big.residual_df,
+        dispersion=big.dispersion,
     )
+
+
+def deviance_test(
+    change: float, df: int, dispersion_estimated: bool, dispersion: float, residual_df: float
+) -> tuple[str, float, float]:
+    """The test of a deviance ``change`` between nested models on the same rows, ``df`` the
+    difference in estimated coefficients: ("chi2", change, its chi-square tail) where the
+    family fixes the dispersion; otherwise ("F", change / df / dispersion, its F(df,
+    residual_df) tail), with the larger model's ``dispersion`` and ``residual_df`` (the usual
+    analysis of deviance, common practice). NaN where there are no df to test."""
+    from scipy import stats  # imported here: only these tests need it
+
+    if not dispersion_estimated:
+        p = float(stats.chi2.sf(change, df)) if df > 0 and math.isfinite(change) else math.nan
+        return "chi2", change, p
+    ok = df > 0 and dispersion > 0 and math.isfinite(change)
+    f = change / df / dispersion if ok else math.nan
+    p = float(stats.f.sf(f, df, residual_df)) if residual_df > 0 and math.isfinite(f) else math.nan
+    return "F", f, p
 
 
 #: fingerprint entries that identify the rows a fit used

@@ -16,7 +16,7 @@ import warnings
 
 import numpy as np
 
-from indb import covariance, folding, magnitudes, pathfit, prefit, solver
+from indb import batchfit, covariance, folding, magnitudes, pathfit, prefit, solver
 from indb.design import build_design, plan_values
 from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
@@ -71,6 +71,7 @@ def _prepare(spec: ModelSpec, engine: Engine, run: FitRun):
         raise SpecError("the model has no coefficients to estimate")
     solver.check_size(design)
     covariance.check_size(spec, design)
+    batchfit.check_drop_one(spec, design)
     run.phase = "fit"
     return ctx, design, summary, n_total, n_kept, by_col
 
@@ -91,6 +92,14 @@ def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
     sent.append(("IRLS scan (one per iteration; coefficients change)", engine.dialect.render(tree)))
     # at the final coefficients in a fit; any coefficients show the SQL
     sent += covariance.dry_run_sql(ctx, design, start if start is not None else np.zeros(design.p))
+    if spec.drop_one:
+        sent.append(
+            (
+                "drop-one scan (one per iteration for all models without a term; "
+                "coefficients change)",
+                engine.dialect.render(batchfit.batch_sql(design, ctx, start)),
+            )
+        )
     return sent
 
 
@@ -246,6 +255,8 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
             converged=res.converged and theta_est.converged,
             family_param_errors={"theta": theta_est.std_error},
         )
-    if penalty is None:
-        return res
-    return pathfit.penalised_result(res, penalty, records, lam_max)
+    if penalty is not None:
+        return pathfit.penalised_result(res, penalty, records, lam_max)
+    if spec.drop_one:
+        res = batchfit.drop_one(ctx, design, run, state, res)
+    return res

@@ -44,6 +44,9 @@ class IrlsState:
     iterations: int
     #: stopped early: step-halving could not lower the deviance measurably (see irls)
     stalled: bool = False
+    #: the log-link scan's constant sums (:class:`indb.logsums.LogCache`) while that scan
+    #: applies, for later scans at other coefficients (the drop-one batch); else None
+    log_cache: logsums.LogCache | None = None
 
 
 def _fallback_beta(ctx: PlanContext, design: Design, ybar: float) -> np.ndarray:
@@ -193,6 +196,7 @@ class IrlsSolver:
             converged=self.converged,
             iterations=self.iterations,
             stalled=self.stalled and not self.converged,
+            log_cache=self.log_cache if self.log_scan else None,
         ), null_dev
 
     def start(self, start: np.ndarray | None) -> None:

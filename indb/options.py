@@ -401,6 +401,15 @@ OPTIONS: tuple[Option, ...] = (
         "model",
         metavar="R",
     ),
+    Option(
+        "drop_one",
+        BOOLEAN,
+        False,
+        "Also test each model term by the likelihood ratio: fit the model without it (all "
+        "such models in shared scans, one read per iteration) and report the deviance "
+        "change and its chi-square or F p-value next to the Wald test.",
+        "model",
+    ),
     # -- run: Python only --------------------------------------------------------------------
     Option(
         "progress",

@@ -63,6 +63,7 @@ def render_report(result: FitResult, *, width: int = 100) -> str:
         _penalty_block(result, width),
         _terms_block(result, width),
         _whole_terms_block(result, width),
+        _drop_one_block(result, width),
         _notes_block(result, width),
         _caution_block(width),
     ]
@@ -215,15 +216,64 @@ def _whole_terms_block(result: FitResult, width: int) -> str:
         for t in result.term_tests
     ]
     heads = ("term", "df", "Wald chi-square", "p", "GVIF", "GVIF^(1/2df)")
+    lines += _term_table(heads, rows)
+    return "\n".join(lines)
+
+
+def _term_table(heads: Sequence[str], rows: Sequence[Sequence[str]]) -> list[str]:
+    """A table of one row per term: the term left-aligned, the other cells right-aligned."""
     widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(heads)]
-    lines.append(
+    lines = [
         "  "
         + heads[0].ljust(widths[0])
         + "".join(_GAP + h.rjust(w) for h, w in zip(heads[1:], widths[1:], strict=True))
-    )
+    ]
     for r in rows:
         cells = "".join(_GAP + v.rjust(w) for v, w in zip(r[1:], widths[1:], strict=True))
         lines.append("  " + r[0].ljust(widths[0]) + cells)
+    return lines
+
+
+def _drop_one_block(result: FitResult, width: int) -> str:
+    """The drop-one likelihood-ratio tests (with ``drop_one``): per term, what leaving it
+    out costs in deviance, on how many df, and the test; terms not tested say why."""
+    ran = [t for t in result.term_tests if t.drop_df is not None or t.drop_note is not None]
+    if not ran:
+        return ""
+    kind = "F" if result.dispersion_estimated else "chi-square"
+    title = "LEAVING EACH TERM OUT"
+    legend = (
+        "Each term's model refitted without it on the same rows: the deviance it adds and "
+        "the coefficients it removes (df); "
+        + (
+            "F = added deviance / df / the full model's dispersion, on (df, residual df)."
+            if result.dispersion_estimated
+            else "the added deviance is referred to chi-square on df."
+        )
+    )
+    lines = [title, "-" * len(title), *_wrap(legend, width, indent="  "), ""]
+    tested = [t for t in ran if t.drop_df is not None]
+    rows = [
+        (
+            t.term,
+            str(t.drop_df),
+            _fmt_value(t.drop_deviance),
+            _fmt_value(t.lr_statistic) if result.dispersion_estimated else "",
+            _chi2_p(t.lr_p_value, t.drop_deviance, t.drop_df)
+            if not result.dispersion_estimated and t.drop_df
+            else _fmt_p(t.lr_p_value),
+        )
+        for t in tested
+    ]
+    heads = ("term", "df", "added deviance", "F" if kind == "F" else "", "p")
+    keep = [i for i, h in enumerate(heads) if h or any(r[i] for r in rows)]
+    heads = tuple(heads[i] for i in keep)
+    rows = [tuple(r[i] for i in keep) for r in rows]
+    if rows:
+        lines += _term_table(heads, rows)
+    for t in ran:
+        if t.drop_note:
+            lines.extend(_wrap(f"{t.term}: {t.drop_note}", width, indent="  "))
     return "\n".join(lines)
 
 

@@ -60,6 +60,54 @@ class TermTest:
     df: int
     wald_chi2: float
     p_value: float
+    #: with drop_one (indb.batchfit): the deviance of the model without the term less the
+    #: full model's (same rows), the difference in estimated coefficients, the test ("chi2"
+    #: or "F", :func:`indb.comparison.deviance_test`), its statistic and p-value, and why
+    #: a term was not tested or its test is doubtful; None without drop_one
+    drop_deviance: float | None = None
+    drop_df: int | None = None
+    lr_test: str | None = None
+    lr_statistic: float | None = None
+    lr_p_value: float | None = None
+    drop_note: str | None = None
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready; the drop-one keys only when the fit ran the drop-one tests."""
+        out = _clean(asdict(self))
+        if self.drop_df is None and self.drop_note is None:
+            for key in _DROP_KEYS:
+                del out[key]
+        return out
+
+    @staticmethod
+    def from_dict(t: dict[str, Any]) -> TermTest:
+        """From :meth:`to_dict` (results stored before drop-one tests load without them)."""
+
+        def f(v: Any) -> float:
+            return math.nan if v is None else float(v)
+
+        ran = t.get("drop_df") is not None or t.get("drop_note") is not None
+        return TermTest(
+            t["term"],
+            int(t["df"]),
+            f(t["wald_chi2"]),
+            f(t["p_value"]),
+            **(
+                {
+                    "drop_deviance": f(t.get("drop_deviance")),
+                    "drop_df": None if t.get("drop_df") is None else int(t["drop_df"]),
+                    "lr_test": t.get("lr_test"),
+                    "lr_statistic": f(t.get("lr_statistic")),
+                    "lr_p_value": f(t.get("lr_p_value")),
+                    "drop_note": t.get("drop_note"),
+                }
+                if ran
+                else {}
+            ),
+        )
+
+
+_DROP_KEYS = ("drop_deviance", "drop_df", "lr_test", "lr_statistic", "lr_p_value", "drop_note")
 
 
 @dataclass(frozen=True)
@@ -302,7 +350,7 @@ class FitResult:
             "spec": self.spec,
             "design": self.design,
             "fingerprint": self.fingerprint,
-            "term_tests": [_clean(asdict(t)) for t in self.term_tests],
+            "term_tests": [t.to_dict() for t in self.term_tests],
             "collinearity": [_clean(asdict(t)) for t in self.collinearity],
         }
         if storage and self.inverse_entries is not None:
@@ -402,10 +450,7 @@ class FitResult:
             spec=d.get("spec", {}),
             design=d.get("design", {}),
             fingerprint=d.get("fingerprint", {}),
-            term_tests=tuple(
-                TermTest(t["term"], int(t["df"]), f(t["wald_chi2"]), f(t["p_value"]))
-                for t in d.get("term_tests", [])
-            ),
+            term_tests=tuple(TermTest.from_dict(t) for t in d.get("term_tests", [])),
             collinearity=tuple(
                 Collinearity(t["term"], int(t["df"]), f(t["gvif"]), f(t["gvif_scaled"]))
                 for t in d.get("collinearity", [])

@@ -104,6 +104,8 @@ class ModelSpec:
     penalty_for: tuple[tuple[str, float], ...] = ()
     path: int | None = None
     path_ratio: float = 1e-3
+    #: refit without each model term, in shared scans (indb.batchfit)
+    drop_one: bool = False
 
     @property
     def penalised(self) -> bool:
@@ -147,6 +149,7 @@ class ModelSpec:
         penalty_for: Mapping[str, float] | None = None,
         path: int | None = None,
         path_ratio: float = 1e-3,
+        drop_one: bool = False,
     ) -> ModelSpec:
         """Validate user options and resolve family/link names into a spec."""
         if not isinstance(response, str) or not response:
@@ -213,6 +216,12 @@ class ModelSpec:
                 "none (docs/penalised-fits.md): leave covariance at 'model' (CLI: drop "
                 "--covariance), or fit without penalty/path"
             )
+        if drop_one and (penalty is not None or path is not None):
+            raise SpecError(
+                "drop_one=True compares deviances of maximum-likelihood fits, and a penalised "
+                "fit has no likelihood-ratio tests: leave out drop_one (CLI: --drop-one), or "
+                "fit without penalty/path"
+            )
         st = tuple((str(k), float(v)) for k, v in (start or {}).items())
         if any(not math.isfinite(v) for _, v in st):
             raise SpecError("start values must be finite numbers")
@@ -250,6 +259,7 @@ class ModelSpec:
             penalty_for=tuple((str(k), float(v)) for k, v in (penalty_for or {}).items()),
             path=int(path) if path is not None else None,
             path_ratio=float(path_ratio),
+            drop_one=bool(drop_one),
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -284,6 +294,8 @@ class ModelSpec:
                 else {}
             ),
             **self._penalty_dict(),
+            # only when asked for (registry.spec_hash, as covariance)
+            **({"drop_one": True} if self.drop_one else {}),
         }
 
     def _penalty_dict(self) -> dict[str, Any]:

@@ -207,7 +207,21 @@ def _extra_row_cols(ctx: PlanContext) -> list[str]:
     out = ["nt"] if ctx.raw_trials() is not None else []
     out += ["dconst", "q"] if ctx.folded else []
     out += ["clu"] if "clu" in ctx.row_extras else []
+    out += [MODEL_ID] if MODEL_ID in ctx.row_extras else []
     return out + (["r2a", "r2y", "r2q"] if "r2" in ctx.row_extras else [])
+
+
+#: The column naming the model a row of a model batch belongs to (:mod:`indb.plan.batch_scan`):
+#: with it among a context's ``row_extras`` every stage passes it on and the sums are grouped
+#: by it before the cells.
+MODEL_ID = "mid"
+
+
+def group_keys(ctx: PlanContext, design: Design) -> list[Expr]:
+    """What the IRLS sums are grouped by: the model of a batch (when there is one), then the
+    factor cells."""
+    keys = [S.col(MODEL_ID)] if MODEL_ID in ctx.row_extras else []
+    return keys + [S.col(f.alias) for f in design.factors]
 
 
 def _folded_dev(ctx: PlanContext, dev: Expr) -> Expr:
@@ -364,7 +378,7 @@ def _work_stage(
     z = S.add(S.sub(S.col("eta"), S.col("off")), step)
     resid = S.sub(y, mu)
     cols = [
-        *(S.col(f.alias) for f in design.factors),
+        *group_keys(ctx, design),
         *(S.col(v.alias) for v in design.values[1:]),
         S.alias(S.mul(fw, w), "fww"),
         S.alias(S.mul(fw, w, z), "fwwz"),
@@ -502,6 +516,19 @@ def gram_query(
         keep,
         slopes="observed" in covariance,
     )
+    return S.select(
+        [*group_keys(ctx, design), *scan_sums(design, [n for n, _ in extra], matrices)],
+        S.subquery(work, "w"),
+        group_by=group_keys(ctx, design),
+    )
+
+
+def scan_sums(
+    design: Design, extra: Sequence[str] = (), matrices: Sequence[tuple[str, str]] = ()
+) -> list[Expr]:
+    """The aggregates of an IRLS scan over its work stage (:func:`gram_query`): the X'WX
+    and X'Wz products, deviance, Pearson, bad rows, row counts, the sums of the ``extra``
+    per-row terms (``fname`` summed as ``name``) and of the covariance ``matrices``."""
     vals = [None, *(S.col(v.alias) for v in design.values[1:])]
     aggs: list[Expr] = value_products(design, "fww", "s")
     m = len(design.values)
@@ -515,12 +542,11 @@ def gram_query(
         S.alias(S.count_star(), "n"),
         S.alias(S.psum(S.col("fw")), "nw"),
     ]
-    for name, _ in extra:
+    for name in extra:
         aggs.append(S.alias(S.psum(S.col(name)), name.replace("f", "", 1)))
     for prefix, column in matrices:
         aggs += value_products(design, column, prefix)
-    groups = [S.col(f.alias) for f in design.factors]
-    return S.select([*groups, *aggs], S.subquery(work, "w"), group_by=groups)
+    return aggs
 
 
 EDGE = 10 * 2.220446049250313e-16  # fitted probabilities numerically 0 or 1 (common practice)

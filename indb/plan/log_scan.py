@@ -3,13 +3,16 @@ multiplied in after the scan (:mod:`indb.logsums`) instead of joined per row."""
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 import numpy as np
 from sqlglot import exp
 
 from indb import sqlexpr as S
 from indb.design import Design
+from indb.plan.batch_scan import MODELS, models_table, plain_columns
 from indb.plan.context import ROWS, PlanContext
-from indb.plan.irls_scan import rows_select
+from indb.plan.irls_scan import MODEL_ID, rows_select
 from indb.sqlexpr import Expr
 
 # -- the log-link scan: factor effects multiplied in after the scan ---------------------------
@@ -42,8 +45,15 @@ def log_scan_query(
     response: bool,
     constants: bool,
     off_center: float = 0.0,
+    batch: Mapping[int, np.ndarray] | None = None,
 ) -> exp.Select:
     """The IRLS scan of a log-link, V(mu) = mu^p model without a join to factor effects.
+
+    With ``batch`` (model id -> coefficients; ``beta`` is then not read) the scan answers
+    for every model at once, as :func:`indb.plan.batch_scan.batch_query` does: the rows
+    cross-joined with the table of model ids and their coefficients of the columns without
+    factors, the sums grouped by model id first (the factor effects, multiplied in after
+    the scan, are each model's own).
 
     With g_c the cell's summed factor coefficients and t = off + x'b the rest of eta, the
     mean is mu = e^(g_c) m with m = e^t, so every weight is a power of m times a power of
@@ -68,18 +78,34 @@ def log_scan_query(
     """
     fam = ctx.spec.family
     p = float(fam.variance_power)
-    terms: list[Expr] = [S.col("off")]
-    for j, c in enumerate(design.columns):
-        if c.factors or float(beta[j]) == 0.0:
-            continue
-        b = S.num(float(beta[j]))
-        terms.append(b if c.value == 0 else S.mul(b, S.col(design.values[c.value].alias)))
     keep = [S.col(f.alias) for f in design.factors] + [S.col(v.alias) for v in design.values[1:]]
     base = [S.col(n) for n in ("y", "pw", "fw", "off")]
     t = S.col("t")
-    staged = S.select(
-        [*keep, *base, S.alias(S.add(*terms), "t")], S.subquery(rows_select(ctx, design), ROWS)
-    )
+    if batch is None:
+        terms: list[Expr] = [S.col("off")]
+        for j, c in enumerate(design.columns):
+            if c.factors or float(beta[j]) == 0.0:
+                continue
+            b = S.num(float(beta[j]))
+            terms.append(b if c.value == 0 else S.mul(b, S.col(design.values[c.value].alias)))
+        staged = S.select(
+            [*keep, *base, S.alias(S.add(*terms), "t")], S.subquery(rows_select(ctx, design), ROWS)
+        )
+    else:
+        terms = [S.col("off", ROWS)]
+        for j in plain_columns(design):
+            b = S.col(f"b{j}", MODELS)
+            v = design.columns[j].value
+            terms.append(b if v == 0 else S.mul(b, S.col(design.values[v].alias, ROWS)))
+        staged = S.select(
+            [
+                *(S.col(k.name, ROWS) for k in [*keep, *base]),
+                S.col(MODEL_ID, MODELS),
+                S.alias(S.add(*terms), "t"),
+            ],
+            S.subquery(rows_select(ctx, design), ROWS),
+        ).join(models_table(design, batch), join_type="cross", copy=False)
+        keep = [S.col(MODEL_ID), *keep]
     # every exponent below is k t with |k| <= kmax: t within +-700/kmax keeps e^(k t) a
     # finite, non-zero double on every engine (PostgreSQL raises on over- and underflow)
     tmax = log_scan_t_max(p)
@@ -149,7 +175,8 @@ def log_scan_query(
     if constants:
         for name, src in (("h", "hh"), ("cy", "cy"), ("cw", "cw"), *((c, c) for c in offset_sums)):
             aggs.append(S.alias(S.psum(S.col(src)), name))
-    groups = [S.col(f.alias) for f in design.factors]
+    groups = [S.col(MODEL_ID)] if batch is not None else []
+    groups += [S.col(f.alias) for f in design.factors]
     return S.select(
         [*(g.copy() for g in groups), *aggs], S.subquery(weighted, "lw"), group_by=groups
     )
