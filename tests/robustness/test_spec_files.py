@@ -279,7 +279,6 @@ KEY_CASES = [
     ("model", "penalty_for", '"age=0"', "a table of term = number, e.g. { age = 0.5 }"),
     ("model", "path", "2.5", WHOLE),
     ("model", "path_ratio", '"small"', NUMBER),
-    ("model", "covariance", "1", TEXT),
     ("model", "cluster", "[1]", TEXT),
     ("model", "drop_one", '"yes"', BOOLEAN),
     ("deploy", "name", "7", TEXT),
