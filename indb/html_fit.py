@@ -103,6 +103,27 @@ def term_tests_block(r: FitResult) -> str:
         Column("gvif", "GVIF"),
         Column("gvif_scaled", "GVIF^(1/(2 df))"),
     ]
+    if any(t.drop_df is not None or t.drop_note is not None for t in r.term_tests):
+        head += note(
+            "Leaving each term out (drop_one): the deviance of the model refitted without "
+            "the term less the full model's, on the same rows, and its likelihood-ratio "
+            "test (chi-square, or F with the full model's dispersion)."
+        )
+        for (_, cells), t in zip(rows, r.term_tests, strict=True):
+            cells.update(
+                drop_deviance=t.drop_deviance,
+                drop_df=t.drop_df,
+                lr_test=t.lr_test or "",
+                lr_p_value=t.lr_p_value,
+                drop_note=t.drop_note or "",
+            )
+        cols += [
+            Column("drop_deviance", "deviance without it"),
+            Column("drop_df", "df dropped", "count"),
+            Column("lr_test", "test", "text"),
+            Column("lr_p_value", "p (leaving out)", "p"),
+            Column("drop_note", "note", "text"),
+        ]
     return head + table("term_tests", cols, rows)
 
 

@@ -588,6 +588,7 @@ def more(built: dict[str, Any]) -> dict[str, Any]:
     with pytest.warns(indb.ConvergenceWarning, match="theta runs off"):
         indb.fit(SOURCE, db=db, name="children_nb", tol=FIT_TOL, covariance="cluster",
                  cluster="educ", **{**SMALL, "family": "negative_binomial"})  # fmt: skip
+    indb.fit(SOURCE, db=db, name="children_drop", tol=FIT_TOL, drop_one=True, **SMALL)
     recorded = _json(_run("assess", "children_nb", "--db", db, "--on", "fair_hold",
                           "--record", "--json"))  # fmt: skip
     pages = {}
@@ -595,6 +596,7 @@ def more(built: dict[str, Any]) -> dict[str, Any]:
         ("children", ["--on", "fair_hold", "--against", "children_small:1"]),
         ("children_pen", []),
         ("children_nb", []),
+        ("children_drop", []),
     ):
         path = folder / f"more-{name}.html"
         result = _run("report", name, "--db", db, "--out", path, *extra, "--json")
@@ -693,6 +695,22 @@ def test_covariance_kind_theta_and_recorded_assessments_equal_show_json(
         same_number(judged[key], row[field])
     # a version never assessed says so
     assert "recorded no assessment" in more["pages"]["children_pen"]
+
+
+def test_drop_one_columns_equal_show_json(more: dict[str, Any]) -> None:
+    # the leaving-out columns of the whole-terms table are the stored drop-one tests (their
+    # values are checked against statsmodels refits in tests/test_drop_one.py)
+    shown = _json(_run("show", "children_drop", "--db", more["db"], "--json"))
+    rows = read_tables(more["pages"]["children_drop"]).tables["term_tests"]
+    tested = [tt for tt in shown["term_tests"] if tt.get("lr_p_value") is not None]
+    assert tested
+    for tt in shown["term_tests"]:
+        row = rows[tt["term"]]
+        if tt.get("drop_deviance") is not None:
+            same_number(tt["drop_deviance"], row["drop_deviance"])
+        if tt.get("lr_p_value") is not None:
+            assert exact(row["lr_p_value"]) == tt["lr_p_value"]
+            assert exact(row["drop_df"]) == tt["drop_df"] and row["lr_test"][1] == tt["lr_test"]
 
 
 def test_penalised_fit_shows_its_penalty_path_and_no_standard_errors(
