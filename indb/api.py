@@ -73,6 +73,9 @@ def fit(
     penalty_for: Mapping[str, float] | None = None,
     path: int | None = None,
     path_ratio: float = 1e-3,
+    folds: int | None = None,
+    fold_by: str | None = None,
+    cv_rule: str = "one_se",
     progress: Any = None,
     name: str | None = None,
     promote: bool | None = None,
@@ -138,6 +141,9 @@ def fit(
         penalty_for=penalty_for,
         path=path,
         path_ratio=path_ratio,
+        folds=folds,
+        fold_by=fold_by,
+        cv_rule=cv_rule,
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)
