@@ -139,7 +139,10 @@ def fold_fits(
         for f in range(k):
             run.phase = "cv"
             train = _restricted(ctx, training_rows(ctx, f))
-            run.expected = (int(counts.n.sum() - counts.n[f]), float(counts.nw.sum() - counts.nw[f]))
+            run.expected = (
+                int(counts.n.sum() - counts.n[f]),
+                float(counts.nw.sum() - counts.nw[f]),
+            )
             share = (counts.w.sum() - counts.w[f]) / counts.w.sum()
             pen = dataclasses.replace(penalty, total=penalty.total * share)
             first, _ = irls(

@@ -323,8 +323,10 @@ class FitResult:
             ]
         if self.cv:
             out["cv"] = [
-                {**_clean({k: v for k, v in r.items() if k != "per_fold"}),
-                 "per_fold": [_num(v) for v in r["per_fold"]]}
+                {
+                    **_clean({k: v for k, v in r.items() if k != "per_fold"}),
+                    "per_fold": [_num(v) for v in r["per_fold"]],
+                }
                 for r in self.cv
             ]
             out["chosen_penalty"] = _num(self.chosen_penalty)
@@ -428,9 +430,7 @@ class FitResult:
             ),
             penalty={k: (math.nan if v is None else v) for k, v in d.get("penalty", {}).items()},
             penalty_path=tuple(d.get("penalty_path", [])),
-            cv=tuple(
-                {**r, "per_fold": [f(v) for v in r["per_fold"]]} for r in d.get("cv", [])
-            ),
+            cv=tuple({**r, "per_fold": [f(v) for v in r["per_fold"]]} for r in d.get("cv", [])),
             chosen_penalty=f(d["chosen_penalty"]) if d.get("cv") else None,
             chosen_rule=d.get("chosen_rule"),
         )

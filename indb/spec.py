@@ -379,8 +379,7 @@ def check_folds(
     if path is None:
         hint = f" instead of penalty={penalty!r}" if penalty is not None else ""
         raise SpecError(
-            f"folds={folds} cross-validates the lambdas of a path: give path=N (CLI --path N)"
-            f"{hint}"
+            f"folds={folds} cross-validates the lambdas of a path: give path=N (CLI --path N){hint}"
         )
     if compress == "always":
         raise SpecError(
