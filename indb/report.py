@@ -273,7 +273,7 @@ def _cv_lines(result: FitResult, width: int) -> list[str]:
         mark = "  <- chosen" if r["penalty"] == result.chosen_penalty else ""
         lines.append(
             f"    lambda {r['penalty']:<12.6g} mean {r['mean_deviance']:<14.8g} "
-            f"SE {r['se']:<12.6g}{mark}"
+            f"SE {r['se']:<12.6g}{mark}".rstrip()
         )
     return lines
 
