@@ -30,7 +30,7 @@ import pandas as pd
 import pytest
 from numpy.testing import assert_allclose
 from sklearn.linear_model import ElasticNet, PoissonRegressor
-from test_penalty import _cli, _con, _diabetes, kkt_residual
+from test_penalty import _claims_frame, _cli, _con, _design, _diabetes, kkt_residual
 
 import indb
 from indb.errors import SpecError
@@ -138,6 +138,42 @@ def test_poisson_ridge_folds_match_scikit_learn_and_indb_refits() -> None:
             assert_allclose(row["per_fold"][1], want, rtol=1e-8)
     best, one_se = _chosen(got.to_dict()["cv"])
     assert got.chosen_penalty == one_se and got.penalty["penalty"] == one_se
+
+
+def test_poisson_elastic_net_with_offset_weights_levels_matches_indb_refits() -> None:
+    # an offset, frequency weights and a categorical column with a quoted level; the oracle
+    # is indb's own fit on the fold's training rows (its elastic net is checked against the
+    # KKT conditions in tests/test_penalty.py), scored with numpy on the fold's rows
+    frame = _claims_frame()
+    frame["id"] = np.arange(len(frame)) * 7 - 900
+    con = _con(frame)
+    kw = {
+        "offset": "ln(expo)",
+        "frequency_weight": "fw",
+        "predictors": ["x0", "x2", "x3", "x8", "region"],
+        "l1_share": 0.7,
+        **TIGHT,
+    }
+    got = indb.fit("d", "claims", "poisson", db=con, path=5, folds=4, fold_by="id", **kw)
+    folds = np.array(
+        [r[0] for r in con.execute("SELECT ((id % 4) + 4) % 4 FROM d ORDER BY id").fetchall()]
+    )
+    y, fw = frame["claims"].to_numpy(float), frame["fw"].to_numpy()
+    off = np.log(frame["expo"].to_numpy())
+    for j in (1, 3):
+        lam = got.cv[j]["penalty"]
+        for k in (0, 2):
+            mine = indb.fit(
+                f"SELECT * FROM d WHERE ((id % 4) + 4) % 4 <> {k}", "claims", "poisson",
+                db=con, penalty=lam, **kw,
+            )  # fmt: skip
+            held = folds == k
+            mu = np.exp(_design(mine, frame)[held] @ mine.estimates + off[held])
+            yh = y[held]
+            unit = 2 * (np.where(yh > 0, yh * np.log(np.where(yh > 0, yh, 1) / mu), 0) - (yh - mu))
+            want = np.sum(fw[held] * unit) / np.sum(fw[held])
+            assert_allclose(got.cv[j]["per_fold"][k], want, rtol=1e-7)
+    assert got.chosen_penalty == _chosen(got.to_dict()["cv"])[1]
 
 
 def test_cv_table_reads_back_from_the_registry_and_json(tmp_path) -> None:
