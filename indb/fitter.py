@@ -33,6 +33,7 @@ from indb.inference import result
 from indb.irls import irls
 from indb.nullmodel import NullTrack, intercept_only, null_deviance, null_start
 from indb.plan.context import PlanContext
+from indb.plan.cv_scan import fold_counts_query
 from indb.plan.irls_scan import gram_query
 from indb.plan.profile import head_query, profile_items
 from indb.results import FitResult
@@ -91,6 +92,10 @@ def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
     sent.append(("IRLS scan (one per iteration; coefficients change)", engine.dialect.render(tree)))
     # at the final coefficients in a fit; any coefficients show the SQL
     sent += covariance.dry_run_sql(ctx, design, start if start is not None else np.zeros(design.p))
+    if spec.folds is not None:
+        sent.append(
+            ("rows per fold (cross-validation)", engine.dialect.render(fold_counts_query(ctx)))
+        )
     return sent
 
 
