@@ -119,14 +119,15 @@ def markdown(rows: list[dict], when: str) -> str:
     return "\n".join(lines) + "\n"
 
 
-def write(out: str, text: str) -> None:
+def write(out: str, text: str, begin: str = BEGIN, end: str = END) -> None:
+    """Replace the section between ``begin`` and ``end`` in ``out`` (or append it)."""
     old = ""
     if os.path.exists(out):
         with open(out) as fh:
             old = fh.read()
-    if BEGIN in old and END in old:
-        head, rest = old.split(BEGIN, 1)
-        new = head + text.rstrip("\n") + rest.split(END, 1)[1]
+    if begin in old and end in old:
+        head, rest = old.split(begin, 1)
+        new = head + text.rstrip("\n") + rest.split(end, 1)[1]
     else:
         new = old.rstrip("\n") + "\n\n" + text
     with open(out, "w") as fh:

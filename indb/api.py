@@ -74,6 +74,9 @@ def fit(
     path: int | None = None,
     path_ratio: float = 1e-3,
     drop_one: bool = False,
+    folds: int | None = None,
+    fold_by: str | None = None,
+    cv_rule: str = "one_se",
     progress: Any = None,
     name: str | None = None,
     promote: bool | None = None,
@@ -140,6 +143,9 @@ def fit(
         path=path,
         path_ratio=path_ratio,
         drop_one=drop_one,
+        folds=folds,
+        fold_by=fold_by,
+        cv_rule=cv_rule,
     )
     if name is not None:
         check_deploy_names(name, view_schema, registry_schema, spec, db)

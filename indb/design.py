@@ -60,6 +60,9 @@ class Inputs:
     spline_columns: tuple[tuple[str, int], ...] = ()
     #: the rows' cluster (covariance 'cluster'): a NULL sets the row aside, as a NULL offset
     cluster: Expr | None = None
+    #: the rows' fold key (cross-validation, indb.crossval): read by the CV scans only, so a
+    #: NULL is refused there rather than setting the row aside
+    fold_by: Expr | None = None
 
 
 @dataclass(frozen=True)
@@ -330,6 +333,10 @@ def resolve_inputs(
     # one), but one may be a predictor too when named (clusters of a categorical term)
     cluster_columns: list[str] = []
     cluster = parse(spec.cluster, "cluster", cluster_columns)
+    # the fold key's columns stay out of the default predictors too (a row id), and out of
+    # the model's columns: their NULLs are refused by the CV, not excluded (indb.crossval)
+    fold_columns: list[str] = []
+    fold_by = parse(spec.fold_by, "fold_by", fold_columns)
 
     for c in spec.exclude:
         need(c, "exclude option's")
@@ -354,7 +361,11 @@ def resolve_inputs(
                 )
         main = [c for c in names if c in set(spec.predictors) and c not in excluded]
     else:
-        main = [c for c in names if c not in excluded and c not in cluster_columns]
+        main = [
+            c
+            for c in names
+            if c not in excluded and c not in cluster_columns and c not in fold_columns
+        ]
 
     kind: dict[str, str] = {}
     involved = set(main) | {c for g in spec.interactions for c in g} | {c for c, _ in spec.splines}
@@ -433,6 +444,7 @@ def resolve_inputs(
         model_columns=tuple(model_cols),
         spline_columns=tuple(spec.splines),
         cluster=cluster,
+        fold_by=fold_by,
     )
 
 

@@ -16,7 +16,7 @@ import warnings
 
 import numpy as np
 
-from indb import batchfit, covariance, folding, magnitudes, pathfit, prefit, solver
+from indb import batchfit, covariance, crossval, folding, magnitudes, pathfit, prefit, solver
 from indb.design import build_design, plan_values
 from indb.engines.base_engine import Engine, qualify_source
 from indb.errors import (
@@ -33,6 +33,7 @@ from indb.inference import result
 from indb.irls import irls
 from indb.nullmodel import NullTrack, intercept_only, null_deviance, null_start
 from indb.plan.context import PlanContext
+from indb.plan.cv_scan import fold_counts_query
 from indb.plan.irls_scan import gram_query
 from indb.plan.profile import head_query, profile_items
 from indb.results import FitResult
@@ -100,6 +101,10 @@ def plan_spec(spec: ModelSpec, engine: Engine) -> list[tuple[str, str]]:
                 engine.dialect.render(batchfit.batch_sql(design, ctx, start)),
             )
         )
+    if spec.folds is not None:
+        sent.append(
+            ("rows per fold (cross-validation)", engine.dialect.render(fold_counts_query(ctx)))
+        )
     return sent
 
 
@@ -141,6 +146,11 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
     report_spec = spec
     ctx, design, summary, n_total, n_kept, by_col = _prepare(spec, run.engine, run)
     spec = ctx.spec
+    counts = None
+    if spec.folds is not None:  # refused before any IRLS scan when a fold is unusable
+        run.phase = "prepare"
+        counts = crossval.count_folds(ctx, run)
+        run.phase = "fit"
     report_summary = summary
     if run.fit_ybar is not None:  # folded rows: the response mean of the folded problem
         summary = dataclasses.replace(summary, ybar=run.fit_ybar)
@@ -192,9 +202,17 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
     )
     records: list = []
     lam_max = None
+    cv = None
     if penalty is not None and spec.path is not None:
-        state, records, lam_max = pathfit.path(ctx, design, run, summary, penalty, state)
-        penalty = penalty.at(records[-1]["penalty"])
+        states, records, lam_max = pathfit.path(ctx, design, run, summary, penalty, state)
+        state = states[-1]
+        if counts is not None:
+            lambdas = np.array([r["penalty"] for r in records])
+            cv = crossval.cross_validate(
+                ctx, design, run, summary, penalty, states, lambdas, counts
+            )
+            state = cv.state
+        penalty = penalty.at(cv.chosen_penalty if cv is not None else records[-1]["penalty"])
     if track is not None and null_dev is None:
         # the fitted model settled first: finish the intercept-only model on its own
         run.phase = "null"
@@ -256,7 +274,12 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
             family_param_errors={"theta": theta_est.std_error},
         )
     if penalty is not None:
-        return pathfit.penalised_result(res, penalty, records, lam_max)
+        res = pathfit.penalised_result(res, penalty, records, lam_max)
+        if cv is None:
+            return res
+        return dataclasses.replace(
+            res, cv=tuple(cv.table), chosen_penalty=cv.chosen_penalty, chosen_rule=cv.rule
+        )
     if spec.drop_one:
         res = batchfit.drop_one(ctx, design, run, state, res)
     return res

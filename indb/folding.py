@@ -32,10 +32,13 @@ COMPRESS_RATIO = 10  # compress when the sample shows >= 10 rows per distinct de
 def should_fold(ctx: PlanContext, run: FitRun) -> bool:
     """Whether to take the compressed route (``compress`` option; ``auto`` decides from the
     distinct design rows among the first kept rows). Never when the negative binomial theta
-    is estimated (its deviance constants move with theta) or the engine cannot hold a
+    is estimated (its deviance constants move with theta), the rows are cross-validated
+    (a group would mix folds) or the engine cannot hold a
     temporary table (unless ``always``, which then raises)."""
     spec = ctx.spec
     if spec.compress == "never" or spec.estimate_theta:
+        return False
+    if spec.folds is not None:  # the groups would lose each row's fold
         return False
     if not ctx.dialect.can_materialize:
         if spec.compress == "always":

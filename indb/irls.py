@@ -236,7 +236,8 @@ class IrlsSolver:
     def start_warm(self, warm: IrlsState) -> None:
         """Start from a converged state's scan: its sums give the first (penalised) update
         with no scan of its own (a path's next lambda)."""
-        self.sums = warm.sums
+        # the warm scan is the last accepted one: a first step that stalls goes back to it
+        self.sums = self.sums_prev = warm.sums
         self.beta_prev = warm.beta
         self.sol = self.solve(warm.sums, warm.beta)
         self.beta = self.sol.beta

@@ -68,6 +68,7 @@ MAX_LEVELS_LIMIT = 50_000
 
 #: The covariance kinds of the ``covariance`` option (see :mod:`indb.sandwich`).
 COVARIANCE_KINDS = ("model", "robust", "cluster")
+CV_RULES = ("one_se", "min")
 
 #: The groups of options; the first three are also the tables of a spec file. ``explore``
 #: holds the options only ``indb explore`` has (:data:`EXPLORE_OPTIONS`), outside ``OPTIONS``.
@@ -409,6 +410,35 @@ OPTIONS: tuple[Option, ...] = (
         "such models in shared scans, one read per iteration) and report the deviance "
         "change and its chi-square or F p-value next to the Wald test.",
         "model",
+    ),
+    # -- k-fold cross-validation of the path (indb.crossval) ------------------------------------
+    Option(
+        "folds",
+        WHOLE,
+        None,
+        "Cross-validate the --path over K folds: each fold's path is fitted on the other rows "
+        "and scored by its deviance on the fold; the model is refitted at the chosen lambda.",
+        "model",
+        metavar="K",
+    ),
+    Option(
+        "fold_by",
+        TEXT,
+        None,
+        "With --folds: a per-row integer SQL expression; a row's fold is "
+        "((EXPR % K) + K) % K, e.g. 'policy_id'.",
+        "model",
+        metavar="EXPR",
+    ),
+    Option(
+        "cv_rule",
+        TEXT,
+        "one_se",
+        "Which lambda the cross-validation chooses: the largest within one standard error of "
+        "the least mean deviance (one_se), or the least mean deviance (min).",
+        "model",
+        choices=CV_RULES,
+        metavar="RULE",
     ),
     # -- run: Python only --------------------------------------------------------------------
     Option(

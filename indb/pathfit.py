@@ -80,21 +80,56 @@ def path(
     summary: Summary,
     penalty: Penalty,
     state: IrlsState,
-) -> tuple[IrlsState, list[dict[str, Any]], float]:
-    """Walk the lambda path from the held-at-0 fit ``state``: (the last lambda's state, one
+) -> tuple[list[IrlsState], list[dict[str, Any]], float]:
+    """Walk the lambda path from the held-at-0 fit ``state``: (one state per lambda, one
     record per lambda, lambda_max)."""
     spec = ctx.spec
     lam_max = penalty.lambda_max(state.sums.xtwx, state.sums.xtwz, state.beta)
     n = int(spec.path or 2)
     lambdas = lam_max * spec.path_ratio ** (np.arange(n) / (n - 1))
-    records = [_record(design, run, state, penalty.at(lam_max))]
+    states = walk(ctx, design, run, summary, penalty, state, lambdas)
+    records = [
+        _record(design, run, s, penalty.at(float(lam)))
+        for s, lam in zip(states, lambdas, strict=True)
+    ]
+    return states, records, lam_max
+
+
+def walk(
+    ctx: PlanContext,
+    design: Design,
+    run: FitRun,
+    summary: Summary,
+    penalty: Penalty,
+    state: IrlsState,
+    lambdas: np.ndarray,
+) -> list[IrlsState]:
+    """From ``state``, the fit at ``lambdas[0]``, fit each further lambda warm-started from
+    the one before (on ``ctx``'s rows): one state per lambda."""
+    states = [state]
+    n = len(lambdas)
     # one loop for the whole path: the scans' caches carry over from lambda to lambda
     loop = IrlsSolver(ctx, design, run, summary.ybar, off_mean=summary.off_mean)
     for k, lam in enumerate(lambdas[1:], start=2):
         loop.with_penalty(penalty.at(float(lam)), predicted_settle=k < n)
         state, _ = loop.fit(warm=state)
-        records.append(_record(design, run, state, penalty.at(float(lam))))
-    return state, records, lam_max
+        states.append(state)
+    return states
+
+
+def refit(
+    ctx: PlanContext,
+    design: Design,
+    run: FitRun,
+    summary: Summary,
+    penalty: Penalty,
+    warm: IrlsState,
+) -> IrlsState:
+    """The fit at ``penalty`` on ``ctx``'s rows, warm-started from ``warm`` (the path's
+    state at that lambda: usually one scan confirms it)."""
+    loop = IrlsSolver(ctx, design, run, summary.ybar, off_mean=summary.off_mean)
+    state, _ = loop.with_penalty(penalty).fit(warm=warm)
+    return state
 
 
 def original_estimates(design: Design, run: FitRun, beta: np.ndarray) -> np.ndarray:
@@ -156,4 +191,12 @@ def penalised_result(
     )
 
 
-__all__ = ["NOTE", "make_penalty", "original_estimates", "path", "penalised_result"]
+__all__ = [
+    "NOTE",
+    "make_penalty",
+    "original_estimates",
+    "path",
+    "penalised_result",
+    "refit",
+    "walk",
+]

@@ -289,18 +289,43 @@ def _penalty_block(result: FitResult, width: int) -> str:
     )
     if result.penalty_path:
         first, last = result.penalty_path[0], result.penalty_path[-1]
+        which = "the chosen lambda's (cross-validation below)" if result.cv else "the last's"
         lines.append(
             f"  path of {len(result.penalty_path)} lambdas from lambda_max "
             f"{first['penalty']:.6g} down to {last['penalty']:.6g}; the estimates below are "
-            "the last's"
+            f"{which}"
         )
         for r in result.penalty_path:
             lines.append(
                 f"    lambda {r['penalty']:<12.6g} deviance {r['deviance']:<14.8g} "
                 f"non-zero {r['nonzero']}"
             )
+    lines += _cv_lines(result, width)
     lines.extend(_wrap(str(pen["note"]).upper()[:1] + str(pen["note"])[1:], width, indent="  "))
     return "\n".join(lines)
+
+
+def _cv_lines(result: FitResult, width: int) -> list[str]:
+    """The cross-validation table: mean out-of-fold deviance per unit weight and its
+    standard error per lambda, the rule's choice marked."""
+    if not result.cv:
+        return []
+    k = len(result.cv[0]["per_fold"])
+    rule = {"min": "least mean deviance", "one_se": "largest lambda within one SE of the least"}
+    lines = _wrap(
+        f"{k}-fold cross-validation (held-out deviance per unit weight); chosen by "
+        f"{rule.get(str(result.chosen_rule), str(result.chosen_rule))}: lambda "
+        f"{result.chosen_penalty:.6g}",
+        width,
+        indent="  ",
+    )
+    for r in result.cv:
+        mark = "  <- chosen" if r["penalty"] == result.chosen_penalty else ""
+        lines.append(
+            f"    lambda {r['penalty']:<12.6g} mean {r['mean_deviance']:<14.8g} "
+            f"SE {r['se']:<12.6g}{mark}".rstrip()
+        )
+    return lines
 
 
 def _notes_block(result: FitResult, width: int) -> str:

@@ -240,6 +240,11 @@ class FitResult:
     penalty: dict[str, Any] = field(default_factory=dict)
     #: a lambda path: one {penalty, deviance, nonzero, coefficients} per lambda, largest first
     penalty_path: tuple[dict[str, Any], ...] = ()
+    #: k-fold cross-validation of the path (indb.crossval): one {penalty, mean_deviance,
+    #: se, per_fold} per lambda, the lambda the rule chose (the reported model's) and the rule
+    cv: tuple[dict[str, Any], ...] = ()
+    chosen_penalty: float | None = None
+    chosen_rule: str | None = None
 
     # -- the model as objects ------------------------------------------------------------
     @property
@@ -364,6 +369,16 @@ class FitResult:
                 }
                 for r in self.penalty_path
             ]
+        if self.cv:
+            out["cv"] = [
+                {
+                    **_clean({k: v for k, v in r.items() if k != "per_fold"}),
+                    "per_fold": [_num(v) for v in r["per_fold"]],
+                }
+                for r in self.cv
+            ]
+            out["chosen_penalty"] = _num(self.chosen_penalty)
+            out["chosen_rule"] = self.chosen_rule
         if self.deployment:
             out["deployment"] = dict(self.deployment)
             out["scoring_view"] = self.deployment.get("scoring_view")
@@ -460,6 +475,9 @@ class FitResult:
             ),
             penalty={k: (math.nan if v is None else v) for k, v in d.get("penalty", {}).items()},
             penalty_path=tuple(d.get("penalty_path", [])),
+            cv=tuple({**r, "per_fold": [f(v) for v in r["per_fold"]]} for r in d.get("cv", [])),
+            chosen_penalty=f(d["chosen_penalty"]) if d.get("cv") else None,
+            chosen_rule=d.get("chosen_rule"),
         )
 
 

@@ -106,6 +106,11 @@ class ModelSpec:
     path_ratio: float = 1e-3
     #: refit without each model term, in shared scans (indb.batchfit)
     drop_one: bool = False
+    #: k-fold cross-validation of the path (indb.crossval): K, the per-row fold expression,
+    #: and the rule choosing lambda from the fold table ('min' or 'one_se')
+    folds: int | None = None
+    fold_by: str | None = None
+    cv_rule: str = "one_se"
 
     @property
     def penalised(self) -> bool:
@@ -150,6 +155,9 @@ class ModelSpec:
         path: int | None = None,
         path_ratio: float = 1e-3,
         drop_one: bool = False,
+        folds: int | None = None,
+        fold_by: str | None = None,
+        cv_rule: str = "one_se",
     ) -> ModelSpec:
         """Validate user options and resolve family/link names into a spec."""
         if not isinstance(response, str) or not response:
@@ -191,6 +199,7 @@ class ModelSpec:
             ("frequency_weight", frequency_weight),
             ("trials", trials),
             ("cluster", cluster),
+            ("fold_by", fold_by),
         ):
             if expr is not None and (not isinstance(expr, str) or not expr.strip()):
                 raise SpecError(f"{name} must be a non-empty SQL expression; got {expr!r}")
@@ -210,6 +219,7 @@ class ModelSpec:
                 raise SpecError(f"spline on column {colname!r} needs 3 to 10 knots; got {k!r}")
             spl.append((colname, k))
         check_penalty(penalty, l1_share, path, path_ratio, penalty_for)
+        check_folds(folds, fold_by, penalty, path, compress)
         if (penalty is not None or path is not None) and covariance != "model":
             raise SpecError(
                 f"covariance={covariance!r} gives standard errors, and a penalised fit reports "
@@ -260,6 +270,9 @@ class ModelSpec:
             path=int(path) if path is not None else None,
             path_ratio=float(path_ratio),
             drop_one=bool(drop_one),
+            folds=int(folds) if folds is not None else None,
+            fold_by=fold_by,
+            cv_rule=cv_rule,
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -309,6 +322,12 @@ class ModelSpec:
             "penalty_for": dict(self.penalty_for),
             "path": self.path,
             "path_ratio": self.path_ratio,
+            # only with cross-validation: earlier penalised versions keep their spec hash
+            **(
+                {"folds": self.folds, "fold_by": self.fold_by, "cv_rule": self.cv_rule}
+                if self.folds is not None
+                else {}
+            ),
         }
 
 
@@ -343,6 +362,42 @@ def check_penalty(
                 f"penalty_for {column!r} must be a number >= 0 (0 leaves it unpenalised); "
                 f"got {factor!r}"
             )
+
+
+def check_folds(
+    folds: int | None,
+    fold_by: str | None,
+    penalty: float | None,
+    path: int | None,
+    compress: str,
+) -> None:
+    """One-line input errors for k-fold cross-validation (indb.crossval)."""
+    if folds is None:
+        if fold_by is not None:
+            raise SpecError(
+                f"fold_by={fold_by!r} is read only with folds=K (CLI --folds K): add it, or "
+                "leave fold_by out"
+            )
+        return
+    if isinstance(folds, bool) or not isinstance(folds, int) or folds < 2:
+        raise SpecError(
+            f"folds must be a whole number >= 2 (K of k-fold cross-validation); got {folds!r}"
+        )
+    if fold_by is None:
+        raise SpecError(
+            f"folds={folds} needs fold_by, a per-row integer SQL expression whose value mod "
+            f"{folds} is the row's fold (CLI --fold-by EXPR), e.g. 'policy_id'"
+        )
+    if path is None:
+        hint = f" instead of penalty={penalty!r}" if penalty is not None else ""
+        raise SpecError(
+            f"folds={folds} cross-validates the lambdas of a path: give path=N (CLI --path N){hint}"
+        )
+    if compress == "always":
+        raise SpecError(
+            "compress='always' groups rows by their design values and loses each row's fold; "
+            "cross-validation reads the rows: leave compress at 'auto' (or 'never')"
+        )
 
 
 def _check_covariance(covariance: str, cluster: str | None) -> None:

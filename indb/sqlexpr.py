@@ -243,6 +243,11 @@ def floor_(a: Expr) -> Expr:
     return exp.Floor(this=a)
 
 
+def mod_(a: Expr, b: Expr) -> Expr:
+    """a % b: the remainder takes the sign of ``a`` on DuckDB, PostgreSQL and Spark alike."""
+    return exp.Mod(this=paren(a), expression=paren(b))
+
+
 def fn(name: str, *args: Expr) -> Expr:
     """A plain function call by (engine-neutral) name, e.g. ``tan``, ``atan``."""
     return exp.Anonymous(this=name.upper(), expressions=list(args))

@@ -24,6 +24,12 @@ _NUMERIC_TYPES = re.compile(
     r"FLOAT[48]|SMALLINT|LONG|SHORT|BYTE)$",
     re.IGNORECASE,
 )
+#: whole-number types (cross-validation's fold key is taken mod K only for these)
+_INTEGER_TYPES = re.compile(
+    r"^(TINYINT|SMALLINT|INTEGER|INT|BIGINT|HUGEINT|UTINYINT|USMALLINT|UINTEGER|UBIGINT|"
+    r"UHUGEINT|INT[248]|LONG|SHORT|BYTE|SERIAL|BIGSERIAL|SMALLSERIAL)$",
+    re.IGNORECASE,
+)
 _TEXT_TYPES = re.compile(
     r"^(VARCHAR(\(.*\))?|TEXT|STRING|CHAR(\(.*\))?|BPCHAR|CHARACTER VARYING(\(.*\))?|"
     r"BOOLEAN|BOOL|ENUM\(.*\)|UUID)$",
@@ -217,6 +223,10 @@ class Dialect:
         if _TEXT_TYPES.match(t):
             return "text"
         return "other"
+
+    def is_integer_type(self, type_name: str) -> bool:
+        """Whether an engine type name is a whole-number type."""
+        return bool(_INTEGER_TYPES.match(type_name.strip()))
 
     # -- relations -------------------------------------------------------------------------
     def table(self, name: str) -> exp.Expression:

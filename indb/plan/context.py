@@ -35,6 +35,9 @@ class PlanContext:
     #: per-row columns a covariance scan adds to the rows (``irls_scan.rows_select``):
     #: ``clu`` the cluster, ``r2`` a folded row's sums for the robust meat
     row_extras: tuple[str, ...] = ()
+    #: a further condition on the kept rows (cross-validation: a fold's training or held-out
+    #: rows, indb.crossval); every scan built from :meth:`kept` reads only those rows
+    row_filter: Expr | None = None
 
     def count_rows(self) -> Expr:
         """COUNT(*) of source rows (SUM of the row-count column on a compressed table)."""
@@ -80,6 +83,8 @@ class PlanContext:
         ):
             if e is not None:
                 conds.append(S.not_(S.is_null(e.copy())))
+        if self.row_filter is not None:
+            conds.append(self.row_filter.copy())
         return conds
 
     def kept(self) -> Expr:

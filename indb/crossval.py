@@ -1,0 +1,258 @@
+"""k-fold cross-validation of a lambda path: folds, each fold's path, the fold table, the
+chosen lambda.
+
+A row's fold is ``((EXPR % K) + K) % K`` of the integer expression ``fold_by``
+(:mod:`indb.plan.cv_scan`). Every fold's model is fitted exactly, on the kept rows outside
+the fold, along the full path's lambdas (lambda_max from all rows, common practice), each
+lambda warm-started from the one before (:func:`indb.pathfit.walk`); the penalty's weight
+total W is the training rows' own. The model's columns keep the design, centring and (with
+``standardize``) the penalised scale of all rows, so the fold's objective is the full
+objective on its training rows.
+
+The out-of-fold deviance of fold k at lambda j is the family's deviance, summed over the
+fold's rows (frequency x prior weights), at fold k's coefficients for lambda j, divided by
+the fold's weight total sum(f pw): a mean deviance per unit weight, comparable between folds
+of unequal size. Its mean over the K folds is their plain average and its standard error
+sd / sqrt(K) (sd with K - 1 degrees of freedom). The rule ``min`` chooses the lambda with the
+least mean; ``one_se`` the largest lambda whose mean is within one standard error of that
+least mean (common practice).
+
+Scans (:func:`fold_fits` is the one boundary to swap for a batch scan of many models): one
+describe and one grouped count of the folds before the fit; per fold, its path's IRLS scans
+on the training rows (a WHERE on the fold key), then one scan of the fold's rows per lambda
+for the held-out deviance; then one scan (usually) to refit all rows at the chosen lambda,
+warm-started from the path's state there.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import time
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from indb import solver
+from indb.design import Design
+from indb.errors import SpecError
+from indb.fitrun import FitRun
+from indb.irls import IrlsState, irls
+from indb.pathfit import refit, walk
+from indb.penalty import Penalty
+from indb.plan.context import PlanContext
+from indb.plan.cv_scan import (
+    FOLD,
+    fold_counts_query,
+    fold_type_query,
+    held_out_rows,
+    training_rows,
+)
+from indb.plan.irls_scan import gram_query
+from indb.prefit import Summary
+from indb.sqlexpr import Expr
+
+
+@dataclass(frozen=True)
+class FoldCounts:
+    """Kept rows per fold as the scans count them: rows, frequency-weighted rows and the
+    weight total sum(f pw), all on the fit's internal scale."""
+
+    n: np.ndarray
+    nw: np.ndarray
+    w: np.ndarray
+
+
+@dataclass(frozen=True)
+class FoldFits:
+    """Per fold (rows) and lambda (columns): the out-of-fold deviance per unit weight, and
+    the fold models' internal coefficients (folds x lambdas x p)."""
+
+    deviance: np.ndarray
+    beta: np.ndarray
+
+
+def count_folds(ctx: PlanContext, run: FitRun) -> FoldCounts:
+    """Check the fold expression (an integer type, never NULL on a kept row, no fold
+    empty) and count each fold's rows: one describe and one grouped scan."""
+    spec = ctx.spec
+    k = int(spec.folds or 0)
+    text = spec.fold_by
+    ((_, type_name),) = run.engine.describe(ctx.dialect.render(fold_type_query(ctx)))
+    if not ctx.dialect.is_integer_type(type_name):
+        raise SpecError(
+            f"fold_by expression {text!r} has type {type_name}; a row's fold is "
+            f"((EXPR % {k}) + {k}) % {k} of a whole number: give an integer expression, e.g. "
+            "a row id or a hash of your choice cast to BIGINT"
+        )
+    cols = run.query(fold_counts_query(ctx))
+    keys = [None if _missing(v) else int(v) for v in cols[FOLD]]
+    n = {key: int(c) for key, c in zip(keys, cols["n"], strict=True)}
+    if None in n:
+        raise SpecError(
+            f"fold_by expression {text!r} is NULL on {n[None]:,} kept rows; every row needs a "
+            "fold: make the expression whole (e.g. coalesce(EXPR, 0)) or leave those rows "
+            "out of the source"
+        )
+    empty = [f for f in range(k) if f not in n]
+    if empty:
+        raise SpecError(
+            f"fold {empty[0]} of {k} is empty: no kept row has ((fold_by % {k}) + {k}) % {k} "
+            f"= {empty[0]} for fold_by {text!r}; give fewer folds or an expression spread "
+            "over more values"
+        )
+    order = np.argsort(np.array(keys, dtype=float))
+    return FoldCounts(
+        n=np.asarray(cols["n"], float)[order],
+        nw=np.asarray(cols["nw"], float)[order],
+        w=np.asarray(cols["w"], float)[order],
+    )
+
+
+def _missing(v: object) -> bool:
+    return v is None or (isinstance(v, float) and math.isnan(v))
+
+
+def fold_fits(
+    ctx: PlanContext,
+    design: Design,
+    run: FitRun,
+    summary: Summary,
+    penalty: Penalty,
+    lambdas: np.ndarray,
+    counts: FoldCounts,
+    start: np.ndarray,
+) -> FoldFits:
+    """Fit every fold's path on its training rows and score it on the fold's rows.
+
+    ``penalty`` is the full fit's (its weight total is rescaled to each fold's training
+    rows); ``start`` the full path's first coefficients. Leaves ``run.expected`` as it was.
+    """
+    k, n_lam = len(counts.n), len(lambdas)
+    dev = np.empty((k, n_lam))
+    beta = np.empty((k, n_lam, design.p))
+    expected, phase = run.expected, run.phase
+    # sums of f pw on the source's scale: the held-out deviance per unit weight
+    source_w = counts.w / (run.scaling.weight_factor * run.scaling.freq_factor)
+    try:
+        for f in range(k):
+            run.phase = "cv"
+            train = _restricted(ctx, training_rows(ctx, f))
+            run.expected = (
+                int(counts.n.sum() - counts.n[f]),
+                float(counts.nw.sum() - counts.nw[f]),
+            )
+            share = (counts.w.sum() - counts.w[f]) / counts.w.sum()
+            pen = dataclasses.replace(penalty, total=penalty.total * share)
+            first, _ = irls(
+                train,
+                design,
+                run,
+                summary.ybar,
+                start=start,
+                off_mean=summary.off_mean,
+                penalty=pen.at(float(lambdas[0])),
+            )
+            states = walk(train, design, run, summary, pen, first, lambdas)
+            run.phase = "cv_score"
+            held = _restricted(ctx, held_out_rows(ctx, f))
+            run.expected = (int(counts.n[f]), float(counts.nw[f]))
+            for j, state in enumerate(states):
+                beta[f, j] = state.beta
+                dev[f, j] = held_out_deviance(held, design, run, summary, state) / source_w[f]
+    finally:
+        run.expected, run.phase = expected, phase
+    return FoldFits(deviance=dev, beta=beta)
+
+
+def _restricted(ctx: PlanContext, rows: Expr) -> PlanContext:
+    return dataclasses.replace(ctx, row_filter=rows)
+
+
+def held_out_deviance(
+    held: PlanContext, design: Design, run: FitRun, summary: Summary, state: IrlsState
+) -> float:
+    """The deviance (source scale) of ``held``'s rows at ``state``'s coefficients: one scan."""
+    t0 = time.perf_counter()
+    beta = np.nan_to_num(state.beta)  # a coefficient the training rows left aliased: 0
+    sums = solver.assemble(design, run.query(gram_query(held, design, beta, ybar=summary.ybar)))
+    run.check_rows(sums)
+    run.record(sums.deviance, math.nan, 0, time.perf_counter() - t0)
+    return run.scaling.unscale(sums.deviance)
+
+
+@dataclass(frozen=True)
+class CrossValidation:
+    """The fold table, the rule and the chosen lambda, and the refit at it on all rows."""
+
+    table: list[dict[str, Any]]
+    rule: str
+    chosen: int
+    state: IrlsState
+
+    @property
+    def chosen_penalty(self) -> float:
+        return float(self.table[self.chosen]["penalty"])
+
+
+def cross_validate(
+    ctx: PlanContext,
+    design: Design,
+    run: FitRun,
+    summary: Summary,
+    penalty: Penalty,
+    states: list[IrlsState],
+    lambdas: np.ndarray,
+    counts: FoldCounts,
+) -> CrossValidation:
+    """Cross-validate the path (``states`` at ``lambdas``, on all rows), choose lambda by
+    the spec's rule and refit all rows there, warm-started from the path's state."""
+    fits = fold_fits(ctx, design, run, summary, penalty, lambdas, counts, states[0].beta)
+    table = cv_table(lambdas, fits)
+    rule = ctx.spec.cv_rule
+    j = choose(table, rule)
+    run.phase = "fit"
+    state = refit(ctx, design, run, summary, penalty.at(float(lambdas[j])), states[j])
+    return CrossValidation(table=table, rule=rule, chosen=j, state=state)
+
+
+def cv_table(lambdas: np.ndarray, fits: FoldFits) -> list[dict[str, Any]]:
+    """One row per lambda: the mean out-of-fold deviance, its standard error, per fold."""
+    dev = fits.deviance
+    k = dev.shape[0]
+    mean = dev.mean(axis=0)
+    se = dev.std(axis=0, ddof=1) / math.sqrt(k)
+    return [
+        {
+            "penalty": float(lam),
+            "mean_deviance": float(mean[j]),
+            "se": float(se[j]),
+            "per_fold": [float(v) for v in dev[:, j]],
+        }
+        for j, lam in enumerate(lambdas)
+    ]
+
+
+def choose(table: list[dict[str, Any]], rule: str) -> int:
+    """The index of the chosen lambda (rows ordered from the largest lambda): ``min`` the
+    least mean deviance, ``one_se`` the largest lambda within one standard error of it."""
+    mean = np.array([r["mean_deviance"] for r in table])
+    best = int(np.argmin(mean))
+    if rule == "min":
+        return best
+    limit = mean[best] + table[best]["se"]
+    return int(np.flatnonzero(mean <= limit)[0])
+
+
+__all__ = [
+    "CrossValidation",
+    "FoldCounts",
+    "FoldFits",
+    "choose",
+    "count_folds",
+    "cross_validate",
+    "cv_table",
+    "fold_fits",
+    "held_out_deviance",
+]
