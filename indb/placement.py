@@ -110,26 +110,6 @@ class ViewPlacement:
             return text
         return relative_source(self.engine, Source.parse(text)).text
 
-    def _check_scoring_inputs(
-        self, current: dict[str, Any] | None, inputs: Sequence[str], score_source: str | None
-    ) -> None:
-        """Refuse, before any scan, a scoring source that lacks columns the model reads
-        (the view would otherwise fail to build after the whole fit)."""
-        row = {"score_source": score_source} if score_source else current
-        if row is None or not row.get("score_source"):
-            return  # a new model scores its own source
-        types = self._source_types(row)
-        if types is None:
-            return  # unreadable: the write-back's own check says why
-        missing = [c for c in inputs if c not in types]
-        if missing:
-            raise SpecError(
-                f"the scoring source {Source.parse(row['score_source']).label()!r} lacks "
-                f"model input column(s) {missing}; give a scoring source that has them "
-                "(score_source=, CLI --score-source) or leave them out of the model "
-                "(exclude=, --exclude); checked before the fit, nothing was read or written"
-            )
-
     def _view_label(self, model_row: dict[str, Any]) -> str:
         schema = model_row.get("view_schema")
         return f"{schema}.{model_row['view_name']}" if schema else model_row["view_name"]
