@@ -137,8 +137,30 @@ class HosmerLemeshow:
     )
 
 
+class _Figures:
+    """The ratios a model's totals give (a model judged on new rows, or the second one)."""
+
+    deviance: float
+    null_deviance: float
+    weight: float
+    actual: float
+    expected: float
+
+    @property
+    def mean_deviance(self) -> float:
+        return _ratio(self.deviance, self.weight)
+
+    @property
+    def deviance_explained(self) -> float:
+        return 1.0 - _ratio(self.deviance, self.null_deviance)
+
+    @property
+    def actual_over_expected(self) -> float:
+        return _ratio(self.actual, self.expected)
+
+
 @dataclass(frozen=True)
-class AgainstFigures:
+class AgainstFigures(_Figures):
     """The second model's figures on the same rows (``--against``): what differs from the
     first model's (rows, weight, exposure and actual are the same)."""
 
@@ -156,18 +178,6 @@ class AgainstFigures:
     gini_normalized: float
     rows_unseen: int
     bands: tuple[Band, ...]
-
-    @property
-    def mean_deviance(self) -> float:
-        return _ratio(self.deviance, self.weight)
-
-    @property
-    def deviance_explained(self) -> float:
-        return 1.0 - _ratio(self.deviance, self.null_deviance)
-
-    @property
-    def actual_over_expected(self) -> float:
-        return _ratio(self.actual, self.expected)
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {
@@ -193,7 +203,7 @@ class AgainstFigures:
 
 
 @dataclass(frozen=True)
-class AssessResult:
+class AssessResult(_Figures):
     """A stored model version judged on the rows of a source (see the module docstring)."""
 
     model: str
@@ -228,18 +238,6 @@ class AssessResult:
     #: the second model's figures and the double-lift table (``--against``)
     against: AgainstFigures | None = None
     ratio_bands: tuple[RatioBand, ...] | None = None
-
-    @property
-    def mean_deviance(self) -> float:
-        return _ratio(self.deviance, self.weight)
-
-    @property
-    def deviance_explained(self) -> float:
-        return 1.0 - _ratio(self.deviance, self.null_deviance)
-
-    @property
-    def actual_over_expected(self) -> float:
-        return _ratio(self.actual, self.expected)
 
     def to_dict(self) -> dict[str, Any]:
         """A JSON-ready dictionary (non-finite numbers become ``None``)."""
