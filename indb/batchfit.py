@@ -149,7 +149,7 @@ class BatchSolver:
             self.log_cache = None  # a model fits too closely: per-row deviances from here on
         got = self.run.query(batch_query(self.ctx, self.design, betas, self.cells))
         out = {}
-        for mid, cells in _split(got, betas).items():
+        for mid, cells in split_by_model(got, betas).items():
             sums = solver.assemble(self.design, cells)
             self.run.check_rows(sums)
             self.cells = sums.cell_keys
@@ -174,7 +174,7 @@ class BatchSolver:
         )
         got = self.run.query(tree)
         out = {}
-        for mid, cells in _split(got, betas).items():
+        for mid, cells in split_by_model(got, betas).items():
             parts = logsums.assemble_log_scan(
                 self.design, cells, betas[mid], power, cache, cache.off_center
             )
@@ -259,7 +259,7 @@ class BatchSolver:
         return change
 
 
-def _split(got: dict[str, np.ndarray], betas: Mapping[int, np.ndarray]) -> dict:
+def split_by_model(got: dict[str, np.ndarray], betas: Mapping[int, np.ndarray]) -> dict:
     """A batch scan's rows by model id: model id -> that model's grouped rows."""
     ids = np.asarray(got[MODEL_ID]).astype(np.int64)
     return {

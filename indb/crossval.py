@@ -19,9 +19,9 @@ least mean (common practice).
 
 Scans (:func:`fold_fits` is the one boundary to swap for a batch scan of many models): one
 describe and one grouped count of the folds before the fit; per fold, its path's IRLS scans
-on the training rows (a WHERE on the fold key), then one scan of the fold's rows per lambda
-for the held-out deviance; then one scan (usually) to refit all rows at the chosen lambda,
-warm-started from the path's state there.
+on the training rows (a WHERE on the fold key), then one scan of the fold's rows for the
+held-out deviances at every lambda (a batch scan, one model per lambda); then one scan
+(usually) to refit all rows at the chosen lambda, warm-started from the path's state there.
 """
 
 from __future__ import annotations
@@ -29,18 +29,21 @@ from __future__ import annotations
 import dataclasses
 import math
 import time
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from indb import solver
+from indb.batchfit import split_by_model
 from indb.design import Design
 from indb.errors import SpecError
 from indb.fitrun import FitRun
 from indb.irls import IrlsState, irls
 from indb.pathfit import refit, walk
 from indb.penalty import Penalty
+from indb.plan.batch_scan import batch_query
 from indb.plan.context import PlanContext
 from indb.plan.cv_scan import (
     FOLD,
@@ -49,7 +52,6 @@ from indb.plan.cv_scan import (
     held_out_rows,
     training_rows,
 )
-from indb.plan.irls_scan import gram_query
 from indb.prefit import Summary
 from indb.sqlexpr import Expr
 
@@ -160,7 +162,7 @@ def fold_fits(
             run.expected = (int(counts.n[f]), float(counts.nw[f]))
             for j, state in enumerate(states):
                 beta[f, j] = state.beta
-                dev[f, j] = held_out_deviance(held, design, run, summary, state) / source_w[f]
+            dev[f] = held_out_deviances(held, design, run, states) / source_w[f]
     finally:
         run.expected, run.phase = expected, phase
     return FoldFits(deviance=dev, beta=beta)
@@ -170,16 +172,22 @@ def _restricted(ctx: PlanContext, rows: Expr) -> PlanContext:
     return dataclasses.replace(ctx, row_filter=rows)
 
 
-def held_out_deviance(
-    held: PlanContext, design: Design, run: FitRun, summary: Summary, state: IrlsState
-) -> float:
-    """The deviance (source scale) of ``held``'s rows at ``state``'s coefficients: one scan."""
+def held_out_deviances(
+    held: PlanContext, design: Design, run: FitRun, states: Sequence[IrlsState]
+) -> np.ndarray:
+    """The deviance (source scale) of ``held``'s rows at each state's coefficients, all in
+    one read of the rows (:func:`indb.plan.batch_scan.batch_query`, one model per state)."""
     t0 = time.perf_counter()
-    beta = np.nan_to_num(state.beta)  # a coefficient the training rows left aliased: 0
-    sums = solver.assemble(design, run.query(gram_query(held, design, beta, ybar=summary.ybar)))
-    run.check_rows(sums)
-    run.record(sums.deviance, math.nan, 0, time.perf_counter() - t0)
-    return run.scaling.unscale(sums.deviance)
+    # a coefficient the training rows left aliased: 0
+    betas = {j: np.nan_to_num(s.beta) for j, s in enumerate(states)}
+    parts = split_by_model(run.query(batch_query(held, design, betas)), betas)
+    out = np.empty(len(states))
+    for j in betas:
+        sums = solver.assemble(design, parts[j])
+        run.check_rows(sums)
+        out[j] = run.scaling.unscale(sums.deviance)
+    run.record(math.nan, math.nan, 0, time.perf_counter() - t0)
+    return out
 
 
 @dataclass(frozen=True)
@@ -254,5 +262,5 @@ __all__ = [
     "cross_validate",
     "cv_table",
     "fold_fits",
-    "held_out_deviance",
+    "held_out_deviances",
 ]
