@@ -11,10 +11,10 @@ taken mod K. In one process, on one DuckDB connection reading the Parquet file: 
 unpenalised fit (its mean IRLS scan time is "one plain scan"), then the elastic net
 (l1_share 0.5) over a path of N lambdas down to 10^-3 lambda_max with K-fold
 cross-validation. Reported: wall seconds, scans by phase (``fit``: the path on all rows and
-the refit; ``cv``: the folds' paths on their training rows; ``cv_score``: one scan of a
-fold's rows per fold and lambda), the wall time as a multiple of one plain scan and the
-peak resident memory. The result goes into ``benchmarks/RESULTS.md`` between this script's
-markers.
+the refit; ``cv``: the folds' paths on their training rows; ``cv_score``: one batch scan of a
+fold's rows per fold, every lambda's model in it), the wall time as a multiple of one plain
+scan and the peak resident memory. The result goes into ``benchmarks/RESULTS.md`` between
+this script's markers.
 """
 
 from __future__ import annotations
@@ -111,8 +111,8 @@ def markdown(rows: list[dict], when: str) -> str:
         "",
         f"The issue's target is {TARGET_SCANS} plain scans at 10^7 rows. The current "
         "implementation fits each fold's path with its own scans (a WHERE on the fold key) "
-        "and scores every fold and lambda with a scan of its own, so it costs about "
-        "(K + 1) x the path's scans plus K x N held-out scans: far above the target. The "
+        "and scores each fold at every lambda in one batch scan, so it costs about "
+        "(K + 1) x the path's scans plus K held-out scans: far above the target. The "
         "fold fitting sits behind `crossval.fold_fits`, to be replaced by one batch scan "
         "of many models per iteration (all folds' training sums as total - fold).",
         "",
