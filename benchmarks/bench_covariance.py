@@ -39,6 +39,7 @@ ROOT = os.path.dirname(HERE)
 sys.path.insert(0, HERE)
 
 import bench_data  # noqa: E402
+from bench_child import vm_kib  # noqa: E402
 
 MARK = "COVARIANCE_JSON "
 BEGIN = "<!-- bench_covariance.py: begin -->"
@@ -74,13 +75,8 @@ def child(job: dict[str, Any]) -> dict[str, Any]:
     )
     wall = time.perf_counter() - t0
     cpu = time.process_time() - cpu0
-    phases: dict[str, int] = {}
-    seconds: dict[str, float] = {}
-    for r in res.iteration_log:
-        phases[r.phase] = phases.get(r.phase, 0) + 1
-        seconds[r.phase] = seconds.get(r.phase, 0.0) + r.seconds
-    with open("/proc/self/status") as fh:
-        peak = next(int(line.split()[1]) for line in fh if line.startswith("VmHWM")) / 1024
+    phases, seconds = phase_totals(res.iteration_log)
+    peak = vm_kib("VmHWM") / 1024
     return {
         "status": "ok",
         "wall": wall,
@@ -99,6 +95,16 @@ def run_one(
 ) -> dict:
     job = {"path": path, "model": model, "kind": kind, "cluster": cluster, "memory_limit": limit}
     return run_child(os.path.abspath(__file__), job, MARK, timeout)
+
+
+def phase_totals(log: Any) -> tuple[dict[str, int], dict[str, float]]:
+    """Scans and seconds per phase of a fit's iteration log."""
+    phases: dict[str, int] = {}
+    seconds: dict[str, float] = {}
+    for r in log:
+        phases[r.phase] = phases.get(r.phase, 0) + 1
+        seconds[r.phase] = seconds.get(r.phase, 0.0) + r.seconds
+    return phases, seconds
 
 
 def run_child(script: str, job: dict[str, Any], mark: str, timeout: float) -> dict[str, Any]:

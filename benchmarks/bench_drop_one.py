@@ -33,7 +33,8 @@ ROOT = os.path.dirname(HERE)
 sys.path.insert(0, HERE)
 
 import bench_data  # noqa: E402
-from bench_covariance import run_child, write_section  # noqa: E402
+from bench_child import vm_kib  # noqa: E402
+from bench_covariance import phase_totals, run_child, write_section  # noqa: E402
 
 MARK = "DROP_ONE_JSON "
 BEGIN = "<!-- bench_drop_one.py: begin -->"
@@ -56,13 +57,8 @@ def child(job: dict[str, Any]) -> dict[str, Any]:
         memory_limit=job.get("memory_limit"),
     )
     wall = time.perf_counter() - t0
-    phases: dict[str, int] = {}
-    seconds: dict[str, float] = {}
-    for r in res.iteration_log:
-        phases[r.phase] = phases.get(r.phase, 0) + 1
-        seconds[r.phase] = seconds.get(r.phase, 0.0) + r.seconds
-    with open("/proc/self/status") as fh:
-        peak = next(int(line.split()[1]) for line in fh if line.startswith("VmHWM")) / 1024
+    phases, seconds = phase_totals(res.iteration_log)
+    peak = vm_kib("VmHWM") / 1024
     return {
         "status": "ok",
         "wall": wall,

@@ -160,8 +160,7 @@ def fold_fits(
             run.phase = "cv_score"
             held = _restricted(ctx, held_out_rows(ctx, f))
             run.expected = (int(counts.n[f]), float(counts.nw[f]))
-            for j, state in enumerate(states):
-                beta[f, j] = state.beta
+            beta[f] = [state.beta for state in states]
             dev[f] = held_out_deviances(held, design, run, states) / source_w[f]
     finally:
         run.expected, run.phase = expected, phase
