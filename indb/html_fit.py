@@ -103,28 +103,50 @@ def term_tests_block(r: FitResult) -> str:
         Column("gvif", "GVIF"),
         Column("gvif_scaled", "GVIF^(1/(2 df))"),
     ]
-    if any(t.drop_df is not None or t.drop_note is not None for t in r.term_tests):
-        head += note(
-            "Leaving each term out (drop_one): the deviance of the model refitted without "
-            "the term less the full model's, on the same rows, and its likelihood-ratio "
-            "test (chi-square, or F with the full model's dispersion)."
+    return head + table("term_tests", cols, rows) + _drop_one_table(r)
+
+
+def _drop_one_table(r: FitResult) -> str:
+    """The likelihood-ratio tests of leaving each term out (``drop_one``), a table of its
+    own so that neither table runs wider than the page; empty when the fit ran none."""
+    tests = [t for t in r.term_tests if t.drop_df is not None or t.drop_note is not None]
+    if not tests:
+        return ""
+    head = "<h3>Leaving each term out</h3>" + note(
+        "The deviance of the model refitted without the term less the full model's, on the "
+        "same rows, and its likelihood-ratio test (chi-square, or F with the full model's "
+        "dispersion)."
+    )
+    rows = [
+        (
+            t.term,
+            {
+                "term": t.term,
+                "drop_deviance": t.drop_deviance,
+                "drop_df": t.drop_df,
+                "lr_test": t.lr_test or "",
+                # a chi-square tail below the smallest double keeps its power of ten, as
+                # the Wald test's does
+                "lr_p_value": p_shown(
+                    t.lr_p_value, format_chi2_p(t.lr_p_value, t.lr_statistic, t.drop_df)
+                )
+                if t.lr_test == "chi2" and t.lr_p_value is not None
+                else t.lr_p_value,
+                "drop_note": t.drop_note or "",
+            },
         )
-        for (_, cells), t in zip(rows, r.term_tests, strict=True):
-            cells.update(
-                drop_deviance=t.drop_deviance,
-                drop_df=t.drop_df,
-                lr_test=t.lr_test or "",
-                lr_p_value=t.lr_p_value,
-                drop_note=t.drop_note or "",
-            )
-        cols += [
-            Column("drop_deviance", "deviance without it"),
-            Column("drop_df", "df dropped", "count"),
-            Column("lr_test", "test", "text"),
-            Column("lr_p_value", "p (leaving out)", "p"),
-            Column("drop_note", "note", "text"),
-        ]
-    return head + table("term_tests", cols, rows)
+        for t in tests
+    ]
+    cols = [
+        Column("term", "term", "text"),
+        Column("drop_deviance", "deviance without it"),
+        Column("drop_df", "df dropped", "count"),
+        Column("lr_test", "test", "text"),
+        Column("lr_p_value", "p", "p"),
+    ]
+    if any(t.drop_note for t in tests):
+        cols.append(Column("drop_note", "note", "text"))
+    return head + table("drop_one", cols, rows)
 
 
 # -- penalised fits ----------------------------------------------------------------------------

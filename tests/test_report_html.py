@@ -698,13 +698,15 @@ def test_covariance_kind_theta_and_recorded_assessments_equal_show_json(
 
 
 def test_drop_one_columns_equal_show_json(more: dict[str, Any]) -> None:
-    # the leaving-out columns of the whole-terms table are the stored drop-one tests (their
+    # the leaving-out table's rows are the stored drop-one tests (their
     # values are checked against statsmodels refits in tests/test_drop_one.py)
     shown = _json(_run("show", "children_drop", "--db", more["db"], "--json"))
-    rows = read_tables(more["pages"]["children_drop"]).tables["term_tests"]
+    rows = read_tables(more["pages"]["children_drop"]).tables["drop_one"]
     tested = [tt for tt in shown["term_tests"] if tt.get("lr_p_value") is not None]
     assert tested
-    for tt in shown["term_tests"]:
+    dropped = [t for t in shown["term_tests"] if t.get("drop_df") is not None or t.get("drop_note")]
+    assert list(rows) == [t["term"] for t in dropped]
+    for tt in dropped:
         row = rows[tt["term"]]
         if tt.get("drop_deviance") is not None:
             same_number(tt["drop_deviance"], row["drop_deviance"])
