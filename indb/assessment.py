@@ -402,15 +402,14 @@ def _missing(v: Any) -> bool:
 
 
 def gini_of(rows: PartRows) -> float:
-    """1 - 2 x the area under the ordered Lorenz curve of an ordered part: the scan's
-    ``ar`` sums ex (cy before + cy after) per band, so area = sum(ar) / (2 X Y)."""
+    """1 - 2 x the area under the ordered Lorenz curve of an ordered part, from the order
+    scan's ``ta`` (:mod:`indb.plan.assess_order`): Gini = sum(ta) / (X Y) - 1."""
     keyed = ~np.isnan(np.asarray(rows.cols["band"], dtype=float))
     x = float(np.sum(_zero_nan(rows.cols["ex"])[keyed]))
     y = float(np.sum(_zero_nan(rows.cols["ac"])[keyed]))
     if not (x > 0 and y > 0):
         return math.nan
-    area = float(np.sum(_zero_nan(rows.cols["ar"])[keyed])) / (2.0 * x * y)
-    return 1.0 - 2.0 * area
+    return float(np.sum(_zero_nan(rows.cols["ta"])[keyed])) / (x * y) - 1.0
 
 
 def _against(rows: PartRows, j: int) -> float | None:

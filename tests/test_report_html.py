@@ -470,7 +470,7 @@ def test_python_api_and_json_output(built: dict[str, Any], tmp_path: Path) -> No
     result = _run("report", "had", "--db", built["db"], "--on", "fair_hold", "--bands", "4",
                   "--out", tmp_path / "h.html", "--json")  # fmt: skip
     out = _json(result)
-    assert out["model"] == "had" and out["assessed_on"] == "fair_hold" and out["scans"] == 2
+    assert out["model"] == "had" and out["assessed_on"] == "fair_hold" and out["scans"] == 3
     t = read_tables((tmp_path / "h.html").read_text()).tables
     assert len(t["bands"]) == 4
 
@@ -602,7 +602,7 @@ def more(built: dict[str, Any]) -> dict[str, Any]:
         result = _run("report", name, "--db", db, "--out", path, *extra, "--json")
         written = _json(result)
         if extra:
-            assert written["compared_with"] == "children_small:1" and written["scans"] == 2
+            assert written["compared_with"] == "children_small:1" and written["scans"] == 3
         pages[name] = path.read_text(encoding="utf-8")
     return {"db": db, "pages": pages, "recorded": recorded}
 

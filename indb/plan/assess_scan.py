@@ -376,59 +376,62 @@ def null_query(plan: AssessPlan, null: NullModel) -> exp.Select:
     return S.select(cols, S.subquery(rows, "s"))
 
 
-# -- the assessment scan -----------------------------------------------------------------------
+# -- the band scan ----------------------------------------------------------------------------
+
+#: the key each ordered role reads from the scored rows (the others read their ``k<i>``)
+_SRC_KEY = {SCORE: "sc", BEST: "rt", MEAN: "mu", AGAINST: "sc2", RATIO: "lr"}
 
 
-def _window(agg: Expr, partition: str, order: str | None) -> exp.Window:
-    """``agg`` OVER (PARTITION BY partition [ORDER BY order, running total])."""
-    if order is None:
-        return exp.Window(this=agg, partition_by=[S.col(partition)], over="OVER")
-    return exp.Window(
-        this=agg,
-        partition_by=[S.col(partition)],
-        order=exp.Order(expressions=[exp.Ordered(this=S.col(order), nulls_first=False)]),
-        spec=exp.WindowSpec(
-            kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW"
-        ),
-        over="OVER",
-    )
+def part_key(plan: AssessPlan, index: int) -> Expr:
+    """The key of part ``index`` in :func:`scored_rows`: the score, the rate, the mean, the
+    second model's score, the log-ratio, or the column's value (``k<index>``)."""
+    return S.col(_SRC_KEY.get(plan.parts[index].role, _key(index)))
 
 
-def _by_part(parts: tuple[Part, ...], pick: list[int], values: list[Expr], else_: Expr) -> Expr:
-    """CASE g WHEN <mask of part i> THEN values[i] ... ELSE else_ END (``pick``: the parts)."""
-    whens = [
-        (S.eq(S.col("g"), S.integer(part_mask(i, len(parts)))), v)
-        for i, v in zip(pick, values, strict=True)
-    ]
-    return S.case(whens, else_) if whens else else_
+#: per ordered part (its index in ``plan.parts``): its bands in order, each (band, highest key)
+Cuts = dict[int, list[tuple[int, float]]]
 
 
-def assess_query(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
-    """The assessment scan: per part, one row per band (ordered parts) or per level.
+def _key_literal(value: float) -> Expr:
+    if value == float("inf"):
+        return S.double_const("Infinity")
+    if value == float("-inf"):
+        return S.double_const("-Infinity")
+    return S.num(value)
+
+
+def band_of(key: Expr, cuts: list[tuple[int, float]]) -> Expr:
+    """The band of ``key``: the first band whose highest key is >= it (the last band takes
+    the rest); NULL for a NULL key or a part without bands. The highest keys are values the
+    order scan read from the same expressions, so each tie group lands in its own band."""
+    if not cuts:
+        return S.cast(exp.Null(), "INTEGER")
+    whens = [(S.is_null(key.copy()), S.cast(exp.Null(), "INTEGER"))]
+    whens += [(S.le(key.copy(), _key_literal(hi)), S.integer(b)) for b, hi in cuts[:-1]]
+    return S.case(whens, S.integer(cuts[-1][0]))
+
+
+def _grouping_key(plan: AssessPlan, cuts: Cuts, index: int) -> Expr:
+    """Part ``index``'s key in the band scan: its band (ordered) or its level."""
+    if plan.parts[index].ordered:
+        return band_of(part_key(plan, index), cuts.get(index, []))
+    return S.col(_key(index))
+
+
+def assess_query(plan: AssessPlan, cuts: Cuts, null: NullModel | None = None) -> exp.Select:
+    """The band scan: per part, one row per band (ordered parts, cut at ``cuts`` from the
+    order scan, :mod:`indb.plan.assess_order`) or per level.
 
     Columns: ``g`` (the part's GROUPING bitmask, :func:`part_mask`), ``band``, ``lv`` (the
-    level), ``lo``/``hi`` (the band's lowest and highest key), ``n`` (rows), ``nw``
-    (frequency-weighted rows), ``wt`` (sum f pw), ``ex`` (exposure), ``ac`` (actual), ``ep``
-    (expected), ``dv`` (deviance), ``nu`` (rows with an unseen level), ``ar`` (twice the
-    band's area under the ordered Lorenz curve, times total exposure and actual), ``ng`` (tie
-    groups) and, with ``null``, the null model's sums. At most ``max_levels + 1`` rows per
-    part come back.
+    level), ``n`` (rows), ``nw`` (frequency-weighted rows), ``wt`` (sum f pw), ``ex``
+    (exposure), ``ac`` (actual), ``ep`` (expected), ``dv`` (deviance), ``nu`` (rows with an
+    unseen level) and, with ``null``, the null model's sums (with ``plan.against``, also its
+    ``ep2``, ``dv2``, ``nu2``). At most ``max_levels + 1`` rows per part come back.
     """
     parts = plan.parts
     count = len(parts)
     rows = scored_rows(plan, null)
-    # the key of each part in the grouped rows: the score, the rate, the mean, or a column's
-    src_key = {
-        SCORE: S.col("sc"),
-        BEST: S.col("rt"),
-        MEAN: S.col("mu"),
-        AGAINST: S.col("sc2"),
-        RATIO: S.col("lr"),
-    }
-    keyed = [
-        S.alias(src_key[p.role] if p.role in src_key else S.col(_key(i)), _key(i))
-        for i, p in enumerate(parts)
-    ]
+    keyed = [S.alias(_grouping_key(plan, cuts, i), _key(i)) for i, p in enumerate(parts)]
     numbers: list[tuple[str, Expr]] = [
         ("n", S.count_star()),
         ("nw", S.psum(S.col("fw"))),
@@ -457,82 +460,32 @@ def assess_query(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
     sets = exp.GroupingSets(expressions=[exp.Tuple(expressions=[k.copy()]) for k in keys])
     grouped.set("group", exp.Group(grouping_sets=[sets]))
     names = [a for a, _ in numbers]
-    # one key per row: the ordered parts' (a double) and the level parts' (text)
     ordered = [i for i, p in enumerate(parts) if p.ordered]
     leveled = [i for i, p in enumerate(parts) if not p.ordered]
-    k = _by_part(parts, ordered, [S.col(_key(i)) for i in ordered], exp.Null())
+    no_band = S.cast(exp.Null(), "INTEGER")
+    band = _by_part(parts, ordered, [S.col(_key(i)) for i in ordered], no_band)
     lv = _by_part(parts, leveled, [S.col(_key(i)) for i in leveled], S.as_text(exp.Null()))
-    weighted = [i for i, p in enumerate(parts) if p.by_weight]
-    bw = _by_part(parts, weighted, [S.col("wt") for _ in weighted], S.col("ex"))
-    nb = _by_part(
-        parts, ordered, [exp.Literal.number(parts[i].bands) for i in ordered], exp.Literal.number(1)
-    )
-    keyed_rows = S.select(
-        [
-            S.col("g"),
-            S.alias(k, "k"),
-            S.alias(lv, "lv"),
-            *_cols(*names),
-            S.alias(bw, "bw"),
-            S.alias(nb, "nb"),
-        ],
+    flat = S.select(
+        [S.col("g"), S.alias(band, "band"), S.alias(lv, "lv"), *_cols(*names)],
         S.subquery(grouped, "gr"),
     )
-    # running sums along each ordered part's key; a NULL key (a NULL in a banded column)
-    # adds nothing, wherever the engine sorts NULLs
-    has_key = S.not_(S.is_null(S.col("k")))
-
-    def only_keyed(column: str) -> Expr:
-        return S.case([(has_key.copy(), S.col(column))])
-
-    running = S.select(
-        [
-            *_cols("g", "k", "lv", *names, "bw", "nb"),
-            S.alias(_window(S.sum_(only_keyed("bw")), "g", "k"), "cb"),
-            S.alias(_window(S.sum_(only_keyed("ac")), "g", "k"), "cy"),
-            S.alias(_window(S.sum_(only_keyed("bw")), "g", None), "tb"),
-        ],
-        S.subquery(keyed_rows, "kr"),
-    )
-    # a tie group's band holds the midpoint of its exposure; its trapezoid under the
-    # Lorenz curve, times twice the totals: ex (2 cy - ac) = ex (cy before + cy after)
-    mid = S.sub(S.col("cb"), S.div(S.col("bw"), S.num(2.0)))
-    cut = S.add(S.floor_(S.div(S.mul(S.col("nb"), mid), S.col("tb"))), exp.Literal.number(1))
-    band = S.case(
-        [(S.and_(has_key.copy(), S.gt(S.col("tb"), S.num(0.0))), S.least(S.col("nb"), cut))]
-    )
-    area = S.case(
-        [
-            (
-                has_key.copy(),
-                S.mul(S.col("ex"), S.sub(S.mul(S.num(2.0), S.col("cy")), S.col("ac"))),
-            )
-        ]
-    )
-    banded = S.select(
-        [*_cols("g", "k", "lv", *names), S.alias(band, "band"), S.alias(area, "ar")],
-        S.subquery(running, "cr"),
-    )
-    per_band = exp.Select(
-        expressions=[
-            *_cols("g", "band", "lv"),
-            S.alias(S.min_(S.col("k")), "lo"),
-            S.alias(S.max_(S.col("k")), "hi"),
-            *(S.alias(S.sum_(S.col(a)), a) for a in names),
-            S.alias(S.sum_(S.col("ar")), "ar"),
-            S.alias(S.count_star(), "ng"),
-        ]
-    ).from_(S.subquery(banded, "bd"), copy=False)
-    per_band = per_band.group_by(*_cols("g", "band", "lv"), copy=False)
     order = exp.Order(expressions=[exp.Ordered(this=S.col("band")), exp.Ordered(this=S.col("lv"))])
     rank = exp.Window(this=exp.RowNumber(), partition_by=[S.col("g")], order=order, over="OVER")
-    ranked = S.select([exp.Star(), S.alias(rank, "rk")], S.subquery(per_band, "pb"))
-    out = [*_cols("g", "band", "lv", "lo", "hi", *names, "ar", "ng")]
+    ranked = S.select([exp.Star(), S.alias(rank, "rk")], S.subquery(flat, "fl"))
     return S.select(
-        out,
+        _cols("g", "band", "lv", *names),
         S.subquery(ranked, "rb"),
         where=S.le(S.col("rk"), exp.Literal.number(plan.max_levels + 1)),
     )
+
+
+def _by_part(parts: tuple[Part, ...], pick: list[int], values: list[Expr], else_: Expr) -> Expr:
+    """CASE g WHEN <mask of part i> THEN values[i] ... ELSE else_ END (``pick``: the parts)."""
+    whens = [
+        (S.eq(S.col("g"), S.integer(part_mask(i, len(parts)))), v)
+        for i, v in zip(pick, values, strict=True)
+    ]
+    return S.case(whens, else_) if whens else else_
 
 
 def _unseen_rows(column: str) -> Expr:

@@ -1,0 +1,55 @@
+"""Between an assessment's two grouped scans: the bands' cut points from the order scan,
+and the order scan's figures (lowest and highest key, tie groups, the Lorenz sum) joined to
+the band scan's rows. numpy on a few rows per part."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+import numpy as np
+
+from indb.plan.assess_order import order_mask, ordered_parts
+from indb.plan.assess_scan import AssessPlan, Cuts, part_mask
+
+#: the order scan's columns joined to the band scan's rows (NaN for levels, NULL bands)
+ORDER_COLUMNS = ("lo", "hi", "ng", "ta")
+
+
+def _order_rows(plan: AssessPlan, order: Mapping[str, np.ndarray]) -> dict[int, dict[int, int]]:
+    """Per ordered part (its index in ``plan.parts``): band -> row of the order scan."""
+    g = np.asarray(order["g"]).astype(np.int64)
+    band = np.asarray(order["band"], dtype=float)
+    out: dict[int, dict[int, int]] = {}
+    for j, i in enumerate(ordered_parts(plan)):
+        rows = np.flatnonzero((g == order_mask(j, plan)) & ~np.isnan(band))
+        out[i] = {int(band[r]): int(r) for r in rows}
+    return out
+
+
+def band_cuts(plan: AssessPlan, order: Mapping[str, np.ndarray]) -> Cuts:
+    """Per ordered part, its bands in order, each with its highest key (a tie group's key
+    is in one band only, so cutting at the highest keys reproduces the bands)."""
+    hi = np.asarray(order["hi"], dtype=float)
+    return {
+        i: [(b, float(hi[r])) for b, r in sorted(rows.items())]
+        for i, rows in _order_rows(plan, order).items()
+    }
+
+
+def with_order(
+    plan: AssessPlan, cols: Mapping[str, np.ndarray], order: Mapping[str, np.ndarray]
+) -> dict[str, np.ndarray]:
+    """The band scan's columns with ``lo``, ``hi``, ``ng`` and ``ta`` of each ordered part's
+    band from the order scan (NaN for levels and for a part's NULL band)."""
+    g = np.asarray(cols["g"]).astype(np.int64)
+    band = np.asarray(cols["band"], dtype=float)
+    extra = {name: np.full(len(g), np.nan) for name in ORDER_COLUMNS}
+    count = len(plan.parts)
+    for i, rows in _order_rows(plan, order).items():
+        for r in np.flatnonzero((g == part_mask(i, count)) & ~np.isnan(band)):
+            src = rows.get(int(band[r]))
+            if src is None:
+                raise RuntimeError(f"band {int(band[r])} of part {i} is not in the order scan")
+            for name in ORDER_COLUMNS:
+                extra[name][r] = float(order[name][src])
+    return {**cols, **extra}
