@@ -3,10 +3,14 @@
 1. The check scan (:func:`indb.plan.assess_scan.check_items`): rows, NULLs per model input,
    the family's domain checks and the weights; every input mistake is refused here, before
    a deviance is computed (PostgreSQL would raise on the logarithm of a bad value).
-2. The assessment scan (:func:`indb.plan.assess_scan.assess_query`): totals, bands, Gini,
-   levels and calibration in one GROUP BY GROUPING SETS, with the constant-rate model's
-   deviance at the constant the check scan found.
-3. Only when that constant is not exact for the rows used: null scans
+2. The order scan (:func:`indb.plan.assess_order.order_query`): per ordered part (the
+   score, the actual rate, ...) its tie groups in key order, their bands and the Gini's sum;
+   only the key, the exposure and the actual go through the engine's sort.
+3. The band scan (:func:`indb.plan.assess_scan.assess_query`): totals, bands (each row's
+   key cut at the bands' highest keys, :func:`indb.bandcuts.band_cuts`), levels and
+   calibration in one GROUP BY GROUPING SETS, with the constant-rate model's deviance at
+   the constant the check scan found.
+4. Only when that constant is not exact for the rows used: null scans
    (:func:`indb.plan.assess_scan.null_query`), one per IRLS step of the one-parameter model.
 
 With a second model (``against``) both are scored in the same scans, on the rows where both
@@ -437,11 +441,11 @@ def checked_rows(plan: AssessPlan, row: dict[str, object]) -> tuple[int, dict[st
 
 
 def check_scored(plan: AssessPlan, parts: Sequence[PartRows], rows: int, kept: int) -> None:
-    """The assessment scan's counts against the check scan's; too many levels."""
+    """The band scan's counts against the check scan's; too many levels."""
     where = f"the source {plan.ctx.spec.source.label()!r}"
     if rows > kept:
         raise NondeterministicSourceError(
-            f"{where} is not deterministic: the assessment scan counted {rows:,} rows where "
+            f"{where} is not deterministic: the band scan counted {rows:,} rows where "
             f"the check scan counted {kept:,}; store the rows first (CREATE TABLE ... AS)"
         )
     if rows == 0:
@@ -481,7 +485,7 @@ def null_deviance(
 ) -> tuple[float, int, list[str]]:
     """(the constant-rate model's deviance, extra scans run, notes).
 
-    The assessment scan summed it at the check scan's constant; that is the answer when the
+    The band scan summed it at the check scan's constant; that is the answer when the
     constant has a closed form and every kept row got a mean (``exact``). Otherwise the
     weighted mean of the rows used (no offset) is scanned once more, or the one-parameter
     model with the offset is fitted by IRLS (:class:`indb.nullmodel.NullTrack`), a null scan

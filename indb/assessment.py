@@ -1,5 +1,5 @@
 """An assessment of a stored model on new rows: the result objects and the numpy step that
-turns the assessment scan's grouped rows into them (no I/O).
+turns the band and order scans' grouped rows into them (no I/O).
 
 Definitions (``indb assess``; see docs/assessing-models.md):
 
@@ -356,7 +356,8 @@ def worst_level_deviation(
 
 @dataclass(frozen=True)
 class PartRows:
-    """The assessment scan's rows of one part, as numpy arrays (see
+    """The band scan's rows of one part, with the order scan's ``lo``, ``hi``, ``ng`` and
+    ``ta``, as numpy arrays (see
     :func:`indb.plan.assess_scan.assess_query` for the columns)."""
 
     part: Part
@@ -375,7 +376,7 @@ def _zero_nan(a: np.ndarray) -> np.ndarray:
 
 
 def split_parts(parts: Sequence[Part], cols: Mapping[str, np.ndarray]) -> list[PartRows]:
-    """The fetched rows of the assessment scan, per part (rows in band, then level order)."""
+    """The fetched rows of the band scan, per part (rows in band, then level order)."""
     g = np.asarray(cols["g"]).astype(np.int64)
     out = []
     for i, part in enumerate(parts):

@@ -8,6 +8,7 @@ from collections.abc import Mapping
 
 import numpy as np
 
+from indb.errors import NondeterministicSourceError
 from indb.plan.assess_order import order_mask, ordered_parts
 from indb.plan.assess_scan import AssessPlan, Cuts, part_mask
 
@@ -49,7 +50,11 @@ def with_order(
         for r in np.flatnonzero((g == part_mask(i, count)) & ~np.isnan(band)):
             src = rows.get(int(band[r]))
             if src is None:
-                raise RuntimeError(f"band {int(band[r])} of part {i} is not in the order scan")
+                raise NondeterministicSourceError(
+                    f"the source {plan.ctx.spec.source.label()!r} is not deterministic: "
+                    f"the band scan found band {int(band[r])} of part {i}, which the order "
+                    "scan did not; store the rows first (CREATE TABLE ... AS)"
+                )
             for name in ORDER_COLUMNS:
                 extra[name][r] = float(order[name][src])
     return {**cols, **extra}

@@ -12,5 +12,7 @@ Nothing here touches a connection. One module per query family:
   per-row stages it shares with the log-likelihood and theta queries;
 * :mod:`~indb.plan.log_scan`: the log-link scan with the factor effects multiplied in later.
 * :mod:`~indb.plan.assess_scan`: a stored model judged on new rows (the check items, the
-  GROUPING SETS scan with window sums over tie groups, the constant-rate model's scan).
+  band scan, the constant-rate model's scan); :mod:`~indb.plan.assess_order`: its order scan
+  (tie groups, a running sum of exposure along each ordered part, the bands' edges and the
+  Gini's sum).
 """

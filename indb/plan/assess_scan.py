@@ -4,24 +4,26 @@ Every query reads the same per-row stages (:func:`scored_rows`): the model's mea
 (offset included) and score (the mean without the offset) from the scoring view's own
 expressions, and per row the weight f pw, the actual f pw y, the expected f pw mu, the
 deviance f pw d(y, mu) and the exposure (f exp(offset) for a log link with an offset, else
-f pw). Three queries:
+f pw). Four queries:
 
 * the check scan: :func:`indb.plan.profile.profile_query` over :func:`check_items` (rows,
   NULLs per model input, the family's domain checks, weights, and the sums that give the
   constant-rate model in closed form);
-* the assessment scan (:func:`assess_query`): one GROUP BY GROUPING SETS over the scored
-  rows, one grouping set per :class:`Part`: the tie groups of the score, of the actual rate
-  (the best possible ordering), of the predicted mean (a binomial model with an offset), of
-  each numeric column cut into bands, and the levels of each categorical column. Window sums
-  over each ordered part's tie groups in key order give every group its cumulative exposure
-  and actual, hence its band (equal exposure, a tie group never split) and its trapezoid
-  under the ordered Lorenz curve. One row per band and per level comes back;
+* the order scan (:func:`indb.plan.assess_order.order_query`): for each ordered
+  :class:`Part` (the score, the actual rate: the best possible ordering, the predicted mean
+  of a binomial model with an offset, each numeric column cut into bands) its tie groups,
+  a running sum of exposure along its key, hence each group's band (equal exposure, a tie
+  group never split) and the sum that gives the Gini; per band its lowest and highest key;
+* the band scan (:func:`assess_query`): one GROUP BY GROUPING SETS over the scored rows,
+  one grouping set per part: each ordered part's band (its key cut at the bands' highest
+  keys, :func:`band_of`) and each categorical column's level, with every sum. One row per
+  band and per level comes back;
 * the null scan (:func:`null_query`): the constant-rate model's deviance, and one IRLS step
   of it where it has no closed form, over the same rows.
 
 A second model (``--against``, :class:`Against`) is scored in the same scans: its mean and
 score sit beside the first model's in :func:`scored_rows`, its expected and deviance are
-summed by every grouping set, and two more ordered parts order the rows by its score (its
+summed by every grouping set of the band scan, and two more ordered parts order the rows by its score (its
 Gini and bands) and by the log-ratio of the two scores (the double-lift table).
 """
 
