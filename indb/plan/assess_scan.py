@@ -23,8 +23,9 @@ f pw). Four queries:
 
 A second model (``--against``, :class:`Against`) is scored in the same scans: its mean and
 score sit beside the first model's in :func:`scored_rows`, its expected and deviance are
-summed by every grouping set of the band scan, and two more ordered parts order the rows by its score (its
-Gini and bands) and by the log-ratio of the two scores (the double-lift table).
+summed by every grouping set of the band scan, and two more ordered parts order the rows
+by its score (its Gini and bands) and by the log-ratio of the two scores (the double-lift
+table).
 """
 
 from __future__ import annotations
