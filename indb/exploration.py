@@ -1,6 +1,6 @@
 """One-way exploration of a response before any model: per level of each categorical column
 and per quantile band of each numeric column, the rows, exposure, Σ weight·response and the
-observed rate, from two scans of the source (:mod:`indb.plan.explore_scan`).
+observed rate, from three scans of the source (:mod:`indb.plan.explore_scan`).
 
 The observed rate of a group is Σ w·y / Σ w·exp(offset) (w = 1 without a weight; without an
 offset, Σ w·y / Σ w): the rate a log-link model with only an intercept fits to the group's
@@ -13,7 +13,7 @@ from __future__ import annotations
 import dataclasses
 import math
 import time
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -30,9 +30,10 @@ from indb.prefit import source_columns
 from indb.spec import ModelSpec, Source
 from indb.sqlexpr import EXP_FINITE_MAX
 
-#: scans of the source an exploration makes (the profile with the band edges, and the one
-#: GROUPING SETS scan); describing the source's columns runs nothing
-SCANS = 2
+#: scans of the source an exploration makes (the profile, the order statistics that give
+#: the band edges of numeric columns, and the one GROUPING SETS scan); describing the
+#: source's columns runs nothing
+SCANS = 3
 
 
 @dataclass(frozen=True)
@@ -214,9 +215,14 @@ def explore_source(
     t0 = time.perf_counter()
     ctx, columns = _resolve(engine, source, response, offset, weight, by, exclude, categorical)
     numerics = [name for name, kind in columns if kind == X.NUMERIC]
-    profile = _one_row(engine, X.explore_profile_query(ctx, numerics, bands))
+    profile = _one_row(engine, X.explore_profile_query(ctx, numerics))
     rows_read, rows_used, excluded = _check_profile(ctx, profile)
-    ranges = {c: _cuts(profile, i, bands) for i, c in enumerate(numerics)}
+    stats = {}
+    if numerics:
+        stats = engine.fetch_columns(
+            engine.dialect.render(X.explore_cuts_query(ctx, numerics, bands))
+        )
+    ranges = {c: _cuts(profile, stats, i, bands) for i, c in enumerate(numerics)}
     cuts = {c: r[0] for c, r in ranges.items()}
     found = engine.fetch_columns(
         engine.dialect.render(X.explore_grouped_query(ctx, columns, cuts, max_shown))
@@ -248,6 +254,7 @@ def explore_source(
         columns=per_column,
         bands=bands,
         max_shown=max_shown,
+        scans=scans_of(numerics),
         seconds=time.perf_counter() - t0,
     )
 
@@ -359,16 +366,50 @@ def _check_profile(ctx: PlanContext, row: dict[str, Any]) -> tuple[int, int, dic
     return rows_read, rows_used, excluded
 
 
+def scans_of(numerics: Sequence[str]) -> int:
+    """Scans of the source: the profile, the order statistics (with a numeric column) and
+    the GROUPING SETS scan."""
+    return SCANS if numerics else SCANS - 1
+
+
 def _cuts(
-    row: dict[str, Any], i: int, bands: int
+    row: dict[str, Any], stats: Mapping[str, np.ndarray], i: int, bands: int
 ) -> tuple[tuple[float, ...], float | None, float | None]:
     """The i-th numeric column's distinct quantile cut points, smallest and largest finite
     value (no cuts and None without a finite value)."""
     lo, hi = row[f"lo_{i}"], row[f"hi_{i}"]
     if lo is None or not math.isfinite(float(lo)):
         return (), None, None
-    qs = [float(row[f"q_{i}_{k}"]) for k in range(bands - 1)]
+    qs = [_quantile(stats, i, q) for q in X.band_quantiles(bands)]
     return tuple(sorted(set(qs))), float(lo), float(hi)
+
+
+def _quantile(stats: Mapping[str, np.ndarray], i: int, q: float) -> float:
+    """Quantile ``q`` of column i from the values around its order statistics
+    (:func:`indb.plan.explore_scan.explore_cuts_query`), as numpy.quantile's default
+    'linear' method computes it: h = (n - 1) q, x[floor h] and x[floor h + 1] interpolated
+    with numpy's two-sided lerp (exact at both ends)."""
+    mine = np.asarray(stats[X.COLUMN]).astype(np.int64) == i
+    values = np.asarray(stats[X.VALUE], dtype=float)[mine]
+    up_to = np.asarray(stats[X.UP_TO]).astype(np.int64)[mine]
+    count = np.asarray(stats[X.COUNT]).astype(np.int64)[mine]
+    n = int(np.asarray(stats[X.FINITE]).astype(np.int64)[mine][0])
+
+    def at(rank: int) -> float:
+        hit = np.flatnonzero((up_to - count <= rank) & (rank < up_to))
+        if len(hit) != 1:
+            raise NondeterministicSourceError(
+                f"the order statistics scan did not return rank {rank} of {n} values; "
+                "the source must give the same rows every time it is read"
+            )
+        return float(values[hit[0]])
+
+    h = (n - 1) * q
+    if h >= n - 1:
+        return at(n - 1)
+    below = math.floor(h)
+    a, b, t = at(below), at(below + 1), h - below
+    return b - (b - a) * (1 - t) if t >= 0.5 else a + (b - a) * t
 
 
 def _assemble(

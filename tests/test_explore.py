@@ -279,8 +279,9 @@ def test_quotes_and_unicode_in_names_and_levels(con: duckdb.DuckDBPyConnection) 
     )
 
 
-def test_two_scans_and_nothing_written(con: duckdb.DuckDBPyConnection) -> None:
-    # the documented cost: a profile scan and one GROUPING SETS scan (describing runs nothing)
+def test_three_scans_and_nothing_written(con: duckdb.DuckDBPyConnection) -> None:
+    # the documented cost: a profile scan, the order statistics of the numeric columns and one
+    # GROUPING SETS scan (describing runs nothing); without a numeric column, two scans
     load(con, policies_with_nulls())
     engine = DuckDBEngine(con)
     sent: list[str] = []
@@ -293,8 +294,12 @@ def test_two_scans_and_nothing_written(con: duckdb.DuckDBPyConnection) -> None:
     engine.fetch_columns = counted  # type: ignore[method-assign]
     tables = con.execute("SELECT count(*) FROM duckdb_tables()").fetchone()
     found = indb.explore("policies", "claim_count", offset="ln(exposure)", db=engine)
+    assert len(sent) == found.scans == 3
+    assert "GROUPING SETS" in sent[2] and "GROUPING SETS" not in sent[0]
+    assert "OVER" in sent[1] and "QUANTILE" not in " ".join(sent).upper()
+    sent.clear()
+    found = indb.explore("policies", "claim_count", by=["region"], db=engine)
     assert len(sent) == found.scans == 2
-    assert "GROUPING SETS" in sent[1] and "GROUPING SETS" not in sent[0]
     assert con.execute("SELECT count(*) FROM duckdb_tables()").fetchone() == tables
 
 
@@ -397,7 +402,7 @@ def test_cli_json_is_the_api_result(db_file: str) -> None:
     assert _rounded(got) == _rounded(json.loads(json.dumps(want)))
     region = got["columns"][0]
     assert region["other"]["levels"] == 3 and region["levels"][-1]["level"] is None
-    assert got["scans"] == 2 and got["exposure_basis"] == "exp(offset)"
+    assert got["scans"] == 3 and got["exposure_basis"] == "exp(offset)"
 
 
 def _rounded(value: Any) -> Any:

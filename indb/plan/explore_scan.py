@@ -1,9 +1,13 @@
-"""The queries of a one-way exploration (``indb explore``): two scans of the source.
+"""The queries of a one-way exploration (``indb explore``): three scans of the source.
 
 1. :func:`explore_profile_query`: row counts, the rows set aside for a NULL response, offset
    or weight, the checks on those three (finite, weight >= 0, exp(offset) finite), and for
-   every numeric column its range and the quantiles that cut it into bands;
-2. :func:`explore_grouped_query`: one GROUP BY GROUPING SETS scan with one set per explored
+   every numeric column its range;
+2. :func:`explore_cuts_query` (with a numeric column): each numeric column's distinct
+   values around the order statistics its band quantiles interpolate between, from its
+   values grouped and counted cumulatively in the engine (which sorts and spills within
+   its memory limit, where an exact quantile aggregate would hold every value);
+3. :func:`explore_grouped_query`: one GROUP BY GROUPING SETS scan with one set per explored
    column and the grand total, each group's rows, exposure and Σ weight·response; the
    levels of a categorical column beyond the ``cap`` with the most exposure are summed into
    one row in the engine, so a column with a million distinct values returns ``cap + 1``
@@ -89,15 +93,11 @@ NOT_FINITE = {"response": "bad_response", "offset": "bad_offset", "weight": "bad
 NEGATIVE_WEIGHT, OFFSET_MAX = "neg_weight", "offset_max"
 
 
-def explore_profile_query(ctx: PlanContext, numerics: Sequence[str], bands: int) -> exp.Select:
+def explore_profile_query(ctx: PlanContext, numerics: Sequence[str]) -> exp.Select:
     """One scan: total and used rows, NULL counts of response/offset/weight over all rows,
     their non-finite counts, negative weights and the largest offset over used rows, and for
-    the i-th of ``numerics`` the smallest (``lo_i``) and largest (``hi_i``) finite value and
-    its :func:`band_quantiles` (``q_i_k``) over the used rows with a finite value.
-
-    The quantiles interpolate linearly between order statistics (numpy's default 'linear'
-    method; DuckDB ``quantile_cont``, PostgreSQL ``percentile_cont``, Spark ``percentile``).
-    """
+    the i-th of ``numerics`` the smallest (``lo_i``) and largest (``hi_i``) finite value over
+    the used rows."""
     values = {"response": _response(ctx), "offset": ctx.raw_offset(), "weight": ctx.raw_weight()}
     given = {k: v for k, v in values.items() if v is not None}
     inner_cols = [S.alias(S.flag(used_rows(ctx)), "u")]
@@ -124,13 +124,96 @@ def explore_profile_query(ctx: PlanContext, numerics: Sequence[str], bands: int)
         x = S.col(f"x{i}")
         finite = S.case([(S.and_(used.copy(), S.is_finite(x.copy())), x.copy())])
         cols.append(S.alias(S.min_(finite.copy()), f"lo_{i}"))
-        cols.append(S.alias(S.max_(finite.copy()), f"hi_{i}"))
-        quantiles = ctx.dialect.quantiles(finite, band_quantiles(bands))
-        cols += [S.alias(q, f"q_{i}_{k}") for k, q in enumerate(quantiles)]
+        cols.append(S.alias(S.max_(finite), f"hi_{i}"))
     return S.select(cols, S.subquery(inner, "xp"))
 
 
-# -- scan 2: one GROUPING SETS scan ------------------------------------------------------------
+# -- scan 2: the order statistics the band edges need ----------------------------------------
+
+#: columns of the order-statistics result: the column's index, a distinct value, its rows,
+#: the rows up to and including it, and the column's finite values in all
+COLUMN, VALUE, COUNT, UP_TO, FINITE = "col", "v", "c", "cum", "nf"
+
+
+def explore_cuts_query(ctx: PlanContext, numerics: Sequence[str], bands: int) -> exp.Select:
+    """The distinct values around the order statistics that the :func:`band_quantiles` of
+    each of ``numerics`` interpolate between, over the used rows with a finite value.
+
+    One GROUP BY GROUPING SETS gives each column's distinct values and their rows; a window
+    sum in value order their cumulative rows (``cum``) and one over the column its finite
+    rows (``nf``). With h = (nf - 1) q for a quantile q, the rows kept hold the 0-based ranks
+    floor(h) - 1 to floor(h) + 2 (a margin for how an engine rounds h): at most a few rows
+    per quantile. The engine groups, sorts and spills as its memory allows; no aggregate
+    holds a column's values (exact quantile aggregates do, which breaks on large tables).
+    """
+    keys = [f"x{i}" for i in range(len(numerics))]
+    inner = S.select(
+        [
+            S.alias(S.case([(S.is_finite(S.as_double(S.col(c))), S.as_double(S.col(c)))]), k)
+            for k, c in zip(keys, numerics, strict=True)
+        ],
+        ctx.source(),
+        where=used_rows(ctx),
+    )
+    grouped = exp.Select(
+        expressions=[
+            S.alias(
+                S.case(
+                    [
+                        (S.eq(_grouping(S.col(k)), S.integer(0)), S.integer(i))
+                        for i, k in enumerate(keys)
+                    ]
+                ),
+                COLUMN,
+            ),
+            S.alias(_first([S.col(k) for k in keys], "DOUBLE"), VALUE),
+            S.alias(S.count_star(), COUNT),
+        ]
+    ).from_(S.subquery(inner, "xq"), copy=False)
+    sets = [exp.Tuple(expressions=[S.col(k)]) for k in keys]
+    grouped.set("group", exp.Group(grouping_sets=[exp.GroupingSets(expressions=sets)]))
+    valued = S.select(
+        [S.col(COLUMN), S.col(VALUE), S.col(COUNT)],
+        S.subquery(grouped, "xg"),
+        where=S.not_(S.is_null(S.col(VALUE))),
+    )
+    by_value = exp.Window(
+        this=S.sum_(S.col(COUNT)),
+        partition_by=[S.col(COLUMN)],
+        order=exp.Order(expressions=[exp.Ordered(this=S.col(VALUE))]),
+        spec=exp.WindowSpec(
+            kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW"
+        ),
+        over="OVER",
+    )
+    whole = exp.Window(this=S.sum_(S.col(COUNT)), partition_by=[S.col(COLUMN)], over="OVER")
+    running = S.select(
+        [
+            *(S.col(n) for n in (COLUMN, VALUE, COUNT)),
+            S.alias(by_value, UP_TO),
+            S.alias(whole, FINITE),
+        ],
+        S.subquery(valued, "xv"),
+    )
+    first, last = S.sub(S.col(UP_TO), S.col(COUNT)), S.sub(S.col(UP_TO), S.integer(1))
+    near = []
+    for q in band_quantiles(bands):
+        h = S.floor_(S.mul(S.sub(S.as_double(S.col(FINITE)), S.num(1.0)), S.num(q)))
+        # the value's ranks [first, last] meet [floor(h) - 1, floor(h) + 2]
+        near.append(
+            S.and_(
+                S.le(first.copy(), S.add(h.copy(), S.num(2.0))),
+                S.ge(last.copy(), S.sub(h, S.num(1.0))),
+            )
+        )
+    return S.select(
+        [S.col(n) for n in (COLUMN, VALUE, COUNT, UP_TO, FINITE)],
+        S.subquery(running, "xr"),
+        where=S.or_(*near),
+    )
+
+
+# -- scan 3: one GROUPING SETS scan ------------------------------------------------------------
 
 #: the slot of the row that sums a categorical column's levels beyond the cap (ranks
 #: count from 1)
