@@ -107,8 +107,17 @@ def main() -> None:
                 capture_output=True,
                 text=True,
                 env=env,
-                check=True,
+                check=False,
             )
+            if out.returncode != 0:
+                # the row says how it failed (out of memory, say) and the run goes on
+                last = (out.stderr.strip().splitlines() or ["no message"])[-1][:160]
+                lines.append(
+                    f"| {rows:.0e} | {', '.join(by) or '-'} | {against or '-'} | {floor:.3f} | "
+                    f"failed: {last} | | | | |"
+                )
+                print(lines[-1], flush=True)
+                continue
             m = json.loads(out.stdout.strip().splitlines()[-1])
             lines.append(
                 f"| {rows:.0e} | {', '.join(by) or '-'} | {against or '-'} | {floor:.3f} | "

@@ -537,7 +537,8 @@ def explore(
 ) -> Exploration:
     """One-way figures of ``response`` before a model: per level of each categorical column
     and per quantile band of each numeric column, the rows, exposure, Σ weight x response
-    and the observed rate, in two scans of ``source`` inside the database.
+    and the observed rate, in three scans of ``source`` inside the database (two without a
+    numeric column).
 
     The columns explored are ``by`` or, by default, those a fit would take as predictors
     (every column but the response and the columns the offset and weight read, less

@@ -43,7 +43,7 @@ def explore_command(source: str, as_json: bool, quiet: bool, **options: Any) -> 
     """Per level of each categorical column and per quantile band of each numeric column of
     SOURCE: rows, exposure, actual (the sum of weight x response), rate (actual / exposure).
 
-    Two scans of SOURCE inside the database; nothing is written. Rows with a NULL response,
+    Three scans of SOURCE inside the database; nothing is written. Rows with a NULL response,
     offset or weight are set aside and counted; NULL in an explored column is a level.
     """
     # imported here so that this command stays one block of this module
