@@ -31,14 +31,14 @@ from sqlglot import exp
 from indb import sqlexpr as S
 from indb import writeback as W
 from indb.assessment import AssessResult, Header, PartRows, finish, split_parts
-from indb.bandcuts import band_cuts, with_order
+from indb.bandcuts import band_cuts, order_rows, with_order
 from indb.design import RESERVED_PREFIX, Inputs
 from indb.engines.base_dialect import Dialect
 from indb.engines.base_engine import Engine
 from indb.errors import EngineError, NondeterministicSourceError, RegistryError, SpecError
 from indb.fitrun import fetched_count
 from indb.nullmodel import NullTrack, start_intercept
-from indb.plan.assess_order import order_query
+from indb.plan.assess_order import order_query, order_scans
 from indb.plan.assess_scan import (
     LEVELS,
     SCORE,
@@ -59,7 +59,9 @@ from indb.spec import ModelSpec, Source
 
 #: IRLS steps of the constant-rate model with an offset, when it has no closed form
 #: scans of an assessment when the constant-rate model needs no scan of its own: the check,
-#: the order and the band scan
+#: the order and the band scan (one more order scan for each part of
+#: :data:`indb.plan.assess_order.LARGE`: a binomial model's mean with an offset, and with a
+#: second model its score and the ratio of the scores)
 SCANS = 3
 NULL_MAX_STEPS = 30
 NULL_TOL = 1e-10
@@ -182,8 +184,13 @@ def assess_version(
     check = _one_row(engine, profile_query(ctx, check_items(plan)))
     kept, nulls = checked_rows(plan, check)
     null = start_null_model(plan, check)
-    order = engine.fetch_columns(d.render(order_query(plan)))
-    cols = engine.fetch_columns(d.render(assess_query(plan, band_cuts(plan, order), null)))
+    order = order_rows(
+        [
+            (picked, engine.fetch_columns(d.render(order_query(plan, picked))))
+            for picked in order_scans(plan)
+        ]
+    )
+    cols = engine.fetch_columns(d.render(assess_query(plan, band_cuts(order), null)))
     parts = split_parts(plan.parts, with_order(plan, cols, order))
     score = next(p for p in parts if p.part.role == SCORE)
     rows = int(score.total("n"))
@@ -207,7 +214,7 @@ def assess_version(
         header,
         parts,
         null_dev,
-        scans=SCANS + extra,
+        scans=SCANS - 1 + len(order_scans(plan)) + extra,
         seconds=time.perf_counter() - t0,
         notes=notes,
     )

@@ -602,7 +602,7 @@ def more(built: dict[str, Any]) -> dict[str, Any]:
         result = _run("report", name, "--db", db, "--out", path, *extra, "--json")
         written = _json(result)
         if extra:
-            assert written["compared_with"] == "children_small:1" and written["scans"] == 3
+            assert written["compared_with"] == "children_small:1" and written["scans"] == 5
         pages[name] = path.read_text(encoding="utf-8")
     return {"db": db, "pages": pages, "recorded": recorded}
 

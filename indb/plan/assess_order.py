@@ -32,13 +32,30 @@ from __future__ import annotations
 from sqlglot import exp
 
 from indb import sqlexpr as S
-from indb.plan.assess_scan import AssessPlan, part_key, part_mask, scored_rows
+from indb.plan.assess_scan import (
+    AGAINST,
+    MEAN,
+    RATIO,
+    AssessPlan,
+    part_key,
+    part_mask,
+    scored_rows,
+)
 from indb.sqlexpr import Expr
 
+#: ordered roles whose key usually takes about one value per row (a model's score or mean,
+#: the ratio of two scores): each gets an order scan of its own, so that one sort of that
+#: size at a time shares the engine's memory (three in one query ran out of a 512 MB DuckDB
+#: limit at 10^8 rows)
+LARGE = (MEAN, AGAINST, RATIO)
 
-def ordered_parts(plan: AssessPlan) -> list[int]:
-    """The indices (in ``plan.parts``) of the ordered parts: the order scan's keys."""
-    return [i for i, p in enumerate(plan.parts) if p.ordered]
+
+def order_scans(plan: AssessPlan) -> list[list[int]]:
+    """The ordered parts (indices in ``plan.parts``) of each order scan: the score with the
+    actual rate and the banded columns, then each part of :data:`LARGE` alone."""
+    ordered = [i for i, p in enumerate(plan.parts) if p.ordered]
+    first = [i for i in ordered if plan.parts[i].role not in LARGE]
+    return [first] + [[i] for i in ordered if plan.parts[i].role in LARGE]
 
 
 def _cols(*names: str) -> list[Expr]:
@@ -70,12 +87,13 @@ def _by_mask(masks: list[int], values: list[Expr], else_: Expr) -> Expr:
     return S.case(whens, else_) if whens else else_
 
 
-def order_query(plan: AssessPlan) -> exp.Select:
-    """The order scan: per ordered part and band, ``g`` (the part's GROUPING bitmask among
-    the ordered parts, :func:`order_mask`), ``band``, ``lo``, ``hi``, ``ng`` and ``ta``.
+def order_query(plan: AssessPlan, ordered: list[int]) -> exp.Select:
+    """The order scan of the ordered parts ``ordered`` (indices in ``plan.parts``, one list
+    of :func:`order_scans`): per part and band, ``g`` (the part's GROUPING bitmask among
+    ``ordered``: :func:`indb.plan.assess_scan.part_mask` of its position), ``band``, ``lo``,
+    ``hi``, ``ng`` and ``ta``.
     The band of a part's NULL keys (a NULL banded value, no ratio of the scores) is NULL."""
     parts = plan.parts
-    ordered = ordered_parts(plan)
     count = len(ordered)
     inner = S.select(
         [
@@ -145,8 +163,3 @@ def order_query(plan: AssessPlan) -> exp.Select:
         ]
     ).from_(S.subquery(banded, "bd"), copy=False)
     return per_band.group_by(*_cols("g", "band"), copy=False)
-
-
-def order_mask(j: int, plan: AssessPlan) -> int:
-    """The order scan's ``g`` of the ``j``-th ordered part."""
-    return part_mask(j, len(ordered_parts(plan)))

@@ -246,7 +246,7 @@ def test_against_and_double_lift(loader: Loader, fitted: dict[str, Any], tmp_pat
     ]
     assert_allclose([r["deviance"] for r in kept], [a.deviance, a.against.deviance], rtol=1e-15)
     _same(loader, a, ref, "children against")
-    assert a.scans == 3
+    assert a.scans == 5
     for key in ("expected", "deviance", "gini", "gini_normalized", "deviance_explained"):
         got, want = getattr(a.against, key), getattr(ref.against, key)
         assert_allclose(got, want, rtol=SAME_RTOL, err_msg=key)
@@ -341,7 +341,7 @@ def test_holdout_gates_hold_a_drifted_refit(loader: Loader, tmp_path: Path) -> N
     for got, want in zip(second.checks, ref_second.checks, strict=True):
         assert_allclose(got.value, want.value, rtol=1e-9, err_msg=got.gate)
     a, ref = second.holdout, ref_second.holdout
-    assert a.scans == 3 and (a.version, a.against.version) == (2, 1)
+    assert a.scans == 5 and (a.version, a.against.version) == (2, 1)
     for key in ("deviance", "gini", "expected"):
         assert_allclose(getattr(a, key), getattr(ref, key), rtol=SAME_RTOL, err_msg=key)
         assert_allclose(
