@@ -209,9 +209,11 @@ def main() -> None:
     lines += [
         "",
         "The report reads nothing of the training rows; with `--on` it runs the assessment's "
-        "scans of the holdout (a check scan and one GROUPING SETS scan; the model's numeric "
-        "columns are banded in the same scan); `--against` scores the second model in those "
-        "same two scans (no scan of its own). *assessment / floor* is the assessment's time "
+        "scans of the holdout (a check scan, an order scan that sorts the tie groups of the "
+        "score and the actual rate and bands the model's numeric columns, and a band scan "
+        "that takes every sum); `--against` scores the second model in the check and band "
+        "scans and adds an order scan each for its score and for the ratio of the two "
+        "scores. *assessment / floor* is the assessment's time "
         "over one plain scan of the holdout's columns: the target is under 3. *gather* is the "
         "registry read plus the assessment; *drawing* is matplotlib drawing every chart to "
         "SVG and the page's layout.",
