@@ -70,6 +70,9 @@ PHASES = {
     "theta": ("^", "-.", REFERENCE, "theta scans"),
     "sample": ("s", ":", GUIDE, "sample-start scans"),
     "null": ("D", "--", ACTUAL, "null-model scans"),
+    # scans that fit several models at once report the largest change among them
+    "drop_one": ("X", ":", INK, "drop-one scans (largest change of the reduced models)"),
+    "cv": ("P", ":", REFERENCE, "cross-validation scans (largest change of the folds)"),
 }
 #: the phases whose deviance is the model's on all rows (drawn in the upper panel)
 FULL_MODEL = ("fit", "theta")
@@ -102,7 +105,7 @@ def iteration_chart(
                 scan[ok],
                 rel[ok],
                 marker=marker,
-                markersize=4,
+                markersize=6 if name not in FULL_MODEL else 4,
                 linestyle=line,
                 color=colour,
                 label=label,
@@ -122,7 +125,8 @@ def iteration_chart(
     top.legend(loc="upper right")
     if bottom.lines:
         bottom.set_yscale("log")
-        bottom.legend(loc="upper right")
+        # where it covers the fewest points (a batch scan's point sits at the right end)
+        bottom.legend(loc="best")
     bottom.set_ylabel("relative change\n(log scale)")
     bottom.set_xlabel("scan of the data (number)")
     bottom.xaxis.get_major_locator().set_params(integer=True)

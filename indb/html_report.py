@@ -293,6 +293,23 @@ def _quality_section(r: FitResult) -> str:
     return kv_table("quality", rows) + _iteration_box(r) + term_tests_block(r)
 
 
+#: what the scans of a phase other than the model's own fit are, for the trace's caption
+_PHASE_NOTES = {
+    "sample": "a sample start reads fewer rows",
+    "null": "the null scans fit the intercept-only model for the null deviance",
+    "drop_one": (
+        "a drop-one scan fits every reduced model of the drop-one tests at once, so it has "
+        "no single deviance; its relative change is the largest among those models, none "
+        "on the scan that starts them"
+    ),
+    "cv": (
+        "a cross-validation scan fits the folds' models at once; its relative change is "
+        "the largest among them"
+    ),
+    "cv_score": "a held-out scan sums each fold's deviance on its own rows",
+}
+
+
 def _iteration_box(r: FitResult) -> str:
     log = list(r.iteration_log)
     if not log:
@@ -322,11 +339,11 @@ def _iteration_box(r: FitResult) -> str:
     )
     others = [p for p in counts if p not in C.FULL_MODEL]
     if others:
+        what = ", ".join(_PHASE_NOTES[p] for p in others if p in _PHASE_NOTES)
         caption += (
             " The upper panel shows the model's deviance on all rows; the "
-            f"{' and '.join(others)} scans (a sample start reads fewer rows, the null "
-            "scans fit the intercept-only model for the null deviance) appear in the lower "
-            "panel and the table."
+            f"{' and '.join(others)} scans appear in the lower panel and the table"
+            + (f" ({what})." if what else ".")
         )
     caption += f" {halved} scan(s) halved the step."
     return chart_box("iterations", "Iteration trace", svg, caption, table("iterations", cols, rows))
