@@ -142,6 +142,9 @@ class IrlsSolver:
         # errors) that leads to it
         self.carry = False
         self.next_step = math.inf
+        #: the step solved from the scan before the last (None after a halving), whose
+        #: ratio to the last gives a linearly converging fit's rate
+        self.prev_step: np.ndarray | None = None
         self.penalty = penalty
         #: a penalised loop may also stop on the next step's predicted gain (settled)
         self.predicted_settle = False
@@ -231,6 +234,7 @@ class IrlsSolver:
         self.iterations = 0
         self.converged = self.stalled = False
         self.null_mu = self.null_track = None
+        self.prev_step = None
         return self
 
     def start_warm(self, warm: IrlsState) -> None:
@@ -295,15 +299,19 @@ class IrlsSolver:
         settled = self.settled(change, current)
         if settled or self.covariance:
             self.next_step = self.step_size()
+        step = self.sol.beta - self.beta
         if settled and self.next_step < self.step_tol:
             # The update solved from this scan is already paid for: taking it brings the
-            # estimates to the numerical limit (Newton converges quadratically, Fisher
-            # scoring by its rate) at no scan. Deviance, dispersion and X'WX stay the scan's;
-            # a step this small (< step_tol standard errors) moves the deviance by ~its
-            # square, far below the reported digits.
+            # estimates to the numerical limit at no scan. Newton converges quadratically;
+            # Fisher scoring (a non-canonical link) linearly, so the steps it would still
+            # take are added from the rate of the last two (solver.tail_factor). Deviance,
+            # dispersion and X'WX stay the scan's; a step this small (< step_tol standard
+            # errors) moves the deviance by ~its square, far below the reported digits.
             self.converged = True
-            self.beta = self.sol.beta
+            prev = self.prev_step if halvings == 0 and self.penalty is None else None
+            self.beta = self.beta + solver.tail_factor(step, prev, self.sol.inv_info) * step
             return True
+        self.prev_step = step if halvings == 0 else None
         self.dev_old = current
         self.beta_prev = self.beta
         self.beta = self.sol.beta

@@ -303,6 +303,40 @@ def step_in_se(old: np.ndarray, new: np.ndarray, inv_info: InverseInfo, dispersi
     return float(np.max(np.abs(new[ok] - old[ok]) / np.sqrt(var[ok])))
 
 
+#: the contraction rate below which a linearly converging tail is summed (see tail_factor)
+TAIL_RATE_MAX = 0.9
+#: how parallel (|cosine|, in standard-error units) two successive steps must be
+TAIL_ALIGNED = 0.99
+
+
+def tail_factor(step: np.ndarray, previous: np.ndarray | None, inv_info: InverseInfo) -> float:
+    """How much of ``step`` to take so that the steps still to come are taken too.
+
+    Fisher scoring on a non-canonical link converges linearly: near the optimum each step
+    is the previous one times the rate r of the iteration's dominant direction, so the
+    steps left after ``step`` add up to step r / (1 - r) (Aitken's delta-squared
+    extrapolation, in vector form). With r estimated from two successive steps that point
+    along one line (|cosine| >= :data:`TAIL_ALIGNED` in standard-error units) and
+    |r| <= :data:`TAIL_RATE_MAX`, the factor is 1 / (1 - r); otherwise, and where Newton's
+    quadratic convergence leaves r near 0, it is 1 (the step itself).
+    """
+    if previous is None:
+        return 1.0
+    var = inv_info.diagonal()
+    ok = var > 0
+    if not ok.any():
+        return 1.0
+    scale = np.sqrt(var[ok])
+    s, p = step[ok] / scale, previous[ok] / scale
+    ps, pp, ss = float(p @ s), float(p @ p), float(s @ s)
+    if not (pp > 0 and ss > 0) or abs(ps) < TAIL_ALIGNED * math.sqrt(pp * ss):
+        return 1.0
+    rate = ps / pp
+    if not abs(rate) <= TAIL_RATE_MAX:
+        return 1.0
+    return 1.0 / (1.0 - rate)
+
+
 def dispersion(pearson: float, residual_df: float, fixed: bool) -> float:
     """The dispersion phi: 1 where the family fixes it (``fixed``), otherwise Pearson's
     chi-squared over the residual degrees of freedom (NaN when none are left)."""

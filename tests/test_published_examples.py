@@ -40,7 +40,9 @@ pytestmark = pytest.mark.filterwarnings(
 
 # Oracle tolerances (from the task brief): statsmodels and indb solve the same likelihood
 # equations, so agreement is limited only by the convergence tolerances of the two fits.
-COEF_RTOL = 1e-6
+# Issue 18's target: coefficients within 1e-8 relative, standard errors within 1e-7.
+COEF_RTOL = 1e-8
+SE_RTOL = 1e-7
 DEVIANCE_RTOL = 1e-8
 # Coefficients whose true value is exactly 0 (Dobson's treatment effects) need an absolute
 # floor: both fits return round-off of order 1e-15 there.
@@ -188,8 +190,15 @@ def _design(*columns: np.ndarray) -> np.ndarray:
 def _sm_fit(
     endog: np.ndarray, exog: np.ndarray, family: Any, offset: np.ndarray | None = None
 ) -> Any:
-    # tol far below the oracle tolerances so statsmodels' own convergence is not a factor.
-    return sm.GLM(endog, exog, family=family, offset=offset).fit(tol=1e-13, maxiter=200)
+    # Converged on the coefficients themselves (|change| <= 1e-14 + 1e-13 |previous|), far
+    # below the oracle tolerances, so statsmodels' own convergence is not a factor: its
+    # default criterion, the deviance change, leaves a linearly converging fit (a
+    # non-canonical link) ~1e-7 from its optimum. Checked: the Fisher-scoring step left at
+    # these estimates is below 5e-14 standard errors on every case here (measured
+    # 2026-12-05 with statsmodels' own score and expected information).
+    return sm.GLM(endog, exog, family=family, offset=offset).fit(
+        tol=1e-13, atol=1e-14, rtol=1e-13, tol_criterion="params", maxiter=2000
+    )
 
 
 # --------------------------------------------------------------------------------------
@@ -521,8 +530,8 @@ def test_fit_matches_statsmodels(case: Case, con: duckdb.DuckDBPyConnection) -> 
     assert res.converged
     assert res.terms == list(case.terms)
     assert_allclose(res.estimates, ref.params, rtol=COEF_RTOL, atol=COEF_ATOL)
-    assert_allclose(res.std_errors, ref.bse, rtol=COEF_RTOL)
-    assert_allclose(res.covariance, ref.cov_params(), rtol=COEF_RTOL, atol=1e-14)
+    assert_allclose(res.std_errors, ref.bse, rtol=SE_RTOL)
+    assert_allclose(res.covariance, ref.cov_params(), rtol=SE_RTOL, atol=1e-14)
     assert_allclose(res.deviance, ref.deviance, rtol=DEVIANCE_RTOL)
     # statsmodels' null deviance refits the intercept-only model with the offset, which is
     # the convention indb promises (api contract).
@@ -604,7 +613,7 @@ def test_clotting_both_lots_with_interaction(con: duckdb.DuckDBPyConnection) -> 
     exog = _design(lot2_indicator, log_u, lot2_indicator * log_u)
     ref = _sm_fit(seconds, exog, sm.families.Gamma(link=L.InversePower()))
     assert_allclose(res.estimates, ref.params, rtol=COEF_RTOL)
-    assert_allclose(res.std_errors, ref.bse, rtol=COEF_RTOL)
+    assert_allclose(res.std_errors, ref.bse, rtol=SE_RTOL)
     assert_allclose(res.deviance, ref.deviance, rtol=DEVIANCE_RTOL)
     assert_allclose(res.dispersion, ref.scale, rtol=DEVIANCE_RTOL)
     assert res.residual_df == 14

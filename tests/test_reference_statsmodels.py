@@ -37,14 +37,14 @@ import indb
 # reference_cases.fit_check). The deviance is stationary at the optimum, so it is compared
 # more tightly than the coefficients; the llf depends on the Pearson dispersion, which moves
 # to first order with the coefficients, hence 1e-7 rather than 1e-8.
-RTOL_COEF = 1e-6
-RTOL_SE = 1e-6
+RTOL_COEF = 1e-8
+RTOL_SE = 1e-7
 RTOL_DEVIANCE = 1e-8
 RTOL_STAT = 1e-6  # null deviance, Pearson chi2, dispersion, theta
 RTOL_LLF = 1e-7
 # A coefficient whose true value is near zero cannot meet a relative tolerance; an absolute
 # error of 1e-7 of its standard error is statistically invisible, so that is the atol.
-ATOL_COEF_IN_SE = 1e-7
+ATOL_COEF_IN_SE = 1e-8
 
 
 @cache
