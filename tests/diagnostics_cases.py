@@ -334,18 +334,21 @@ def sm_model(case: DiagCase, frame: pd.DataFrame, res: FitResult) -> Any:
         return sm.GLM(endog, exog, family=case.family(), **kwargs)
 
 
-def oracle(case: DiagCase, model: Any, params: np.ndarray | None = None) -> dict[str, np.ndarray]:
-    """statsmodels' numbers per row (its own fit, or at ``params``), converted to the view's
-    conventions (module notes)."""
+def oracle(
+    case: DiagCase, model: Any, params: np.ndarray | None = None, scale: float | None = None
+) -> dict[str, np.ndarray]:
+    """statsmodels' numbers per row (its own fit, or at ``params`` with the dispersion
+    ``scale``), converted to the view's conventions (module notes)."""
     if params is None:
         results = model.fit(**SM_FIT)
     else:
-        # statsmodels' results object at given coefficients; the dispersion by its own rule
-        # (Pearson's chi-squared over the residual df, or 1)
+        # statsmodels' results object at given coefficients; the dispersion given, else by
+        # its own rule (Pearson's chi-squared over the residual df, or 1) at them
         mu = model.predict(params)
         w = model.hessian_factor(params, scale=1.0, observed=False)
         normalized = np.linalg.pinv((model.exog * w[:, None]).T @ model.exog)
-        results = GLMResults(model, params, normalized, model.estimate_scale(mu))
+        phi = model.estimate_scale(mu) if scale is None else scale
+        results = GLMResults(model, params, normalized, phi)
     infl = results.get_influence(observed=case.observed)
     n_trials = np.asarray(model.n_trials, dtype=float) if case.trials is not None else 1.0
     out = {

@@ -5,7 +5,10 @@ statsmodels and scikit-learn (``tests/diagnostics_cases.py``, which also says wh
 conventions differ from statsmodels' and how the oracle converts). Every case is checked twice:
 
 * against statsmodels' own fit (both converged far below ``FULL_RTOL``);
-* against statsmodels at indb's coefficients (``SAME_BETA_RTOL``: the formulas themselves);
+* against statsmodels at indb's coefficients and dispersion (``SAME_BETA_RTOL``: the
+  formulas themselves; indb's dispersion is Pearson's at the coefficients its last scan
+  read, one solved step, taken with no scan, before the reported ones, so it is given to
+  the oracle rather than recomputed at the reported coefficients);
 
 and the oracle is checked in turn: its hat-matrix diagonal against the squared row norms of Q
 in a QR decomposition of W^(1/2) X written out with numpy, its Cook's distance against the
@@ -100,7 +103,7 @@ def test_view_matches_statsmodels_row_by_row(case: DiagCase, tmp_path: Path) -> 
     rows = first_copies(case, frame)
     full = oracle(case, model)
     compare(got, {k: v[rows] for k, v in full.items() if k in COLUMNS}, FULL_RTOL)
-    at_ours = oracle(case, model, res.estimates)
+    at_ours = oracle(case, model, res.estimates, res.dispersion)
     compare(got, {k: v[rows] for k, v in at_ours.items() if k in COLUMNS}, SAME_BETA_RTOL)
     # the oracle checked: its leverage is the hat matrix's diagonal written out with numpy
     # (QR), its Cook's distance the studentized Pearson residual's formula, k = columns
@@ -144,7 +147,7 @@ def test_more_than_150_coefficients_from_the_registry(tmp_path: Path) -> None:
     again = view_rows(path)
     assert_allclose(again[COLUMNS].to_numpy(float), first[COLUMNS].to_numpy(float), rtol=1e-12)
     model = sm_model(case, frame, res)
-    compare(again, oracle(case, model, res.estimates), SAME_BETA_RTOL)
+    compare(again, oracle(case, model, res.estimates, res.dispersion), SAME_BETA_RTOL)
 
 
 def promote(path: str, name: str, version: int, **kw: Any) -> None:
@@ -192,7 +195,11 @@ def test_rows_the_fit_did_not_use_get_null(tmp_path: Path) -> None:
     got = view_rows(path)
     assert got.loc[got["row_id"] >= 1000, COLUMNS].isna().all().all()
     used = got[got["row_id"] < 1000].reset_index(drop=True)
-    compare(used, oracle(case, sm_model(case, frame, res), res.estimates), SAME_BETA_RTOL)
+    compare(
+        used,
+        oracle(case, sm_model(case, frame, res), res.estimates, res.dispersion),
+        SAME_BETA_RTOL,
+    )
 
 
 def test_levels_with_quotes_backslashes_and_unicode(tmp_path: Path) -> None:
@@ -206,7 +213,9 @@ def test_levels_with_quotes_backslashes_and_unicode(tmp_path: Path) -> None:
     res = fit_case(case, path, name="m", diagnostics=True)
     assert {"firm=Gen. 'Electric' \\ Co.", 'firm=U.S. "Steel" Über'} <= set(res.terms)
     compare(
-        view_rows(path), oracle(case, sm_model(case, frame, res), res.estimates), SAME_BETA_RTOL
+        view_rows(path),
+        oracle(case, sm_model(case, frame, res), res.estimates, res.dispersion),
+        SAME_BETA_RTOL,
     )
 
 
@@ -225,7 +234,11 @@ def test_weights_and_response_far_from_one(tmp_path: Path) -> None:
     )
     path = database(tmp_path, frame)
     res = fit_case(case, path, name="m", diagnostics=True)
-    compare(view_rows(path), oracle(case, sm_model(case, frame, res), res.estimates), 1e-8)
+    compare(
+        view_rows(path),
+        oracle(case, sm_model(case, frame, res), res.estimates, res.dispersion),
+        1e-8,
+    )
 
 
 def test_gaussian_response_rescaled_and_shifted(tmp_path: Path) -> None:
@@ -237,7 +250,11 @@ def test_gaussian_response_rescaled_and_shifted(tmp_path: Path) -> None:
     case = DiagCase("gaussian-big", lambda: frame, base.fit_kwargs, base.family)
     path = database(tmp_path, frame)
     res = fit_case(case, path, name="m", diagnostics=True)
-    compare(view_rows(path), oracle(case, sm_model(case, frame, res), res.estimates), 1e-8)
+    compare(
+        view_rows(path),
+        oracle(case, sm_model(case, frame, res), res.estimates, res.dispersion),
+        1e-8,
+    )
 
 
 # -- deployment ---------------------------------------------------------------------------------
@@ -263,7 +280,9 @@ def test_created_moved_and_dropped_with_the_scoring_view(tmp_path: Path) -> None
     assert "capital" in v2.columns  # the source's columns, whatever the model reads
     promote(path, "m", 1)  # roll-back: the view serves version 1's residuals again
     back = view_rows(path)
-    compare(back, oracle(case, sm_model(case, frame, r1), r1.estimates), SAME_BETA_RTOL)
+    compare(
+        back, oracle(case, sm_model(case, frame, r1), r1.estimates, r1.dispersion), SAME_BETA_RTOL
+    )
     assert model_row(path, "m")["diagnostics"] is True
     # moved to another schema: the old objects go in the same transaction
     promote(path, "m", 2, view_schema="elsewhere")

@@ -79,7 +79,7 @@ def test_diagnostics_view_on_every_engine(loader: Loader, case_id: str) -> None:
     assert res.deployment["diagnostics_view"] == f"{name}_diagnostics"
     got = view_frame(loader.engine, f"{name}_diagnostics")
     assert list(got.columns) == [*frame.columns, *COLUMNS]
-    want = oracle(case, sm_model(case, frame, res), res.estimates)
+    want = oracle(case, sm_model(case, frame, res), res.estimates, res.dispersion)
     for column in COLUMNS:
         scale = float(np.max(np.abs(want[column])))
         values = got[column].to_numpy(float)
