@@ -40,7 +40,8 @@ from indb.spec import MAX_LEVELS_LIMIT
 # statsmodels and indb solve the same likelihood equations; both run to 1e-10 and beyond,
 # so 1e-6 leaves orders of magnitude for the different summation orders (as in
 # test_reference_statsmodels.py)
-RTOL = 1e-6
+RTOL = 1e-8  # issue 18: estimates 1e-8 relative
+SE_RTOL = 1e-7
 TOL = 1e-10
 
 
@@ -107,7 +108,7 @@ def test_three_hundred_levels_match_statsmodels():
     assert res.terms == list(x.columns)
     # source: statsmodels GLM Poisson with offset (test-only oracle)
     assert_allclose(res.estimates, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
-    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
+    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=SE_RTOL)
     assert_allclose(res.deviance, ref.deviance, rtol=1e-9)
     # p = 309 <= COVARIANCE_MAX_TERMS: the whole covariance is there and matches
     assert_allclose(res.covariance, ref.cov_params().to_numpy(), rtol=1e-5, atol=1e-12)
@@ -126,7 +127,7 @@ def test_factor_after_the_long_one_and_factor_x_numeric_terms_match_statsmodels(
     assert res.terms == list(x.columns)
     # source: statsmodels GLM (test-only oracle)
     assert_allclose(res.estimates, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
-    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
+    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=SE_RTOL)
 
 
 def test_no_intercept_run_first_matches_statsmodels():
@@ -147,7 +148,7 @@ def test_no_intercept_run_first_matches_statsmodels():
     assert res.terms[0].startswith("big=") and len(res.terms) == 150 + 7 + 2
     # source: statsmodels GLM (test-only oracle)
     assert_allclose(res.estimates, ref.params.to_numpy(), rtol=RTOL, atol=1e-9)
-    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=RTOL)
+    assert_allclose(res.std_errors, ref.bse.to_numpy(), rtol=SE_RTOL)
 
 
 # -- aliasing keeps its meaning --------------------------------------------------------------
