@@ -181,6 +181,8 @@ class IrlsSolver:
     ) -> tuple[IrlsState, float | None]:
         """Run IRLS from ``start`` (None: the family's starting means) or from the sums of
         ``warm``; see :func:`irls`."""
+        # a rate is read from this run's own steps only (a theta loop or a path runs again)
+        self.prev_step = None
         if warm is not None:
             self.start_warm(warm)
         else:

@@ -169,3 +169,36 @@ def test_theta_steps_converge_to_scipys_maximum_likelihood() -> None:
     assert abs(nll(opt.x + h) - nll(opt.x - h)) / (2 * h) < 1e-2
     assert theta == pytest.approx(math.exp(opt.x), rel=1e-5)
     assert theta == pytest.approx(true_theta, rel=0.2)  # and near the simulated value
+
+
+# -- the tail of a linearly converging fit (solver.tail_factor) --------------------------------
+
+
+def _info(p: int) -> solver.InverseInfo:
+    """(X'WX)^-1 of a well-conditioned random design (its diagonal scales the steps)."""
+    x = np.random.default_rng(3).normal(size=(50, p))
+    return solver.solve(sparse.csr_array(_gram(x)), np.zeros(p)).inv_info
+
+
+def test_tail_factor_sums_a_geometric_tail() -> None:
+    # steps r^k v: after the step r^k v the steps left add up to r^(k+1) v / (1 - r)
+    # (a geometric series, exact), so the factor 1 / (1 - r) lands on the limit
+    v = np.array([0.3, -1.2, 0.7])
+    for r in (0.5, 0.2, -0.4, 0.9):
+        prev, step = r**5 * v, r**6 * v
+        factor = solver.tail_factor(step, prev, _info(3))
+        limit = sum(r**k * v for k in range(6, 400))
+        assert_allclose(factor * step, limit, rtol=1e-12)
+
+
+def test_tail_factor_takes_the_step_alone_when_the_rate_is_unclear() -> None:
+    info = _info(3)
+    step = np.array([1e-5, 2e-5, -1e-5])
+    assert solver.tail_factor(step, None, info) == 1.0  # no earlier step
+    # steps along different lines (not the tail of one linear iteration)
+    assert solver.tail_factor(step, np.array([2e-5, -1e-5, 3e-5]), info) == 1.0
+    # a rate above 0.9 (or growing steps): the extrapolation would be far from one step
+    assert solver.tail_factor(step, step / 0.95, info) == 1.0
+    assert solver.tail_factor(step, step / 2.0, info) == 1.0
+    # Newton's quadratic convergence: the rate is ~0, the factor ~1
+    assert_allclose(solver.tail_factor(step, step * 1e6, info), 1.0, rtol=1e-5)
