@@ -375,6 +375,42 @@ def path_chart(
     return _svg(fig, title)
 
 
+def cv_chart(
+    log_lambda: Sequence[float],
+    mean: Sequence[float],
+    se: Sequence[float],
+    *,
+    chosen: float | None,
+    best: float | None,
+    title: str,
+) -> str:
+    """k-fold cross-validation of a lambda path: the mean out-of-fold deviance per unit
+    weight against log lambda, one standard error either side as bars; the chosen lambda as
+    a dashed vertical line and, where the rule chose another, the least mean as a dotted
+    one."""
+    fig, ax = _figure(4.2)
+    x, y = np.asarray(log_lambda, dtype=float), np.asarray(mean, dtype=float)
+    ax.errorbar(
+        x,
+        y,
+        yerr=np.asarray(se, dtype=float),
+        color=FITTED,
+        marker="o",
+        markersize=4,
+        linewidth=1.2,
+        capsize=3,
+        label="mean over the folds, +/- 1 standard error",
+    )
+    if chosen is not None and math.isfinite(chosen):
+        ax.axvline(chosen, color=GUIDE, linestyle="--", linewidth=1.0, label="chosen lambda")
+    if best is not None and math.isfinite(best) and best != chosen:
+        ax.axvline(best, color=ACTUAL, linestyle=":", linewidth=1.2, label="least mean")
+    ax.set_xlabel("log lambda (natural log of the penalty strength)")
+    ax.set_ylabel("out-of-fold deviance\n(per unit of weight)")
+    ax.legend(loc="best", fontsize=8)
+    return _svg(fig, title)
+
+
 def lorenz_chart(
     exposure_share: Sequence[float], actual_share: Sequence[float], *, title: str, label: str
 ) -> str:

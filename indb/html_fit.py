@@ -181,7 +181,68 @@ def penalty_block(r: FitResult) -> str:
     ]
     rows = [(k, {"figure": label, "value": v}) for k, label, v in figures if v is not None]
     body = "<h3>Penalty</h3>" + statement + table("penalty", cols, rows)
-    return body + _path_box(r)
+    return body + _path_box(r) + _cv_box(r)
+
+
+def _cv_box(r: FitResult) -> str:
+    """k-fold cross-validation of the path: the mean out-of-fold deviance with its standard
+    error per lambda (chart and table, each fold's deviance in the table)."""
+    rows_cv = [row for row in r.cv if _positive(row.get("penalty"))]
+    if not rows_cv:
+        return ""
+    lam = np.array([float(row["penalty"]) for row in rows_cv])
+    mean = np.array([_num(row.get("mean_deviance")) for row in rows_cv])
+    se = np.array([_num(row.get("se")) for row in rows_cv])
+    chosen = _num(r.chosen_penalty)
+    finite = np.isfinite(mean)
+    best = float(lam[finite][np.argmin(mean[finite])]) if finite.any() else math.nan
+    svg = C.cv_chart(
+        np.log(lam),
+        mean,
+        se,
+        chosen=math.log(chosen) if _positive(chosen) else None,
+        best=math.log(best) if _positive(best) else None,
+        title="Out-of-fold deviance along the lambda path",
+    )
+    folds = max(len(row.get("per_fold", ())) for row in rows_cv)
+    cols = [
+        Column("penalty", "lambda"),
+        Column("log_lambda", "log lambda"),
+        Column("mean_deviance", "mean out-of-fold deviance"),
+        Column("se", "standard error"),
+        *(Column(f"fold:{k}", f"fold {k}") for k in range(folds)),
+    ]
+    rows = [
+        (
+            str(i),
+            {
+                "penalty": float(row["penalty"]),
+                "log_lambda": math.log(float(row["penalty"])),
+                "mean_deviance": _num(row.get("mean_deviance")),
+                "se": _num(row.get("se")),
+                **{f"fold:{k}": _num(v) for k, v in enumerate(row.get("per_fold", ()))},
+            },
+        )
+        for i, row in enumerate(rows_cv)
+    ]
+    rule = {
+        "min": "the least mean",
+        "one_se": "the largest lambda within one standard error "
+        "of the least mean (common practice)",
+    }.get(r.chosen_rule or "", r.chosen_rule or "")
+    caption = (
+        f" {folds}-fold cross-validation: each fold's model fitted on the other folds' rows "
+        "along the path, its deviance per unit weight on the fold's own rows; the mean over "
+        "the folds with one standard error (their spread over the square root of the number "
+        f"of folds). The dashed line marks the chosen lambda, {_g(chosen)}: {rule}."
+    )
+    return chart_box(
+        "cross_validation", "Cross-validation", svg, caption, table("cross_validation", cols, rows)
+    )
+
+
+def _g(v: float) -> str:
+    return f"{v:.4g}" if math.isfinite(v) else "n/a"
 
 
 def _path_box(r: FitResult) -> str:

@@ -581,7 +581,8 @@ def more(built: dict[str, Any]) -> dict[str, Any]:
     assessment; and the report of each (the first against the second)."""
     db, folder = built["db"], built["folder"]
     indb.fit(SOURCE, db=db, name="children_small", tol=FIT_TOL, **SMALL)
-    indb.fit(SOURCE, db=db, name="children_pen", tol=FIT_TOL, path=6, l1_share=0.5,
+    indb.fit(SOURCE, db=db, name="children_pen", tol=FIT_TOL, path=6, l1_share=0.5, folds=3,
+             fold_by="CAST(10 * years + educ AS BIGINT)",
              **{**SMALL, "predictors": ["rating", "religious", "age", "educ"]})  # fmt: skip
     # the survey's children show no overdispersion: theta runs off (a ConvergenceWarning);
     # the page shows the stored theta and its standard error all the same
@@ -739,6 +740,27 @@ def test_penalised_fit_shows_its_penalty_path_and_no_standard_errors(
     for row in t["coefficients"].values():
         assert row["std_error"][1] in (None, "nan") and row["lower_bound"][1] in (None, "nan")
     assert "term_tests" not in t and "data-covariance" not in page
+
+
+def test_cross_validation_table_equals_show_json(more: dict[str, Any]) -> None:
+    # the fold table behind the chart is the stored one (each fold's deviance is checked
+    # against separate refits in tests/test_cv.py); the caption names the chosen lambda
+    db, page = more["db"], more["pages"]["children_pen"]
+    shown = _json(_run("show", "children_pen", "--db", db, "--json"))
+    rows = read_tables(page).tables["cross_validation"]
+    assert len(rows) == len(shown["cv"]) == 6
+    for i, step in enumerate(shown["cv"]):
+        row = rows[str(i)]
+        same_number(step["penalty"], row["penalty"])
+        same_number(step["mean_deviance"], row["mean_deviance"])
+        same_number(step["se"], row["se"])
+        assert len(step["per_fold"]) == 3
+        for k, value in enumerate(step["per_fold"]):
+            same_number(value, row[f"fold:{k}"])
+    assert 'data-chart="cross_validation"' in page
+    assert f"{shown['chosen_penalty']:.4g}" in page and shown["chosen_penalty"] in [
+        s["penalty"] for s in shown["cv"]
+    ]
 
 
 def test_against_bad_input_is_one_line_and_leaves_no_file(
