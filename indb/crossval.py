@@ -47,7 +47,7 @@ from indb.design import Design
 from indb.errors import SpecError
 from indb.fitrun import FitRun
 from indb.irls import IrlsState, irls
-from indb.pathfit import refit, walk
+from indb.pathfit import quadratic_deviance, quadratic_exact, refit, walk
 from indb.penalty import Penalty
 from indb.plan.batch_scan import batch_query
 from indb.plan.context import PlanContext
@@ -204,23 +204,6 @@ def batch_sums(
 
 
 # -- gaussian, identity link: the sums at one set of coefficients give them at any -----------
-
-
-def quadratic_exact(ctx: PlanContext) -> bool:
-    """A gaussian model with the identity link: its working weights and response do not
-    depend on the coefficients, so one scan's X'WX and X'Wz are every iteration's, and the
-    deviance at any coefficients follows from them (:func:`quadratic_deviance`)."""
-    spec = ctx.spec
-    return spec.family.name == "gaussian" and spec.link.name == "identity"
-
-
-def quadratic_deviance(sums: solver.Sums, at: np.ndarray, beta: np.ndarray) -> float:
-    """The deviance at ``beta`` from a gaussian identity-link scan at ``at``:
-    D(b) = D(a) - 2 d'(X'Wz - X'WX a) + d'X'WX d with d = b - a (internal scale)."""
-    a = sparse.csr_array(sums.xtwx)
-    at = np.nan_to_num(at)
-    d = np.nan_to_num(beta) - at
-    return float(sums.deviance - 2.0 * d @ (sums.xtwz - a @ at) + d @ (a @ d))
 
 
 def quadratic_fold_fits(

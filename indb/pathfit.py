@@ -6,7 +6,9 @@ to the scans. A single ``penalty`` is one IRLS run with the penalised step. A ``
 first fits the model with every penalised coefficient held at 0 (its last scan gives the
 gradient, hence lambda_max), then walks N lambdas down on a log scale, each IRLS run
 started from the previous one's last scan (:meth:`indb.irls.IrlsSolver.start_warm`), so a
-lambda costs the scans of its own iterations only (usually two or three).
+lambda costs the scans of its own iterations only (usually two or three). A gaussian
+identity-link model walks the path with no scan (:func:`quadratic_walk`): one scan's sums
+hold at every coefficient.
 
 Inference: penalised estimates are biased towards 0 by design, and the unpenalised
 covariance (X'WX)^-1 does not describe their spread, so standard errors, Wald statistics,
@@ -21,6 +23,7 @@ import math
 from typing import Any
 
 import numpy as np
+from scipy import sparse
 
 from indb import solver
 from indb.design import Design
@@ -106,6 +109,8 @@ def walk(
 ) -> list[IrlsState]:
     """From ``state``, the fit at ``lambdas[0]``, fit each further lambda warm-started from
     the one before (on ``ctx``'s rows): one state per lambda."""
+    if quadratic_exact(ctx):
+        return quadratic_walk(penalty, state, lambdas)
     states = [state]
     n = len(lambdas)
     # one loop for the whole path: the scans' caches carry over from lambda to lambda
@@ -114,6 +119,39 @@ def walk(
         loop.with_penalty(penalty.at(float(lam)), predicted_settle=k < n)
         state, _ = loop.fit(warm=state)
         states.append(state)
+    return states
+
+
+def quadratic_exact(ctx: PlanContext) -> bool:
+    """A gaussian model with the identity link: its working weights and response do not
+    depend on the coefficients, so one scan's X'WX and X'Wz are every iteration's, and the
+    deviance at any coefficients follows from them (:func:`quadratic_deviance`)."""
+    spec = ctx.spec
+    return spec.family.name == "gaussian" and spec.link.name == "identity"
+
+
+def quadratic_deviance(sums: solver.Sums, at: np.ndarray, beta: np.ndarray) -> float:
+    """The deviance at ``beta`` from a gaussian identity-link scan at ``at``:
+    D(b) = D(a) - 2 d'(X'Wz - X'WX a) + d'X'WX d with d = b - a (internal scale)."""
+    a = sparse.csr_array(sums.xtwx)
+    at = np.nan_to_num(at)
+    d = np.nan_to_num(beta) - at
+    return float(sums.deviance - 2.0 * d @ (sums.xtwz - a @ at) + d @ (a @ d))
+
+
+def quadratic_walk(penalty: Penalty, state: IrlsState, lambdas: np.ndarray) -> list[IrlsState]:
+    """:func:`walk` for a gaussian identity-link model, with no scan: every lambda's fit is
+    the exact penalised least-squares solution of ``state``'s sums, its deviance (and
+    Pearson's chi-squared, the same sum for the gaussian family) from
+    :func:`quadratic_deviance`. The refit at the reported lambda scans its rows again."""
+    states = [state]
+    beta = state.beta
+    for lam in lambdas[1:]:
+        sol = penalty.at(float(lam)).step(state.sums.xtwx, state.sums.xtwz, beta)
+        dev = quadratic_deviance(state.sums, state.beta, sol.beta)
+        sums = dataclasses.replace(state.sums, deviance=dev, pearson=dev, matrices={})
+        beta = sol.beta
+        states.append(IrlsState(beta=beta, sums=sums, solution=sol, converged=True, iterations=0))
     return states
 
 
