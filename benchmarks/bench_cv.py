@@ -132,8 +132,8 @@ def markdown(rows: list[dict], when: str) -> str:
         "plain scan, so no exact cross-validation of a Poisson model meets the target. "
         "A gaussian identity-link model's folds need one scan each: their X'WX and X'Wz "
         "hold at every coefficient, so every fold model at every lambda is solved from "
-        "training = total - fold in numpy (`crossval.quadratic_fold_fits`); what is left "
-        "is the path on all rows and the refit.",
+        "training = total - fold in numpy (`crossval.quadratic_fold_fits`), and the path "
+        "on all rows needs no scan past its held-at-0 fit's (`pathfit.quadratic_walk`).",
         "",
         END,
     ]
