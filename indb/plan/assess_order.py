@@ -37,6 +37,8 @@ from indb.plan.assess_scan import (
     MEAN,
     RATIO,
     AssessPlan,
+    by_mask,
+    col_refs,
     part_key,
     part_mask,
     scored_rows,
@@ -58,10 +60,6 @@ def order_scans(plan: AssessPlan) -> list[list[int]]:
     return [first] + [[i] for i in ordered if plan.parts[i].role in LARGE]
 
 
-def _cols(*names: str) -> list[Expr]:
-    return [S.col(n) for n in names]
-
-
 def _key(j: int) -> str:
     return f"o{j}"
 
@@ -79,12 +77,6 @@ def _window(agg: Expr, order: str | None) -> exp.Window:
         ),
         over="OVER",
     )
-
-
-def _by_mask(masks: list[int], values: list[Expr], else_: Expr) -> Expr:
-    """CASE g WHEN masks[j] THEN values[j] ... ELSE else_ END."""
-    whens = [(S.eq(S.col("g"), S.integer(m)), v) for m, v in zip(masks, values, strict=True)]
-    return S.case(whens, else_) if whens else else_
 
 
 def order_query(plan: AssessPlan, ordered: list[int]) -> exp.Select:
@@ -121,12 +113,10 @@ def order_query(plan: AssessPlan, ordered: list[int]) -> exp.Select:
     keyed = S.select(
         [
             S.col("g"),
-            S.alias(_by_mask(masks, [S.col(_key(j)) for j in range(count)], exp.Null()), "k"),
+            S.alias(by_mask(masks, [S.col(_key(j)) for j in range(count)], exp.Null()), "k"),
             S.col("ac"),
             S.alias(
-                _by_mask(
-                    [masks[j] for j in weighted], [S.col("wt") for _ in weighted], S.col("ex")
-                ),
+                by_mask([masks[j] for j in weighted], [S.col("wt") for _ in weighted], S.col("ex")),
                 "bw",
             ),
         ],
@@ -137,29 +127,29 @@ def order_query(plan: AssessPlan, ordered: list[int]) -> exp.Select:
     keyed_bw = S.case([(has_key.copy(), S.col("bw"))])
     running = S.select(
         [
-            *_cols("g", "k", "ac", "bw"),
+            *col_refs("g", "k", "ac", "bw"),
             S.alias(_window(S.sum_(keyed_bw.copy()), "k"), "cb"),
             S.alias(_window(S.sum_(keyed_bw.copy()), None), "tb"),
         ],
         S.subquery(keyed, "kr"),
     )
     # the band count rides outside the sort: only g, k, ac and bw are sorted
-    nb = _by_mask(masks, [exp.Literal.number(parts[i].bands) for i in ordered], S.integer(1))
+    nb = by_mask(masks, [exp.Literal.number(parts[i].bands) for i in ordered], S.integer(1))
     mid = S.sub(S.col("cb"), S.div(S.col("bw"), S.num(2.0)))
     cut = S.add(S.floor_(S.div(S.mul(nb.copy(), mid), S.col("tb"))), exp.Literal.number(1))
     band = S.case([(S.and_(has_key.copy(), S.gt(S.col("tb"), S.num(0.0))), S.least(nb, cut))])
     ta = S.mul(S.col("ac"), S.sub(S.mul(S.num(2.0), S.col("cb")), S.col("bw")))
     banded = S.select(
-        [*_cols("g", "k"), S.alias(band, "band"), S.alias(S.case([(has_key, ta)]), "ta")],
+        [*col_refs("g", "k"), S.alias(band, "band"), S.alias(S.case([(has_key, ta)]), "ta")],
         S.subquery(running, "cr"),
     )
     per_band = exp.Select(
         expressions=[
-            *_cols("g", "band"),
+            *col_refs("g", "band"),
             S.alias(S.min_(S.col("k")), "lo"),
             S.alias(S.max_(S.col("k")), "hi"),
             S.alias(S.count_star(), "ng"),
             S.alias(S.sum_(S.col("ta")), "ta"),
         ]
     ).from_(S.subquery(banded, "bd"), copy=False)
-    return per_band.group_by(*_cols("g", "band"), copy=False)
+    return per_band.group_by(*col_refs("g", "band"), copy=False)

@@ -216,7 +216,8 @@ def _key(i: int) -> str:
     return f"k{i}"
 
 
-def _cols(*names: str) -> list[Expr]:
+def col_refs(*names: str) -> list[Expr]:
+    """Column references by name."""
     return [S.col(n) for n in names]
 
 
@@ -261,7 +262,7 @@ def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
     # not valid (Link.mean_sql, as in the scoring view)
     eta = S.add(S.col("off"), S.col("seta")) if has_off else S.col("seta")
     means: list[Expr] = [
-        *_cols(*carry),
+        *col_refs(*carry),
         S.alias(link.mean_sql(eta), "mu"),
         S.alias(link.mean_sql(S.col("seta")), "sc"),
     ]
@@ -301,7 +302,7 @@ def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
         ]
     stage_b = S.select(means, S.subquery(inputs, "a"))
     stage_c = S.select(
-        [*_cols(*carry, *summed), *sums], S.subquery(stage_b, "b"), where=S.and_(*valid)
+        [*col_refs(*carry, *summed), *sums], S.subquery(stage_b, "b"), where=S.and_(*valid)
     )
     # stage d: the actual rate (the best ordering's key), the log-ratio of the two scores
     # (the double-lift table's key: no overflow where a ratio would) and the null model's mean
@@ -315,7 +316,7 @@ def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
         S.num(0.0),
     )
     kept = [*carry, *summed, "wt", "ac", "ep", "dv", "ex", *(["ep2", "dv2"] if two else [])]
-    rows: list[Expr] = [*_cols(*kept), S.alias(rate, "rt")]
+    rows: list[Expr] = [*col_refs(*kept), S.alias(rate, "rt")]
     if two is not None:
         rows.append(S.alias(_log_ratio(), "lr"))
         kept.append("lr")
@@ -329,7 +330,7 @@ def scored_rows(plan: AssessPlan, null: NullModel | None = None) -> exp.Select:
     n_mu = S.col("n_mu")
     return S.select(
         [
-            *_cols(*kept, "rt", "n_mu"),
+            *col_refs(*kept, "rt", "n_mu"),
             S.alias(link.mu_eta_sql(e0, n_mu), "n_dmu"),
             S.alias(fam.variance_sql(n_mu.copy()), "n_var"),
         ],
@@ -469,26 +470,28 @@ def assess_query(plan: AssessPlan, cuts: Cuts, null: NullModel | None = None) ->
     band = _by_part(parts, ordered, [S.col(_key(i)) for i in ordered], no_band)
     lv = _by_part(parts, leveled, [S.col(_key(i)) for i in leveled], S.as_text(exp.Null()))
     flat = S.select(
-        [S.col("g"), S.alias(band, "band"), S.alias(lv, "lv"), *_cols(*names)],
+        [S.col("g"), S.alias(band, "band"), S.alias(lv, "lv"), *col_refs(*names)],
         S.subquery(grouped, "gr"),
     )
     order = exp.Order(expressions=[exp.Ordered(this=S.col("band")), exp.Ordered(this=S.col("lv"))])
     rank = exp.Window(this=exp.RowNumber(), partition_by=[S.col("g")], order=order, over="OVER")
     ranked = S.select([exp.Star(), S.alias(rank, "rk")], S.subquery(flat, "fl"))
     return S.select(
-        _cols("g", "band", "lv", *names),
+        col_refs("g", "band", "lv", *names),
         S.subquery(ranked, "rb"),
         where=S.le(S.col("rk"), exp.Literal.number(plan.max_levels + 1)),
     )
 
 
-def _by_part(parts: tuple[Part, ...], pick: list[int], values: list[Expr], else_: Expr) -> Expr:
-    """CASE g WHEN <mask of part i> THEN values[i] ... ELSE else_ END (``pick``: the parts)."""
-    whens = [
-        (S.eq(S.col("g"), S.integer(part_mask(i, len(parts)))), v)
-        for i, v in zip(pick, values, strict=True)
-    ]
+def by_mask(masks: list[int], values: list[Expr], else_: Expr) -> Expr:
+    """CASE g WHEN masks[j] THEN values[j] ... ELSE else_ END (g: a GROUPING bitmask)."""
+    whens = [(S.eq(S.col("g"), S.integer(m)), v) for m, v in zip(masks, values, strict=True)]
     return S.case(whens, else_) if whens else else_
+
+
+def _by_part(parts: tuple[Part, ...], pick: list[int], values: list[Expr], else_: Expr) -> Expr:
+    """:func:`by_mask` over the masks of parts ``pick`` (indices in ``parts``)."""
+    return by_mask([part_mask(i, len(parts)) for i in pick], values, else_)
 
 
 def _unseen_rows(column: str) -> Expr:
@@ -501,4 +504,4 @@ def _null_inputs(plan: AssessPlan, null: NullModel | None) -> list[Expr]:
     if null is None:
         return []
     names = ["y", "pw", "n_mu", *(["n_dmu", "n_var"] if null.step else [])]
-    return _cols(*names)
+    return col_refs(*names)
