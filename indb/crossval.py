@@ -141,8 +141,7 @@ def fold_fits(
     dev = np.empty((k, n_lam))
     beta = np.empty((k, n_lam, design.p))
     expected, phase = run.expected, run.phase
-    # sums of f pw on the source's scale: the held-out deviance per unit weight
-    source_w = counts.w / (run.scaling.weight_factor * run.scaling.freq_factor)
+    source_w = _source_weights(counts, run)
     try:
         for f in range(k):
             run.phase = "cv"
@@ -151,8 +150,7 @@ def fold_fits(
                 int(counts.n.sum() - counts.n[f]),
                 float(counts.nw.sum() - counts.nw[f]),
             )
-            share = (counts.w.sum() - counts.w[f]) / counts.w.sum()
-            pen = dataclasses.replace(penalty, total=penalty.total * share)
+            pen = _training_penalty(penalty, counts, f)
             first, _ = irls(
                 train,
                 design,
@@ -171,6 +169,18 @@ def fold_fits(
     finally:
         run.expected, run.phase = expected, phase
     return FoldFits(deviance=dev, beta=beta)
+
+
+def _source_weights(counts: FoldCounts, run: FitRun) -> np.ndarray:
+    """Each fold's sum of f pw on the source's scale (the held-out deviance per unit
+    weight divides by it)."""
+    return counts.w / (run.scaling.weight_factor * run.scaling.freq_factor)
+
+
+def _training_penalty(penalty: Penalty, counts: FoldCounts, fold: int) -> Penalty:
+    """The full fit's penalty with its weight total scaled to ``fold``'s training rows."""
+    share = (counts.w.sum() - counts.w[fold]) / counts.w.sum()
+    return dataclasses.replace(penalty, total=penalty.total * share)
 
 
 def _restricted(ctx: PlanContext, rows: Expr) -> PlanContext:
@@ -226,7 +236,7 @@ def quadratic_fold_fits(
     dev = np.empty((k, n_lam))
     beta = np.empty((k, n_lam, design.p))
     expected, phase = run.expected, run.phase
-    source_w = counts.w / (run.scaling.weight_factor * run.scaling.freq_factor)
+    source_w = _source_weights(counts, run)
     start = np.nan_to_num(start)
     try:
         run.phase = "cv_score"
@@ -240,8 +250,7 @@ def quadratic_fold_fits(
     total_xtwx = sum((sparse.csr_array(s.xtwx) for s in folds[1:]), sparse.csr_array(folds[0].xtwx))
     total_xtwz = np.sum([s.xtwz for s in folds], axis=0)
     for f, own in enumerate(folds):
-        share = (counts.w.sum() - counts.w[f]) / counts.w.sum()
-        pen = dataclasses.replace(penalty, total=penalty.total * share)
+        pen = _training_penalty(penalty, counts, f)
         xtwx, xtwz = total_xtwx - sparse.csr_array(own.xtwx), total_xtwz - own.xtwz
         b = start
         for j, lam in enumerate(lambdas):

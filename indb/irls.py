@@ -236,7 +236,6 @@ class IrlsSolver:
         self.iterations = 0
         self.converged = self.stalled = False
         self.null_mu = self.null_track = None
-        self.prev_step = None
         return self
 
     def start_warm(self, warm: IrlsState) -> None:

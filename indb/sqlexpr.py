@@ -379,6 +379,22 @@ def psum(e: Expr) -> Expr:
     return PreciseSum(this=e)
 
 
+def partition_sum(e: Expr, partition: str, order: str | None = None) -> exp.Window:
+    """SUM(e) OVER (PARTITION BY partition): the partition's total, or with ``order`` the
+    running total up to and including each row (ROWS frame, NULL keys last)."""
+    if order is None:
+        return exp.Window(this=sum_(e), partition_by=[col(partition)], over="OVER")
+    return exp.Window(
+        this=sum_(e),
+        partition_by=[col(partition)],
+        order=exp.Order(expressions=[exp.Ordered(this=col(order), nulls_first=False)]),
+        spec=exp.WindowSpec(
+            kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW"
+        ),
+        over="OVER",
+    )
+
+
 def count_star() -> Expr:
     return exp.Count(this=exp.Star())
 

@@ -43,7 +43,6 @@ from indb.plan.assess_scan import (
     part_mask,
     scored_rows,
 )
-from indb.sqlexpr import Expr
 
 #: ordered roles whose key usually takes about one value per row (a model's score or mean,
 #: the ratio of two scores): each gets an order scan of its own, so that one sort of that
@@ -62,21 +61,6 @@ def order_scans(plan: AssessPlan) -> list[list[int]]:
 
 def _key(j: int) -> str:
     return f"o{j}"
-
-
-def _window(agg: Expr, order: str | None) -> exp.Window:
-    """``agg`` OVER (PARTITION BY g [ORDER BY order, running total])."""
-    if order is None:
-        return exp.Window(this=agg, partition_by=[S.col("g")], over="OVER")
-    return exp.Window(
-        this=agg,
-        partition_by=[S.col("g")],
-        order=exp.Order(expressions=[exp.Ordered(this=S.col(order), nulls_first=False)]),
-        spec=exp.WindowSpec(
-            kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW"
-        ),
-        over="OVER",
-    )
 
 
 def order_query(plan: AssessPlan, ordered: list[int]) -> exp.Select:
@@ -128,8 +112,8 @@ def order_query(plan: AssessPlan, ordered: list[int]) -> exp.Select:
     running = S.select(
         [
             *col_refs("g", "k", "ac", "bw"),
-            S.alias(_window(S.sum_(keyed_bw.copy()), "k"), "cb"),
-            S.alias(_window(S.sum_(keyed_bw.copy()), None), "tb"),
+            S.alias(S.partition_sum(keyed_bw.copy(), "g", "k"), "cb"),
+            S.alias(S.partition_sum(keyed_bw.copy(), "g"), "tb"),
         ],
         S.subquery(keyed, "kr"),
     )

@@ -177,21 +177,11 @@ def explore_cuts_query(ctx: PlanContext, numerics: Sequence[str], bands: int) ->
         S.subquery(grouped, "xg"),
         where=S.not_(S.is_null(S.col(VALUE))),
     )
-    by_value = exp.Window(
-        this=S.sum_(S.col(COUNT)),
-        partition_by=[S.col(COLUMN)],
-        order=exp.Order(expressions=[exp.Ordered(this=S.col(VALUE))]),
-        spec=exp.WindowSpec(
-            kind="ROWS", start="UNBOUNDED", start_side="PRECEDING", end="CURRENT ROW"
-        ),
-        over="OVER",
-    )
-    whole = exp.Window(this=S.sum_(S.col(COUNT)), partition_by=[S.col(COLUMN)], over="OVER")
     running = S.select(
         [
             *(S.col(n) for n in (COLUMN, VALUE, COUNT)),
-            S.alias(by_value, UP_TO),
-            S.alias(whole, FINITE),
+            S.alias(S.partition_sum(S.col(COUNT), COLUMN, VALUE), UP_TO),
+            S.alias(S.partition_sum(S.col(COUNT), COLUMN), FINITE),
         ],
         S.subquery(valued, "xv"),
     )
