@@ -31,11 +31,19 @@ STALL_HALVINGS = 2
 # so the last scan carries them and no scan is added. Where it does not (a fit that jumps
 # to its optimum from further away), one scan at the final coefficients adds them.
 CARRY_STEP = 0.1
+# A path's lambda before its last may stop at a scan whose penalised update moves at most
+# sqrt(PATH_SHARE * step_tol) standard errors (1e-3 at the default tol), taken with no scan:
+# under a canonical link that update is a Newton step of the penalised objective, whose own
+# error is about c times its square, c the problem's constant (about 1e-3 per standard
+# error at 10^6-10^7 rows, measured), so below step_tol whenever c < 1 / PATH_SHARE. Those
+# lambdas report no standard errors, and each only seeds the next. Other links converge
+# linearly and keep ``step_tol``.
+PATH_SHARE = 1e-2
 
 
 @dataclass(frozen=True)
 class IrlsState:
-    """Where IRLS stopped: the last scanned coefficients, that scan's sums and update."""
+    """Where IRLS stopped: the coefficients, the last scan's sums and their update."""
 
     beta: np.ndarray
     sums: solver.Sums
@@ -47,6 +55,8 @@ class IrlsState:
     #: the log-link scan's constant sums (:class:`indb.logsums.LogCache`) while that scan
     #: applies, for later scans at other coefficients (the drop-one batch); else None
     log_cache: logsums.LogCache | None = None
+    #: where ``sums`` were taken when the stop added the solved step to them (None: ``beta``)
+    scanned: np.ndarray | None = None
 
 
 def _fallback_beta(ctx: PlanContext, design: Design, ybar: float) -> np.ndarray:
@@ -173,6 +183,7 @@ class IrlsSolver:
         self.iterations = 0
         self.converged = False
         self.stalled = False
+        self.scanned: np.ndarray | None = None
 
     # -- the loop ------------------------------------------------------------------------------
 
@@ -182,7 +193,7 @@ class IrlsSolver:
         """Run IRLS from ``start`` (None: the family's starting means) or from the sums of
         ``warm``; see :func:`irls`."""
         # a rate is read from this run's own steps only (a theta loop or a path runs again)
-        self.prev_step = None
+        self.prev_step = self.scanned = None
         if warm is not None:
             self.start_warm(warm)
         else:
@@ -202,6 +213,7 @@ class IrlsSolver:
             iterations=self.iterations,
             stalled=self.stalled and not self.converged,
             log_cache=self.log_cache if self.log_scan else None,
+            scanned=self.scanned,
         ), null_dev
 
     def start(self, start: np.ndarray | None) -> None:
@@ -242,11 +254,14 @@ class IrlsSolver:
         """Start from a converged state's scan: its sums give the first (penalised) update
         with no scan of its own (a path's next lambda)."""
         # the warm scan is the last accepted one: a first step that stalls goes back to it
+        # the objective there is the new penalty's at the scan's own coefficients: the
+        # stop's added step moved the deviance to first order (the penalty's gradient)
+        at = warm.beta if warm.scanned is None else warm.scanned
         self.sums = self.sums_prev = warm.sums
-        self.beta_prev = warm.beta
-        self.sol = self.solve(warm.sums, warm.beta)
+        self.beta_prev = at
+        self.sol = self.solve(warm.sums, at)
         self.beta = self.sol.beta
-        self.dev_old = self.objective(warm.sums, warm.beta)
+        self.dev_old = self.objective(warm.sums, at)
         self.budget = self.spec.max_iter
 
     def solve(self, sums: solver.Sums, beta: np.ndarray) -> solver.Solution:
@@ -270,6 +285,13 @@ class IrlsSolver:
             return False
         gain = self.penalty.gain(self.sums.xtwx, self.sums.xtwz, self.beta, self.sol.beta)
         return math.isfinite(gain) and abs(gain) / (abs(current) + 0.1) < self.spec.tol
+
+    def step_bound(self) -> float:
+        """The largest solved step (standard errors) a stop takes with no scan: ``step_tol``;
+        more for a path's lambda before its last under a canonical link (``PATH_SHARE``)."""
+        if self.predicted_settle and self.spec.family.is_canonical(self.spec.link):
+            return math.sqrt(PATH_SHARE * self.step_tol)
+        return self.step_tol
 
     def objective(self, sums: solver.Sums, beta: np.ndarray) -> float:
         """What the loop lowers: the deviance, plus the penalty in deviance units."""
@@ -301,7 +323,7 @@ class IrlsSolver:
         if settled or self.covariance:
             self.next_step = self.step_size()
         step = self.sol.beta - self.beta
-        if settled and self.next_step < self.step_tol:
+        if settled and self.next_step < self.step_bound():
             # The update solved from this scan is already paid for: taking it brings the
             # estimates to the numerical limit at no scan. Newton converges quadratically;
             # Fisher scoring (a non-canonical link) linearly, so the steps it would still
@@ -309,6 +331,7 @@ class IrlsSolver:
             # dispersion and X'WX stay the scan's; a step this small (< step_tol standard
             # errors) moves the deviance by ~its square, far below the reported digits.
             self.converged = True
+            self.scanned = self.beta
             prev = self.prev_step if halvings == 0 and self.penalty is None else None
             self.beta = self.beta + solver.tail_factor(step, prev, self.sol.inv_info) * step
             return True

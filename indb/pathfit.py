@@ -131,8 +131,9 @@ def quadratic_exact(ctx: PlanContext) -> bool:
 
 
 def quadratic_deviance(sums: solver.Sums, at: np.ndarray, beta: np.ndarray) -> float:
-    """The deviance at ``beta`` from a gaussian identity-link scan at ``at``:
-    D(b) = D(a) - 2 d'(X'Wz - X'WX a) + d'X'WX d with d = b - a (internal scale)."""
+    """The deviance at ``beta`` from a scan at ``at``: D(b) = D(a) - 2 d'(X'Wz - X'WX a)
+    + d'X'WX d with d = b - a (internal scale); exact for a gaussian identity-link model,
+    to third order in d under a canonical link."""
     a = sparse.csr_array(sums.xtwx)
     at = np.nan_to_num(at)
     d = np.nan_to_num(beta) - at
@@ -179,9 +180,14 @@ def original_estimates(design: Design, run: FitRun, beta: np.ndarray) -> np.ndar
 def _record(design: Design, run: FitRun, state: IrlsState, penalty: Penalty) -> dict[str, Any]:
     est = original_estimates(design, run, state.beta)
     on = penalty.penalised
+    deviance = state.sums.deviance
+    if state.scanned is not None:
+        # the stop added its solved step to the scanned coefficients: at a penalised
+        # optimum the deviance's gradient is not 0, so it moved to first order
+        deviance = quadratic_deviance(state.sums, state.scanned, state.beta)
     return {
         "penalty": penalty.strength,
-        "deviance": run.scaling.unscale(state.sums.deviance),
+        "deviance": run.scaling.unscale(deviance),
         "nonzero": int(np.count_nonzero(est[on])),
         "coefficients": dict(zip(design.terms, (float(v) for v in est), strict=True)),
     }
