@@ -253,9 +253,9 @@ class IrlsSolver:
     def start_warm(self, warm: IrlsState) -> None:
         """Start from a converged state's scan: its sums give the first (penalised) update
         with no scan of its own (a path's next lambda)."""
-        # the warm scan is the last accepted one: a first step that stalls goes back to it
-        # the objective there is the new penalty's at the scan's own coefficients: the
-        # stop's added step moved the deviance to first order (the penalty's gradient)
+        # The warm scan is the last accepted one: a first step that stalls goes back to it.
+        # Its sums hold at the scan's own coefficients, not at ones a stop moved on by the
+        # solved step (at a penalised optimum that moves the deviance to first order).
         at = warm.beta if warm.scanned is None else warm.scanned
         self.sums = self.sums_prev = warm.sums
         self.beta_prev = at
