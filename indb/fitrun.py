@@ -65,6 +65,8 @@ class FitRun:
     fold_seconds: float = 0.0
     #: the sample start: (rows in the sample, its IRLS scans, seconds), or why it was skipped
     sample: tuple[int, int, float] | str | None = None
+    #: the fit's first scan summed only the gradient, X'WX taken from the sample's
+    chord_start: bool = False
     #: the internal rescaling of response and weights (the scans' numbers -> the source's)
     scaling: Scaling = dataclasses.field(default_factory=Scaling)
     #: warnings found before the fit (digits lost to magnitudes), given with the result

@@ -181,12 +181,14 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         start = start_from(spec, design, run.scaling)
     null_mu, refit_null = null_deviance(ctx, design, run, summary.ybar)
     null_b0 = null_start(ctx, summary) if refit_null else None
+    hessian = None
     if start is None:
-        start, null_b0 = sample_start(ctx, design, run, summary, n_kept, null_b0)
+        start, null_b0, hessian = sample_start(ctx, design, run, summary, n_kept, null_b0)
     run.phase = "fit"
     penalty = pathfit.make_penalty(ctx, design, run, summary) if spec.penalised else None
     if penalty is not None and start is not None and spec.path is not None:
         start = np.where(penalty.penalised, 0.0, start)  # the path's first fit holds them at 0
+        hessian = None  # the sample's X'WX was taken elsewhere
     track = NullTrack(null_b0, spec.tol) if null_b0 is not None else None
     state, null_dev = irls(
         ctx,
@@ -199,6 +201,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
         off_mean=summary.off_mean,
         covariance=covariance.carried_sums(spec),
         penalty=penalty,
+        start_hessian=hessian,
     )
     records: list = []
     lam_max = None

@@ -326,6 +326,8 @@ def _path_label(run: FitRun, design: Design, sums: solver.Sums) -> str:
     if isinstance(run.sample, tuple):
         rows, scans, secs = run.sample
         scan += f", started from a {rows:,}-row sample fit ({scans} scans, {secs:.2f} s)"
+        if run.chord_start:
+            scan += "; the first scan summed the gradient only, with the sample's X'WX"
     elif isinstance(run.sample, str):
         scan += f", {run.sample}"
     if run.compressed is None:

@@ -7,6 +7,7 @@ import time
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import sparse
 
 from indb import logsums, solver
 from indb.design import Design, Scaling
@@ -83,6 +84,7 @@ def irls(
     off_mean: float = 0.0,
     covariance: tuple[str, ...] = (),
     penalty: Penalty | None = None,
+    start_hessian: sparse.csr_array | None = None,
 ) -> tuple[IrlsState, float | None]:
     """Iterate scans until the deviance settles and the next step is negligible.
 
@@ -92,7 +94,9 @@ def irls(
     ``covariance`` names the covariance sums (``plan.irls_scan.COVARIANCE_SUMS``) the last
     scans carry (see :data:`CARRY_STEP`); the state's sums have them when the last did.
     With ``penalty`` each update is the penalised Newton step (:mod:`indb.penalty`) and the
-    deviance the loop watches is the penalised objective.
+    deviance the loop watches is the penalised objective. ``start_hessian`` (an estimate of
+    X'WX near ``start``, such as a sample's scaled to the table) lets the first scan sum
+    only the gradient where the log-link scan applies (see :attr:`IrlsSolver.chord`).
     """
     loop = IrlsSolver(
         ctx,
@@ -105,6 +109,7 @@ def irls(
         covariance=covariance,
         penalty=penalty,
     )
+    loop.chord = start_hessian
     return loop.fit(start)
 
 
@@ -132,6 +137,11 @@ class IrlsSolver:
     #: the coefficients the next scan reads, and the last accepted ones (halving goes there)
     beta: np.ndarray
     beta_prev: np.ndarray
+    #: X'WX for the next scan to take instead of summing it: that scan, a log-link scan
+    #: (power other than 2, whose X'WX is summed once anyway), then sums only the gradient
+    #: and the deviance (chord_scan), and its update is a chord step. Used once, for the
+    #: first scan after a sample start; never for a scan the loop could stop at.
+    chord: sparse.csr_array | None = None
 
     def __init__(
         self,
@@ -184,6 +194,8 @@ class IrlsSolver:
         self.converged = False
         self.stalled = False
         self.scanned: np.ndarray | None = None
+        #: whether the last scan took its X'WX from ``chord``, and whether ``sums_prev`` did
+        self.chord_scan = self.prev_chord = False
 
     # -- the loop ------------------------------------------------------------------------------
 
@@ -305,12 +317,15 @@ class IrlsSolver:
         t0 = time.perf_counter()
         self.carry = bool(self.covariance) and self.next_step < CARRY_STEP
         halvings = self.scan_accepted()
+        chorded, self.chord = self.chord_scan, None
+        if chorded:
+            self.run.chord_start = True
         if self.stalled:
             self.finish_stalled()
             return True
         sums = self.sums
         assert sums is not None
-        self.sums_prev = sums
+        self.sums_prev, self.prev_chord = sums, chorded
         current = self.objective(sums, self.beta)
         change = (
             solver.relative_change(current, self.dev_old)
@@ -319,7 +334,8 @@ class IrlsSolver:
         )
         self.run.record(sums.deviance, change, halvings, time.perf_counter() - t0)
         self.sol = self.solve(sums, self.beta)
-        settled = self.settled(change, current)
+        # a chord scan's X'WX is not the information at its coefficients: never the last
+        settled = self.settled(change, current) and not chorded
         if settled or self.covariance:
             self.next_step = self.step_size()
         step = self.sol.beta - self.beta
@@ -335,7 +351,7 @@ class IrlsSolver:
             prev = self.prev_step if halvings == 0 and self.penalty is None else None
             self.beta = self.beta + solver.tail_factor(step, prev, self.sol.inv_info) * step
             return True
-        self.prev_step = step if halvings == 0 else None
+        self.prev_step = step if halvings == 0 and not chorded else None
         self.dev_old = current
         self.beta_prev = self.beta
         self.beta = self.sol.beta
@@ -403,6 +419,11 @@ class IrlsSolver:
         self.iterations -= 1
         assert self.sums_prev is not None and self.sol is not None
         self.sums, self.beta = self.sums_prev, self.beta_prev
+        if self.prev_chord:  # that scan's X'WX was borrowed: take the information here
+            t0 = time.perf_counter()
+            self.sums = self.scan(self.beta)
+            self.sol = self.solve(self.sums, self.beta)
+            self.run.record(self.sums.deviance, 0.0, 0, time.perf_counter() - t0)
         # the deviance has settled; converged if the remaining step is invisible too
         self.converged = self.step_size() < self.step_tol
 
@@ -418,6 +439,7 @@ class IrlsSolver:
 
     def scan(self, beta: np.ndarray | None) -> solver.Sums:
         """The sums of one scan at ``beta`` (None: at the family's starting means)."""
+        self.chord_scan = False
         if beta is not None and self.log_scan and not self.carry:
             sums = self.log_scan_sums(beta)
             if sums is not None:
@@ -439,6 +461,7 @@ class IrlsSolver:
         form; None when its split deviance lost more than ``MAX_DIGITS_LOST`` digits."""
         ctx, design, power = self.ctx, self.design, self.power
         gram, response, constants = logsums.scan_parts(power, self.log_cache)
+        hessian = self.chord if gram and power != 2.0 else None
         tree = log_scan_query(
             ctx,
             design,
@@ -447,15 +470,17 @@ class IrlsSolver:
             response=response,
             constants=constants,
             off_center=self.off_center,
+            gradient_only=hessian is not None,
         )
         got = logsums.assemble_log_scan(
-            design, self.run.query(tree), beta, power, self.log_cache, self.off_center
+            design, self.run.query(tree), beta, power, self.log_cache, self.off_center, hessian
         )
         self.run.check_rows(got.sums)
         wants_null = self.wants_null()
         b0, dev0 = logsums.null_model(power, got.cache) if wants_null else (0.0, 0.0)
         if got.digits_lost <= logsums.MAX_DIGITS_LOST and math.isfinite(dev0):
             self.log_cache = got.cache
+            self.chord_scan = hessian is not None
             if wants_null and self.null_track is not None:
                 self.null_track.finish(b0, dev0)
             elif wants_null:

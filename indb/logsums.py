@@ -28,6 +28,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import sparse
 
 from indb.cells import cell_columns, column_groups
 from indb.design import Design
@@ -78,17 +79,23 @@ def assemble_log_scan(
     p: float,
     cache: LogCache | None,
     off_center: float = 0.0,
+    hessian: sparse.csr_array | None = None,
 ) -> LogSums:
     """X'WX, X'Wz, deviance and Pearson chi-squared at ``beta`` from one log-link scan
-    (``off_center``: the c the first scan's constants took the offset about)."""
+    (``off_center``: the c the first scan's constants took the offset about).
+
+    With ``hessian`` the scan summed only the first row of each cell's G_c (its
+    ``gradient_only`` form): X'WX is then ``hessian`` and X'Wz is ``hessian`` b + X'W(z -
+    eta), so that the solved update is b + hessian^-1 times the gradient (a chord step)."""
     cells, codes = in_cell_order(design, cells)
     keys = tuple(codes)
     m = len(design.values)
     pairs = [(a, b) for a in range(m) for b in range(a, m)]
+    pairs_read = [(0, b) for b in range(m)] if hessian is not None else pairs
     if cache is None:
         cache = LogCache(
             keys=keys,
-            gram={f"s_{a}_{b}": zero_nulls(cells[f"s_{a}_{b}"]) for a, b in pairs},
+            gram={f"s_{a}_{b}": zero_nulls(cells[f"s_{a}_{b}"]) for a, b in pairs_read},
             resp={f"r_{a}": zero_nulls(cells[f"r_{a}"]) for a in range(m)},
             consts=_constants(cells),
             off_center=off_center,
@@ -97,11 +104,14 @@ def assemble_log_scan(
         np.array_equal(a, b) for a, b in zip(keys, cache.keys, strict=True)
     ):
         raise ValueError("the cells of this scan differ from the first scan's")
-    gram = cache.gram if "s_0_0" not in cells else {k: zero_nulls(cells[k]) for k in cache.gram}
+    if "s_0_0" in cells:
+        gram = {f"s_{a}_{b}": zero_nulls(cells[f"s_{a}_{b}"]) for a, b in pairs_read}
+    else:
+        gram = cache.gram
     resp = cache.resp if "r_0" not in cells else {k: zero_nulls(cells[k]) for k in cache.resp}
     nc = len(cells["n"])
     G = np.zeros((nc, m, m))
-    for a, b in pairs:
+    for a, b in pairs_read:
         G[:, a, b] = G[:, b, a] = gram[f"s_{a}_{b}"]
     R = np.column_stack([resp[f"r_{a}"] for a in range(m)]) if m else np.zeros((nc, 0))
 
@@ -109,8 +119,11 @@ def assemble_log_scan(
     with np.errstate(over="ignore", invalid="ignore"):
         e2, e1, e0 = (np.exp(k * gam) for k in (2.0 - p, 1.0 - p, -p))
         g0 = G[:, 0, :]
-        t = e2[:, None] * (np.einsum("cab,b->ca", G, bnum) + (gam[:, None] - 1.0) * g0)
-        t += e1[:, None] * R
+        if hessian is None:
+            t = e2[:, None] * (np.einsum("cab,b->ca", G, bnum) + (gam[:, None] - 1.0) * g0)
+            t += e1[:, None] * R
+        else:  # the gradient X'W(z - eta): W (z - eta) = pw (y mu^(1-p) - mu^(2-p))
+            t = e1[:, None] * R - e2[:, None] * g0
         pear_terms = np.array(
             [
                 (e0 * zero_nulls(cells["pq"])).sum(),
@@ -125,12 +138,14 @@ def assemble_log_scan(
         dev_terms = _deviance_terms(p, cache.consts, gam, bshift, e1, e2, G, R)
     scaled: dict[str, np.ndarray] = {f.alias: cells[f.alias] for f in design.factors}
     for a, b in pairs:
-        scaled[f"s_{a}_{b}"] = e2 * G[:, a, b]
+        scaled[f"s_{a}_{b}"] = e2 * G[:, a, b] if hessian is None else np.zeros(nc)
     for a in range(m):
         scaled[f"t_{a}"] = t[:, a]
     zero = np.zeros(nc)
     scaled.update(dev=zero, pear=zero, bad=zero_nulls(cells["bad"]), n=cells["n"], nw=cells["nw"])
     sums = assemble(design, scaled, codes=codes)
+    if hessian is not None:
+        sums = dataclasses.replace(sums, xtwx=hessian, xtwz=hessian @ beta + sums.xtwz)
     deviance, pearson = float(dev_terms.sum()), float(pear_terms.sum())
     finite = (
         all(math.isfinite(x) for x in (deviance, pearson))

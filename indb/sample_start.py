@@ -10,6 +10,7 @@ import uuid
 import warnings
 
 import numpy as np
+from scipy import sparse
 
 from indb import solver
 from indb.design import Design, Scaling
@@ -36,8 +37,9 @@ def sample_start(
     summary: Summary,
     n_kept: int,
     null_b0: float | None,
-) -> tuple[np.ndarray | None, float | None]:
-    """Starting coefficients (and the null model's intercept) from IRLS on a sample.
+) -> tuple[np.ndarray | None, float | None, sparse.csr_array | None]:
+    """Starting coefficients, the null model's intercept and an estimate of the table's
+    X'WX there, from IRLS on a sample.
 
     About ``SAMPLE_START_ROWS`` kept rows, picked by a hash of their model columns, are
     copied into a temporary table (one scan of the source) and fitted with the full table's
@@ -47,19 +49,25 @@ def sample_start(
     family's standard start. Skipped (``None``, the standard start) when ``sample_start``
     or the route rule it out, on a table below ``SAMPLE_START_MIN_ROWS`` kept rows
     (``auto``), or when the sample fit fails; the estimates never depend on the start.
+
+    The estimate of X'WX is the sample's last one scaled by the table's weighted rows over
+    the sample's, when the sample determined every coefficient (none aliased or set to 0):
+    the first scan of the table may then sum only the gradient (:attr:`indb.irls.IrlsSolver.
+    chord`). On the benchmark's 10^7-row Poisson model its step lands 1.09 standard errors
+    from the estimate, against 1.01 for the full Newton step (max over the coefficients).
     """
     spec, d = ctx.spec, ctx.dialect
     if spec.sample_start == "never" or run.compressed is not None:
-        return None, null_b0
+        return None, null_b0, None
     if not (d.can_materialize and d.can_sample):
         if spec.sample_start == "always":
             raise UnsupportedError(
                 f"engine {d.name!r} cannot draw the sample start's rows; use "
                 "sample_start='auto' or 'never'"
             )
-        return None, null_b0
+        return None, null_b0, None
     if spec.sample_start == "auto" and n_kept < SAMPLE_START_MIN_ROWS:
-        return None, null_b0
+        return None, null_b0, None
     t0 = time.perf_counter()
     log_size = len(run.log)
     name = f"indb_sample_{uuid.uuid4().hex[:12]}"
@@ -82,7 +90,7 @@ def sample_start(
     except (SpecError, EngineError) as err:
         # the full table decides what is wrong with the model; start it the standard way
         run.sample = f"sample start skipped ({type(err).__name__}); standard start"
-        return None, null_b0
+        return None, null_b0, None
     finally:
         run.phase = "fit"
         with contextlib.suppress(Exception):
@@ -94,20 +102,24 @@ def sample_start(
             f"sample start skipped ({state.sums.n:,} sample rows for {design.p} "
             "coefficients); standard start"
         )
-        return None, null_b0
+        return None, null_b0, None
     if not state.converged or not np.all(np.isfinite(sol.beta)):
         run.sample = "sample start skipped (the sample fit did not converge); standard start"
-        return None, null_b0
+        return None, null_b0, None
     # A coefficient the sample hardly determines (a level with few sample rows, or one
     # drifting to the boundary there: standard error above 1 on the link scale, per unit of
     # a 0/1 column or per standard deviation of a value) starts at 0, like an aliased one:
     # a boundary estimate such as -30 for an empty cell would start the full table far off.
     phi = working_dispersion(ctx.spec.family, state.sums, sol)
     se = np.sqrt(np.clip(sol.inv_info.diagonal() * phi, 0.0, None))
-    beta = np.where(se < SAMPLE_MAX_SE, sol.beta, 0.0)
+    determined = se < SAMPLE_MAX_SE
+    beta = np.where(determined, sol.beta, 0.0)
     scans = sum(1 + r.step_halvings for r in run.log[log_size:])
     run.sample = (state.sums.n, scans, time.perf_counter() - t0)
-    return beta, (track.b0 if track is not None else None)
+    hessian = None
+    if determined.all() and not sol.aliased.any() and run.expected is not None:
+        hessian = state.sums.xtwx * (run.expected[1] / state.sums.n_weighted)
+    return beta, (track.b0 if track is not None else None), hessian
 
 
 def start_from(spec: ModelSpec, design: Design, scaling: Scaling) -> np.ndarray | None:

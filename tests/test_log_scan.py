@@ -18,7 +18,7 @@ from numpy.testing import assert_allclose
 from reference_cases import design_matrix, duckdb_table, fair_rated
 
 import indb
-from indb import irls
+from indb import fitter, irls, logsums, sample_start
 
 CASES = {
     # name: (indb options, statsmodels family, response column)
@@ -170,3 +170,104 @@ def test_a_near_perfect_fit_returns_to_per_row_deviances(
     # the deviance itself (~1e-14) is rounding noise of the per-row formula on any engine:
     # 6366 terms of (y/mu - 1)^2 ~ 1e-18, each computed from ln(y/mu) to ~1e-16
     assert abs(fast.deviance - ref.deviance) < 1e-11
+
+
+@pytest.mark.parametrize("name", sorted(CASES))
+def test_a_gradient_only_scan_gives_the_full_scans_update(
+    fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch, name: str
+) -> None:
+    # Every full log-link scan of a fit is assembled a second time as the gradient-only
+    # scan would be (the s_a_b with a >= 1 dropped, X'WX handed in): X'Wz, the deviance and
+    # Pearson's chi-squared must come out the same, so a chord step with the exact X'WX is
+    # the Newton step. (Power 2, gamma, sums X'WX once and never takes this form.)
+    opts, _, response = CASES[name]
+    frame = fair[fair[response] > 0] if name in ("gamma", "inverse_gaussian") else fair
+    real = logsums.assemble_log_scan
+    checked: list[int] = []
+
+    def both(design, cells, beta, p, cache, off_center=0.0, hessian=None):
+        got = real(design, cells, beta, p, cache, off_center, hessian)
+        if hessian is None and "s_1_1" in cells:
+            part = {k: v for k, v in cells.items() if not k.startswith("s_") or k[2] == "0"}
+            again = real(design, part, beta, p, got.cache, off_center, got.sums.xtwx)
+            assert_allclose(again.sums.xtwz, got.sums.xtwz, rtol=1e-11, atol=1e-9)
+            assert_allclose(again.sums.deviance, got.sums.deviance, rtol=1e-13)
+            assert_allclose(again.sums.pearson, got.sums.pearson, rtol=1e-13)
+            checked.append(1)
+        return got
+
+    monkeypatch.setattr(logsums, "assemble_log_scan", both)
+    res = indb.fit(
+        "fair",
+        response,
+        db=duckdb_table(frame, "fair"),
+        predictors=["rating", "religious", "educ"],
+        interactions=[("rating", "religious")],
+        offset="ln(age)",
+        weight="wt",
+        compress="never",
+        sample_start="never",
+        **opts,
+    )
+    assert res.converged
+    assert len(checked) >= (0 if name == "gamma" else 2)
+
+
+@pytest.mark.parametrize("name", sorted(CASES))
+def test_the_first_scan_after_a_sample_start_sums_the_gradient_only(
+    fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch, name: str
+) -> None:
+    # After a sample start the first scan of the table takes X'WX from the sample (scaled
+    # to the table) and sums only the gradient; the fit must still reach statsmodels' GLM
+    # (test-only oracle) and the fit whose first scan sums X'WX.
+    opts, family, response = CASES[name]
+    frame = fair[fair[response] > 0] if name in ("gamma", "inverse_gaussian") else fair
+    monkeypatch.setattr(sample_start, "SAMPLE_START_ROWS", 1500)
+    kinds: list[bool] = []
+    real = irls.log_scan_query
+
+    def noted(*args, **kwargs):
+        kinds.append(kwargs.get("gradient_only", False))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(irls, "log_scan_query", noted)
+    common = dict(
+        db=duckdb_table(frame, "fair"),
+        predictors=["rating", "religious", "educ"],
+        categorical=["rating", "religious"],
+        offset="ln(age)",
+        weight="wt",
+        tol=1e-12,
+        compress="never",
+        sample_start="always",
+        **opts,
+    )
+    chord = indb.fit("fair", response, **common)
+    first_fit_scan = sum(1 for r in chord.iteration_log if r.phase == "sample")
+    real_start = fitter.sample_start
+    monkeypatch.setattr(fitter, "sample_start", lambda *a: (*real_start(*a)[:2], None))
+    full = indb.fit("fair", response, **common)
+
+    gradient_only = name != "gamma"  # gamma sums X'WX once anyway, in the first scan
+    assert kinds.count(True) == (1 if gradient_only else 0)
+    if gradient_only:
+        # the sample's first scan, at the family's starting means, is not a log-link scan
+        assert kinds.index(True) == first_fit_scan - 1
+        assert chord.path.endswith(
+            "the first scan summed the gradient only, with the sample's X'WX"
+        )
+    assert "gradient only" not in full.path
+    assert chord.converged and full.converged
+    assert_allclose(chord.estimates, full.estimates, rtol=1e-9, atol=1e-11)
+    assert_allclose(chord.std_errors, full.std_errors, rtol=1e-8)
+    assert_allclose(chord.deviance, full.deviance, rtol=1e-12)
+
+    X = design_matrix(frame, ["rating", "religious", "educ"], categorical=["rating", "religious"])[
+        chord.terms
+    ]
+    ref = sm.GLM(
+        frame[response], X, family=family, offset=np.log(frame["age"]), var_weights=frame["wt"]
+    ).fit(tol=1e-13, maxiter=200)
+    assert_allclose(chord.estimates, ref.params, rtol=1e-8, atol=1e-9)
+    assert_allclose(chord.std_errors, ref.bse, rtol=1e-7)
+    assert_allclose(chord.deviance, ref.deviance, rtol=1e-8)

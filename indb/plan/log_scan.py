@@ -46,6 +46,7 @@ def log_scan_query(
     constants: bool,
     off_center: float = 0.0,
     batch: Mapping[int, np.ndarray] | None = None,
+    gradient_only: bool = False,
 ) -> exp.Select:
     """The IRLS scan of a log-link, V(mu) = mu^p model without a join to factor effects.
 
@@ -74,7 +75,9 @@ def log_scan_query(
     for gamma (p = 2) the ``s_a_b`` do not depend on the coefficients either, so later
     scans leave them out. :func:`indb.logsums.assemble_log_scan` turns the sums into X'WX,
     X'Wz, the deviance and Pearson's chi-squared exactly as :func:`gram_query`'s per-row
-    terms would give them.
+    terms would give them. With ``gradient_only`` the ``s_a_b`` are summed for a = 0 only
+    (p + 1 sums instead of (p + 1)(p + 2) / 2): with ``r_a`` they give the gradient and the
+    deviance, and the step takes X'WX from elsewhere (:func:`indb.logsums.assemble_log_scan`).
     """
     fam = ctx.spec.family
     p = float(fam.variance_power)
@@ -158,7 +161,7 @@ def log_scan_query(
     aggs: list[Expr] = []
     m = len(design.values)
     if gram:
-        for a in range(m):
+        for a in range(1 if gradient_only else m):
             for b in range(a, m):
                 prod = [S.col("q")] + [vals[i] for i in (a, b) if i]
                 aggs.append(S.alias(S.psum(S.mul(*prod)), f"s_{a}_{b}"))
