@@ -96,7 +96,7 @@ def irls(
     With ``penalty`` each update is the penalised Newton step (:mod:`indb.penalty`) and the
     deviance the loop watches is the penalised objective. ``start_hessian`` (an estimate of
     X'WX near ``start``, such as a sample's scaled to the table) lets the first scan sum
-    only the gradient where the log-link scan applies (see :attr:`IrlsSolver.chord`).
+    only the gradient (see :attr:`IrlsSolver.chord`).
     """
     loop = IrlsSolver(
         ctx,
@@ -137,9 +137,9 @@ class IrlsSolver:
     #: the coefficients the next scan reads, and the last accepted ones (halving goes there)
     beta: np.ndarray
     beta_prev: np.ndarray
-    #: X'WX for the next scan to take instead of summing it: that scan, a log-link scan
-    #: (power other than 2, whose X'WX is summed once anyway), then sums only the gradient
-    #: and the deviance (chord_scan), and its update is a chord step. Used once, for the
+    #: X'WX for the next scan to take instead of summing it: that scan then sums only the
+    #: gradient and the deviance (``chord_scan``; not a log-link scan with power 2, whose
+    #: X'WX is summed once anyway), and its update is a chord step. Used once, for the
     #: first scan after a sample start; never for a scan the loop could stop at.
     chord: sparse.csr_array | None = None
 
@@ -248,7 +248,10 @@ class IrlsSolver:
             self.budget = spec.max_iter - 1  # the start scan counts as an iteration
         else:
             self.beta = np.asarray(start, float)
-            self.beta_prev = self.beta.copy()
+            # Where a first scan with an invalid mean halves toward: the intercept-only
+            # coefficients, as from the standard start. A sample's estimate can give a mean
+            # outside the family's range on a row the sample did not hold (an inverse link).
+            self.beta_prev = _fallback_beta(self.ctx, self.design, self.ybar)
             self.budget = spec.max_iter
 
     def with_penalty(self, penalty: Penalty, predicted_settle: bool = False) -> IrlsSolver:
@@ -494,6 +497,7 @@ class IrlsSolver:
         null_mu, null_track = self.null_mu, self.null_track
         with_mu = null_mu is not None and self.null_dev is None
         track = null_track is not None and not null_track.done
+        hessian = self.chord if beta is not None else None
         tree = gram_query(
             self.ctx,
             self.design,
@@ -503,12 +507,16 @@ class IrlsSolver:
             cells=self.cells,
             null_intercept=null_track.b0 if track else None,
             covariance=self.covariance if self.carry and beta is not None else (),
+            gradient_only=hessian is not None,
         )
         extra = ("nullw", "nullwz", "nulldev") if track else ("nulldev",) if with_mu else ()
         if self.spec.family.unit_mean:
             extra += ("edge", "near")
-        out = solver.assemble(self.design, self.run.query(tree), extra)
+        out = solver.assemble(self.design, self.run.query(tree), extra, gram=hessian is None)
         self.run.check_rows(out)
+        if hessian is not None:
+            out = solver.chord(out, hessian, beta)
+            self.chord_scan = True
         self.cells = out.cell_keys
         if with_mu:
             self.null_dev = out.extras["nulldev"]

@@ -32,7 +32,7 @@ from scipy import sparse
 
 from indb.cells import cell_columns, column_groups
 from indb.design import Design
-from indb.solver import Sums, assemble, in_cell_order, zero_nulls
+from indb.solver import Sums, assemble, chord, in_cell_order, zero_nulls
 
 #: digits the split deviance or Pearson sum may lose before the fitter stops using it
 #: (relative error about 10^(digits - 16); 10^-10 still leaves the convergence test, at a
@@ -137,15 +137,15 @@ def assemble_log_scan(
             bshift[0] += cache.off_center
         dev_terms = _deviance_terms(p, cache.consts, gam, bshift, e1, e2, G, R)
     scaled: dict[str, np.ndarray] = {f.alias: cells[f.alias] for f in design.factors}
-    for a, b in pairs:
-        scaled[f"s_{a}_{b}"] = e2 * G[:, a, b] if hessian is None else np.zeros(nc)
+    for a, b in pairs if hessian is None else ():
+        scaled[f"s_{a}_{b}"] = e2 * G[:, a, b]
     for a in range(m):
         scaled[f"t_{a}"] = t[:, a]
     zero = np.zeros(nc)
     scaled.update(dev=zero, pear=zero, bad=zero_nulls(cells["bad"]), n=cells["n"], nw=cells["nw"])
-    sums = assemble(design, scaled, codes=codes)
+    sums = assemble(design, scaled, codes=codes, gram=hessian is None)
     if hessian is not None:
-        sums = dataclasses.replace(sums, xtwx=hessian, xtwz=hessian @ beta + sums.xtwz)
+        sums = chord(sums, hessian, beta)
     deviance, pearson = float(dev_terms.sum()), float(pear_terms.sum())
     finite = (
         all(math.isfinite(x) for x in (deviance, pearson))

@@ -8,7 +8,7 @@ factors); :mod:`indb.normal_eq` solves it through that structure.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import sparse, special
@@ -126,13 +126,15 @@ def assemble(
     cells: dict[str, np.ndarray],
     extra: tuple[str, ...] = (),
     codes: list[np.ndarray] | None = None,
+    gram: bool = True,
 ) -> Sums:
     """Build X'WX (sparse) and X'Wz (standardized design) from per-cell sums of the IRLS
     scan: each cell adds its sums to the design columns it belongs to, one entry per pair
     of column groups (never a cells x p indicator matrix).
 
     ``codes``: the cells' level codes when ``cells`` are already in cell order (as
-    :func:`in_cell_order` returns them)."""
+    :func:`in_cell_order` returns them). ``gram=False``: the scan summed no X'WX (a
+    gradient-only scan, :func:`chord`); X'WX is left empty."""
     if codes is None:
         cells, codes = in_cell_order(design, cells)
     rows = len(cells["n"])
@@ -156,7 +158,7 @@ def assemble(
         if f"{prefix}_0_0" in cells
     }
     return Sums(
-        xtwx=cell_matrix(design, cells, where, "s"),
+        xtwx=cell_matrix(design, cells, where, "s") if gram else sparse.csr_array((p, p)),
         xtwz=xtwz,
         deviance=float(zero_nulls(cells["dev"]).sum()),
         pearson=float(zero_nulls(cells["pear"]).sum()),
@@ -174,6 +176,13 @@ def assemble(
         ),
         matrices=matrices,
     )
+
+
+def chord(sums: Sums, hessian: sparse.csr_array, beta: np.ndarray) -> Sums:
+    """A gradient-only scan at ``beta`` (its X'Wz holding the gradient X'W(z - eta)) as the
+    sums of a step: X'WX is ``hessian`` and X'Wz is ``hessian`` b + the gradient, so that
+    the solved update is the chord step b + hessian^-1 X'W(z - eta)."""
+    return replace(sums, xtwx=hessian, xtwz=hessian @ beta + sums.xtwz)
 
 
 def cell_matrix(

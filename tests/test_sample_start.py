@@ -18,7 +18,7 @@ from numpy.testing import assert_allclose
 from reference_cases import design_matrix, duckdb_table, fair_rated
 
 import indb
-from indb import sample_start
+from indb import fitter, irls, sample_start
 from indb import sqlexpr as S
 from indb.engines.base_dialect import Dialect
 from indb.engines.duckdb import DuckDBDialect
@@ -181,3 +181,122 @@ def test_bad_sample_start_option_and_an_engine_without_hashing() -> None:
     with pytest.raises(ValueError, match=r"a sample fraction lies in \(0, 1\]"):
         S.row_pick([S.col("k")], 0.0)
     assert DuckDBDialect().can_sample and not Dialect().can_sample
+
+
+GRAM_CASES = {
+    # name: (indb options, statsmodels family, response)
+    "binomial_logit": ({"family": "binomial"}, sm.families.Binomial(), "had"),
+    "binomial_probit": (
+        {"family": "binomial", "link": "probit"},
+        sm.families.Binomial(sm.families.links.Probit()),
+        "had",
+    ),
+    "binomial_cloglog": (
+        {"family": "binomial", "link": "cloglog"},
+        sm.families.Binomial(sm.families.links.CLogLog()),
+        "had",
+    ),
+    # statsmodels' GLM ends this one with 1016 negative fitted means (deviance 127,292
+    # against 4,523.6 with every mean valid): the reference is indb's standard start
+    "gamma_inverse": ({"family": "gamma"}, None, "years"),
+}
+
+
+@pytest.mark.parametrize("name", sorted(GRAM_CASES))
+def test_a_gradient_only_per_row_scan_gives_the_full_scans_update(
+    fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch, name: str
+) -> None:
+    # Every full per-row IRLS scan of a fit (plan.irls_scan.gram_query) is run again on the
+    # engine in its gradient-only form at the same coefficients, with the full scan's X'WX
+    # handed in: X'Wz, the deviance and Pearson's chi-squared must be the full scan's, so a
+    # chord step with the exact X'WX is the Newton (Fisher scoring) step.
+    opts, _, response = GRAM_CASES[name]
+    real = irls.IrlsSolver.gram_scan_sums
+    checked: list[int] = []
+
+    def both(self, beta):
+        got = real(self, beta)
+        if beta is not None and self.chord is None:
+            self.chord = got.xtwx
+            again = real(self, beta)
+            self.chord, self.chord_scan = None, False
+            assert_allclose(again.xtwz, got.xtwz, rtol=1e-11, atol=1e-9)
+            assert_allclose(again.deviance, got.deviance, rtol=1e-13)
+            assert_allclose(again.pearson, got.pearson, rtol=1e-13)
+            checked.append(1)
+        return got
+
+    monkeypatch.setattr(irls.IrlsSolver, "gram_scan_sums", both)
+    res = indb.fit(
+        "fair",
+        response,
+        db=duckdb_table(fair, "fair"),
+        predictors=["rating", "religious", "age", "educ"],
+        categorical=["rating", "religious"],
+        weight="wt",
+        compress="never",
+        sample_start="never",
+        **opts,
+    )
+    assert res.converged and len(checked) >= 2
+
+
+@pytest.mark.parametrize("name", sorted(GRAM_CASES))
+def test_the_first_per_row_scan_after_a_sample_start_sums_the_gradient_only(
+    fair: pd.DataFrame, small_sample: int, monkeypatch: pytest.MonkeyPatch, name: str
+) -> None:
+    # The sample's X'WX, scaled to the table, stands in for the first scan's; the fit must
+    # reach statsmodels' GLM (test-only oracle) and the fit whose first scan sums X'WX.
+    opts, family, response = GRAM_CASES[name]
+    kinds: list[bool] = []
+    real = irls.gram_query
+
+    def noted(*args, **kwargs):
+        kinds.append(kwargs.get("gradient_only", False))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(irls, "gram_query", noted)
+    predictors = ["rating", "religious", "age", "educ"]
+    common = dict(
+        db=duckdb_table(fair, "fair"),
+        predictors=predictors,
+        categorical=["rating", "religious"],
+        weight="wt",
+        tol=1e-12,
+        compress="never",
+        sample_start="always",
+        **opts,
+    )
+    chord = indb.fit("fair", response, **common)
+    sample_scans = sum(1 + r.step_halvings for r in chord.iteration_log if r.phase == "sample")
+    first = next(r for r in chord.iteration_log if r.phase == "fit")
+    real_start = fitter.sample_start
+    monkeypatch.setattr(fitter, "sample_start", lambda *a: (*real_start(*a)[:2], None))
+    full = indb.fit("fair", response, **common)
+
+    # the first iteration's scans (more than one when its mean is invalid somewhere and the
+    # step is halved toward the intercept-only coefficients: gamma's inverse link here)
+    n_first = 1 + first.step_halvings
+    assert kinds[sample_scans : sample_scans + n_first] == [True] * n_first
+    assert kinds.count(True) == n_first
+    assert chord.path.endswith("the first scan summed the gradient only, with the sample's X'WX")
+    assert "gradient only" not in full.path
+    assert chord.converged and full.converged
+    assert_allclose(chord.estimates, full.estimates, rtol=1e-9, atol=1e-11)
+    assert_allclose(chord.std_errors, full.std_errors, rtol=1e-8)
+    assert_allclose(chord.deviance, full.deviance, rtol=1e-12)
+
+    if family is None:  # the sample's estimate gives a negative mean on some rows
+        assert first.step_halvings >= 1
+        standard = indb.fit("fair", response, **{**common, "sample_start": "never"})
+        assert_allclose(chord.estimates, standard.estimates, rtol=1e-8, atol=1e-11)
+        assert_allclose(chord.std_errors, standard.std_errors, rtol=1e-8)
+        assert_allclose(chord.deviance, standard.deviance, rtol=1e-12)
+        return
+    X = design_matrix(fair, predictors, categorical=["rating", "religious"])[chord.terms]
+    ref = sm.GLM(fair[response].astype(float), X, family=family, var_weights=fair["wt"]).fit(
+        tol=1e-13, maxiter=200
+    )
+    assert_allclose(chord.estimates, ref.params, rtol=1e-7, atol=1e-10)
+    assert_allclose(chord.std_errors, ref.bse, rtol=1e-7)
+    assert_allclose(chord.deviance, ref.deviance, rtol=1e-10)

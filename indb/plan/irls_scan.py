@@ -348,10 +348,12 @@ def _work_stage(
     extra: Sequence[tuple[str, Expr]] = (),
     keep: Sequence[str] = (),
     slopes: bool = False,
+    gradient_only: bool = False,
 ) -> exp.Select:
     """Stage w: working weight and response, deviance and Pearson contributions; ``extra``
     are computed here from the columns y, mu, pw, fw, dmu, var (and, with ``slopes``, dmu2
-    = d^2 mu / deta^2 and dvar = dV/dmu)."""
+    = d^2 mu / deta^2 and dvar = dV/dmu). With ``gradient_only``, ``fwwz`` is f w (z - eta)
+    (the gradient's share) instead of f w z."""
     fam, link = ctx.spec.family, ctx.spec.link
     y, mu, pw, fw = S.col("y"), S.col("mu"), S.col("pw"), S.col("fw")
     dmu = link.mu_eta_sql(S.col("seta"), mu)
@@ -375,7 +377,7 @@ def _work_stage(
     dmu_c, var = S.col("dmu"), S.col("var")
     w = S.div(S.mul(pw, dmu_c, dmu_c), var)
     step = S.case([(S.ne(dmu_c, S.num(0.0)), S.div(S.sub(y, mu), dmu_c))], S.num(0.0))
-    z = S.add(S.sub(S.col("eta"), S.col("off")), step)
+    z = step if gradient_only else S.add(S.sub(S.col("eta"), S.col("off")), step)
     resid = S.sub(y, mu)
     cols = [
         *group_keys(ctx, design),
@@ -469,6 +471,7 @@ def gram_query(
     null_intercept: float | None = None,
     theta: float | None = None,
     covariance: Sequence[str] = (),
+    gradient_only: bool = False,
 ) -> exp.Select:
     """The IRLS scan: all sums for X'WX, X'Wz, deviance and Pearson, grouped by factor cells.
 
@@ -479,6 +482,8 @@ def gram_query(
     ``thetab``, the sums of :func:`theta_terms` for a Newton step on the negative binomial
     theta at this scan's means (so the step costs no scan of its own). ``covariance`` names
     the matrices of :data:`COVARIANCE_SUMS` to add (the robust meat, the observed information).
+    ``gradient_only`` leaves X'WX out and sums the gradient X'W(z - eta) as the ``t_a``
+    (:func:`indb.solver.chord` makes a step of it with X'WX from elsewhere).
     """
     if "meat" in covariance and ctx.folded:
         ctx = dataclasses.replace(ctx, row_extras=(*ctx.row_extras, "r2"))
@@ -515,22 +520,28 @@ def gram_query(
         [*extra, *((column, terms[column]) for _, column in matrices)],
         keep,
         slopes="observed" in covariance,
+        gradient_only=gradient_only,
     )
+    sums = scan_sums(design, [n for n, _ in extra], matrices, gram=not gradient_only)
     return S.select(
-        [*group_keys(ctx, design), *scan_sums(design, [n for n, _ in extra], matrices)],
+        [*group_keys(ctx, design), *sums],
         S.subquery(work, "w"),
         group_by=group_keys(ctx, design),
     )
 
 
 def scan_sums(
-    design: Design, extra: Sequence[str] = (), matrices: Sequence[tuple[str, str]] = ()
+    design: Design,
+    extra: Sequence[str] = (),
+    matrices: Sequence[tuple[str, str]] = (),
+    gram: bool = True,
 ) -> list[Expr]:
     """The aggregates of an IRLS scan over its work stage (:func:`gram_query`): the X'WX
-    and X'Wz products, deviance, Pearson, bad rows, row counts, the sums of the ``extra``
-    per-row terms (``fname`` summed as ``name``) and of the covariance ``matrices``."""
+    (unless not ``gram``) and X'Wz products, deviance, Pearson, bad rows, row counts, the
+    sums of the ``extra`` per-row terms (``fname`` summed as ``name``) and of the
+    covariance ``matrices``."""
     vals = [None, *(S.col(v.alias) for v in design.values[1:])]
-    aggs: list[Expr] = value_products(design, "fww", "s")
+    aggs: list[Expr] = value_products(design, "fww", "s") if gram else []
     m = len(design.values)
     for a in range(m):
         prod = [S.col("fwwz")] + ([vals[a]] if a else [])
