@@ -150,8 +150,12 @@ def snapshot_indb(data_dir: str) -> tuple[str, str]:
         shutil.rmtree(root)
     shutil.copytree(src, os.path.join(root, "indb"), ignore=shutil.ignore_patterns("__pycache__"))
     digest = hashlib.sha256()
-    for name in sorted(os.listdir(os.path.join(root, "indb"))):
-        with open(os.path.join(root, "indb", name), "rb") as fh:
+    base = os.path.join(root, "indb")
+    names = sorted(
+        os.path.relpath(os.path.join(d, f), base) for d, _, files in os.walk(base) for f in files
+    )
+    for name in names:  # every source file, subpackages (plan/, engines/) included
+        with open(os.path.join(base, name), "rb") as fh:
             digest.update(name.encode() + b"\0" + fh.read())
     return root, digest.hexdigest()[:12]
 
