@@ -10,6 +10,8 @@ from the occupation code; ``reference_cases.fair_rated``).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -51,6 +53,14 @@ def fair() -> pd.DataFrame:
     return fair_rated()
 
 
+def _case(fair: pd.DataFrame, name: str) -> tuple[dict, Any, str, pd.DataFrame]:
+    """A case's options, statsmodels family, response and rows (positive responses only
+    for the families whose means must be positive)."""
+    opts, family, response = CASES[name]
+    frame = fair[fair[response] > 0] if name in ("gamma", "inverse_gaussian") else fair
+    return opts, family, response, frame
+
+
 def _fits(fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch, **opts):
     """The same fit twice: with the log-link scan, and with it switched off."""
     con = duckdb_table(fair, "fair")
@@ -74,8 +84,7 @@ def _fits(fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch, **opts):
 def test_log_scan_matches_the_per_row_scan_and_statsmodels(
     fair: pd.DataFrame, monkeypatch: pytest.MonkeyPatch, name: str
 ) -> None:
-    opts, family, response = CASES[name]
-    frame = fair[fair[response] > 0] if name in ("gamma", "inverse_gaussian") else fair
+    opts, family, response, frame = _case(fair, name)
     fast, per_row, used = _fits(
         frame,
         monkeypatch,
@@ -180,8 +189,7 @@ def test_a_gradient_only_scan_gives_the_full_scans_update(
     # scan would be (the s_a_b with a >= 1 dropped, X'WX handed in): X'Wz, the deviance and
     # Pearson's chi-squared must come out the same, so a chord step with the exact X'WX is
     # the Newton step. (Power 2, gamma, sums X'WX once and never takes this form.)
-    opts, _, response = CASES[name]
-    frame = fair[fair[response] > 0] if name in ("gamma", "inverse_gaussian") else fair
+    opts, _, response, frame = _case(fair, name)
     real = logsums.assemble_log_scan
     checked: list[int] = []
 
@@ -220,8 +228,7 @@ def test_the_first_scan_after_a_sample_start_sums_the_gradient_only(
     # After a sample start the first scan of the table takes X'WX from the sample (scaled
     # to the table) and sums only the gradient; the fit must still reach statsmodels' GLM
     # (test-only oracle) and the fit whose first scan sums X'WX.
-    opts, family, response = CASES[name]
-    frame = fair[fair[response] > 0] if name in ("gamma", "inverse_gaussian") else fair
+    opts, family, response, frame = _case(fair, name)
     monkeypatch.setattr(sample_start, "SAMPLE_START_ROWS", 1500)
     kinds: list[bool] = []
     real = irls.log_scan_query
