@@ -188,7 +188,7 @@ def _fit(spec: ModelSpec, run: FitRun, t_start: float) -> FitResult:
     penalty = pathfit.make_penalty(ctx, design, run, summary) if spec.penalised else None
     if penalty is not None and start is not None and spec.path is not None:
         start = np.where(penalty.penalised, 0.0, start)  # the path's first fit holds them at 0
-        hessian = None  # the sample's X'WX was taken elsewhere
+        hessian = None  # the start moved: the sample's X'WX belongs to other coefficients
     track = NullTrack(null_b0, spec.tol) if null_b0 is not None else None
     state, null_dev = irls(
         ctx,

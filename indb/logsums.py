@@ -137,8 +137,9 @@ def assemble_log_scan(
             bshift[0] += cache.off_center
         dev_terms = _deviance_terms(p, cache.consts, gam, bshift, e1, e2, G, R)
     scaled: dict[str, np.ndarray] = {f.alias: cells[f.alias] for f in design.factors}
-    for a, b in pairs if hessian is None else ():
-        scaled[f"s_{a}_{b}"] = e2 * G[:, a, b]
+    if hessian is None:  # else the scan summed no X'WX to scale
+        for a, b in pairs:
+            scaled[f"s_{a}_{b}"] = e2 * G[:, a, b]
     for a in range(m):
         scaled[f"t_{a}"] = t[:, a]
     zero = np.zeros(nc)
